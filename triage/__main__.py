@@ -1,0 +1,5 @@
+"""`python -m triage` runs the command line."""
+
+from triage.cli.main import main
+
+raise SystemExit(main())

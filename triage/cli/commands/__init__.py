@@ -1,0 +1,1 @@
+"""triage cli commands layer."""

@@ -1,0 +1,49 @@
+"""Entry point of the `triage` command: one subcommand per module in `triage.cli.commands`."""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+from collections.abc import Sequence
+
+from triage import __version__
+from triage.errors import TriageError
+
+COMMANDS: tuple[str, ...] = ("fit", "report", "export", "compare", "sample", "open")
+"""Subcommands, each a module in `triage.cli.commands` with `register(subparsers)`."""
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """Build the argument parser with every subcommand registered."""
+    parser = argparse.ArgumentParser(
+        prog="triage",
+        description="Find where and why a least-squares model fits badly, on tables of any size.",
+        epilog="`triage DATA` with no command opens the terminal app.",
+    )
+    parser.add_argument("--version", action="version", version=f"triage {__version__}")
+    subparsers = parser.add_subparsers(dest="command", metavar="COMMAND")
+    for name in COMMANDS:
+        module = importlib.import_module(f"triage.cli.commands.{name}")
+        module.register(subparsers)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the command line and return the exit code (2 for bad input, with one line on stderr)."""
+    args_list = list(sys.argv[1:] if argv is None else argv)
+    if args_list and not args_list[0].startswith("-") and args_list[0] not in COMMANDS:
+        args_list.insert(0, "open")
+    parser = build_parser()
+    args = parser.parse_args(args_list)
+    if args.command is None:
+        parser.print_help()
+        return 0
+    try:
+        return int(args.handler(args))
+    except TriageError as error:
+        print(f"triage: {error}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("triage: stopped", file=sys.stderr)
+        return 130

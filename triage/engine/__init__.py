@@ -1,0 +1,1 @@
+"""triage engine layer."""

@@ -1,0 +1,1 @@
+"""triage tui screens layer."""

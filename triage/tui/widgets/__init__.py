@@ -1,0 +1,1 @@
+"""triage tui widgets layer."""

@@ -1,0 +1,1 @@
+"""triage views layer."""
