@@ -1,0 +1,156 @@
+"""Full-pass fit speed and memory, measured side by side in one run.
+
+Generates Parquet files of random data (8 and 30 numeric predictors), then times, each in a
+fresh subprocess with its peak resident memory:
+
+- floor: polars alone reading the same columns in bounded batches (summing them, so every
+  value is decoded);
+- triage: `triage fit --rows all` on the same file;
+- in-memory: pandas + statsmodels OLS, the route a user would otherwise take (skipped when
+  the estimated memory would exceed `--memory-cap-gb`).
+
+Prints ratios to the floor. Usage: ``python bench/bench_fit.py --rows 20000000``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+HERE = Path(__file__).resolve().parent
+DATA = HERE / "data"
+
+FLOOR = """
+import polars as pl, sys
+lf = pl.scan_parquet(sys.argv[1]).select(sys.argv[2].split(","))
+total = 0.0
+for frame in lf.collect_batches(chunk_size=65536):
+    total += float(frame.sum_horizontal().sum())
+"""
+
+TRIAGE = """
+import sys
+from triage.cli.main import main
+code = main(["fit", sys.argv[1], "--target", "y", "--terms", sys.argv[2], "--rows", "all", "--json"])
+sys.exit(code)
+"""
+
+IN_MEMORY = """
+import sys, pandas as pd, statsmodels.api as sm
+frame = pd.read_parquet(sys.argv[1], columns=["y", *sys.argv[2].split(",")])
+model = sm.OLS(frame["y"], sm.add_constant(frame[sys.argv[2].split(",")])).fit()
+print(model.rsquared, file=sys.stderr)
+"""
+
+MEASURE = """
+import resource, runpy, sys, time
+script, args = sys.argv[1], sys.argv[2:]
+sys.argv = ["bench", *args]
+start = time.perf_counter()
+code = 0
+try:
+    exec(compile(script, "bench", "exec"), {"__name__": "__main__"})
+except SystemExit as stop:
+    code = stop.code or 0
+elapsed = time.perf_counter() - start
+peak_mib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+print("MEASURE", elapsed, peak_mib, code, file=sys.stderr)
+"""
+
+
+def make_file(path: Path, n_rows: int, n_predictors: int, *, seed: int = 0) -> None:
+    """Write random data with a known linear model, in row groups of about 1M rows."""
+    if path.exists():
+        return
+    path.parent.mkdir(parents=True, exist_ok=True)
+    rng = np.random.default_rng(seed)
+    beta = rng.normal(size=n_predictors)
+    names = [f"x{i}" for i in range(n_predictors)]
+    tmp = path.with_suffix(".tmp")
+    writer = None
+    step = 1_000_000
+    for start in range(0, n_rows, step):
+        m = min(step, n_rows - start)
+        x = rng.normal(loc=5.0, scale=2.0, size=(m, n_predictors))
+        y = 3.0 + x @ beta + rng.normal(size=m)
+        table = pa.table({"y": y, **{n: x[:, i] for i, n in enumerate(names)}})
+        if writer is None:
+            writer = pq.ParquetWriter(tmp, table.schema)
+        writer.write_table(table)
+    assert writer is not None
+    writer.close()
+    tmp.rename(path)
+
+
+def measure(script: str, *args: str) -> tuple[float, float]:
+    """Run `script` in a fresh interpreter; return (seconds, peak MiB)."""
+    done = subprocess.run(
+        [sys.executable, "-c", MEASURE, script, *args],
+        capture_output=True, text=True, check=False,
+        env={"OPENBLAS_NUM_THREADS": "1", **_environ()},
+    )
+    line = [s for s in done.stderr.splitlines() if s.startswith("MEASURE")]
+    if not line:
+        raise RuntimeError(done.stderr[-2000:])
+    _, seconds, peak, code = line[-1].split()
+    if code != "0":
+        raise RuntimeError(done.stderr[-2000:])
+    return float(seconds), float(peak)
+
+
+def _environ() -> dict[str, str]:
+    import os
+
+    return {k: v for k, v in os.environ.items() if k != "OPENBLAS_NUM_THREADS"}
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__)
+    parser.add_argument("--rows", type=int, default=20_000_000)
+    parser.add_argument("--predictors", default="8,30")
+    parser.add_argument("--memory-cap-gb", type=float, default=16.0)
+    args = parser.parse_args()
+    results = []
+    for p in (int(s) for s in args.predictors.split(",")):
+        path = DATA / f"bench_{args.rows}_{p}.parquet"
+        started = time.perf_counter()
+        make_file(path, args.rows, p)
+        print(f"file {path.name}: ready in {time.perf_counter() - started:.1f} s", flush=True)
+        names = ",".join(f"x{i}" for i in range(p))
+        floor = measure(FLOOR, str(path), "y," + names)
+        triage = measure(TRIAGE, str(path), names)
+        # pandas + statsmodels hold the frame, the design and QR copies: about 6 copies
+        estimate_gb = 6 * args.rows * (p + 1) * 8 / 2**30
+        memory = measure(IN_MEMORY, str(path), names) if estimate_gb < args.memory_cap_gb else None
+        row = {
+            "rows": args.rows, "predictors": p,
+            "floor_s": floor[0], "floor_mib": floor[1],
+            "triage_s": triage[0], "triage_mib": triage[1],
+            "triage_vs_floor": triage[0] / floor[0],
+            "in_memory_s": memory[0] if memory else None,
+            "in_memory_mib": memory[1] if memory else None,
+            "in_memory_vs_triage_time": memory[0] / triage[0] if memory else None,
+            "in_memory_vs_triage_memory": memory[1] / triage[1] if memory else None,
+        }
+        results.append(row)
+        print(json.dumps(row), flush=True)
+    print("\nrows        p  floor s  triage s  ratio  triage MiB  in-memory s  in-memory MiB")
+    for r in results:
+        mem_s = f"{r['in_memory_s']:11.1f}" if r["in_memory_s"] else "    skipped"
+        mem_m = f"{r['in_memory_mib']:13.0f}" if r["in_memory_mib"] else "      skipped"
+        print(
+            f"{r['rows']:<11,} {r['predictors']:>2} {r['floor_s']:8.2f} {r['triage_s']:9.2f}"
+            f" {r['triage_vs_floor']:6.2f} {r['triage_mib']:11.0f} {mem_s} {mem_m}"
+        )
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,377 @@
+"""Tests for triage.core.design: design matrices built from polars frames."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import polars as pl
+import pytest
+import statsmodels.formula.api as smf
+
+from triage.core.design import INTERCEPT, ROW_INDEX, DesignBuilder
+from triage.core.spec import ModelSpec, build_spec
+from triage.errors import DataError, SpecError
+
+
+def with_rows(frame: pl.DataFrame) -> pl.DataFrame:
+    return frame.with_row_index(ROW_INDEX)
+
+
+def make(
+    frame: pl.DataFrame, terms: str, *, sample: pl.DataFrame | None = None, **kwargs: object
+) -> tuple[ModelSpec, DesignBuilder]:
+    spec = build_spec(frame.schema, terms=terms, **kwargs)  # type: ignore[arg-type]
+    learned_on = frame if sample is None else sample
+    return spec, DesignBuilder.learn(spec, frame.schema, learned_on)
+
+
+@pytest.fixture
+def rng() -> np.random.Generator:
+    return np.random.default_rng(20261201)
+
+
+SMALL = with_rows(
+    pl.DataFrame(
+        {
+            "y": [1.0, 2.5, 2.0, 4.5, 6.0],
+            "a": [1.0, 2.0, 3.0, 4.0, 5.0],
+            "b": [0.5, 1.5, 0.0, 3.0, 8.0],
+            "k": [1, 4, 2, 3, 7],
+        }
+    )
+)
+
+
+def test_design_numeric_and_transforms_equal_hand_built_numpy() -> None:
+    _, builder = make(
+        SMALL,
+        "y ~ a + log(a) + log1p(b) + sqrt(b) + square(k) + pow(a, 3) + a:k + std(b)",
+        target=None,
+    )
+    batch = builder.build(SMALL)
+    a = np.array([1.0, 2.0, 3.0, 4.0, 5.0])
+    b = np.array([0.5, 1.5, 0.0, 3.0, 8.0])
+    k = np.array([1.0, 4.0, 2.0, 3.0, 7.0])
+    # oracle: the same columns written out with numpy (std uses ddof=1, as numpy's std(ddof=1))
+    expected = np.column_stack(
+        [
+            np.ones(5),
+            a,
+            np.log(a),
+            np.log1p(b),
+            np.sqrt(b),
+            k**2,
+            a**3,
+            a * k,
+            (b - b.mean()) / b.std(ddof=1),
+        ]
+    )
+    np.testing.assert_allclose(batch.x, expected, rtol=1e-15, atol=1e-15)
+    np.testing.assert_array_equal(batch.y, [1.0, 2.5, 2.0, 4.5, 6.0])
+    assert batch.weights is None
+    np.testing.assert_array_equal(batch.rows, np.arange(5))
+    assert batch.rows.dtype == np.int64
+    assert builder.column_names == (
+        INTERCEPT,
+        "a",
+        "log(a)",
+        "log1p(b)",
+        "sqrt(b)",
+        "square(k)",
+        "pow(a, 3)",
+        "a:k",
+        "std(b)",
+    )
+    assert builder.term_of_column == builder.column_names
+    assert builder.numeric_predictors == ("a", "b", "k")
+    assert builder.scaling["std(b)"] == pytest.approx((b.mean(), b.std(ddof=1)), rel=1e-15)
+
+
+def test_design_poly_columns_and_no_intercept() -> None:
+    _, builder = make(SMALL, "poly(a, 3), b", target="y", intercept=False)
+    batch = builder.build(SMALL)
+    a = SMALL["a"].to_numpy()
+    # oracle: numpy.vander gives raw powers; columns a, a^2, a^3
+    expected = np.column_stack([np.vander(a, 4, increasing=True)[:, 1:], SMALL["b"].to_numpy()])
+    np.testing.assert_array_equal(batch.x, expected)
+    assert builder.column_names == ("a", "a^2", "a^3", "b")
+    assert builder.term_of_column == ("poly(a, 3)", "poly(a, 3)", "poly(a, 3)", "b")
+
+
+def test_design_arrays_are_contiguous_float64() -> None:
+    _, builder = make(SMALL, "a, b, k", target="y", weights="b")
+    batch = builder.build(SMALL.filter(pl.col("b") > 0))
+    assert batch.x.dtype == np.float64
+    assert batch.x.flags.f_contiguous or batch.x.flags.c_contiguous
+    assert batch.y.flags.c_contiguous
+    assert batch.weights is not None
+    np.testing.assert_array_equal(batch.weights, [0.5, 1.5, 3.0, 8.0])
+    np.testing.assert_array_equal(batch.rows, [0, 1, 3, 4])
+
+
+def test_design_intercept_only_and_empty_batch() -> None:
+    _, builder = make(SMALL, "", target="y")
+    batch = builder.build(SMALL)
+    np.testing.assert_array_equal(batch.x, np.ones((5, 1)))
+    empty = builder.build(SMALL.head(0))
+    assert empty.x.shape == (0, 1)
+    assert empty.y.shape == (0,)
+    assert empty.n_dropped_missing == 0
+
+
+LEVELS = with_rows(
+    pl.DataFrame(
+        {
+            "y": [3.0, 1.0, 4.0, 1.5, 5.0, 9.0, 2.0, 6.0, 5.5],
+            "depot": ["north", "south", "east", "north", "south", "north", "east", "west", "east"],
+            "rush": [True, False, False, True, True, False, False, True, False],
+            "grade": [1, 2, 2, 3, 1, 2, 3, 3, 2],
+        }
+    )
+)
+
+
+@pytest.mark.parametrize(
+    ("column", "dtype"),
+    [
+        ("depot", pl.String),
+        ("depot", pl.Categorical),
+        ("depot", pl.Enum(["east", "north", "south", "west"])),
+        ("rush", pl.Boolean),
+    ],
+)
+def test_design_dummies_equal_pandas_get_dummies(column: str, dtype: pl.DataType) -> None:
+    frame = LEVELS.with_columns(pl.col(column).cast(dtype))
+    _, builder = make(frame, column, target="y")
+    batch = builder.build(frame)
+    reference = builder.reference_levels[column]
+    # oracle: pandas.get_dummies on the same values, reference column dropped
+    values = LEVELS[column].cast(pl.String).to_list()
+    dummies = pd.get_dummies(pd.Series(values), dtype=float).drop(columns=[reference])
+    np.testing.assert_array_equal(batch.x[:, 1:], dummies.to_numpy())
+    assert builder.column_names[1:] == tuple(f"{column}[{c}]" for c in dummies.columns)
+    assert set(builder.term_of_column[1:]) == {column}
+
+
+def test_design_reference_is_most_frequent_ties_sorted_or_chosen() -> None:
+    # north and east both appear 3 times: the tie goes to `east`, first in sorted order
+    _, builder = make(LEVELS, "depot, grade", target="y", categorical=("grade",))
+    assert builder.reference_levels == {"depot": "east", "grade": "2"}
+    assert builder.levels["depot"] == ("east", "north", "south", "west")
+    assert builder.column_names == (
+        INTERCEPT,
+        "depot[north]",
+        "depot[south]",
+        "depot[west]",
+        "grade[1]",
+        "grade[3]",
+    )
+    _, chosen = make(LEVELS, "depot", target="y", reference={"depot": "west"})
+    assert chosen.reference_levels == {"depot": "west"}
+    assert chosen.column_names[1:] == ("depot[east]", "depot[north]", "depot[south]")
+
+
+def test_design_matches_statsmodels_wls_with_categorical_interaction_and_weights(rng) -> None:
+    n = 60
+    depot = rng.choice(["north", "south", "east"], size=n)
+    distance = rng.uniform(1, 30, size=n)
+    stops = rng.integers(1, 9, size=n).astype(float)
+    weight = rng.uniform(0.5, 20, size=n)
+    w = rng.uniform(0.2, 3, size=n)
+    shift = {"north": 0.0, "south": 4.0, "east": -2.0}
+    minutes = (
+        5
+        + 1.7 * distance
+        + np.array([shift[d] for d in depot])
+        + 0.3 * stops * np.log(weight)
+        + rng.normal(0, 2, size=n)
+    )
+    data = {
+        "minutes": minutes,
+        "distance_km": distance,
+        "depot": depot,
+        "stops": stops,
+        "weight_kg": weight,
+        "w": w,
+    }
+    frame = with_rows(pl.DataFrame(data))
+    _, builder = make(
+        frame,
+        "minutes ~ distance_km + depot + stops:log(weight_kg)",
+        target=None,
+        weights="w",
+        reference={"depot": "north"},
+    )
+    batch = builder.build(frame)
+    assert batch.weights is not None
+    root_w = np.sqrt(batch.weights)
+    coef = np.linalg.lstsq(batch.x * root_w[:, None], batch.y * root_w, rcond=None)[0]
+    # oracle: statsmodels formula WLS with treatment coding against the same reference
+    model = smf.wls(
+        "minutes ~ distance_km + C(depot, Treatment('north')) + stops:np.log(weight_kg)",
+        data=pd.DataFrame(data),
+        weights=w,
+    ).fit()
+    expected = model.params.to_numpy()
+    # statsmodels orders: intercept, depot dummies (sorted), distance_km, interaction
+    ours = dict(zip(builder.column_names, coef, strict=True))
+    reordered = [
+        ours[INTERCEPT],
+        ours["depot[east]"],
+        ours["depot[south]"],
+        ours["distance_km"],
+        ours["stops:log(weight_kg)"],
+    ]
+    np.testing.assert_allclose(reordered, expected, rtol=1e-8)
+
+    # oracle: statsmodels OLS for the unweighted model on the same design
+    _, unweighted = make(
+        frame,
+        "minutes ~ distance_km + depot + stops:log(weight_kg)",
+        target=None,
+        reference={"depot": "north"},
+    )
+    plain = unweighted.build(frame)
+    ols_coef = np.linalg.lstsq(plain.x, plain.y, rcond=None)[0]
+    ols = smf.ols(
+        "minutes ~ distance_km + C(depot, Treatment('north')) + stops:np.log(weight_kg)",
+        data=pd.DataFrame(data),
+    ).fit()
+    np.testing.assert_allclose(ols_coef[[0, 2, 3, 1, 4]], ols.params.to_numpy(), rtol=1e-8)
+
+
+def test_design_drops_and_counts_missing_values() -> None:
+    frame = with_rows(
+        pl.DataFrame(
+            {
+                "y": [1.0, 2.0, None, 4.0, 5.0, 6.0, 7.0, 8.0],
+                "x": [1.0, float("nan"), 3.0, float("inf"), -float("inf"), 6.0, 7.0, 8.0],
+                "k": [1, 2, 3, 4, 5, None, 7, 8],
+                "g": ["a", "b", "a", "b", "a", "b", None, "a"],
+            }
+        )
+    )
+    _, builder = make(frame, "x, k, g", target="y", sample=frame.slice(0, 1).vstack(frame[7:]))
+    batch = builder.build(frame)
+    # rows 1 (NaN), 2 (null y), 3 (+inf), 4 (-inf), 5 (null k), 6 (null level) are missing
+    assert batch.n_dropped_missing == 6
+    assert batch.n_dropped_unseen_level == 0
+    assert batch.n_dropped_domain == 0
+    np.testing.assert_array_equal(batch.rows, [0, 7])
+    assert batch.frame[ROW_INDEX].to_list() == [0, 7]
+    assert batch.frame.columns == frame.columns
+
+
+def test_design_levels_learned_only_from_usable_rows_and_unseen_levels_dropped() -> None:
+    sample = with_rows(pl.DataFrame({"y": [1.0, 2.0, 3.0, None], "g": ["a", "b", "a", "c"]}))
+    _, builder = make(sample, "g", target="y")
+    # `c` only appears where the target is missing, so it is not a level
+    assert builder.levels["g"] == ("a", "b")
+    batch_frame = with_rows(pl.DataFrame({"y": [1.0, 2.0, 3.0, 4.0], "g": ["c", "b", "d", "a"]}))
+    batch = builder.build(batch_frame)
+    assert batch.n_dropped_unseen_level == 2
+    np.testing.assert_array_equal(batch.rows, [1, 3])
+    np.testing.assert_array_equal(batch.x, [[1.0, 1.0], [1.0, 0.0]])
+
+
+@pytest.mark.parametrize(
+    ("term", "values", "pattern"),
+    [
+        ("log(x)", [1.0, 0.0, -2.0, 3.0], r"log of a value <= 0 in `log\(x\)` for 2 rows"),
+        ("sqrt(x)", [1.0, -0.5, 2.0, 3.0], r"sqrt of a negative value in `sqrt\(x\)` for 1 rows"),
+        ("log1p(x)", [-1.0, -3.0, 2.0, 3.0], r"log1p of a value <= -1 in `log1p\(x\)` for 2 rows"),
+        ("x:log(z)", [1.0, 2.0, 3.0, 4.0], r"log of a value <= 0 in `log\(z\)` for 1 rows"),
+    ],
+)
+def test_design_domain_errors_and_drop_invalid(
+    term: str, values: list[float], pattern: str
+) -> None:
+    frame = with_rows(
+        pl.DataFrame({"y": [1.0, 2.0, 3.0, 4.0], "x": values, "z": [1.0, 2.0, 0.0, 3.0]})
+    )
+    good = frame.filter(pl.col("x") > 0, pl.col("z") > 0)
+    _, strict = make(frame, term, target="y", sample=good)
+    with pytest.raises(DataError, match=pattern + " in this batch; filter them with `--where`"):
+        strict.build(frame)
+    with pytest.raises(DataError, match="pass `--drop-invalid` to leave those rows out"):
+        strict.build(frame)
+    _, lenient = make(frame, term, target="y", sample=good, drop_invalid=True)
+    batch = lenient.build(frame)
+    n_bad = int(pattern.split(" for ")[1].split(" ")[0])
+    assert batch.n_dropped_domain == n_bad
+    assert batch.n_rows == 4 - n_bad
+    assert np.isfinite(batch.x).all()
+
+
+def test_design_missing_counts_before_domain() -> None:
+    frame = with_rows(pl.DataFrame({"y": [None, 2.0, 3.0], "x": [-1.0, -1.0, 2.0]}))
+    _, builder = make(frame, "log(x), sqrt(x)", target="y", drop_invalid=True)
+    batch = builder.build(frame)
+    # row 0 is missing (counted once), row 1 fails two domain checks (counted once)
+    assert (batch.n_dropped_missing, batch.n_dropped_domain) == (1, 1)
+    np.testing.assert_array_equal(batch.rows, [2])
+
+
+def test_design_nonpositive_weights() -> None:
+    frame = with_rows(
+        pl.DataFrame(
+            {"y": [1.0, 2.0, 3.0, 4.0], "x": [1.0, 2.0, 4.0, 3.0], "w": [1.0, 0.0, -2.0, 2.0]}
+        )
+    )
+    _, strict = make(frame, "x", target="y", weights="w")
+    with pytest.raises(DataError, match=r"weight <= 0 in the weights column `w` for 2 rows"):
+        strict.build(frame)
+    _, lenient = make(frame, "x", target="y", weights="w", drop_invalid=True)
+    batch = lenient.build(frame)
+    assert batch.n_dropped_domain == 2
+    assert batch.weights is not None
+    np.testing.assert_array_equal(batch.weights, [1.0, 2.0])
+
+
+def test_design_overflow_is_a_domain_problem() -> None:
+    frame = with_rows(pl.DataFrame({"y": [1.0, 2.0, 3.0], "x": [1.0, 1e200, 2.0]}))
+    _, strict = make(frame, "square(x)", target="y")
+    with pytest.raises(DataError, match=r"too large for float64 in `square\(x\)` for 1 rows"):
+        strict.build(frame)
+    _, lenient = make(frame, "square(x)", target="y", drop_invalid=True)
+    batch = lenient.build(frame)
+    assert batch.n_dropped_domain == 1
+    np.testing.assert_array_equal(batch.rows, [0, 2])
+    np.testing.assert_array_equal(batch.x[:, 1], [1.0, 4.0])
+    assert batch.frame.height == 2
+
+
+def test_design_max_levels() -> None:
+    frame = with_rows(
+        pl.DataFrame({"y": np.arange(12, dtype=float), "g": [f"l{i % 6}" for i in range(12)]})
+    )
+    with pytest.raises(
+        SpecError,
+        match=r"categorical column `g` has 6 levels in the sample, more than the limit of 5; "
+        r"raise the limit with `--max-levels` or filter the rows with `--where`",
+    ):
+        make(frame, "g", target="y", max_levels=5)
+    _, builder = make(frame, "g", target="y", max_levels=6)
+    assert len(builder.column_names) == 6
+
+
+def test_design_learn_errors() -> None:
+    frame = with_rows(
+        pl.DataFrame(
+            {
+                "y": [1.0, 2.0, 3.0],
+                "g": ["a", "a", "a"],
+                "h": ["p", "q", "p"],
+                "c": [2.0, 2.0, 2.0],
+                "x": [1.0, 2.0, 3.0],
+            }
+        )
+    )
+    with pytest.raises(DataError, match=r"categorical term `g` has only the level `a`"):
+        make(frame, "g", target="y")
+    with pytest.raises(SpecError, match=r"reference level `r` for `h` is not among its levels"):
+        make(frame, "h", target="y", reference={"h": "r"})
+    with pytest.raises(DataError, match=r"`std\(c\)` cannot be standardised"):
+        make(frame, "std(c)", target="y")
+    with pytest.raises(SpecError, match=r"two design columns are both named `x`"):
+        make(frame, "x, poly(x, 2)", target="y")

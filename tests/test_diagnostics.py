@@ -1,0 +1,511 @@
+"""Pass-2 diagnostics against statsmodels, scipy, numpy and polars as oracles.
+
+Data are invented here (small, seeded). Oracles are named beside each check. For weighted fits
+the reference is statsmodels given the WLS results (``res.wresid``, ``res.model.exog``), or the
+whitened OLS regression of ``√w·y`` on ``√w·X`` where statsmodels' influence tools take the
+unweighted residuals (see the module docstring of triage.core.diagnostics).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import polars as pl
+import pytest
+import statsmodels.api as sm
+from scipy import stats
+from statsmodels.stats.diagnostic import het_breuschpagan, linear_reset
+from statsmodels.stats.outliers_influence import OLSInfluence
+from statsmodels.stats.stattools import durbin_watson, jarque_bera
+
+from triage._typing import CRITERIA
+from triage.core.binning import quantile_edges
+from triage.core.design import DesignBatch
+from triage.core.diagnostics import (
+    Diagnostics,
+    DiagnosticsAccumulator,
+    DiagnosticsConfig,
+    default_config,
+    row_diagnostics,
+)
+from triage.core.lsq import LinearFit, QRAccumulator
+from triage.core.moments import StreamMoments
+from triage.core.worst_rows import TopRows
+from triage.errors import SpecError
+
+NAMES = ("intercept", "a", "b", "a:b")
+RTOL = 1e-8
+
+
+# --------------------------------------------------------------------------- helpers
+
+
+def make_data(rng: np.random.Generator, n: int = 240) -> dict[str, np.ndarray]:
+    """Invented data with curvature, spread growing with `a`, a biased group and a few outliers."""
+    a = rng.uniform(0.0, 4.0, n)
+    b = rng.normal(10.0, 2.0, n)
+    g = rng.choice(np.array(["north", "south", "east", "west", "hub"]), n)
+    u = rng.uniform(0.0, 100.0, n)
+    noise = rng.normal(0.0, 0.5 + 0.4 * a, n)
+    y = 3.0 + 1.5 * a - 0.7 * b + 0.2 * a * b + 0.3 * a**2 + noise + 0.8 * (g == "hub")
+    y[[17, 101]] += 9.0
+    w = rng.uniform(0.5, 2.0, n)
+    return {"a": a, "b": b, "g": g, "u": u, "y": y, "w": w}
+
+
+def design(data: dict[str, np.ndarray]) -> np.ndarray:
+    a, b = data["a"], data["b"]
+    return np.column_stack([np.ones(a.size), a, b, a * b])
+
+
+def fit_of(x: np.ndarray, y: np.ndarray, w: np.ndarray | None) -> LinearFit:
+    acc = QRAccumulator(x.shape[1], has_intercept=True)
+    acc.update(x, y, w)
+    return acc.finalize(NAMES)
+
+
+def batch_of(
+    data: dict[str, np.ndarray], x: np.ndarray, w: np.ndarray | None, lo: int, hi: int
+) -> DesignBatch:
+    rows = np.arange(lo, hi, dtype=np.int64)
+    frame = pl.DataFrame(
+        {
+            "a": data["a"][lo:hi],
+            "b": data["b"][lo:hi],
+            "g": data["g"][lo:hi],
+            "u": data["u"][lo:hi],
+            "__row": rows,
+        }
+    )
+    return DesignBatch(
+        x=x[lo:hi],
+        y=data["y"][lo:hi],
+        weights=None if w is None else w[lo:hi],
+        rows=rows,
+        frame=frame,
+        n_dropped_missing=0,
+        n_dropped_domain=0,
+        n_dropped_unseen_level=0,
+    )
+
+
+def config_for(
+    fit: LinearFit, data: dict[str, np.ndarray], x: np.ndarray, **kw
+) -> DiagnosticsConfig:
+    sample = slice(0, 150)  # a sample stands in for what pass 1 would have kept in memory
+    return default_config(
+        fit,
+        fit.predict(x[sample]),
+        {"a": data["a"][sample], "b": data["b"][sample]},
+        ("g", "u"),
+        {"g": pl.Series(data["g"][sample]), "u": pl.Series(data["u"][sample])},
+        **kw,
+    )
+
+
+def run(
+    fit: LinearFit, config: DiagnosticsConfig, batches: list[DesignBatch]
+) -> DiagnosticsAccumulator:
+    acc = DiagnosticsAccumulator(fit, config)
+    for batch in batches:
+        acc.update(batch)
+    return acc
+
+
+def cuts(n: int, pieces: int, rng: np.random.Generator) -> list[tuple[int, int]]:
+    inner = np.sort(rng.choice(np.arange(1, n), pieces - 1, replace=False))
+    bounds = [0, *inner.tolist(), n]
+    return list(zip(bounds[:-1], bounds[1:], strict=True))
+
+
+@pytest.fixture
+def rng() -> np.random.Generator:
+    return np.random.default_rng(20260117)
+
+
+@pytest.fixture(params=[False, True], ids=["ols", "wls"])
+def case(request: pytest.FixtureRequest, rng: np.random.Generator):
+    data = make_data(rng)
+    x = design(data)
+    w = data["w"] if request.param else None
+    fit = fit_of(x, data["y"], w)
+    if w is None:
+        res = sm.OLS(data["y"], x).fit()
+    else:
+        res = sm.WLS(data["y"], x, weights=w).fit()
+    return data, x, w, fit, res
+
+
+# --------------------------------------------------------------------------- per-row values
+
+
+def test_row_diagnostics_match_statsmodels_influence(case) -> None:
+    data, x, w, fit, res = case
+    rd = row_diagnostics(fit, batch_of(data, x, w, 0, x.shape[0]))
+    # statsmodels OLSInfluence; for WLS on the whitened regression sqrt(w)*y on sqrt(w)*X,
+    # since OLSInfluence of WLS results mixes raw residuals with whitened hat values.
+    sw = np.ones_like(data["y"]) if w is None else np.sqrt(w)
+    infl = OLSInfluence(sm.OLS(sw * data["y"], sw[:, None] * x).fit())
+    np.testing.assert_allclose(rd.fitted, res.fittedvalues, rtol=RTOL)  # statsmodels
+    np.testing.assert_allclose(rd.resid, res.resid, rtol=RTOL, atol=1e-12)  # statsmodels
+    np.testing.assert_allclose(rd.weighted_resid, res.wresid, rtol=RTOL, atol=1e-12)
+    np.testing.assert_allclose(rd.leverage, infl.hat_matrix_diag, rtol=RTOL)
+    np.testing.assert_allclose(rd.student_internal, infl.resid_studentized_internal, rtol=RTOL)
+    np.testing.assert_allclose(rd.studentized, infl.resid_studentized_external, rtol=RTOL)
+    np.testing.assert_allclose(rd.cooks, infl.cooks_distance[0], rtol=RTOL)
+
+
+def test_row_diagnostics_leverage_one_and_no_residual_df_give_nan() -> None:
+    # A dummy with a single row forces h = 1 for that row (exact algebra, no oracle needed:
+    # the row's own coefficient fits it exactly); statsmodels would divide by zero there.
+    rng = np.random.default_rng(5)
+    n = 30
+    a = rng.normal(size=n)
+    lone = np.zeros(n)
+    lone[7] = 1.0
+    x = np.column_stack([np.ones(n), a, lone])
+    y = 1.0 + a + rng.normal(size=n)
+    fit = QRAccumulator(3, has_intercept=True)
+    fit.update(x, y)
+    lin = fit.finalize(("intercept", "a", "lone"))
+    frame = pl.DataFrame({"__row": np.arange(n)})
+    batch = DesignBatch(x, y, None, np.arange(n, dtype=np.int64), frame, 0, 0, 0)
+    rd = row_diagnostics(lin, batch)
+    assert rd.leverage[7] == pytest.approx(1.0, abs=1e-12)
+    for values in (rd.student_internal, rd.studentized, rd.cooks):
+        assert math.isnan(values[7])
+        assert np.all(np.isfinite(np.delete(values, 7)))
+    # The dummy absorbs row 7 entirely, so on the other rows the fit (RSS, residual df, hat
+    # values) is that of the model without row 7 and without the dummy: statsmodels as oracle.
+    keep = np.arange(n) != 7
+    infl = OLSInfluence(sm.OLS(y[keep], x[keep][:, :2]).fit())
+    np.testing.assert_allclose(rd.studentized[keep], infl.resid_studentized_external, rtol=RTOL)
+    np.testing.assert_allclose(rd.cooks[keep] * 3 / 2, infl.cooks_distance[0], rtol=RTOL)
+
+    # As many rows as coefficients: no residual df, so studentized values are NaN.
+    x3 = np.array([[1.0, 0.0, 0.0], [1.0, 1.0, 0.0], [1.0, 0.0, 1.0]])
+    exact = QRAccumulator(3, has_intercept=True)
+    exact.update(x3, y[:3])
+    lin3 = exact.finalize(("intercept", "a", "lone"))
+    batch3 = DesignBatch(x3, y[:3], None, np.arange(3, dtype=np.int64), frame[:3], 0, 0, 0)
+    rd3 = row_diagnostics(lin3, batch3)
+    assert lin3.df_resid == 0
+    assert np.all(np.isnan(rd3.studentized)) and np.all(np.isnan(rd3.cooks))
+
+
+# --------------------------------------------------------------------------- tests, HC, histogram
+
+
+def test_diagnostics_tests_and_robust_se_match_statsmodels(case) -> None:
+    data, x, w, fit, res = case
+    config = config_for(fit, data, x)
+    diag = run(fit, config, [batch_of(data, x, w, lo, hi) for lo, hi in [(0, 90), (90, 240)]])
+    diag = diag.finalize()
+
+    # statsmodels het_breuschpagan, robust=True is Koenker's studentized LM.
+    lm, lm_p, _, _ = het_breuschpagan(res.wresid, res.model.exog, robust=True)
+    bp = diag.tests["breusch_pagan"]
+    assert bp.statistic == pytest.approx(lm, rel=RTOL)
+    assert bp.p_value == pytest.approx(lm_p, rel=1e-6)
+    assert bp.df == (3.0,)
+
+    # RESET with fitted^2, fitted^3, F form. statsmodels' linear_reset refits without weights,
+    # so for WLS the oracle is the same Wald F on a WLS refit with the weights.
+    if w is None:
+        ref = linear_reset(res, power=3, test_type="fitted", use_f=True)
+    else:
+        aug = np.column_stack([x, res.fittedvalues**2, res.fittedvalues**3])
+        ref = (
+            sm.WLS(data["y"], aug, weights=w)
+            .fit()
+            .wald_test(np.eye(2, 6, k=4), use_f=True, scalar=True)
+        )
+    reset = diag.tests["reset"]
+    assert reset.statistic == pytest.approx(float(ref.fvalue), rel=1e-7)
+    assert reset.p_value == pytest.approx(float(ref.pvalue), rel=1e-5)
+    assert reset.df == (2.0, float(ref.df_denom))
+
+    # statsmodels jarque_bera and durbin_watson on the weighted residuals.
+    jb, jb_p, skew, kurt = jarque_bera(res.wresid)
+    assert diag.tests["jarque_bera"].statistic == pytest.approx(jb, rel=RTOL)
+    assert diag.tests["jarque_bera"].p_value == pytest.approx(jb_p, rel=1e-6)
+    assert diag.resid_skewness == pytest.approx(skew, rel=RTOL)
+    assert diag.resid_kurtosis == pytest.approx(kurt, rel=RTOL)
+    assert diag.tests["durbin_watson"].statistic == pytest.approx(
+        durbin_watson(res.wresid), rel=RTOL
+    )
+
+    # statsmodels HC0_se .. HC3_se (WLS results use the whitened design and residuals).
+    for kind in ("hc0", "hc1", "hc2", "hc3"):
+        ours = [getattr(diag.robust_se[name], kind) for name in NAMES]
+        np.testing.assert_allclose(ours, getattr(res, kind.upper() + "_se"), rtol=RTOL)
+
+
+def test_diagnostics_histogram_and_quantiles_match_numpy(case) -> None:
+    data, x, w, fit, res = case
+    config = config_for(fit, data, x)
+    diag = run(fit, config, [batch_of(data, x, w, 0, 240)]).finalize()
+    e = np.asarray(res.wresid)
+    edges = config.hist_edges
+    counts, _ = np.histogram(e, bins=edges)  # numpy.histogram: same half-open bins
+    np.testing.assert_array_equal(diag.histogram.counts, counts)
+    assert diag.histogram.below == int(np.sum(e < edges[0]))
+    assert diag.histogram.above == int(np.sum(e > edges[-1]))
+    assert diag.histogram.minimum == pytest.approx(e.min(), rel=RTOL)
+    assert diag.histogram.maximum == pytest.approx(e.max(), rel=RTOL)
+    width = config.fine_edges[1] - config.fine_edges[0]
+    for prob, value in diag.histogram.quantiles.items():
+        assert abs(value - np.quantile(e, prob)) <= width  # numpy.quantile, one fine bin
+
+
+def test_diagnostics_binned_quantiles_within_one_fine_bin(case) -> None:
+    data, x, w, fit, res = case
+    config = config_for(fit, data, x)
+    diag = run(fit, config, [batch_of(data, x, w, lo, hi) for lo, hi in [(0, 77), (77, 240)]])
+    diag = diag.finalize()
+    e = np.asarray(res.wresid)
+    width = config.fine_edges[1] - config.fine_edges[0]
+    values = {"fitted": np.asarray(res.fittedvalues), "a": data["a"], "b": data["b"]}
+    assert set(diag.binned) == set(values)
+    for name, bins in diag.binned.items():
+        v = values[name]
+        assert sum(b.n for b in bins) == v.size
+        for k, b in enumerate(bins):
+            inside = (v >= b.lo) & (v < b.hi) if k < len(bins) - 1 else (v >= b.lo) & (v <= b.hi)
+            assert b.n == int(inside.sum())
+            if b.n == 0:
+                continue
+            assert b.mean_resid == pytest.approx(e[inside].mean(), rel=1e-9, abs=1e-12)
+            for q, got in zip((0.1, 0.5, 0.9), (b.q10, b.q50, b.q90), strict=True):
+                assert abs(got - np.quantile(e[inside], q)) <= width  # numpy.quantile
+
+
+# --------------------------------------------------------------------------- streaming and merging
+
+
+def assert_same(one: Diagnostics, other: Diagnostics) -> None:
+    assert one.n == other.n
+    np.testing.assert_array_equal(one.histogram.counts, other.histogram.counts)
+    assert (one.histogram.below, one.histogram.above) == (
+        other.histogram.below,
+        other.histogram.above,
+    )
+    assert one.histogram.quantiles == pytest.approx(other.histogram.quantiles, rel=1e-12)
+    for name, bins in one.binned.items():
+        assert [b.n for b in bins] == [b.n for b in other.binned[name]]
+        assert [b.q50 for b in bins] == pytest.approx(
+            [b.q50 for b in other.binned[name]], rel=1e-12
+        )
+        np.testing.assert_allclose(
+            [b.mean_resid for b in bins], [b.mean_resid for b in other.binned[name]], rtol=1e-9
+        )
+    for criterion in CRITERIA:
+        assert [r.row for r in one.worst[criterion]] == [r.row for r in other.worst[criterion]]
+    for col, levels in one.segments.items():
+        assert [lv.level for lv in levels] == [lv.level for lv in other.segments[col]]
+        np.testing.assert_allclose(
+            [lv.t for lv in levels], [lv.t for lv in other.segments[col]], rtol=1e-9
+        )
+    for key, test in one.tests.items():
+        assert test.statistic == pytest.approx(other.tests[key].statistic, rel=1e-9)
+    for name, se in one.robust_se.items():
+        assert se.hc3 == pytest.approx(other.robust_se[name].hc3, rel=1e-9)
+    assert one.counts == other.counts
+    assert [f.code for f in one.flags] == [f.code for f in other.flags]
+
+
+def test_diagnostics_streamed_and_merged_equal_one_batch(case, rng) -> None:
+    data, x, w, fit, _ = case
+    n = x.shape[0]
+    config = config_for(fit, data, x, top_k=7)
+    whole = run(fit, config, [batch_of(data, x, w, 0, n)]).finalize()
+    pieces = [batch_of(data, x, w, lo, hi) for lo, hi in cuts(n, 9, rng)]
+    streamed = run(fit, config, pieces).finalize()
+    first = run(fit, config, pieces[:4])
+    second = run(fit, config, pieces[4:])
+    merged = first.merge(second).finalize()
+    # Oracle: the one-batch pass (itself checked against statsmodels above).
+    assert_same(whole, streamed)
+    assert_same(whole, merged)
+
+
+def test_diagnostics_merge_rejects_another_fit(case) -> None:
+    data, x, w, fit, _ = case
+    other_fit = fit_of(x[:100], data["y"][:100], None if w is None else w[:100])
+    config = config_for(fit, data, x)
+    with pytest.raises(SpecError, match="different fit"):
+        DiagnosticsAccumulator(fit, config).merge(DiagnosticsAccumulator(other_fit, config))
+
+
+# --------------------------------------------------------------------------- worst rows
+
+
+def test_top_rows_equal_full_sort_with_ties() -> None:
+    rng = np.random.default_rng(11)
+    scores = rng.integers(0, 6, 500).astype(float)  # many ties
+    scores[[3, 250, 499]] = np.nan
+    rows = np.arange(500, dtype=np.int64)
+    top = TopRows(25, ("v",))
+    for lo, hi in [(0, 40), (40, 41), (41, 300), (300, 500)]:
+        top.update(scores[lo:hi], rows[lo:hi], {"v": -scores[lo:hi]})
+    ok = ~np.isnan(scores)
+    # numpy lexsort as oracle: score descending, row ascending
+    order = np.lexsort((rows[ok], -scores[ok]))[:25]
+    np.testing.assert_array_equal(top.rows, rows[ok][order])
+    np.testing.assert_array_equal(top.payload["v"], -scores[ok][order])
+
+
+def test_diagnostics_worst_rows_equal_full_sort(rng) -> None:
+    data = make_data(rng)
+    n = data["y"].size
+    # Duplicate rows give exact ties; the worst rows are planted in the last batch.
+    for col in ("a", "b", "g", "u", "y", "w"):
+        data[col][200:220] = data[col][180:200]
+    data["a"][-1] = 12.0
+    data["y"][-2] += 30.0
+    x = design(data)
+    fit = fit_of(x, data["y"], None)
+    config = config_for(fit, data, x, top_k=10)
+    batches = [batch_of(data, x, None, lo, hi) for lo, hi in [(0, 60), (60, 190), (190, n)]]
+    diag = run(fit, config, batches).finalize()
+    rds = [row_diagnostics(fit, b) for b in batches]
+    values = {
+        field: np.concatenate([getattr(rd, field) for rd in rds])
+        for field in ("rows", "weighted_resid", "studentized", "leverage", "cooks")
+    }
+    scores = {
+        "abs_resid": np.abs(values["weighted_resid"]),
+        "studentized": np.abs(values["studentized"]),
+        "leverage": values["leverage"],
+        "cooks": values["cooks"],
+    }
+    for criterion in CRITERIA:
+        s = scores[criterion]
+        order = np.lexsort((values["rows"], -s))[:10]  # numpy lexsort as oracle
+        assert [r.row for r in diag.worst[criterion]] == values["rows"][order].tolist()
+    assert diag.worst["leverage"][0].row == n - 1
+    assert diag.worst["abs_resid"][0].row == n - 2
+
+
+# --------------------------------------------------------------------------- segments
+
+
+def segment_oracle(labels: pl.Series, e: np.ndarray) -> dict[str, tuple[int, float, float]]:
+    """polars group_by: level -> (n, mean, t)."""
+    out = (
+        pl.DataFrame({"level": labels, "e": e})
+        .group_by("level")
+        .agg(pl.len().alias("n"), pl.col("e").mean().alias("m"), pl.col("e").std().alias("sd"))
+    )
+    return {
+        r["level"]: (r["n"], r["m"], r["m"] / (r["sd"] / math.sqrt(r["n"])))
+        for r in out.iter_rows(named=True)
+    }
+
+
+def test_diagnostics_segments_match_polars_group_by(case) -> None:
+    data, x, w, fit, res = case
+    config = config_for(fit, data, x)
+    batches = [batch_of(data, x, w, lo, hi) for lo, hi in [(0, 33), (33, 200), (200, 240)]]
+    diag = run(fit, config, batches).finalize()
+    e = np.asarray(res.wresid)
+    oracle = segment_oracle(pl.Series(data["g"]), e)
+    got = {lv.level: lv for lv in diag.segments["g"]}
+    assert set(got) == set(oracle)
+    for level, (n, mean, t) in oracle.items():
+        assert got[level].n == n
+        assert got[level].mean_resid == pytest.approx(mean, rel=1e-9)
+        assert got[level].t == pytest.approx(t, rel=1e-9)
+        assert got[level].rmse == pytest.approx(
+            math.sqrt(np.mean(e[data["g"] == level] ** 2)), rel=1e-9
+        )
+    ts = [abs(lv.t) for lv in diag.segments["g"]]
+    assert ts == sorted(ts, reverse=True)
+
+    # Numeric segment: polars cut with the same breaks, left-closed, as the oracle.
+    breaks = config.segment_cuts["u"].tolist()
+    binned = pl.Series(data["u"]).cut(breaks, left_closed=True).to_physical()
+    oracle_u = segment_oracle(binned, e)
+    got_u = sorted(diag.segments["u"], key=lambda lv: lv.n)
+    assert sorted(v[0] for v in oracle_u.values()) == [lv.n for lv in got_u]
+    assert sorted(abs(v[2]) for v in oracle_u.values()) == pytest.approx(
+        sorted(abs(lv.t) for lv in diag.segments["u"]), rel=1e-9
+    )
+
+
+def test_diagnostics_segments_pool_levels_past_the_cap(case) -> None:
+    data, x, w, fit, res = case
+    config = config_for(fit, data, x, max_segment_levels=3)
+    batches = [batch_of(data, x, w, lo, hi) for lo, hi in [(0, 120), (120, 240)]]
+    diag = run(fit, config, batches).finalize()
+    seen = list(dict.fromkeys(data["g"].tolist()))  # order of first appearance
+    kept = seen[:3]
+    labels = pl.Series([g if g in kept else "(other)" for g in data["g"]])
+    oracle = segment_oracle(labels, np.asarray(res.wresid))  # polars group_by
+    got = {lv.level: lv for lv in diag.segments["g"]}
+    assert set(got) == set(oracle)
+    for level, (n, mean, _) in oracle.items():
+        assert got[level].n == n
+        assert got[level].mean_resid == pytest.approx(mean, rel=1e-9)
+    assert diag.segments_capped == ("g",)
+
+
+# --------------------------------------------------------------------------- flags and config
+
+
+def test_diagnostics_flags_follow_the_tests(case) -> None:
+    data, x, w, fit, res = case
+    config = config_for(fit, data, x)
+    diag = run(fit, config, [batch_of(data, x, w, 0, 240)]).finalize()
+    codes = {f.code for f in diag.flags}
+    # statsmodels as oracle for the p-values that decide the flags.
+    bp_p = het_breuschpagan(res.wresid, res.model.exog, robust=True)[1]
+    jb_p = jarque_bera(res.wresid)[1]
+    assert ("spread-changes" in codes) == (bp_p < 0.01)
+    assert ("tails" in codes) == (jb_p < 0.01)
+    sw = np.ones_like(data["y"]) if w is None else np.sqrt(w)
+    infl_ext = OLSInfluence(
+        sm.OLS(sw * data["y"], sw[:, None] * x).fit()
+    ).resid_studentized_external
+    n_big = int(np.sum(np.abs(infl_ext) > 3.0))  # common practice threshold
+    assert diag.counts.studentized == n_big
+    assert ("large-studentized" in codes) == (n_big > 0)
+    assert "serial-correlation" not in codes  # rows not declared ordered
+    for flag in diag.flags:
+        assert flag.message and ("may" in flag.message)
+
+
+def test_default_config_edges_follow_sample_quantiles(rng) -> None:
+    data = make_data(rng)
+    x = design(data)
+    fit = fit_of(x, data["y"], None)
+    config = config_for(fit, data, x)
+    sample_a = data["a"][:150]
+    # numpy.quantile as oracle for the bin edges
+    np.testing.assert_allclose(
+        config.binned_edges["a"], np.quantile(sample_a, np.linspace(0, 1, 21))
+    )
+    assert config.hist_edges[-1] == pytest.approx(4.0 * fit.resid_sd)
+    assert "g" not in config.segment_cuts  # text column: level by level
+    assert config.segment_cuts["u"].size == 9  # numeric: ten bins, nine interior cuts
+    # a 0/1 column gets one bin per value
+    np.testing.assert_array_equal(
+        quantile_edges(np.array([0, 1, 1, 0, 1.0]), 20, name="d"), [0, 0.5, 1]
+    )
+    with pytest.raises(SpecError, match="segment column `zone`"):
+        default_config(fit, fit.predict(x), {}, ("zone",), {})
+
+
+def test_stream_moments_merge_matches_scipy() -> None:
+    rng = np.random.default_rng(3)
+    v = 1e6 + rng.gamma(2.0, 3.0, 1000)  # skewed, with a large offset
+    acc = StreamMoments()
+    for lo, hi in [(0, 1), (1, 10), (10, 600), (600, 1000)]:
+        part = StreamMoments()
+        part.update(v[lo:hi])
+        acc.merge(part)
+    # scipy.stats.skew / kurtosis (biased, Pearson) as oracle
+    assert acc.skewness() == pytest.approx(stats.skew(v), rel=1e-9)
+    assert acc.kurtosis() == pytest.approx(stats.kurtosis(v, fisher=True) + 3.0, rel=1e-9)
+    assert acc.mean == pytest.approx(v.mean(), rel=1e-15)

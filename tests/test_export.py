@@ -1,0 +1,155 @@
+"""Tests of triage.data.export; polars reading the written file back is the oracle."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import numpy as np
+import polars as pl
+import pytest
+from polars.testing import assert_frame_equal
+
+from triage.data.export import PERSONAL_DATA_NOTICE, StreamingExport, write_frame
+from triage.errors import ExportError
+
+
+def _frame(n: int, start: int = 0) -> pl.DataFrame:
+    rng = np.random.default_rng(start)
+    return pl.DataFrame(
+        {
+            "__row": np.arange(start, start + n, dtype=np.int64),
+            "resid": rng.normal(size=n),
+            "name": pl.Series([f'row, {i} "q"' for i in range(start, start + n)], dtype=pl.String),
+        }
+    )
+
+
+def _leftovers(folder: Path) -> list[str]:
+    return sorted(p.name for p in folder.iterdir() if p.name.startswith("."))
+
+
+@pytest.mark.parametrize("name", ["out.parquet", "out.pq", "out.csv", "out.tsv"])
+def test_export_write_frame_round_trip(tmp_path: Path, name: str) -> None:
+    frame = _frame(50)
+    path = write_frame(frame, tmp_path / name)
+    assert path == tmp_path / name
+    if name.endswith(("parquet", "pq")):
+        back = pl.read_parquet(path)
+    else:
+        back = pl.read_csv(path, separator="\t" if name.endswith("tsv") else ",")
+    assert_frame_equal(back, frame)
+    assert _leftovers(tmp_path) == []
+
+
+def test_export_refuses_overwrite_without_force(tmp_path: Path) -> None:
+    path = tmp_path / "out.csv"
+    path.write_text("keep me\n")
+    with pytest.raises(ExportError, match=r"`out.csv` exists; pass `--force` to replace it"):
+        write_frame(_frame(3), path)
+    assert path.read_text() == "keep me\n"
+    write_frame(_frame(3), path, force=True)
+    assert_frame_equal(pl.read_csv(path), _frame(3))
+
+
+def test_export_refuses_protected_paths_even_with_force(tmp_path: Path) -> None:
+    source = tmp_path / "input.parquet"
+    _frame(5).write_parquet(source)
+    before = source.read_bytes()
+    for target in (source, tmp_path / "." / "input.parquet"):
+        with pytest.raises(ExportError, match="input"):
+            write_frame(_frame(2), target, force=True, protected=[source])
+    assert source.read_bytes() == before
+    folder = tmp_path / "dataset"
+    folder.mkdir()
+    with pytest.raises(ExportError, match="lies inside"):
+        write_frame(_frame(2), folder / "extra.parquet", protected=[folder])
+    assert list(folder.iterdir()) == []
+
+
+def test_export_bad_targets(tmp_path: Path) -> None:
+    with pytest.raises(ExportError, match="does not exist"):
+        write_frame(_frame(2), tmp_path / "nope" / "out.csv")
+    with pytest.raises(ExportError, match=r"export format of `out.xlsx`"):
+        write_frame(_frame(2), tmp_path / "out.xlsx")
+    with pytest.raises(ExportError, match=r"cannot write to `out.csv`"):
+        write_frame(pl.DataFrame({"nested": [[1, 2]]}), tmp_path / "out.csv")
+    assert not (tmp_path / "out.csv").exists()
+    assert _leftovers(tmp_path) == []
+
+
+@pytest.mark.skipif(hasattr(os, "geteuid") and os.geteuid() == 0, reason="root ignores modes")
+def test_export_unwritable_folder(tmp_path: Path) -> None:
+    folder = tmp_path / "locked"
+    folder.mkdir()
+    folder.chmod(0o500)
+    try:
+        with pytest.raises(ExportError, match="cannot write in folder"):
+            write_frame(_frame(2), folder / "out.parquet")
+    finally:
+        folder.chmod(0o700)
+
+
+@pytest.mark.parametrize("name", ["many.parquet", "many.csv"])
+def test_export_streams_many_batches_atomically(tmp_path: Path, name: str) -> None:
+    path = tmp_path / name
+    batches = [_frame(n, start=i * 1_000) for i, n in enumerate([40, 0, 25, 60, 1])]
+    with StreamingExport(path) as export:
+        for batch in batches:
+            export.write(batch)
+            assert not path.exists()  # nothing at the target until the block ends
+    assert export.rows_written == 126
+    back = pl.read_parquet(path) if name.endswith("parquet") else pl.read_csv(path)
+    assert_frame_equal(back, pl.concat(batches))
+    assert _leftovers(tmp_path) == []
+
+
+@pytest.mark.parametrize("name", ["gone.parquet", "gone.csv"])
+def test_export_error_removes_temporary_and_keeps_old_file(tmp_path: Path, name: str) -> None:
+    path = tmp_path / name
+    path.write_bytes(b"old contents")
+    with pytest.raises(KeyboardInterrupt), StreamingExport(path, force=True) as export:
+        export.write(_frame(10))
+        raise KeyboardInterrupt  # a cancelled pass
+    assert path.read_bytes() == b"old contents"
+    assert _leftovers(tmp_path) == []
+
+
+def test_export_rejects_batches_of_another_shape(tmp_path: Path) -> None:
+    path = tmp_path / "shape.parquet"
+    with (
+        pytest.raises(ExportError, match="write batches of one shape"),
+        StreamingExport(path) as export,
+    ):
+        export.write(_frame(3))
+        export.write(_frame(3).drop("name"))
+    assert not path.exists()
+    assert _leftovers(tmp_path) == []
+
+
+def test_export_nothing_written(tmp_path: Path) -> None:
+    path = tmp_path / "empty.csv"
+    with pytest.raises(ExportError, match="nothing was written"), StreamingExport(path):
+        pass
+    assert not path.exists()
+    assert _leftovers(tmp_path) == []
+
+
+def test_export_file_appearing_during_write_is_not_replaced(tmp_path: Path) -> None:
+    path = tmp_path / "race.csv"
+    with pytest.raises(ExportError, match="exists"), StreamingExport(path) as export:
+        export.write(_frame(2))
+        path.write_text("written by someone else\n")
+    assert path.read_text() == "written by someone else\n"
+    assert _leftovers(tmp_path) == []
+
+
+def test_export_write_outside_block(tmp_path: Path) -> None:
+    export = StreamingExport(tmp_path / "x.csv")
+    with pytest.raises(ExportError, match="outside its `with` block"):
+        export.write(_frame(1))
+
+
+def test_export_personal_data_notice_is_one_line() -> None:
+    assert "\n" not in PERSONAL_DATA_NOTICE
+    assert "personal" in PERSONAL_DATA_NOTICE and "no proof" in PERSONAL_DATA_NOTICE

@@ -1,0 +1,114 @@
+"""Keymap loading: merge order, unknown ids, malformed files, clashes, config locations."""
+
+from __future__ import annotations
+
+import tomllib
+from pathlib import Path
+
+import pytest
+
+from triage.errors import KeymapError
+from triage.tui.app import all_binding_ids
+from triage.tui.keymap import (
+    load_keymap,
+    merge_keymaps,
+    parse_keymap,
+    shipped_keysets,
+)
+from triage.tui.locations import config_dir, shipped_keymaps, user_keymap_path
+
+pytest_plugins = ["tests.tui_support"]
+
+
+def test_keymap_default_names_every_binding(config_dir: Path) -> None:
+    ids = set(all_binding_ids())
+    default = tomllib.loads((shipped_keymaps() / "default.toml").read_text(encoding="utf-8"))
+    assert set(default) == ids
+
+
+@pytest.mark.parametrize("keyset", shipped_keysets())
+def test_keymap_each_shipped_keyset_loads_without_clash(config_dir: Path, keyset: str) -> None:
+    keymap = load_keymap(all_binding_ids(), keyset=keyset)
+    assert set(keymap) == set(all_binding_ids())
+
+
+def test_keymap_has_an_alternative_that_changes_keys(config_dir: Path) -> None:
+    alternatives = [k for k in shipped_keysets() if k != "default"]
+    assert alternatives
+    default = load_keymap(all_binding_ids())
+    other = load_keymap(all_binding_ids(), keyset=alternatives[0])
+    assert other != default
+
+
+def test_keymap_merge_order_user_then_command_line(config_dir: Path, tmp_path: Path) -> None:
+    user = user_keymap_path()
+    user.write_text('quick-fit = "z"\npane-fit = "F"\n', encoding="utf-8")
+    extra = tmp_path / "mine.toml"
+    extra.write_text('quick-fit = "k"\n', encoding="utf-8")
+    ids = all_binding_ids()
+    assert load_keymap(ids)["quick-fit"] == "z"
+    merged = load_keymap(ids, extra_file=extra)
+    assert merged["quick-fit"] == "k"
+    assert merged["pane-fit"] == "F"
+    with_keyset = load_keymap(ids, keyset="fkeys", extra_file=extra)
+    assert with_keyset["pane-fit"] == "F"  # the user file wins over the alternative
+    assert with_keyset["pane-spread"] == "f4"  # the alternative wins over the default
+
+
+def test_keymap_unknown_id_names_file_and_closest(config_dir: Path, tmp_path: Path) -> None:
+    bad = tmp_path / "typo.toml"
+    bad.write_text('qiut = "ctrl+x"\n', encoding="utf-8")
+    with pytest.raises(KeymapError, match=r"unknown binding id `qiut`.*typo\.toml.*`quit`"):
+        load_keymap(all_binding_ids(), extra_file=bad)
+
+
+def test_keymap_malformed_toml_is_reported(config_dir: Path, tmp_path: Path) -> None:
+    bad = tmp_path / "broken.toml"
+    bad.write_text("quit = \n", encoding="utf-8")
+    with pytest.raises(KeymapError, match=r"broken\.toml.*not valid TOML"):
+        load_keymap(all_binding_ids(), extra_file=bad)
+
+
+def test_keymap_value_must_be_a_key_string() -> None:
+    with pytest.raises(KeymapError, match=r"`quit` to 3"):
+        parse_keymap("quit = 3\n", label="x.toml")
+
+
+def test_keymap_missing_file_is_reported(config_dir: Path, tmp_path: Path) -> None:
+    with pytest.raises(KeymapError, match=r"cannot read keymap"):
+        load_keymap(all_binding_ids(), extra_file=tmp_path / "absent.toml")
+
+
+def test_keymap_unknown_keyset_lists_the_shipped_ones(config_dir: Path) -> None:
+    with pytest.raises(KeymapError, match=r"no shipped keymap named `vim`.*`fkeys`"):
+        load_keymap(all_binding_ids(), keyset="vim")
+
+
+def test_keymap_key_given_twice_is_a_clash(config_dir: Path) -> None:
+    layer = parse_keymap('quick-fit = "a"\n', label="mine.toml")
+    base = parse_keymap('start-full-pass = "a"\nquick-fit = "s"\n', label="base")
+    with pytest.raises(KeymapError, match=r"key `a` is given to both .*mine\.toml"):
+        merge_keymaps([base, layer], ["quick-fit", "start-full-pass"])
+
+
+def test_keymap_clash_sees_through_key_spellings(config_dir: Path) -> None:
+    # Textual names "?" `question_mark` (textual.keys); both spellings must count as one key.
+    layer = parse_keymap('quick-fit = "?"\nshow-help = "question_mark"\n', label="mine.toml")
+    with pytest.raises(KeymapError, match=r"given to both"):
+        merge_keymaps([layer], ["quick-fit", "show-help"])
+
+
+def test_locations_env_var_wins_and_directory_is_created(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    target = tmp_path / "a" / "b"
+    monkeypatch.setenv("TRIAGE_CONFIG_DIR", str(target))
+    assert config_dir() == target
+    assert target.is_dir()
+
+
+def test_locations_follow_xdg_config_home(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.delenv("TRIAGE_CONFIG_DIR", raising=False)
+    monkeypatch.setenv("XDG_CONFIG_HOME", str(tmp_path / "xdg"))
+    assert config_dir() == tmp_path / "xdg" / "triage"
+    assert user_keymap_path() == tmp_path / "xdg" / "triage" / "keymap.toml"

@@ -1,0 +1,47 @@
+"""Architecture checks: imports point down the stack only (DEVELOPERS.md, "Layout")."""
+
+from __future__ import annotations
+
+import pkgutil
+import subprocess
+import sys
+
+import pytest
+
+import triage
+
+LOWER_PACKAGES = ("triage.core", "triage.data", "triage.engine", "triage.views")
+
+
+def _modules(package: str) -> list[str]:
+    module = __import__(package, fromlist=["__path__"])
+    return [package] + [f"{package}.{info.name}" for info in pkgutil.iter_modules(module.__path__)]
+
+
+@pytest.mark.parametrize("package", LOWER_PACKAGES)
+def test_layers_lower_packages_never_import_textual(package: str) -> None:
+    modules = _modules(package)
+    code = (
+        "import importlib, sys\n"
+        f"for name in {modules!r}:\n"
+        "    importlib.import_module(name)\n"
+        "print('textual' in sys.modules)\n"
+    )
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert done.stdout.strip() == "False", f"{package} pulled in Textual"
+
+
+def test_layers_fit_command_never_imports_textual() -> None:
+    code = (
+        "import sys\n"
+        "from triage.cli.main import build_parser\n"
+        "build_parser()\n"
+        "import triage.cli.commands.fit, triage.cli.commands.report\n"
+        "print('textual' in sys.modules)\n"
+    )
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert done.stdout.strip() == "False"
+
+
+def test_layers_package_has_version() -> None:
+    assert triage.__version__.count(".") >= 2

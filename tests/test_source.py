@@ -1,0 +1,427 @@
+"""Tests of triage.data.source: every kind of source against polars/pyarrow reading the same file.
+
+The oracle throughout is polars (`pl.read_parquet`, `pl.read_csv`, `pl.read_ipc`) reading the
+file written in the test, with `with_row_index` for the positions; scipy checks uniformity.
+"""
+
+from __future__ import annotations
+
+import gzip
+from pathlib import Path
+
+import numpy as np
+import polars as pl
+import pyarrow as pa
+import pyarrow.ipc as ipc
+import pyarrow.parquet as pq
+import pytest
+from polars.testing import assert_frame_equal
+from scipy import stats
+
+from triage.data.source import ROW_INDEX, CsvOptions, Sample, Source, open_source
+from triage.errors import SourceError, SpecError
+
+
+def _frame(n: int, seed: int = 0) -> pl.DataFrame:
+    rng = np.random.default_rng(seed)
+    return pl.DataFrame(
+        {
+            "x": rng.normal(size=n),
+            "k": np.arange(n, dtype=np.int64),
+            "depot": rng.choice(["north", "south", "east"], size=n),
+            "w": pl.Series(rng.uniform(size=n)).set(pl.Series(rng.uniform(size=n) < 0.1), None),
+        }
+    )
+
+
+def _indexed(frame: pl.DataFrame) -> pl.DataFrame:
+    # The oracle's positions: polars' row index, as int64.
+    return frame.with_row_index(ROW_INDEX).with_columns(pl.col(ROW_INDEX).cast(pl.Int64))
+
+
+def _scan_all(source: Source, columns: list[str], **kwargs: object) -> pl.DataFrame:
+    batches = source.scan_batches(columns, **kwargs)  # type: ignore[arg-type]
+    return pl.concat([batch.frame for batch in batches])
+
+
+@pytest.fixture
+def parquet_file(tmp_path: Path) -> Path:
+    path = tmp_path / "deliveries.parquet"
+    pq.write_table(_frame(1_000).to_arrow(), path, row_group_size=128)  # 8 row groups
+    return path
+
+
+@pytest.fixture
+def hive_folder(tmp_path: Path) -> Path:
+    root = tmp_path / "by_year"
+    frame = _frame(600, seed=1).with_columns(
+        year=pl.Series(np.repeat([2022, 2023, 2024], 200)),
+    )
+    for (year,), part in frame.partition_by("year", as_dict=True).items():
+        folder = root / f"year={year}"
+        folder.mkdir(parents=True)
+        pq.write_table(
+            part.drop("year").head(120).to_arrow(), folder / "a.parquet", row_group_size=50
+        )
+        pq.write_table(
+            part.drop("year").tail(80).to_arrow(), folder / "b.parquet", row_group_size=50
+        )
+    (root / "_SUCCESS").write_text("")
+    return root
+
+
+@pytest.fixture
+def ipc_file(tmp_path: Path) -> Path:
+    path = tmp_path / "deliveries.arrow"
+    table = _frame(500, seed=2).to_arrow()
+    with pa.OSFile(str(path), "wb") as sink, ipc.new_file(sink, table.schema) as writer:
+        for batch in table.to_batches(max_chunksize=70):
+            writer.write_batch(batch)
+    return path
+
+
+_CSV_TEXT = (
+    "id;name;amount;note\n"
+    '0;"Smith; J";1.5;"said ""hi"""\n'
+    "1;Lee;NA;\n"
+    "2;Ng;3.25;null\n"
+    '3;"O\'Brien";-4;"two\nlines"\n'
+    "4;Roe;NaN;x\n"
+)
+
+
+def test_source_parquet_file_schema_count_and_batches(parquet_file: Path) -> None:
+    source = open_source(parquet_file)
+    oracle = pl.read_parquet(parquet_file)  # polars as oracle
+    assert source.schema() == dict(oracle.schema)
+    assert source.row_count() == oracle.height == source.count_rows_exact()
+    assert source.n_blocks == pq.ParquetFile(parquet_file).metadata.num_row_groups == 8
+    assert "8 row groups" in source.description
+    got = _scan_all(source, ["x", "depot", "w"], batch_rows=100)
+    assert_frame_equal(got, _indexed(oracle).select(ROW_INDEX, "x", "depot", "w"))
+
+
+def test_source_batches_are_bounded_and_progress_increases(parquet_file: Path) -> None:
+    source = open_source(parquet_file)
+    batches = list(source.scan_batches(["x"], batch_rows=50))
+    assert all(b.frame.height <= 50 for b in batches)
+    progress = [b.rows_read for b in batches]
+    assert progress == sorted(progress)
+    assert progress[-1] == 1_000
+
+
+def test_source_hive_folder_positions_run_across_sorted_files(hive_folder: Path) -> None:
+    source = open_source(hive_folder)
+    files = sorted(hive_folder.rglob("*.parquet"), key=lambda p: p.as_posix())
+    assert list(source.files) == files
+    oracle = _hive_oracle(hive_folder)
+    assert source.schema() == dict(oracle.schema)
+    assert source.row_count() == 600
+    assert "partitioned by year" in source.description
+    got = _scan_all(source, ["k", "year", "w"], batch_rows=64)
+    assert_frame_equal(got, _indexed(oracle).select(ROW_INDEX, "k", "year", "w"))
+
+
+def test_source_glob_of_parquet_files(tmp_path: Path) -> None:
+    frame = _frame(90, seed=3)
+    for i in range(3):
+        frame.slice(30 * i, 30).write_parquet(tmp_path / f"part_{i}.parquet")
+    (tmp_path / "notes.md").write_text("not data")
+    source = open_source(tmp_path / "part_*.parquet")
+    assert len(source.files) == 3
+    assert source.row_count() == 90
+    oracle = pl.read_parquet(tmp_path / "part_*.parquet")  # polars expands the same glob
+    assert_frame_equal(_scan_all(source, ["x", "k"]), _indexed(oracle).select(ROW_INDEX, "x", "k"))
+
+
+def test_source_partition_names_above_the_folder_are_not_columns(tmp_path: Path) -> None:
+    root = tmp_path / "env=test" / "data"
+    for region in ("a", "b"):
+        folder = root / f"region={region}"
+        folder.mkdir(parents=True)
+        pl.DataFrame({"y": [1.0, 2.0]}).write_parquet(folder / "p.parquet")
+    for path in (root, root / "*" / "*.parquet"):
+        source = open_source(path)
+        assert list(source.schema()) == ["y", "region"]
+        assert _scan_all(source, ["region"])["region"].to_list() == ["a", "a", "b", "b"]
+
+
+def test_source_csv_quotes_nulls_and_separator(tmp_path: Path) -> None:
+    path = tmp_path / "people.csv"
+    path.write_text(_CSV_TEXT)
+    options = CsvOptions(separator=";")
+    source = open_source(path, csv=options)
+    oracle = pl.read_csv(path, separator=";", null_values=["", "NA", "NaN", "null"])
+    assert source.schema() == dict(oracle.schema)
+    assert source.row_count() is None
+    assert source.count_rows_exact() == 5
+    got = _scan_all(source, ["id", "name", "amount", "note"], batch_rows=2)
+    assert_frame_equal(got, _indexed(oracle))
+    assert got["name"][0] == "Smith; J"
+    assert got["note"][0] == 'said "hi"'
+    assert got["amount"].null_count() == 2  # `NA` and `NaN` read as missing
+    assert got["note"][3] == "two\nlines"
+
+
+def test_source_tsv_and_gzip_csv(tmp_path: Path) -> None:
+    frame = _frame(40, seed=4)
+    tsv = tmp_path / "t.tsv"
+    frame.write_csv(tsv, separator="\t")
+    gz = tmp_path / "t.csv.gz"
+    with gzip.open(gz, "wb") as handle:
+        frame.write_csv(handle)
+    for path, sep in ((tsv, "\t"), (gz, ",")):
+        oracle = pl.read_csv(path, separator=sep, null_values=["", "NA", "NaN", "null"])
+        got = _scan_all(open_source(path), list(oracle.columns))
+        assert_frame_equal(got, _indexed(oracle))
+
+
+def test_source_ipc_record_batches(ipc_file: Path) -> None:
+    source = open_source(ipc_file)
+    oracle = pl.read_ipc(ipc_file)  # polars as oracle
+    assert source.schema() == dict(oracle.schema)
+    assert source.row_count() == 500
+    assert source.n_blocks == 8  # ceil(500 / 70) record batches written above
+    assert_frame_equal(
+        _scan_all(source, ["k", "depot"], batch_rows=32),
+        _indexed(oracle).select(ROW_INDEX, "k", "depot"),
+    )
+
+
+@pytest.mark.parametrize("kind", ["parquet", "hive", "ipc", "csv"])
+def test_source_filter_keeps_source_positions(
+    kind: str, parquet_file: Path, hive_folder: Path, ipc_file: Path, tmp_path: Path
+) -> None:
+    if kind == "csv":
+        path = tmp_path / "f.csv"
+        _frame(300, seed=5).write_csv(path)
+    else:
+        path = {"parquet": parquet_file, "hive": hive_folder, "ipc": ipc_file}[kind]
+    source = open_source(path)
+    where = (pl.col("x") > 0.5) & pl.col("w").is_not_null()
+    every = _scan_all(source, ["x", "w", "k"])
+    batches = list(source.scan_batches(["x", "w", "k"], where=where, batch_rows=40))
+    got = pl.concat([b.frame for b in batches])
+    assert batches[-1].rows_read == every.height  # progress counts rows before the filter
+    assert_frame_equal(got, every.filter(where))
+    assert 0 < got.height < every.height
+    # positions are still positions in the file: read_rows gives the same rows back
+    assert_frame_equal(source.read_rows(got[ROW_INDEX]).select(got.columns), got)
+
+
+def test_source_column_projection_and_unknown_column(parquet_file: Path) -> None:
+    source = open_source(parquet_file)
+    first = next(iter(source.scan_batches(["w"]))).frame
+    assert first.columns == [ROW_INDEX, "w"]
+    assert first.schema[ROW_INDEX] == pl.Int64
+    only_rows = _scan_all(source, [])
+    assert only_rows.columns == [ROW_INDEX] and only_rows.height == 1_000
+    with pytest.raises(SpecError, match=r"unknown column `depto`.*`depot`"):
+        list(source.scan_batches(["depto"]))
+
+
+def _assert_same_sample(a: Sample, b: Sample) -> None:
+    assert_frame_equal(a.frame, b.frame)
+    assert (a.description, a.is_whole, a.warning) == (b.description, b.is_whole, b.warning)
+
+
+def _assert_sample_rows_match(source: Source, sample_frame: pl.DataFrame) -> None:
+    positions = sample_frame[ROW_INDEX]
+    assert positions.is_unique().all() and positions.is_sorted()
+    assert_frame_equal(source.read_rows(positions).select(sample_frame.columns), sample_frame)
+
+
+@pytest.mark.parametrize("kind", ["parquet", "ipc", "hive"])
+def test_source_group_sample_is_whole_blocks_and_deterministic(
+    kind: str, parquet_file: Path, hive_folder: Path, ipc_file: Path
+) -> None:
+    path = {"parquet": parquet_file, "hive": hive_folder, "ipc": ipc_file}[kind]
+    source = open_source(path)
+    sample = source.read_sample(["x", "k"], n_rows=150, seed=7)
+    _assert_same_sample(sample, source.read_sample(["x", "k"], n_rows=150, seed=7))
+    assert sample.frame.height >= 150
+    assert not sample.is_whole and sample.warning is not None
+    assert "seed 7" in sample.description
+    _assert_sample_rows_match(source, sample.frame)
+    full = _scan_all(source, ["x", "k"])
+    assert sample.frame.height < full.height
+    seeds = {
+        tuple(source.read_sample(["k"], n_rows=150, seed=s).frame[ROW_INDEX]) for s in range(6)
+    }
+    assert len(seeds) > 1
+
+
+def test_source_group_sample_parquet_matches_row_groups(parquet_file: Path) -> None:
+    source = open_source(parquet_file)
+    sample = source.read_sample(["k"], n_rows=300, seed=1)
+    # 128-row groups: 300 rows need 3 groups; each group is a full run of 128 positions
+    starts = np.unique(sample.frame[ROW_INDEX].to_numpy() // 128)
+    assert starts.size == 3 and sample.frame.height == 3 * 128 == sample.rows_read
+    assert "3 of 8 row groups" in sample.description
+
+
+def test_source_csv_block_sample(tmp_path: Path) -> None:
+    path = tmp_path / "big.csv"
+    _frame(2_000, seed=8).write_csv(path)
+    source = open_source(path)
+    sample = source.read_sample(["x", "k"], n_rows=400, seed=3)
+    _assert_same_sample(sample, source.read_sample(["x", "k"], n_rows=400, seed=3))
+    assert 400 <= sample.frame.height < 2_000
+    assert "blocks of 50 consecutive rows" in sample.description
+    _assert_sample_rows_match(source, sample.frame)
+
+
+@pytest.mark.parametrize("kind", ["parquet", "csv"])
+def test_source_uniform_sample(kind: str, parquet_file: Path, tmp_path: Path) -> None:
+    if kind == "csv":
+        path = tmp_path / "u.csv"
+        _frame(1_000).write_csv(path)
+    else:
+        path = parquet_file
+    source = open_source(path)
+    sample = source.read_sample(["x", "k"], n_rows=300, seed=11, design="uniform")
+    assert sample.frame.height == 300
+    _assert_same_sample(
+        sample, source.read_sample(["x", "k"], n_rows=300, seed=11, design="uniform")
+    )
+    assert not sample.is_whole and sample.warning is None
+    assert "uniformly" in sample.description
+    _assert_sample_rows_match(source, sample.frame)
+    other = source.read_sample(["x", "k"], n_rows=300, seed=12, design="uniform")
+    assert not other.frame[ROW_INDEX].equals(sample.frame[ROW_INDEX])
+    # same rows whatever the batching: the choice depends on positions and seed only
+    assert sample.frame[ROW_INDEX].to_list() == sorted(sample.frame[ROW_INDEX].to_list())
+
+
+def test_source_uniform_sample_is_uniform(tmp_path: Path) -> None:
+    path = tmp_path / "many.parquet"
+    pq.write_table(pl.DataFrame({"k": np.arange(20_000)}).to_arrow(), path, row_group_size=1_000)
+    positions = (
+        open_source(path)
+        .read_sample(["k"], n_rows=2_000, seed=0, design="uniform")
+        .frame[ROW_INDEX]
+    )
+    # scipy's one-sample Kolmogorov-Smirnov test against U(0, 20000): a uniform sample passes;
+    # a sample of whole row groups or a prefix would fail badly
+    result = stats.kstest(positions.to_numpy() + 0.5, stats.uniform(loc=0, scale=20_000).cdf)
+    assert result.pvalue > 1e-3
+
+
+def test_source_uniform_sample_with_filter_draws_from_passing_rows(parquet_file: Path) -> None:
+    source = open_source(parquet_file)
+    where = pl.col("depot") == "north"
+    sample = source.read_sample(["depot"], n_rows=100, seed=0, design="uniform", where=where)
+    assert sample.frame.height == 100
+    assert sample.rows_read == 1_000  # the uniform design reads every row
+    assert (sample.frame["depot"] == "north").all()
+    assert "pass the filter" in sample.description
+
+
+def test_source_filter_on_a_column_not_requested(parquet_file: Path) -> None:
+    source = open_source(parquet_file)
+    where = pl.col("depot") == "east"
+    got = _scan_all(source, ["k"], where=where)
+    assert got.columns == [ROW_INDEX, "k"]
+    oracle = _indexed(pl.read_parquet(parquet_file)).filter(where)  # polars as oracle
+    assert_frame_equal(got, oracle.select(ROW_INDEX, "k"))
+    sample = source.read_sample(["k"], n_rows=200, seed=0, where=where)
+    assert sample.frame.columns == [ROW_INDEX, "k"]
+    assert set(sample.frame["k"]) <= set(oracle["k"])
+
+
+def test_source_small_source_is_read_whole(parquet_file: Path, tmp_path: Path) -> None:
+    source = open_source(parquet_file)
+    for design in ("groups", "uniform"):
+        sample = source.read_sample(["k"], n_rows=5_000, seed=0, design=design)  # type: ignore[arg-type]
+        assert sample.is_whole and sample.warning is None
+        assert sample.frame.height == 1_000
+        assert sample.description.startswith("all 1,000 rows")
+    path = tmp_path / "small.csv"
+    _frame(30).write_csv(path)
+    sample = open_source(path).read_sample(["k"], n_rows=30, seed=0)
+    assert sample.is_whole and sample.frame.height == 30
+
+
+def test_source_group_sample_with_filter(parquet_file: Path) -> None:
+    source = open_source(parquet_file)
+    where = pl.col("x") > 0
+    sample = source.read_sample(["x"], n_rows=200, seed=2, where=where)
+    assert (sample.frame["x"] > 0).all()
+    assert "kept by the filter" in sample.description
+
+
+def _hive_oracle(folder: Path) -> pl.DataFrame:
+    # polars reading the sorted files with hive partitioning is the oracle
+    files = sorted((str(f) for f in folder.rglob("*.parquet")), key=lambda f: Path(f).as_posix())
+    frame = pl.read_parquet(files, hive_partitioning=True)
+    return frame.select("x", "k", "depot", "w", "year")
+
+
+def test_source_read_rows_order_across_groups_and_files(
+    parquet_file: Path, hive_folder: Path, ipc_file: Path, tmp_path: Path
+) -> None:
+    csv_path = tmp_path / "r.csv"
+    _frame(300, seed=9).write_csv(csv_path)
+    cases = [
+        (parquet_file, pl.read_parquet(parquet_file), [999, 0, 130, 129, 130]),
+        (hive_folder, _hive_oracle(hive_folder), [599, 3, 121, 200]),
+        (ipc_file, pl.read_ipc(ipc_file), [71, 70, 69, 499]),
+        (csv_path, pl.read_csv(csv_path, null_values=["", "NA", "NaN", "null"]), [250, 1, 2]),
+    ]
+    for path, oracle, positions in cases:
+        source = open_source(path)
+        got = source.read_rows(positions)
+        indexed = oracle if ROW_INDEX in oracle.columns else _indexed(oracle)
+        expected = pl.DataFrame({ROW_INDEX: positions}, schema={ROW_INDEX: pl.Int64}).join(
+            indexed, on=ROW_INDEX, how="left", maintain_order="left"
+        )
+        assert_frame_equal(got, expected.select(got.columns))
+        assert got.columns == [ROW_INDEX, *source.schema()]
+
+
+@pytest.mark.parametrize("bad", [-1, 1_000])
+def test_source_read_rows_out_of_range(parquet_file: Path, tmp_path: Path, bad: int) -> None:
+    with pytest.raises(SourceError, match=r"outside .* 1,000 rows"):
+        open_source(parquet_file).read_rows([3, bad])
+    path = tmp_path / "r.csv"
+    _frame(1_000).write_csv(path)
+    with pytest.raises(SourceError, match=r"outside .* 1,000 rows"):
+        open_source(path).read_rows([bad])
+
+
+def test_source_bad_paths(tmp_path: Path) -> None:
+    with pytest.raises(SourceError, match="does not exist"):
+        open_source(tmp_path / "missing.parquet")
+    (tmp_path / "empty").mkdir()
+    with pytest.raises(SourceError, match="holds no Parquet files"):
+        open_source(tmp_path / "empty")
+    (tmp_path / "data.xlsx").write_bytes(b"PK")
+    with pytest.raises(SourceError, match="cannot tell the format"):
+        open_source(tmp_path / "data.xlsx")
+    with pytest.raises(SourceError, match="matches no Parquet files"):
+        open_source(tmp_path / "*.parquet")
+
+
+def test_source_corrupt_files(tmp_path: Path, parquet_file: Path, ipc_file: Path) -> None:
+    junk = tmp_path / "junk.parquet"
+    junk.write_bytes(b"this is not parquet at all")
+    truncated = tmp_path / "cut.parquet"
+    truncated.write_bytes(parquet_file.read_bytes()[:-100])
+    cut_ipc = tmp_path / "cut.arrow"
+    cut_ipc.write_bytes(ipc_file.read_bytes()[: ipc_file.stat().st_size // 2])
+    for path in (junk, truncated, cut_ipc):
+        with pytest.raises(SourceError, match=f"cannot read `.*{path.name}`") as info:
+            open_source(path)
+        assert "\n" not in str(info.value)
+    binary = tmp_path / "binary.csv"
+    binary.write_bytes(b"a,b\n\xff\xfe,\x00\x81\n")
+    with pytest.raises(SourceError, match="cannot read"):
+        source = open_source(binary)
+        list(source.scan_batches(["a", "b"]))
+
+
+def test_source_refuses_a_column_named_like_row_index(tmp_path: Path) -> None:
+    path = tmp_path / "clash.parquet"
+    pl.DataFrame({ROW_INDEX: [1, 2], "y": [1.0, 2.0]}).write_parquet(path)
+    with pytest.raises(SourceError, match="`__row`"):
+        open_source(path)

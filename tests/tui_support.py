@@ -1,0 +1,108 @@
+"""Helpers for the app tests: a small demo file, plain-text screen capture, snapshot comparison.
+
+Snapshots are the screen as plain text (one line per terminal row), stored under
+`tests/snapshots/`. Regenerate them only after reading the diff, with
+`TRIAGE_UPDATE_SNAPSHOTS=1 pytest tests/test_tui_snapshots.py`.
+"""
+
+from __future__ import annotations
+
+import difflib
+import os
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+import pytest
+
+from triage.tui.app import TriageApp, make_app
+from triage.tui.settings import Settings
+
+if TYPE_CHECKING:
+    from textual.pilot import Pilot
+
+SNAPSHOT_DIR = Path(__file__).parent / "snapshots"
+"""Where the text snapshots live."""
+
+UPDATE_ENV = "TRIAGE_UPDATE_SNAPSHOTS"
+"""Set to 1 to rewrite snapshots instead of comparing."""
+
+DEMO_ROWS = 6_000
+"""Rows of the demo scenario written for the app tests (small: the machine is shared)."""
+
+
+def write_demo(folder: Path) -> Path:
+    """Write the demo delivery scenario (invented data, the project's demo) to `folder`."""
+    from triage.data.scenario import write_scenario
+
+    return write_scenario(folder / "deliveries.parquet", n_rows=DEMO_ROWS, seed=7,
+                          row_group_rows=1_000)
+
+
+@pytest.fixture
+def config_dir(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
+    """Point triage's configuration directory at an empty temporary folder; no NO_COLOR."""
+    folder = tmp_path / "config"
+    monkeypatch.setenv("TRIAGE_CONFIG_DIR", str(folder))
+    monkeypatch.delenv("NO_COLOR", raising=False)
+    return folder
+
+
+@pytest.fixture(scope="module")
+def demo_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """A small demo file shared by the tests of one module."""
+    return write_demo(tmp_path_factory.mktemp("demo"))
+
+
+def build_app(data: Path | None = None, **fields: object) -> TriageApp:
+    """Build the app through the same factory the command line uses."""
+    settings = Settings(data=None if data is None else str(data), **fields)  # type: ignore[arg-type]
+    return make_app(settings)
+
+
+def key_for(app: TriageApp, binding_id: str) -> str:
+    """Return the first key the loaded keymap gives `binding_id` (tests press keys by id)."""
+    return app.keymap[binding_id].split(",")[0].strip()
+
+
+async def press_id(pilot: Pilot[None], binding_id: str) -> None:
+    """Press the key of a binding id and let the app settle."""
+    app = pilot.app
+    assert isinstance(app, TriageApp)
+    await pilot.press(key_for(app, binding_id))
+    await pilot.pause()
+
+
+async def settle(pilot: Pilot[None]) -> None:
+    """Wait for every worker and the messages they posted."""
+    for _ in range(3):
+        await pilot.app.workers.wait_for_complete()
+        await pilot.pause()
+
+
+def screen_text(app: TriageApp, *, replace: dict[str, str] | None = None) -> str:
+    """Return the active screen as plain text, one line per terminal row, right-stripped.
+
+    Reads the compositor's strips (the same cells `export_screenshot` turns into SVG).
+    """
+    strips = app.screen._compositor.render_strips()
+    text = "\n".join(strip.text.rstrip() for strip in strips)
+    for old, new in (replace or {}).items():
+        text = text.replace(old, new)
+    return text
+
+
+def assert_snapshot(text: str, name: str) -> None:
+    """Compare `text` with the stored snapshot `name`, or store it when asked to update."""
+    path = SNAPSHOT_DIR / f"{name}.txt"
+    if os.environ.get(UPDATE_ENV) == "1":
+        SNAPSHOT_DIR.mkdir(parents=True, exist_ok=True)
+        path.write_text(text + "\n", encoding="utf-8")
+        return
+    if not path.exists():
+        pytest.fail(f"no snapshot {path.name}; run with {UPDATE_ENV}=1 after checking the screen")
+    expected = path.read_text(encoding="utf-8").removesuffix("\n")
+    if text != expected:
+        diff = "\n".join(difflib.unified_diff(
+            expected.splitlines(), text.splitlines(), "stored", "now", lineterm=""
+        ))
+        pytest.fail(f"screen differs from snapshot {path.name}:\n{diff}")

@@ -1,0 +1,49 @@
+"""`triage fit`: fit a model by least squares and print the result as text or JSON."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from typing import Any
+
+from triage.cli.options import add_model_options, add_row_options, add_source_options
+
+
+def register(subparsers: Any) -> None:
+    """Add the `fit` command."""
+    parser = subparsers.add_parser(
+        "fit",
+        help="fit a model and print coefficients and fit quality",
+        description="Fit a least-squares model on a sample (default) or on every row.",
+    )
+    add_source_options(parser)
+    add_model_options(parser)
+    add_row_options(parser)
+    parser.add_argument("--json", action="store_true", help="print one JSON object")
+    parser.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    """Run `triage fit`."""
+    from triage.cli.options import open_source_from_args, spec_from_args
+    from triage.cli.progress import StderrProgress
+    from triage.engine.passes import fit_model
+    from triage.views.json import fit_to_json
+    from triage.views.text import render_fit_report
+
+    source = open_source_from_args(args)
+    spec = spec_from_args(args, source)
+    progress = StderrProgress()
+    try:
+        outcome = fit_model(
+            source, spec, rows=args.rows, seed=args.seed, design=args.sample, on_progress=progress
+        )
+    finally:
+        progress.finish()
+    if args.json:
+        json.dump(fit_to_json(outcome), sys.stdout, indent=2, allow_nan=False)
+        sys.stdout.write("\n")
+    else:
+        sys.stdout.write(render_fit_report(outcome) + "\n")
+    return 0

@@ -1,0 +1,81 @@
+"""`triage open DATA` (also plain `triage DATA`): the full-screen terminal app."""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+from typing import Any
+
+from triage.cli.options import add_model_options, add_row_options, add_source_options
+
+
+def register(subparsers: Any) -> None:
+    """Add the `open` command."""
+    parser = subparsers.add_parser(
+        "open",
+        help="open the terminal app on a data file (the default command)",
+        description=(
+            "Open a full-screen app to build a model by keys, fit it on a sample at once, "
+            "read every row in the background, and drill into the rows and segments where "
+            "it fits badly. With --target (and --terms) the model is fitted on opening."
+        ),
+    )
+    add_source_options(parser)
+    add_model_options(parser)
+    add_row_options(parser)
+    keys = parser.add_argument_group("keys")
+    keys.add_argument(
+        "--keyset", default=None, metavar="NAME",
+        help="a shipped alternative keymap laid over the default (e.g. `fkeys`)",
+    )
+    keys.add_argument(
+        "--keymap", type=Path, default=None, metavar="FILE",
+        help="a TOML file of binding-id = key, applied after the user's keymap",
+    )
+    parser.add_argument(
+        "--top-k", type=int, default=50, metavar="K",
+        help="rows kept in each worst-rows list (default 50)",
+    )
+    parser.set_defaults(handler=run)
+
+
+def settings_from_args(args: argparse.Namespace) -> Any:
+    """Turn parsed options into the app's `Settings`."""
+    from triage.cli.options import DEFAULT_SAMPLE_ROWS, parse_reference
+    from triage.data.source import CsvOptions
+    from triage.tui.settings import Settings
+
+    defaults = CsvOptions()
+    csv = CsvOptions(
+        separator=args.separator if args.separator is not None else defaults.separator,
+        has_header=not args.no_header,
+        null_values=tuple(args.null_value) if args.null_value else defaults.null_values,
+    )
+    return Settings(
+        data=args.data,
+        target=args.target,
+        terms=args.terms,
+        weights=args.weights,
+        where=args.where,
+        categorical=tuple(c.strip() for c in args.categorical.split(",") if c.strip()),
+        intercept=not args.no_intercept,
+        reference=parse_reference(args.reference),
+        max_levels=args.max_levels,
+        drop_invalid=args.drop_invalid,
+        csv=csv,
+        sample_rows=DEFAULT_SAMPLE_ROWS if args.rows is None else args.rows,
+        is_full_at_start=args.rows is None,
+        seed=args.seed,
+        sample_design=args.sample,
+        keyset=args.keyset,
+        keymap_file=args.keymap,
+        top_k=args.top_k,
+    )
+
+
+def run(args: argparse.Namespace) -> int:
+    """Run the app until the user quits; returns 0."""
+    from triage.tui.app import make_app
+
+    make_app(settings_from_args(args)).run()
+    return 0

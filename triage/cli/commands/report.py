@@ -1,0 +1,82 @@
+"""`triage report`: fit, then one more pass of residual diagnostics, printed as text or JSON."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import shutil
+import sys
+from typing import Any
+
+from triage.cli.options import add_model_options, add_row_options, add_source_options
+
+
+def add_diagnostics_options(parser: argparse.ArgumentParser) -> None:
+    """Add the options of pass 2 shared by `report` and `export`."""
+    group = parser.add_argument_group("diagnostics")
+    group.add_argument("--top", type=int, default=10, metavar="K", help="rows per worst-rows list")
+    group.add_argument(
+        "--by", default="", metavar="COLS",
+        help="comma-separated columns to break residuals down by (segments)",
+    )
+    group.add_argument(
+        "--ordered", action="store_true",
+        help="rows are in a meaningful order (time): judge serial correlation and trends",
+    )
+
+
+def segment_columns(args: argparse.Namespace) -> tuple[str, ...]:
+    """Columns named with `--by`."""
+    return tuple(c.strip() for c in args.by.split(",") if c.strip())
+
+
+def register(subparsers: Any) -> None:
+    """Add the `report` command."""
+    parser = subparsers.add_parser(
+        "report",
+        help="fit, then show where the model fits badly (charts, tests, worst rows, segments)",
+        description="Fit a model, then compute residual diagnostics on the same rows.",
+    )
+    add_source_options(parser)
+    add_model_options(parser)
+    add_row_options(parser)
+    add_diagnostics_options(parser)
+    parser.add_argument("--json", action="store_true", help="print one JSON object")
+    parser.add_argument("--no-charts", action="store_true", help="leave out the text charts")
+    parser.add_argument("--width", type=int, default=None, help="text width (default: terminal)")
+    parser.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    """Run `triage report`."""
+    from triage.cli.options import open_source_from_args, spec_from_args
+    from triage.cli.progress import StderrProgress
+    from triage.engine.passes import run_report
+    from triage.errors import SpecError
+
+    if args.top <= 0:
+        msg = f"`--top` must be a positive integer, got `{args.top}`"
+        raise SpecError(msg)
+    source = open_source_from_args(args)
+    spec = spec_from_args(args, source)
+    progress = StderrProgress()
+    try:
+        report = run_report(
+            source, spec, rows=args.rows, seed=args.seed, design=args.sample,
+            top_k=args.top, by=segment_columns(args), is_ordered=args.ordered,
+            on_progress=progress,
+        )
+    finally:
+        progress.finish()
+    if args.json:
+        from triage.views.json import report_to_json
+
+        json.dump(report_to_json(report), sys.stdout, indent=2, allow_nan=False)
+        sys.stdout.write("\n")
+        return 0
+    from triage.views.text import render_full_report
+
+    width = args.width or min(shutil.get_terminal_size((100, 40)).columns, 120)
+    text = render_full_report(report, width=width, charts=not args.no_charts, color=False)
+    sys.stdout.write(text + "\n")
+    return 0

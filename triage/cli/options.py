@@ -1,0 +1,130 @@
+"""Command-line options shared by every command that fits a model."""
+
+from __future__ import annotations
+
+import argparse
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from triage.core.spec import ModelSpec
+    from triage.data.source import Source
+
+DEFAULT_SAMPLE_ROWS = 200_000
+"""Rows in the default sample; `--rows all` streams every row instead."""
+
+
+def parse_rows(text: str) -> int | None:
+    """Parse `--rows`: a positive integer, or `all` (returned as None)."""
+    if text.strip().lower() == "all":
+        return None
+    try:
+        value = int(text.replace("_", "").replace(",", ""))
+    except ValueError:
+        value = 0
+    if value <= 0:
+        msg = f"`--rows` must be a positive integer or `all`, got `{text}`"
+        raise argparse.ArgumentTypeError(msg)
+    return value
+
+
+def add_source_options(parser: argparse.ArgumentParser) -> None:
+    """Add the data argument and the CSV reading options."""
+    parser.add_argument("data", metavar="DATA", help="Parquet file, folder or glob; CSV; Arrow IPC")
+    group = parser.add_argument_group("CSV reading")
+    group.add_argument("--separator", default=None, help="field separator (default `,`; tab for .tsv)")
+    group.add_argument("--no-header", action="store_true", help="the first line is data, not names")
+    group.add_argument(
+        "--null-value", action="append", default=None, metavar="TEXT",
+        help="text read as missing (repeatable; default: empty, NA, NaN, null)",
+    )
+
+
+def add_model_options(parser: argparse.ArgumentParser, *, terms_repeatable: bool = False) -> None:
+    """Add the options that describe a model (target, terms, weights, filter, coding)."""
+    group = parser.add_argument_group("model")
+    group.add_argument("--target", "-y", help="column to explain (or give `y ~ ...` in --terms)")
+    if terms_repeatable:
+        group.add_argument(
+            "--terms", "-x", action="append", required=True,
+            help="terms of one model; repeat for each model to compare",
+        )
+    else:
+        group.add_argument(
+            "--terms", "-x", default="",
+            help='terms, e.g. "distance_km, log(weight_kg), depot" or "minutes ~ stops + depot"',
+        )
+    group.add_argument("--no-intercept", action="store_true", help="fit without a constant term")
+    group.add_argument("--weights", "-w", help="column of positive weights (weighted least squares)")
+    group.add_argument("--where", help="keep rows matching an SQL condition, e.g. \"depot = 'north'\"")
+    group.add_argument(
+        "--categorical", default="", metavar="COLS",
+        help="comma-separated numeric columns to treat as categories",
+    )
+    group.add_argument(
+        "--reference", action="append", default=[], metavar="COL=LEVEL",
+        help="reference level of a categorical column (default: its most frequent level)",
+    )
+    group.add_argument("--max-levels", type=int, default=50, help="cap on levels of a category")
+    group.add_argument(
+        "--drop-invalid", action="store_true",
+        help="leave out rows outside a transform's domain (e.g. log of 0) instead of stopping",
+    )
+
+
+def add_row_options(parser: argparse.ArgumentParser) -> None:
+    """Add the options that choose which rows a pass reads."""
+    group = parser.add_argument_group("rows")
+    group.add_argument(
+        "--rows", type=parse_rows, default=DEFAULT_SAMPLE_ROWS, metavar="N|all",
+        help=f"sample about N rows (default {DEFAULT_SAMPLE_ROWS:,}) or stream `all` rows",
+    )
+    group.add_argument("--seed", type=int, default=0, help="seed of the sample (default 0)")
+    group.add_argument(
+        "--sample", choices=("groups", "uniform"), default="groups",
+        help="groups: whole row groups at random (fast); uniform: exact random rows (full read)",
+    )
+
+
+def open_source_from_args(args: argparse.Namespace) -> Source:
+    """Open the data source named on the command line with its CSV options."""
+    from triage.data.source import CsvOptions, open_source
+
+    defaults = CsvOptions()
+    csv = CsvOptions(
+        separator=args.separator if args.separator is not None else defaults.separator,
+        has_header=not args.no_header,
+        null_values=tuple(args.null_value) if args.null_value else defaults.null_values,
+    )
+    return open_source(args.data, csv=csv)
+
+
+def parse_reference(pairs: list[str]) -> dict[str, str]:
+    """Parse repeated `--reference COL=LEVEL` options."""
+    from triage.errors import SpecError
+
+    reference: dict[str, str] = {}
+    for pair in pairs:
+        column, sep, level = pair.partition("=")
+        if not sep or not column.strip():
+            msg = f"`--reference` takes COL=LEVEL, got `{pair}`"
+            raise SpecError(msg)
+        reference[column.strip()] = level.strip()
+    return reference
+
+
+def spec_from_args(args: argparse.Namespace, source: Source, *, terms: str | None = None) -> ModelSpec:
+    """Build and validate the model spec from parsed options against the source's schema."""
+    from triage.core.spec import build_spec
+
+    return build_spec(
+        source.schema(),
+        target=args.target,
+        terms=args.terms if terms is None else terms,
+        intercept=not args.no_intercept,
+        weights=args.weights,
+        where=args.where,
+        categorical=tuple(c.strip() for c in args.categorical.split(",") if c.strip()),
+        reference=parse_reference(args.reference),
+        max_levels=args.max_levels,
+        drop_invalid=args.drop_invalid,
+    )

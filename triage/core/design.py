@@ -1,0 +1,547 @@
+"""Design matrices from polars frames: learn coding on a sample, then build every batch.
+
+`DesignBuilder.learn` fixes everything a batch must not change (categorical levels and
+reference levels, the mean and SD behind ``std(x)``, the column names), then
+`DesignBuilder.build` turns each batch into float64 arrays with one polars ``select``
+and one ``to_numpy``, dropping and counting rows it cannot use.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from types import MappingProxyType
+from typing import TYPE_CHECKING, Final
+
+import numpy as np
+import polars as pl
+
+from triage.core.spec import is_categorical_dtype, quote_name
+from triage.errors import DataError, SpecError
+
+if TYPE_CHECKING:
+    from collections.abc import Mapping, Sequence
+
+    from numpy.typing import NDArray
+
+    from triage.core.spec import ModelSpec, SchemaLike, Term
+
+ROW_INDEX: Final = "__row"
+"""Column holding each row's 0-based position in the source (`triage.data.source` uses it)."""
+
+INTERCEPT: Final = "intercept"
+"""Name of the column of ones, and of its term."""
+
+_Y: Final = "__y"
+_W: Final = "__w"
+_PRESENT: Final = "__present"
+_IN_LEVELS: Final = "__in_levels"
+_MISSING: Final = "__missing"
+_UNSEEN: Final = "__unseen"
+_DOMAIN: Final = "__domain"
+_SHOWN_LEVELS: Final = 10
+"""How many levels an error message lists."""
+
+_DROP_HINT: Final = (
+    "filter them with `--where` or use `log1p`, or pass `--drop-invalid` to leave those rows out"
+)
+_OVERFLOW_TRANSFORMS: Final = frozenset({"square", "pow", "poly"})
+
+
+@dataclass(frozen=True)
+class _DomainCheck:
+    """A condition a used value must meet, with the message when it fails."""
+
+    name: str
+    """Alias of the count column in the check select."""
+    bad: pl.Expr
+    """True where the value is outside the domain."""
+    problem: str
+    """What is wrong, e.g. "log of a value <= 0 in `log(minutes)`"."""
+    hint: str
+    """What to do about it."""
+
+
+@dataclass(frozen=True)
+class DesignBatch:
+    """One batch turned into arrays, with the rows it kept and counts of those it left out.
+
+    Attributes
+    ----------
+    x : ndarray of shape (n_rows, n_columns)
+        Design matrix, float64, Fortran-ordered; the intercept column comes first.
+    y : ndarray of shape (n_rows,)
+        Target values.
+    weights : ndarray of shape (n_rows,) or None
+        Case weights (all > 0), or None for an unweighted model.
+    rows : ndarray of shape (n_rows,)
+        Positions of the kept rows in the source (int64).
+    frame : polars.DataFrame
+        The kept rows: the spec's source columns plus `ROW_INDEX`.
+    n_dropped_missing : int
+        Rows left out for a null, NaN or infinite value in a model column.
+    n_dropped_domain : int
+        Rows left out (with ``drop_invalid``) for a value outside a transform's domain,
+        a weight <= 0, or a design value too large for float64.
+    n_dropped_unseen_level : int
+        Rows left out for a categorical level not seen in the sample.
+    """
+
+    x: NDArray[np.float64]
+    y: NDArray[np.float64]
+    weights: NDArray[np.float64] | None
+    rows: NDArray[np.int64]
+    frame: pl.DataFrame
+    n_dropped_missing: int
+    n_dropped_domain: int
+    n_dropped_unseen_level: int
+
+    @property
+    def n_rows(self) -> int:
+        """Number of rows kept."""
+        return int(self.x.shape[0])
+
+
+def _is_float(dtype: pl.DataType | type[pl.DataType]) -> bool:
+    return bool(dtype.is_float()) or bool(dtype.is_decimal())
+
+
+def _present(column: str, dtype: pl.DataType | type[pl.DataType]) -> pl.Expr:
+    """Mark usable values: not null and, for floats, finite."""
+    if _is_float(dtype):
+        return pl.col(column).cast(pl.Float64).is_finite().fill_null(value=False)
+    return pl.col(column).is_not_null()
+
+
+def _as_float(column: str) -> pl.Expr:
+    return pl.col(column).cast(pl.Float64)
+
+
+def _levels_of(column: str) -> pl.Expr:
+    """Levels of a column as text (booleans read `true`/`false`), as learned from a sample."""
+    return pl.col(column).cast(pl.String)
+
+
+def _match_levels(
+    column: str, dtype: pl.DataType | type[pl.DataType], levels: Sequence[str]
+) -> tuple[pl.Expr, list[pl.Expr]]:
+    """Build "is one of `levels`" and one "equals level" mask per level.
+
+    Text, Categorical and Enum columns are compared as they are and booleans against
+    True/False: casting a Categorical to text per dummy was 6x slower (measured: 8 ms
+    against 1.2 ms for four dummies on 64k rows). Other columns are compared as text.
+    """
+    if dtype == pl.Boolean:
+        flags = [level == "true" for level in levels]
+        return pl.col(column).is_in(flags), [pl.col(column) == flag for flag in flags]
+    source = pl.col(column) if is_categorical_dtype(dtype) else _levels_of(column)
+    return source.is_in(list(levels)), [source == level for level in levels]
+
+
+def _all(exprs: list[pl.Expr]) -> pl.Expr:
+    return pl.all_horizontal(exprs) if exprs else pl.lit(value=True)
+
+
+def _any(exprs: list[pl.Expr]) -> pl.Expr:
+    return pl.any_horizontal(exprs) if exprs else pl.lit(value=False)
+
+
+def _single_columns(term: Term) -> list[Term]:
+    """List the one-column terms inside a term (itself, or an interaction's factors)."""
+    return list(term.factors) if term.kind == "interaction" else [term]
+
+
+def _domain_checks(spec: ModelSpec) -> list[_DomainCheck]:
+    """One check per distinct log, log1p or sqrt term (also inside interactions), and weights."""
+    checks: dict[str, _DomainCheck] = {}
+    for term in spec.terms:
+        for part in _single_columns(term):
+            if part.label in checks or part.column is None:
+                continue
+            x = _as_float(part.column)
+            name = f"__check{len(checks)}"
+            if part.transform == "log":
+                checks[part.label] = _DomainCheck(
+                    name, x <= 0, f"log of a value <= 0 in `{part.label}`", _DROP_HINT
+                )
+            elif part.transform == "log1p":
+                checks[part.label] = _DomainCheck(
+                    name, x <= -1, f"log1p of a value <= -1 in `{part.label}`", _DROP_HINT
+                )
+            elif part.transform == "sqrt":
+                hint = _DROP_HINT.replace(" or use `log1p`", "")
+                checks[part.label] = _DomainCheck(
+                    name, x < 0, f"sqrt of a negative value in `{part.label}`", hint
+                )
+    if spec.weights is not None:
+        weights = quote_name(spec.weights)
+        checks[_W] = _DomainCheck(
+            f"__check{len(checks)}",
+            _as_float(spec.weights) <= 0,
+            f"weight <= 0 in the weights column `{spec.weights}`",
+            f"weights must be positive: filter them with `--where` (for example "
+            f'`"{spec.weights}" > 0`) or pass `--drop-invalid` to leave those rows out; '
+            f"`{weights}` is the weights column",
+        )
+    return list(checks.values())
+
+
+def _quick_checks(
+    spec: ModelSpec, schema: SchemaLike, level_ok: pl.Expr, checks: list[_DomainCheck]
+) -> tuple[pl.Expr, ...]:
+    """Build whole-batch reductions that show a batch needs no row dropped.
+
+    They give: the number of nulls in the model columns, a sum of every float model
+    column (finite only if no value is NaN or infinite; an overflowing sum only costs the
+    slow path), whether every categorical level was seen, and whether any domain check
+    fails. Per-row masks cost about 4 ms per 64k rows and 12 columns (measured), these
+    reductions well under 1 ms, and most batches are clean.
+    """
+    columns = spec.model_columns()
+    floats = [_as_float(c).sum() for c in columns if _is_float(schema[c])]
+    return (
+        pl.sum_horizontal([pl.col(c).null_count() for c in columns]).alias("nulls"),
+        (pl.sum_horizontal(floats) if floats else pl.lit(0.0)).alias("total"),
+        level_ok.all().alias("levels"),
+        _any([check.bad for check in checks]).any().alias("bad"),
+    )
+
+
+def _describe_levels(levels: list[str]) -> str:
+    shown = ", ".join(f"`{level}`" for level in levels[:_SHOWN_LEVELS])
+    more = len(levels) - _SHOWN_LEVELS
+    return shown + (f" and {more} more" if more > 0 else "")
+
+
+@dataclass(frozen=True)
+class DesignBuilder:
+    """Turns frames into design matrices with coding learned once from a sample.
+
+    Build one with `DesignBuilder.learn`, not the constructor.
+
+    Attributes
+    ----------
+    spec : ModelSpec
+        The model.
+    column_names : tuple of str
+        Design column names: ``intercept`` first when the model has one, a numeric or
+        transform term under its label, ``poly(x, 3)`` as ``x``, ``x^2``, ``x^3``, and a
+        categorical as one dummy per non-reference level, ``depot[north]``.
+    term_of_column : tuple of str
+        The term label of each design column (``intercept`` for the column of ones).
+    numeric_predictors : tuple of str
+        Source columns used by numeric, transform and interaction terms, in order.
+    levels : mapping of str to tuple of str
+        Each categorical column's levels seen in the sample, sorted, reference included.
+    reference_levels : mapping of str to str
+        Each categorical column's reference level (no dummy column).
+    scaling : mapping of str to tuple of float
+        For each ``std(x)`` term label, the sample mean and SD (ddof=1) it uses.
+    """
+
+    spec: ModelSpec
+    column_names: tuple[str, ...]
+    term_of_column: tuple[str, ...]
+    numeric_predictors: tuple[str, ...]
+    levels: Mapping[str, tuple[str, ...]]
+    reference_levels: Mapping[str, str]
+    scaling: Mapping[str, tuple[float, float]]
+    _design: tuple[pl.Expr, ...] = field(repr=False, compare=False)
+    _quick: tuple[pl.Expr, ...] = field(repr=False, compare=False)
+    _masks: tuple[pl.Expr, ...] = field(repr=False, compare=False)
+    _checks: tuple[_DomainCheck, ...] = field(repr=False, compare=False)
+    _may_overflow: tuple[int, ...] = field(repr=False, compare=False)
+
+    @classmethod
+    def learn(cls, spec: ModelSpec, schema: SchemaLike, sample: pl.DataFrame) -> DesignBuilder:
+        """Learn the coding of every term from a sample.
+
+        Statistics come from the sample rows that have a usable value in every model
+        column and meet every domain check, i.e. the rows `build` would keep.
+
+        Parameters
+        ----------
+        spec : ModelSpec
+            A spec from `build_spec`.
+        schema : mapping of str to polars data type
+            The source's column types (they decide which values count as missing).
+        sample : polars.DataFrame
+            Rows holding at least the spec's model columns (target, terms, weights).
+
+        Returns
+        -------
+        DesignBuilder
+
+        Raises
+        ------
+        SpecError
+            If a categorical column has more than ``spec.max_levels`` levels, a given
+            reference level is not in the sample, or two design columns share a name.
+        DataError
+            If a categorical has fewer than two levels or a ``std`` term has no spread
+            in the usable sample rows.
+        """
+        present = _all([_present(c, schema[c]) for c in spec.model_columns()])
+        checks = _domain_checks(spec)
+        usable = sample.filter(present & ~_any([c.bad for c in checks]).fill_null(value=False))
+
+        names: list[str] = [INTERCEPT] if spec.intercept else []
+        owners: list[str] = [INTERCEPT] if spec.intercept else []
+        design: list[pl.Expr] = [pl.lit(1.0, dtype=pl.Float64).alias(INTERCEPT)]
+        design = design if spec.intercept else []
+        levels: dict[str, tuple[str, ...]] = {}
+        references: dict[str, str] = {}
+        scaling: dict[str, tuple[float, float]] = {}
+        level_ok: list[pl.Expr] = []
+        may_overflow: list[int] = []
+
+        def single(term: Term) -> pl.Expr:
+            column = term.column
+            assert column is not None  # callers pass one-column terms
+            x = _as_float(column)
+            match term.transform:
+                case None:
+                    return x
+                case "log":
+                    return x.log()
+                case "log1p":
+                    return x.log1p()
+                case "sqrt":
+                    return x.sqrt()
+                case "square":
+                    return x * x
+                case "pow":
+                    assert term.arg is not None  # the parser sets the power
+                    return x.pow(term.arg)
+                case "std":
+                    if term.label not in scaling:
+                        scaling[term.label] = _learn_scaling(usable, term)
+                    mean, sd = scaling[term.label]
+                    return (x - mean) / sd
+                case other:
+                    msg = f"transform `{other}` of `{term.label}` cannot enter an interaction"
+                    raise SpecError(msg)
+
+        for term in spec.terms:
+            if term.kind == "categorical":
+                column = term.column
+                assert column is not None  # categorical terms have a column
+                found, reference = _learn_levels(spec, usable, column)
+                levels[column] = found
+                references[column] = reference
+                in_levels, equal = _match_levels(column, schema[column], found)
+                level_ok.append(in_levels)
+                for level, is_level in zip(found, equal, strict=True):
+                    if level != reference:
+                        name = f"{quote_name(column)}[{level}]"
+                        design.append(is_level.cast(pl.Float64).alias(name))
+                        names.append(name)
+                        owners.append(term.label)
+            elif term.transform == "poly":
+                column = term.column
+                assert column is not None and term.arg is not None  # set by the parser
+                for power in range(1, term.arg + 1):
+                    name = quote_name(column) + (f"^{power}" if power > 1 else "")
+                    may_overflow.append(len(names))
+                    design.append(_as_float(column).pow(power).alias(name))
+                    names.append(name)
+                    owners.append(term.label)
+            else:
+                parts = _single_columns(term)
+                expr = single(parts[0])
+                for part in parts[1:]:
+                    expr = expr * single(part)
+                if term.kind == "interaction" or term.transform in _OVERFLOW_TRANSFORMS:
+                    may_overflow.append(len(names))
+                design.append(expr.alias(term.label))
+                names.append(term.label)
+                owners.append(term.label)
+
+        seen: set[str] = set()
+        for name in names:
+            if name in seen:
+                msg = (
+                    f"two design columns are both named `{name}`; a term repeats another "
+                    "(for example `x` next to `poly(x, 2)`): remove one"
+                )
+                raise SpecError(msg)
+            seen.add(name)
+
+        design.append(_as_float(spec.target).alias(_Y))
+        if spec.weights is not None:
+            design.append(_as_float(spec.weights).alias(_W))
+        predictors = [
+            part.column
+            for term in spec.terms
+            if term.kind != "categorical"
+            for part in _single_columns(term)
+            if part.column is not None
+        ]
+        return cls(
+            spec=spec,
+            column_names=tuple(names),
+            term_of_column=tuple(owners),
+            numeric_predictors=tuple(dict.fromkeys(predictors)),
+            levels=MappingProxyType(levels),
+            reference_levels=MappingProxyType(references),
+            scaling=MappingProxyType(scaling),
+            _design=tuple(design),
+            _quick=_quick_checks(spec, schema, _all(level_ok), checks),
+            _masks=(
+                present.alias(_PRESENT),
+                _all(level_ok).fill_null(value=False).alias(_IN_LEVELS),
+                *[check.bad.fill_null(value=False).alias(check.name) for check in checks],
+            ),
+            _checks=tuple(checks),
+            _may_overflow=tuple(may_overflow),
+        )
+
+    def build(self, frame: pl.DataFrame) -> DesignBatch:
+        """Turn one batch into a design matrix, target and weights.
+
+        Rows with a null, NaN or infinite value in a model column are dropped first, then
+        rows whose categorical level was not in the sample, then (only with
+        ``spec.drop_invalid``) rows outside a transform's domain, with weight <= 0, or
+        whose design values overflow float64. Each row is counted once, under the first
+        reason that applies.
+
+        Parameters
+        ----------
+        frame : polars.DataFrame
+            A batch holding the spec's source columns and `ROW_INDEX`.
+
+        Returns
+        -------
+        DesignBatch
+
+        Raises
+        ------
+        DataError
+            Without ``spec.drop_invalid``: for a value outside a transform's domain (log
+            of a value <= 0, sqrt of a negative, log1p of a value <= -1), a weight <= 0,
+            or a design value too large for float64, with the row count in this batch.
+        """
+        n_nulls, total, all_in_levels, any_bad = frame.select(self._quick).row(0)
+        if n_nulls == 0 and math.isfinite(total) and all_in_levels and not any_bad:
+            n_missing = n_unseen = n_domain = 0
+        else:
+            frame, n_missing, n_unseen, n_domain = self._drop_rows(frame)
+        values = frame.select(self._design).to_numpy(order="fortran", writable=True)
+        if self._may_overflow and not np.isfinite(values[:, self._may_overflow]).all():
+            values, frame, n_overflow = self._drop_overflow(values, frame)
+            n_domain += n_overflow
+        p = len(self.column_names)
+        return DesignBatch(
+            x=values[:, :p],
+            y=values[:, p],
+            weights=values[:, p + 1] if self.spec.weights is not None else None,
+            rows=frame.get_column(ROW_INDEX).cast(pl.Int64).to_numpy(),
+            frame=frame,
+            n_dropped_missing=n_missing,
+            n_dropped_domain=n_domain,
+            n_dropped_unseen_level=n_unseen,
+        )
+
+    def _drop_rows(self, frame: pl.DataFrame) -> tuple[pl.DataFrame, int, int, int]:
+        """Drop unusable rows and count them (missing, unseen level, domain), or raise."""
+        masks = frame.select(self._masks)
+        present, in_levels = pl.col(_PRESENT), pl.col(_IN_LEVELS)
+        usable = present & in_levels
+        bad = _any([pl.col(check.name) for check in self._checks])
+        counts = masks.select(
+            (~present).sum().alias(_MISSING),
+            (present & ~in_levels).sum().alias(_UNSEEN),
+            (usable & bad).sum().alias(_DOMAIN),
+            *[(usable & pl.col(check.name)).sum().alias(check.name) for check in self._checks],
+        ).row(0, named=True)
+        if not self.spec.drop_invalid:
+            for check in self._checks:
+                n_bad = int(counts[check.name])
+                if n_bad:
+                    msg = f"{check.problem} for {n_bad:,} rows in this batch; {check.hint}"
+                    raise DataError(msg)
+        keep = masks.select(usable & ~bad).to_series()
+        return (
+            frame.filter(keep),
+            int(counts[_MISSING]),
+            int(counts[_UNSEEN]),
+            int(counts[_DOMAIN]),
+        )
+
+    def _drop_overflow(
+        self, values: NDArray[np.float64], frame: pl.DataFrame
+    ) -> tuple[NDArray[np.float64], pl.DataFrame, int]:
+        """Drop rows whose design values overflowed float64, or raise without drop_invalid."""
+        p = len(self.column_names)
+        finite = np.isfinite(values[:, :p])
+        keep = finite.all(axis=1)
+        n_bad = int(keep.size - np.count_nonzero(keep))
+        if not self.spec.drop_invalid:
+            columns = np.flatnonzero(~finite.all(axis=0))
+            labels = dict.fromkeys(self.term_of_column[int(i)] for i in columns)
+            where = ", ".join(f"`{label}`" for label in labels)
+            msg = (
+                f"values too large for float64 in {where} for {n_bad:,} rows in this batch; "
+                "rescale the column (for example with `std(...)`), filter the rows with "
+                "`--where`, or pass `--drop-invalid` to leave those rows out"
+            )
+            raise DataError(msg)
+        return np.asfortranarray(values[keep]), frame.filter(pl.Series(keep)), n_bad
+
+
+def _learn_levels(
+    spec: ModelSpec, usable: pl.DataFrame, column: str
+) -> tuple[tuple[str, ...], str]:
+    """Sorted levels of a categorical column in the usable sample rows, and its reference.
+
+    The reference is the one given in the spec, else the most frequent level (ties go to
+    the level first in sorted order).
+    """
+    counts = (
+        usable.select(_levels_of(column).alias("level"))
+        .get_column("level")
+        .value_counts(name="n")
+        .sort(["n", "level"], descending=[True, False])
+    )
+    by_frequency = counts.get_column("level").to_list()
+    found = sorted(by_frequency)
+    label = quote_name(column)
+    if len(found) > spec.max_levels:
+        msg = (
+            f"categorical column `{column}` has {len(found):,} levels in the sample, more than "
+            f"the limit of {spec.max_levels}; raise the limit with `--max-levels` or filter "
+            "the rows with `--where`"
+        )
+        raise SpecError(msg)
+    if len(found) < 2:
+        got = f"only the level `{found[0]}`" if found else "no usable rows"
+        msg = (
+            f"categorical term `{label}` has {got} in the sample rows with every model column "
+            "present; it needs at least two levels: remove the term or widen the sample"
+        )
+        raise DataError(msg)
+    reference = spec.reference.get(column, by_frequency[0])
+    if reference not in found:
+        msg = (
+            f"reference level `{reference}` for `{column}` is not among its levels in the "
+            f"sample: {_describe_levels(found)}; choose one of those"
+        )
+        raise SpecError(msg)
+    return tuple(found), reference
+
+
+def _learn_scaling(usable: pl.DataFrame, term: Term) -> tuple[float, float]:
+    """Mean and SD (ddof=1) of the column behind a ``std(x)`` term in the usable rows."""
+    column = term.column
+    assert column is not None  # std terms have a column
+    stats = usable.select(
+        _as_float(column).mean().alias("mean"), _as_float(column).std(ddof=1).alias("sd")
+    ).row(0)
+    mean, sd = stats
+    if mean is None or sd is None or not np.isfinite(sd) or sd <= 0:
+        msg = (
+            f"`{term.label}` cannot be standardised: `{column}` has no spread in the usable "
+            f"sample rows ({usable.height:,} rows); use the bare column or widen the sample"
+        )
+        raise DataError(msg)
+    return float(mean), float(sd)

@@ -1,0 +1,615 @@
+"""What every data source shares: row positions, batches, samples and block-wise reading.
+
+A source is read as a sequence of *blocks* (Parquet row groups, Arrow IPC record batches, fixed
+runs of CSV rows). Sampling picks whole blocks, and fetching rows by position reads only the
+blocks that hold them, so both stay cheap on a large file.
+"""
+
+from __future__ import annotations
+
+import abc
+import contextlib
+from collections.abc import Iterator, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Final, Protocol
+
+import numpy as np
+import polars as pl
+import pyarrow as pa
+
+from triage.core.filter import closest_names_hint
+from triage.errors import SourceError, SpecError, TriageError
+
+if TYPE_CHECKING:
+    from triage._typing import SampleDesign
+
+ROW_INDEX: Final[str] = "__row"
+"""Name of the int64 column holding a row's 0-based position in the source as read."""
+
+_GOLDEN: Final[int] = 0x9E3779B97F4A7C15
+"""Odd constant of the SplitMix64 generator (Steele, Lea and Flood 2014)."""
+
+
+@dataclass(frozen=True)
+class Batch:
+    """One batch of a scan and how far the scan has got."""
+
+    frame: pl.DataFrame
+    """The rows kept by the filter: the requested columns plus `ROW_INDEX`."""
+    rows_read: int
+    """Rows read from the source so far, before filtering (for progress)."""
+
+
+@dataclass(frozen=True)
+class Sample:
+    """Rows read into memory for a quick fit, with an account of how they were chosen."""
+
+    frame: pl.DataFrame
+    """The sampled rows (requested columns plus `ROW_INDEX`), in source order."""
+    description: str
+    """How the rows were chosen, in words, for the screen and the report."""
+    is_whole: bool
+    """True when every row of the source (that passes the filter) is in the sample."""
+    warning: str | None
+    """Why the sample may be unrepresentative, or None."""
+    rows_read: int
+    """Rows read from the source to draw the sample, before filtering."""
+
+
+class Source(Protocol):
+    """A table on disk read in bounded batches; rows are named by their position."""
+
+    @property
+    def path(self) -> Path:
+        """The path (file, directory or glob) the source was opened from."""
+        ...
+
+    @property
+    def description(self) -> str:
+        """One line naming the source, its format and its layout."""
+        ...
+
+    @property
+    def files(self) -> tuple[Path, ...]:
+        """The files read, in the order their rows are numbered."""
+        ...
+
+    @property
+    def n_blocks(self) -> int | None:
+        """Row groups, record batches or files, or None where that needs a scan (CSV)."""
+        ...
+
+    def schema(self) -> dict[str, pl.DataType]:
+        """Column names and polars types, from metadata."""
+        ...
+
+    def row_count(self) -> int | None:
+        """Rows in the source if metadata tells cheaply, else None."""
+        ...
+
+    def count_rows_exact(self) -> int:
+        """Rows in the source, scanning it if needed."""
+        ...
+
+    def scan_batches(
+        self, columns: Sequence[str], *, where: pl.Expr | None = None, batch_rows: int = 65_536
+    ) -> Iterator[Batch]:
+        """Yield the rows in bounded batches (frames with `ROW_INDEX`) and the rows read so far."""
+        ...
+
+    def read_sample(
+        self,
+        columns: Sequence[str],
+        *,
+        n_rows: int,
+        seed: int,
+        design: SampleDesign = "groups",
+        where: pl.Expr | None = None,
+    ) -> Sample:
+        """Read a sample of about `n_rows` rows into memory."""
+        ...
+
+    def read_rows(self, positions: Sequence[int] | np.ndarray) -> pl.DataFrame:
+        """Read every column of the rows at `positions`, in the order given."""
+        ...
+
+
+@contextlib.contextmanager
+def reading(path: Path, kind: str) -> Iterator[None]:
+    """Turn a reader's exception into a one-line `SourceError` naming `path`.
+
+    Parameters
+    ----------
+    path : Path
+        The file or folder being read.
+    kind : str
+        The format in words (``"Parquet"``), for the advice in the message.
+
+    Raises
+    ------
+    SourceError
+        In place of any polars, pyarrow or operating-system error raised inside the block.
+    """
+    try:
+        yield
+    except TriageError:
+        raise
+    except (pl.exceptions.PolarsError, pa.ArrowException, OSError, ValueError) as exc:
+        first_line = (str(exc).strip().splitlines() or [type(exc).__name__])[0]
+        msg = (
+            f"cannot read `{path}` as {kind}: {first_line}; "
+            f"check that it is a complete {kind} file (not still being written)"
+        )
+        raise SourceError(msg) from exc
+
+
+def collect_batches(frame: pl.LazyFrame, *, batch_rows: int) -> Iterator[pl.DataFrame]:
+    """Run a lazy query in bounded batches of about `batch_rows` rows, in order.
+
+    This is the one place triage calls polars' `collect_batches`, which polars marks
+    unstable; a change in that API is fixed here.
+
+    Parameters
+    ----------
+    frame : LazyFrame
+        The query to run.
+    batch_rows : int
+        Rows per batch asked of polars.
+
+    Yields
+    ------
+    DataFrame
+        The results, in the query's row order.
+    """
+    yield from frame.collect_batches(chunk_size=batch_rows, maintain_order=True)
+
+
+def with_positions(frame: pl.DataFrame, positions: np.ndarray) -> pl.DataFrame:
+    """Put `ROW_INDEX` (int64 source positions) in front of `frame`.
+
+    Parameters
+    ----------
+    frame : DataFrame
+        One row per position, or no columns at all (a read of zero columns).
+    positions : ndarray of int64
+        Source position of each row.
+
+    Returns
+    -------
+    DataFrame
+    """
+    index = pl.DataFrame({ROW_INDEX: np.asarray(positions, dtype=np.int64)})
+    return index if frame.width == 0 else index.hstack(frame)
+
+
+def block_positions(blocks: np.ndarray, offsets: np.ndarray) -> np.ndarray:
+    """Source positions of every row of the sorted `blocks`, in order.
+
+    Parameters
+    ----------
+    blocks : ndarray of int
+        Block numbers, increasing.
+    offsets : ndarray of int64
+        Start position of each block, then the total row count.
+
+    Returns
+    -------
+    ndarray of int64
+    """
+    parts = [np.arange(offsets[b], offsets[b + 1], dtype=np.int64) for b in blocks]
+    return np.concatenate(parts) if parts else np.empty(0, dtype=np.int64)
+
+
+def conform(frame: pl.DataFrame, schema: dict[str, pl.DataType]) -> pl.DataFrame:
+    """Cast the columns of `frame` whose type differs from `schema` (pyarrow vs polars reads).
+
+    Parameters
+    ----------
+    frame : DataFrame
+    schema : dict of str to DataType
+
+    Returns
+    -------
+    DataFrame
+    """
+    casts = {
+        name: schema[name]
+        for name, dtype in frame.schema.items()
+        if name in schema and dtype != schema[name]
+    }
+    return frame.cast(casts) if casts else frame  # type: ignore[arg-type]
+
+
+def random_keys(positions: np.ndarray, seed: int) -> np.ndarray:
+    """Pseudo-random uint64 keys of row positions, the same whatever the batching.
+
+    SplitMix64's output function (Steele, Lea and Flood 2014) applied to
+    ``position + (seed + 1) * golden``; keeping the rows with the smallest keys gives a
+    uniform sample that does not depend on how the scan was cut into batches.
+
+    Parameters
+    ----------
+    positions : ndarray of int64
+    seed : int
+
+    Returns
+    -------
+    ndarray of uint64
+    """
+    with np.errstate(over="ignore"):
+        z = positions.astype(np.uint64) + np.uint64(((seed + 1) * _GOLDEN) % 2**64)
+        z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+        z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+        return z ^ (z >> np.uint64(31))
+
+
+def _check_sample_args(n_rows: int, design: str) -> None:
+    if isinstance(n_rows, bool) or not isinstance(n_rows, int) or n_rows < 1:
+        msg = f"`n_rows` must be a positive integer, got `{n_rows!r}`"
+        raise SpecError(msg)
+    if design not in ("groups", "uniform"):
+        msg = f"`design` must be `groups` or `uniform`, got `{design!r}`"
+        raise SpecError(msg)
+
+
+_GROUPS_WARNING: Final[str] = (
+    "this sample is made of whole {unit} picked at random, not single rows: if the rows are "
+    "stored sorted or grouped by some column, it may not represent the whole source; a uniform "
+    "sample or a full pass avoids this"
+)
+
+
+class BlockSource(abc.ABC):
+    """Shared logic of the concrete sources: scans, samples and row fetches over blocks.
+
+    A subclass supplies the metadata, `_scan_raw` (batches with positions, unfiltered), the
+    block layout (`_block_offsets`) and `_read_blocks` (whole blocks by number).
+    """
+
+    _kind: str
+    """The format in words, e.g. ``"Parquet"``."""
+    _block_unit: str
+    """What a block is called in sample descriptions, plural, e.g. ``"row groups"``."""
+
+    def __init__(self, path: Path) -> None:
+        self._path = path
+        self._schema: dict[str, pl.DataType] | None = None
+
+    @property
+    def path(self) -> Path:
+        """The path (file, directory or glob) the source was opened from."""
+        return self._path
+
+    @property
+    def files(self) -> tuple[Path, ...]:
+        """The files read, in the order their rows are numbered."""
+        return (self._path,)
+
+    @property
+    @abc.abstractmethod
+    def description(self) -> str:
+        """One line naming the source, its format and its layout."""
+
+    @property
+    def n_blocks(self) -> int | None:
+        """Row groups or record batches in the source, or None where that needs a scan."""
+        offsets = self._block_offsets(None)
+        return None if offsets is None else len(offsets) - 1
+
+    def schema(self) -> dict[str, pl.DataType]:
+        """Column names and polars types, read from metadata (cheap).
+
+        Returns
+        -------
+        dict of str to DataType
+            In the source's column order; `ROW_INDEX` is not included.
+        """
+        if self._schema is None:
+            with reading(self._path, self._kind):
+                schema = dict(self._read_schema())
+            if ROW_INDEX in schema:
+                msg = (
+                    f"`{self._path}` has a column named `{ROW_INDEX}`, which triage uses for "
+                    "row positions; rename that column in a copy of the data"
+                )
+                raise SourceError(msg)
+            self._schema = schema
+        return self._schema
+
+    def row_count(self) -> int | None:
+        """Rows in the source when metadata tells them cheaply, else None.
+
+        Returns
+        -------
+        int or None
+        """
+        offsets = self._block_offsets(None)
+        return None if offsets is None else int(offsets[-1])
+
+    def count_rows_exact(self) -> int:
+        """Rows in the source; may scan the whole source (CSV).
+
+        Returns
+        -------
+        int
+        """
+        count = self.row_count()
+        return count if count is not None else self._count_by_scan()
+
+    def scan_batches(
+        self, columns: Sequence[str], *, where: pl.Expr | None = None, batch_rows: int = 65_536
+    ) -> Iterator[Batch]:
+        """Yield the rows in bounded batches, reading only `columns`, with the rows read so far.
+
+        Parameters
+        ----------
+        columns : sequence of str
+            Columns to read; `ROW_INDEX` is always added in front.
+        where : Expr, optional
+            Filter applied after positions are attached, so `ROW_INDEX` stays the position
+            in the source. Columns it needs are read for it and not returned unless asked.
+        batch_rows : int, default=65_536
+            Rows read per batch, before filtering.
+
+        Yields
+        ------
+        Batch
+            ``frame``: `ROW_INDEX` (int64) then `columns`, possibly empty after filtering;
+            ``rows_read``: rows read from the source so far, before filtering (for progress).
+
+        Raises
+        ------
+        SpecError
+            If a column is not in the source.
+        SourceError
+            If the source cannot be read.
+        """
+        names = self._check_columns(columns)
+        if isinstance(batch_rows, bool) or not isinstance(batch_rows, int) or batch_rows < 1:
+            msg = f"`batch_rows` must be a positive integer, got `{batch_rows!r}`"
+            raise SpecError(msg)
+        extra = self._filter_only_columns(names, where)
+        rows_read = 0
+        for frame in self._scan_raw(names + extra, batch_rows):
+            rows_read += frame.height
+            yield Batch(self._apply_filter(frame, where, extra), rows_read)
+
+    def read_sample(
+        self,
+        columns: Sequence[str],
+        *,
+        n_rows: int,
+        seed: int,
+        design: SampleDesign = "groups",
+        where: pl.Expr | None = None,
+    ) -> Sample:
+        """Read a sample of about `n_rows` rows into memory, deterministically for `seed`.
+
+        Parameters
+        ----------
+        columns : sequence of str
+            Columns to read; `ROW_INDEX` is added in front.
+        n_rows : int
+            Rows wanted. With ``design="groups"`` whole blocks are added at random until they
+            hold at least `n_rows` rows (counted before `where`); with ``"uniform"`` exactly
+            `n_rows` rows are drawn from those that pass `where`.
+        seed : int
+            Seed of the random choice.
+        design : {"groups", "uniform"}, default="groups"
+            Whole row groups (record batches, CSV blocks) at random, cheap; or an exact
+            uniform sample of rows, which reads the whole source.
+        where : Expr, optional
+            Filter applied after positions are attached.
+
+        Returns
+        -------
+        Sample
+            The frame is in source order. When the source holds no more than `n_rows` rows
+            every row is read and ``is_whole`` is True.
+        """
+        names = self._check_columns(columns)
+        _check_sample_args(n_rows, design)
+        total = self.row_count()
+        if total is not None and total <= n_rows:
+            return self._read_whole(names, total, where)
+        if design == "uniform":
+            return self._read_uniform(names, n_rows, seed, where)
+        return self._read_groups(names, n_rows, seed, where)
+
+    def read_rows(self, positions: Sequence[int] | np.ndarray) -> pl.DataFrame:
+        """Read every column of the rows at `positions`, in the order given.
+
+        Only the blocks holding those rows are read, so a handful of rows is cheap on a
+        large file.
+
+        Parameters
+        ----------
+        positions : sequence of int
+            0-based source positions; repeats are allowed.
+
+        Returns
+        -------
+        DataFrame
+            `ROW_INDEX` then every column, one row per position.
+
+        Raises
+        ------
+        SourceError
+            If a position is outside the source.
+        """
+        wanted = np.asarray(positions, dtype=np.int64).reshape(-1)
+        names = list(self.schema())
+        if wanted.size == 0:
+            return self._empty(names)
+        unique = np.unique(wanted)
+        total = self.row_count()
+        in_range = (unique >= 0) if total is None else (unique >= 0) & (unique < total)
+        found = self._read_positions(names, unique[in_range]) if in_range.all() else None
+        if found is None or found.height < unique.size:
+            got = found[ROW_INDEX].to_numpy() if found is not None else unique[in_range]
+            bad = int(np.setdiff1d(unique, got)[0])
+            total = self.count_rows_exact()
+            msg = (
+                f"row position {bad:,} is outside `{self._path}`, which has {total:,} rows "
+                f"(positions 0 to {total - 1:,})"
+            )
+            raise SourceError(msg)
+        return found[np.searchsorted(found[ROW_INDEX].to_numpy(), wanted)]
+
+    # -- hooks for the concrete sources -------------------------------------------------------
+
+    @abc.abstractmethod
+    def _read_schema(self) -> dict[str, pl.DataType]:
+        """Read the schema from metadata."""
+
+    @abc.abstractmethod
+    def _scan_raw(self, columns: list[str], batch_rows: int) -> Iterator[pl.DataFrame]:
+        """Yield unfiltered batches with `ROW_INDEX`, in source order."""
+
+    @abc.abstractmethod
+    def _block_offsets(self, n_rows: int | None) -> np.ndarray | None:
+        """Start position of each block plus the total, or None when unknown without a scan.
+
+        `n_rows` is the sample size being drawn (None outside sampling); sources with no
+        natural blocks (CSV) size theirs from it.
+        """
+
+    @abc.abstractmethod
+    def _read_blocks(
+        self, columns: list[str], blocks: np.ndarray, offsets: np.ndarray
+    ) -> pl.DataFrame:
+        """Read the sorted `blocks` (numbers into `offsets`) with `ROW_INDEX`, in order."""
+
+    def _count_by_scan(self) -> int:
+        return sum(frame.height for frame in self._scan_raw([], 65_536))
+
+    def _read_positions(self, columns: list[str], positions: np.ndarray) -> pl.DataFrame:
+        """Read the rows at sorted unique `positions` (block-wise by default)."""
+        offsets = self._block_offsets(None)
+        if offsets is None:  # pragma: no cover - sources without metadata override this
+            msg = f"`{self._path}` cannot locate rows without a scan"
+            raise SourceError(msg)
+        blocks = np.unique(np.searchsorted(offsets, positions, side="right") - 1)
+        frame = self._read_blocks(columns, blocks, offsets)
+        return frame.filter(pl.col(ROW_INDEX).is_in(pl.Series(positions)))
+
+    # -- shared helpers -----------------------------------------------------------------------
+
+    def _check_columns(self, columns: Sequence[str]) -> list[str]:
+        if isinstance(columns, str):
+            columns = [columns]
+        schema = self.schema()
+        names: list[str] = []
+        for name in columns:
+            if name == ROW_INDEX or name in names:
+                continue
+            if name not in schema:
+                hint = closest_names_hint(name, schema)
+                msg = f"unknown column `{name}` in `{self._path.name}`{hint}"
+                raise SpecError(msg)
+            names.append(name)
+        return names
+
+    def _filter_only_columns(self, columns: list[str], where: pl.Expr | None) -> list[str]:
+        """Columns the filter needs that were not asked for (read, then dropped)."""
+        if where is None:
+            return []
+        needed = [c for c in where.meta.root_names() if c not in columns and c != ROW_INDEX]
+        return self._check_columns(needed)
+
+    @staticmethod
+    def _apply_filter(frame: pl.DataFrame, where: pl.Expr | None, extra: list[str]) -> pl.DataFrame:
+        if where is None:
+            return frame
+        return frame.filter(where).drop(extra)
+
+    def _empty(self, columns: list[str]) -> pl.DataFrame:
+        schema = self.schema()
+        return pl.DataFrame(schema={ROW_INDEX: pl.Int64, **{c: schema[c] for c in columns}})
+
+    def _concat(self, frames: list[pl.DataFrame], columns: list[str]) -> pl.DataFrame:
+        frames = [f for f in frames if f.height] or [self._empty(columns)]
+        return pl.concat(frames, how="vertical")
+
+    def _read_whole(self, columns: list[str], total: int, where: pl.Expr | None) -> Sample:
+        frames = [b.frame for b in self.scan_batches(columns, where=where)]
+        frame = self._concat(frames, columns)
+        text = f"all {total:,} rows"
+        if where is not None:
+            text += f", {frame.height:,} of them kept by the filter"
+        return Sample(frame, text, is_whole=True, warning=None, rows_read=total)
+
+    def _read_groups(
+        self, columns: list[str], n_rows: int, seed: int, where: pl.Expr | None
+    ) -> Sample:
+        offsets = self._block_offsets(n_rows)
+        if offsets is None:  # pragma: no cover - every source cuts blocks given a sample size
+            msg = f"`{self._path}` cannot be split into blocks for sampling"
+            raise SourceError(msg)
+        total = int(offsets[-1])
+        if total <= n_rows:
+            return self._read_whole(columns, total, where)
+        sizes = np.diff(offsets)
+        order = np.random.default_rng(seed).permutation(sizes.size)
+        n_picked = int(np.searchsorted(np.cumsum(sizes[order]), n_rows) + 1)
+        picked = np.sort(order[:n_picked])
+        extra = self._filter_only_columns(columns, where)
+        frame = self._read_blocks(columns + extra, picked, offsets)
+        rows_read = frame.height
+        frame = self._apply_filter(frame, where, extra)
+        text = self._describe_groups(picked.size, sizes, seed, rows_read)
+        if where is not None:
+            text += f", {frame.height:,} of them kept by the filter"
+        is_whole = picked.size == sizes.size
+        warning = None if is_whole else _GROUPS_WARNING.format(unit=self._block_unit)
+        return Sample(frame, text, is_whole=is_whole, warning=warning, rows_read=rows_read)
+
+    def _describe_groups(self, n_picked: int, sizes: np.ndarray, seed: int, rows: int) -> str:
+        return (
+            f"{n_picked:,} of {sizes.size:,} {self._block_unit} picked at random "
+            f"(seed {seed}), {rows:,} rows"
+        )
+
+    def _read_uniform(
+        self, columns: list[str], n_rows: int, seed: int, where: pl.Expr | None
+    ) -> Sample:
+        kept: pl.DataFrame | None = None
+        kept_keys = np.empty(0, dtype=np.uint64)
+        rows_read = 0
+        n_passing = 0
+        for batch in self.scan_batches(columns, where=where):
+            rows_read = batch.rows_read
+            frame = batch.frame
+            n_passing += frame.height
+            keys = random_keys(frame[ROW_INDEX].to_numpy(), seed)
+            kept = frame if kept is None else pl.concat([kept, frame], how="vertical")
+            kept_keys = np.concatenate([kept_keys, keys])
+            if kept_keys.size > 2 * n_rows:  # prune now and then: memory stays O(n_rows)
+                kept, kept_keys = _smallest(kept, kept_keys, n_rows)
+        if kept is None:
+            kept = self._empty(columns)
+        kept, kept_keys = _smallest(kept, kept_keys, n_rows)
+        frame = kept.sort(ROW_INDEX)
+        population = (
+            f"{n_passing:,} rows that pass the filter"
+            if where is not None
+            else (f"{rows_read:,} rows")
+        )
+        if n_passing <= n_rows:
+            text = f"all {population} (uniform design; read the whole source)"
+            return Sample(frame, text, is_whole=True, warning=None, rows_read=rows_read)
+        text = (
+            f"{frame.height:,} rows drawn uniformly at random (seed {seed}) from {population}; "
+            "this reads the whole source"
+        )
+        return Sample(frame, text, is_whole=False, warning=None, rows_read=rows_read)
+
+
+def _smallest(
+    frame: pl.DataFrame, keys: np.ndarray, n_rows: int
+) -> tuple[pl.DataFrame, np.ndarray]:
+    if keys.size <= n_rows:
+        return frame, keys
+    keep = np.argpartition(keys, n_rows - 1)[:n_rows]
+    return frame[keep], keys[keep]

@@ -1,0 +1,297 @@
+"""Write frames to Parquet or CSV atomically: a temporary file beside the target, then a rename.
+
+A reader never sees a half-written export, an existing file is replaced only when asked, and
+the input files of the session are never overwritten.
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from collections.abc import Iterable
+from pathlib import Path
+from types import TracebackType
+from typing import IO, Final, Literal
+
+import polars as pl
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from triage.errors import ExportError
+
+PERSONAL_DATA_NOTICE: Final[str] = (
+    "this export may hold personal records: a large residual is no proof of error or "
+    "wrongdoing, and the file must be stored and shared under your data-protection rules"
+)
+"""One-line reminder shown whenever rows are exported."""
+
+ExportFormat = Literal["parquet", "csv", "tsv"]
+
+_FORMATS: Final[dict[str, ExportFormat]] = {
+    ".parquet": "parquet",
+    ".pq": "parquet",
+    ".csv": "csv",
+    ".tsv": "tsv",
+}
+
+
+def _format_of(path: Path) -> ExportFormat:
+    fmt = _FORMATS.get(path.suffix.lower())
+    if fmt is None:
+        known = ", ".join(f"`{s}`" for s in _FORMATS)
+        msg = (
+            f"cannot tell the export format of `{path.name}` from its extension "
+            f"`{path.suffix}`; use one of {known}"
+        )
+        raise ExportError(msg)
+    return fmt
+
+
+def _is_protected(path: Path, protected: Iterable[str | os.PathLike[str]]) -> Path | None:
+    """Return the protected path that `path` is, or lies inside, else None."""
+    resolved = path.resolve()
+    for item in protected:
+        guard = Path(item).expanduser().resolve()
+        if resolved == guard or guard in resolved.parents:
+            return guard
+        if path.exists() and guard.exists() and os.path.samefile(path, guard):
+            return guard
+    return None
+
+
+def _check_target(
+    path: str | os.PathLike[str], *, force: bool, protected: Iterable[str | os.PathLike[str]]
+) -> tuple[Path, ExportFormat]:
+    """Validate an export target and return it with its format."""
+    target = Path(path).expanduser()
+    fmt = _format_of(target)
+    guard = _is_protected(target, protected)
+    if guard is not None:
+        msg = (
+            f"refusing to write `{target}`: it is (or lies inside) the input `{guard}`; "
+            "choose another path"
+        )
+        raise ExportError(msg)
+    folder = target.parent
+    if not folder.is_dir():
+        msg = f"folder `{folder}` for `{target.name}` does not exist; create it or choose another"
+        raise ExportError(msg)
+    if target.is_dir():
+        msg = f"`{target}` is a folder; give a file name ending in `{target.suffix}`"
+        raise ExportError(msg)
+    if not force and target.exists():
+        msg = f"`{target.name}` exists; pass `--force` to replace it"
+        raise ExportError(msg)
+    return target, fmt
+
+
+def check_output_path(
+    path: str | os.PathLike[str],
+    *,
+    force: bool = False,
+    protected: Iterable[str | os.PathLike[str]] = (),
+) -> Path:
+    """Check an export target before a long pass, so a bad path fails at once.
+
+    Raises
+    ------
+    ExportError
+        Same cases as `write_frame`: unknown format, protected input, missing folder,
+        existing file without `force`.
+    """
+    return _check_target(path, force=force, protected=protected)[0]
+
+
+def _temporary(target: Path) -> tuple[IO[bytes], Path]:
+    """Create the temporary file beside `target` (same folder, so the rename is atomic)."""
+    try:
+        handle = tempfile.NamedTemporaryFile(  # noqa: SIM115 - closed by the caller
+            mode="wb", dir=target.parent, prefix=f".{target.name}.", suffix=".part", delete=False
+        )
+    except OSError as exc:
+        msg = f"cannot write in folder `{target.parent}`: {exc.strerror}; choose another folder"
+        raise ExportError(msg) from exc
+    return handle, Path(handle.name)
+
+
+def _move_into_place(temporary: Path, target: Path, *, force: bool) -> None:
+    # Checked again at the end: the file may have appeared while the export was written.
+    if not force and target.exists():
+        temporary.unlink(missing_ok=True)
+        msg = f"`{target.name}` exists; pass `--force` to replace it"
+        raise ExportError(msg)
+    try:
+        os.replace(temporary, target)
+    except OSError as exc:
+        temporary.unlink(missing_ok=True)
+        msg = f"cannot move the export into `{target}`: {exc.strerror}"
+        raise ExportError(msg) from exc
+
+
+def write_frame(
+    frame: pl.DataFrame,
+    path: str | os.PathLike[str],
+    *,
+    force: bool = False,
+    protected: Iterable[str | os.PathLike[str]] = (),
+) -> Path:
+    """Write `frame` to Parquet or CSV (by extension), atomically.
+
+    The data go to a temporary file in the target's folder, which is then renamed over the
+    target, so the target is either untouched or complete.
+
+    Parameters
+    ----------
+    frame : DataFrame
+        The rows to write.
+    path : str or PathLike
+        Target ending in ``.parquet``/``.pq``, ``.csv`` or ``.tsv`` (tab-separated).
+    force : bool, default=False
+        Replace an existing file.
+    protected : iterable of path, default=()
+        Paths never written, even with `force` (the input files or folders of the session);
+        a target inside a protected folder is refused too.
+
+    Returns
+    -------
+    Path
+        The path written.
+
+    Raises
+    ------
+    ExportError
+        For an unknown extension, a protected or existing target (without `force`), a missing
+        or unwritable folder, or a frame the format cannot hold.
+
+    See Also
+    --------
+    StreamingExport : Write many batches in bounded memory.
+    """
+    with StreamingExport(path, force=force, protected=protected) as export:
+        export.write(frame)
+    return export.path
+
+
+class StreamingExport:
+    """Write many frames into one Parquet or CSV file in bounded memory, atomically.
+
+    Use as a context manager; the file appears at `path` only when the block ends without an
+    exception. On an error or a cancelled pass the temporary file is removed.
+
+    Parameters
+    ----------
+    path : str or PathLike
+        Target ending in ``.parquet``/``.pq``, ``.csv`` or ``.tsv``.
+    force : bool, default=False
+        Replace an existing file.
+    protected : iterable of path, default=()
+        Paths never written, even with `force`.
+
+    Raises
+    ------
+    ExportError
+        As `write_frame`, from the constructor for a bad target, from `write` for a frame that
+        does not match the first one, and on leaving the block when nothing was written.
+
+    Examples
+    --------
+    >>> with StreamingExport("worst.parquet") as export:  # doctest: +SKIP
+    ...     for frame in source.scan_batches(columns):
+    ...         export.write(frame)
+    """
+
+    def __init__(
+        self,
+        path: str | os.PathLike[str],
+        *,
+        force: bool = False,
+        protected: Iterable[str | os.PathLike[str]] = (),
+    ) -> None:
+        self._target, self._format = _check_target(path, force=force, protected=protected)
+        self._force = force
+        self._handle: IO[bytes] | None = None
+        self._temporary: Path | None = None
+        self._writer: pq.ParquetWriter | None = None
+        self._schema: pl.Schema | None = None
+        self.rows_written = 0
+        """Rows written so far."""
+
+    @property
+    def path(self) -> Path:
+        """The target path."""
+        return self._target
+
+    def __enter__(self) -> StreamingExport:
+        self._handle, self._temporary = _temporary(self._target)
+        return self
+
+    def write(self, frame: pl.DataFrame) -> None:
+        """Append `frame` to the export.
+
+        Parameters
+        ----------
+        frame : DataFrame
+            Same column names and types as the first frame written.
+
+        Raises
+        ------
+        ExportError
+            If called outside the ``with`` block, if the columns differ from the first
+            frame's, or if the format cannot hold the frame (nested columns in CSV).
+        """
+        if self._handle is None:
+            msg = f"`StreamingExport.write` called outside its `with` block for `{self._target}`"
+            raise ExportError(msg)
+        is_first = self._schema is None
+        if self._schema is None:
+            self._schema = frame.schema
+        elif frame.schema != self._schema:
+            msg = (
+                f"a batch for `{self._target.name}` has columns {dict(frame.schema)}, "
+                f"but the first had {dict(self._schema)}; write batches of one shape"
+            )
+            raise ExportError(msg)
+        try:
+            if self._format == "parquet":
+                table = frame.to_arrow()
+                if self._writer is None:
+                    self._writer = pq.ParquetWriter(self._handle, table.schema)
+                self._writer.write_table(table)
+            else:
+                separator = "\t" if self._format == "tsv" else ","
+                frame.write_csv(self._handle, include_header=is_first, separator=separator)
+        except (pl.exceptions.PolarsError, pa.ArrowException, OSError) as exc:
+            first_line = (str(exc).strip().splitlines() or [type(exc).__name__])[0]
+            msg = f"cannot write to `{self._target.name}`: {first_line}"
+            raise ExportError(msg) from exc
+        self.rows_written += frame.height
+
+    def __exit__(
+        self,
+        exc_type: type[BaseException] | None,
+        exc: BaseException | None,
+        traceback: TracebackType | None,
+    ) -> None:
+        handle, temporary = self._handle, self._temporary
+        if handle is None or temporary is None:
+            return  # never entered
+        self._handle = None
+        try:
+            if self._writer is not None:
+                self._writer.close()  # writes the Parquet footer
+            handle.close()
+        except (OSError, pa.ArrowException) as close_error:
+            handle.close()
+            temporary.unlink(missing_ok=True)
+            if exc_type is None:
+                msg = f"cannot finish `{self._target.name}`: {close_error}"
+                raise ExportError(msg) from close_error
+            return
+        if exc_type is not None:
+            temporary.unlink(missing_ok=True)
+            return
+        if self._schema is None:
+            temporary.unlink(missing_ok=True)
+            msg = f"nothing was written to `{self._target.name}`; no file was created"
+            raise ExportError(msg)
+        _move_into_place(temporary, self._target, force=self._force)

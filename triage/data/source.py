@@ -1,0 +1,161 @@
+"""Open a table on disk as a `Source`: Parquet (one file, a folder or a glob), CSV, Arrow IPC.
+
+Every frame a source returns carries `ROW_INDEX`, the row's 0-based position in the source as
+read (across many files: in sorted file order), taken before any filter, so a row found in a
+pass can always be fetched again with `Source.read_rows`.
+
+Examples
+--------
+>>> source = open_source("deliveries.parquet")  # doctest: +SKIP
+>>> for batch in source.scan_batches(["minutes", "distance_km"]):  # doctest: +SKIP
+...     print(batch.frame.height, batch.rows_read)
+"""
+
+from __future__ import annotations
+
+import glob
+import os
+from pathlib import Path
+from typing import Final
+
+from triage.data.base import ROW_INDEX, Batch, BlockSource, Sample, Source
+from triage.data.delimited import CsvOptions, CsvSource
+from triage.data.ipc import IpcSource
+from triage.data.parquet import ParquetDatasetSource, ParquetFileSource
+from triage.errors import SourceError
+
+__all__ = [
+    "DEFAULT_CSV_OPTIONS",
+    "ROW_INDEX",
+    "Batch",
+    "BlockSource",
+    "CsvOptions",
+    "CsvSource",
+    "IpcSource",
+    "ParquetDatasetSource",
+    "ParquetFileSource",
+    "Sample",
+    "Source",
+    "open_source",
+]
+
+PARQUET_SUFFIXES: Final[tuple[str, ...]] = (".parquet", ".pq")
+"""File name endings read as Parquet."""
+
+CSV_SUFFIXES: Final[tuple[str, ...]] = (
+    ".csv", ".tsv", ".txt", ".csv.gz", ".tsv.gz", ".txt.gz",
+)  # fmt: skip
+"""File name endings read as delimited text (gzip-compressed ones included)."""
+
+IPC_SUFFIXES: Final[tuple[str, ...]] = (".arrow", ".feather", ".ipc")
+"""File name endings read as Arrow IPC."""
+
+_GLOB_CHARS: Final[str] = "*?["
+
+DEFAULT_CSV_OPTIONS: Final[CsvOptions] = CsvOptions()
+"""The parsing options `open_source` uses unless told otherwise."""
+
+
+def open_source(path: str | os.PathLike[str], *, csv: CsvOptions = DEFAULT_CSV_OPTIONS) -> Source:
+    """Open a file, folder or glob of tabular data for reading in batches.
+
+    Only metadata is read here (the Parquet or IPC footer, the CSV header and first rows), so
+    opening is cheap; a damaged file fails here rather than in the middle of a pass.
+
+    Parameters
+    ----------
+    path : str or PathLike
+        A ``.parquet``/``.pq`` file; a folder of Parquet files (hive-style ``key=value``
+        subfolders become columns); a glob of Parquet files (``data/*.parquet``,
+        ``data/**/*.parquet``); a ``.csv``/``.tsv``/``.txt`` file, optionally ``.gz``; or an
+        Arrow IPC file (``.arrow``/``.feather``/``.ipc``).
+    csv : CsvOptions, default=DEFAULT_CSV_OPTIONS
+        How to parse delimited text; ignored for other kinds.
+
+    Returns
+    -------
+    Source
+
+    Raises
+    ------
+    SourceError
+        If the path does not exist, holds no Parquet files, has an unknown extension, or
+        cannot be read.
+    """
+    text = os.fspath(path)
+    target = Path(text).expanduser()
+    if any(c in text for c in _GLOB_CHARS) and not target.exists():
+        return _open_glob(target)
+    if target.is_dir():
+        return _open_folder(target)
+    if not target.exists():
+        msg = (
+            f"`{target}` does not exist (working directory `{Path.cwd()}`); "
+            "check the path or give an absolute one"
+        )
+        raise SourceError(msg)
+    name = target.name.lower()
+    if name.endswith(PARQUET_SUFFIXES):
+        return ParquetFileSource(target)
+    if name.endswith(CSV_SUFFIXES):
+        return CsvSource(target, csv)
+    if name.endswith(IPC_SUFFIXES):
+        return IpcSource(target)
+    known = ", ".join(f"`{s}`" for s in PARQUET_SUFFIXES + CSV_SUFFIXES + IPC_SUFFIXES)
+    msg = (
+        f"cannot tell the format of `{target.name}` from its extension; "
+        f"use one of {known}, or a folder of Parquet files"
+    )
+    raise SourceError(msg)
+
+
+def _is_parquet(path: Path) -> bool:
+    return path.is_file() and path.name.lower().endswith(PARQUET_SUFFIXES)
+
+
+def _open_folder(folder: Path) -> Source:
+    # Skip hidden and bookkeeping entries (`.tmp`, `_SUCCESS`, `_delta_log/`), as writers
+    # of partitioned folders leave them beside the data.
+    files = sorted(
+        (
+            p
+            for p in folder.rglob("*")
+            if _is_parquet(p)
+            and not any(part.startswith((".", "_")) for part in p.relative_to(folder).parts)
+        ),
+        key=lambda p: p.as_posix(),
+    )
+    if not files:
+        msg = (
+            f"folder `{folder}` holds no Parquet files (`*.parquet`, `*.pq`); "
+            "point at a Parquet file or folder, or at a CSV or Arrow IPC file"
+        )
+        raise SourceError(msg)
+    return ParquetDatasetSource(folder, files, folder)
+
+
+def _open_glob(pattern: Path) -> Source:
+    matches = sorted(
+        (Path(p) for p in glob.glob(os.fspath(pattern), recursive=True)),
+        key=lambda p: p.as_posix(),
+    )
+    files = [p for p in matches if _is_parquet(p)]
+    if not files:
+        msg = (
+            f"glob `{pattern}` matches no Parquet files (`*.parquet`, `*.pq`); "
+            "check the pattern, and quote it so the shell does not expand it"
+        )
+        raise SourceError(msg)
+    others = [p for p in matches if p.is_file() and p not in files]
+    if others:
+        msg = (
+            f"glob `{pattern}` matches files that are not Parquet, such as `{others[0]}`; "
+            "narrow the pattern to `*.parquet` files"
+        )
+        raise SourceError(msg)
+    base = Path()
+    for part in pattern.parts:
+        if any(c in part for c in _GLOB_CHARS):
+            break
+        base /= part
+    return ParquetDatasetSource(pattern, files, base)

@@ -1,0 +1,399 @@
+"""Fitting several models on the same rows in one pass, with held-out scoring and sample checks.
+
+`compare_models` streams the rows once (a sample, or every row) and, for each batch, keeps
+only the rows every model can use, so in-sample criteria and nested F tests compare like
+with like. Held-out rows (`HoldoutRule`) go to a `HoldoutAccumulator` per model in the same
+pass and are scored with the final coefficients afterwards. K-fold RMSE, the robust refit
+and the curvature check run on the in-memory sample.
+"""
+
+from __future__ import annotations
+
+import threading
+from collections.abc import Collection, Sequence
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Final
+
+import numpy as np
+import polars as pl
+
+from triage.core.checks import CurvatureCheck, RobustCheck, curvature_check, huber_refit
+from triage.core.compare import Comparison, compare_fits
+from triage.core.design import DesignBatch, DesignBuilder
+from triage.core.holdout import (
+    HoldoutAccumulator,
+    HoldoutRule,
+    HoldoutScore,
+    KFoldResult,
+    cut_holdout_mask,
+    kfold_rmse,
+    random_holdout_mask,
+)
+from triage.core.lsq import QRAccumulator
+from triage.data.base import random_keys
+from triage.data.source import ROW_INDEX
+from triage.engine.passes import (
+    DEFAULT_SAMPLE_ROWS,
+    DataSummary,
+    FitOutcome,
+    _check_rows_left,
+    _Counts,
+    _Plan,
+)
+from triage.engine.progress import ProgressCallback, ProgressTracker
+from triage.errors import SpecError
+
+if TYPE_CHECKING:
+    from triage._typing import SampleDesign
+    from triage.core.spec import ModelSpec
+    from triage.data.source import Source
+
+__all__ = [
+    "ComparedModel",
+    "ComparisonOutcome",
+    "compare_models",
+    "curvature_check_outcome",
+    "robust_check_outcome",
+]
+
+HOLDOUT_SALT: Final = 0x6A09E667F3BCC908
+"""Mixed into the seed of the held-out keys so they differ from the sample's keys.
+
+A uniform sample keeps the rows with the smallest `random_keys` under the user's seed;
+with the same keys the sample would be exactly the held-out rows. (The constant is the
+fractional part of sqrt(2) in hex, a number with no structure of its own.)
+"""
+
+
+@dataclass(frozen=True)
+class ComparedModel:
+    """One model of a comparison: its fit on the rows not held out, and its held-out scores."""
+
+    label: str
+    """The terms as written."""
+    outcome: FitOutcome
+    """The fit, its builder and the rows it used."""
+    holdout: HoldoutScore | None
+    """Score on the held-out rows, or None without a held-out rule."""
+    cv: KFoldResult | None
+    """K-fold RMSE on the sample's rows not held out, or None with too few rows."""
+
+
+@dataclass(frozen=True)
+class ComparisonOutcome:
+    """Several models fitted to the same rows, compared."""
+
+    models: tuple[ComparedModel, ...]
+    """In the order given."""
+    comparison: Comparison
+    """Criteria, nested F tests and best marks."""
+    data: DataSummary
+    """The rows every model could use; `rows_used` counts the rows fitted (not held out)."""
+    holdout_rule: HoldoutRule | None
+    """How rows were held out, if they were."""
+    rows_held_out: int
+    """Rows scored but not fitted."""
+    rows_without_cut: int
+    """Rows left out of both parts because the held-out-by column was missing."""
+    folds: int
+    """Folds of the K-fold RMSE."""
+
+
+def _check_same_rows_spec(specs: Sequence[ModelSpec]) -> None:
+    first = specs[0]
+    for spec in specs[1:]:
+        for field, a, b in (
+            ("target", first.target, spec.target),
+            ("weights", first.weights, spec.weights),
+            ("filter", first.where, spec.where),
+        ):
+            if a != b:
+                msg = (
+                    f"models compared must share the {field}: got `{a}` and `{b}`; "
+                    "give the same target, `--weights` and `--where` for every `--terms`"
+                )
+                raise SpecError(msg)
+
+
+def _holdout_positions(
+    frame: pl.DataFrame, rule: HoldoutRule | None
+) -> tuple[np.ndarray, pl.DataFrame, int]:
+    """Return held-out positions of `frame`, the frame without unassigned rows, and their count."""
+    positions = frame[ROW_INDEX].cast(pl.Int64).to_numpy()
+    if rule is None:
+        return np.empty(0, dtype=np.int64), frame, 0
+    if rule.column is None:
+        assert rule.fraction is not None  # HoldoutRule checks exactly one is set
+        keys = random_keys(positions, rule.seed ^ HOLDOUT_SALT)
+        return positions[random_holdout_mask(keys, rule.fraction)], frame, 0
+    held, known = cut_holdout_mask(frame[rule.column], rule.cut)
+    n_unknown = int((~known).sum())
+    kept = frame.filter(pl.Series(known)) if n_unknown else frame
+    return positions[held & known], kept, n_unknown
+
+
+def _common_batches(
+    builders: Sequence[DesignBuilder], frame: pl.DataFrame, counts: _Counts | None
+) -> list[DesignBatch]:
+    """Build every model on the rows all of them can use; count the others once each."""
+    for builder in builders:
+        batch = builder.build(frame)
+        if counts is not None:
+            counts.missing += batch.n_dropped_missing
+            counts.domain += batch.n_dropped_domain
+            counts.unseen += batch.n_dropped_unseen_level
+        frame = batch.frame
+    return [builder.build(frame) for builder in builders]
+
+
+def _learn_builders(
+    specs: Sequence[ModelSpec], source: Source, frame: pl.DataFrame
+) -> list[DesignBuilder]:
+    """Learn each model's coding on the sample rows every model can use.
+
+    Learning on the same rows gives every model the same levels and `std()` scaling, so
+    rebuilding a model's rows later reproduces what was fitted.
+    """
+    schema = source.schema()
+    provisional = [DesignBuilder.learn(spec, schema, frame) for spec in specs]
+    common = _common_batches(provisional, frame, None)[0].frame
+    return [DesignBuilder.learn(spec, schema, common) for spec in specs]
+
+
+def compare_models(
+    source: Source,
+    specs: Sequence[ModelSpec],
+    labels: Sequence[str],
+    *,
+    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    seed: int = 0,
+    design: SampleDesign = "groups",
+    holdout: HoldoutRule | None = None,
+    folds: int = 5,
+    exclude_rows: Collection[int] = (),
+    on_progress: ProgressCallback | None = None,
+    cancel: threading.Event | None = None,
+) -> ComparisonOutcome:
+    """Fit several models to the same rows in one pass and compare them.
+
+    Parameters
+    ----------
+    source : Source
+        Where the rows come from.
+    specs : sequence of ModelSpec
+        The models; they must share target, weights and filter.
+    labels : sequence of str
+        Each model's terms as written, for the table.
+    rows : int or None, default=200_000
+        Sample size; None streams every row.
+    seed : int, default=0
+        Seed of the sample, of the held-out split and of the fold assignment.
+    design : {"groups", "uniform"}, default="groups"
+        How the sample is drawn.
+    holdout : HoldoutRule, optional
+        Rows to hold out of every fit and score afterwards; with it, in-sample figures
+        (R², AIC, BIC, n) describe the rows not held out.
+    folds : int, default=5
+        Folds of the K-fold RMSE on the sample (rows not held out).
+    exclude_rows : collection of int
+        Source positions to leave out (the file is never changed).
+    on_progress, cancel
+        Progress callback and cancel event; see `ProgressTracker`.
+
+    Returns
+    -------
+    ComparisonOutcome
+
+    Raises
+    ------
+    SpecError
+        If the models differ in target, weights or filter, or the held-out column is unknown.
+    DataError
+        If no rows are left to fit.
+    PassCancelled
+        When `cancel` is set; within one batch.
+    """
+    if not specs or len(specs) != len(labels):
+        msg = f"give one label per model: got {len(specs)} models and {len(labels)} labels"
+        raise SpecError(msg)
+    _check_same_rows_spec(specs)
+    extra = [c for spec in specs[1:] for c in spec.source_columns()]
+    if holdout is not None and holdout.column is not None:
+        if holdout.column not in source.schema():
+            msg = f"unknown column `{holdout.column}` in `--holdout-by`; see the source's columns"
+            raise SpecError(msg)
+        extra.append(holdout.column)
+    plan = _Plan.read(
+        source, specs[0], rows=rows, seed=seed, design=design,
+        exclude_rows=exclude_rows, extra_columns=list(dict.fromkeys(extra)),
+    )
+    builders = _learn_builders(specs, source, plan.learning_frame)
+    fits = [
+        QRAccumulator(len(b.column_names), has_intercept=b.spec.intercept) for b in builders
+    ]
+    scorers = [HoldoutAccumulator(len(b.column_names)) for b in builders]
+    counts = _Counts()
+    n_held = n_unknown = 0
+    tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
+    for frame in plan.frames(counts, tracker):
+        held_positions, frame, unknown = _holdout_positions(frame, holdout)
+        n_unknown += unknown
+        batches = _common_batches(builders, frame, counts)
+        is_held = np.isin(batches[0].rows, held_positions)
+        n_held += int(is_held.sum())
+        counts.used += int((~is_held).sum())
+        for batch, fit, scorer in zip(batches, fits, scorers, strict=True):
+            _split_update(batch, is_held, fit, scorer)
+    _check_rows_left(counts, specs[0])
+    summary = plan.summary(counts)
+    models = []
+    for label, builder, accumulator, scorer in zip(labels, builders, fits, scorers, strict=True):
+        fit = accumulator.finalize(builder.column_names)
+        outcome = FitOutcome(builder.spec, builder, fit, summary, plan.learning_frame)
+        score = scorer.score(fit.coef) if holdout is not None else None
+        models.append(ComparedModel(label, outcome, score, None))
+    cvs = _sample_kfold(builders, plan.learning_frame, holdout, exclude_rows, folds, seed)
+    models = [
+        ComparedModel(m.label, m.outcome, m.holdout, cv) for m, cv in zip(models, cvs, strict=True)
+    ]
+    comparison = compare_fits(
+        labels,
+        [m.outcome.fit for m in models],
+        holdouts=[m.holdout for m in models],
+        cv_rmse=[None if m.cv is None else m.cv.rmse for m in models],
+    )
+    return ComparisonOutcome(
+        tuple(models), comparison, summary, holdout, n_held, n_unknown, folds
+    )
+
+
+def _split_update(
+    batch: DesignBatch, is_held: np.ndarray, fit: QRAccumulator, scorer: HoldoutAccumulator
+) -> None:
+    """Send a batch's fitted rows to the fit and its held-out rows to the scorer."""
+    w = batch.weights
+    train = ~is_held
+    if train.any():
+        fit.update(batch.x[train], batch.y[train], None if w is None else w[train])
+    if is_held.any():
+        scorer.update(batch.x[is_held], batch.y[is_held], None if w is None else w[is_held])
+
+
+def _sample_rows(
+    frame: pl.DataFrame, holdout: HoldoutRule | None, exclude_rows: Collection[int]
+) -> pl.DataFrame:
+    """Return the sample rows that are neither held out nor excluded by the user."""
+    held, frame, _ = _holdout_positions(frame, holdout)
+    drop = np.union1d(held, np.fromiter(exclude_rows, dtype=np.int64))
+    if drop.size == 0:
+        return frame
+    return frame.filter(~pl.col(ROW_INDEX).is_in(pl.Series(drop)))
+
+
+def _sample_kfold(
+    builders: Sequence[DesignBuilder],
+    frame: pl.DataFrame,
+    holdout: HoldoutRule | None,
+    exclude_rows: Collection[int],
+    folds: int,
+    seed: int,
+) -> list[KFoldResult | None]:
+    batches = _common_batches(builders, _sample_rows(frame, holdout, exclude_rows), None)
+    return [
+        kfold_rmse(
+            b.x, b.y, b.weights, has_intercept=builder.spec.intercept, folds=folds, seed=seed
+        )
+        for b, builder in zip(batches, builders, strict=True)
+    ]
+
+
+def _sample_batch(
+    outcome: FitOutcome, holdout: HoldoutRule | None, exclude_rows: Collection[int]
+) -> DesignBatch:
+    frame = _sample_rows(outcome.sample, holdout, exclude_rows)
+    return outcome.builder.build(frame.select([*outcome.spec.source_columns(), ROW_INDEX]))
+
+
+def robust_check_outcome(
+    outcome: FitOutcome,
+    *,
+    holdout: HoldoutRule | None = None,
+    exclude_rows: Collection[int] = (),
+) -> RobustCheck:
+    """Refit a model on its in-memory sample with Huber's M-estimator, beside least squares.
+
+    Parameters
+    ----------
+    outcome : FitOutcome
+        A fit (quick or full); its sample rows are refitted.
+    holdout : HoldoutRule, optional
+        Leave the held-out rows out, as the fit did.
+    exclude_rows : collection of int
+        Source positions the user left out.
+
+    Returns
+    -------
+    RobustCheck
+    """
+    batch = _sample_batch(outcome, holdout, exclude_rows)
+    return huber_refit(
+        batch.x,
+        batch.y,
+        outcome.builder.column_names,
+        has_intercept=outcome.spec.intercept,
+        weights=batch.weights,
+    )
+
+
+def curvature_check_outcome(
+    outcome: FitOutcome,
+    *,
+    folds: int = 5,
+    seed: int = 0,
+    holdout: HoldoutRule | None = None,
+    exclude_rows: Collection[int] = (),
+) -> CurvatureCheck:
+    """Check each numeric predictor of a model for a curved effect, on the in-memory sample.
+
+    Parameters
+    ----------
+    outcome : FitOutcome
+        A fit (quick or full).
+    folds : int, default=5
+        Folds of the K-fold RMSE.
+    seed : int, default=0
+        Seed of the fold assignment.
+    holdout : HoldoutRule, optional
+        Leave the held-out rows out, as the fit did.
+    exclude_rows : collection of int
+        Source positions the user left out.
+
+    Returns
+    -------
+    CurvatureCheck
+        The plain term of a predictor (``distance_km``) is replaced by its spline; its other
+        terms (``log(distance_km)``, interactions) stay.
+    """
+    batch = _sample_batch(outcome, holdout, exclude_rows)
+    builder = outcome.builder
+    plain = {
+        t.column: t.label for t in outcome.spec.terms if t.kind == "numeric" and t.column
+    }
+    linear_columns = {
+        column: [j for j, owner in enumerate(builder.term_of_column) if owner == label]
+        for column, label in plain.items()
+    }
+    predictors = {
+        column: batch.frame[column].cast(pl.Float64).to_numpy()
+        for column in builder.numeric_predictors
+    }
+    return curvature_check(
+        batch.x,
+        batch.y,
+        batch.weights,
+        has_intercept=outcome.spec.intercept,
+        predictors=predictors,
+        linear_columns=linear_columns,
+        folds=folds,
+        seed=seed,
+    )

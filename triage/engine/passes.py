@@ -1,0 +1,443 @@
+"""Passes over a source: the fit (pass 1) and the residual diagnostics (pass 2).
+
+The engine never sees Textual: it takes a progress callback and a `threading.Event` for
+cancel, checks the event between batches, and raises `PassCancelled` within one batch.
+"""
+
+from __future__ import annotations
+
+import threading
+from collections.abc import Collection, Iterator, Sequence
+from dataclasses import dataclass
+from typing import TYPE_CHECKING
+
+import numpy as np
+import polars as pl
+
+from triage.core.design import DesignBatch, DesignBuilder
+from triage.core.diagnostics import (
+    Diagnostics,
+    DiagnosticsAccumulator,
+    RowDiagnostics,
+    default_config,
+    row_diagnostics,
+)
+from triage.core.filter import parse_filter
+from triage.core.lsq import LinearFit, QRAccumulator
+from triage.data.source import ROW_INDEX
+from triage.engine.progress import ProgressCallback, ProgressTracker, ReadAhead
+from triage.errors import DataError
+
+if TYPE_CHECKING:
+    from triage._typing import SampleDesign
+    from triage.core.spec import ModelSpec
+    from triage.data.source import Sample, Source
+
+DEFAULT_SAMPLE_ROWS = 200_000
+"""Rows in a quick fit's sample."""
+
+LEARNING_SAMPLE_ROWS = 200_000
+"""Rows read before a full pass to learn category levels and chart bin edges."""
+
+BATCH_ROWS = 65_536
+"""Rows per batch of a streamed pass (DESIGN.md: pieces of about 64k rows ran fastest)."""
+
+
+@dataclass(frozen=True)
+class DataSummary:
+    """Which rows a result was computed on, and why the others were left out."""
+
+    source: str
+    rows_in_source: int | None
+    rows_read: int
+    rows_filtered_out: int
+    rows_dropped_missing: int
+    rows_dropped_domain: int
+    rows_dropped_unseen_level: int
+    rows_excluded: int
+    rows_used: int
+    sample: str | None
+    """None when every row was read, else how the sample was drawn."""
+    sample_warning: str | None
+    is_full_pass: bool
+
+    @property
+    def rows_dropped(self) -> int:
+        """Rows left out for missing values, domain errors or unseen levels."""
+        return self.rows_dropped_missing + self.rows_dropped_domain + self.rows_dropped_unseen_level
+
+
+@dataclass(frozen=True)
+class FitOutcome:
+    """A fitted model together with what it was fitted on."""
+
+    spec: ModelSpec
+    builder: DesignBuilder
+    fit: LinearFit
+    data: DataSummary
+    sample: pl.DataFrame
+    """The in-memory sample the builder learned from (and the quick fit used)."""
+
+
+@dataclass(frozen=True)
+class ReportOutcome:
+    """A fit and its residual diagnostics, computed on the same rows."""
+
+    outcome: FitOutcome
+    diagnostics: Diagnostics
+
+
+@dataclass
+class _Counts:
+    """Row counts gathered while building design batches."""
+
+    read: int = 0
+    kept_by_filter: int = 0
+    missing: int = 0
+    domain: int = 0
+    unseen: int = 0
+    excluded: int = 0
+    used: int = 0
+
+    def add(self, batch: DesignBatch) -> None:
+        self.missing += batch.n_dropped_missing
+        self.domain += batch.n_dropped_domain
+        self.unseen += batch.n_dropped_unseen_level
+        self.used += batch.x.shape[0]
+
+
+class _Plan:
+    """What a pass reads: columns, filter, excluded rows, and where the rows come from.
+
+    With `sample=None` the pass streams every row; otherwise it reads only the sample.
+    """
+
+    def __init__(
+        self,
+        source: Source,
+        spec: ModelSpec,
+        *,
+        sample: Sample | None,
+        learning_frame: pl.DataFrame,
+        exclude_rows: Collection[int] = (),
+        extra_columns: Sequence[str] = (),
+    ) -> None:
+        self.source = source
+        self.spec = spec
+        self.where = _parse_where(source, spec)
+        self.columns = _pass_columns(spec, extra_columns)
+        self.exclude = np.fromiter(sorted(set(exclude_rows)), dtype=np.int64)
+        self.sample = sample
+        self.learning_frame = learning_frame
+        self.rows_in_source = source.row_count()
+
+    @classmethod
+    def read(
+        cls,
+        source: Source,
+        spec: ModelSpec,
+        *,
+        rows: int | None,
+        seed: int,
+        design: SampleDesign,
+        exclude_rows: Collection[int],
+        extra_columns: Sequence[str] = (),
+    ) -> _Plan:
+        """Draw the sample (a quick fit's rows, or a full pass's learning rows) and plan the pass."""
+        sample = source.read_sample(
+            _pass_columns(spec, extra_columns),
+            n_rows=rows if rows is not None else LEARNING_SAMPLE_ROWS,
+            seed=seed,
+            design=design,
+            where=_parse_where(source, spec),
+        )
+        streams = rows is None and not sample.is_whole
+        return cls(
+            source, spec, sample=None if streams else sample, learning_frame=sample.frame,
+            exclude_rows=exclude_rows, extra_columns=extra_columns,
+        )
+
+    @property
+    def is_full_pass(self) -> bool:
+        """True when the pass reads every row of the source."""
+        return self.sample is None or self.sample.is_whole
+
+    def _drop_excluded(self, frame: pl.DataFrame, counts: _Counts) -> pl.DataFrame:
+        if self.exclude.size == 0:
+            return frame
+        keep = ~np.isin(frame[ROW_INDEX].to_numpy(), self.exclude)
+        counts.excluded += int(frame.height - keep.sum())
+        return frame.filter(pl.Series(keep))
+
+    def frames(self, counts: _Counts, tracker: ProgressTracker) -> Iterator[pl.DataFrame]:
+        """Yield the filtered frames of the pass, counting rows and reporting progress."""
+        if self.sample is None:
+            batches = self.source.scan_batches(
+                self.columns, where=self.where, batch_rows=BATCH_ROWS
+            )
+            for batch in ReadAhead(iter(batches)):
+                counts.read = batch.rows_read
+                counts.kept_by_filter += batch.frame.height
+                tracker.advance(batch.rows_read)
+                yield self._drop_excluded(batch.frame, counts)
+            return
+        frame = self.sample.frame
+        counts.read = self.sample.rows_read
+        counts.kept_by_filter = frame.height
+        frame = self._drop_excluded(frame, counts)
+        for start in range(0, max(frame.height, 1), BATCH_ROWS):
+            tracker.check()
+            yield frame.slice(start, BATCH_ROWS)
+        tracker.advance(self.sample.rows_read, force=True)
+
+    def summary(self, counts: _Counts) -> DataSummary:
+        """Describe the rows a finished pass used."""
+        sample = None if self.is_full_pass or self.sample is None else self.sample
+        return DataSummary(
+            source=self.source.description,
+            rows_in_source=self.rows_in_source,
+            rows_read=counts.read,
+            rows_filtered_out=counts.read - counts.kept_by_filter,
+            rows_dropped_missing=counts.missing,
+            rows_dropped_domain=counts.domain,
+            rows_dropped_unseen_level=counts.unseen,
+            rows_excluded=counts.excluded,
+            rows_used=counts.used,
+            sample=None if sample is None else sample.description,
+            sample_warning=None if sample is None else sample.warning,
+            is_full_pass=self.is_full_pass,
+        )
+
+    def rows_total(self) -> int | None:
+        """Rows the pass will read, when known."""
+        if self.sample is None:
+            return self.rows_in_source
+        return self.sample.rows_read
+
+
+def _parse_where(source: Source, spec: ModelSpec) -> pl.Expr | None:
+    return parse_filter(spec.where, source.schema()) if spec.where else None
+
+
+def _pass_columns(spec: ModelSpec, extra_columns: Sequence[str]) -> list[str]:
+    columns = list(spec.source_columns())
+    return columns + [c for c in extra_columns if c not in columns]
+
+
+def _check_rows_left(counts: _Counts, spec: ModelSpec) -> None:
+    if counts.used > 0:
+        return
+    reasons = []
+    if counts.read > counts.kept_by_filter:
+        reasons.append(f"{counts.read - counts.kept_by_filter:,} by the filter `{spec.where}`")
+    if counts.missing:
+        reasons.append(f"{counts.missing:,} for missing values")
+    if counts.domain:
+        reasons.append(f"{counts.domain:,} outside a transform's domain")
+    if counts.excluded:
+        reasons.append(f"{counts.excluded:,} marked by you")
+    why = "; ".join(reasons) if reasons else "the source has no rows"
+    msg = f"no rows left to fit `{spec.target}` ({why}); loosen `--where` or check the columns"
+    raise DataError(msg)
+
+
+def fit_model(
+    source: Source,
+    spec: ModelSpec,
+    *,
+    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    seed: int = 0,
+    design: SampleDesign = "groups",
+    exclude_rows: Collection[int] = (),
+    on_progress: ProgressCallback | None = None,
+    cancel: threading.Event | None = None,
+) -> FitOutcome:
+    """Fit `spec` by least squares on a sample of about `rows` rows, or on every row.
+
+    Parameters
+    ----------
+    source : Source
+        Where the rows come from.
+    spec : ModelSpec
+        The model, already validated against the source's schema.
+    rows : int or None, default=200_000
+        Sample size; None streams every row in bounded memory.
+    seed : int, default=0
+        Seed of the sample.
+    design : {"groups", "uniform"}, default="groups"
+        How the sample is drawn (see `Source.read_sample`).
+    exclude_rows : collection of int
+        Source positions to leave out (a what-if refit; the file is never changed).
+    on_progress, cancel
+        Progress callback and cancel event; see `ProgressTracker`.
+
+    Returns
+    -------
+    FitOutcome
+
+    Raises
+    ------
+    PassCancelled
+        When `cancel` is set; within one batch.
+    DataError
+        When no rows are left or the data cannot support the fit.
+    """
+    plan = _Plan.read(
+        source, spec, rows=rows, seed=seed, design=design, exclude_rows=exclude_rows
+    )
+    return _fit(plan, on_progress=on_progress, cancel=cancel)
+
+
+def _fit(
+    plan: _Plan,
+    *,
+    on_progress: ProgressCallback | None,
+    cancel: threading.Event | None,
+) -> FitOutcome:
+    spec = plan.spec
+    builder = DesignBuilder.learn(spec, plan.source.schema(), plan.learning_frame)
+    accumulator = QRAccumulator(len(builder.column_names), has_intercept=spec.intercept)
+    counts = _Counts()
+    tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
+    for frame in plan.frames(counts, tracker):
+        batch = builder.build(frame)
+        counts.add(batch)
+        if batch.x.shape[0]:
+            accumulator.update(batch.x, batch.y, batch.weights)
+    _check_rows_left(counts, spec)
+    fit = accumulator.finalize(builder.column_names)
+    return FitOutcome(spec, builder, fit, plan.summary(counts), plan.learning_frame)
+
+
+def run_report(
+    source: Source,
+    spec: ModelSpec,
+    *,
+    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    seed: int = 0,
+    design: SampleDesign = "groups",
+    exclude_rows: Collection[int] = (),
+    top_k: int = 20,
+    by: Sequence[str] = (),
+    is_ordered: bool = False,
+    on_progress: ProgressCallback | None = None,
+    cancel: threading.Event | None = None,
+) -> ReportOutcome:
+    """Fit `spec` (pass 1), then compute residual diagnostics on the same rows (pass 2).
+
+    Parameters are those of `fit_model`, plus `top_k` (rows kept per worst-row list), `by`
+    (columns to break residuals down by) and `is_ordered` (rows are in a meaningful order,
+    so serial-correlation flags apply). Progress runs from 0 to 1 over both passes when every
+    row is streamed.
+    """
+    _check_segment_columns(source, spec, by)
+    plan = _Plan.read(
+        source, spec, rows=rows, seed=seed, design=design,
+        exclude_rows=exclude_rows, extra_columns=by,
+    )
+    total = plan.rows_total()
+
+    def halve(offset: int) -> ProgressCallback | None:
+        if on_progress is None:
+            return None
+
+        def report(progress: object) -> None:
+            on_progress(_two_pass_progress(progress, offset, total))  # type: ignore[arg-type]
+
+        return report
+
+    outcome = _fit(plan, on_progress=halve(0), cancel=cancel)
+    diagnostics = _diagnose(
+        plan, outcome, top_k=top_k, by=by, is_ordered=is_ordered,
+        on_progress=halve(total or 0), cancel=cancel,
+    )
+    return ReportOutcome(outcome, diagnostics)
+
+
+def _two_pass_progress(progress: object, offset: int, total: int | None) -> object:
+    from triage.engine.progress import PassProgress
+
+    assert isinstance(progress, PassProgress)
+    if total is None:
+        return progress
+    done = offset + progress.rows_done
+    speed = done / progress.elapsed_s if progress.elapsed_s > 0 else 0.0
+    eta = (2 * total - done) / speed if speed > 0 else None
+    return PassProgress(done, 2 * total, progress.elapsed_s, speed, eta)
+
+
+def _check_segment_columns(source: Source, spec: ModelSpec, by: Sequence[str]) -> None:
+    from triage.core.filter import closest_names_hint
+    from triage.errors import SpecError
+
+    schema = source.schema()
+    for column in by:
+        if column not in schema:
+            msg = f"unknown column `{column}` in `--by`{closest_names_hint(column, schema)}"
+            raise SpecError(msg)
+
+
+def _diagnose(
+    plan: _Plan,
+    outcome: FitOutcome,
+    *,
+    top_k: int,
+    by: Sequence[str],
+    is_ordered: bool,
+    on_progress: ProgressCallback | None,
+    cancel: threading.Event | None,
+) -> Diagnostics:
+    builder, fit = outcome.builder, outcome.fit
+    sample_batch = builder.build(plan.learning_frame)
+    config = default_config(
+        fit,
+        sample_fitted=fit.predict(sample_batch.x),
+        sample_predictors={
+            c: sample_batch.frame[c].to_numpy() for c in builder.numeric_predictors
+        },
+        segment_columns=tuple(by),
+        sample_segments={c: sample_batch.frame[c] for c in by},
+        top_k=top_k,
+        is_ordered=is_ordered,
+    )
+    accumulator = DiagnosticsAccumulator(fit, config)
+    counts = _Counts()
+    tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
+    for frame in plan.frames(counts, tracker):
+        batch = builder.build(frame)
+        if batch.x.shape[0]:
+            accumulator.update(batch)
+    return accumulator.finalize()
+
+
+def diagnose_rows(
+    source: Source, outcome: FitOutcome, positions: Sequence[int]
+) -> tuple[pl.DataFrame, RowDiagnostics]:
+    """Read the full original rows at `positions` and compute their diagnostics under the fit.
+
+    Rows the model cannot use (a missing value, an unseen level) come back in the frame
+    but not in the diagnostics; match the two on `ROW_INDEX`.
+    """
+    frame = source.read_rows(list(positions))
+    batch = outcome.builder.build(frame.select([*outcome.spec.source_columns(), ROW_INDEX]))
+    return frame, row_diagnostics(outcome.fit, batch)
+
+
+def iter_row_diagnostics(
+    source: Source,
+    outcome: FitOutcome,
+    *,
+    on_progress: ProgressCallback | None = None,
+    cancel: threading.Event | None = None,
+) -> Iterator[RowDiagnostics]:
+    """Stream every row of `source` (under the model's filter) and yield per-row diagnostics.
+
+    The fit is `outcome`'s, whether it came from a sample or from every row.
+    """
+    plan = _Plan(source, outcome.spec, sample=None, learning_frame=outcome.sample)
+    tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
+    counts = _Counts()
+    for frame in plan.frames(counts, tracker):
+        batch = outcome.builder.build(frame)
+        if batch.x.shape[0]:
+            yield row_diagnostics(outcome.fit, batch)

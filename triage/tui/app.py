@@ -1,0 +1,84 @@
+"""The triage terminal app: one main screen, keymaps from TOML, help built from live bindings."""
+
+from __future__ import annotations
+
+from typing import ClassVar
+
+from textual.app import App
+from textual.binding import Binding, BindingType
+
+from triage.tui.commands import TriageCommands
+from triage.tui.keymap import binding_ids, load_keymap
+from triage.tui.screens.dialogs import ErrorScreen, PromptScreen
+from triage.tui.screens.export import ExportScreen
+from triage.tui.screens.help import HelpScreen, help_rows
+from triage.tui.screens.main import MainScreen
+from triage.tui.settings import Settings
+
+
+class TriageApp(App[None]):
+    """Judge a least-squares fit on a big table and drill into where it fails, by keyboard."""
+
+    CSS_PATH = "triage.tcss"
+    TITLE = "triage"
+    COMMANDS: ClassVar = {TriageCommands}
+    BINDINGS: ClassVar[list[BindingType]] = [
+        Binding("ctrl+q", "quit", "quit", priority=True, id="quit",
+                tooltip="Leave triage (the data files are never changed)."),
+        Binding("question_mark", "show_help", "keys", id="show-help",
+                tooltip="List every key of the active keymap."),
+        Binding("ctrl+p", "command_palette", "commands", show=False, priority=True,
+                id="open-palette", tooltip="Search the commands by name."),
+    ]
+
+    def __init__(self, settings: Settings, keymap: dict[str, str] | None = None) -> None:
+        super().__init__(ansi_color=settings.is_colorless)
+        self.settings = settings
+        """How the session was opened."""
+        self.keymap = keymap or {}
+        """Merged keymap (binding id -> key) applied on mount."""
+        self.animation_level = "none"
+
+    def on_mount(self) -> None:
+        """Apply the keymap and open the main screen."""
+        self.set_keymap(self.keymap)
+        self.push_screen(MainScreen(self.settings))
+
+    def action_show_help(self) -> None:
+        """Show every key the screen in front answers to."""
+        if isinstance(self.screen, HelpScreen):
+            return
+        self.push_screen(HelpScreen(help_rows(self, self.screen.active_bindings)))
+
+
+def all_binding_ids() -> tuple[str, ...]:
+    """Return the id of every binding of the app and its screens (what a keymap may name)."""
+    classes = (TriageApp, MainScreen, HelpScreen, ErrorScreen, PromptScreen, ExportScreen)
+    return tuple(dict.fromkeys(i for cls in classes for i in binding_ids(cls.BINDINGS)))
+
+
+def make_app(settings: Settings) -> TriageApp:
+    """Build the app as the command line does: settings plus the merged keymap.
+
+    Parameters
+    ----------
+    settings : Settings
+        Data, model, sample and keymap choices.
+
+    Returns
+    -------
+    TriageApp
+        Ready to `run()` (or `run_test()` in tests).
+
+    Raises
+    ------
+    KeymapError
+        When a keymap file is malformed, names an unknown binding or gives a key twice.
+    """
+    keymap = load_keymap(
+        all_binding_ids(),
+        keyset=settings.keyset,
+        user_file=settings.user_keymap,
+        extra_file=settings.keymap_file,
+    )
+    return TriageApp(settings, keymap)

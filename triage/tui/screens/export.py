@@ -1,0 +1,83 @@
+"""The export dialog: marked rows or the worst K, where to write them, and the reminder."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import ClassVar, Literal
+
+from textual.app import ComposeResult
+from textual.binding import BindingType
+from textual.containers import Vertical
+from textual.screen import ModalScreen
+from textual.widgets import Input, RadioButton, RadioSet, Static
+
+from triage.data.export import PERSONAL_DATA_NOTICE
+from triage.tui.screens.dialogs import CLOSE_DIALOG
+from triage.views.text import CRITERION_TITLES
+
+
+@dataclass(frozen=True)
+class ExportRequest:
+    """What the user asked to export."""
+
+    what: Literal["marked", "worst"]
+    """The marked rows, or the first `k` rows of the worst-rows list on screen."""
+    k: int
+    """How many worst rows (ignored for marked rows)."""
+    path: str
+    """Output file: `.parquet`, `.pq`, `.csv` or `.tsv`."""
+
+
+class ExportScreen(ModalScreen[ExportRequest | None]):
+    """Asks which rows to export and where; enter in the file field confirms."""
+
+    BINDINGS: ClassVar[list[BindingType]] = [CLOSE_DIALOG]
+
+    def __init__(self, *, n_marked: int, criterion: str, top_k: int) -> None:
+        super().__init__()
+        self.n_marked = n_marked
+        """Rows marked now."""
+        self.criterion = criterion
+        """Ranking of the worst-rows list on screen."""
+        self.top_k = top_k
+        """Rows the worst-rows list holds."""
+
+    def compose(self) -> ComposeResult:
+        """Lay out the choice, the count, the file field and the reminder."""
+        ranking = CRITERION_TITLES.get(self.criterion, self.criterion)
+        with Vertical(classes="dialog"):
+            yield Static("export rows (all original columns plus diagnostics)",
+                         classes="dialog--title", markup=False)
+            with RadioSet(id="export-what"):
+                yield RadioButton(f"marked rows ({self.n_marked:,})", value=self.n_marked > 0,
+                                  id="export-marked")
+                yield RadioButton(f"worst K rows: {ranking}", value=self.n_marked == 0,
+                                  id="export-worst")
+            yield Input(str(min(20, self.top_k)), id="export-k", type="integer",
+                        placeholder=f"K, at most {self.top_k}")
+            yield Input("", id="export-path", placeholder="rows.parquet or rows.csv")
+            yield Static(f"note: {PERSONAL_DATA_NOTICE}", id="export-notice", markup=False)
+            yield Static("tab: next field   enter in the file field: write   escape: close",
+                         classes="dialog--keys", markup=False)
+
+    def on_mount(self) -> None:
+        """Start in the file field, without a blinking cursor."""
+        for field in self.query(Input):
+            field.cursor_blink = False
+        self.query_one("#export-path", Input).focus()
+
+    def on_input_submitted(self, event: Input.Submitted) -> None:
+        """Confirm when enter is pressed in the file field with a path typed."""
+        event.stop()
+        path = self.query_one("#export-path", Input).value.strip()
+        if not path:
+            self.query_one("#export-path", Input).focus()
+            return
+        is_marked = self.query_one("#export-marked", RadioButton).value
+        k_text = self.query_one("#export-k", Input).value.strip()
+        k = max(1, min(self.top_k, int(k_text))) if k_text.isdigit() else self.top_k
+        self.dismiss(ExportRequest("marked" if is_marked else "worst", k, path))
+
+    def action_close_dialog(self) -> None:
+        """Close without writing anything."""
+        self.dismiss(None)

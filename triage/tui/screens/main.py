@@ -1,0 +1,874 @@
+"""The main screen: owns the session, runs passes in thread workers, pushes results to panes."""
+
+from __future__ import annotations
+
+from collections import OrderedDict
+from dataclasses import replace
+from itertools import count
+from typing import TYPE_CHECKING, ClassVar, Final, cast
+
+from textual import on, work
+from textual.app import ComposeResult
+from textual.binding import Binding, BindingType
+from textual.containers import Container
+from textual.screen import Screen
+from textual.widgets import DataTable, Footer
+from textual.worker import Worker, WorkerState, get_current_worker
+
+from triage._typing import CRITERIA
+from triage.errors import PassCancelled, TriageError
+from triage.tui.messages import (
+    ExportWritten,
+    PassFailed,
+    PassFinished,
+    PassProgressed,
+    PassStopped,
+    RowsFetched,
+    SourceOpened,
+)
+from triage.tui.screens.dialogs import ErrorScreen, PromptScreen
+from triage.tui.screens.export import ExportRequest, ExportScreen
+from triage.tui.session import ModelDraft, SessionFit, column_profile
+from triage.tui.widgets.panes import (
+    PANE_BY_ID,
+    PANES,
+    ColumnsPane,
+    FitPane,
+    FitsPane,
+    FlagsPane,
+    Pane,
+    PaneId,
+    PredictorsPane,
+    RowPane,
+    RowView,
+    SegmentsPane,
+    SpreadPane,
+    TrendPane,
+    WorstPane,
+)
+from triage.tui.widgets.status import ModelLine, PaneStrip, PassLine
+
+if TYPE_CHECKING:
+    import polars as pl
+
+    from triage._typing import Criterion
+    from triage.core.spec import ModelSpec
+    from triage.data.source import Source
+    from triage.tui.settings import Settings
+
+TILE_MIN_WIDTH: Final = 110
+"""From this many columns the panes of one page tile side by side."""
+
+TILE_MIN_HEIGHT: Final = 32
+"""From this many lines the panes of one page tile in two rows."""
+
+PROFILE_ROWS: Final = 20_000
+"""Rows read to profile the columns when the data opens."""
+
+MAX_SEGMENT_COLUMNS: Final = 8
+"""Most columns the diagnostics pass breaks residuals down by."""
+
+MAX_SEGMENT_LEVELS: Final = 50
+"""A numeric column with at most this many distinct values in the sample can segment."""
+
+ROW_CACHE_SIZE: Final = 64
+"""Original rows kept after fetching, so stepping back and forth reads nothing again."""
+
+COLUMN_ACTIONS: Final = frozenset(
+    {"set_target", "toggle_term", "cycle_transform", "toggle_categorical", "set_weights"}
+)
+"""Actions that work on the column under the cursor of the Columns pane."""
+
+FIT_ACTIONS: Final = frozenset(
+    {
+        "start_full_pass", "toggle_robust", "next_predictor", "next_criterion",
+        "next_segment_column", "open_row", "next_row", "previous_row", "toggle_mark",
+        "refit_without_marked", "clear_marks", "export_rows",
+    }
+)
+"""Actions that need a fit on screen."""
+
+
+def _pane_binding(index: int, pane_id: str, title: str) -> Binding:
+    key = str((index + 1) % 10)
+    return Binding(
+        key,
+        f"show_pane('{pane_id}')",
+        title,
+        show=False,
+        id=f"pane-{pane_id}",
+        tooltip=f"Bring the {title} pane to the front.",
+    )
+
+
+class MainScreen(Screen[None]):
+    """Panes of one session around a status line; the only place that starts passes."""
+
+    BINDINGS: ClassVar[list[BindingType]] = [
+        *(_pane_binding(i, info.pane_id, info.title) for i, info in enumerate(PANES)),
+        Binding("greater_than_sign", "cycle_pane(1)", "next pane", show=False, id="next-pane",
+                tooltip="Bring the next pane to the front."),
+        Binding("less_than_sign", "cycle_pane(-1)", "previous pane", show=False,
+                id="previous-pane", tooltip="Bring the previous pane to the front."),
+        Binding("ctrl+o", "open_data", "open file", show=False, id="open-data",
+                tooltip="Open another Parquet, CSV or Arrow file, folder or glob."),
+        Binding("y", "set_target", "target", id="set-target",
+                tooltip="Make the column under the cursor the target of the model."),
+        Binding("space", "toggle_term", "term", show=False, id="toggle-term",
+                tooltip="Add the column under the cursor as a term, or remove its term."),
+        Binding("t", "cycle_transform", "transform", show=False, id="cycle-transform",
+                tooltip="Step the column's term through log, log1p, sqrt, square, std, none."),
+        Binding("c", "toggle_categorical", "categorical", show=False, id="toggle-categorical",
+                tooltip="Treat the column under the cursor as categories, or stop doing so."),
+        Binding("w", "set_weights", "weights", show=False, id="set-weights",
+                tooltip="Use the column under the cursor as case weights, or stop doing so."),
+        Binding("f", "edit_filter", "filter", show=False, id="edit-filter",
+                tooltip="Type a row filter in SQL syntax, e.g. depot = 'north' AND hour < 20."),
+        Binding("e", "edit_terms", "type terms", show=False, id="edit-terms",
+                tooltip="Type the terms, e.g. distance_km, log(stops), depot, or y ~ a + b."),
+        Binding("s", "quick_fit", "sample fit", id="quick-fit",
+                tooltip="Fit the model on a sample now (about a second on a large file)."),
+        Binding("a", "start_full_pass", "every row", id="start-full-pass",
+                tooltip="Fit and diagnose on every row in the background."),
+        Binding("x", "cancel_pass", "stop pass", id="cancel-pass",
+                tooltip="Stop the running pass; the sample results stay on screen."),
+        Binding("r", "toggle_robust", "robust SE", show=False, id="toggle-robust",
+                tooltip="Show standard errors robust to changing spread (HC3), or the usual ones."),
+        Binding("v", "next_predictor", "next predictor", show=False, id="next-predictor",
+                tooltip="Show residuals against the next predictor."),
+        Binding("o", "next_criterion", "next ranking", show=False, id="next-criterion",
+                tooltip="Rank the worst rows by the next criterion."),
+        Binding("g", "next_segment_column", "next segment column", show=False,
+                id="next-segment-column", tooltip="Break residuals down by the next column."),
+        Binding("d", "open_row", "open row", show=False, id="open-row",
+                tooltip="Show the whole original row under the cursor with its diagnostics."),
+        Binding("n", "step_row(1)", "next row", show=False, id="next-row",
+                tooltip="Open the next row of the worst-rows list."),
+        Binding("p", "step_row(-1)", "previous row", show=False, id="previous-row",
+                tooltip="Open the previous row of the worst-rows list."),
+        Binding("m", "toggle_mark", "mark row", show=False, id="toggle-mark",
+                tooltip="Mark or unmark the current row for a what-if refit or an export."),
+        Binding("i", "refit_without_marked", "refit w/o marked", show=False,
+                id="refit-without-marked",
+                tooltip="Refit without the marked rows and show how each coefficient moved."),
+        Binding("M", "clear_marks", "clear marks", show=False, id="clear-marks",
+                tooltip="Unmark every row."),
+        Binding("E", "export_rows", "export", show=False, id="export-rows",
+                tooltip="Write the marked rows or the worst K rows to Parquet or CSV."),
+    ]
+
+    def __init__(self, settings: Settings) -> None:
+        super().__init__()
+        self.settings = settings
+        """How the session was opened."""
+        self.source: Source | None = None
+        """The open data source."""
+        self.draft = ModelDraft(
+            target=settings.target,
+            weights=settings.weights,
+            where=settings.where,
+            categorical=settings.categorical,
+            intercept=settings.intercept,
+        )
+        """The model as being built."""
+        self.fits: list[SessionFit] = []
+        """Every fit of the session, oldest first."""
+        self.current: SessionFit | None = None
+        """The fit on screen."""
+        self.marked: set[int] = set()
+        """Source positions the user marked."""
+        self.front: PaneId = "columns"
+        """The pane in front (the only one shown in a small terminal)."""
+        self.is_tiled = False
+        """True when the terminal is large enough to tile the panes of a page."""
+        self.is_robust = False
+        """Show robust (HC3) standard errors."""
+        self.predictor_index = 0
+        """Which numeric predictor the Predictors pane shows."""
+        self.criterion_index = 0
+        """Which ranking the Worst pane uses (index into `CRITERIA`)."""
+        self.segment_index = 0
+        """Which column the Segments pane breaks residuals down by."""
+        self.segment_columns: tuple[str, ...] = ()
+        """Columns the diagnostics pass breaks residuals down by."""
+        self.row_position: int | None = None
+        """Source position of the row in the Row pane."""
+        self.row_cache: OrderedDict[int, RowView] = OrderedDict()
+        """Recently fetched rows, newest last."""
+        self._pass_ids = count(1)
+        self.running_pass: int | None = None
+        """Id of the running full pass, or None."""
+        self.full_pass_worker: Worker[None] | None = None
+        """Worker of the running full pass, kept so one key can cancel it."""
+        self.pending_baseline: int | None = None
+        """Number of the fit a running what-if refit compares against."""
+
+    # ----------------------------------------------------------------------------------------
+    # layout
+
+    def compose(self) -> ComposeResult:
+        """Lay out the pane strip, model line, panes, pass line and footer."""
+        yield PaneStrip(id="pane-strip")
+        yield ModelLine(id="model-line")
+        with Container(id="panes"):
+            yield ColumnsPane(PANE_BY_ID["columns"])
+            yield FitPane(PANE_BY_ID["fit"])
+            yield FlagsPane(PANE_BY_ID["flags"])
+            yield FitsPane(PANE_BY_ID["fits"])
+            yield SpreadPane(PANE_BY_ID["spread"])
+            yield TrendPane(PANE_BY_ID["trend"])
+            yield PredictorsPane(PANE_BY_ID["predictors"])
+            yield SegmentsPane(PANE_BY_ID["segments"])
+            yield WorstPane(PANE_BY_ID["worst"])
+            yield RowPane(PANE_BY_ID["row"])
+        yield PassLine(id="pass-line")
+        yield Footer(compact=True)
+
+    def on_mount(self) -> None:
+        """Lay out for the terminal's size, then open the data in the background."""
+        for pane in self.query(Pane):
+            pane.is_colorless = self.settings.is_colorless
+        self._apply_layout()
+        self._update_model_line()
+        if self.settings.data is not None:
+            self.open_data(self.settings.data)
+
+    def on_resize(self) -> None:
+        """Tile or stack the panes when the terminal changes size."""
+        self._apply_layout()
+
+    def _apply_layout(self) -> None:
+        size = self.app.size
+        self.is_tiled = size.width >= TILE_MIN_WIDTH and size.height >= TILE_MIN_HEIGHT
+        page = PANE_BY_ID[self.front].page
+        panes = self.query_one("#panes", Container)
+        panes.set_class(self.is_tiled, "-tiled")
+        for name in ("model", "residuals", "rows"):
+            panes.set_class(self.is_tiled and page == name, f"-page-{name}")
+        shown: set[str] = set()
+        for pane in self.query(Pane):
+            is_shown = pane.info.pane_id == self.front or (
+                self.is_tiled and pane.info.page == page
+            )
+            pane.set_class(is_shown, "-shown")
+            pane.set_class(pane.info.pane_id == self.front, "-front")
+            if is_shown:
+                shown.add(pane.info.pane_id)
+        strip = self.query_one(PaneStrip)
+        strip.current = self.front
+        strip.shown = frozenset(shown)
+        self.refresh_pane_strip()
+
+    def refresh_pane_strip(self) -> None:
+        """Show each pane's key as the active keymap has it."""
+        keys: dict[str, str] = {}
+        for active in self.active_bindings.values():
+            binding = active.binding
+            if binding.id is not None and binding.id.startswith("pane-"):
+                keys.setdefault(binding.id.removeprefix("pane-"), self.app.get_key_display(binding))
+        self.query_one(PaneStrip).entries = tuple(
+            (info.pane_id, keys.get(info.pane_id, ""), info.title) for info in PANES
+        )
+
+    def pane(self, pane_id: PaneId) -> Pane:
+        """Return the pane with id `pane_id`."""
+        return self.query_one(f"#pane-{pane_id}", Pane)
+
+    def action_show_pane(self, pane_id: str) -> None:
+        """Bring a pane to the front and give it the keyboard."""
+        if pane_id not in PANE_BY_ID:
+            return
+        self.front = cast("PaneId", pane_id)
+        self._apply_layout()
+        self.pane(self.front).focus_target().focus()
+        self.refresh_bindings()
+
+    def action_cycle_pane(self, step: int) -> None:
+        """Bring the next (step 1) or previous (step -1) pane to the front."""
+        ids = [info.pane_id for info in PANES]
+        self.action_show_pane(ids[(ids.index(self.front) + step) % len(ids)])
+
+    def check_action(self, action: str, parameters: tuple[object, ...]) -> bool | None:
+        """Grey out keys that need the Columns pane in front, data, or a fit."""
+        if action in COLUMN_ACTIONS:
+            return None if self.source is None or self.front != "columns" else True
+        if action in {"edit_filter", "edit_terms", "quick_fit"}:
+            return None if self.source is None else True
+        if action == "cancel_pass":
+            return None if self.running_pass is None else True
+        if action in FIT_ACTIONS:
+            return None if self.current is None else True
+        return True
+
+    # ----------------------------------------------------------------------------------------
+    # errors
+
+    def show_error(self, message: str, *, title: str = "something went wrong") -> None:
+        """Show a message the user must dismiss; the app stays open."""
+        self.app.push_screen(ErrorScreen(message, title=title))
+
+    def on_worker_state_changed(self, event: Worker.StateChanged) -> None:
+        """Report a worker that failed with an unexpected error, without closing the app."""
+        if event.state is WorkerState.ERROR and event.worker.error is not None:
+            error = event.worker.error
+            self.log.error(f"worker {event.worker.name} failed: {error!r}")
+            self.show_error(
+                f"{type(error).__name__}: {error}\n\nThis is a bug in triage; the app stays open.",
+                title="unexpected error",
+            )
+
+    # ----------------------------------------------------------------------------------------
+    # opening the data
+
+    @work(thread=True, exclusive=True, group="open", exit_on_error=False)
+    def open_data(self, path: str) -> None:
+        """Open the source and profile its columns on a small sample (thread worker)."""
+        from triage.data.source import CsvOptions, open_source
+
+        try:
+            source = open_source(path, csv=self.settings.csv or CsvOptions())
+            schema = source.schema()
+            sample = source.read_sample(
+                list(schema), n_rows=PROFILE_ROWS, seed=self.settings.seed, design="groups"
+            )
+            profile = column_profile(schema, sample.frame)
+        except TriageError as error:
+            self.post_message(PassFailed(0, str(error), "cannot open the data"))
+            return
+        self.post_message(SourceOpened(source, profile))
+
+    def action_open_data(self) -> None:
+        """Ask for another data source and open it (the session's fits are kept)."""
+
+        def apply(path: str | None) -> None:
+            if path and path.strip():
+                self.open_data(path.strip())
+
+        self.app.push_screen(
+            PromptScreen("open data (Parquet file, folder or glob; CSV; Arrow IPC)",
+                         placeholder="sample_parquet/deliveries.parquet"),
+            apply,
+        )
+
+    def on_source_opened(self, message: SourceOpened) -> None:
+        """Show the columns, and fit at once when the command line gave a target."""
+        self.source = message.source
+        self.segment_columns = self._segment_columns(message.profile)
+        columns = self.query_one(ColumnsPane)
+        columns.profile = message.profile
+        if self.settings.terms:
+            try:
+                self.draft = self.draft.with_terms_text(self.settings.terms)
+            except TriageError as error:
+                self.show_error(str(error), title="bad terms")
+        columns.draft = self.draft
+        self._update_model_line()
+        self.refresh_bindings()
+        if self.front == "columns":
+            columns.focus_target().focus()
+        if self.draft.target is not None:
+            self.start_pass(is_full=False)
+            if self.settings.is_full_at_start:
+                self.start_pass(is_full=True)
+
+    def _segment_columns(self, profile: pl.DataFrame) -> tuple[str, ...]:
+        """Choose columns to break residuals down by: text-like ones, then few-valued numbers."""
+        from triage.core.spec import is_categorical_dtype
+
+        assert self.source is not None
+        schema = self.source.schema()
+        text_like = [n for n, d in schema.items() if is_categorical_dtype(d)]
+        few = [
+            row["name"]
+            for row in profile.iter_rows(named=True)
+            if row["name"] not in text_like
+            and schema[row["name"]].is_integer()
+            and 1 < row["distinct"] <= MAX_SEGMENT_LEVELS
+        ]
+        return tuple([*text_like, *few][:MAX_SEGMENT_COLUMNS])
+
+    # ----------------------------------------------------------------------------------------
+    # building the model
+
+    def _cursor_column(self) -> str | None:
+        return self.query_one(ColumnsPane).cursor_column()
+
+    def _set_draft(self, draft: ModelDraft) -> None:
+        """Keep a changed model, show it, and fit it on the sample when it has a target."""
+        self.draft = draft
+        self.query_one(ColumnsPane).draft = draft
+        self._update_model_line()
+        if draft.target is not None:
+            self.start_pass(is_full=False)
+
+    def _update_model_line(self) -> None:
+        if self.draft.target is None and not self.draft.terms:
+            self.query_one(ModelLine).text = "no model yet: choose a target column in Columns"
+            return
+        parts = [self.draft.formula()]
+        if self.draft.weights:
+            parts.append(f"weights {self.draft.weights}")
+        if self.draft.where:
+            parts.append(f"where {self.draft.where}")
+        if self.draft.categorical:
+            parts.append("categorical " + ", ".join(self.draft.categorical))
+        self.query_one(ModelLine).text = "  |  ".join(parts)
+
+    def action_set_target(self) -> None:
+        """Make the column under the cursor the target."""
+        column = self._cursor_column()
+        if column is not None:
+            self._set_draft(self.draft.with_target(column))
+
+    def action_toggle_term(self) -> None:
+        """Add or remove the term on the column under the cursor."""
+        column = self._cursor_column()
+        if column is not None:
+            self._set_draft(self.draft.with_term_toggled(column))
+
+    def action_cycle_transform(self) -> None:
+        """Step the transform of the term on the column under the cursor."""
+        column = self._cursor_column()
+        if column is not None:
+            self._set_draft(self.draft.with_transform_cycled(column))
+
+    def action_toggle_categorical(self) -> None:
+        """Mark or unmark the column under the cursor as categorical."""
+        column = self._cursor_column()
+        if column is not None:
+            self._set_draft(self.draft.with_categorical_toggled(column))
+
+    def action_set_weights(self) -> None:
+        """Use the column under the cursor as weights, or stop."""
+        column = self._cursor_column()
+        if column is not None:
+            self._set_draft(self.draft.with_weights_toggled(column))
+
+    def action_edit_filter(self) -> None:
+        """Ask for a row filter."""
+
+        def apply(text: str | None) -> None:
+            if text is None:
+                return
+            where = text.strip() or None
+            self._set_draft(replace(self.draft, where=where))
+
+        self.app.push_screen(
+            PromptScreen(
+                "keep rows where (SQL expression; empty keeps every row)",
+                value=self.draft.where or "",
+                placeholder="depot = 'north' AND hour < 20",
+            ),
+            apply,
+        )
+
+    def action_edit_terms(self) -> None:
+        """Ask for the terms in the term syntax."""
+
+        def apply(text: str | None) -> None:
+            if text is None:
+                return
+            try:
+                draft = self.draft.with_terms_text(text)
+            except TriageError as error:
+                self.show_error(str(error), title="bad terms")
+                return
+            self._set_draft(draft)
+
+        self.app.push_screen(
+            PromptScreen(
+                "terms (comma list, or target ~ a + b)",
+                value=self.draft.terms_text(),
+                placeholder="distance_km, log(stops), depot, stops:weight_kg",
+            ),
+            apply,
+        )
+
+    @on(DataTable.RowSelected, "#columns-table")
+    def _column_chosen(self) -> None:
+        """Enter on a column toggles its term."""
+        self.action_toggle_term()
+
+    # ----------------------------------------------------------------------------------------
+    # passes
+
+    def _spec(self) -> ModelSpec | None:
+        """Check the draft against the data; show what is wrong if it does not fit."""
+        if self.source is None:
+            return None
+        try:
+            return self.draft.to_spec(
+                self.source.schema(),
+                reference=self.settings.reference,
+                max_levels=self.settings.max_levels,
+                drop_invalid=self.settings.drop_invalid,
+            )
+        except TriageError as error:
+            self.show_error(str(error), title="the model cannot be fitted")
+            return None
+
+    def action_quick_fit(self) -> None:
+        """Fit on a sample now."""
+        self.start_pass(is_full=False)
+
+    def action_start_full_pass(self) -> None:
+        """Fit and diagnose on every row in the background."""
+        self.start_pass(is_full=True)
+
+    def start_pass(
+        self, *, is_full: bool, excluded: frozenset[int] = frozenset(), baseline: int | None = None
+    ) -> None:
+        """Start a sample fit or a full pass on the current model.
+
+        Parameters
+        ----------
+        is_full : bool
+            Read every row (background, with progress and cancel) instead of the sample.
+        excluded : frozenset of int
+            Source positions to leave out (a what-if refit).
+        baseline : int, optional
+            Number of the fit a what-if refit is compared with.
+        """
+        spec = self._spec()
+        if spec is None:
+            return
+        pass_id = next(self._pass_ids)
+        self.pending_baseline = baseline
+        if is_full:
+            self.running_pass = pass_id
+            self.full_pass_worker = self.run_full_pass(pass_id, spec, excluded)
+            self.query_one(PassLine).set_class(True, "-running")
+            self.notify("reading every row in the background; the sample results stay until done")
+        else:
+            self.run_sample_fit(pass_id, spec, excluded)
+        self.refresh_bindings()
+
+    def _report(
+        self, spec: ModelSpec, excluded: frozenset[int], *, rows: int | None, pass_id: int
+    ) -> None:
+        from triage.engine.passes import run_report
+
+        assert self.source is not None
+        worker = get_current_worker()
+        try:
+            report = run_report(
+                self.source,
+                spec,
+                rows=rows,
+                seed=self.settings.seed,
+                design=self.settings.sample_design,
+                exclude_rows=excluded,
+                top_k=self.settings.top_k,
+                by=self.segment_columns,
+                on_progress=None
+                if rows is not None
+                else lambda p: self.post_message(PassProgressed(pass_id, p)),
+                cancel=worker.cancelled_event,
+            )
+        except PassCancelled:
+            self.post_message(PassStopped(pass_id))
+        except TriageError as error:
+            self.post_message(PassFailed(pass_id, str(error), "the fit failed"))
+        else:
+            self.post_message(PassFinished(pass_id, report, excluded))
+
+    @work(thread=True, exclusive=True, group="sample-fit", exit_on_error=False)
+    def run_sample_fit(self, pass_id: int, spec: ModelSpec, excluded: frozenset[int]) -> None:
+        """Fit and diagnose on the sample (thread worker; a newer request cancels it)."""
+        self._report(spec, excluded, rows=self.settings.sample_rows, pass_id=pass_id)
+
+    @work(thread=True, exclusive=True, group="full-pass", exit_on_error=False)
+    def run_full_pass(self, pass_id: int, spec: ModelSpec, excluded: frozenset[int]) -> None:
+        """Fit and diagnose on every row (thread worker; the cancel key stops it)."""
+        self._report(spec, excluded, rows=None, pass_id=pass_id)
+
+    def action_cancel_pass(self) -> None:
+        """Stop the running full pass; the results on screen stay."""
+        if self.full_pass_worker is not None:
+            self.full_pass_worker.cancel()
+
+    def on_pass_progressed(self, message: PassProgressed) -> None:
+        """Show the progress of the running full pass."""
+        if message.pass_id == self.running_pass:
+            self.query_one(PassLine).progress = message.progress
+
+    def _end_full_pass(self, pass_id: int) -> bool:
+        if pass_id != self.running_pass:
+            return False
+        self.running_pass = None
+        self.full_pass_worker = None
+        self.query_one(PassLine).progress = None
+        self.refresh_bindings()
+        return True
+
+    def on_pass_stopped(self, message: PassStopped) -> None:
+        """Say that the full pass stopped and what stays on screen."""
+        if self._end_full_pass(message.pass_id):
+            self.notify(
+                "the pass over every row was stopped; the results on screen are unchanged",
+                severity="warning",
+            )
+
+    def on_pass_failed(self, message: PassFailed) -> None:
+        """Show why a pass (or opening the data) failed."""
+        self._end_full_pass(message.pass_id)
+        self.show_error(message.message, title=message.title)
+
+    def on_pass_finished(self, message: PassFinished) -> None:
+        """Add the fit to the session's list and show it."""
+        is_full = self._end_full_pass(message.pass_id)
+        fit = SessionFit(
+            number=len(self.fits) + 1,
+            report=message.report,
+            excluded=message.excluded,
+            baseline=self.pending_baseline,
+        )
+        self.pending_baseline = None
+        self.fits.append(fit)
+        self.query_one(FitsPane).fits = tuple(self.fits)
+        self.show_fit(fit)
+        if is_full:
+            self.notify(f"fit #{fit.number} now uses every row")
+
+    def show_fit(self, fit: SessionFit) -> None:
+        """Push one fit of the session down to every pane."""
+        self.current = fit
+        outcome = fit.report.outcome
+        predictors = outcome.builder.numeric_predictors
+        self.predictor_index %= max(len(predictors), 1)
+        self.query_one(FitPane).set_fit(
+            fit, self.fits[fit.baseline - 1] if fit.baseline else None, robust=self.is_robust
+        )
+        self.query_one(SpreadPane).shown = fit
+        self.query_one(TrendPane).shown = fit
+        predictors_pane = self.query_one(PredictorsPane)
+        predictors_pane.predictor = predictors[self.predictor_index] if predictors else None
+        predictors_pane.shown = fit
+        self.query_one(FlagsPane).shown = fit
+        worst = self.query_one(WorstPane)
+        worst.marked = frozenset(self.marked)
+        worst.show(fit, self._criterion())
+        segments = self.query_one(SegmentsPane)
+        columns = self.segment_columns
+        segments.column = columns[self.segment_index % len(columns)] if columns else None
+        segments.shown = fit
+        self.query_one(FitsPane).current = fit.number
+        self.row_cache.clear()
+        self.query_one(PassLine).basis = basis_text(fit)
+        self.set_class(fit.is_full_pass, "-every-row")
+        self.set_class(not fit.is_full_pass, "-from-sample")
+        self.refresh_bindings()
+
+    @on(DataTable.RowSelected, "#fits-table")
+    def _fit_chosen(self, event: DataTable.RowSelected) -> None:
+        """Enter on a fit of the list shows it again."""
+        number = int(str(event.row_key.value))
+        self.show_fit(self.fits[number - 1])
+
+    # ----------------------------------------------------------------------------------------
+    # pane options
+
+    def _criterion(self) -> Criterion:
+        return CRITERIA[self.criterion_index % len(CRITERIA)]
+
+    def action_toggle_robust(self) -> None:
+        """Switch the coefficient table between usual and robust (HC3) standard errors."""
+        self.is_robust = not self.is_robust
+        if self.current is not None:
+            self.show_fit(self.current)
+
+    def action_next_predictor(self) -> None:
+        """Show residuals against the next numeric predictor."""
+        self.predictor_index += 1
+        if self.current is not None:
+            self.show_fit(self.current)
+
+    def action_next_criterion(self) -> None:
+        """Rank the worst rows by the next criterion."""
+        self.criterion_index += 1
+        if self.current is not None:
+            self.query_one(WorstPane).show(self.current, self._criterion())
+
+    def action_next_segment_column(self) -> None:
+        """Break residuals down by the next column."""
+        self.segment_index += 1
+        if self.current is not None:
+            self.show_fit(self.current)
+
+    # ----------------------------------------------------------------------------------------
+    # rows: drill-down, marks, what-if, export
+
+    def _worst_positions(self) -> list[int]:
+        return self.query_one(WorstPane).positions()
+
+    def action_open_row(self) -> None:
+        """Open the row under the cursor of the Worst pane in the Row pane."""
+        position = self.query_one(WorstPane).cursor_position()
+        if position is not None:
+            self.open_row(position)
+
+    @on(DataTable.RowSelected, "#worst-table")
+    def _worst_chosen(self) -> None:
+        """Enter on a worst row opens it."""
+        self.action_open_row()
+
+    def action_step_row(self, step: int) -> None:
+        """Open the next (1) or previous (-1) row of the worst-rows list."""
+        positions = self._worst_positions()
+        if not positions:
+            return
+        if self.row_position in positions:
+            index = (positions.index(self.row_position) + step) % len(positions)
+        else:
+            index = 0 if step > 0 else len(positions) - 1
+        self.query_one(WorstPane).move_to(positions[index])
+        self.open_row(positions[index])
+
+    def open_row(self, position: int) -> None:
+        """Show a row at once from the cache, or a placeholder while it is read."""
+        self.row_position = position
+        row_pane = self.query_one(RowPane)
+        cached = self.row_cache.get(position)
+        if cached is not None:
+            self.row_cache.move_to_end(position)
+            row_pane.row = RowView(position, cached.frame, cached.diagnostics,
+                                   is_marked=position in self.marked)
+        else:
+            row_pane.row = RowView(position, None, None, is_marked=position in self.marked)
+            if self.current is not None:
+                self.fetch_row(position, self.current)
+        if not self.is_tiled or PANE_BY_ID[self.front].page != "rows":
+            self.action_show_pane("row")
+
+    @work(thread=True, exclusive=True, group="row-fetch", exit_on_error=False)
+    def fetch_row(self, position: int, fit: SessionFit) -> None:
+        """Read the whole original row by position and diagnose it (thread worker)."""
+        from triage.engine.passes import diagnose_rows
+
+        assert self.source is not None
+        try:
+            frame, diagnostics = diagnose_rows(self.source, fit.report.outcome, [position])
+        except TriageError as error:
+            self.post_message(PassFailed(-1, str(error), "cannot read the row"))
+            return
+        if not get_current_worker().is_cancelled:
+            self.post_message(RowsFetched(position, frame, diagnostics))
+
+    def on_rows_fetched(self, message: RowsFetched) -> None:
+        """Fill the Row pane when the row it waits for arrives; cache it."""
+        view = RowView(message.position, message.frame, message.diagnostics,
+                       is_marked=message.position in self.marked)
+        self.row_cache[message.position] = view
+        while len(self.row_cache) > ROW_CACHE_SIZE:
+            self.row_cache.popitem(last=False)
+        if message.position == self.row_position:
+            self.query_one(RowPane).row = view
+
+    def _focused_position(self) -> int | None:
+        if self.front == "row" or (self.front != "worst" and self.row_position is not None):
+            return self.row_position
+        return self.query_one(WorstPane).cursor_position()
+
+    def action_toggle_mark(self) -> None:
+        """Mark or unmark the row under the cursor (or the open row)."""
+        position = self._focused_position()
+        if position is None:
+            return
+        self.marked.symmetric_difference_update({position})
+        self._marks_changed()
+
+    def action_clear_marks(self) -> None:
+        """Unmark every row."""
+        self.marked.clear()
+        self._marks_changed()
+
+    def _marks_changed(self) -> None:
+        self.query_one(WorstPane).marked = frozenset(self.marked)
+        row_pane = self.query_one(RowPane)
+        if row_pane.row is not None:
+            view = row_pane.row
+            row_pane.row = RowView(view.position, view.frame, view.diagnostics,
+                                   is_marked=view.position in self.marked)
+        self.query_one(PassLine).marks = len(self.marked)
+
+    def action_refit_without_marked(self) -> None:
+        """Refit the shown model without the marked rows (the file is never changed)."""
+        if self.current is None:
+            return
+        if not self.marked:
+            self.notify("no rows are marked; mark rows in Worst or Row first", severity="warning")
+            return
+        self.start_pass(
+            is_full=self.current.is_full_pass,
+            excluded=frozenset(self.marked) | self.current.excluded,
+            baseline=self.current.number,
+        )
+
+    def action_export_rows(self) -> None:
+        """Ask what to export and where, then write it in the background."""
+        if self.current is None:
+            return
+        self.app.push_screen(
+            ExportScreen(n_marked=len(self.marked), criterion=self._criterion(),
+                         top_k=self.settings.top_k),
+            self._export_chosen,
+        )
+
+    def _export_chosen(self, request: ExportRequest | None) -> None:
+        if request is None or self.current is None:
+            return
+        if request.what == "marked":
+            positions = sorted(self.marked)
+        else:
+            positions = self.query_one(WorstPane).positions()[: request.k]
+        if not positions:
+            self.show_error("there are no rows to export: mark rows first",
+                            title="nothing to export")
+            return
+        self.write_export(self.current, positions, request.path)
+
+    @work(thread=True, exclusive=True, group="export", exit_on_error=False)
+    def write_export(self, fit: SessionFit, positions: list[int], path: str) -> None:
+        """Write the rows with every column plus diagnostics (thread worker)."""
+        from triage.engine.export import export_rows
+
+        assert self.source is not None
+        try:
+            written = export_rows(self.source, fit.report.outcome, positions, path)
+        except TriageError as error:
+            self.post_message(PassFailed(-1, str(error), "the export failed"))
+            return
+        self.post_message(ExportWritten(str(written), len(positions)))
+
+    def on_export_written(self, message: ExportWritten) -> None:
+        """Say where the rows went, with the reminder about personal records."""
+        from triage.data.export import PERSONAL_DATA_NOTICE
+
+        self.notify(
+            f"wrote {message.n_rows:,} rows to {message.path}\n{PERSONAL_DATA_NOTICE}",
+            timeout=12,
+        )
+
+
+def basis_text(fit: SessionFit) -> str:
+    """Say which rows a fit's results come from, for the pass line.
+
+    Parameters
+    ----------
+    fit : SessionFit
+        The fit on screen.
+
+    Returns
+    -------
+    str
+        E.g. `fit #2 from a SAMPLE: 200,000 of 20,000,000 rows used`.
+    """
+    from triage.views.format import format_count
+
+    data = fit.report.outcome.data
+    total = "?" if data.rows_in_source is None else format_count(data.rows_in_source)
+    used = format_count(data.rows_used)
+    excluded = f", {format_count(data.rows_excluded)} marked left out" if fit.excluded else ""
+    if data.is_full_pass:
+        return f"fit #{fit.number} from EVERY ROW: {used} of {total} rows used{excluded}"
+    return f"fit #{fit.number} from a SAMPLE: {used} of {total} rows used{excluded}"

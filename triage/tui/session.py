@@ -1,0 +1,252 @@
+"""What one app session holds: the model being built and every fit made so far."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass, replace
+from typing import TYPE_CHECKING, Final
+
+import polars as pl
+
+from triage.core.spec import Term, build_spec, parse_terms, quote_name
+
+if TYPE_CHECKING:
+    from triage.core.lsq import LinearFit
+    from triage.core.spec import ModelSpec
+    from triage.engine.passes import ReportOutcome
+
+TRANSFORM_CYCLE: Final[tuple[str | None, ...]] = (None, "log", "log1p", "sqrt", "square", "std")
+"""Transforms a numeric term steps through with the cycle-transform key."""
+
+
+def _term_for(column: str, transform: str | None) -> Term:
+    """Parse the term for `column` under `transform` (None for the bare column)."""
+    name = quote_name(column)
+    text = name if transform is None else f"{transform}({name})"
+    return parse_terms(text)[1][0]
+
+
+@dataclass(frozen=True)
+class ModelDraft:
+    """The model as the user is building it, before it is checked against the data."""
+
+    target: str | None = None
+    """Column to explain; None until chosen."""
+    terms: tuple[Term, ...] = ()
+    """Terms in the order they were added."""
+    weights: str | None = None
+    """Column of weights, or None."""
+    where: str | None = None
+    """Row filter (SQL expression), or None."""
+    categorical: tuple[str, ...] = ()
+    """Columns marked categorical."""
+    intercept: bool = True
+    """Fit a constant term."""
+
+    def terms_text(self) -> str:
+        """Return the terms in the term syntax, e.g. `distance_km, log(stops), depot`."""
+        return ", ".join(term.label for term in self.terms)
+
+    def formula(self) -> str:
+        """Return `target ~ terms` for the model line (`?` stands for a target not yet chosen)."""
+        target = "?" if self.target is None else quote_name(self.target)
+        right = " + ".join(term.label for term in self.terms) or "1"
+        return f"{target} ~ {right}"
+
+    def term_of(self, column: str) -> Term | None:
+        """Return the single-column term reading `column`, if the model has one."""
+        for term in self.terms:
+            if term.column == column:
+                return term
+        return None
+
+    def with_target(self, column: str) -> ModelDraft:
+        """Return the draft with `column` as target (and no longer a term or the weights)."""
+        terms = tuple(t for t in self.terms if column not in t.columns)
+        weights = None if self.weights == column else self.weights
+        return replace(self, target=column, terms=terms, weights=weights)
+
+    def with_term_toggled(self, column: str) -> ModelDraft:
+        """Return the draft with the term on `column` removed, or the bare column added."""
+        if self.term_of(column) is not None:
+            return replace(self, terms=tuple(t for t in self.terms if t.column != column))
+        target = None if self.target == column else self.target
+        return replace(self, target=target, terms=(*self.terms, _term_for(column, None)))
+
+    def with_transform_cycled(self, column: str) -> ModelDraft:
+        """Return the draft with the next transform of `TRANSFORM_CYCLE` on `column`'s term.
+
+        A column that is not yet a term is added with the first transform.
+        """
+        current = self.term_of(column)
+        now = None if current is None else current.transform
+        if now not in TRANSFORM_CYCLE:
+            now = None
+        following = TRANSFORM_CYCLE[(TRANSFORM_CYCLE.index(now) + 1) % len(TRANSFORM_CYCLE)]
+        if current is None and following is None:
+            following = TRANSFORM_CYCLE[1]
+        new = _term_for(column, following)
+        if current is None:
+            return replace(self, terms=(*self.terms, new))
+        return replace(self, terms=tuple(new if t is current else t for t in self.terms))
+
+    def with_categorical_toggled(self, column: str) -> ModelDraft:
+        """Return the draft with `column` marked categorical, or unmarked."""
+        if column in self.categorical:
+            return replace(self, categorical=tuple(c for c in self.categorical if c != column))
+        return replace(self, categorical=(*self.categorical, column))
+
+    def with_weights_toggled(self, column: str) -> ModelDraft:
+        """Return the draft with `column` as weights, or with no weights if it already was."""
+        return replace(self, weights=None if self.weights == column else column)
+
+    def with_terms_text(self, text: str) -> ModelDraft:
+        """Return the draft with terms typed in the term syntax (`y ~ ...` also sets the target).
+
+        Raises
+        ------
+        SpecError
+            When the text does not parse.
+        """
+        target, terms = parse_terms(text)
+        return replace(self, target=self.target if target is None else target, terms=terms)
+
+    def to_spec(
+        self,
+        schema: Mapping[str, pl.DataType],
+        *,
+        reference: Mapping[str, str] | None = None,
+        max_levels: int = 50,
+        drop_invalid: bool = False,
+    ) -> ModelSpec:
+        """Check the draft against the columns and build the model spec.
+
+        Raises
+        ------
+        SpecError
+            With the name of the bad column or term and the closest valid names.
+        """
+        return build_spec(
+            schema,
+            target=self.target,
+            terms=self.terms,
+            intercept=self.intercept,
+            weights=self.weights,
+            where=self.where,
+            categorical=self.categorical,
+            reference=reference,
+            max_levels=max_levels,
+            drop_invalid=drop_invalid,
+        )
+
+
+@dataclass(frozen=True, eq=False)
+class SessionFit:
+    """One fit of the session, kept so the user can switch back to it."""
+
+    number: int
+    """1-based number in the session's list."""
+    report: ReportOutcome
+    """The fit and its diagnostics."""
+    excluded: frozenset[int]
+    """Source positions left out (marked rows of a what-if refit)."""
+    baseline: int | None
+    """Number of the fit this one was refitted from without marked rows, else None."""
+
+    @property
+    def is_full_pass(self) -> bool:
+        """True when every row of the source was read."""
+        return self.report.outcome.data.is_full_pass
+
+
+def column_profile(schema: Mapping[str, pl.DataType], sample: pl.DataFrame) -> pl.DataFrame:
+    """Profile the columns for the Columns pane: type, share missing and a few numbers.
+
+    Parameters
+    ----------
+    schema : mapping of str to polars data type
+        Every column of the source.
+    sample : polars.DataFrame
+        Rows read from the source (a sample; the numbers describe it, not the whole file).
+
+    Returns
+    -------
+    polars.DataFrame
+        One row per column: `name`, `dtype`, `missing` (share of null or NaN values),
+        `distinct` (distinct values in the sample), `low`, `mean`, `high` (numeric columns;
+        null otherwise) and `top` (most frequent value, for other columns).
+    """
+    rows = []
+    n = max(sample.height, 1)
+    for name, dtype in schema.items():
+        series = sample[name] if name in sample.columns else pl.Series(name, [], dtype=dtype)
+        missing = series.null_count()
+        if dtype.is_float():
+            missing += int(series.is_nan().sum())
+        low = mean = high = None
+        top = None
+        if dtype.is_numeric() and series.len() > missing:
+            values = series.cast(pl.Float64).fill_nan(None).drop_nulls()
+            low, mean, high = values.min(), values.mean(), values.max()
+        elif series.len() > missing:
+            counts = series.drop_nulls().value_counts(sort=True)
+            top = str(counts[name][0])
+        rows.append(
+            {
+                "name": name,
+                "dtype": str(dtype),
+                "missing": missing / n,
+                "distinct": series.n_unique(),
+                "low": low,
+                "mean": mean,
+                "high": high,
+                "top": top,
+            }
+        )
+    return pl.DataFrame(
+        rows,
+        schema={
+            "name": pl.String, "dtype": pl.String, "missing": pl.Float64, "distinct": pl.Int64,
+            "low": pl.Float64, "mean": pl.Float64, "high": pl.Float64, "top": pl.String,
+        },
+    )
+
+
+@dataclass(frozen=True)
+class CoefficientShift:
+    """How one coefficient moved between a fit and its what-if refit."""
+
+    name: str
+    """Design column name."""
+    before: float
+    """Estimate in the fit with every row (NaN when absent or aliased)."""
+    after: float
+    """Estimate in the refit without the marked rows (NaN when absent or aliased)."""
+    change_in_se: float
+    """`(after - before)` in units of the first fit's standard error (NaN when unknown)."""
+
+
+def coefficient_shifts(before: LinearFit, after: LinearFit) -> list[CoefficientShift]:
+    """Pair the coefficients of two fits by name, with the shift in standard errors.
+
+    Parameters
+    ----------
+    before, after : LinearFit
+        The fit and its refit without the marked rows.
+
+    Returns
+    -------
+    list of CoefficientShift
+        Names of `before` first, then names only `after` has.
+    """
+    b_index = {name: i for i, name in enumerate(before.names)}
+    a_index = {name: i for i, name in enumerate(after.names)}
+    shifts = []
+    for name in [*before.names, *(n for n in after.names if n not in b_index)]:
+        b = float(before.coef[b_index[name]]) if name in b_index else math.nan
+        a = float(after.coef[a_index[name]]) if name in a_index else math.nan
+        se = float(before.std_error[b_index[name]]) if name in b_index else math.nan
+        moved = (a - b) / se if se > 0 else math.nan
+        shifts.append(CoefficientShift(name, b, a, moved))
+    return shifts

@@ -1,0 +1,667 @@
+"""The panes of the main screen: each renders results pushed down by the screen.
+
+Panes never call the engine, never call each other and never compute a statistic: the
+screen assigns results to their reactives and they turn them into text with `triage.views`.
+"""
+
+from __future__ import annotations
+
+import textwrap
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Final, Literal
+
+import polars as pl
+from rich.text import Text
+from textual.app import ComposeResult
+from textual.containers import Vertical, VerticalScroll
+from textual.reactive import reactive
+from textual.widget import Widget
+from textual.widgets import DataTable, Static
+
+from triage.data.source import ROW_INDEX
+from triage.tui.session import ModelDraft, SessionFit, coefficient_shifts
+from triage.views.charts import render_binned, render_histogram
+from triage.views.format import format_count, format_number, format_p, truncate
+from triage.views.text import (
+    CRITERION_TITLES,
+    model_formula,
+    render_aliased,
+    render_coefficients,
+    render_data_summary,
+    render_fit_quality,
+    rule,
+    table,
+)
+
+if TYPE_CHECKING:
+    from rich.console import RenderableType
+
+    from triage.core.diagnostics import RowDiagnostics, WorstRow
+    from triage.engine.passes import ReportOutcome
+
+PaneId = Literal[
+    "columns", "fit", "spread", "trend", "predictors", "flags", "worst", "segments", "row", "fits"
+]
+Page = Literal["model", "residuals", "rows"]
+
+
+@dataclass(frozen=True)
+class PaneInfo:
+    """A pane's id, its title on screen and the page it tiles on in a large terminal."""
+
+    pane_id: PaneId
+    """Short id; the binding `pane-<id>` brings the pane to the front."""
+    title: str
+    """Title shown in the pane strip and on the pane's border."""
+    page: Page
+    """Group of panes shown together when the terminal is large enough to tile."""
+    hint: str
+    """What the pane shows before there is a fit."""
+
+
+PANES: Final[tuple[PaneInfo, ...]] = (
+    PaneInfo("columns", "Columns", "model", "opening the data…"),
+    PaneInfo("fit", "Fit", "model", "no fit yet: pick a target and terms in Columns"),
+    PaneInfo("spread", "Spread", "residuals", "residual histogram: no fit yet"),
+    PaneInfo("trend", "Trend", "residuals", "residual by fitted value: no fit yet"),
+    PaneInfo("predictors", "Predictors", "residuals", "residual by predictor: no fit yet"),
+    PaneInfo("flags", "Flags", "model", "flags: no fit yet"),
+    PaneInfo("worst", "Worst", "rows", "worst rows: no fit yet"),
+    PaneInfo("segments", "Segments", "residuals", "segments: no fit yet"),
+    PaneInfo("row", "Row", "rows", "no row chosen: pick one in Worst"),
+    PaneInfo("fits", "Fits", "model", "fits of this session: none yet"),
+)
+"""Every pane, in the order of their keys."""
+
+PANE_BY_ID: Final[dict[str, PaneInfo]] = {info.pane_id: info for info in PANES}
+"""Pane information by pane id."""
+
+
+class Pane(Vertical):
+    """A titled box holding one view of the results."""
+
+    def __init__(self, info: PaneInfo) -> None:
+        super().__init__(id=f"pane-{info.pane_id}", classes="pane")
+        self.info = info
+        """Id, title and page of this pane."""
+        self.border_title = info.title
+        self.is_colorless = False
+        """Draw without colour (the `NO_COLOR` convention)."""
+
+    def focus_target(self) -> Widget:
+        """Return the child that takes the keyboard when the pane comes to the front."""
+        for child in self.query("*"):
+            if isinstance(child, Widget) and child.can_focus:
+                return child
+        return self
+
+
+class TextPane(Pane):
+    """A pane showing scrollable plain text, rebuilt for its width when it changes."""
+
+    def compose(self) -> ComposeResult:
+        """Add the scrolling body."""
+        with VerticalScroll(classes="pane--scroll"):
+            yield Static(self.info.hint, classes="pane--body", markup=False)
+
+    def text_for(self, width: int) -> str | None:
+        """Return the text for a body `width` cells wide, or None to keep the hint."""
+        return None
+
+    def refresh_text(self) -> None:
+        """Rebuild the text for the current width."""
+        width = self.content_size.width - 2 if self.content_size.width > 10 else 78
+        text = self.text_for(width)
+        self.query_one(".pane--body", Static).update(self.info.hint if text is None else text)
+
+    def on_resize(self) -> None:
+        """Rebuild the text when the pane changes width."""
+        self.refresh_text()
+
+
+def _table(pane: Pane, table_id: str) -> DataTable[str]:
+    return pane.query_one(f"#{table_id}", DataTable)
+
+
+class ColumnsPane(Pane):
+    """The columns of the source, their role in the model and a profile from the sample."""
+
+    profile: reactive[pl.DataFrame | None] = reactive(None, always_update=True)
+    """One row per column from `column_profile`, None until the data opens."""
+    draft: reactive[ModelDraft] = reactive(ModelDraft)
+    """The model being built (roles are shown beside the columns)."""
+
+    def compose(self) -> ComposeResult:
+        """Add the column table."""
+        yield Static(self.info.hint, classes="pane--note", markup=False)
+        table: DataTable[str] = DataTable(id="columns-table", cursor_type="row")
+        table.cursor_blink = False
+        yield table
+
+    def on_mount(self) -> None:
+        """Name the table's columns."""
+        _table(self, "columns-table").add_columns(
+            "role", "column", "type", "missing", "low", "mean", "high / top"
+        )
+
+    def watch_profile(self) -> None:
+        """Fill the table when the profile arrives."""
+        self._fill()
+
+    def watch_draft(self) -> None:
+        """Refresh the roles when the model changes."""
+        self._fill()
+
+    def _role(self, name: str) -> str:
+        draft = self.draft
+        if draft.target == name:
+            return "target"
+        parts = []
+        term = draft.term_of(name)
+        if term is not None:
+            parts.append(term.label if term.transform else "term")
+        elif any(name in t.columns for t in draft.terms):
+            parts.append("in :")
+        if draft.weights == name:
+            parts.append("weights")
+        if name in draft.categorical:
+            parts.append("cat")
+        return " ".join(parts)
+
+    def _fill(self) -> None:
+        if not self.is_mounted or self.profile is None:
+            return
+        table = _table(self, "columns-table")
+        row = table.cursor_row
+        table.clear()
+        for entry in self.profile.iter_rows(named=True):
+            high = entry["top"] if entry["top"] is not None else format_number(entry["high"])
+            table.add_row(
+                self._role(entry["name"]),
+                entry["name"],
+                entry["dtype"],
+                f"{entry['missing']:.1%}",
+                format_number(entry["low"]) if entry["low"] is not None else "",
+                format_number(entry["mean"]) if entry["mean"] is not None else "",
+                high or "",
+                key=entry["name"],
+            )
+        table.move_cursor(row=min(row, table.row_count - 1), animate=False)
+        rows = self.profile.height
+        self.query_one(".pane--note", Static).update(
+            f"{rows} columns; numbers from a sample of the rows. "
+            "Move to a column and press a key: target, term, transform, categorical, weights."
+        )
+
+    def cursor_column(self) -> str | None:
+        """Return the name of the column under the cursor, or None before the data opens."""
+        table = _table(self, "columns-table")
+        if self.profile is None or table.row_count == 0:
+            return None
+        return str(table.coordinate_to_cell_key(table.cursor_coordinate).row_key.value)
+
+
+class FitPane(TextPane):
+    """Fit quality and the coefficient table, with a what-if comparison when there is one."""
+
+    def __init__(self, info: PaneInfo) -> None:
+        super().__init__(info)
+        self.fit: SessionFit | None = None
+        """The fit shown."""
+        self.baseline: SessionFit | None = None
+        """The fit a what-if refit is compared with."""
+        self.is_robust = False
+        """Show robust (HC3) standard errors beside the usual ones."""
+
+    def set_fit(self, fit: SessionFit, baseline: SessionFit | None, *, robust: bool) -> None:
+        """Show a fit (and its baseline, for a what-if refit)."""
+        self.fit, self.baseline, self.is_robust = fit, baseline, robust
+        self.refresh_text()
+
+    def text_for(self, width: int) -> str | None:
+        """Compose data, fit quality, coefficients and the what-if comparison."""
+        if self.fit is None:
+            return None
+        report = self.fit.report
+        outcome = report.outcome
+        robust = robust_se_by_name(report) if self.is_robust else None
+        sections = [
+            f"fit #{self.fit.number}: " + (
+                "computed on EVERY ROW" if self.fit.is_full_pass else "computed on a SAMPLE"
+            ),
+            render_data_summary(outcome.data, width=width),
+            render_fit_quality(outcome.fit, width=width),
+            render_coefficients(outcome.fit, robust_se=robust, width=width),
+            render_aliased(outcome.fit, width=width),
+        ]
+        if self.baseline is not None:
+            sections.append(_what_if_text(self.baseline, self.fit, width))
+        return "\n\n".join(s for s in sections if s)
+
+
+def _what_if_text(before: SessionFit, after: SessionFit, width: int) -> str:
+    """Describe how the coefficients and R² moved when the marked rows were left out."""
+    shifts = coefficient_shifts(before.report.outcome.fit, after.report.outcome.fit)
+    rows = [
+        [s.name, format_number(s.before), format_number(s.after),
+         format_number(s.after - s.before), format_number(s.change_in_se, digits=3)]
+        for s in shifts
+    ]
+    headers = ["term", f"fit #{before.number}", f"fit #{after.number}", "moved", "moved / SE"]
+    body = table(headers, rows, align=["<", ">", ">", ">", ">"], width=width)
+    r2_before = before.report.outcome.fit.r2
+    r2_after = after.report.outcome.fit.r2
+    left_out = len(after.excluded - before.excluded)
+    lines = [
+        rule(f"what-if: without {left_out:,} marked rows (the file is unchanged)", width),
+        body,
+        f"R² {format_number(r2_before)} -> {format_number(r2_after)}",
+        truncate("moved / SE: the shift in standard errors of the first fit; a large value "
+                 "says those rows pull on that coefficient, not that they are wrong.", width),
+    ]
+    return "\n".join(lines)
+
+
+class FitsPane(Pane):
+    """Every fit of the session; enter shows one again."""
+
+    fits: reactive[tuple[SessionFit, ...]] = reactive((), always_update=True)
+    """The session's fits, oldest first."""
+    current: reactive[int | None] = reactive(None)
+    """Number of the fit on screen."""
+
+    def compose(self) -> ComposeResult:
+        """Add the list of fits."""
+        yield Static(self.info.hint, classes="pane--note", markup=False)
+        table: DataTable[str] = DataTable(id="fits-table", cursor_type="row")
+        table.cursor_blink = False
+        yield table
+
+    def on_mount(self) -> None:
+        """Name the table's columns."""
+        _table(self, "fits-table").add_columns("", "#", "rows", "R²", "model")
+
+    def watch_fits(self) -> None:
+        """Refill the list when a fit is added."""
+        self._fill()
+
+    def watch_current(self) -> None:
+        """Move the marker to the fit on screen."""
+        self._fill()
+
+    def _fill(self) -> None:
+        if not self.is_mounted:
+            return
+        table = _table(self, "fits-table")
+        table.clear()
+        for fit in self.fits:
+            outcome = fit.report.outcome
+            rows = "every row" if fit.is_full_pass else "sample"
+            if fit.excluded:
+                rows += f" -{len(fit.excluded)}"
+            table.add_row(
+                ">" if fit.number == self.current else "",
+                str(fit.number),
+                rows,
+                format_number(outcome.fit.r2),
+                model_formula(outcome.spec),
+                key=str(fit.number),
+            )
+        if self.current is not None and self.fits:
+            table.move_cursor(row=self.current - 1, animate=False)
+        self.query_one(".pane--note", Static).update(
+            f"{len(self.fits)} fits this session; enter shows one again"
+        )
+
+
+@dataclass(frozen=True, eq=False)
+class RowView:
+    """One original row and its diagnostics, as the Row pane shows it."""
+
+    position: int
+    """0-based position of the row in the source."""
+    frame: pl.DataFrame | None
+    """The whole original row; None while it is being read."""
+    diagnostics: RowDiagnostics | None
+    """Its diagnostics under the fit on screen; None while being read."""
+    is_marked: bool
+    """True when the user marked the row."""
+
+
+class RowPane(Pane):
+    """The whole original row beside its fitted value, residual and influence numbers."""
+
+    row: reactive[RowView | None] = reactive(None, always_update=True)
+    """The row shown, or None before one is chosen."""
+
+    def compose(self) -> ComposeResult:
+        """Add the heading and the row table."""
+        yield Static(self.info.hint, classes="pane--note", markup=False)
+        table: DataTable[str] = DataTable(id="row-table", cursor_type="row")
+        table.cursor_blink = False
+        yield table
+
+    def on_mount(self) -> None:
+        """Name the table's columns."""
+        _table(self, "row-table").add_columns("field", "value")
+
+    def watch_row(self, view: RowView | None) -> None:
+        """Show the row, or a placeholder while it is read."""
+        if not self.is_mounted or view is None:
+            return
+        note = self.query_one(".pane--note", Static)
+        table = _table(self, "row-table")
+        table.clear()
+        mark = "  [marked]" if view.is_marked else ""
+        if view.frame is None:
+            note.update(f"row {view.position:,}: reading…{mark}")
+            return
+        note.update(f"row {view.position:,} of the source (0-based){mark}")
+        for name, value in _diagnostic_cells(view):
+            table.add_row(name, value)
+        record = view.frame.row(0, named=True) if view.frame.height else {}
+        for name, value in record.items():
+            if name == ROW_INDEX:
+                continue
+            table.add_row(name, "(missing)" if value is None else str(value))
+
+
+def _diagnostic_cells(view: RowView) -> list[tuple[str, str]]:
+    """Name and format the diagnostics of one row (or say why there are none)."""
+    diag = view.diagnostics
+    if diag is None or len(diag.rows) == 0:
+        return [("fitted", "not used by the model (missing value or unseen level)")]
+    return [
+        ("fitted", format_number(diag.fitted[0])),
+        ("residual", format_number(diag.resid[0])),
+        ("leverage", format_number(diag.leverage[0])),
+        ("studentized residual", format_number(diag.studentized[0], digits=3)),
+        ("Cook's distance", format_number(diag.cooks[0], digits=3)),
+        ("─" * 8, "─" * 8),
+    ]
+
+
+def robust_se_by_name(report: ReportOutcome) -> dict[str, float]:
+    """Return the HC3 standard error of each coefficient from the diagnostics pass."""
+    return {name: se.hc3 for name, se in report.diagnostics.robust_se.items()}
+
+
+class ChartBody(Widget):
+    """Draws a chart at its own current size (rendering on resize is cheap: bins are small)."""
+
+    DEFAULT_CSS = """
+    ChartBody { height: 1fr; width: 1fr; }
+    """
+
+    def __init__(self, draw: Callable[[int, int], str | None], hint: str) -> None:
+        super().__init__(classes="pane--chart")
+        self.draw = draw
+        """Returns the chart text for a width and height, or None when there is nothing."""
+        self.hint = hint
+        """Shown when there is nothing to draw."""
+
+    def render(self) -> RenderableType:
+        """Draw the chart for the widget's current size."""
+        width, height = self.size.width, self.size.height
+        chart = self.draw(width, height) if width > 0 and height > 0 else None
+        if chart is None:
+            return Text(self.hint)
+        return Text.from_ansi(chart, no_wrap=True)
+
+
+class ChartPane(Pane):
+    """A pane holding one chart of the fit on screen."""
+
+    shown: reactive[SessionFit | None] = reactive(None, always_update=True)
+    """The fit whose chart is drawn."""
+
+    def compose(self) -> ComposeResult:
+        """Add the chart body."""
+        yield ChartBody(self.draw, self.info.hint)
+
+    def watch_shown(self) -> None:
+        """Redraw when another fit is shown."""
+        if self.is_mounted:
+            self.query_one(ChartBody).refresh()
+
+    def draw(self, width: int, height: int) -> str | None:
+        """Return the chart text for `width` x `height`, or None with no fit."""
+        return None
+
+    def color(self) -> bool:
+        """Return True when charts may use colour."""
+        return not self.is_colorless
+
+
+class SpreadPane(ChartPane):
+    """The residual histogram."""
+
+    def draw(self, width: int, height: int) -> str | None:
+        """Draw the histogram of residuals."""
+        if self.shown is None:
+            return None
+        histogram = self.shown.report.diagnostics.histogram
+        return render_histogram(histogram, width, height, color=self.color())
+
+
+class TrendPane(ChartPane):
+    """Mean residual and its 10–90% band in bins of fitted value."""
+
+    def draw(self, width: int, height: int) -> str | None:
+        """Draw residuals by fitted value."""
+        if self.shown is None:
+            return None
+        bins = self.shown.report.diagnostics.binned.get("fitted", ())
+        return render_binned(
+            bins, width, height, title="residual by fitted value", x_label="fitted value",
+            color=self.color(),
+        )
+
+
+class PredictorsPane(ChartPane):
+    """Mean residual and its band in bins of one predictor; a key steps to the next."""
+
+    predictor: reactive[str | None] = reactive(None)
+    """The predictor drawn."""
+
+    def watch_predictor(self) -> None:
+        """Redraw for another predictor."""
+        self.watch_shown()
+
+    def draw(self, width: int, height: int) -> str | None:
+        """Draw residuals by the chosen predictor."""
+        if self.shown is None:
+            return None
+        if self.predictor is None:
+            return "the model has no numeric predictor to draw against"
+        names = self.shown.report.outcome.builder.numeric_predictors
+        position = f"{names.index(self.predictor) + 1} of {len(names)}"
+        bins = self.shown.report.diagnostics.binned.get(self.predictor, ())
+        return render_binned(
+            bins, width, height, title=f"residual by {self.predictor} ({position})",
+            x_label=self.predictor, color=self.color(),
+        )
+
+
+class FlagsPane(TextPane):
+    """The flags in plain words, with the tests and counts behind them."""
+
+    shown: reactive[SessionFit | None] = reactive(None, always_update=True)
+    """The fit whose flags are shown."""
+
+    def watch_shown(self) -> None:
+        """Rebuild the text for another fit."""
+        if self.is_mounted:
+            self.refresh_text()
+
+    def text_for(self, width: int) -> str | None:
+        """Compose the flags, the residual tests and the threshold counts."""
+        if self.shown is None:
+            return None
+        diagnostics = self.shown.report.diagnostics
+        lines = [rule("hints (aids to judgement, not verdicts)", width)]
+        if diagnostics.flags:
+            for flag in diagnostics.flags:
+                lines.append(textwrap.fill(flag.message, width, initial_indent="- ",
+                                           subsequent_indent="  "))
+        else:
+            lines.append("nothing stood out in the checks run; the charts may still show more.")
+        lines.append("")
+        lines.append(rule("tests on the residuals", width))
+        rows = [
+            [TEST_TITLES.get(name, name), format_number(test.statistic, digits=4),
+             format_p(test.p_value)]
+            for name, test in diagnostics.tests.items()
+        ]
+        lines.append(table(["test", "statistic", "p"], rows, align=["<", ">", ">"], width=width))
+        counts = diagnostics.counts
+        lines.append("")
+        lines.append(rule("rows past common-practice thresholds", width))
+        lines.append(table(
+            ["rule", "rows"],
+            [
+                ["|studentized residual| > 3", format_count(counts.studentized)],
+                [f"leverage > 2p/n = {format_number(counts.leverage_threshold, digits=3)}",
+                 format_count(counts.leverage)],
+                [f"Cook's distance > 4/n = {format_number(counts.cooks_threshold, digits=3)}",
+                 format_count(counts.cooks)],
+            ],
+            align=["<", ">"],
+            width=width,
+        ))
+        return "\n".join(lines)
+
+
+TEST_TITLES: Final[dict[str, str]] = {
+    "breusch_pagan": "Breusch–Pagan (Koenker): spread vs predictors",
+    "reset": "RESET: missing curvature",
+    "jarque_bera": "Jarque–Bera: residual shape",
+    "durbin_watson": "Durbin–Watson: neighbours in file order",
+}
+"""How each residual test is named on screen."""
+
+
+class WorstPane(Pane):
+    """The worst rows by one criterion; a key switches the criterion, enter opens a row."""
+
+    marked: reactive[frozenset[int]] = reactive(frozenset())
+    """Source positions the user marked (shown with a `*`)."""
+
+    def __init__(self, info: PaneInfo) -> None:
+        super().__init__(info)
+        self.rows: tuple[WorstRow, ...] = ()
+        """The rows listed, worst first."""
+        self.criterion: str = "abs_resid"
+        """The ranking shown."""
+
+    def compose(self) -> ComposeResult:
+        """Add the heading and the table."""
+        yield Static(self.info.hint, classes="pane--note", markup=False)
+        table: DataTable[str] = DataTable(id="worst-table", cursor_type="row")
+        table.cursor_blink = False
+        yield table
+
+    def on_mount(self) -> None:
+        """Name the table's columns."""
+        _table(self, "worst-table").add_columns(
+            "", "row", "fitted", "residual", "studentized", "leverage", "Cook's"
+        )
+
+    def show(self, fit: SessionFit, criterion: str) -> None:
+        """List the worst rows of `fit` by `criterion`."""
+        self.rows = fit.report.diagnostics.worst.get(criterion, ())  # type: ignore[call-overload]
+        self.criterion = criterion
+        self._fill()
+        title = CRITERION_TITLES.get(criterion, criterion)
+        basis = "every row" if fit.is_full_pass else "the sample"
+        self.query_one(".pane--note", Static).update(
+            f"{len(self.rows)} rows, {title}, from {basis} of fit #{fit.number}; "
+            "a flagged row deserves a look, it is not shown to be wrong"
+        )
+
+    def watch_marked(self) -> None:
+        """Refresh the marks."""
+        self._fill()
+
+    def _fill(self) -> None:
+        if not self.is_mounted:
+            return
+        table = _table(self, "worst-table")
+        row = table.cursor_row
+        table.clear()
+        for entry in self.rows:
+            table.add_row(
+                "*" if entry.row in self.marked else "",
+                f"{entry.row:,}",
+                format_number(entry.fitted),
+                format_number(entry.resid),
+                format_number(entry.studentized, digits=3),
+                format_number(entry.leverage, digits=3),
+                format_number(entry.cooks, digits=3),
+                key=str(entry.row),
+            )
+        if self.rows:
+            table.move_cursor(row=min(max(row, 0), len(self.rows) - 1), animate=False)
+
+    def positions(self) -> list[int]:
+        """Return the source positions listed, worst first."""
+        return [entry.row for entry in self.rows]
+
+    def cursor_position(self) -> int | None:
+        """Return the source position under the cursor, or None for an empty list."""
+        table = _table(self, "worst-table")
+        if not self.rows or table.row_count == 0:
+            return None
+        return self.rows[min(table.cursor_row, len(self.rows) - 1)].row
+
+    def move_to(self, position: int) -> None:
+        """Put the cursor on the row at source `position`, if listed."""
+        positions = self.positions()
+        if position in positions:
+            _table(self, "worst-table").move_cursor(row=positions.index(position), animate=False)
+
+
+class SegmentsPane(TextPane):
+    """Residuals broken down by the levels of one column; a key steps to the next column."""
+
+    shown: reactive[SessionFit | None] = reactive(None, always_update=True)
+    """The fit whose segments are shown."""
+    column: reactive[str | None] = reactive(None)
+    """The column the residuals are broken down by."""
+
+    def watch_shown(self) -> None:
+        """Rebuild for another fit."""
+        if self.is_mounted:
+            self.refresh_text()
+
+    def watch_column(self) -> None:
+        """Rebuild for another column."""
+        self.watch_shown()
+
+    def text_for(self, width: int) -> str | None:
+        """Lay out one row per level: rows, mean residual, RMSE and t."""
+        if self.shown is None:
+            return None
+        segments = self.shown.report.diagnostics.segments
+        if self.column is None or self.column not in segments:
+            return "no column to break residuals down by (text columns or few-valued numbers)"
+        names = list(segments)
+        levels = segments[self.column]
+        rows = [
+            [level.level, format_count(level.n), format_number(level.mean_resid),
+             format_number(level.rmse), format_number(level.t, digits=3)]
+            for level in levels
+        ]
+        heading = f"by {self.column} ({names.index(self.column) + 1} of {len(names)})"
+        lines = [
+            rule(heading, width),
+            table(["level", "rows", "mean residual", "RMSE", "t of mean"], rows,
+                  align=["<", ">", ">", ">", ">"], width=width),
+            truncate("t of mean: mean residual in standard errors; far from 0 suggests the "
+                     "model is biased for that level, worth a look rather than a conclusion.",
+                     width),
+        ]
+        if self.column in self.shown.report.diagnostics.segments_capped:
+            lines.append(truncate("many levels: the rarest are pooled as (other)", width))
+        return "\n".join(lines)

@@ -1,0 +1,256 @@
+"""Charts of residual summaries drawn as text with plotext, for the CLI and the app.
+
+plotext keeps one module-level figure and is not thread-safe, so every chart is drawn
+through :func:`_draw`, which holds :data:`_PLOT_LOCK`, clears the figure, sets the size,
+runs the chart's own drawing steps and returns the built text. Binning is done with
+numpy by the accumulators; plotext only draws bars and lines (``plt.hist`` took about
+300 ms on a million values against 25 ms for ``plt.bar``, measured, ECOSYSTEM.md).
+"""
+
+from __future__ import annotations
+
+import math
+import threading
+from collections.abc import Callable, Sequence
+from typing import TYPE_CHECKING, Any, Final
+
+import numpy as np
+import plotext as plt
+
+from triage.views.format import format_count, format_number
+
+if TYPE_CHECKING:
+    from numpy.typing import NDArray
+
+_PLOT_LOCK: Final = threading.Lock()
+"""Guards plotext's global figure; held for the whole of one chart."""
+
+_MIN_WIDTH: Final = 20
+"""Below this many columns a chart is replaced by a one-line note."""
+
+_MIN_HEIGHT: Final = 6
+"""Below this many lines a chart is replaced by a one-line note."""
+
+_BAR_COLOR: Final = "cyan"
+_MEAN_COLOR: Final = "orange"
+_BAND_COLOR: Final = "gray"
+_ZERO_COLOR: Final = "gray"
+
+
+def _draw(steps: Callable[[], None], width: int, height: int, *, color: bool) -> str:
+    """Clear plotext's figure, size it, run ``steps`` and return the built chart text.
+
+    Parameters
+    ----------
+    steps : callable
+        Issues the chart's plotext calls (bars, lines, ticks, labels).
+    width, height : int
+        Size of the chart in terminal cells.
+    color : bool
+        Keep plotext's ANSI colours; when False the text is plain.
+
+    Returns
+    -------
+    str
+        The chart, ``height`` lines of at most ``width`` characters.
+    """
+    with _PLOT_LOCK:
+        plt.clear_figure()
+        # Without lifting the limit plotext caps plots at 80x24 when no terminal is attached.
+        plt.limitsize(False, False)
+        plt.plotsize(width, height)
+        plt.theme("clear")
+        steps()
+        text: str = plt.build()
+    if not color:
+        text = plt.uncolorize(text)
+    return text
+
+
+def _note(message: str, width: int, height: int) -> str:
+    """Return a blank chart area of ``width`` x ``height`` with ``message`` in the middle."""
+    width = max(width, 1)
+    height = max(height, 1)
+    lines = [" " * width] * height
+    lines[(height - 1) // 2] = message[:width].center(width)
+    return "\n".join(lines)
+
+
+def _ticks(lo: float, hi: float, n_ticks: int) -> tuple[list[float], list[str]]:
+    """Return round tick positions (steps of 1, 2 or 5 times a power of ten) on [lo, hi].
+
+    Round steps put a tick on zero whenever the range spans it, so the zero line of a
+    residual chart lines up with a label.
+    """
+    if not (math.isfinite(lo) and math.isfinite(hi) and hi > lo):
+        return [lo], [format_number(lo, digits=3, trim=True)]
+    n_ticks = max(n_ticks, 2)
+    # The smallest round step that gives at most `n_ticks` ticks inside the range.
+    power = 10.0 ** math.floor(math.log10((hi - lo) / n_ticks))
+    for step in (m * power for m in (1.0, 2.0, 5.0, 10.0, 20.0, 50.0)):
+        first = math.ceil(lo / step - 1e-9) * step
+        count = math.floor((hi - first) / step + 1e-9) + 1
+        if count <= n_ticks:
+            break
+    positions = [first + i * step for i in range(count)]
+    # Snap values such as 3e-17 to 0 so they print as "0".
+    positions = [0.0 if abs(p) < step * 1e-9 else p for p in positions]
+    return positions, [format_number(p, digits=3, trim=True) for p in positions]
+
+
+def _tick_count(width: int) -> int:
+    """Return how many x-axis labels fit across ``width`` cells (one per ~14 cells)."""
+    return max(2, min(9, width // 14))
+
+
+def render_histogram(histogram: Any, width: int, height: int, *, color: bool) -> str:
+    """Draw the residual histogram with the counts beyond its outer edges noted below.
+
+    Parameters
+    ----------
+    histogram : object
+        A residual histogram from the diagnostics pass with ``edges`` (k + 1 increasing
+        values), ``counts`` (k), ``below`` and ``above`` (rows outside the edges).
+    width, height : int
+        Size of the chart in terminal cells (about 76x14 in an 80x24 terminal).
+    color : bool
+        Colour the chart with ANSI codes; False gives plain text.
+
+    Returns
+    -------
+    str
+        The chart text.
+
+    See Also
+    --------
+    render_binned : mean residual per bin of fitted value or predictor.
+    """
+    edges = np.asarray(histogram.edges, dtype=np.float64)
+    counts = np.asarray(histogram.counts, dtype=np.float64)
+    below = int(histogram.below)
+    above = int(histogram.above)
+    if width < _MIN_WIDTH or height < _MIN_HEIGHT:
+        return _note("residual histogram: enlarge to see", width, height)
+    if counts.size == 0 or (counts.sum() == 0 and below + above == 0):
+        return _note("no residuals to draw", width, height)
+    centers = (edges[:-1] + edges[1:]) / 2.0
+    tail_note = (
+        f"{format_count(below)} rows below {format_number(edges[0], digits=3, trim=True)}, "
+        f"{format_count(above)} above {format_number(edges[-1], digits=3, trim=True)}"
+    )
+    total = int(counts.sum()) + below + above
+
+    def steps() -> None:
+        plt.bar(
+            centers.tolist(),
+            counts.tolist(),
+            width=1.0,
+            marker="sd",
+            color=_BAR_COLOR if color else None,
+        )
+        plt.title(f"residuals: {format_count(total)} rows by size of residual")
+        plt.xlabel(tail_note)
+        ticks, labels = _ticks(float(edges[0]), float(edges[-1]), _tick_count(width))
+        plt.xticks(ticks, labels)
+        top = float(counts.max())
+        y_ticks, y_labels = _ticks(0.0, top, max(2, min(4, height // 4)))
+        plt.yticks(y_ticks, [format_count(y) for y in y_ticks] if top >= 10 else y_labels)
+
+    return _draw(steps, width, height, color=color)
+
+
+def _finite_mid(lo: float, hi: float) -> float:
+    """Return the middle of a bin, or its finite end when the other end is infinite."""
+    if math.isfinite(lo) and math.isfinite(hi):
+        return (lo + hi) / 2.0
+    return lo if math.isfinite(lo) else hi
+
+
+def _bin_arrays(bins: Sequence[Any]) -> dict[str, NDArray[np.float64]]:
+    """Collect the plotted fields of non-empty bins into arrays keyed by field name."""
+    kept = [b for b in bins if int(b.n) > 0 and math.isfinite(float(b.mean_resid))]
+    return {
+        "x": np.array([_finite_mid(float(b.lo), float(b.hi)) for b in kept], dtype=np.float64),
+        "lo": np.array([float(b.lo) for b in kept], dtype=np.float64),
+        "hi": np.array([float(b.hi) for b in kept], dtype=np.float64),
+        "mean": np.array([float(b.mean_resid) for b in kept], dtype=np.float64),
+        "q10": np.array([float(b.q10) for b in kept], dtype=np.float64),
+        "q90": np.array([float(b.q90) for b in kept], dtype=np.float64),
+    }
+
+
+def render_binned(
+    bins: Sequence[Any],
+    width: int,
+    height: int,
+    *,
+    title: str,
+    x_label: str,
+    color: bool,
+) -> str:
+    """Draw mean residual per bin, with the 10%-90% spread of residuals and a zero line.
+
+    A model that fits keeps the mean line near zero across the whole range; a bend
+    suggests a missing curve or interaction, and a widening band suggests changing spread.
+
+    Parameters
+    ----------
+    bins : sequence of objects
+        Bins in increasing order, each with ``lo``, ``hi``, ``n``, ``mean_resid``,
+        ``q10`` and ``q90``; empty bins are skipped.
+    width, height : int
+        Size of the chart in terminal cells.
+    title : str
+        Chart title, e.g. ``"residual by fitted value"``.
+    x_label : str
+        What the bins are cut on, e.g. ``"fitted"`` or a predictor name.
+    color : bool
+        Colour the chart with ANSI codes; False gives plain text.
+
+    Returns
+    -------
+    str
+        The chart text.
+
+    See Also
+    --------
+    render_histogram : distribution of residuals.
+    """
+    if width < _MIN_WIDTH or height < _MIN_HEIGHT:
+        return _note(f"{title}: enlarge to see", width, height)
+    arrays = _bin_arrays(bins)
+    x = arrays["x"]
+    if x.size == 0:
+        return _note(f"{title}: no rows to draw", width, height)
+    band_ok = np.isfinite(arrays["q10"]) & np.isfinite(arrays["q90"])
+    values = np.concatenate([arrays["mean"], arrays["q10"][band_ok], arrays["q90"][band_ok], [0]])
+    y_lo, y_hi = float(values.min()), float(values.max())
+    pad = 0.05 * (y_hi - y_lo) if y_hi > y_lo else 1.0
+    finite_edges = np.concatenate([arrays["lo"], arrays["hi"]])
+    finite_edges = finite_edges[np.isfinite(finite_edges)]
+    x_lo, x_hi = float(finite_edges.min()), float(finite_edges.max())
+
+    def steps() -> None:
+        plt.hline(0.0, color=_ZERO_COLOR if color else None)
+        if band_ok.any():
+            xb = x[band_ok].tolist()
+            band_color = _BAND_COLOR if color else None
+            plt.plot(xb, arrays["q90"][band_ok].tolist(), marker="dot", color=band_color)
+            plt.plot(xb, arrays["q10"][band_ok].tolist(), marker="dot", color=band_color)
+        plt.plot(
+            x.tolist(), arrays["mean"].tolist(), marker="hd", color=_MEAN_COLOR if color else None
+        )
+        plt.scatter(
+            x.tolist(), arrays["mean"].tolist(), marker="●", color=_MEAN_COLOR if color else None
+        )
+        plt.title(title)
+        plt.xlabel(f"{x_label}   (● mean residual, dotted: 10%-90% of residuals)")
+        plt.ylim(y_lo - pad, y_hi + pad)
+        if x_hi > x_lo:
+            plt.xlim(x_lo, x_hi)
+        ticks, labels = _ticks(x_lo, x_hi, _tick_count(width))
+        plt.xticks(ticks, labels)
+        y_ticks, y_labels = _ticks(y_lo, y_hi, max(2, min(5, height // 3)))
+        plt.yticks(y_ticks, y_labels)
+
+    return _draw(steps, width, height, color=color)

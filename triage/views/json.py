@@ -1,0 +1,259 @@
+"""Results as JSON-safe dictionaries for ``triage fit --json`` and ``triage report --json``.
+
+The keys are a public contract: scripts read them. Add keys freely; never rename or
+remove one without a version note. Every number is a plain Python ``int`` or ``float``;
+NaN and infinities become ``None`` (JSON ``null``, "not available"), so the output
+passes ``json.dumps(..., allow_nan=False)``.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from triage.views.format import format_number
+from triage.views.text import model_formula
+
+if TYPE_CHECKING:
+    from triage.core.diagnostics import Diagnostics, ResidualBin, WorstRow
+    from triage.core.residual_tests import ResidualTest
+    from triage.engine.passes import DataSummary, FitOutcome, ReportOutcome
+
+
+def json_safe(value: Any) -> Any:
+    """Convert numpy values, tuples and non-finite floats into plain JSON values.
+
+    Parameters
+    ----------
+    value : object
+        A number, string, None, mapping, sequence or numpy array, nested freely.
+
+    Returns
+    -------
+    object
+        The same structure with numpy scalars as Python numbers, arrays and tuples as
+        lists, mapping keys as strings, and NaN or infinities as None.
+    """
+    if value is None or isinstance(value, bool | str):
+        return value
+    if isinstance(value, np.bool_):
+        return bool(value)
+    if isinstance(value, int | np.integer):
+        return int(value)
+    if isinstance(value, float | np.floating):
+        number = float(value)
+        return number if math.isfinite(number) else None
+    if isinstance(value, np.ndarray):
+        return [json_safe(v) for v in value.tolist()]
+    if isinstance(value, Mapping):
+        return {str(k): json_safe(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [json_safe(v) for v in value]
+    msg = f"cannot write a value of type `{type(value).__name__}` as JSON: {value!r}"
+    raise TypeError(msg)
+
+
+def _data_to_json(data: DataSummary) -> dict[str, Any]:
+    """Describe the rows a result was computed on."""
+    return {
+        "source": data.source,
+        "rows_in_source": data.rows_in_source,
+        "rows_read": data.rows_read,
+        "rows_used": data.rows_used,
+        "rows_dropped": data.rows_dropped,
+        "rows_dropped_missing": data.rows_dropped_missing,
+        "rows_dropped_domain": data.rows_dropped_domain,
+        "rows_dropped_unseen_level": data.rows_dropped_unseen_level,
+        "rows_filtered_out": data.rows_filtered_out,
+        "rows_excluded": data.rows_excluded,
+        "sample": data.sample,
+        "sample_warning": data.sample_warning,
+        "is_full_pass": data.is_full_pass,
+    }
+
+
+def fit_to_json(outcome: FitOutcome) -> dict[str, Any]:
+    """Return a fit as a JSON-safe dictionary.
+
+    Parameters
+    ----------
+    outcome : FitOutcome
+        A finished fit.
+
+    Returns
+    -------
+    dict
+        Keys ``data``, ``model``, ``coefficients`` (one entry per design column, the
+        intercept named ``intercept``), ``aliased`` and ``fit``.
+
+    See Also
+    --------
+    report_to_json : the same plus the diagnostics.
+    """
+    fit, spec = outcome.fit, outcome.spec
+    coefficients = [
+        {
+            "term": name,
+            "estimate": fit.coef[i],
+            "std_error": fit.std_error[i],
+            "t": fit.t[i],
+            "p": fit.p[i],
+            "ci_low": fit.ci_low[i],
+            "ci_high": fit.ci_high[i],
+        }
+        for i, name in enumerate(fit.names)
+    ]
+    result = {
+        "data": _data_to_json(outcome.data),
+        "model": {
+            "target": spec.target,
+            "terms": [term.label for term in spec.terms],
+            "intercept": spec.intercept,
+            "weights": spec.weights,
+            "where": spec.where,
+            "formula": model_formula(spec),
+        },
+        "coefficients": coefficients,
+        "aliased": list(fit.aliased),
+        "fit": {
+            "n": fit.n,
+            "r2": fit.r2,
+            "r2_is_uncentered": not fit.has_intercept,
+            "adj_r2": fit.adj_r2,
+            "resid_sd": fit.resid_sd,
+            "f": fit.f,
+            "f_p": fit.f_p,
+            "df_model": fit.df_model,
+            "df_resid": fit.df_resid,
+            "rss": fit.rss,
+            "loglik": fit.loglik,
+            "aic": fit.aic,
+            "bic": fit.bic,
+            "condition_number": fit.condition_number,
+            "is_weighted": fit.is_weighted,
+        },
+    }
+    safe: dict[str, Any] = json_safe(result)
+    return safe
+
+
+def _test_to_json(test: ResidualTest) -> dict[str, Any]:
+    """Write a test as ``stat``, its degrees of freedom (``df`` or ``df1``/``df2``) and ``p``."""
+    entry: dict[str, Any] = {"stat": test.statistic}
+    if len(test.df) == 1:
+        entry["df"] = test.df[0]
+    elif len(test.df) == 2:
+        entry["df1"], entry["df2"] = test.df
+    # Durbin–Watson has no simple reference law, so no p (NaN in the result).
+    if test.df:
+        entry["p"] = test.p_value
+    return entry
+
+
+def _bin_to_json(b: ResidualBin) -> dict[str, Any]:
+    """Write one residual bin."""
+    return {
+        "lo": b.lo,
+        "hi": b.hi,
+        "n": b.n,
+        "x_mean": b.x_mean,
+        "mean_resid": b.mean_resid,
+        "q10": b.q10,
+        "q50": b.q50,
+        "q90": b.q90,
+    }
+
+
+def _worst_to_json(r: WorstRow) -> dict[str, Any]:
+    """Write one worst row; ``row`` is its 0-based position in the source."""
+    return {
+        "row": r.row,
+        "fitted": r.fitted,
+        "resid": r.resid,
+        "weighted_resid": r.weighted_resid,
+        "studentized": r.studentized,
+        "leverage": r.leverage,
+        "cooks": r.cooks,
+    }
+
+
+def _diagnostics_to_json(d: Diagnostics) -> dict[str, Any]:
+    """Write everything pass 2 found, under the keys that `report_to_json` documents."""
+    hist = d.histogram
+    robust = {
+        label: {name: getattr(se, attr) for name, se in d.robust_se.items()}
+        for label, attr in (("HC0", "hc0"), ("HC1", "hc1"), ("HC2", "hc2"), ("HC3", "hc3"))
+    }
+    return {
+        "robust_se": robust,
+        "tests": {name: _test_to_json(test) for name, test in d.tests.items()},
+        "worst": {c: [_worst_to_json(r) for r in rows] for c, rows in d.worst.items()},
+        "segments": {
+            column: [
+                {
+                    "level": lv.level,
+                    "n": lv.n,
+                    "mean_resid": lv.mean_resid,
+                    "rmse": lv.rmse,
+                    "t": lv.t,
+                }
+                for lv in levels
+            ]
+            for column, levels in d.segments.items()
+        },
+        "segments_capped": list(d.segments_capped),
+        "histogram": {
+            "edges": hist.edges,
+            "counts": hist.counts,
+            "below": hist.below,
+            "above": hist.above,
+            "minimum": hist.minimum,
+            "maximum": hist.maximum,
+            "quantiles": {
+                format_number(q, digits=6, trim=True): v for q, v in hist.quantiles.items()
+            },
+        },
+        "binned": {name: [_bin_to_json(b) for b in bins] for name, bins in d.binned.items()},
+        "residuals": {
+            "n": d.n,
+            "skewness": d.resid_skewness,
+            "kurtosis": d.resid_kurtosis,
+        },
+        "threshold_counts": {
+            "studentized": d.counts.studentized,
+            "leverage": d.counts.leverage,
+            "leverage_threshold": d.counts.leverage_threshold,
+            "cooks": d.counts.cooks,
+            "cooks_threshold": d.counts.cooks_threshold,
+        },
+        "flags": [{"code": f.code, "message": f.message} for f in d.flags],
+    }
+
+
+def report_to_json(report: ReportOutcome) -> dict[str, Any]:
+    """Return a fit and its diagnostics as a JSON-safe dictionary.
+
+    Parameters
+    ----------
+    report : ReportOutcome
+        A fit and its diagnostics.
+
+    Returns
+    -------
+    dict
+        The keys of `fit_to_json` plus ``robust_se`` (``HC0``..``HC3``: term -> SE),
+        ``tests`` (each with ``stat``, ``df`` or ``df1``/``df2``, and ``p`` where one
+        exists), ``worst`` (criterion -> rows), ``segments`` (column -> levels),
+        ``segments_capped``, ``histogram``, ``binned`` (``fitted`` and each numeric
+        predictor -> bins), ``residuals``, ``threshold_counts`` and ``flags``.
+
+    See Also
+    --------
+    fit_to_json : the fit alone.
+    """
+    result = fit_to_json(report.outcome)
+    result.update(json_safe(_diagnostics_to_json(report.diagnostics)))
+    return result
