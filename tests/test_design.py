@@ -247,11 +247,12 @@ def test_design_drops_and_counts_missing_values() -> None:
                 "y": [1.0, 2.0, None, 4.0, 5.0, 6.0, 7.0, 8.0],
                 "x": [1.0, float("nan"), 3.0, float("inf"), -float("inf"), 6.0, 7.0, 8.0],
                 "k": [1, 2, 3, 4, 5, None, 7, 8],
-                "g": ["a", "b", "a", "b", "a", "b", None, "a"],
+                "g": ["a", "b", "a", "b", "a", "b", None, "b"],
             }
         )
     )
-    _, builder = make(frame, "x, k, g", target="y", sample=frame.slice(0, 1).vstack(frame[7:]))
+    _, builder = make(frame, "x, k, g", target="y")
+    assert builder.levels["g"] == ("a", "b")  # learned from the usable rows 0 and 7
     batch = builder.build(frame)
     # rows 1 (NaN), 2 (null y), 3 (+inf), 4 (-inf), 5 (null k), 6 (null level) are missing
     assert batch.n_dropped_missing == 6
@@ -278,9 +279,9 @@ def test_design_levels_learned_only_from_usable_rows_and_unseen_levels_dropped()
     ("term", "values", "pattern"),
     [
         ("log(x)", [1.0, 0.0, -2.0, 3.0], r"log of a value <= 0 in `log\(x\)` for 2 rows"),
-        ("sqrt(x)", [1.0, -0.5, 2.0, 3.0], r"sqrt of a negative value in `sqrt\(x\)` for 1 rows"),
+        ("sqrt(x)", [1.0, -0.5, 2.0, 3.0], r"sqrt of a negative value in `sqrt\(x\)` for 1 row"),
         ("log1p(x)", [-1.0, -3.0, 2.0, 3.0], r"log1p of a value <= -1 in `log1p\(x\)` for 2 rows"),
-        ("x:log(z)", [1.0, 2.0, 3.0, 4.0], r"log of a value <= 0 in `log\(z\)` for 1 rows"),
+        ("x:log(z)", [1.0, 2.0, 3.0, 4.0], r"log of a value <= 0 in `log\(z\)` for 1 row"),
     ],
 )
 def test_design_domain_errors_and_drop_invalid(
@@ -297,7 +298,7 @@ def test_design_domain_errors_and_drop_invalid(
         strict.build(frame)
     _, lenient = make(frame, term, target="y", sample=good, drop_invalid=True)
     batch = lenient.build(frame)
-    n_bad = int(pattern.split(" for ")[1].split(" ")[0])
+    n_bad = int(pattern.split(" for ")[1].split(" ")[0])  # the count written in the message
     assert batch.n_dropped_domain == n_bad
     assert batch.n_rows == 4 - n_bad
     assert np.isfinite(batch.x).all()
@@ -319,7 +320,11 @@ def test_design_nonpositive_weights() -> None:
         )
     )
     _, strict = make(frame, "x", target="y", weights="w")
-    with pytest.raises(DataError, match=r"weight <= 0 in the weights column `w` for 2 rows"):
+    with pytest.raises(
+        DataError,
+        match=r"weight <= 0 in the weights column `w` for 2 rows in this batch; weights must be "
+        r"positive: filter them with `--where` \(for example `w > 0`\)",
+    ):
         strict.build(frame)
     _, lenient = make(frame, "x", target="y", weights="w", drop_invalid=True)
     batch = lenient.build(frame)
@@ -331,7 +336,7 @@ def test_design_nonpositive_weights() -> None:
 def test_design_overflow_is_a_domain_problem() -> None:
     frame = with_rows(pl.DataFrame({"y": [1.0, 2.0, 3.0], "x": [1.0, 1e200, 2.0]}))
     _, strict = make(frame, "square(x)", target="y")
-    with pytest.raises(DataError, match=r"too large for float64 in `square\(x\)` for 1 rows"):
+    with pytest.raises(DataError, match=r"too large for float64 in `square\(x\)` for 1 row"):
         strict.build(frame)
     _, lenient = make(frame, "square(x)", target="y", drop_invalid=True)
     batch = lenient.build(frame)
@@ -375,3 +380,17 @@ def test_design_learn_errors() -> None:
         make(frame, "std(c)", target="y")
     with pytest.raises(SpecError, match=r"two design columns are both named `x`"):
         make(frame, "x, poly(x, 2)", target="y")
+
+
+def test_design_clean_batch_with_huge_sums_takes_the_row_path_and_drops_nothing() -> None:
+    # the quick whole-batch check sums each float column; 1e308 + 1e308 overflows to inf
+    # (IEEE 754 double range), which must only send the batch to the per-row check
+    frame = with_rows(pl.DataFrame({"y": [1e308, 1e308, 1.0], "x": [1.0, 2.0, 3.0]}))
+    _, builder = make(frame, "x", target="y")
+    batch = builder.build(frame)
+    assert (batch.n_dropped_missing, batch.n_dropped_domain, batch.n_dropped_unseen_level) == (
+        0,
+        0,
+        0,
+    )
+    np.testing.assert_array_equal(batch.y, [1e308, 1e308, 1.0])

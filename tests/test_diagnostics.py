@@ -8,6 +8,7 @@ unweighted residuals (see the module docstring of triage.core.diagnostics).
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import numpy as np
@@ -116,7 +117,7 @@ def run(
 def cuts(n: int, pieces: int, rng: np.random.Generator) -> list[tuple[int, int]]:
     inner = np.sort(rng.choice(np.arange(1, n), pieces - 1, replace=False))
     bounds = [0, *inner.tolist(), n]
-    return list(zip(bounds[:-1], bounds[1:], strict=True))
+    return list(itertools.pairwise(bounds))
 
 
 @pytest.fixture
@@ -130,10 +131,7 @@ def case(request: pytest.FixtureRequest, rng: np.random.Generator):
     x = design(data)
     w = data["w"] if request.param else None
     fit = fit_of(x, data["y"], w)
-    if w is None:
-        res = sm.OLS(data["y"], x).fit()
-    else:
-        res = sm.WLS(data["y"], x, weights=w).fit()
+    res = sm.OLS(data["y"], x).fit() if w is None else sm.WLS(data["y"], x, weights=w).fit()
     return data, x, w, fit, res
 
 
@@ -266,7 +264,11 @@ def test_diagnostics_binned_quantiles_within_one_fine_bin(case) -> None:
     diag = diag.finalize()
     e = np.asarray(res.wresid)
     width = config.fine_edges[1] - config.fine_edges[0]
-    values = {"fitted": np.asarray(res.fittedvalues), "a": data["a"], "b": data["b"]}
+    # Our own fitted values place rows in bins: statsmodels' may differ in the last bit and
+    # cross an edge (edges are sample quantiles, often equal to a fitted value).
+    fitted = row_diagnostics(fit, batch_of(data, x, w, 0, 240)).fitted
+    np.testing.assert_allclose(fitted, res.fittedvalues, rtol=RTOL)  # statsmodels
+    values = {"fitted": fitted, "a": data["a"], "b": data["b"]}
     assert set(diag.binned) == set(values)
     for name, bins in diag.binned.items():
         v = values[name]
@@ -363,7 +365,7 @@ def test_diagnostics_worst_rows_equal_full_sort(rng) -> None:
     for col in ("a", "b", "g", "u", "y", "w"):
         data[col][200:220] = data[col][180:200]
     data["a"][-1] = 12.0
-    data["y"][-2] += 30.0
+    data["y"][-2] += 300.0
     x = design(data)
     fit = fit_of(x, data["y"], None)
     config = config_for(fit, data, x, top_k=10)
@@ -423,10 +425,9 @@ def test_diagnostics_segments_match_polars_group_by(case) -> None:
     ts = [abs(lv.t) for lv in diag.segments["g"]]
     assert ts == sorted(ts, reverse=True)
 
-    # Numeric segment: polars cut with the same breaks, left-closed, as the oracle.
-    breaks = config.segment_cuts["u"].tolist()
-    binned = pl.Series(data["u"]).cut(breaks, left_closed=True).to_physical()
-    oracle_u = segment_oracle(binned, e)
+    # Numeric segment: numpy.digitize with the same cut points (left-closed bins) as oracle.
+    codes = np.digitize(data["u"], config.segment_cuts["u"], right=False)
+    oracle_u = segment_oracle(pl.Series(codes), e)
     got_u = sorted(diag.segments["u"], key=lambda lv: lv.n)
     assert sorted(v[0] for v in oracle_u.values()) == [lv.n for lv in got_u]
     assert sorted(abs(v[2]) for v in oracle_u.values()) == pytest.approx(
@@ -509,3 +510,32 @@ def test_stream_moments_merge_matches_scipy() -> None:
     assert acc.skewness() == pytest.approx(stats.skew(v), rel=1e-9)
     assert acc.kurtosis() == pytest.approx(stats.kurtosis(v, fisher=True) + 3.0, rel=1e-9)
     assert acc.mean == pytest.approx(v.mean(), rel=1e-15)
+
+
+def test_diagnostics_ordered_rows_flag_serial_correlation_and_trend() -> None:
+    rng = np.random.default_rng(8)
+    n = 200
+    t = np.arange(n, dtype=float)
+    a = t / 10.0 + rng.normal(0.0, 0.3, n)
+    noise = np.cumsum(rng.normal(0.0, 0.3, n))  # a random walk: strongly correlated neighbours
+    y = 2.0 + 0.8 * t / 10.0 + noise
+    data = {
+        "a": a,
+        "b": rng.normal(size=n),
+        "g": np.array(["x"] * n),
+        "u": t,
+        "y": y,
+        "w": np.ones(n),
+    }
+    x = design(data)
+    fit = fit_of(x, y, None)
+    res = sm.OLS(y, x).fit()
+    dw = durbin_watson(res.resid)  # statsmodels as oracle
+    for is_ordered in (False, True):
+        config = config_for(fit, data, x, is_ordered=is_ordered)
+        diag = run(fit, config, [batch_of(data, x, None, 0, 120), batch_of(data, x, None, 120, n)])
+        codes = {f.code for f in diag.finalize().flags}
+        # common practice range 1.5-2.5; only judged when rows are declared ordered
+        assert ("serial-correlation" in codes) == (is_ordered and not 1.5 <= dw <= 2.5)
+        assert ("shared-trend" in codes) == (is_ordered and res.rsquared > 0.95)
+    assert dw < 1.5  # the random walk noise must actually trip the rule

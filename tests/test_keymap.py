@@ -7,6 +7,7 @@ from pathlib import Path
 
 import pytest
 
+from tests import tui_support
 from triage.errors import KeymapError
 from triage.tui.app import all_binding_ids
 from triage.tui.keymap import (
@@ -17,7 +18,8 @@ from triage.tui.keymap import (
 )
 from triage.tui.locations import config_dir, shipped_keymaps, user_keymap_path
 
-pytest_plugins = ["tests.tui_support"]
+
+config_dir = tui_support.config_dir
 
 
 def test_keymap_default_names_every_binding(config_dir: Path) -> None:

@@ -9,13 +9,32 @@ from __future__ import annotations
 import json
 import math
 import re
+from pathlib import Path
+from typing import Any
 
 import numpy as np
+import polars as pl
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
+from triage.core.spec import build_spec
+from triage.data.source import open_source
+from triage.engine.passes import FitOutcome, ReportOutcome, fit_model, run_report
+from triage.views.charts import render_binned, render_histogram
 from triage.views.format import NA, format_count, format_number, format_p, truncate
+from triage.views.json import fit_to_json, json_safe, report_to_json
+from triage.views.text import (
+    model_formula,
+    render_aliased,
+    render_coefficients,
+    render_data_summary,
+    render_fit_quality,
+    render_fit_report,
+    render_full_report,
+    render_tests,
+    table,
+)
 
 ANSI = re.compile(r"\x1b\[")
 
@@ -88,3 +107,442 @@ def test_truncate_fits_and_marks_cuts(text: str, width: int) -> None:
     else:
         assert out.endswith("…")
         assert text.startswith(out[:-1])
+
+
+# ── results built by the real engine on small invented data ────────────────────────
+
+
+def _write(tmp_path_factory: pytest.TempPathFactory, name: str, frame: pl.DataFrame) -> Path:
+    path = tmp_path_factory.mktemp("views") / f"{name}.parquet"
+    frame.write_parquet(path, row_group_size=100)
+    return path
+
+
+@pytest.fixture(scope="module")
+def trips(tmp_path_factory: pytest.TempPathFactory) -> pl.DataFrame:
+    """Invented data: a skewed error, a categorical shift, a collinear column, a few nulls."""
+    rng = np.random.default_rng(7)
+    n = 600
+    x = rng.uniform(0.0, 10.0, n)
+    z = rng.normal(size=n)
+    g = rng.choice(["north", "south", "west"], n)
+    y = 1.0 + 2.0 * x - 0.5 * z + (g == "south") * 1.5 + rng.exponential(1.0, n)
+    x_missing = x.copy()
+    x_missing[:4] = np.nan
+    return pl.DataFrame(
+        {"y": y, "x": x_missing, "z": z, "g": g, "twice_x": 2.0 * x_missing}
+    ).with_columns(pl.col("x").fill_nan(None), pl.col("twice_x").fill_nan(None))
+
+
+@pytest.fixture(scope="module")
+def trips_path(tmp_path_factory: pytest.TempPathFactory, trips: pl.DataFrame) -> Path:
+    return _write(tmp_path_factory, "trips", trips)
+
+
+@pytest.fixture(scope="module")
+def report(trips_path: Path) -> ReportOutcome:
+    source = open_source(trips_path)
+    spec = build_spec(source.schema(), target="y", terms="x, z, g, twice_x")
+    return run_report(source, spec, rows=None, top_k=5, by=("g",))
+
+
+@pytest.fixture(scope="module")
+def sampled_fit(trips_path: Path) -> FitOutcome:
+    source = open_source(trips_path)
+    spec = build_spec(source.schema(), target="y", terms="x, z", intercept=False)
+    return fit_model(source, spec, rows=200, seed=3)
+
+
+def _statsmodels_fit(trips: pl.DataFrame, names: list[str]) -> Any:
+    """Oracle: statsmodels OLS on the same complete rows, with the design columns `names`
+    (``intercept``, numeric columns, and ``g[level]`` dummies) built here with numpy."""
+    import statsmodels.api as sm
+
+    frame = trips.drop_nulls(["x"])
+    columns = []
+    for name in names:
+        if name == "intercept":
+            columns.append(np.ones(frame.height))
+        elif name.startswith("g["):
+            columns.append((frame["g"] == name[2:-1]).to_numpy().astype(float))
+        else:
+            columns.append(frame[name].to_numpy())
+    return sm.OLS(frame["y"].to_numpy(), np.column_stack(columns)).fit()
+
+
+def _estimable(report: ReportOutcome) -> list[str]:
+    return [n for n in report.outcome.fit.names if n not in report.outcome.fit.aliased]
+
+
+# ── JSON ─────────────────────────────────────────────────────────────────────────────
+
+
+FIT_KEYS = {
+    "data": {"source", "rows_in_source", "rows_used", "rows_dropped", "sample"},
+    "model": {"target", "terms", "intercept", "weights", "where"},
+    "fit": {
+        "r2",
+        "adj_r2",
+        "resid_sd",
+        "f",
+        "f_p",
+        "df_model",
+        "df_resid",
+        "loglik",
+        "aic",
+        "bic",
+        "condition_number",
+    },
+}
+
+
+def test_views_fit_json_round_trips_with_contract_keys(report: ReportOutcome) -> None:
+    outcome = report.outcome
+    doc = json.loads(json.dumps(fit_to_json(outcome), allow_nan=False))
+    for section, keys in FIT_KEYS.items():
+        assert keys <= set(doc[section]), section
+    assert set(doc["coefficients"][0]) == {
+        "term",
+        "estimate",
+        "std_error",
+        "t",
+        "p",
+        "ci_low",
+        "ci_high",
+    }
+    assert doc["coefficients"][0]["term"] == "intercept"
+    assert doc["model"]["terms"] == ["x", "z", "g", "twice_x"]
+    assert doc["data"]["rows_dropped"] == 4
+    assert doc["data"]["sample"] is None
+    fit = outcome.fit
+    assert doc["fit"]["r2"] == fit.r2
+    assert doc["fit"]["df_resid"] == fit.df_resid
+    for i, entry in enumerate(doc["coefficients"]):
+        assert entry["term"] == fit.names[i]
+        for key, values in (("estimate", fit.coef), ("std_error", fit.std_error), ("p", fit.p)):
+            expected = None if math.isnan(values[i]) else float(values[i])
+            assert entry[key] == expected
+
+
+def test_views_fit_json_aliased_column_is_null(report: ReportOutcome) -> None:
+    doc = fit_to_json(report.outcome)
+    assert doc["aliased"] == ["twice_x"]
+    aliased = next(c for c in doc["coefficients"] if c["term"] == "twice_x")
+    assert aliased["estimate"] is None
+    assert aliased["ci_low"] is None
+
+
+def test_views_fit_json_estimates_match_statsmodels(
+    report: ReportOutcome, trips: pl.DataFrame
+) -> None:
+    # Oracle: statsmodels OLS on the estimable design columns.
+    names = _estimable(report)
+    oracle = _statsmodels_fit(trips, names)
+    doc = fit_to_json(report.outcome)
+    by_name = {c["term"]: c for c in doc["coefficients"]}
+    estimates = np.array([by_name[n]["estimate"] for n in names])
+    errors = np.array([by_name[n]["std_error"] for n in names])
+    np.testing.assert_allclose(estimates, oracle.params, rtol=1e-9)
+    np.testing.assert_allclose(errors, oracle.bse, rtol=1e-9)
+    assert doc["fit"]["r2"] == pytest.approx(oracle.rsquared, rel=1e-10)
+    assert doc["fit"]["aic"] == pytest.approx(oracle.aic, rel=1e-10)
+
+
+def test_views_report_json_round_trips_with_contract_keys(report: ReportOutcome) -> None:
+    doc = json.loads(json.dumps(report_to_json(report), allow_nan=False))
+    d = report.diagnostics
+    assert set(doc["robust_se"]) == {"HC0", "HC1", "HC2", "HC3"}
+    assert doc["robust_se"]["HC3"]["x"] == d.robust_se["x"].hc3
+    tests = doc["tests"]
+    assert set(tests["breusch_pagan"]) == {"stat", "df", "p"}
+    assert set(tests["jarque_bera"]) == {"stat", "df", "p"}
+    assert set(tests["reset"]) == {"stat", "df1", "df2", "p"}
+    assert set(tests["durbin_watson"]) == {"stat"}
+    assert tests["breusch_pagan"]["stat"] == d.tests["breusch_pagan"].statistic
+    assert set(doc["worst"]) == {"abs_resid", "studentized", "leverage", "cooks"}
+    first = doc["worst"]["cooks"][0]
+    assert {"row", "fitted", "resid", "studentized", "leverage", "cooks"} <= set(first)
+    assert first["row"] == d.worst["cooks"][0].row
+    levels = doc["segments"]["g"]
+    assert {lv["level"] for lv in levels} == {"north", "south", "west"}
+    assert set(levels[0]) == {"level", "n", "mean_resid", "rmse", "t"}
+    hist = doc["histogram"]
+    assert hist["counts"] == d.histogram.counts.tolist()
+    assert sum(hist["counts"]) + hist["below"] + hist["above"] == d.n
+    assert len(hist["edges"]) == len(hist["counts"]) + 1
+    assert {"fitted", "x", "z"} <= set(doc["binned"])
+    assert {"lo", "hi", "n", "mean_resid", "q10", "q50", "q90"} <= set(doc["binned"]["fitted"][0])
+    assert [f["code"] for f in doc["flags"]] == [f.code for f in d.flags]
+
+
+def test_views_report_json_worst_rows_match_statsmodels(
+    report: ReportOutcome, trips: pl.DataFrame
+) -> None:
+    # Oracle: statsmodels OLSInfluence. The source positions of the complete rows are
+    # their positions in `trips` (the first four rows have a null and are dropped).
+    oracle = _statsmodels_fit(trips, _estimable(report))
+    positions = np.flatnonzero(trips["x"].is_not_null().to_numpy())
+    influence = oracle.get_influence()
+    cooks = influence.cooks_distance[0]
+    doc = report_to_json(report)
+    worst = doc["worst"]["cooks"]
+    top = np.argsort(-cooks)[: len(worst)]
+    assert [w["row"] for w in worst] == positions[top].tolist()
+    np.testing.assert_allclose([w["cooks"] for w in worst], cooks[top], rtol=1e-8)
+    leverage_top = np.argsort(-influence.hat_matrix_diag)[0]
+    assert doc["worst"]["leverage"][0]["row"] == positions[leverage_top]
+
+
+def test_views_json_safe_converts_numpy_and_non_finite() -> None:
+    value = {
+        "a": np.float64("nan"),
+        "b": np.inf,
+        "c": np.int64(3),
+        "d": np.array([1.5, np.nan]),
+        "e": (np.bool_(True), -np.inf),
+        2: np.float32(0.5),
+    }
+    out = json_safe(value)
+    assert out == {"a": None, "b": None, "c": 3, "d": [1.5, None], "e": [True, None], "2": 0.5}
+    assert type(out["c"]) is int
+    json.dumps(out, allow_nan=False)
+
+
+# ── charts ───────────────────────────────────────────────────────────────────────────
+
+SIZES = [(76, 14), (120, 30)]
+
+
+def _check_size(text: str, width: int, height: int) -> None:
+    lines = text.split("\n")
+    assert len(lines) == height
+    assert max(len(line) for line in lines) <= width
+
+
+@pytest.mark.parametrize(("width", "height"), SIZES)
+def test_views_charts_render_plain_at_pane_sizes(
+    report: ReportOutcome, width: int, height: int
+) -> None:
+    d = report.diagnostics
+    hist = render_histogram(d.histogram, width, height, color=False)
+    assert not ANSI.search(hist)
+    _check_size(hist, width, height)
+    assert "█" in hist
+    for name, bins in d.binned.items():
+        chart = render_binned(bins, width, height, title=f"by {name}", x_label=name, color=False)
+        assert not ANSI.search(chart)
+        _check_size(chart, width, height)
+        assert "●" in chart
+
+
+def test_views_charts_color_keeps_ansi(report: ReportOutcome) -> None:
+    chart = render_histogram(report.diagnostics.histogram, 76, 14, color=True)
+    assert ANSI.search(chart)
+
+
+def _plot_columns(lines: list[str]) -> tuple[int, int]:
+    """Return the first and last column inside the chart frame (from the `┌`/`┐` corners)."""
+    top = next(line for line in lines if "┌" in line)
+    return top.index("┌") + 1, top.index("┐") - 1
+
+
+def _tallest_bar_fraction(text: str) -> float:
+    """Where, from 0 (left edge) to 1 (right edge), the highest bar cells sit."""
+    lines = text.split("\n")
+    left, right = _plot_columns(lines)
+    row = next(line for line in lines if "█" in line[left : right + 1])
+    columns = [i for i in range(left, right + 1) if row[i] == "█"]
+    return (float(np.mean(columns)) - left + 0.5) / (right - left + 1)
+
+
+def test_views_histogram_tallest_bar_where_numpy_puts_it(report: ReportOutcome) -> None:
+    # Oracle: numpy.histogram of the statsmodels residuals on the chart's own edges. The
+    # error is exponential (skewed), so the tallest bin lies left of the middle.
+    d = report.diagnostics
+    edges = d.histogram.edges
+    oracle = _statsmodels_fit(report.outcome.sample.drop_nulls(["x"]), _estimable(report))
+    counts, _ = np.histogram(oracle.resid, bins=edges)
+    tallest = np.flatnonzero(counts == counts.max())
+    assert tallest.max() < len(counts) // 2  # the skew is there to be seen
+    for width, height in SIZES:
+        fraction = _tallest_bar_fraction(render_histogram(d.histogram, width, height, color=False))
+        position = edges[0] + fraction * (edges[-1] - edges[0])
+        bin_width = edges[1] - edges[0]
+        # Within one bin of numpy's tallest bin (one cell of rounding at 76 columns).
+        nearest = np.min(np.abs(position - (edges[tallest] + bin_width / 2)))
+        assert nearest <= 1.5 * bin_width, (width, fraction, tallest)
+
+
+def test_views_histogram_differs_with_the_data(report: ReportOutcome) -> None:
+    d = report.diagnostics
+    hist = d.histogram
+    flipped = type(hist)(
+        edges=hist.edges,
+        counts=hist.counts[::-1].copy(),
+        below=hist.above,
+        above=hist.below,
+        minimum=-hist.maximum,
+        maximum=-hist.minimum,
+        quantiles=hist.quantiles,
+    )
+    one = render_histogram(hist, 76, 14, color=False)
+    two = render_histogram(flipped, 76, 14, color=False)
+    assert one != two
+    assert _tallest_bar_fraction(one) < 0.5 < _tallest_bar_fraction(two)
+
+
+def test_views_binned_chart_shows_missed_curve(tmp_path: Path) -> None:
+    # Fitting a straight line to a parabola leaves positive mean residuals at both ends
+    # and negative ones in the middle; numpy.polyfit is the oracle for those signs.
+    rng = np.random.default_rng(11)
+    x = rng.uniform(-3.0, 3.0, 800)
+    y = x**2 + 0.1 * rng.normal(size=800)
+    path = tmp_path / "curve.parquet"
+    pl.DataFrame({"y": y, "x": x}).write_parquet(path)
+    source = open_source(path)
+    spec = build_spec(source.schema(), target="y", terms="x")
+    bins = run_report(source, spec, rows=None).diagnostics.binned["x"]
+    resid = y - np.polyval(np.polyfit(x, y, 1), x)
+    assert resid[x < -2.5].mean() > 0 > resid[np.abs(x) < 0.5].mean()
+    text = render_binned(bins, 120, 30, title="by x", x_label="x", color=False)
+    lines = text.split("\n")
+    zero_row = next(i for i, line in enumerate(lines) if re.match(r"^\s*0[┤├]", line))
+    left, right = _plot_columns(lines)
+    marks = [
+        (i, j)
+        for i, line in enumerate(lines)
+        for j in range(left, right + 1)
+        if j < len(line) and line[j] == "●"
+    ]
+    leftmost = min(marks, key=lambda m: m[1])
+    rightmost = max(marks, key=lambda m: m[1])
+    middle = min(marks, key=lambda m: abs(m[1] - (left + right) / 2))
+    assert leftmost[0] < zero_row and rightmost[0] < zero_row  # above the zero line
+    assert middle[0] > zero_row  # below it
+
+
+def test_views_charts_are_safe_across_threads(report: ReportOutcome) -> None:
+    # plotext has one global figure; the lock must keep concurrent renders apart.
+    from concurrent.futures import ThreadPoolExecutor
+
+    d = report.diagnostics
+    jobs = [(w, h) for w, h in SIZES for _ in range(4)]
+
+    def draw(size: tuple[int, int]) -> tuple[str, str]:
+        w, h = size
+        return (
+            render_histogram(d.histogram, w, h, color=False),
+            render_binned(d.binned["fitted"], w, h, title="t", x_label="fitted", color=False),
+        )
+
+    expected = {size: draw(size) for size in SIZES}
+    with ThreadPoolExecutor(max_workers=4) as pool:
+        results = list(pool.map(draw, jobs))
+    assert all(result == expected[size] for result, size in zip(results, jobs, strict=True))
+
+
+def test_views_charts_too_small_or_empty_give_a_note(report: ReportOutcome) -> None:
+    d = report.diagnostics
+    small = render_histogram(d.histogram, 10, 4, color=False)
+    _check_size(small, 10, 4)
+    empty = render_binned((), 76, 14, title="by x", x_label="x", color=False)
+    _check_size(empty, 76, 14)
+    assert "no rows" in empty
+
+
+# ── text ─────────────────────────────────────────────────────────────────────────────
+
+BORROWED = [
+    "residual standard error",
+    "multiple r-squared",
+    "dep. variable",
+    "signif. codes",
+    "pr(>|t|)",
+    "ols regression results",
+    "***",
+]
+
+
+def test_views_table_aligns_columns() -> None:
+    text = table(
+        ["name", "value", "p"],
+        [["a", "1.5", "0.01"], ["longer name", "-12.25", NA]],
+        align=["<", ">", ">"],
+    )
+    lines = text.split("\n")
+    ends = {line.rindex(cell) + len(cell) for line, cell in zip(lines, ["p", "╌", "0.01", NA])}
+    assert len(ends) == 1  # the right-aligned last column ends in one place
+    value_ends = {
+        lines[0].index("value") + 5,
+        lines[2].index("1.5") + 3,
+        lines[3].index("-12.25") + 6,
+    }
+    assert len(value_ends) == 1
+
+
+def test_views_table_shrinks_the_named_column() -> None:
+    text = table(
+        ["term", "estimate"],
+        [["a_very_long_term_name_indeed", "1.000"]],
+        align=["<", ">"],
+        width=20,
+    )
+    assert max(len(line) for line in text.split("\n")) <= 20
+    assert "…" in text
+
+
+def test_views_coefficients_show_aliased_as_not_available(report: ReportOutcome) -> None:
+    text = render_coefficients(report.outcome.fit)
+    row = next(line for line in text.split("\n") if line.startswith("twice_x"))
+    assert row.count(NA) == 6  # estimate, SE, t, p and both interval ends
+
+
+@pytest.mark.parametrize("width", [80, 120])
+def test_views_full_report_fits_width_and_uses_own_wording(
+    report: ReportOutcome, width: int
+) -> None:
+    text = render_full_report(report, width=width, charts=True, color=False)
+    assert not ANSI.search(text)
+    assert max(len(line) for line in text.split("\n")) <= width
+    lowered = text.lower() + render_fit_report(report.outcome).lower()
+    for heading in BORROWED:
+        assert heading not in lowered
+    assert "every row" in text
+    assert "── fit quality" in text
+    assert "R² alone does not judge a fit" in text
+    assert "twice_x" in render_aliased(report.outcome.fit)
+    assert "Breusch–Pagan" in text and "Durbin–Watson" in text
+    for flag in report.diagnostics.flags:
+        assert f"[{flag.code}]" in text
+
+
+def test_views_report_without_charts_has_no_chart(report: ReportOutcome) -> None:
+    text = render_full_report(report, width=100, charts=False)
+    assert "█" not in text and "●" not in text
+
+
+def test_views_data_summary_says_sample_and_drops(
+    report: ReportOutcome, sampled_fit: FitOutcome
+) -> None:
+    full = render_data_summary(report.outcome.data)
+    assert "every row" in full
+    assert re.search(r"dropped: missing values\s+4\b", full)
+    sampled = render_data_summary(sampled_fit.data)
+    assert "a sample: " in sampled
+    assert sampled_fit.data.sample is not None and sampled_fit.data.sample in sampled
+    assert fit_to_json(sampled_fit)["data"]["sample"] == sampled_fit.data.sample
+
+
+def test_views_no_intercept_says_uncentered(sampled_fit: FitOutcome) -> None:
+    assert model_formula(sampled_fit.spec) == "y ~ x + z - 1"
+    quality = render_fit_quality(sampled_fit.fit)
+    assert "uncentered" in quality
+    assert fit_to_json(sampled_fit)["model"]["intercept"] is False
+
+
+def test_views_tests_table_shows_missing_p_as_mark(report: ReportOutcome) -> None:
+    text = render_tests(report.diagnostics.tests)
+    dw = next(line for line in text.split("\n") if line.startswith("Durbin–Watson"))
+    assert dw.count(NA) == 2  # no df, no p
+    bp = report.diagnostics.tests["breusch_pagan"]
+    assert format_number(bp.statistic) in text

@@ -244,8 +244,10 @@ class PredictorCurvature:
     """Model's K-fold RMSE minus `spline_rmse` (positive: the spline predicts better)."""
     relative_gain: float
     """`gain` as a share of the model's K-fold RMSE."""
+    relative_gain_given_top: float | None
+    """Relative gain of this spline added to the top predictor's spline; None for the top."""
     is_flagged: bool
-    """Whether `relative_gain` reaches the threshold."""
+    """Whether the relative gain reaches the threshold (given the top spline, for the others)."""
 
 
 @dataclass(frozen=True)
@@ -286,6 +288,7 @@ def spline_basis(values: ArrayLike, *, n_knots: int = SPLINE_KNOTS) -> NDArray[n
         intercept in the model the basis spans every cubic piece, the straight line
         included.
     """
+    # Deferred: scikit-learn takes about 1 to 4 s to import on these machines.
     from sklearn.preprocessing import SplineTransformer
 
     column = np.asarray(values, dtype=np.float64).reshape(-1, 1)
@@ -309,6 +312,11 @@ def curvature_check(
     threshold: float = CURVATURE_GAIN_THRESHOLD,
 ) -> CurvatureCheck:
     """Compare the model's K-fold RMSE with refits that give each predictor a spline.
+
+    Correlated predictors can each pick up part of one predictor's curve, so the check
+    runs in two steps: every predictor's spline alone, then each other predictor's spline
+    added to the spline of the one with the largest gain. The top predictor is flagged on
+    its own gain, the others on their gain given the top spline.
 
     Parameters
     ----------
@@ -342,28 +350,39 @@ def curvature_check(
         With fewer rows than folds.
     """
     xa = np.asarray(x, dtype=np.float64)
-    base = kfold_rmse(xa, y, weights, has_intercept=has_intercept, folds=folds, seed=seed)
-    if base is None:
-        msg = (
-            f"the curvature check needs at least {folds} rows for {folds} folds, "
-            f"got {xa.shape[0]}; use more rows or fewer `--folds`"
+
+    def rmse_with(splines: Sequence[str]) -> float:
+        drop = [j for name in splines for j in linear_columns.get(name, ())]
+        bases = [spline_basis(predictors[name]) for name in splines]
+        design = np.hstack([np.delete(xa, drop, axis=1), *bases])
+        result = kfold_rmse(
+            design, y, weights, has_intercept=has_intercept, folds=folds, seed=seed
         )
-        raise DataError(msg)
+        if result is None:
+            msg = (
+                f"the curvature check needs at least {folds} rows for {folds} folds, "
+                f"got {xa.shape[0]}; use more rows or fewer `--folds`"
+            )
+            raise DataError(msg)
+        return result.rmse
+
+    base = rmse_with(())
+    # A cubic piece needs at least 4 distinct values.
+    usable = [n for n, v in predictors.items() if np.unique(np.asarray(v)).size >= 4]
+    alone = {name: rmse_with((name,)) for name in usable}
+    ranked = sorted(usable, key=lambda name: alone[name])
     results = []
-    for name, values in predictors.items():
-        column = np.asarray(values, dtype=np.float64)
-        if np.unique(column).size < 4:
-            continue  # too few distinct values for a cubic piece
-        design = np.delete(xa, list(linear_columns.get(name, ())), axis=1)
-        augmented = np.hstack([design, spline_basis(column)])
-        spline = kfold_rmse(
-            augmented, y, weights, has_intercept=has_intercept, folds=folds, seed=seed
-        )
-        assert spline is not None  # same rows as `base`
-        gain = base.rmse - spline.rmse
-        relative = gain / base.rmse if base.rmse > 0 else 0.0
+    for rank, name in enumerate(ranked):
+        relative = (base - alone[name]) / base if base > 0 else 0.0
+        given_top = None
+        if rank > 0:
+            top_rmse = alone[ranked[0]]
+            both = rmse_with((ranked[0], name))
+            given_top = (top_rmse - both) / top_rmse if top_rmse > 0 else 0.0
+        decisive = relative if given_top is None else given_top
         results.append(
-            PredictorCurvature(name, spline.rmse, gain, relative, relative >= threshold)
+            PredictorCurvature(
+                name, alone[name], base - alone[name], relative, given_top, decisive >= threshold
+            )
         )
-    results.sort(key=lambda r: -r.gain)
-    return CurvatureCheck(xa.shape[0], folds, base.rmse, tuple(results), threshold)
+    return CurvatureCheck(xa.shape[0], folds, base, tuple(results), threshold)

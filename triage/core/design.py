@@ -9,6 +9,7 @@ and one ``to_numpy``, dropping and counting rows it cannot use.
 from __future__ import annotations
 
 import math
+import re
 from dataclasses import dataclass, field
 from types import MappingProxyType
 from typing import TYPE_CHECKING, Final
@@ -46,6 +47,7 @@ _DROP_HINT: Final = (
     "filter them with `--where` or use `log1p`, or pass `--drop-invalid` to leave those rows out"
 )
 _OVERFLOW_TRANSFORMS: Final = frozenset({"square", "pow", "poly"})
+_SQL_NAME: Final = re.compile(r"[A-Za-z_][A-Za-z0-9_]*\Z")
 
 
 @dataclass(frozen=True)
@@ -100,6 +102,11 @@ class DesignBatch:
     def n_rows(self) -> int:
         """Number of rows kept."""
         return int(self.x.shape[0])
+
+
+def _rows(n: int) -> str:
+    """Write a row count for a message: `1 row`, `1,204 rows`."""
+    return f"{n:,} row" if n == 1 else f"{n:,} rows"
 
 
 def _is_float(dtype: pl.DataType | type[pl.DataType]) -> bool:
@@ -174,14 +181,14 @@ def _domain_checks(spec: ModelSpec) -> list[_DomainCheck]:
                     name, x < 0, f"sqrt of a negative value in `{part.label}`", hint
                 )
     if spec.weights is not None:
-        weights = quote_name(spec.weights)
+        # in SQL a plain name stands as it is and any other name goes in double quotes
+        sql_name = spec.weights if _SQL_NAME.match(spec.weights) else f'"{spec.weights}"'
         checks[_W] = _DomainCheck(
             f"__check{len(checks)}",
             _as_float(spec.weights) <= 0,
             f"weight <= 0 in the weights column `{spec.weights}`",
             f"weights must be positive: filter them with `--where` (for example "
-            f'`"{spec.weights}" > 0`) or pass `--drop-invalid` to leave those rows out; '
-            f"`{weights}` is the weights column",
+            f"`{sql_name} > 0`) or pass `--drop-invalid` to leave those rows out",
         )
     return list(checks.values())
 
@@ -458,7 +465,7 @@ class DesignBuilder:
             for check in self._checks:
                 n_bad = int(counts[check.name])
                 if n_bad:
-                    msg = f"{check.problem} for {n_bad:,} rows in this batch; {check.hint}"
+                    msg = f"{check.problem} for {_rows(n_bad)} in this batch; {check.hint}"
                     raise DataError(msg)
         keep = masks.select(usable & ~bad).to_series()
         return (
@@ -481,7 +488,7 @@ class DesignBuilder:
             labels = dict.fromkeys(self.term_of_column[int(i)] for i in columns)
             where = ", ".join(f"`{label}`" for label in labels)
             msg = (
-                f"values too large for float64 in {where} for {n_bad:,} rows in this batch; "
+                f"values too large for float64 in {where} for {_rows(n_bad)} in this batch; "
                 "rescale the column (for example with `std(...)`), filter the rows with "
                 "`--where`, or pass `--drop-invalid` to leave those rows out"
             )

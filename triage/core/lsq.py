@@ -138,6 +138,43 @@ def _cholesky_qr2_r(z: FloatArray) -> FloatArray | None:
     return _normalize_signs(r2 @ r1)
 
 
+def _factor_block(z: FloatArray) -> FloatArray:
+    """Return the triangular factor of a shifted, weighted block: CholeskyQR2, else Householder.
+
+    Raises
+    ------
+    DataError
+        If the block holds a NaN or infinite value.
+    """
+    r = _cholesky_qr2_r(z) if z.shape[0] >= z.shape[1] else None
+    # A NaN or inf in z makes its Gram diagonal non-finite, which sends the block here,
+    # so the O(n p) finiteness check runs only on the Householder route.
+    if r is None or not np.all(np.isfinite(r)):
+        if not np.all(np.isfinite(z)):
+            msg = (
+                "`x` or `y` passed to `update` holds a NaN or infinite value; drop rows "
+                "with missing or non-finite values before fitting"
+            )
+            raise DataError(msg)
+        r = _householder_r(z)
+    return r
+
+
+def _check_weights(weights: ArrayLike, n_rows: int) -> FloatArray:
+    """Return ``weights`` as a float64 vector of ``n_rows`` positive, finite values, or raise."""
+    w = np.asarray(weights, dtype=np.float64)
+    if w.shape != (n_rows,):
+        msg = f"`weights` passed to `update` must have shape ({n_rows},) like `x`, got {w.shape}"
+        raise DataError(msg)
+    if not np.all(w > 0.0) or not np.all(np.isfinite(w)):
+        msg = (
+            "`weights` must be positive and finite, got a value <= 0, NaN or infinite; "
+            "filter such rows out (for example with `--where`) before fitting"
+        )
+        raise DataError(msg)
+    return w
+
+
 def _drop_aliased(r: FloatArray, n_design: int) -> tuple[FloatArray, list[int]]:
     """Remove design columns that lie in the span of earlier ones, refactoring ``R`` after each.
 
@@ -482,47 +519,28 @@ class QRAccumulator:
                 "is set; put the intercept first or build the accumulator without one"
             )
             raise DataError(msg)
-        x_shift, y_shift = self._x_shift, self._y_shift
-        if self._r is None and self._has_intercept:
-            # Any shift near the data works (the ones column stays in the factor);
-            # the first batch's means keep shifted values small.
-            x_shift = np.append(0.0, xb[:, 1:].mean(axis=0))
-            y_shift = float(yb.mean())
-        z = np.empty((n_rows, self._p + 1))
-        z[:, : self._p] = xb
-        z[:, self._p] = yb
-        if self._has_intercept:
-            z[:, 1 : self._p] -= x_shift[1:]
-            z[:, self._p] -= y_shift
-        if weights is not None:
-            w = np.asarray(weights, dtype=np.float64)
-            if w.shape != (n_rows,):
-                msg = (
-                    f"`weights` passed to `update` must have shape ({n_rows},) like `x`, "
-                    f"got {w.shape}"
-                )
-                raise DataError(msg)
-            if not np.all(w > 0.0) or not np.all(np.isfinite(w)):
-                msg = (
-                    "`weights` must be positive and finite, got a value <= 0, NaN or infinite; "
-                    "filter such rows out (for example with `--where`) before fitting"
-                )
-                raise DataError(msg)
-            z *= np.sqrt(w)[:, np.newaxis]
-        r_batch = _cholesky_qr2_r(z) if n_rows >= self._p + 1 else None
-        # A NaN or inf in z makes its Gram diagonal non-finite, which sends the batch here,
-        # so the O(n p) finiteness check runs only on the Householder route.
-        if r_batch is None or not np.all(np.isfinite(r_batch)):
-            if not np.all(np.isfinite(z)):
-                msg = (
-                    "`x` or `y` passed to `update` holds a NaN or infinite value; drop rows "
-                    "with missing or non-finite values before fitting"
-                )
-                raise DataError(msg)
-            r_batch = _householder_r(z)
+        w = None if weights is None else _check_weights(weights, n_rows)
+        # A NaN or inf in the batch may raise floating-point warnings while shifting and
+        # factoring; `_factor_block` reports it as a DataError, so the warnings are not wanted.
+        with np.errstate(invalid="ignore", over="ignore"):
+            x_shift, y_shift = self._x_shift, self._y_shift
+            if self._r is None and self._has_intercept:
+                # Any shift near the data works (the ones column stays in the factor);
+                # the first batch's means keep shifted values small.
+                x_shift = np.append(0.0, xb[:, 1:].mean(axis=0))
+                y_shift = float(yb.mean())
+            z = np.empty((n_rows, self._p + 1))
+            z[:, : self._p] = xb
+            z[:, self._p] = yb
+            if self._has_intercept:
+                z[:, 1 : self._p] -= x_shift[1:]
+                z[:, self._p] -= y_shift
+            if w is not None:
+                z *= np.sqrt(w)[:, np.newaxis]
+            r_batch = _factor_block(z)
         # Commit only now, so a rejected batch leaves the accumulator as it was.
         self._x_shift, self._y_shift = x_shift, y_shift
-        if weights is not None:
+        if w is not None:
             self._sum_log_w += float(np.log(w).sum())
             self._is_weighted = True
         self._absorb(r_batch, n_rows)

@@ -18,14 +18,13 @@ import numpy as np
 import polars as pl
 import pyarrow as pa
 
+from triage.core.design import ROW_INDEX
 from triage.core.filter import closest_names_hint
 from triage.errors import SourceError, SpecError, TriageError
 
 if TYPE_CHECKING:
     from triage._typing import SampleDesign
 
-ROW_INDEX: Final[str] = "__row"
-"""Name of the int64 column holding a row's 0-based position in the source as read."""
 
 _GOLDEN: Final[int] = 0x9E3779B97F4A7C15
 """Odd constant of the SplitMix64 generator (Steele, Lea and Flood 2014)."""

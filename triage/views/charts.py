@@ -61,7 +61,7 @@ def _draw(steps: Callable[[], None], width: int, height: int, *, color: bool) ->
         plt.plotsize(width, height)
         plt.theme("clear")
         steps()
-        text: str = plt.build()
+        text: str = plt.build().rstrip("\n")
     if not color:
         text = plt.uncolorize(text)
     return text

@@ -32,7 +32,7 @@ _GAP: Final = "  "
 """Space between table columns."""
 
 R2_REMINDER: Final = (
-    "R² alone does not judge a fit: read it with the residual charts, worst rows and tests."
+    "R² alone does not judge a fit: read it with the residuals, worst rows and tests."
 )
 """One-line reminder printed under the fit-quality block."""
 
@@ -80,11 +80,12 @@ def table(
     *,
     align: Sequence[Align],
     width: int = 100,
+    shrink: int = 0,
 ) -> str:
     """Lay out already formatted cells in aligned columns under a header line.
 
-    The first column (names) is cut with an ellipsis when the table would be wider
-    than ``width``; the other columns keep their full width.
+    When the table would be wider than ``width``, the column ``shrink`` gives up room
+    (its cells are cut with an ellipsis); the other columns keep their full width.
 
     Parameters
     ----------
@@ -96,6 +97,8 @@ def table(
         Left or right alignment per column.
     width : int, default=100
         Line width.
+    shrink : int, default=0
+        Index of the column to narrow when space runs out (names, or free text).
 
     Returns
     -------
@@ -103,8 +106,8 @@ def table(
         The header, a thin rule and the rows.
     """
     widths = [max([len(h)] + [len(r[i]) for r in rows]) for i, h in enumerate(headers)]
-    others = sum(widths[1:]) + len(_GAP) * (len(widths) - 1)
-    widths[0] = max(min(widths[0], width - others), min(len(headers[0]), 8))
+    others = sum(widths) - widths[shrink] + len(_GAP) * (len(widths) - 1)
+    widths[shrink] = max(min(widths[shrink], width - others), min(len(headers[shrink]), 8))
 
     def line(cells: Sequence[str]) -> str:
         parts = [f"{truncate(c, w):{a}{w}}" for c, w, a in zip(cells, widths, align, strict=True)]
@@ -231,7 +234,8 @@ def render_fit_quality(fit: LinearFit, *, width: int = 100) -> str:
     if fit.is_weighted:
         pairs.append(("weighted", "yes: R², SD and tests use weighted residuals"))
     body = _pairs(pairs, width)
-    return f"{rule('fit quality', width)}\n{body}\n{truncate(R2_REMINDER, width)}"
+    reminder = "\n".join(textwrap.wrap(R2_REMINDER, width=max(width, 20)))
+    return f"{rule('fit quality', width)}\n{body}\n{reminder}"
 
 
 def render_coefficients(
@@ -310,10 +314,10 @@ def render_aliased(fit: LinearFit, *, width: int = 100) -> str:
 
 
 TEST_ROWS: Final[tuple[tuple[str, str, str], ...]] = (
-    ("breusch_pagan", "Breusch–Pagan (Koenker)", "spread of residuals changes with predictors"),
-    ("reset", "RESET (fitted², fitted³)", "curvature or interaction the model misses"),
-    ("jarque_bera", "Jarque–Bera", "residuals far from a normal shape"),
-    ("durbin_watson", "Durbin–Watson", "neighbouring rows in file order alike (2: none)"),
+    ("breusch_pagan", "Breusch–Pagan (Koenker)", "changing spread"),
+    ("reset", "RESET (fitted², fitted³)", "missed curvature"),
+    ("jarque_bera", "Jarque–Bera", "non-normal residuals"),
+    ("durbin_watson", "Durbin–Watson", "order effect; 2 means none"),
 )
 """Test key, display name, and what a small p (or a DW far from 2) may point to."""
 
@@ -351,7 +355,7 @@ def render_tests(tests: Mapping[str, Any], *, width: int = 100) -> str:
         if key in tests
     ]
     headers = ["test", "statistic", "df", "p", "a small p may point to"]
-    body = table(headers, rows, align=["<", ">", ">", ">", "<"], width=width)
+    body = table(headers, rows, align=["<", ">", ">", ">", "<"], width=width, shrink=4)
     return f"{rule('residual tests', width)}\n{body}"
 
 
@@ -414,7 +418,7 @@ def render_worst_rows(rows: Sequence[Any], *, criterion: Criterion, width: int =
     headers = ["row", "fitted", "residual", "studentized", "leverage", "Cook's distance"]
     cells = [
         [
-            format_count(r.row).replace(",", ""),
+            str(int(r.row)),
             format_number(r.fitted),
             format_number(r.resid),
             format_number(r.studentized, digits=3),

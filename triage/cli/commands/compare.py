@@ -1,0 +1,135 @@
+"""`triage compare`: fit several models to the same rows and compare them side by side."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from typing import Any
+
+from triage.cli.options import add_model_options, add_row_options, add_source_options
+
+
+def _fraction(text: str) -> float:
+    """Parse `--holdout`: a number strictly between 0 and 1."""
+    try:
+        value = float(text)
+    except ValueError:
+        value = -1.0
+    if not 0.0 < value < 1.0:
+        msg = f"`--holdout` must be a fraction between 0 and 1 (e.g. 0.2), got `{text}`"
+        raise argparse.ArgumentTypeError(msg)
+    return value
+
+
+def _folds(text: str) -> int:
+    """Parse `--folds`: an integer of at least 2."""
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0
+    if value < 2:
+        msg = f"`--folds` must be an integer of at least 2, got `{text}`"
+        raise argparse.ArgumentTypeError(msg)
+    return value
+
+
+def register(subparsers: Any) -> None:
+    """Add the `compare` command."""
+    parser = subparsers.add_parser(
+        "compare",
+        help="fit several models to the same rows and compare them",
+        description=(
+            "Fit each `--terms` model to the rows every model can use, and show in-sample "
+            "and held-out criteria side by side, with F tests for nested pairs."
+        ),
+    )
+    add_source_options(parser)
+    add_model_options(parser, terms_repeatable=True)
+    add_row_options(parser)
+    group = parser.add_argument_group("held-out rows and checks")
+    split = group.add_mutually_exclusive_group()
+    split.add_argument(
+        "--holdout", type=_fraction, metavar="FRACTION",
+        help="hold out this share of rows at random (seeded by `--seed`) and score them",
+    )
+    split.add_argument(
+        "--holdout-by", metavar="COL",
+        help="hold out rows with COL >= `--cut` (fit on earlier rows, score later ones)",
+    )
+    group.add_argument("--cut", metavar="VALUE", help="the cut value for `--holdout-by`")
+    group.add_argument(
+        "--folds", type=_folds, default=5, metavar="K",
+        help="folds of the K-fold RMSE on the sample (default 5)",
+    )
+    group.add_argument(
+        "--robust", action="store_true",
+        help="refit each model on the sample by Huber's method and show coefficient shifts",
+    )
+    group.add_argument(
+        "--curvature", action="store_true",
+        help="for each numeric predictor, show how much a spline lowers the K-fold RMSE",
+    )
+    parser.add_argument("--json", action="store_true", help="print one JSON object")
+    parser.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    """Run `triage compare`."""
+    from triage.cli.options import open_source_from_args, spec_from_args
+    from triage.cli.progress import StderrProgress
+    from triage.core.holdout import HoldoutRule
+    from triage.engine.compare import (
+        compare_models,
+        curvature_check_outcome,
+        robust_check_outcome,
+    )
+    from triage.errors import SpecError
+    from triage.views import compare as views
+
+    if args.cut is not None and args.holdout_by is None:
+        msg = f"`--cut {args.cut}` needs `--holdout-by COL` to say which column it cuts"
+        raise SpecError(msg)
+    source = open_source_from_args(args)
+    labels = [str(t) for t in args.terms]
+    specs = [spec_from_args(args, source, terms=t) for t in labels]
+    rule = None
+    if args.holdout is not None:
+        rule = HoldoutRule(fraction=args.holdout, seed=args.seed)
+    elif args.holdout_by is not None:
+        rule = HoldoutRule(column=args.holdout_by, cut=args.cut, seed=args.seed)
+    progress = StderrProgress()
+    try:
+        outcome = compare_models(
+            source, specs, labels, rows=args.rows, seed=args.seed, design=args.sample,
+            holdout=rule, folds=args.folds, on_progress=progress,
+        )
+    finally:
+        progress.finish()
+    robust = [
+        robust_check_outcome(m.outcome, holdout=rule) for m in outcome.models
+    ] if args.robust else []
+    curvature = [
+        curvature_check_outcome(m.outcome, folds=args.folds, seed=args.seed, holdout=rule)
+        for m in outcome.models
+    ] if args.curvature else []
+    if args.json:
+        document = views.comparison_to_json(outcome)
+        if robust:
+            document["robust"] = [views.robust_to_json(r) for r in robust]
+        if curvature:
+            document["curvature"] = [views.curvature_to_json(c) for c in curvature]
+        json.dump(document, sys.stdout, indent=2, allow_nan=False)
+        sys.stdout.write("\n")
+        return 0
+    sections = [views.render_comparison(outcome)]
+    sections += [
+        views.render_robust_check(r, label=f"#{i + 1} {m.label}")
+        for i, (r, m) in enumerate(zip(robust, outcome.models, strict=False))
+    ]
+    sections += [
+        views.render_curvature_check(c, label=f"#{i + 1} {m.label}")
+        for i, (c, m) in enumerate(zip(curvature, outcome.models, strict=False))
+    ]
+    sys.stdout.write("\n\n".join(sections) + "\n")
+    return 0

@@ -1,0 +1,380 @@
+"""Text and JSON for model comparisons, the robust refit and the curvature check.
+
+The layout and wording are triage's own. The best value of each criterion carries the
+marker `BEST_MARK`; R² is never marked, since it cannot fall when a term is added.
+"""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING, Any, Final
+
+from triage.views.format import NA, format_count, format_number, format_p, truncate
+from triage.views.text import Align, render_data_summary, rule, table
+
+if TYPE_CHECKING:
+    from triage.core.checks import CurvatureCheck, RobustCheck
+    from triage.core.compare import Comparison, Criterion
+    from triage.engine.compare import ComparisonOutcome
+
+BEST_MARK: Final = "◆"
+"""Put after the best value of a criterion in the comparison table."""
+
+_COLUMNS: Final[tuple[tuple[str, str, Criterion | None], ...]] = (
+    ("R²", "r2", None),
+    ("adj. R²", "adj_r2", "adj_r2"),
+    ("AIC", "aic", "aic"),
+    ("BIC", "bic", "bic"),
+    ("held-out R²", "holdout_r2", "holdout_r2"),
+    ("held-out RMSE", "holdout_rmse", "holdout_rmse"),
+    ("K-fold RMSE", "cv_rmse", "cv_rmse"),
+)
+"""Heading, `ModelScore` field and criterion of each figure column."""
+
+
+def _digits(field: str) -> int:
+    return 7 if field in ("aic", "bic") else 4
+
+
+def render_comparison_table(comparison: Comparison, *, width: int = 100) -> str:
+    """Lay out one line per model with the best value of each criterion marked.
+
+    Parameters
+    ----------
+    comparison : Comparison
+        Models, nested F tests and best marks.
+    width : int, default=100
+        Line width.
+
+    Returns
+    -------
+    str
+        The ``models side by side`` section, a legend and any notes per model.
+    """
+    headers = ["#", "terms", "n", *(h for h, _, _ in _COLUMNS)]
+    rows = []
+    for i, model in enumerate(comparison.models):
+        cells = [str(i + 1), model.label, format_count(model.n)]
+        for _, field, criterion in _COLUMNS:
+            text = format_number(getattr(model, field), digits=_digits(field))
+            if criterion is not None and comparison.best.get(criterion) == i:
+                text += f" {BEST_MARK}"
+            elif text != NA:
+                text += "  "
+            cells.append(text)
+        rows.append(cells)
+    align: list[Align] = ["<", "<", ">", *([">"] * len(_COLUMNS))]
+    lines = [rule("models side by side", width), table(headers, rows, align=align, width=width)]
+    lines.append(
+        truncate(
+            f"{BEST_MARK} best value of a criterion; R² is not marked: it never falls when a "
+            "term is added. A better value here is a hint, not proof.",
+            width,
+        )
+    )
+    for i, model in enumerate(comparison.models):
+        lines += [truncate(f"model {i + 1}: {note}", width) for note in model.notes]
+        if model.aliased:
+            names = ", ".join(model.aliased)
+            lines.append(truncate(f"model {i + 1}: no estimate (aliased) for {names}", width))
+    return "\n".join(lines)
+
+
+def render_nested_tests(comparison: Comparison, *, width: int = 100) -> str:
+    """Show the F test of each nested pair, or an empty string when no pair is nested.
+
+    Parameters
+    ----------
+    comparison : Comparison
+        Models and their nested F tests.
+    width : int, default=100
+        Line width.
+
+    Returns
+    -------
+    str
+        The ``does the larger model add anything?`` section.
+    """
+    if not comparison.nested_f:
+        return ""
+    headers = ["smaller", "larger", "terms added", "F", "df", "p"]
+    rows = []
+    for test in comparison.nested_f:
+        rows.append(
+            [
+                f"#{test.smaller + 1}",
+                f"#{test.larger + 1}",
+                str(test.df1),
+                format_number(test.f),
+                f"{test.df1}, {test.df2}",
+                format_p(test.p),
+            ]
+        )
+    rows_align: list[Align] = ["<", "<", ">", ">", ">", ">"]
+    note = (
+        "a small p says the added columns explain more than chance would; with many rows "
+        "even a tiny gain is 'significant': weigh it against the held-out figures."
+    )
+    return "\n".join(
+        [
+            rule("does the larger model add anything? (F test of nested pairs)", width),
+            table(headers, rows, align=rows_align, width=width),
+            truncate(note, width),
+        ]
+    )
+
+
+def render_robust_check(check: RobustCheck, *, label: str = "", width: int = 100) -> str:
+    """Show least-squares and Huber estimates side by side, with the shift in standard errors.
+
+    Parameters
+    ----------
+    check : RobustCheck
+        The refit.
+    label : str, optional
+        Which model, for the section title.
+    width : int, default=100
+        Line width.
+
+    Returns
+    -------
+    str
+        The ``robust refit`` section.
+    """
+    headers = ["term", "least squares", "Huber", "shift (SE)", ""]
+    rows = [
+        [
+            c.name,
+            format_number(c.ordinary),
+            format_number(c.robust),
+            format_number(c.shift_se, digits=3),
+            "pulled by some rows?" if c.is_flagged else "",
+        ]
+        for c in check.coefficients
+    ]
+    align: list[Align] = ["<", ">", ">", ">", "<"]
+    title = f"robust refit (Huber, on the sample){': ' + label if label else ''}"
+    lines = [
+        rule(title, width),
+        table(headers, rows, align=align, width=width),
+        truncate(
+            f"{format_count(check.n_downweighted)} of {format_count(check.n)} rows were "
+            f"down-weighted (scaled residual above {check.epsilon}); coefficients marked moved "
+            f"{check.threshold:g} standard error or more: look at the worst rows before "
+            "trusting them.",
+            width,
+        ),
+    ]
+    lines += [truncate(note, width) for note in check.notes]
+    return "\n".join(lines)
+
+
+def render_curvature_check(check: CurvatureCheck, *, label: str = "", width: int = 100) -> str:
+    """Show, per numeric predictor, how much a spline lowers the K-fold RMSE.
+
+    Parameters
+    ----------
+    check : CurvatureCheck
+        The check.
+    label : str, optional
+        Which model, for the section title.
+    width : int, default=100
+        Line width.
+
+    Returns
+    -------
+    str
+        The ``curvature check`` section with a plain-language suggestion.
+    """
+    headers = ["predictor", "RMSE with spline", "gain", "gain %", "gain % beside top", ""]
+    rows = [
+        [
+            p.predictor,
+            format_number(p.spline_rmse),
+            format_number(p.gain, digits=3),
+            format_number(100 * p.relative_gain, digits=3),
+            NA if p.relative_gain_given_top is None
+            else format_number(100 * p.relative_gain_given_top, digits=3),
+            "may be curved" if p.is_flagged else "",
+        ]
+        for p in check.predictors
+    ]
+    align: list[Align] = ["<", ">", ">", ">", ">", "<"]
+    title = f"curvature check ({check.folds}-fold, on the sample){': ' + label if label else ''}"
+    lines = [
+        rule(title, width),
+        f"K-fold RMSE of the model as written: {format_number(check.base_rmse)}",
+        table(headers, rows, align=align, width=width),
+    ]
+    if check.flagged:
+        names = ", ".join(f"`{name}`" for name in check.flagged)
+        advice = (
+            f"a spline of {names} predicts held-out folds clearly better: its effect may be "
+            "curved; try a transform such as log(), sqrt() or poly(, 2)."
+        )
+    elif check.predictors:
+        advice = (
+            f"no spline lowers the K-fold RMSE by {check.threshold:.0%} or more; the largest "
+            f"gain is for `{check.predictors[0].predictor}`. Very large residuals can hide a "
+            "curve: see the robust refit and the worst rows."
+        )
+    else:
+        advice = "no numeric predictor with enough distinct values to check."
+    lines.append(truncate(advice, width))
+    return "\n".join(lines)
+
+
+def render_comparison(outcome: ComparisonOutcome, *, width: int = 100) -> str:
+    """Compose the report of ``triage compare``: data, held-out rule, table, nested F tests.
+
+    Parameters
+    ----------
+    outcome : ComparisonOutcome
+        A finished comparison.
+    width : int, default=100
+        Line width.
+
+    Returns
+    -------
+    str
+        Sections joined by blank lines.
+    """
+    sections = [render_data_summary(outcome.data, width=width)]
+    split = [f"K-fold RMSE: {outcome.folds} folds over the sample rows that were fitted"]
+    if outcome.holdout_rule is not None:
+        split.insert(0, f"held out: {outcome.holdout_rule.describe()}")
+        split.insert(
+            1,
+            f"{format_count(outcome.rows_held_out)} rows scored, not fitted; R², AIC, BIC "
+            "and n describe the fitted rows",
+        )
+        if outcome.rows_without_cut:
+            split.append(
+                f"{format_count(outcome.rows_without_cut)} rows had no "
+                f"`{outcome.holdout_rule.column}` and were left out of both parts"
+            )
+    body = "\n".join(truncate(line, width) for line in split)
+    sections.append(f"{rule('rows held out of the fit', width)}\n{body}")
+    sections.append(render_comparison_table(outcome.comparison, width=width))
+    sections.append(render_nested_tests(outcome.comparison, width=width))
+    return "\n\n".join(s for s in sections if s)
+
+
+def comparison_to_json(outcome: ComparisonOutcome) -> dict[str, Any]:
+    """Turn a comparison into plain JSON values (None for values that are not defined).
+
+    Parameters
+    ----------
+    outcome : ComparisonOutcome
+        A finished comparison.
+
+    Returns
+    -------
+    dict
+        ``models`` in the order given, each with ``terms``, ``n``, ``r2``, ``adj_r2``,
+        ``aic``, ``bic``, ``holdout_r2``, ``holdout_rmse`` (plus ``cv_rmse``,
+        ``df_resid``, ``holdout_n`` and ``notes``); ``nested_f`` with ``smaller`` and
+        ``larger`` as the models' terms, ``f``, ``df1``, ``df2``, ``p``; ``best``: the
+        terms of the best model per criterion.
+    """
+    comparison = outcome.comparison
+    models = [
+        {
+            "terms": m.label,
+            "n": m.n,
+            "r2": m.r2,
+            "adj_r2": m.adj_r2,
+            "aic": m.aic,
+            "bic": m.bic,
+            "holdout_r2": m.holdout_r2,
+            "holdout_rmse": m.holdout_rmse,
+            "cv_rmse": m.cv_rmse,
+            "df_resid": m.df_resid,
+            "holdout_n": m.holdout_n,
+            "notes": list(m.notes),
+        }
+        for m in comparison.models
+    ]
+    nested = [
+        {
+            "smaller": comparison.models[t.smaller].label,
+            "larger": comparison.models[t.larger].label,
+            "f": t.f,
+            "df1": t.df1,
+            "df2": t.df2,
+            "p": t.p,
+        }
+        for t in comparison.nested_f
+    ]
+    best = {c: comparison.models[i].label for c, i in comparison.best.items()}
+    return {"models": models, "nested_f": nested, "best": best}
+
+
+def robust_to_json(check: RobustCheck) -> dict[str, Any]:
+    """Turn a robust refit into plain JSON values.
+
+    Parameters
+    ----------
+    check : RobustCheck
+        The refit.
+
+    Returns
+    -------
+    dict
+        ``n``, ``n_downweighted``, ``epsilon``, ``scale``, ``threshold``, ``converged`` and
+        ``coefficients`` (``name``, ``ordinary``, ``robust``, ``std_error``, ``shift_se``,
+        ``flagged``).
+    """
+    return {
+        "n": check.n,
+        "n_downweighted": check.n_downweighted,
+        "epsilon": check.epsilon,
+        "scale": check.scale,
+        "threshold": check.threshold,
+        "converged": check.converged,
+        "coefficients": [
+            {
+                "name": c.name,
+                "ordinary": c.ordinary,
+                "robust": c.robust,
+                "std_error": c.std_error,
+                "shift_se": None if c.shift_se is None else float(c.shift_se),
+                "flagged": bool(c.is_flagged),
+            }
+            for c in check.coefficients
+        ],
+        "notes": list(check.notes),
+    }
+
+
+def curvature_to_json(check: CurvatureCheck) -> dict[str, Any]:
+    """Turn a curvature check into plain JSON values.
+
+    Parameters
+    ----------
+    check : CurvatureCheck
+        The check.
+
+    Returns
+    -------
+    dict
+        ``n``, ``folds``, ``base_rmse``, ``threshold`` and ``predictors`` (largest gain
+        first: ``predictor``, ``spline_rmse``, ``gain``, ``relative_gain``,
+        ``relative_gain_given_top``, ``flagged``).
+    """
+    return {
+        "n": check.n,
+        "folds": check.folds,
+        "base_rmse": check.base_rmse,
+        "threshold": check.threshold,
+        "predictors": [
+            {
+                "predictor": p.predictor,
+                "spline_rmse": p.spline_rmse,
+                "gain": p.gain,
+                "relative_gain": p.relative_gain,
+                "relative_gain_given_top": p.relative_gain_given_top,
+                "flagged": bool(p.is_flagged),
+            }
+            for p in check.predictors
+        ],
+    }
