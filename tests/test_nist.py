@@ -28,10 +28,11 @@ ONE_BATCH_DIGITS = {"Filip": 7.0, "Wampler4": 7.5, "Wampler5": 5.5}
 DEFAULT_DIGITS = 9.0
 
 # Split into batches of 8 rows (Wampler: 8 + 8 + 5, the last batch narrower than the design,
-# so it takes the Householder route), the higher-difficulty sets lose up to half a digit:
-# measured here Filip 6.86-7.76, Wampler1 8.93-9.90, Wampler3 8.81-9.85, Wampler4 7.39-8.89,
-# Wampler5 5.40-6.87 over splits into 2 to 11 batches (summing errors of separately
-# factored blocks instead of one Householder sweep). So several batches get half a digit less.
+# so it takes the Householder route), the higher-difficulty sets lose up to about a digit:
+# measured here with batches of 8, Filip 6.73, Wampler1 8.97, Wampler4 7.92, Wampler5 5.92;
+# over splits into 2 to 11 equal batches Filip 6.86-7.76, Wampler1 8.93-9.90, Wampler4
+# 7.39-8.89, Wampler5 5.40-6.87 (errors of separately factored blocks add up instead of one
+# Householder sweep). So several batches are held to half a digit less.
 SPLIT_LOSS = 0.5
 BATCH_ROWS = 8
 

@@ -72,7 +72,8 @@ class ComparedModel:
     label: str
     """The terms as written."""
     outcome: FitOutcome
-    """The fit, its builder and the rows it used."""
+    """The fit, its builder and the rows it used; `sample` holds the sample rows every model
+    could use (the rows the K-fold RMSE, robust refit and curvature check run on)."""
     holdout: HoldoutScore | None
     """Score on the held-out rows, or None without a held-out rule."""
     cv: KFoldResult | None
@@ -148,8 +149,8 @@ def _common_batches(
 
 def _learn_builders(
     specs: Sequence[ModelSpec], source: Source, frame: pl.DataFrame
-) -> list[DesignBuilder]:
-    """Learn each model's coding on the sample rows every model can use.
+) -> tuple[list[DesignBuilder], pl.DataFrame]:
+    """Learn each model's coding on the sample rows every model can use; return those rows too.
 
     Learning on the same rows gives every model the same levels and `std()` scaling, so
     rebuilding a model's rows later reproduces what was fitted.
@@ -157,7 +158,7 @@ def _learn_builders(
     schema = source.schema()
     provisional = [DesignBuilder.learn(spec, schema, frame) for spec in specs]
     common = _common_batches(provisional, frame, None)[0].frame
-    return [DesignBuilder.learn(spec, schema, common) for spec in specs]
+    return [DesignBuilder.learn(spec, schema, common) for spec in specs], common
 
 
 def compare_models(
@@ -227,8 +228,8 @@ def compare_models(
         source, specs[0], rows=rows, seed=seed, design=design,
         exclude_rows=exclude_rows, extra_columns=list(dict.fromkeys(extra)),
     )
-    builders = _learn_builders(specs, source, plan.learning_frame)
-    fits = [
+    builders, common_sample = _learn_builders(specs, source, plan.learning_frame)
+    accumulators = [
         QRAccumulator(len(b.column_names), has_intercept=b.spec.intercept) for b in builders
     ]
     scorers = [HoldoutAccumulator(len(b.column_names)) for b in builders]
@@ -242,20 +243,19 @@ def compare_models(
         is_held = np.isin(batches[0].rows, held_positions)
         n_held += int(is_held.sum())
         counts.used += int((~is_held).sum())
-        for batch, fit, scorer in zip(batches, fits, scorers, strict=True):
-            _split_update(batch, is_held, fit, scorer)
+        for batch, accumulator, scorer in zip(batches, accumulators, scorers, strict=True):
+            _split_update(batch, is_held, accumulator, scorer)
     _check_rows_left(counts, specs[0])
     summary = plan.summary(counts)
+    cvs = _sample_kfold(builders, common_sample, holdout, exclude_rows, folds, seed)
     models = []
-    for label, builder, accumulator, scorer in zip(labels, builders, fits, scorers, strict=True):
+    for label, builder, accumulator, scorer, cv in zip(
+        labels, builders, accumulators, scorers, cvs, strict=True
+    ):
         fit = accumulator.finalize(builder.column_names)
-        outcome = FitOutcome(builder.spec, builder, fit, summary, plan.learning_frame)
+        outcome = FitOutcome(builder.spec, builder, fit, summary, common_sample)
         score = scorer.score(fit.coef) if holdout is not None else None
-        models.append(ComparedModel(label, outcome, score, None))
-    cvs = _sample_kfold(builders, plan.learning_frame, holdout, exclude_rows, folds, seed)
-    models = [
-        ComparedModel(m.label, m.outcome, m.holdout, cv) for m, cv in zip(models, cvs, strict=True)
-    ]
+        models.append(ComparedModel(label, outcome, score, cv))
     comparison = compare_fits(
         labels,
         [m.outcome.fit for m in models],

@@ -159,8 +159,10 @@ def render_histogram(histogram: Any, width: int, height: int, *, color: bool) ->
     return _draw(steps, width, height, color=color)
 
 
-def _finite_mid(lo: float, hi: float) -> float:
-    """Return the middle of a bin, or its finite end when the other end is infinite."""
+def _position(x_mean: float, lo: float, hi: float) -> float:
+    """Return where to draw a bin: the mean of its values, else its middle or finite end."""
+    if math.isfinite(x_mean):
+        return x_mean
     if math.isfinite(lo) and math.isfinite(hi):
         return (lo + hi) / 2.0
     return lo if math.isfinite(lo) else hi
@@ -170,7 +172,9 @@ def _bin_arrays(bins: Sequence[Any]) -> dict[str, NDArray[np.float64]]:
     """Collect the plotted fields of non-empty bins into arrays keyed by field name."""
     kept = [b for b in bins if int(b.n) > 0 and math.isfinite(float(b.mean_resid))]
     return {
-        "x": np.array([_finite_mid(float(b.lo), float(b.hi)) for b in kept], dtype=np.float64),
+        "x": np.array(
+            [_position(float(b.x_mean), float(b.lo), float(b.hi)) for b in kept], dtype=np.float64
+        ),
         "lo": np.array([float(b.lo) for b in kept], dtype=np.float64),
         "hi": np.array([float(b.hi) for b in kept], dtype=np.float64),
         "mean": np.array([float(b.mean_resid) for b in kept], dtype=np.float64),
@@ -196,8 +200,8 @@ def render_binned(
     Parameters
     ----------
     bins : sequence of objects
-        Bins in increasing order, each with ``lo``, ``hi``, ``n``, ``mean_resid``,
-        ``q10`` and ``q90``; empty bins are skipped.
+        Bins in increasing order, each with ``lo``, ``hi``, ``n``, ``x_mean`` (where the
+        bin is drawn), ``mean_resid``, ``q10`` and ``q90``; empty bins are skipped.
     width, height : int
         Size of the chart in terminal cells.
     title : str

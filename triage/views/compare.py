@@ -6,9 +6,10 @@ marker `BEST_MARK`; R² is never marked, since it cannot fall when a term is add
 
 from __future__ import annotations
 
+import textwrap
 from typing import TYPE_CHECKING, Any, Final
 
-from triage.views.format import NA, format_count, format_number, format_p, truncate
+from triage.views.format import NA, format_count, format_number, format_p
 from triage.views.text import Align, render_data_summary, rule, table
 
 if TYPE_CHECKING:
@@ -31,6 +32,11 @@ _COLUMNS: Final[tuple[tuple[str, str, Criterion | None], ...]] = (
 """Heading, `ModelScore` field and criterion of each figure column."""
 
 
+def _wrap(text: str, width: int) -> str:
+    """Wrap a sentence to `width` characters, continuation lines indented by two spaces."""
+    return textwrap.fill(text, width=width, subsequent_indent="  ", break_on_hyphens=False)
+
+
 def _digits(field: str) -> int:
     return 7 if field in ("aic", "bic") else 4
 
@@ -50,10 +56,10 @@ def render_comparison_table(comparison: Comparison, *, width: int = 100) -> str:
     str
         The ``models side by side`` section, a legend and any notes per model.
     """
-    headers = ["#", "terms", "n", *(h for h, _, _ in _COLUMNS)]
+    headers = ["model", "n", *(h for h, _, _ in _COLUMNS)]
     rows = []
     for i, model in enumerate(comparison.models):
-        cells = [str(i + 1), model.label, format_count(model.n)]
+        cells = [f"#{i + 1}", format_count(model.n)]
         for _, field, criterion in _COLUMNS:
             text = format_number(getattr(model, field), digits=_digits(field))
             if criterion is not None and comparison.best.get(criterion) == i:
@@ -62,20 +68,23 @@ def render_comparison_table(comparison: Comparison, *, width: int = 100) -> str:
                 text += "  "
             cells.append(text)
         rows.append(cells)
-    align: list[Align] = ["<", "<", ">", *([">"] * len(_COLUMNS))]
-    lines = [rule("models side by side", width), table(headers, rows, align=align, width=width)]
+    right: Align = ">"
+    align: list[Align] = ["<", *([right] * (len(_COLUMNS) + 1))]
+    lines = [rule("models side by side", width)]
+    lines += [_wrap(f"#{i + 1}  {m.label}", width) for i, m in enumerate(comparison.models)]
+    lines += ["", table(headers, rows, align=align, width=width)]
     lines.append(
-        truncate(
+        _wrap(
             f"{BEST_MARK} best value of a criterion; R² is not marked: it never falls when a "
             "term is added. A better value here is a hint, not proof.",
             width,
         )
     )
     for i, model in enumerate(comparison.models):
-        lines += [truncate(f"model {i + 1}: {note}", width) for note in model.notes]
+        lines += [_wrap(f"#{i + 1}: {note}", width) for note in model.notes]
         if model.aliased:
             names = ", ".join(model.aliased)
-            lines.append(truncate(f"model {i + 1}: no estimate (aliased) for {names}", width))
+            lines.append(_wrap(f"#{i + 1}: no estimate (aliased) for {names}", width))
     return "\n".join(lines)
 
 
@@ -118,7 +127,7 @@ def render_nested_tests(comparison: Comparison, *, width: int = 100) -> str:
         [
             rule("does the larger model add anything? (F test of nested pairs)", width),
             table(headers, rows, align=rows_align, width=width),
-            truncate(note, width),
+            _wrap(note, width),
         ]
     )
 
@@ -156,7 +165,7 @@ def render_robust_check(check: RobustCheck, *, label: str = "", width: int = 100
     lines = [
         rule(title, width),
         table(headers, rows, align=align, width=width),
-        truncate(
+        _wrap(
             f"{format_count(check.n_downweighted)} of {format_count(check.n)} rows were "
             f"down-weighted (scaled residual above {check.epsilon}); coefficients marked moved "
             f"{check.threshold:g} standard error or more: look at the worst rows before "
@@ -164,7 +173,7 @@ def render_robust_check(check: RobustCheck, *, label: str = "", width: int = 100
             width,
         ),
     ]
-    lines += [truncate(note, width) for note in check.notes]
+    lines += [_wrap(note, width) for note in check.notes]
     return "\n".join(lines)
 
 
@@ -192,7 +201,8 @@ def render_curvature_check(check: CurvatureCheck, *, label: str = "", width: int
             format_number(p.spline_rmse),
             format_number(p.gain, digits=3),
             format_number(100 * p.relative_gain, digits=3),
-            NA if p.relative_gain_given_top is None
+            NA
+            if p.relative_gain_given_top is None
             else format_number(100 * p.relative_gain_given_top, digits=3),
             "may be curved" if p.is_flagged else "",
         ]
@@ -219,7 +229,7 @@ def render_curvature_check(check: CurvatureCheck, *, label: str = "", width: int
         )
     else:
         advice = "no numeric predictor with enough distinct values to check."
-    lines.append(truncate(advice, width))
+    lines.append(_wrap(advice, width))
     return "\n".join(lines)
 
 
@@ -252,7 +262,7 @@ def render_comparison(outcome: ComparisonOutcome, *, width: int = 100) -> str:
                 f"{format_count(outcome.rows_without_cut)} rows had no "
                 f"`{outcome.holdout_rule.column}` and were left out of both parts"
             )
-    body = "\n".join(truncate(line, width) for line in split)
+    body = "\n".join(_wrap(line, width) for line in split)
     sections.append(f"{rule('rows held out of the fit', width)}\n{body}")
     sections.append(render_comparison_table(outcome.comparison, width=width))
     sections.append(render_nested_tests(outcome.comparison, width=width))

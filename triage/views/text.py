@@ -65,12 +65,18 @@ def rule(title: str, width: int = 100) -> str:
 
 
 def _pairs(pairs: Sequence[tuple[str, str]], width: int) -> str:
-    """Lay out label/value pairs one a line, labels padded to a common column."""
+    """Lay out label/value pairs one a line, labels padded to a common column.
+
+    A value too long for its line wraps onto following lines under the value column.
+    """
     label_width = min(_LABEL_WIDTH, max((len(label) for label, _ in pairs), default=0))
+    indent = " " * (label_width + len(_GAP))
     lines = []
     for label, value in pairs:
-        text = f"{truncate(label, label_width):<{label_width}}{_GAP}{value}"
-        lines.append(truncate(text, width))
+        head = f"{truncate(label, label_width):<{label_width}}{_GAP}"
+        wrapped = textwrap.wrap(value, width=max(width - len(indent), 10)) or [""]
+        lines.append(truncate(head + wrapped[0], width))
+        lines += [truncate(indent + more, width) for more in wrapped[1:]]
     return "\n".join(lines)
 
 
@@ -280,7 +286,8 @@ def render_coefficients(
         if robust_se is not None:
             row.append(format_number(robust_se.get(name)))
         rows.append(row)
-    align: list[Align] = ["<"] + [">"] * (len(headers) - 1)
+    align: list[Align] = [">"] * len(headers)
+    align[0] = "<"
     body = table(headers, rows, align=align, width=width)
     return f"{rule('coefficients', width)}\n{body}"
 
