@@ -39,7 +39,8 @@ for frame in lf.collect_batches(chunk_size=65536):
 TRIAGE = """
 import sys
 from triage.cli.main import main
-code = main(["fit", sys.argv[1], "--target", "y", "--terms", sys.argv[2], "--rows", "all", "--json"])
+args = ["fit", sys.argv[1], "--target", "y", "--terms", sys.argv[2], "--rows", "all", "--json"]
+code = main(args)
 sys.exit(code)
 """
 
@@ -94,7 +95,9 @@ def measure(script: str, *args: str) -> tuple[float, float]:
     """Run `script` in a fresh interpreter; return (seconds, peak MiB)."""
     done = subprocess.run(
         [sys.executable, "-c", MEASURE, script, *args],
-        capture_output=True, text=True, check=False,
+        capture_output=True,
+        text=True,
+        check=False,
         env={"OPENBLAS_NUM_THREADS": "1", **_environ()},
     )
     line = [s for s in done.stderr.splitlines() if s.startswith("MEASURE")]
@@ -131,9 +134,12 @@ def main() -> None:
         estimate_gb = 6 * args.rows * (p + 1) * 8 / 2**30
         memory = measure(IN_MEMORY, str(path), names) if estimate_gb < args.memory_cap_gb else None
         row = {
-            "rows": args.rows, "predictors": p,
-            "floor_s": floor[0], "floor_mib": floor[1],
-            "triage_s": triage[0], "triage_mib": triage[1],
+            "rows": args.rows,
+            "predictors": p,
+            "floor_s": floor[0],
+            "floor_mib": floor[1],
+            "triage_s": triage[0],
+            "triage_mib": triage[1],
             "triage_vs_floor": triage[0] / floor[0],
             "in_memory_s": memory[0] if memory else None,
             "in_memory_mib": memory[1] if memory else None,

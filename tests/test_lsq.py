@@ -23,7 +23,7 @@ from triage.core.lsq import (
     LinearFit,
     QRAccumulator,
     _cholesky_qr2_r,
-    _householder_r,
+    householder_r,
 )
 from triage.errors import DataError, SpecError
 
@@ -82,7 +82,7 @@ def test_lsq_cholesky_qr2_declines_ill_conditioned_block(rng: np.random.Generato
     z[:, 3] = z[:, 1]
     assert _cholesky_qr2_r(z) is None
     # Householder still gives R'R = Z'Z (oracle: numpy matrix product).
-    r = _householder_r(z)
+    r = householder_r(z)
     np.testing.assert_allclose(r.T @ r, z.T @ z, rtol=1e-12, atol=1e-10)
 
 

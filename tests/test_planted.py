@@ -37,7 +37,8 @@ def straight_line_report(demo_path: Path):  # type: ignore[no-untyped-def]
     """The naive model a new user would try first, with depot left out and broken down by."""
     source = open_source(demo_path)
     spec = build_spec(
-        source.schema(), target="minutes",
+        source.schema(),
+        target="minutes",
         terms="distance_km, stops, weight_kg, hour, vehicle",
     )
     planted = planted_positions(source.row_count() or 0, seed=SEED)

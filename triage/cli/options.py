@@ -31,10 +31,15 @@ def add_source_options(parser: argparse.ArgumentParser) -> None:
     """Add the data argument and the CSV reading options."""
     parser.add_argument("data", metavar="DATA", help="Parquet file, folder or glob; CSV; Arrow IPC")
     group = parser.add_argument_group("CSV reading")
-    group.add_argument("--separator", default=None, help="field separator (default `,`; tab for .tsv)")
+    group.add_argument(
+        "--separator", default=None, help="field separator (default `,`; tab for .tsv)"
+    )
     group.add_argument("--no-header", action="store_true", help="the first line is data, not names")
     group.add_argument(
-        "--null-value", action="append", default=None, metavar="TEXT",
+        "--null-value",
+        action="append",
+        default=None,
+        metavar="TEXT",
         help="text read as missing (repeatable; default: empty, NA, NaN, null)",
     )
 
@@ -45,28 +50,43 @@ def add_model_options(parser: argparse.ArgumentParser, *, terms_repeatable: bool
     group.add_argument("--target", "-y", help="column to explain (or give `y ~ ...` in --terms)")
     if terms_repeatable:
         group.add_argument(
-            "--terms", "-x", action="append", required=True,
+            "--terms",
+            "-x",
+            action="append",
+            required=True,
             help="terms of one model; repeat for each model to compare",
         )
     else:
         group.add_argument(
-            "--terms", "-x", default="",
+            "--terms",
+            "-x",
+            default="",
             help='terms, e.g. "distance_km, log(weight_kg), depot" or "minutes ~ stops + depot"',
         )
     group.add_argument("--no-intercept", action="store_true", help="fit without a constant term")
-    group.add_argument("--weights", "-w", help="column of positive weights (weighted least squares)")
-    group.add_argument("--where", help="keep rows matching an SQL condition, e.g. \"depot = 'north'\"")
     group.add_argument(
-        "--categorical", default="", metavar="COLS",
+        "--weights", "-w", help="column of positive weights (weighted least squares)"
+    )
+    group.add_argument(
+        "--where", help="keep rows matching an SQL condition, e.g. \"depot = 'north'\""
+    )
+    group.add_argument(
+        "--categorical",
+        default="",
+        metavar="COLS",
         help="comma-separated numeric columns to treat as categories",
     )
     group.add_argument(
-        "--reference", action="append", default=[], metavar="COL=LEVEL",
+        "--reference",
+        action="append",
+        default=[],
+        metavar="COL=LEVEL",
         help="reference level of a categorical column (default: its most frequent level)",
     )
     group.add_argument("--max-levels", type=int, default=50, help="cap on levels of a category")
     group.add_argument(
-        "--drop-invalid", action="store_true",
+        "--drop-invalid",
+        action="store_true",
         help="leave out rows outside a transform's domain (e.g. log of 0) instead of stopping",
     )
 
@@ -75,12 +95,17 @@ def add_row_options(parser: argparse.ArgumentParser) -> None:
     """Add the options that choose which rows a pass reads."""
     group = parser.add_argument_group("rows")
     group.add_argument(
-        "--rows", type=parse_rows, default=DEFAULT_SAMPLE_ROWS, metavar="N|all",
+        "--rows",
+        type=parse_rows,
+        default=DEFAULT_SAMPLE_ROWS,
+        metavar="N|all",
         help=f"sample about N rows (default {DEFAULT_SAMPLE_ROWS:,}) or stream `all` rows",
     )
     group.add_argument("--seed", type=int, default=0, help="seed of the sample (default 0)")
     group.add_argument(
-        "--sample", choices=("groups", "uniform"), default="groups",
+        "--sample",
+        choices=("groups", "uniform"),
+        default="groups",
         help="groups: whole row groups at random (fast); uniform: exact random rows (full read)",
     )
 
@@ -112,7 +137,9 @@ def parse_reference(pairs: list[str]) -> dict[str, str]:
     return reference
 
 
-def spec_from_args(args: argparse.Namespace, source: Source, *, terms: str | None = None) -> ModelSpec:
+def spec_from_args(
+    args: argparse.Namespace, source: Source, *, terms: str | None = None
+) -> ModelSpec:
     """Build and validate the model spec from parsed options against the source's schema."""
     from triage.core.spec import build_spec
 

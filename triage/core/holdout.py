@@ -32,7 +32,7 @@ from typing import TYPE_CHECKING, Self
 import numpy as np
 import polars as pl
 
-from triage.core.lsq import QRAccumulator, _householder_r
+from triage.core.lsq import QRAccumulator, householder_r
 from triage.errors import DataError, SpecError
 
 if TYPE_CHECKING:
@@ -247,10 +247,10 @@ class HoldoutAccumulator:
         if not np.all(np.isfinite(z)):
             msg = "held-out rows hold a NaN or infinite value; drop them before scoring"
             raise DataError(msg)
-        self._absorb(_householder_r(z), xb.shape[0])
+        self._absorb(householder_r(z), xb.shape[0])
 
     def _absorb(self, r_other: NDArray[np.float64], n_rows: int) -> None:
-        self._r = r_other if self._r is None else _householder_r(np.vstack([self._r, r_other]))
+        self._r = r_other if self._r is None else householder_r(np.vstack([self._r, r_other]))
         self._n += n_rows
 
     def merge(self, other: HoldoutAccumulator) -> Self:

@@ -69,7 +69,7 @@ def _normalize_signs(r: FloatArray) -> FloatArray:
     return r
 
 
-def _householder_r(a: FloatArray) -> FloatArray:
+def householder_r(a: FloatArray) -> FloatArray:
     """Return the square upper-triangular factor of ``a`` by Householder QR.
 
     Parameters
@@ -159,7 +159,7 @@ def _factor_block(z: FloatArray) -> FloatArray:
                 "with missing or non-finite values before fitting"
             )
             raise DataError(msg)
-        r = _householder_r(z)
+        r = householder_r(z)
     return r
 
 
@@ -200,7 +200,7 @@ def _drop_aliased(r: FloatArray, n_design: int) -> tuple[FloatArray, list[int]]:
     while j < len(kept):
         column_norm = float(np.linalg.norm(r[: j + 1, j]))
         if abs(r[j, j]) <= RANK_TOLERANCE * column_norm or column_norm == 0.0:
-            r = _householder_r(np.delete(r, j, axis=1))
+            r = householder_r(np.delete(r, j, axis=1))
             del kept[j]
         else:
             j += 1
@@ -551,7 +551,7 @@ class QRAccumulator:
         if self._r is None:
             self._r = r_other
         else:
-            self._r = _householder_r(np.vstack([self._r, r_other]))
+            self._r = householder_r(np.vstack([self._r, r_other]))
         self._n += n_rows
 
     def merge(self, other: QRAccumulator) -> Self:

@@ -36,9 +36,9 @@ from triage.engine.passes import (
     DEFAULT_SAMPLE_ROWS,
     DataSummary,
     FitOutcome,
-    _check_rows_left,
-    _Counts,
-    _Plan,
+    PassPlan,
+    RowCounts,
+    check_rows_left,
 )
 from triage.engine.progress import ProgressCallback, ProgressTracker
 from triage.errors import SpecError
@@ -134,7 +134,7 @@ def _holdout_positions(
 
 
 def _common_batches(
-    builders: Sequence[DesignBuilder], frame: pl.DataFrame, counts: _Counts | None
+    builders: Sequence[DesignBuilder], frame: pl.DataFrame, counts: RowCounts | None
 ) -> list[DesignBatch]:
     """Build every model on the rows all of them can use; count the others once each."""
     for builder in builders:
@@ -224,16 +224,21 @@ def compare_models(
             msg = f"unknown column `{holdout.column}` in `--holdout-by`; see the source's columns"
             raise SpecError(msg)
         extra.append(holdout.column)
-    plan = _Plan.read(
-        source, specs[0], rows=rows, seed=seed, design=design,
-        exclude_rows=exclude_rows, extra_columns=list(dict.fromkeys(extra)),
+    plan = PassPlan.read(
+        source,
+        specs[0],
+        rows=rows,
+        seed=seed,
+        design=design,
+        exclude_rows=exclude_rows,
+        extra_columns=list(dict.fromkeys(extra)),
     )
     builders, common_sample = _learn_builders(specs, source, plan.learning_frame)
     accumulators = [
         QRAccumulator(len(b.column_names), has_intercept=b.spec.intercept) for b in builders
     ]
     scorers = [HoldoutAccumulator(len(b.column_names)) for b in builders]
-    counts = _Counts()
+    counts = RowCounts()
     n_held = n_unknown = 0
     tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
     for frame in plan.frames(counts, tracker):
@@ -245,7 +250,7 @@ def compare_models(
         counts.used += int((~is_held).sum())
         for batch, accumulator, scorer in zip(batches, accumulators, scorers, strict=True):
             _split_update(batch, is_held, accumulator, scorer)
-    _check_rows_left(counts, specs[0])
+    check_rows_left(counts, specs[0])
     summary = plan.summary(counts)
     cvs = _sample_kfold(builders, common_sample, holdout, exclude_rows, folds, seed)
     models = []
@@ -262,9 +267,7 @@ def compare_models(
         holdouts=[m.holdout for m in models],
         cv_rmse=[None if m.cv is None else m.cv.rmse for m in models],
     )
-    return ComparisonOutcome(
-        tuple(models), comparison, summary, holdout, n_held, n_unknown, folds
-    )
+    return ComparisonOutcome(tuple(models), comparison, summary, holdout, n_held, n_unknown, folds)
 
 
 def _split_update(
@@ -376,9 +379,7 @@ def curvature_check_outcome(
     """
     batch = _sample_batch(outcome, holdout, exclude_rows)
     builder = outcome.builder
-    plain = {
-        t.column: t.label for t in outcome.spec.terms if t.kind == "numeric" and t.column
-    }
+    plain = {t.column: t.label for t in outcome.spec.terms if t.kind == "numeric" and t.column}
     linear_columns = {
         column: [j for j, owner in enumerate(builder.term_of_column) if owner == label]
         for column, label in plain.items()

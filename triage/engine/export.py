@@ -28,7 +28,12 @@ if TYPE_CHECKING:
     from triage.engine.progress import ProgressCallback
 
 DIAGNOSTIC_COLUMNS: tuple[str, ...] = (
-    "row", "fitted", "resid", "studentized", "leverage", "cooks",
+    "row",
+    "fitted",
+    "resid",
+    "studentized",
+    "leverage",
+    "cooks",
 )
 """Columns an export adds; `row` is the 0-based position in the source."""
 
@@ -49,7 +54,7 @@ def diagnostics_frame(diagnostics: RowDiagnostics, *, prefix: str = "") -> pl.Da
 def rows_with_diagnostics(
     source: Source, outcome: FitOutcome, positions: Sequence[int]
 ) -> pl.DataFrame:
-    """The original rows at `positions` (all columns, in that order) joined with their diagnostics.
+    """Read the rows at `positions` (all columns, in that order) and join their diagnostics.
 
     A diagnostic column whose name is already taken by the data gets the prefix `triage_`.
     """
@@ -91,8 +96,15 @@ def export_worst_rows(
 ) -> tuple[Path, int]:
     """Fit, rank rows by `criterion`, and write the `k` worst; return the path and row count."""
     report = run_report(
-        source, spec, rows=rows, seed=seed, design=design, top_k=k, by=by,
-        on_progress=on_progress, cancel=cancel,
+        source,
+        spec,
+        rows=rows,
+        seed=seed,
+        design=design,
+        top_k=k,
+        by=by,
+        on_progress=on_progress,
+        cancel=cancel,
     )
     positions = [entry.row for entry in report.diagnostics.worst[criterion]]
     return export_rows(source, report.outcome, positions, out, force=force), len(positions)

@@ -88,7 +88,7 @@ class ReportOutcome:
 
 
 @dataclass
-class _Counts:
+class RowCounts:
     """Row counts gathered while building design batches."""
 
     read: int = 0
@@ -100,13 +100,14 @@ class _Counts:
     used: int = 0
 
     def add(self, batch: DesignBatch) -> None:
+        """Count the rows a design batch kept and dropped."""
         self.missing += batch.n_dropped_missing
         self.domain += batch.n_dropped_domain
         self.unseen += batch.n_dropped_unseen_level
         self.used += batch.x.shape[0]
 
 
-class _Plan:
+class PassPlan:
     """What a pass reads: columns, filter, excluded rows, and where the rows come from.
 
     With `sample=None` the pass streams every row; otherwise it reads only the sample.
@@ -142,8 +143,8 @@ class _Plan:
         design: SampleDesign,
         exclude_rows: Collection[int],
         extra_columns: Sequence[str] = (),
-    ) -> _Plan:
-        """Draw the sample (a quick fit's rows, or a full pass's learning rows) and plan the pass."""
+    ) -> PassPlan:
+        """Draw the sample (a quick fit's rows, or a full pass's learning rows); plan the pass."""
         sample = source.read_sample(
             _pass_columns(spec, extra_columns),
             n_rows=rows if rows is not None else LEARNING_SAMPLE_ROWS,
@@ -153,8 +154,12 @@ class _Plan:
         )
         streams = rows is None and not sample.is_whole
         return cls(
-            source, spec, sample=None if streams else sample, learning_frame=sample.frame,
-            exclude_rows=exclude_rows, extra_columns=extra_columns,
+            source,
+            spec,
+            sample=None if streams else sample,
+            learning_frame=sample.frame,
+            exclude_rows=exclude_rows,
+            extra_columns=extra_columns,
         )
 
     @property
@@ -162,14 +167,14 @@ class _Plan:
         """True when the pass reads every row of the source."""
         return self.sample is None or self.sample.is_whole
 
-    def _drop_excluded(self, frame: pl.DataFrame, counts: _Counts) -> pl.DataFrame:
+    def _drop_excluded(self, frame: pl.DataFrame, counts: RowCounts) -> pl.DataFrame:
         if self.exclude.size == 0:
             return frame
         keep = ~np.isin(frame[ROW_INDEX].to_numpy(), self.exclude)
         counts.excluded += int(frame.height - keep.sum())
         return frame.filter(pl.Series(keep))
 
-    def frames(self, counts: _Counts, tracker: ProgressTracker) -> Iterator[pl.DataFrame]:
+    def frames(self, counts: RowCounts, tracker: ProgressTracker) -> Iterator[pl.DataFrame]:
         """Yield the filtered frames of the pass, counting rows and reporting progress."""
         if self.sample is None:
             batches = self.source.scan_batches(
@@ -190,7 +195,7 @@ class _Plan:
             yield frame.slice(start, BATCH_ROWS)
         tracker.advance(self.sample.rows_read, force=True)
 
-    def summary(self, counts: _Counts) -> DataSummary:
+    def summary(self, counts: RowCounts) -> DataSummary:
         """Describe the rows a finished pass used."""
         sample = None if self.is_full_pass or self.sample is None else self.sample
         return DataSummary(
@@ -224,7 +229,8 @@ def _pass_columns(spec: ModelSpec, extra_columns: Sequence[str]) -> list[str]:
     return columns + [c for c in extra_columns if c not in columns]
 
 
-def _check_rows_left(counts: _Counts, spec: ModelSpec) -> None:
+def check_rows_left(counts: RowCounts, spec: ModelSpec) -> None:
+    """Raise `DataError`, saying why, when a pass left no rows to fit."""
     if counts.used > 0:
         return
     reasons = []
@@ -282,14 +288,14 @@ def fit_model(
     DataError
         When no rows are left or the data cannot support the fit.
     """
-    plan = _Plan.read(
+    plan = PassPlan.read(
         source, spec, rows=rows, seed=seed, design=design, exclude_rows=exclude_rows
     )
     return _fit(plan, on_progress=on_progress, cancel=cancel)
 
 
 def _fit(
-    plan: _Plan,
+    plan: PassPlan,
     *,
     on_progress: ProgressCallback | None,
     cancel: threading.Event | None,
@@ -297,14 +303,14 @@ def _fit(
     spec = plan.spec
     builder = DesignBuilder.learn(spec, plan.source.schema(), plan.learning_frame)
     accumulator = QRAccumulator(len(builder.column_names), has_intercept=spec.intercept)
-    counts = _Counts()
+    counts = RowCounts()
     tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
     for frame in plan.frames(counts, tracker):
         batch = builder.build(frame)
         counts.add(batch)
         if batch.x.shape[0]:
             accumulator.update(batch.x, batch.y, batch.weights)
-    _check_rows_left(counts, spec)
+    check_rows_left(counts, spec)
     fit = accumulator.finalize(builder.column_names)
     return FitOutcome(spec, builder, fit, plan.summary(counts), plan.learning_frame)
 
@@ -331,9 +337,14 @@ def run_report(
     row is streamed.
     """
     _check_segment_columns(source, spec, by)
-    plan = _Plan.read(
-        source, spec, rows=rows, seed=seed, design=design,
-        exclude_rows=exclude_rows, extra_columns=by,
+    plan = PassPlan.read(
+        source,
+        spec,
+        rows=rows,
+        seed=seed,
+        design=design,
+        exclude_rows=exclude_rows,
+        extra_columns=by,
     )
     total = plan.rows_total()
 
@@ -348,8 +359,13 @@ def run_report(
 
     outcome = _fit(plan, on_progress=halve(0), cancel=cancel)
     diagnostics = _diagnose(
-        plan, outcome, top_k=top_k, by=by, is_ordered=is_ordered,
-        on_progress=halve(total or 0), cancel=cancel,
+        plan,
+        outcome,
+        top_k=top_k,
+        by=by,
+        is_ordered=is_ordered,
+        on_progress=halve(total or 0),
+        cancel=cancel,
     )
     return ReportOutcome(outcome, diagnostics)
 
@@ -378,7 +394,7 @@ def _check_segment_columns(source: Source, spec: ModelSpec, by: Sequence[str]) -
 
 
 def _diagnose(
-    plan: _Plan,
+    plan: PassPlan,
     outcome: FitOutcome,
     *,
     top_k: int,
@@ -392,16 +408,14 @@ def _diagnose(
     config = default_config(
         fit,
         sample_fitted=fit.predict(sample_batch.x),
-        sample_predictors={
-            c: sample_batch.frame[c].to_numpy() for c in builder.numeric_predictors
-        },
+        sample_predictors={c: sample_batch.frame[c].to_numpy() for c in builder.numeric_predictors},
         segment_columns=tuple(by),
         sample_segments={c: sample_batch.frame[c] for c in by},
         top_k=top_k,
         is_ordered=is_ordered,
     )
     accumulator = DiagnosticsAccumulator(fit, config)
-    counts = _Counts()
+    counts = RowCounts()
     tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
     for frame in plan.frames(counts, tracker):
         batch = builder.build(frame)
@@ -434,9 +448,9 @@ def iter_row_diagnostics(
 
     The fit is `outcome`'s, whether it came from a sample or from every row.
     """
-    plan = _Plan(source, outcome.spec, sample=None, learning_frame=outcome.sample)
+    plan = PassPlan(source, outcome.spec, sample=None, learning_frame=outcome.sample)
     tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
-    counts = _Counts()
+    counts = RowCounts()
     for frame in plan.frames(counts, tracker):
         batch = outcome.builder.build(frame)
         if batch.x.shape[0]:

@@ -1,4 +1,4 @@
-"""`triage export`: write the worst rows (all their columns plus diagnostics), or every row's diagnostics."""
+"""`triage export`: write the worst rows with diagnostics, or every row's diagnostics."""
 
 from __future__ import annotations
 
@@ -29,8 +29,10 @@ def register(subparsers: Any) -> None:
     what.add_argument("--worst", type=int, metavar="K", help="export the K worst rows")
     what.add_argument("--all", action="store_true", help="export diagnostics for every row")
     parser.add_argument(
-        "--by-criterion", choices=("cooks", "studentized", "leverage", "abs_resid"),
-        default="cooks", help="ranking for --worst (default cooks)",
+        "--by-criterion",
+        choices=("cooks", "studentized", "leverage", "abs_resid"),
+        default="cooks",
+        help="ranking for --worst (default cooks)",
     )
     parser.add_argument("--out", required=True, help="output file, .parquet or .csv")
     parser.add_argument("--force", action="store_true", help="replace an existing output file")
@@ -55,14 +57,28 @@ def run(args: argparse.Namespace) -> int:
     try:
         if args.all:
             written, n_rows = export_all_rows(
-                source, spec, args.out, rows=args.rows, seed=args.seed, design=args.sample,
-                force=args.force, on_progress=progress,
+                source,
+                spec,
+                args.out,
+                rows=args.rows,
+                seed=args.seed,
+                design=args.sample,
+                force=args.force,
+                on_progress=progress,
             )
         else:
             written, n_rows = export_worst_rows(
-                source, spec, args.out, k=args.worst, criterion=args.by_criterion,
-                rows=args.rows, seed=args.seed, design=args.sample,
-                by=segment_columns(args), force=args.force, on_progress=progress,
+                source,
+                spec,
+                args.out,
+                k=args.worst,
+                criterion=args.by_criterion,
+                rows=args.rows,
+                seed=args.seed,
+                design=args.sample,
+                by=segment_columns(args),
+                force=args.force,
+                on_progress=progress,
             )
     finally:
         progress.finish()

@@ -16,11 +16,14 @@ def add_diagnostics_options(parser: argparse.ArgumentParser) -> None:
     group = parser.add_argument_group("diagnostics")
     group.add_argument("--top", type=int, default=10, metavar="K", help="rows per worst-rows list")
     group.add_argument(
-        "--by", default="", metavar="COLS",
+        "--by",
+        default="",
+        metavar="COLS",
         help="comma-separated columns to break residuals down by (segments)",
     )
     group.add_argument(
-        "--ordered", action="store_true",
+        "--ordered",
+        action="store_true",
         help="rows are in a meaningful order (time): judge serial correlation and trends",
     )
 
@@ -62,8 +65,14 @@ def run(args: argparse.Namespace) -> int:
     progress = StderrProgress()
     try:
         report = run_report(
-            source, spec, rows=args.rows, seed=args.seed, design=args.sample,
-            top_k=args.top, by=segment_columns(args), is_ordered=args.ordered,
+            source,
+            spec,
+            rows=args.rows,
+            seed=args.seed,
+            design=args.sample,
+            top_k=args.top,
+            by=segment_columns(args),
+            is_ordered=args.ordered,
             on_progress=progress,
         )
     finally:
