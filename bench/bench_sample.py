@@ -1,8 +1,7 @@
 """Benchmark `triage sample`: wall time and peak memory at two sizes, side by side.
 
-Each size is written by a fresh child process, so `RUSAGE_CHILDREN` (the largest peak
-RSS among finished children) is read before and after each run; a flat memory profile
-shows as about the same peak at 2M and 10M rows. Run from the repository root:
+Each size is written by a fresh child process whose own peak RSS comes from `os.wait4`;
+a flat memory profile shows as about the same peak at 2M and 10M rows. Run from the repository root:
 
     python bench/bench_sample.py [--sizes 2000000 10000000] [--format parquet|csv]
 """
@@ -10,7 +9,7 @@ shows as about the same peak at 2M and 10M rows. Run from the repository root:
 from __future__ import annotations
 
 import argparse
-import resource
+import os
 import subprocess
 import sys
 import tempfile
@@ -26,17 +25,17 @@ write_scenario(sys.argv[1], n_rows=int(sys.argv[2]), seed=0)
 
 def run_one(n_rows: int, out: Path) -> tuple[float, float, float]:
     """Write `n_rows` rows in a child process; return (seconds, peak RSS in MB, file MB)."""
-    before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
     start = time.perf_counter()
-    subprocess.run([sys.executable, "-c", CHILD, str(out), str(n_rows)], check=True)
+    child = subprocess.Popen([sys.executable, "-c", CHILD, str(out), str(n_rows)])
+    # os.wait4 gives this child's own resource use (Linux: ru_maxrss in KiB)
+    _, status, usage = os.wait4(child.pid, 0)
     elapsed = time.perf_counter() - start
-    peak_kb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
-    if peak_kb <= before:
-        # ru_maxrss over children is a running maximum: a smaller child cannot be told apart
-        print(f"note: peak for {n_rows:,} rows is at most that of an earlier run", file=sys.stderr)
+    child.returncode = os.waitstatus_to_exitcode(status)
+    if child.returncode != 0:
+        raise SystemExit(f"writing {n_rows:,} rows failed with exit code {child.returncode}")
     size_mb = out.stat().st_size / 1e6
     out.unlink()
-    return elapsed, peak_kb / 1024, size_mb
+    return elapsed, usage.ru_maxrss / 1024, size_mb
 
 
 def main() -> None:

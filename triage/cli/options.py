@@ -6,6 +6,7 @@ import argparse
 from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:
+    from triage.core.holdout import HoldoutRule
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
 
@@ -155,3 +156,49 @@ def spec_from_args(
         max_levels=args.max_levels,
         drop_invalid=args.drop_invalid,
     )
+
+
+def _fraction(text: str) -> float:
+    """Parse `--holdout`: a number strictly between 0 and 1."""
+    try:
+        value = float(text)
+    except ValueError:
+        value = -1.0
+    if not 0.0 < value < 1.0:
+        msg = f"`--holdout` must be a fraction between 0 and 1 (e.g. 0.2), got `{text}`"
+        raise argparse.ArgumentTypeError(msg)
+    return value
+
+
+def add_holdout_options(parser: argparse.ArgumentParser) -> argparse._ArgumentGroup:
+    """Add `--holdout` / `--holdout-by COL --cut VALUE`; return the group for more options."""
+    group = parser.add_argument_group("held-out rows")
+    split = group.add_mutually_exclusive_group()
+    split.add_argument(
+        "--holdout",
+        type=_fraction,
+        metavar="FRACTION",
+        help="hold out this share of rows at random (seeded by `--seed`) and score them",
+    )
+    split.add_argument(
+        "--holdout-by",
+        metavar="COL",
+        help="hold out rows with COL >= `--cut` (fit on earlier rows, score later ones)",
+    )
+    group.add_argument("--cut", metavar="VALUE", help="the cut value for `--holdout-by`")
+    return group
+
+
+def holdout_rule_from_args(args: argparse.Namespace) -> HoldoutRule | None:
+    """Return the held-out rule the options describe, or None when no rows are held out."""
+    from triage.core.holdout import HoldoutRule
+    from triage.errors import SpecError
+
+    if args.cut is not None and args.holdout_by is None:
+        msg = f"`--cut {args.cut}` needs `--holdout-by COL` to say which column it cuts"
+        raise SpecError(msg)
+    if args.holdout is not None:
+        return HoldoutRule(fraction=args.holdout, seed=args.seed)
+    if args.holdout_by is not None:
+        return HoldoutRule(column=args.holdout_by, cut=args.cut, seed=args.seed)
+    return None

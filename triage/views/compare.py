@@ -249,6 +249,26 @@ def render_comparison(outcome: ComparisonOutcome, *, width: int = 100) -> str:
         Sections joined by blank lines.
     """
     sections = [render_data_summary(outcome.data, width=width)]
+    sections.append(render_holdout_summary(outcome, width=width))
+    sections.append(render_nested_tests(outcome.comparison, width=width))
+    return "\n\n".join(s for s in sections if s)
+
+
+def render_holdout_summary(outcome: ComparisonOutcome, *, width: int = 100) -> str:
+    """Say which rows were held out and show each model's in-sample and held-out figures.
+
+    Parameters
+    ----------
+    outcome : ComparisonOutcome
+        A finished comparison (one model for `triage fit --holdout`).
+    width : int, default=100
+        Line width.
+
+    Returns
+    -------
+    str
+        The held-out section followed by the comparison table.
+    """
     split = [f"K-fold RMSE: {outcome.folds} folds over the sample rows that were fitted"]
     if outcome.holdout_rule is not None:
         split.insert(0, f"held out: {outcome.holdout_rule.describe()}")
@@ -263,10 +283,22 @@ def render_comparison(outcome: ComparisonOutcome, *, width: int = 100) -> str:
                 f"`{outcome.holdout_rule.column}` and were left out of both parts"
             )
     body = "\n".join(_wrap(line, width) for line in split)
-    sections.append(f"{rule('rows held out of the fit', width)}\n{body}")
-    sections.append(render_comparison_table(outcome.comparison, width=width))
-    sections.append(render_nested_tests(outcome.comparison, width=width))
-    return "\n\n".join(s for s in sections if s)
+    table_text = render_comparison_table(outcome.comparison, width=width)
+    return f"{rule('rows held out of the fit', width)}\n{body}\n\n{table_text}"
+
+
+def holdout_to_json(outcome: ComparisonOutcome) -> dict[str, Any]:
+    """Held-out figures of the first model, for the `holdout` key of `triage fit --json`."""
+    model = comparison_to_json(outcome)["models"][0]
+    rule_text = None if outcome.holdout_rule is None else outcome.holdout_rule.describe()
+    return {
+        "rule": rule_text,
+        "rows_held_out": outcome.rows_held_out,
+        "n": model["holdout_n"],
+        "r2": model["holdout_r2"],
+        "rmse": model["holdout_rmse"],
+        "cv_rmse": model["cv_rmse"],
+    }
 
 
 def comparison_to_json(outcome: ComparisonOutcome) -> dict[str, Any]:

@@ -7,19 +7,12 @@ import json
 import sys
 from typing import Any
 
-from triage.cli.options import add_model_options, add_row_options, add_source_options
-
-
-def _fraction(text: str) -> float:
-    """Parse `--holdout`: a number strictly between 0 and 1."""
-    try:
-        value = float(text)
-    except ValueError:
-        value = -1.0
-    if not 0.0 < value < 1.0:
-        msg = f"`--holdout` must be a fraction between 0 and 1 (e.g. 0.2), got `{text}`"
-        raise argparse.ArgumentTypeError(msg)
-    return value
+from triage.cli.options import (
+    add_holdout_options,
+    add_model_options,
+    add_row_options,
+    add_source_options,
+)
 
 
 def _folds(text: str) -> int:
@@ -47,27 +40,22 @@ def register(subparsers: Any) -> None:
     add_source_options(parser)
     add_model_options(parser, terms_repeatable=True)
     add_row_options(parser)
-    group = parser.add_argument_group("held-out rows and checks")
-    split = group.add_mutually_exclusive_group()
-    split.add_argument(
-        "--holdout", type=_fraction, metavar="FRACTION",
-        help="hold out this share of rows at random (seeded by `--seed`) and score them",
-    )
-    split.add_argument(
-        "--holdout-by", metavar="COL",
-        help="hold out rows with COL >= `--cut` (fit on earlier rows, score later ones)",
-    )
-    group.add_argument("--cut", metavar="VALUE", help="the cut value for `--holdout-by`")
+    group = add_holdout_options(parser)
     group.add_argument(
-        "--folds", type=_folds, default=5, metavar="K",
+        "--folds",
+        type=_folds,
+        default=5,
+        metavar="K",
         help="folds of the K-fold RMSE on the sample (default 5)",
     )
     group.add_argument(
-        "--robust", action="store_true",
+        "--robust",
+        action="store_true",
         help="refit each model on the sample by Huber's method and show coefficient shifts",
     )
     group.add_argument(
-        "--curvature", action="store_true",
+        "--curvature",
+        action="store_true",
         help="for each numeric predictor, show how much a spline lowers the K-fold RMSE",
     )
     parser.add_argument("--json", action="store_true", help="print one JSON object")
@@ -76,43 +64,47 @@ def register(subparsers: Any) -> None:
 
 def run(args: argparse.Namespace) -> int:
     """Run `triage compare`."""
-    from triage.cli.options import open_source_from_args, spec_from_args
+    from triage.cli.options import holdout_rule_from_args, open_source_from_args, spec_from_args
     from triage.cli.progress import StderrProgress
-    from triage.core.holdout import HoldoutRule
     from triage.engine.compare import (
         compare_models,
         curvature_check_outcome,
         robust_check_outcome,
     )
-    from triage.errors import SpecError
     from triage.views import compare as views
 
-    if args.cut is not None and args.holdout_by is None:
-        msg = f"`--cut {args.cut}` needs `--holdout-by COL` to say which column it cuts"
-        raise SpecError(msg)
+    rule = holdout_rule_from_args(args)
     source = open_source_from_args(args)
     labels = [str(t) for t in args.terms]
     specs = [spec_from_args(args, source, terms=t) for t in labels]
-    rule = None
-    if args.holdout is not None:
-        rule = HoldoutRule(fraction=args.holdout, seed=args.seed)
-    elif args.holdout_by is not None:
-        rule = HoldoutRule(column=args.holdout_by, cut=args.cut, seed=args.seed)
     progress = StderrProgress()
     try:
         outcome = compare_models(
-            source, specs, labels, rows=args.rows, seed=args.seed, design=args.sample,
-            holdout=rule, folds=args.folds, on_progress=progress,
+            source,
+            specs,
+            labels,
+            rows=args.rows,
+            seed=args.seed,
+            design=args.sample,
+            holdout=rule,
+            folds=args.folds,
+            on_progress=progress,
         )
     finally:
         progress.finish()
-    robust = [
-        robust_check_outcome(m.outcome, holdout=rule) for m in outcome.models
-    ] if args.robust else []
-    curvature = [
-        curvature_check_outcome(m.outcome, folds=args.folds, seed=args.seed, holdout=rule)
-        for m in outcome.models
-    ] if args.curvature else []
+    robust = (
+        [robust_check_outcome(m.outcome, holdout=rule) for m in outcome.models]
+        if args.robust
+        else []
+    )
+    curvature = (
+        [
+            curvature_check_outcome(m.outcome, folds=args.folds, seed=args.seed, holdout=rule)
+            for m in outcome.models
+        ]
+        if args.curvature
+        else []
+    )
     if args.json:
         document = views.comparison_to_json(outcome)
         if robust:

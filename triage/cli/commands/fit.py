@@ -7,7 +7,12 @@ import json
 import sys
 from typing import Any
 
-from triage.cli.options import add_model_options, add_row_options, add_source_options
+from triage.cli.options import (
+    add_holdout_options,
+    add_model_options,
+    add_row_options,
+    add_source_options,
+)
 
 
 def register(subparsers: Any) -> None:
@@ -20,30 +25,64 @@ def register(subparsers: Any) -> None:
     add_source_options(parser)
     add_model_options(parser)
     add_row_options(parser)
+    add_holdout_options(parser)
     parser.add_argument("--json", action="store_true", help="print one JSON object")
     parser.set_defaults(handler=run)
 
 
 def run(args: argparse.Namespace) -> int:
     """Run `triage fit`."""
-    from triage.cli.options import open_source_from_args, spec_from_args
+    from triage.cli.options import holdout_rule_from_args, open_source_from_args, spec_from_args
     from triage.cli.progress import StderrProgress
-    from triage.engine.passes import fit_model
     from triage.views.json import fit_to_json
     from triage.views.text import render_fit_report
 
+    rule = holdout_rule_from_args(args)
     source = open_source_from_args(args)
     spec = spec_from_args(args, source)
     progress = StderrProgress()
     try:
-        outcome = fit_model(
-            source, spec, rows=args.rows, seed=args.seed, design=args.sample, on_progress=progress
-        )
+        if rule is None:
+            from triage.engine.passes import fit_model
+
+            outcome = fit_model(
+                source,
+                spec,
+                rows=args.rows,
+                seed=args.seed,
+                design=args.sample,
+                on_progress=progress,
+            )
+            comparison = None
+        else:
+            from triage.engine.compare import compare_models
+
+            comparison = compare_models(
+                source,
+                [spec],
+                [args.terms],
+                rows=args.rows,
+                seed=args.seed,
+                design=args.sample,
+                holdout=rule,
+                on_progress=progress,
+            )
+            outcome = comparison.models[0].outcome
     finally:
         progress.finish()
     if args.json:
-        json.dump(fit_to_json(outcome), sys.stdout, indent=2, allow_nan=False)
+        document = fit_to_json(outcome)
+        if comparison is not None:
+            from triage.views.compare import holdout_to_json
+
+            document["holdout"] = holdout_to_json(comparison)
+        json.dump(document, sys.stdout, indent=2, allow_nan=False)
         sys.stdout.write("\n")
-    else:
-        sys.stdout.write(render_fit_report(outcome) + "\n")
+        return 0
+    text = render_fit_report(outcome)
+    if comparison is not None:
+        from triage.views.compare import render_holdout_summary
+
+        text += "\n\n" + render_holdout_summary(comparison)
+    sys.stdout.write(text + "\n")
     return 0
