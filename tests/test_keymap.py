@@ -18,23 +18,22 @@ from triage.tui.keymap import (
 )
 from triage.tui.locations import config_dir, shipped_keymaps, user_keymap_path
 
+config_home = tui_support.config_home
 
-config_dir = tui_support.config_dir
 
-
-def test_keymap_default_names_every_binding(config_dir: Path) -> None:
+def test_keymap_default_names_every_binding(config_home: Path) -> None:
     ids = set(all_binding_ids())
     default = tomllib.loads((shipped_keymaps() / "default.toml").read_text(encoding="utf-8"))
     assert set(default) == ids
 
 
 @pytest.mark.parametrize("keyset", shipped_keysets())
-def test_keymap_each_shipped_keyset_loads_without_clash(config_dir: Path, keyset: str) -> None:
+def test_keymap_each_shipped_keyset_loads_without_clash(config_home: Path, keyset: str) -> None:
     keymap = load_keymap(all_binding_ids(), keyset=keyset)
     assert set(keymap) == set(all_binding_ids())
 
 
-def test_keymap_has_an_alternative_that_changes_keys(config_dir: Path) -> None:
+def test_keymap_has_an_alternative_that_changes_keys(config_home: Path) -> None:
     alternatives = [k for k in shipped_keysets() if k != "default"]
     assert alternatives
     default = load_keymap(all_binding_ids())
@@ -42,7 +41,7 @@ def test_keymap_has_an_alternative_that_changes_keys(config_dir: Path) -> None:
     assert other != default
 
 
-def test_keymap_merge_order_user_then_command_line(config_dir: Path, tmp_path: Path) -> None:
+def test_keymap_merge_order_user_then_command_line(config_home: Path, tmp_path: Path) -> None:
     user = user_keymap_path()
     user.write_text('quick-fit = "z"\npane-fit = "F"\n', encoding="utf-8")
     extra = tmp_path / "mine.toml"
@@ -57,14 +56,14 @@ def test_keymap_merge_order_user_then_command_line(config_dir: Path, tmp_path: P
     assert with_keyset["pane-spread"] == "f4"  # the alternative wins over the default
 
 
-def test_keymap_unknown_id_names_file_and_closest(config_dir: Path, tmp_path: Path) -> None:
+def test_keymap_unknown_id_names_file_and_closest(config_home: Path, tmp_path: Path) -> None:
     bad = tmp_path / "typo.toml"
     bad.write_text('qiut = "ctrl+x"\n', encoding="utf-8")
     with pytest.raises(KeymapError, match=r"unknown binding id `qiut`.*typo\.toml.*`quit`"):
         load_keymap(all_binding_ids(), extra_file=bad)
 
 
-def test_keymap_malformed_toml_is_reported(config_dir: Path, tmp_path: Path) -> None:
+def test_keymap_malformed_toml_is_reported(config_home: Path, tmp_path: Path) -> None:
     bad = tmp_path / "broken.toml"
     bad.write_text("quit = \n", encoding="utf-8")
     with pytest.raises(KeymapError, match=r"broken\.toml.*not valid TOML"):
@@ -76,24 +75,24 @@ def test_keymap_value_must_be_a_key_string() -> None:
         parse_keymap("quit = 3\n", label="x.toml")
 
 
-def test_keymap_missing_file_is_reported(config_dir: Path, tmp_path: Path) -> None:
+def test_keymap_missing_file_is_reported(config_home: Path, tmp_path: Path) -> None:
     with pytest.raises(KeymapError, match=r"cannot read keymap"):
         load_keymap(all_binding_ids(), extra_file=tmp_path / "absent.toml")
 
 
-def test_keymap_unknown_keyset_lists_the_shipped_ones(config_dir: Path) -> None:
+def test_keymap_unknown_keyset_lists_the_shipped_ones(config_home: Path) -> None:
     with pytest.raises(KeymapError, match=r"no shipped keymap named `vim`.*`fkeys`"):
         load_keymap(all_binding_ids(), keyset="vim")
 
 
-def test_keymap_key_given_twice_is_a_clash(config_dir: Path) -> None:
+def test_keymap_key_given_twice_is_a_clash(config_home: Path) -> None:
     layer = parse_keymap('quick-fit = "a"\n', label="mine.toml")
     base = parse_keymap('start-full-pass = "a"\nquick-fit = "s"\n', label="base")
     with pytest.raises(KeymapError, match=r"key `a` is given to both .*mine\.toml"):
         merge_keymaps([base, layer], ["quick-fit", "start-full-pass"])
 
 
-def test_keymap_clash_sees_through_key_spellings(config_dir: Path) -> None:
+def test_keymap_clash_sees_through_key_spellings(config_home: Path) -> None:
     # Textual names "?" `question_mark` (textual.keys); both spellings must count as one key.
     layer = parse_keymap('quick-fit = "?"\nshow-help = "question_mark"\n', label="mine.toml")
     with pytest.raises(KeymapError, match=r"given to both"):

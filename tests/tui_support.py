@@ -39,7 +39,7 @@ def write_demo(folder: Path) -> Path:
 
 
 @pytest.fixture
-def config_dir(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
+def config_home(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
     """Point triage's configuration directory at an empty temporary folder; no NO_COLOR."""
     folder = tmp_path / "config"
     monkeypatch.setenv("TRIAGE_CONFIG_DIR", str(folder))

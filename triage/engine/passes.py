@@ -311,7 +311,20 @@ def _fit(
         if batch.x.shape[0]:
             accumulator.update(batch.x, batch.y, batch.weights)
     check_rows_left(counts, spec)
+    n_coefficients = len(builder.column_names)
+    if counts.used < n_coefficients:
+        msg = (
+            f"the model has {n_coefficients} coefficients but only {counts.used:,} usable rows; "
+            "drop terms, loosen `--where`, or use more rows (`--rows`)"
+        )
+        raise DataError(msg)
     fit = accumulator.finalize(builder.column_names)
+    if not fit.tss > 0:
+        msg = (
+            f"the target `{spec.target}` does not vary over the {counts.used:,} rows used, "
+            "so there is nothing to explain; check the column or the filter"
+        )
+        raise DataError(msg)
     return FitOutcome(spec, builder, fit, plan.summary(counts), plan.learning_frame)
 
 

@@ -49,6 +49,8 @@ class PassFinished(Message):
     """The fit and its diagnostics."""
     excluded: frozenset[int]
     """Source positions left out of this fit (marked rows of a what-if refit)."""
+    baseline: int | None
+    """Number of the fit a what-if refit is compared with, else None."""
 
 
 @dataclass

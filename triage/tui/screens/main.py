@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from collections import OrderedDict
-from dataclasses import replace
+from dataclasses import dataclass, replace
 from itertools import count
 from typing import TYPE_CHECKING, ClassVar, Final, cast
 
@@ -16,6 +16,10 @@ from textual.widgets import DataTable, Footer
 from textual.worker import Worker, WorkerState, get_current_worker
 
 from triage._typing import CRITERIA
+from triage.data import source as data_source
+from triage.data.source import CsvOptions
+from triage.engine.export import export_rows
+from triage.engine.passes import diagnose_rows, run_report
 from triage.errors import PassCancelled, TriageError
 from triage.tui.messages import (
     ExportWritten,
@@ -87,6 +91,20 @@ FIT_ACTIONS: Final = frozenset(
     }
 )
 """Actions that need a fit on screen."""
+
+
+@dataclass(frozen=True)
+class PassJob:
+    """What one pass fits: the checked model, rows left out, and the fit it compares with."""
+
+    pass_id: int
+    """Carried in the pass's messages so late ones from a cancelled pass are dropped."""
+    spec: ModelSpec
+    """The model, checked against the source's columns."""
+    excluded: frozenset[int]
+    """Source positions left out (a what-if refit)."""
+    baseline: int | None
+    """Number of the fit a what-if refit is compared with."""
 
 
 def _pane_binding(index: int, pane_id: str, title: str) -> Binding:
@@ -198,10 +216,10 @@ class MainScreen(Screen[None]):
         self._pass_ids = count(1)
         self.running_pass: int | None = None
         """Id of the running full pass, or None."""
+        self.sample_pass: int | None = None
+        """Id of the latest sample fit not yet finished, or None."""
         self.full_pass_worker: Worker[None] | None = None
         """Worker of the running full pass, kept so one key can cancel it."""
-        self.pending_baseline: int | None = None
-        """Number of the fit a running what-if refit compares against."""
 
     # ----------------------------------------------------------------------------------------
     # layout
@@ -323,10 +341,8 @@ class MainScreen(Screen[None]):
     @work(thread=True, exclusive=True, group="open", exit_on_error=False)
     def open_data(self, path: str) -> None:
         """Open the source and profile its columns on a small sample (thread worker)."""
-        from triage.data.source import CsvOptions, open_source
-
         try:
-            source = open_source(path, csv=self.settings.csv or CsvOptions())
+            source = data_source.open_source(path, csv=self.settings.csv or CsvOptions())
             schema = source.schema()
             sample = source.read_sample(
                 list(schema), n_rows=PROFILE_ROWS, seed=self.settings.seed, design="groups"
@@ -533,54 +549,52 @@ class MainScreen(Screen[None]):
         if spec is None:
             return
         pass_id = next(self._pass_ids)
-        self.pending_baseline = baseline
+        job = PassJob(pass_id, spec, excluded, baseline)
         if is_full:
             self.running_pass = pass_id
-            self.full_pass_worker = self.run_full_pass(pass_id, spec, excluded)
+            self.full_pass_worker = self.run_full_pass(job)
             self.query_one(PassLine).set_class(True, "-running")
             self.notify("reading every row in the background; the sample results stay until done")
         else:
-            self.run_sample_fit(pass_id, spec, excluded)
+            self.sample_pass = pass_id
+            self.run_sample_fit(job)
         self.refresh_bindings()
 
-    def _report(
-        self, spec: ModelSpec, excluded: frozenset[int], *, rows: int | None, pass_id: int
-    ) -> None:
-        from triage.engine.passes import run_report
-
+    def _report(self, job: PassJob, *, rows: int | None) -> None:
+        """Run one pass of `job` in the current worker and post how it ended."""
         assert self.source is not None
         worker = get_current_worker()
         try:
             report = run_report(
                 self.source,
-                spec,
+                job.spec,
                 rows=rows,
                 seed=self.settings.seed,
                 design=self.settings.sample_design,
-                exclude_rows=excluded,
+                exclude_rows=job.excluded,
                 top_k=self.settings.top_k,
                 by=self.segment_columns,
                 on_progress=None
                 if rows is not None
-                else lambda p: self.post_message(PassProgressed(pass_id, p)),
+                else lambda p: self.post_message(PassProgressed(job.pass_id, p)),
                 cancel=worker.cancelled_event,
             )
         except PassCancelled:
-            self.post_message(PassStopped(pass_id))
+            self.post_message(PassStopped(job.pass_id))
         except TriageError as error:
-            self.post_message(PassFailed(pass_id, str(error), "the fit failed"))
+            self.post_message(PassFailed(job.pass_id, str(error), "the fit failed"))
         else:
-            self.post_message(PassFinished(pass_id, report, excluded))
+            self.post_message(PassFinished(job.pass_id, report, job.excluded, job.baseline))
 
     @work(thread=True, exclusive=True, group="sample-fit", exit_on_error=False)
-    def run_sample_fit(self, pass_id: int, spec: ModelSpec, excluded: frozenset[int]) -> None:
+    def run_sample_fit(self, job: PassJob) -> None:
         """Fit and diagnose on the sample (thread worker; a newer request cancels it)."""
-        self._report(spec, excluded, rows=self.settings.sample_rows, pass_id=pass_id)
+        self._report(job, rows=self.settings.sample_rows)
 
     @work(thread=True, exclusive=True, group="full-pass", exit_on_error=False)
-    def run_full_pass(self, pass_id: int, spec: ModelSpec, excluded: frozenset[int]) -> None:
+    def run_full_pass(self, job: PassJob) -> None:
         """Fit and diagnose on every row (thread worker; the cancel key stops it)."""
-        self._report(spec, excluded, rows=None, pass_id=pass_id)
+        self._report(job, rows=None)
 
     def action_cancel_pass(self) -> None:
         """Stop the running full pass; the results on screen stay."""
@@ -615,15 +629,18 @@ class MainScreen(Screen[None]):
         self.show_error(message.message, title=message.title)
 
     def on_pass_finished(self, message: PassFinished) -> None:
-        """Add the fit to the session's list and show it."""
+        """Add the fit to the session's list and show it; drop late results of older passes."""
         is_full = self._end_full_pass(message.pass_id)
+        if not is_full:
+            if message.pass_id != self.sample_pass:
+                return
+            self.sample_pass = None
         fit = SessionFit(
             number=len(self.fits) + 1,
             report=message.report,
             excluded=message.excluded,
-            baseline=self.pending_baseline,
+            baseline=message.baseline,
         )
-        self.pending_baseline = None
         self.fits.append(fit)
         self.query_one(FitsPane).fits = tuple(self.fits)
         self.show_fit(fit)
@@ -743,8 +760,6 @@ class MainScreen(Screen[None]):
     @work(thread=True, exclusive=True, group="row-fetch", exit_on_error=False)
     def fetch_row(self, position: int, fit: SessionFit) -> None:
         """Read the whole original row by position and diagnose it (thread worker)."""
-        from triage.engine.passes import diagnose_rows
-
         assert self.source is not None
         try:
             frame, diagnostics = diagnose_rows(self.source, fit.report.outcome, [position])
@@ -830,8 +845,6 @@ class MainScreen(Screen[None]):
     @work(thread=True, exclusive=True, group="export", exit_on_error=False)
     def write_export(self, fit: SessionFit, positions: list[int], path: str) -> None:
         """Write the rows with every column plus diagnostics (thread worker)."""
-        from triage.engine.export import export_rows
-
         assert self.source is not None
         try:
             written = export_rows(self.source, fit.report.outcome, positions, path)

@@ -1,0 +1,287 @@
+"""The command line: exit codes, one-line errors, JSON contracts (issues 2 and 3).
+
+Numbers in the JSON are checked against statsmodels (oracle) on scikit-learn's bundled
+diabetes data (`sklearn.datasets.load_diabetes`, shipped inside the scikit-learn wheel).
+Error cases use small frames written in the test: they check behaviour, not numbers.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import polars as pl
+import pytest
+import statsmodels.api as sm
+from sklearn.datasets import load_diabetes
+
+from triage.cli.main import main
+
+FIT_KEYS = {"data", "model", "coefficients", "aliased", "fit"}
+DATA_KEYS = {"source", "rows_in_source", "rows_used", "rows_dropped", "sample"}
+MODEL_KEYS = {"target", "terms", "intercept", "weights", "where"}
+COEF_KEYS = {"term", "estimate", "std_error", "t", "p", "ci_low", "ci_high"}
+FIT_QUALITY_KEYS = {
+    "r2",
+    "adj_r2",
+    "resid_sd",
+    "f",
+    "f_p",
+    "df_model",
+    "df_resid",
+    "loglik",
+    "aic",
+    "bic",
+    "condition_number",
+}
+REPORT_KEYS = FIT_KEYS | {
+    "robust_se",
+    "tests",
+    "worst",
+    "segments",
+    "histogram",
+    "binned",
+    "flags",
+}
+
+
+@pytest.fixture(scope="module")
+def diabetes(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    bunch = load_diabetes(scaled=False)
+    frame = pl.DataFrame(bunch.data, schema=list(bunch.feature_names)).with_columns(
+        target=pl.Series(bunch.target),
+        sex=pl.Series(bunch.data[:, 1]).cast(pl.Int64).cast(pl.String),
+    )
+    path = tmp_path_factory.mktemp("diabetes") / "diabetes.parquet"
+    frame.write_parquet(path, row_group_size=100)
+    return path
+
+
+@pytest.fixture
+def small(tmp_path: Path) -> Path:
+    rng = np.random.default_rng(7)
+    n = 120
+    frame = pl.DataFrame(
+        {
+            "y": rng.normal(size=n),
+            "x": rng.normal(size=n),
+            "signed": rng.normal(size=n),
+            "label": [f"p{i}" for i in range(n)],
+            "flat": np.full(n, 3.0),
+            "many": [f"g{i % 60}" for i in range(n)],
+        }
+    )
+    path = tmp_path / "small.parquet"
+    frame.write_parquet(path)
+    return path
+
+
+def run_cli(args: list[str], capsys: pytest.CaptureFixture[str]) -> tuple[int, str, str]:
+    code = main(args)
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def test_cli_fit_json_matches_statsmodels(
+    diabetes: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    code, out, _ = run_cli(
+        ["fit", str(diabetes), "--target", "target", "--terms", "age, bmi, bp, s1, s5", "--json"],
+        capsys,
+    )
+    assert code == 0
+    document = json.loads(out)
+    assert document.keys() >= FIT_KEYS
+    assert document["data"].keys() >= DATA_KEYS
+    assert document["model"].keys() >= MODEL_KEYS
+    assert document["fit"].keys() >= FIT_QUALITY_KEYS
+    assert all(c.keys() >= COEF_KEYS for c in document["coefficients"])
+    assert document["coefficients"][0]["term"] == "intercept"
+    assert document["data"]["sample"] is None  # 442 rows: every row is read
+
+    bunch = load_diabetes(scaled=False)
+    x = bunch.data[:, [0, 2, 3, 4, 8]]
+    oracle = sm.OLS(bunch.target, sm.add_constant(x)).fit()  # statsmodels as oracle
+    estimates = [c["estimate"] for c in document["coefficients"]]
+    errors = [c["std_error"] for c in document["coefficients"]]
+    np.testing.assert_allclose(estimates, oracle.params, rtol=1e-9)
+    np.testing.assert_allclose(errors, oracle.bse, rtol=1e-9)
+    np.testing.assert_allclose(document["fit"]["r2"], oracle.rsquared, rtol=1e-10)
+    np.testing.assert_allclose(document["fit"]["aic"], oracle.aic, rtol=1e-10)
+    np.testing.assert_allclose(document["fit"]["bic"], oracle.bic, rtol=1e-10)
+    np.testing.assert_allclose(document["fit"]["f"], oracle.fvalue, rtol=1e-9)
+
+
+def test_cli_report_json_has_every_key(diabetes: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    code, out, _ = run_cli(
+        [
+            "report",
+            str(diabetes),
+            "-y",
+            "target",
+            "-x",
+            "age, bmi, bp",
+            "--by",
+            "sex",
+            "--top",
+            "5",
+            "--json",
+        ],
+        capsys,
+    )
+    assert code == 0
+    document = json.loads(out)
+    assert document.keys() >= REPORT_KEYS
+    assert set(document["robust_se"]) == {"HC0", "HC1", "HC2", "HC3"}
+    assert set(document["tests"]) == {"breusch_pagan", "reset", "jarque_bera", "durbin_watson"}
+    assert set(document["worst"]) == {"abs_resid", "studentized", "leverage", "cooks"}
+    assert all(len(rows) == 5 for rows in document["worst"].values())
+    assert {"level", "n", "mean_resid", "rmse", "t"} <= document["segments"]["sex"][0].keys()
+    assert {"fitted", "age", "bmi", "bp"} <= document["binned"].keys()
+    bunch = load_diabetes(scaled=False)
+    oracle = sm.OLS(bunch.target, sm.add_constant(bunch.data[:, [0, 2, 3]])).fit()
+    np.testing.assert_allclose(  # statsmodels HC3 as oracle
+        list(document["robust_se"]["HC3"].values()), oracle.HC3_se, rtol=1e-8
+    )
+    worst = oracle.get_influence().cooks_distance[0]
+    assert document["worst"]["cooks"][0]["row"] == int(np.argmax(worst))
+
+
+def test_cli_report_text_has_our_sections(
+    diabetes: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    code, out, _ = run_cli(
+        ["report", str(diabetes), "-y", "target", "-x", "age, bmi, bp", "--width", "80"], capsys
+    )
+    assert code == 0
+    assert "fit quality" in out and "coefficients" in out
+    assert max(len(line) for line in out.splitlines()) <= 80
+
+
+def test_cli_export_worst_rows_and_refuse_overwrite(
+    diabetes: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    out_path = tmp_path / "worst.csv"
+    args = [
+        "export",
+        str(diabetes),
+        "-y",
+        "target",
+        "-x",
+        "age, bmi, bp",
+        "--worst",
+        "7",
+        "--out",
+        str(out_path),
+    ]
+    code, _out, err = run_cli(args, capsys)
+    assert code == 0
+    assert "personal" in err
+    written = pl.read_csv(out_path)
+    assert written.height == 7
+    assert {"age", "bmi", "row", "fitted", "resid", "studentized", "leverage", "cooks"} <= set(
+        written.columns
+    )
+    bunch = load_diabetes(scaled=False)
+    oracle = sm.OLS(bunch.target, sm.add_constant(bunch.data[:, [0, 2, 3]])).fit()
+    cooks = oracle.get_influence().cooks_distance[0]
+    expected = np.argsort(-cooks, kind="stable")[:7]
+    assert written["row"].to_list() == expected.tolist()  # statsmodels Cook's distance as oracle
+    np.testing.assert_allclose(written["cooks"].to_numpy(), cooks[expected], rtol=1e-8)
+    code, _, err = run_cli(args, capsys)
+    assert code == 2 and "--force" in err
+
+
+def test_cli_export_all_rows_streams_every_row(
+    diabetes: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    out_path = tmp_path / "all.parquet"
+    code, _, _ = run_cli(
+        [
+            "export",
+            str(diabetes),
+            "-y",
+            "target",
+            "-x",
+            "age, bmi",
+            "--all",
+            "--out",
+            str(out_path),
+        ],
+        capsys,
+    )
+    assert code == 0
+    written = pl.read_parquet(out_path)
+    assert written["row"].to_list() == list(range(442))
+    bunch = load_diabetes(scaled=False)
+    oracle = sm.OLS(bunch.target, sm.add_constant(bunch.data[:, [0, 2]])).fit()
+    influence = oracle.get_influence()  # statsmodels OLSInfluence as oracle
+    np.testing.assert_allclose(written["leverage"], influence.hat_matrix_diag, rtol=1e-8)
+    np.testing.assert_allclose(
+        written["studentized"], influence.resid_studentized_external, rtol=1e-8
+    )
+
+
+BAD_INPUTS = {
+    "missing file": (["fit", "{dir}/absent.parquet", "-y", "y", "-x", "x"], "does not exist"),
+    "corrupt file": (["fit", "{corrupt}", "-y", "y", "-x", "x"], "cannot read"),
+    "unknown column": (["fit", "{small}", "-y", "y", "-x", "xx"], "closest: `x`"),
+    "non-numeric target": (["fit", "{small}", "-y", "label", "-x", "x"], "must be numeric"),
+    "log of non-positive": (["fit", "{small}", "-y", "y", "-x", "log(signed)"], "--drop-invalid"),
+    "constant target": (["fit", "{small}", "-y", "flat", "-x", "x"], "does not vary"),
+    "more terms than rows": (
+        ["fit", "{small}", "-y", "y", "-x", "x, signed, label", "--max-levels", "200"],
+        "coefficients but only",
+    ),
+    "every row filtered": (
+        ["fit", "{small}", "-y", "y", "-x", "x", "--where", "x > 100"],
+        "no rows left",
+    ),
+    "too many levels": (["fit", "{small}", "-y", "y", "-x", "many"], "--max-levels"),
+    "invalid filter": (["fit", "{small}", "-y", "y", "-x", "x", "--where", "x >> 2"], "filter"),
+    "code in filter": (
+        [
+            "fit",
+            "{small}",
+            "-y",
+            "y",
+            "-x",
+            "x",
+            "--where",
+            "__import__('os').system('touch {dir}/pwned')",
+        ],
+        "filter",
+    ),
+    "unknown --by column": (
+        ["report", "{small}", "-y", "y", "-x", "x", "--by", "lable"],
+        "closest: `label`",
+    ),
+    "unwritable export path": (
+        ["export", "{small}", "-y", "y", "-x", "x", "--worst", "3", "--out", "{dir}/no/such.csv"],
+        "does not exist",
+    ),
+    "export onto the input": (
+        ["export", "{small}", "-y", "y", "-x", "x", "--worst", "3", "--out", "{small}"],
+        "input",
+    ),
+}
+
+
+@pytest.mark.parametrize("case", sorted(BAD_INPUTS))
+def test_cli_bad_input_exits_2_with_one_line(
+    case: str, small: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    corrupt = tmp_path / "corrupt.parquet"
+    corrupt.write_bytes(b"PAR1 not really parquet")
+    before = sorted(p.name for p in tmp_path.iterdir())
+    template, expected = BAD_INPUTS[case]
+    args = [a.format(dir=tmp_path, small=small, corrupt=corrupt) for a in template]
+    code, out, err = run_cli(args, capsys)
+    assert code == 2
+    assert out == ""
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("triage: ")
+    assert expected in lines[0]
+    assert "Traceback" not in err
+    assert sorted(p.name for p in tmp_path.iterdir()) == before  # nothing written
