@@ -13,7 +13,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Final, Literal, TypeAlias
 
-from scipy import stats
+from triage.core.distributions import f_sf
 
 if TYPE_CHECKING:
     from triage.core.holdout import HoldoutScore
@@ -211,7 +211,7 @@ def nested_f_test(
         return NestedFTest(indices[0], indices[1], None, df1, df2, None)
     # Clip at 0: a smaller RSS for the smaller model can only be rounding.
     f = max(smaller.rss - larger.rss, 0.0) / df1 / (larger.rss / df2)
-    p = float(stats.f.sf(f, df1, df2))
+    p = f_sf(f, df1, df2)
     return NestedFTest(indices[0], indices[1], f, df1, df2, p)
 
 

@@ -28,10 +28,10 @@ from typing import TYPE_CHECKING, Final
 import numpy as np
 import polars as pl
 from numpy.typing import ArrayLike, NDArray
-from scipy import stats
 
 from triage._typing import CRITERIA, Criterion
 from triage.core.binning import bin_index, fine_index, quantile_edges, quantiles_from_counts
+from triage.core.distributions import norm_sf
 from triage.core.moments import StreamMoments, pool_groups
 from triage.core.residual_tests import (
     BreuschPaganAccumulator,
@@ -980,7 +980,7 @@ def _flags(
     flags: list[Flag] = []
     if counts.studentized:
         # Two-sided normal tail beyond 3: what chance alone would give with normal errors.
-        expected = n * 2.0 * float(stats.norm.sf(STUDENTIZED_LIMIT))
+        expected = n * 2.0 * norm_sf(STUDENTIZED_LIMIT)
         flags.append(
             Flag(
                 "large-studentized",

@@ -30,9 +30,9 @@ from typing import Final, Self
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy import stats
 from scipy.linalg import lapack, solve_triangular
 
+from triage.core.distributions import f_sf, t_ppf, t_sf
 from triage.errors import DataError, SpecError
 
 __all__ = ["CHOLQR_MAX_CONDITION", "RANK_TOLERANCE", "LinearFit", "QRAccumulator"]
@@ -665,8 +665,8 @@ class QRAccumulator:
             se_k = np.sqrt(scale * np.einsum("ij,ij->j", v, v))
             with np.errstate(divide="ignore", invalid="ignore"):
                 t_k = reported / se_k
-            p_k = 2.0 * stats.t.sf(np.abs(t_k), df_resid)
-            half_width = stats.t.ppf(0.975, df_resid) * se_k
+            p_k = 2.0 * t_sf(np.abs(t_k), df_resid)
+            half_width = t_ppf(0.975, df_resid) * se_k
             adj_r2 = (
                 1.0 - (n - int(self._has_intercept)) / df_resid * (rss / tss) if tss > 0 else nan
             )
@@ -674,7 +674,7 @@ class QRAccumulator:
                 f, f_p = nan, nan
             else:
                 f = (ess / df_model) / scale if scale > 0.0 else math.inf
-                f_p = float(stats.f.sf(f, df_model, df_resid))
+                f_p = f_sf(f, df_model, df_resid)
             # statsmodels' WLS log-likelihood (regression/linear_model.py, WLS.loglike).
             half_n = n / 2.0
             loglik = (

@@ -18,8 +18,8 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy import stats
 
+from triage.core.distributions import chi2_sf, f_sf
 from triage.core.lsq import QRAccumulator
 
 if TYPE_CHECKING:
@@ -87,7 +87,7 @@ class BreuschPaganAccumulator:
         if df < 1 or aux.df_resid < 1 or not math.isfinite(aux.r2):
             return ResidualTest(math.nan, (float(df),), math.nan)
         lm = aux.n * aux.r2
-        return ResidualTest(lm, (float(df),), float(stats.chi2.sf(lm, df)))
+        return ResidualTest(lm, (float(df),), chi2_sf(lm, df))
 
 
 class ResetAccumulator:
@@ -142,7 +142,7 @@ class ResetAccumulator:
             f = float(b @ np.linalg.solve(cov, b)) / 2.0
         except np.linalg.LinAlgError:
             return ResidualTest(math.nan, (2.0, df2), math.nan)
-        return ResidualTest(f, (2.0, df2), float(stats.f.sf(f, 2.0, df2)))
+        return ResidualTest(f, (2.0, df2), f_sf(f, 2.0, df2))
 
 
 def jarque_bera(moments: StreamMoments) -> ResidualTest:
@@ -151,7 +151,7 @@ def jarque_bera(moments: StreamMoments) -> ResidualTest:
     if not (math.isfinite(skew) and math.isfinite(kurt)):
         return _NAN_TEST_CHI2_2
     jb = moments.n / 6.0 * (skew * skew + (kurt - 3.0) ** 2 / 4.0)
-    return ResidualTest(jb, (2.0,), float(stats.chi2.sf(jb, 2)))
+    return ResidualTest(jb, (2.0,), chi2_sf(jb, 2))
 
 
 class DurbinWatsonAccumulator:
