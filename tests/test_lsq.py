@@ -524,3 +524,19 @@ def test_lsq_fit_is_silent_on_perfect_fit(rng: np.random.Generator) -> None:
     # Oracle: the exact line (closed form, intercept 2 and slope 0.5).
     np.testing.assert_allclose(fit.coef, [2.0, 0.5], rtol=1e-13)
     assert f"{fit.r2:.6f}" == "1.000000"
+
+
+@pytest.mark.parametrize("n_cols", [3, 10, 31])
+def test_lsq_cholesky_qr2_matches_householder_on_well_conditioned_blocks(
+    rng: np.random.Generator, n_cols: int
+) -> None:
+    # numpy's Householder QR (LAPACK dgeqrf) as oracle: the fast CholeskyQR2 route (explicit
+    # inverse below INVERSE_MAX_CONDITION) must give the same R to near machine precision.
+    from triage.core.lsq import _cholesky_qr2_r
+
+    z = rng.normal(size=(20_000, n_cols)) * rng.uniform(0.1, 1e3, size=n_cols)
+    z[:, 0] = 1.0
+    fast = _cholesky_qr2_r(z)
+    assert fast is not None
+    oracle = householder_r(z)
+    np.testing.assert_allclose(fast, oracle, rtol=0, atol=1e-12 * np.abs(oracle).max())
