@@ -438,6 +438,15 @@ def render_worst_rows(rows: Sequence[Any], *, criterion: Criterion, width: int =
     return f"{rule(title, width)}\n{body}"
 
 
+def _zero_if_noise(value: float, scale: float) -> float:
+    """Show a value that is rounding noise beside `scale` (under 1e-9 of it) as 0.
+
+    A column that is also a term gets mean residuals of exactly zero in exact arithmetic;
+    printing them as 3.5e-15 would suggest a finding where there is none.
+    """
+    return 0.0 if abs(value) <= 1e-9 * abs(scale) else value
+
+
 def render_segments(
     column: str,
     levels: Sequence[Any],
@@ -468,9 +477,9 @@ def render_segments(
         [
             lv.level,
             format_count(lv.n),
-            format_number(lv.mean_resid),
+            format_number(_zero_if_noise(lv.mean_resid, lv.rmse)),
             format_number(lv.rmse),
-            format_number(lv.t, digits=3),
+            format_number(_zero_if_noise(lv.t, 1.0), digits=3),
         ]
         for lv in levels
     ]

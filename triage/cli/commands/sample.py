@@ -62,6 +62,10 @@ def register(subparsers: Any) -> None:
     parser.add_argument(
         "--seed", type=_seed, default=0, metavar="S", help="scenario seed (default 0)"
     )
+    parser.add_argument(
+        "--row-group-rows", type=_positive_int, default=131_072, metavar="N",
+        help="rows per Parquet row group (default 131,072); sampling picks whole groups",
+    )
     parser.add_argument("--force", action="store_true", help="replace PATH if it exists")
     parser.set_defaults(handler=run)
 
@@ -79,6 +83,7 @@ def run(args: argparse.Namespace) -> int:
             args.out,
             n_rows=args.rows,
             seed=args.seed,
+            row_group_rows=args.row_group_rows,
             force=args.force,
             on_progress=lambda done, _total: tracker.advance(done),
         )
