@@ -6,6 +6,7 @@ import argparse
 import importlib
 import sys
 from collections.abc import Sequence
+from typing import NoReturn
 
 from triage import __version__
 from triage.errors import TriageError
@@ -14,9 +15,17 @@ COMMANDS: tuple[str, ...] = ("fit", "report", "export", "compare", "sample", "op
 """Subcommands, each a module in `triage.cli.commands` with `register(subparsers)`."""
 
 
+class _Parser(argparse.ArgumentParser):
+    """An argument parser that reports a usage error in one line (exit 2), not a usage block."""
+
+    def error(self, message: str) -> NoReturn:
+        """Print `message` with a pointer to `--help` and exit with code 2."""
+        self.exit(2, f"{self.prog}: {message}; see `{self.prog} --help`\n")
+
+
 def build_parser() -> argparse.ArgumentParser:
     """Build the argument parser with every subcommand registered."""
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="triage",
         description="Find where and why a least-squares model fits badly, on tables of any size.",
         epilog="`triage DATA` with no command opens the terminal app.",

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+from collections.abc import Callable
 from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:
@@ -14,18 +15,38 @@ DEFAULT_SAMPLE_ROWS = 200_000
 """Rows in the default sample; `--rows all` streams every row instead."""
 
 
+def integer_option(name: str, *, minimum: int) -> Callable[[str], int]:
+    """Return an argparse `type` that reads an integer of at least `minimum` for option `name`.
+
+    Digit separators `_` and `,` are allowed (`--rows 2,000,000`). Every such option's
+    message comes from here: what was expected and what was received.
+    """
+    expected = {0: "a non-negative integer", 1: "a positive integer"}.get(
+        minimum, f"an integer of at least {minimum}"
+    )
+
+    def parse(text: str) -> int:
+        try:
+            value = int(text.replace("_", "").replace(",", ""))
+        except ValueError:
+            value = minimum - 1
+        if value < minimum:
+            msg = f"`{name}` must be {expected}, got `{text}`"
+            raise argparse.ArgumentTypeError(msg)
+        return value
+
+    return parse
+
+
 def parse_rows(text: str) -> int | None:
     """Parse `--rows`: a positive integer, or `all` (returned as None)."""
     if text.strip().lower() == "all":
         return None
     try:
-        value = int(text.replace("_", "").replace(",", ""))
-    except ValueError:
-        value = 0
-    if value <= 0:
+        return integer_option("--rows", minimum=1)(text)
+    except argparse.ArgumentTypeError:
         msg = f"`--rows` must be a positive integer or `all`, got `{text}`"
-        raise argparse.ArgumentTypeError(msg)
-    return value
+        raise argparse.ArgumentTypeError(msg) from None
 
 
 def add_source_options(parser: argparse.ArgumentParser) -> None:
@@ -84,7 +105,12 @@ def add_model_options(parser: argparse.ArgumentParser, *, terms_repeatable: bool
         metavar="COL=LEVEL",
         help="reference level of a categorical column (default: its most frequent level)",
     )
-    group.add_argument("--max-levels", type=int, default=50, help="cap on levels of a category")
+    group.add_argument(
+        "--max-levels",
+        type=integer_option("--max-levels", minimum=2),
+        default=50,
+        help="cap on levels of a category (default 50)",
+    )
     group.add_argument(
         "--drop-invalid",
         action="store_true",
@@ -102,7 +128,12 @@ def add_row_options(parser: argparse.ArgumentParser) -> None:
         metavar="N|all",
         help=f"sample about N rows (default {DEFAULT_SAMPLE_ROWS:,}) or stream `all` rows",
     )
-    group.add_argument("--seed", type=int, default=0, help="seed of the sample (default 0)")
+    group.add_argument(
+        "--seed",
+        type=integer_option("--seed", minimum=0),
+        default=0,
+        help="seed of the sample (default 0)",
+    )
     group.add_argument(
         "--sample",
         choices=("groups", "uniform"),

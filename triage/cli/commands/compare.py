@@ -12,19 +12,8 @@ from triage.cli.options import (
     add_model_options,
     add_row_options,
     add_source_options,
+    integer_option,
 )
-
-
-def _folds(text: str) -> int:
-    """Parse `--folds`: an integer of at least 2."""
-    try:
-        value = int(text)
-    except ValueError:
-        value = 0
-    if value < 2:
-        msg = f"`--folds` must be an integer of at least 2, got `{text}`"
-        raise argparse.ArgumentTypeError(msg)
-    return value
 
 
 def register(subparsers: Any) -> None:
@@ -43,7 +32,7 @@ def register(subparsers: Any) -> None:
     group = add_holdout_options(parser)
     group.add_argument(
         "--folds",
-        type=_folds,
+        type=integer_option("--folds", minimum=2),
         default=5,
         metavar="K",
         help="folds of the K-fold RMSE on the sample (default 5)",

@@ -7,7 +7,12 @@ import sys
 from typing import Any
 
 from triage.cli.commands.report import add_diagnostics_options, segment_columns
-from triage.cli.options import add_model_options, add_row_options, add_source_options
+from triage.cli.options import (
+    add_model_options,
+    add_row_options,
+    add_source_options,
+    integer_option,
+)
 
 
 def register(subparsers: Any) -> None:
@@ -26,7 +31,12 @@ def register(subparsers: Any) -> None:
     add_row_options(parser)
     add_diagnostics_options(parser)
     what = parser.add_mutually_exclusive_group(required=True)
-    what.add_argument("--worst", type=int, metavar="K", help="export the K worst rows")
+    what.add_argument(
+        "--worst",
+        type=integer_option("--worst", minimum=1),
+        metavar="K",
+        help="export the K worst rows",
+    )
     what.add_argument("--all", action="store_true", help="export diagnostics for every row")
     parser.add_argument(
         "--by-criterion",
@@ -45,11 +55,7 @@ def run(args: argparse.Namespace) -> int:
     from triage.cli.progress import StderrProgress
     from triage.data.export import PERSONAL_DATA_NOTICE, check_output_path
     from triage.engine.export import export_all_rows, export_worst_rows
-    from triage.errors import SpecError
 
-    if args.worst is not None and args.worst <= 0:
-        msg = f"`--worst` must be a positive integer, got `{args.worst}`"
-        raise SpecError(msg)
     source = open_source_from_args(args)
     spec = spec_from_args(args, source)
     check_output_path(args.out, force=args.force, protected=(*source.files, source.path))

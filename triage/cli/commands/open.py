@@ -25,15 +25,23 @@ def register(subparsers: Any) -> None:
     add_row_options(parser)
     keys = parser.add_argument_group("keys")
     keys.add_argument(
-        "--keyset", default=None, metavar="NAME",
+        "--keyset",
+        default=None,
+        metavar="NAME",
         help="a shipped alternative keymap laid over the default (e.g. `fkeys`)",
     )
     keys.add_argument(
-        "--keymap", type=Path, default=None, metavar="FILE",
+        "--keymap",
+        type=Path,
+        default=None,
+        metavar="FILE",
         help="a TOML file of binding-id = key, applied after the user's keymap",
     )
     parser.add_argument(
-        "--top-k", type=int, default=50, metavar="K",
+        "--top-k",
+        type=int,
+        default=50,
+        metavar="K",
         help="rows kept in each worst-rows list (default 50)",
     )
     parser.set_defaults(handler=run)

@@ -8,13 +8,24 @@ import shutil
 import sys
 from typing import Any
 
-from triage.cli.options import add_model_options, add_row_options, add_source_options
+from triage.cli.options import (
+    add_model_options,
+    add_row_options,
+    add_source_options,
+    integer_option,
+)
 
 
 def add_diagnostics_options(parser: argparse.ArgumentParser) -> None:
     """Add the options of pass 2 shared by `report` and `export`."""
     group = parser.add_argument_group("diagnostics")
-    group.add_argument("--top", type=int, default=10, metavar="K", help="rows per worst-rows list")
+    group.add_argument(
+        "--top",
+        type=integer_option("--top", minimum=1),
+        default=10,
+        metavar="K",
+        help="rows per worst-rows list (default 10)",
+    )
     group.add_argument(
         "--by",
         default="",
@@ -55,11 +66,7 @@ def run(args: argparse.Namespace) -> int:
     from triage.cli.options import open_source_from_args, spec_from_args
     from triage.cli.progress import StderrProgress
     from triage.engine.passes import run_report
-    from triage.errors import SpecError
 
-    if args.top <= 0:
-        msg = f"`--top` must be a positive integer, got `{args.top}`"
-        raise SpecError(msg)
     source = open_source_from_args(args)
     spec = spec_from_args(args, source)
     progress = StderrProgress()

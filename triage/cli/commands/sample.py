@@ -6,32 +6,10 @@ import argparse
 from pathlib import Path
 from typing import Any
 
+from triage.cli.options import integer_option
+
 DEFAULT_ROWS = 100_000
 """Rows written when `--rows` is not given (the size of the bundled demo file)."""
-
-
-def _positive_int(text: str) -> int:
-    """Parse `--rows`: a positive integer, `_` or `,` allowed as digit separators."""
-    try:
-        value = int(text.replace("_", "").replace(",", ""))
-    except ValueError:
-        value = 0
-    if value <= 0:
-        msg = f"`--rows` must be a positive integer, got `{text}`"
-        raise argparse.ArgumentTypeError(msg)
-    return value
-
-
-def _seed(text: str) -> int:
-    """Parse `--seed`: a non-negative integer."""
-    try:
-        value = int(text)
-    except ValueError:
-        value = -1
-    if value < 0:
-        msg = f"`--seed` must be a non-negative integer, got `{text}`"
-        raise argparse.ArgumentTypeError(msg)
-    return value
 
 
 def register(subparsers: Any) -> None:
@@ -47,7 +25,7 @@ def register(subparsers: Any) -> None:
     )
     parser.add_argument(
         "--rows",
-        type=_positive_int,
+        type=integer_option("--rows", minimum=1),
         default=DEFAULT_ROWS,
         metavar="N",
         help=f"rows to write (default {DEFAULT_ROWS:,}); memory stays flat at any size",
@@ -60,10 +38,17 @@ def register(subparsers: Any) -> None:
         help="file to write, ending in .parquet (or .pq) or .csv",
     )
     parser.add_argument(
-        "--seed", type=_seed, default=0, metavar="S", help="scenario seed (default 0)"
+        "--seed",
+        type=integer_option("--seed", minimum=0),
+        default=0,
+        metavar="S",
+        help="scenario seed (default 0)",
     )
     parser.add_argument(
-        "--row-group-rows", type=_positive_int, default=131_072, metavar="N",
+        "--row-group-rows",
+        type=integer_option("--row-group-rows", minimum=1),
+        default=131_072,
+        metavar="N",
         help="rows per Parquet row group (default 131,072); sampling picks whole groups",
     )
     parser.add_argument("--force", action="store_true", help="replace PATH if it exists")
