@@ -16,7 +16,7 @@ from triage.core.holdout import (
     random_holdout_mask,
 )
 from triage.data.base import random_keys
-from triage.errors import SpecError
+from triage.errors import DataError, SpecError
 
 
 def _design(rng: np.random.Generator, n: int, *, offset: float = 0.0) -> tuple[np.ndarray, ...]:
@@ -70,6 +70,39 @@ def test_holdout_two_halves_merged_equal_one_pass(rng):
     assert merged.r2 == pytest.approx(r2, rel=1e-10)
 
 
+@pytest.mark.parametrize("n_batches", [1, 7])
+def test_holdout_scoring_without_intercept_column_equals_numpy(rng, n_batches):
+    # A design with no intercept column: the held-out R² is still about the held-out mean.
+    x, y = _design(rng, 1_400, offset=50.0)
+    x = x[:, 1:]
+    coef = np.array([0.52, -1.45])
+    acc = HoldoutAccumulator(2)
+    for rows in np.array_split(np.arange(y.size), n_batches):
+        acc.update(x[rows], y[rows])
+    score = acc.score(coef)
+    # Oracle: numpy residuals on the same rows.
+    sse, r2, rmse = _numpy_score(x, y, coef)
+    assert score.n == y.size
+    assert score.sse == pytest.approx(sse, rel=1e-10)
+    assert score.r2 == pytest.approx(r2, rel=1e-10)
+    assert score.rmse == pytest.approx(rmse, rel=1e-10)
+
+
+def test_holdout_rejects_bad_rows(rng):
+    x, y = _design(rng, 50)
+    acc = HoldoutAccumulator(3)
+    with pytest.raises(DataError, match="held-out rows must be"):
+        acc.update(x[:, :2], y)
+    bad = y.copy()
+    bad[3] = np.nan
+    with pytest.raises(DataError, match="NaN or infinite"):
+        acc.update(x, bad)
+    with pytest.raises(SpecError, match="cannot merge held-out rows"):
+        acc.merge(HoldoutAccumulator(2))
+    # A rejected batch leaves the accumulator empty.
+    assert acc.n_rows == 0
+
+
 def test_holdout_score_treats_aliased_nan_as_zero(rng):
     x, y = _design(rng, 100)
     acc = HoldoutAccumulator(3)
@@ -90,8 +123,10 @@ def test_holdout_random_mask_does_not_depend_on_batching():
     positions = np.arange(100_000, dtype=np.int64)
     whole = random_holdout_mask(random_keys(positions, 7), 0.25)
     pieces = np.concatenate(
-        [random_holdout_mask(random_keys(positions[s : s + 999], 7), 0.25)
-         for s in range(0, positions.size, 999)]
+        [
+            random_holdout_mask(random_keys(positions[s : s + 999], 7), 0.25)
+            for s in range(0, positions.size, 999)
+        ]
     )
     np.testing.assert_array_equal(whole, pieces)
     # Binomial(100000, 0.25): SD about 137, so 5 SD is about 0.007 of the share.

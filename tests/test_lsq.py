@@ -23,6 +23,7 @@ from triage.core.lsq import (
     LinearFit,
     QRAccumulator,
     _cholesky_qr2_r,
+    fit_arrays,
     householder_r,
 )
 from triage.errors import DataError, SpecError
@@ -267,6 +268,42 @@ def test_lsq_merge_into_empty_and_of_empty(rng: np.random.Generator) -> None:
     empty.merge(full).merge(QRAccumulator(design.shape[1], has_intercept=True))
     fit = empty.finalize([f"c{j}" for j in range(design.shape[1])])
     assert digits(fit.coef, np.linalg.lstsq(design, y, rcond=None)[0]) >= 11
+
+
+def test_lsq_factor_is_the_shifted_block_factor(rng: np.random.Generator) -> None:
+    # Oracle: numpy matrix products; R'R must equal Z'Z for Z = sqrt(w) [X - m | y - m_y],
+    # with m, m_y the first batch's means (column 0, the intercept, unshifted).
+    design, y = make_data(rng, n=600)
+    weights = rng.uniform(0.5, 2.0, size=len(y))
+    acc = QRAccumulator(design.shape[1], has_intercept=True)
+    assert acc.factor is None
+    for rows in np.array_split(np.arange(len(y)), 3):
+        acc.update(design[rows], y[rows], weights[rows])
+    factor = acc.factor
+    assert factor is not None
+    expected_shift = np.append(0.0, design[:200, 1:].mean(axis=0))
+    np.testing.assert_allclose(factor.x_shift, expected_shift, rtol=1e-14)
+    assert factor.y_shift == pytest.approx(float(y[:200].mean()), rel=1e-14)
+    z = np.column_stack([design - factor.x_shift, y - factor.y_shift]) * np.sqrt(weights)[:, None]
+    np.testing.assert_allclose(factor.r.T @ factor.r, z.T @ z, rtol=1e-10, atol=1e-8)
+    np.testing.assert_array_equal(np.tril(factor.r, -1), 0.0)
+    # The accessor hands out copies: changing one leaves the accumulator as it was.
+    factor.r[:] = 0.0
+    second = acc.factor
+    assert second is not None
+    assert np.any(second.r != 0.0)
+
+
+def test_lsq_fit_arrays_equals_statsmodels_wls(rng: np.random.Generator) -> None:
+    # Oracle: statsmodels WLS on the same rows.
+    design, y = make_data(rng, n=300)
+    weights = rng.uniform(0.5, 2.0, size=len(y))
+    names = [f"c{j}" for j in range(design.shape[1])]
+    fit = fit_arrays(design, y, names, has_intercept=True, weights=weights)
+    expected = sm.WLS(y, design, weights=weights).fit()
+    assert fit.names == tuple(names)
+    assert digits(fit.coef, expected.params) >= 10
+    np.testing.assert_allclose(fit.std_error, expected.bse, rtol=1e-9)
 
 
 @settings(max_examples=40, deadline=None)

@@ -220,6 +220,16 @@ def test_source_column_projection_and_unknown_column(parquet_file: Path) -> None
         list(source.scan_batches(["depto"]))
 
 
+@pytest.mark.parametrize("bad", [0, -3, 2.5, True])
+def test_source_rejects_bad_batch_and_sample_sizes(parquet_file: Path, bad: object) -> None:
+    # Common practice (scikit-learn's parameter checks): a bool is not a count.
+    source = open_source(parquet_file)
+    with pytest.raises(SpecError, match=rf"`batch_rows` must be a positive integer, got `{bad!r}`"):
+        list(source.scan_batches(["w"], batch_rows=bad))  # type: ignore[arg-type]
+    with pytest.raises(SpecError, match=rf"`n_rows` must be a positive integer, got `{bad!r}`"):
+        source.read_sample(["w"], n_rows=bad, seed=0)  # type: ignore[arg-type]
+
+
 def _assert_same_sample(a: Sample, b: Sample) -> None:
     assert_frame_equal(a.frame, b.frame)
     assert (a.description, a.is_whole, a.warning) == (b.description, b.is_whole, b.warning)

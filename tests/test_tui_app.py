@@ -627,3 +627,96 @@ async def test_tui_stacks_at_80x24_and_tiles_at_120x40(config_home: Path, demo_f
         await pilot.resize_terminal(*SMALL)
         await pilot.pause()
         assert shown() == {"trend"}
+
+
+async def test_tui_no_color_draws_plain_charts(config_home: Path, demo_file: Path,
+                                               monkeypatch: pytest.MonkeyPatch) -> None:
+    # NO_COLOR convention (no-color.org): any non-empty value turns colour off
+    monkeypatch.setenv("NO_COLOR", "1")
+    app = build_app(demo_file, target="minutes", terms="distance_km, stops")
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        assert app.ansi_color
+        assert "\x1b[" not in (app.screen.query_one(SpreadPane).draw(76, 16) or "x\x1b[")
+        assert "\x1b[" not in (app.screen.query_one(TrendPane).draw(76, 16) or "x\x1b[")
+    monkeypatch.delenv("NO_COLOR")
+    app = build_app(demo_file, target="minutes", terms="distance_km, stops")
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        assert "\x1b[" in (app.screen.query_one(SpreadPane).draw(76, 16) or "")
+
+
+async def test_tui_command_palette_runs_a_screen_action(config_home: Path,
+                                                        demo_file: Path) -> None:
+    app = build_app(demo_file, target="minutes", terms="distance_km", sample_rows=SAMPLE_ROWS)
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        await press_id(pilot, "open-palette")
+        for char in "every row":
+            await pilot.press(char if char != " " else "space")
+        await pilot.pause(0.5)
+        await pilot.press("enter")
+        await settle(pilot)
+        screen = main_screen(app)
+        assert screen.current is not None and screen.current.is_full_pass
+
+
+# ------------------------------------------------------------------------------------------
+# the command line that opens the app
+
+
+def test_tui_cli_open_hands_options_to_the_app(
+    config_home: Path, demo_file: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from triage.cli.main import main
+    from triage.tui.app import TriageApp
+
+    opened: list[TriageApp] = []
+    monkeypatch.setattr(TriageApp, "run", lambda self: opened.append(self))
+    mine = tmp_path / "keys.toml"
+    mine.write_text('quick-fit = "z"\n', encoding="utf-8")
+    code = main([str(demo_file), "--target", "minutes", "--terms", "distance_km, depot",
+                 "--rows", "all", "--seed", "3", "--where", "hour > 8", "--keyset", "fkeys",
+                 "--keymap", str(mine), "--categorical", "hour"])
+    assert code == 0
+    settings = opened[0].settings
+    assert (settings.data, settings.target, settings.terms) == (
+        str(demo_file), "minutes", "distance_km, depot")
+    assert settings.is_full_at_start and settings.seed == 3
+    assert settings.where == "hour > 8" and settings.categorical == ("hour",)
+    assert opened[0].keymap["quick-fit"] == "z" and opened[0].keymap["pane-fit"] == "f3"
+
+
+def test_tui_cli_open_reports_a_bad_keymap_in_one_line(
+    config_home: Path, demo_file: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from triage.cli.main import main
+
+    bad = tmp_path / "bad.toml"
+    bad.write_text('pane-fitt = "F"\n', encoding="utf-8")
+    assert main(["open", str(demo_file), "--keymap", str(bad)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1
+    assert "pane-fitt" in err and "`pane-fit`" in err
+
+
+async def test_tui_open_another_file_starts_a_new_session(
+    config_home: Path, demo_file: Path, tmp_path: Path
+) -> None:
+    other = tmp_path / "other.csv"
+    pl.read_parquet(demo_file).head(500).write_csv(other)
+    app = build_app(demo_file, target="minutes", terms="distance_km", sample_rows=SAMPLE_ROWS)
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        old = main_screen(app)
+        assert old.fits
+        await press_id(pilot, "open-data")
+        app.screen.query_one("#prompt-input").value = str(other)
+        await pilot.press("enter")
+        await settle(pilot)
+        new = main_screen(app)
+        assert new is not old and not new.fits and new.draft.target is None
+        profile = new.query_one(ColumnsPane).profile
+        assert profile is not None
+        assert profile["name"].to_list() == pl.read_csv(other).columns  # oracle: polars
+

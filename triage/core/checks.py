@@ -21,7 +21,7 @@ from typing import TYPE_CHECKING, Final
 import numpy as np
 
 from triage.core.holdout import kfold_rmse
-from triage.core.lsq import QRAccumulator
+from triage.core.lsq import fit_arrays
 from triage.errors import DataError
 
 if TYPE_CHECKING:
@@ -105,20 +105,6 @@ class RobustCheck:
         return tuple(c.name for c in self.coefficients if c.is_flagged)
 
 
-def _ordinary_fit(
-    x: NDArray[np.float64],
-    y: NDArray[np.float64],
-    weights: NDArray[np.float64] | None,
-    names: Sequence[str],
-    *,
-    has_intercept: bool,
-) -> tuple[NDArray[np.float64], NDArray[np.float64], tuple[str, ...], int]:
-    accumulator = QRAccumulator(x.shape[1], has_intercept=has_intercept)
-    accumulator.update(x, y, weights)
-    fit = accumulator.finalize(names)
-    return fit.coef, fit.std_error, fit.aliased, fit.df_resid
-
-
 def huber_refit(
     x: ArrayLike,
     y: ArrayLike,
@@ -174,12 +160,11 @@ def huber_refit(
     xa = np.asarray(x, dtype=np.float64)
     ya = np.asarray(y, dtype=np.float64)
     wa = None if weights is None else np.asarray(weights, dtype=np.float64)
-    coef, std_error, aliased, df_resid = _ordinary_fit(
-        xa, ya, wa, names, has_intercept=has_intercept
-    )
-    if df_resid <= 0:
+    ordinary = fit_arrays(xa, ya, names, has_intercept=has_intercept, weights=wa)
+    aliased = ordinary.aliased
+    if ordinary.df_resid <= 0:
         msg = (
-            f"the robust refit needs residual degrees of freedom, got {df_resid} "
+            f"the robust refit needs residual degrees of freedom, got {ordinary.df_resid} "
             f"({xa.shape[0]} rows for {xa.shape[1]} columns); use more rows or fewer terms"
         )
         raise DataError(msg)
@@ -203,12 +188,12 @@ def huber_refit(
         robust[0] = (float(model.intercept_) - float(model.coef_ @ (center / spread))) * y_scale
     shifts = []
     for j in kept:
-        se = float(std_error[j])
-        shift = (robust[j] - coef[j]) / se if math.isfinite(se) and se > 0 else None
+        se = float(ordinary.std_error[j])
+        shift = (robust[j] - ordinary.coef[j]) / se if math.isfinite(se) and se > 0 else None
         shifts.append(
             CoefficientShift(
                 name=names[j],
-                ordinary=float(coef[j]),
+                ordinary=float(ordinary.coef[j]),
                 robust=float(robust[j]),
                 std_error=se,
                 shift_se=shift,
@@ -292,9 +277,7 @@ def spline_basis(values: ArrayLike, *, n_knots: int = SPLINE_KNOTS) -> NDArray[n
     from sklearn.preprocessing import SplineTransformer
 
     column = np.asarray(values, dtype=np.float64).reshape(-1, 1)
-    transformer = SplineTransformer(
-        n_knots=n_knots, degree=3, knots="quantile", include_bias=False
-    )
+    transformer = SplineTransformer(n_knots=n_knots, degree=3, knots="quantile", include_bias=False)
     basis: NDArray[np.float64] = transformer.fit_transform(column)
     return basis
 
@@ -355,9 +338,7 @@ def curvature_check(
         drop = [j for name in splines for j in linear_columns.get(name, ())]
         bases = [spline_basis(predictors[name]) for name in splines]
         design = np.hstack([np.delete(xa, drop, axis=1), *bases])
-        result = kfold_rmse(
-            design, y, weights, has_intercept=has_intercept, folds=folds, seed=seed
-        )
+        result = kfold_rmse(design, y, weights, has_intercept=has_intercept, folds=folds, seed=seed)
         if result is None:
             msg = (
                 f"the curvature check needs at least {folds} rows for {folds} folds, "

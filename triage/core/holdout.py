@@ -7,10 +7,10 @@ on earlier rows, score on later ones). The same rows are therefore held out in a
 fit on a sample and in a full pass.
 
 The coefficients are known only after the pass, so the held-out rows are scored without
-a second pass: `HoldoutAccumulator` keeps the upper-triangular factor ``R`` of the
-shifted, weighted block ``Z = sqrt(w) * [1 | X - m | y - m_y]`` over the held-out rows
-(size ``(p + 2, p + 2)``), from which the held-out error of *any* coefficient vector
-follows afterwards:
+a second pass: `HoldoutAccumulator` keeps, through a `QRAccumulator` over ``[1 | X]``, the
+upper-triangular factor ``R`` of the shifted, weighted block
+``Z = sqrt(w) * [1 | X - m | y - m_y]`` over the held-out rows (size ``(p + 2, p + 2)``),
+from which the held-out error of *any* coefficient vector follows afterwards:
 
 - residuals ``y - X b = Z v`` with ``v = [m_y - m'b, -b, 1]``, so the held-out sum of
   squared errors is ``SSE(b) = ||Z v||^2 = ||R v||^2`` (a (p + 2)-vector, no cancellation
@@ -32,7 +32,7 @@ from typing import TYPE_CHECKING, Self
 import numpy as np
 import polars as pl
 
-from triage.core.lsq import QRAccumulator, householder_r
+from triage.core.lsq import QRAccumulator, fit_arrays
 from triage.errors import DataError, SpecError
 
 if TYPE_CHECKING:
@@ -114,9 +114,7 @@ def random_holdout_mask(keys: NDArray[np.uint64], fraction: float) -> NDArray[np
     return mask
 
 
-def cut_holdout_mask(
-    values: pl.Series, cut: object
-) -> tuple[NDArray[np.bool_], NDArray[np.bool_]]:
+def cut_holdout_mask(values: pl.Series, cut: object) -> tuple[NDArray[np.bool_], NDArray[np.bool_]]:
     """Mark rows whose value is at or past `cut`, and rows whose value is known.
 
     Parameters
@@ -188,8 +186,11 @@ class HoldoutAccumulator:
 
     Notes
     -----
-    See the module docstring for the formulas. Batches are factored by Householder QR,
-    the accurate route; the held-out share is usually small, so its cost stays minor.
+    See the module docstring for the formulas. The factor is kept by a `QRAccumulator`
+    over ``[1 | X]`` with an intercept, so the held-out rows get the same shifted,
+    streaming and mergeable factorization as the fit (CholeskyQR2 per batch while well
+    conditioned, Householder otherwise). With a design that has its own intercept column,
+    that column becomes a zero column once shifted, which the factorization allows.
     """
 
     def __init__(self, n_cols: int) -> None:
@@ -197,15 +198,12 @@ class HoldoutAccumulator:
             msg = f"`n_cols` must be a positive integer, got `{n_cols}`"
             raise SpecError(msg)
         self._p = n_cols
-        self._r: NDArray[np.float64] | None = None
-        self._x_shift = np.zeros(n_cols)
-        self._y_shift = 0.0
-        self._n = 0
+        self._qr = QRAccumulator(n_cols + 1, has_intercept=True)
 
     @property
     def n_rows(self) -> int:
         """Held-out rows accumulated so far."""
-        return self._n
+        return self._qr.n_rows
 
     def update(self, x: ArrayLike, y: ArrayLike, weights: ArrayLike | None = None) -> None:
         """Add a batch of held-out design rows.
@@ -217,12 +215,12 @@ class HoldoutAccumulator:
         y : array_like of shape (n_rows,)
             Target values.
         weights : array_like of shape (n_rows,), optional
-            Positive row weights.
+            Positive, finite row weights.
 
         Raises
         ------
         DataError
-            If shapes disagree or a value is not finite.
+            If shapes disagree, a value is not finite or a weight is not positive.
         """
         xb = np.asarray(x, dtype=np.float64)
         yb = np.asarray(y, dtype=np.float64)
@@ -232,32 +230,13 @@ class HoldoutAccumulator:
                 f"(n_rows,), got {xb.shape} and {yb.shape}; build them with the fit's design"
             )
             raise DataError(msg)
-        if xb.shape[0] == 0:
-            return
-        if self._r is None:
-            # Any shift near the data works: the ones column stays in the factor.
-            self._x_shift = xb.mean(axis=0)
-            self._y_shift = float(yb.mean())
-        z = np.empty((xb.shape[0], self._p + 2))
-        z[:, 0] = 1.0
-        z[:, 1 : self._p + 1] = xb - self._x_shift
-        z[:, self._p + 1] = yb - self._y_shift
-        if weights is not None:
-            z *= np.sqrt(np.asarray(weights, dtype=np.float64))[:, np.newaxis]
-        if not np.all(np.isfinite(z)):
-            msg = "held-out rows hold a NaN or infinite value; drop them before scoring"
-            raise DataError(msg)
-        self._absorb(householder_r(z), xb.shape[0])
-
-    def _absorb(self, r_other: NDArray[np.float64], n_rows: int) -> None:
-        self._r = r_other if self._r is None else householder_r(np.vstack([self._r, r_other]))
-        self._n += n_rows
+        ones_and_x = np.empty((xb.shape[0], self._p + 1), order="F")
+        ones_and_x[:, 0] = 1.0
+        ones_and_x[:, 1:] = xb
+        self._qr.update(ones_and_x, yb, weights)
 
     def merge(self, other: HoldoutAccumulator) -> Self:
         """Add another accumulator's rows to this one (in place) and return self.
-
-        Moving column ``j`` of the other factor from its shift ``m'`` to ours ``m`` adds
-        ``(m' - m)`` times the weighted ones column, which changes only row 0 of ``R``.
 
         Parameters
         ----------
@@ -280,17 +259,7 @@ class HoldoutAccumulator:
                 f"{self._p}; both must come from the same design"
             )
             raise SpecError(msg)
-        if other._r is None:
-            return self
-        r_other = other._r.copy()
-        if self._r is None:
-            self._x_shift, self._y_shift = other._x_shift.copy(), other._y_shift
-        else:
-            delta = np.concatenate(
-                [[0.0], other._x_shift - self._x_shift, [other._y_shift - self._y_shift]]
-            )
-            r_other[0] += r_other[0, 0] * delta
-        self._absorb(r_other, other._n)
+        self._qr.merge(other._qr)
         return self
 
     def score(self, coef: ArrayLike) -> HoldoutScore:
@@ -311,14 +280,16 @@ class HoldoutAccumulator:
         if b.shape != (self._p,):
             msg = f"`coef` must hold {self._p} values, got shape {b.shape}"
             raise DataError(msg)
-        if self._r is None:
+        factor = self._qr.factor
+        if factor is None:
             return HoldoutScore(0, math.nan, math.nan, math.nan, math.nan)
-        v = np.concatenate([[self._y_shift - self._x_shift @ b], -b, [1.0]])
-        sse = float(np.sum((self._r @ v) ** 2))
-        sst = float(np.sum(self._r[1:, -1] ** 2))
-        sum_w = float(self._r[0, 0] ** 2)
+        # The ones column is unshifted (x_shift[0] = 0); the design columns follow it.
+        v = np.concatenate([[factor.y_shift - factor.x_shift[1:] @ b], -b, [1.0]])
+        sse = float(np.sum((factor.r @ v) ** 2))
+        sst = float(np.sum(factor.r[1:, -1] ** 2))
+        sum_w = float(factor.r[0, 0] ** 2)
         r2 = 1.0 - sse / sst if sst > 0.0 else math.nan
-        return HoldoutScore(self._n, sse, sst, r2, math.sqrt(sse / sum_w))
+        return HoldoutScore(self.n_rows, sse, sst, r2, math.sqrt(sse / sum_w))
 
 
 @dataclass(frozen=True)
@@ -345,7 +316,7 @@ def kfold_rmse(
     folds: int = 5,
     seed: int = 0,
 ) -> KFoldResult | None:
-    """Estimate prediction error by K-fold cross-validation, fitting with `QRAccumulator`.
+    """Estimate prediction error by K-fold cross-validation, fitting with `fit_arrays`.
 
     Parameters
     ----------
@@ -387,9 +358,9 @@ def kfold_rmse(
     names = [f"c{j}" for j in range(xa.shape[1])]
     errors = []
     for train, test in KFold(folds, shuffle=True, random_state=seed).split(xa):
-        accumulator = QRAccumulator(xa.shape[1], has_intercept=has_intercept)
-        accumulator.update(xa[train], ya[train], None if wa is None else wa[train])
-        resid = ya[test] - accumulator.finalize(names).predict(xa[test])
+        w_train = None if wa is None else wa[train]
+        fit = fit_arrays(xa[train], ya[train], names, has_intercept=has_intercept, weights=w_train)
+        resid = ya[test] - fit.predict(xa[test])
         w_test = np.ones(test.size) if wa is None else wa[test]
         errors.append(math.sqrt(float(np.sum(w_test * resid**2) / np.sum(w_test))))
     return KFoldResult(folds, tuple(errors))

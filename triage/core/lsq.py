@@ -35,7 +35,14 @@ from scipy.linalg import lapack, solve_triangular
 from triage.core.distributions import f_sf, t_ppf, t_sf
 from triage.errors import DataError, SpecError
 
-__all__ = ["CHOLQR_MAX_CONDITION", "RANK_TOLERANCE", "LinearFit", "QRAccumulator"]
+__all__ = [
+    "CHOLQR_MAX_CONDITION",
+    "RANK_TOLERANCE",
+    "AccumulatedFactor",
+    "LinearFit",
+    "QRAccumulator",
+    "fit_arrays",
+]
 
 FloatArray = NDArray[np.float64]
 
@@ -344,8 +351,9 @@ class LinearFit:
     _factor: _ShiftedFactor = field(repr=False)
     """Triangular factor and shift, for predictions, hat values and robust covariances."""
 
-    def _check_x(self, x: ArrayLike, where: str) -> FloatArray:
-        return _as_float_matrix(x, len(self.names), where)
+    def _shifted(self, x: ArrayLike, where: str) -> FloatArray:
+        """Check ``x`` (`where` names the public method in errors); shift its kept columns."""
+        return self._factor.to_shifted(_as_float_matrix(x, len(self.names), where))
 
     def to_shifted(self, x: ArrayLike) -> FloatArray:
         """Return design rows as the accumulator factored them: shifted, aliased columns dropped.
@@ -367,7 +375,7 @@ class LinearFit:
         DataError
             If ``x`` does not have ``p`` columns.
         """
-        return self._factor.to_shifted(self._check_x(x, "to_shifted"))
+        return self._shifted(x, "to_shifted")
 
     def predict(self, x: ArrayLike) -> FloatArray:
         """Return fitted values for design rows; aliased columns contribute nothing.
@@ -388,7 +396,7 @@ class LinearFit:
         DataError
             If ``x`` does not have ``p`` columns.
         """
-        shifted = self._factor.to_shifted(self._check_x(x, "predict"))
+        shifted = self._shifted(x, "predict")
         fitted: FloatArray = shifted @ self._factor.shifted_coef + self._factor.y_shift
         return fitted
 
@@ -413,7 +421,7 @@ class LinearFit:
         DataError
             If ``x`` does not have ``p`` columns.
         """
-        shifted = self._factor.to_shifted(self._check_x(x, "leverage"))
+        shifted = self._shifted(x, "leverage")
         v = solve_triangular(self._factor.r, shifted.T, trans="T", check_finite=False)
         h: FloatArray = np.einsum("ij,ij->j", v, v)
         if weights is not None:
@@ -462,6 +470,19 @@ def _embed(small: FloatArray, kept: NDArray[np.intp], p: int) -> FloatArray:
     return full
 
 
+@dataclass(frozen=True, eq=False)
+class AccumulatedFactor:
+    """What a `QRAccumulator` holds so far: the triangular factor and the shift it is taken in."""
+
+    r: FloatArray
+    """Upper-triangular ``R``, shape (p + 1, p + 1), non-negative diagonal, with ``R'R = Z'Z``
+    for ``Z = sqrt(w) * [X - m | y - m_y]``, whose column 0 is ``sqrt(w)`` with an intercept."""
+    x_shift: FloatArray
+    """``m``: shift of every design column, shape (p,); 0 for the intercept and without one."""
+    y_shift: float
+    """``m_y``: shift of the target (0 without an intercept)."""
+
+
 class QRAccumulator:
     """Streaming, mergeable least-squares accumulator (pass 1).
 
@@ -506,6 +527,17 @@ class QRAccumulator:
     def n_rows(self) -> int:
         """Rows accumulated so far."""
         return self._n
+
+    @property
+    def factor(self) -> AccumulatedFactor | None:
+        """A copy of the factor and shift accumulated so far, or None before the first row.
+
+        For callers that need more of the rows than a fit, such as the held-out error of
+        any coefficient vector (`triage.core.holdout.HoldoutAccumulator`).
+        """
+        if self._r is None:
+            return None
+        return AccumulatedFactor(self._r.copy(), self._x_shift.copy(), self._y_shift)
 
     def update(self, x: ArrayLike, y: ArrayLike, weights: ArrayLike | None = None) -> None:
         """Add a batch of design rows.
@@ -745,6 +777,43 @@ class QRAccumulator:
             is_weighted=self._is_weighted,
             _factor=factor,
         )
+
+
+def fit_arrays(
+    x: ArrayLike,
+    y: ArrayLike,
+    names: Sequence[str],
+    *,
+    has_intercept: bool,
+    weights: ArrayLike | None = None,
+) -> LinearFit:
+    """Fit rows held in memory in one batch: `QRAccumulator` update then finalize.
+
+    Parameters
+    ----------
+    x : array_like of shape (n_rows, p)
+        Design rows (the intercept column first when `has_intercept`).
+    y : array_like of shape (n_rows,)
+        Target.
+    names : sequence of str
+        One name per design column.
+    has_intercept : bool
+        Whether column 0 of `x` is the intercept.
+    weights : array_like of shape (n_rows,), optional
+        Positive, finite row weights.
+
+    Returns
+    -------
+    LinearFit
+
+    Raises
+    ------
+    DataError, SpecError
+        As `QRAccumulator.update` and `QRAccumulator.finalize`.
+    """
+    accumulator = QRAccumulator(len(names), has_intercept=has_intercept)
+    accumulator.update(x, y, weights)
+    return accumulator.finalize(names)
 
 
 def _scaled_condition_number(factor: _ShiftedFactor) -> float:

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import abc
 import contextlib
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Final, Protocol
@@ -243,10 +243,85 @@ def random_keys(positions: np.ndarray, seed: int) -> np.ndarray:
         return z ^ (z >> np.uint64(31))
 
 
+def check_count(
+    name: str,
+    value: object,
+    *,
+    minimum: int = 1,
+    error: type[TriageError] = SpecError,
+    advice: str = "",
+) -> None:
+    """Raise unless `value` is an integer (not a bool) of at least `minimum`.
+
+    Parameters
+    ----------
+    name : str
+        The parameter, as the message names it.
+    value : object
+        What was received.
+    minimum : int, default=1
+        Smallest allowed value: 1 reads "a positive integer", 0 "a non-negative integer".
+    error : type of TriageError, default=SpecError
+        The error raised.
+    advice : str, optional
+        Appended to the message, e.g. ``"; ask for at least one row"``.
+
+    Raises
+    ------
+    TriageError
+        Of type `error`, naming `name` and the value received.
+    """
+    if isinstance(value, bool) or not isinstance(value, int) or value < minimum:
+        allowed = {0: "a non-negative integer", 1: "a positive integer"}.get(
+            minimum, f"an integer of at least {minimum}"
+        )
+        msg = f"`{name}` must be {allowed}, got `{value!r}`{advice}"
+        raise error(msg)
+
+
+def offsets_from_sizes(sizes: Sequence[int] | np.ndarray) -> np.ndarray:
+    """Start position of each block, then the total row count, from the blocks' sizes.
+
+    Parameters
+    ----------
+    sizes : sequence of int
+        Rows per block, in source order.
+
+    Returns
+    -------
+    ndarray of int64
+        ``len(sizes) + 1`` values starting at 0.
+    """
+    return np.concatenate([[0], np.cumsum(sizes, dtype=np.int64)]).astype(np.int64)
+
+
+def number_record_batches(
+    record_batches: Iterable[pa.RecordBatch], schema: dict[str, pl.DataType]
+) -> Iterator[pl.DataFrame]:
+    """Turn consecutive record batches from the start of a source into frames with positions.
+
+    Parameters
+    ----------
+    record_batches : iterable of pyarrow.RecordBatch
+        Every row of the source in order, from position 0.
+    schema : dict of str to DataType
+        The source's polars types (see `conform`).
+
+    Yields
+    ------
+    DataFrame
+        `ROW_INDEX` then the batch's columns.
+    """
+    start = 0
+    for record_batch in record_batches:
+        n = record_batch.num_rows
+        frame = conform(pl.DataFrame(record_batch), schema)
+        yield with_positions(frame, np.arange(start, start + n, dtype=np.int64))
+        start += n
+
+
 def _check_sample_args(n_rows: int, design: str) -> None:
-    if isinstance(n_rows, bool) or not isinstance(n_rows, int) or n_rows < 1:
-        msg = f"`n_rows` must be a positive integer, got `{n_rows!r}`"
-        raise SpecError(msg)
+    check_count("n_rows", n_rows)
     if design not in ("groups", "uniform"):
         msg = f"`design` must be `groups` or `uniform`, got `{design!r}`"
         raise SpecError(msg)
@@ -365,9 +440,7 @@ class BlockSource(abc.ABC):
             If the source cannot be read.
         """
         names = self._check_columns(columns)
-        if isinstance(batch_rows, bool) or not isinstance(batch_rows, int) or batch_rows < 1:
-            msg = f"`batch_rows` must be a positive integer, got `{batch_rows!r}`"
-            raise SpecError(msg)
+        check_count("batch_rows", batch_rows)
         extra = self._filter_only_columns(names, where)
         rows_read = 0
         for frame in self._scan_raw(names + extra, batch_rows):

@@ -12,7 +12,8 @@ from typing import Final
 import numpy as np
 import polars as pl
 
-from triage.data.base import ROW_INDEX, BlockSource, block_positions, collect_batches, reading
+from triage.core.design import ROW_INDEX
+from triage.data.base import BlockSource, block_positions, collect_batches, reading
 
 _INFER_ROWS: Final[int] = 10_000
 """Rows polars looks at to guess column types (its default of 100 misses late decimals)."""

@@ -11,7 +11,15 @@ import polars as pl
 import pyarrow as pa
 import pyarrow.ipc as ipc
 
-from triage.data.base import BlockSource, block_positions, conform, reading, with_positions
+from triage.data.base import (
+    BlockSource,
+    block_positions,
+    conform,
+    number_record_batches,
+    offsets_from_sizes,
+    reading,
+    with_positions,
+)
 
 
 class IpcSource(BlockSource):
@@ -55,19 +63,15 @@ class IpcSource(BlockSource):
 
     @functools.cached_property
     def _offsets(self) -> np.ndarray:
-        sizes = [batch.num_rows for batch in self._batches(None, [])]
-        return np.concatenate([[0], np.cumsum(sizes, dtype=np.int64)]).astype(np.int64)
+        return offsets_from_sizes([batch.num_rows for batch in self._batches(None, [])])
 
     def _scan_raw(self, columns: list[str], batch_rows: int) -> Iterator[pl.DataFrame]:
-        schema = self.schema()
-        start = 0
-        for record_batch in self._batches(None, columns):
-            for offset in range(0, record_batch.num_rows, batch_rows):
-                piece = record_batch.slice(offset, batch_rows)
-                n = piece.num_rows
-                frame = conform(pl.DataFrame(piece), schema)
-                yield with_positions(frame, np.arange(start, start + n, dtype=np.int64))
-                start += n
+        pieces = (
+            record_batch.slice(offset, batch_rows)
+            for record_batch in self._batches(None, columns)
+            for offset in range(0, record_batch.num_rows, batch_rows)
+        )
+        yield from number_record_batches(pieces, self.schema())
 
     def _block_offsets(self, n_rows: int | None) -> np.ndarray:
         return self._offsets

@@ -16,6 +16,8 @@ from triage.data.base import (
     block_positions,
     collect_batches,
     conform,
+    number_record_batches,
+    offsets_from_sizes,
     reading,
     with_positions,
 )
@@ -43,7 +45,7 @@ class ParquetFileSource(BlockSource):
         with reading(path, self._kind):
             self._metadata = pq.read_metadata(path)
         sizes = [self._metadata.row_group(i).num_rows for i in range(self._metadata.num_row_groups)]
-        self._offsets = np.concatenate([[0], np.cumsum(sizes, dtype=np.int64)]).astype(np.int64)
+        self._offsets = offsets_from_sizes(sizes)
         self.schema()  # fail now, not in the middle of a pass, if polars cannot type it
 
     @property
@@ -62,13 +64,9 @@ class ParquetFileSource(BlockSource):
 
     def _scan_raw(self, columns: list[str], batch_rows: int) -> Iterator[pl.DataFrame]:
         schema = self.schema()
-        start = 0
         with reading(self._path, self._kind):
-            for record_batch in self._open().iter_batches(batch_size=batch_rows, columns=columns):
-                n = record_batch.num_rows
-                frame = conform(pl.DataFrame(record_batch), schema)
-                yield with_positions(frame, np.arange(start, start + n, dtype=np.int64))
-                start += n
+            record_batches = self._open().iter_batches(batch_size=batch_rows, columns=columns)
+            yield from number_record_batches(record_batches, schema)
 
     def _block_offsets(self, n_rows: int | None) -> np.ndarray:
         return self._offsets
@@ -140,7 +138,7 @@ class ParquetDatasetSource(BlockSource):
             with reading(file, self._kind):
                 metadata = pq.read_metadata(file)
             sizes.extend(metadata.row_group(i).num_rows for i in range(metadata.num_row_groups))
-        return np.concatenate([[0], np.cumsum(sizes, dtype=np.int64)]).astype(np.int64)
+        return offsets_from_sizes(sizes)
 
     def _scan_raw(self, columns: list[str], batch_rows: int) -> Iterator[pl.DataFrame]:
         query = (

@@ -35,6 +35,7 @@ import polars as pl
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from triage.data.base import check_count
 from triage.errors import DataError, ExportError
 
 SCENARIO_SCHEMA: Final = pl.Schema(
@@ -199,12 +200,8 @@ class PlantedRows:
 
 
 def _check_size(n_rows: int, seed: int) -> None:
-    if isinstance(n_rows, bool) or not isinstance(n_rows, int) or n_rows < 1:
-        msg = f"`n_rows` must be a positive integer, got `{n_rows!r}`; ask for at least one row"
-        raise DataError(msg)
-    if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
-        msg = f"`seed` must be a non-negative integer, got `{seed!r}`"
-        raise DataError(msg)
+    check_count("n_rows", n_rows, error=DataError, advice="; ask for at least one row")
+    check_count("seed", seed, minimum=0, error=DataError)
 
 
 def _planted_count(n_rows: int, per_100k: int) -> int:
@@ -409,9 +406,7 @@ def iter_scenario(
     planted_positions : where the gross errors and the long-haul rows sit.
     """
     _check_size(n_rows, seed)
-    if isinstance(block_rows, bool) or not isinstance(block_rows, int) or block_rows < 1:
-        msg = f"`block_rows` must be a positive integer, got `{block_rows!r}`"
-        raise DataError(msg)
+    check_count("block_rows", block_rows, error=DataError)
     planted = planted_positions(n_rows, seed=seed)
     long_haul = _draw_long_haul(planted, seed, n_rows)
     cached_index = -1
@@ -519,13 +514,7 @@ def write_scenario(
     target = Path(path)
     fmt = scenario_format(target)
     _check_size(n_rows, seed)
-    if (
-        isinstance(row_group_rows, bool)
-        or not isinstance(row_group_rows, int)
-        or row_group_rows < 1
-    ):
-        msg = f"`row_group_rows` must be a positive integer, got `{row_group_rows!r}`"
-        raise DataError(msg)
+    check_count("row_group_rows", row_group_rows, error=DataError)
     if target.exists() and not force:
         msg = f"`{target}` already exists; choose another name or pass `--force` to replace it"
         raise ExportError(msg)

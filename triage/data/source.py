@@ -18,7 +18,8 @@ import os
 from pathlib import Path
 from typing import Final
 
-from triage.data.base import ROW_INDEX, Batch, BlockSource, Sample, Source
+from triage.core.design import ROW_INDEX
+from triage.data.base import Batch, BlockSource, Sample, Source
 from triage.data.delimited import CsvOptions, CsvSource
 from triage.data.ipc import IpcSource
 from triage.data.parquet import ParquetDatasetSource, ParquetFileSource

@@ -30,7 +30,7 @@ class TriageCommands(Provider):
         return list(found.values())
 
     async def _run(self, active: ActiveBinding) -> None:
-        await active.node.run_action(active.binding.action)
+        await self.app.run_action(active.binding.action, active.node)
 
     async def discover(self) -> Hits:
         """List every command when nothing is typed yet."""

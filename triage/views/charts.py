@@ -168,19 +168,24 @@ def _position(x_mean: float, lo: float, hi: float) -> float:
     return lo if math.isfinite(lo) else hi
 
 
+_PLOTTED_FIELDS: Final = ("lo", "hi", "mean_resid", "q10", "q90")
+"""Bin fields `render_binned` draws or sizes its axes by."""
+
+
 def _bin_arrays(bins: Sequence[Any]) -> dict[str, NDArray[np.float64]]:
-    """Collect the plotted fields of non-empty bins into arrays keyed by field name."""
+    """Collect the plotted fields of non-empty bins into arrays keyed by field name.
+
+    Keys are `_PLOTTED_FIELDS` plus ``x``, where each bin is drawn.
+    """
     kept = [b for b in bins if int(b.n) > 0 and math.isfinite(float(b.mean_resid))]
-    return {
-        "x": np.array(
-            [_position(float(b.x_mean), float(b.lo), float(b.hi)) for b in kept], dtype=np.float64
-        ),
-        "lo": np.array([float(b.lo) for b in kept], dtype=np.float64),
-        "hi": np.array([float(b.hi) for b in kept], dtype=np.float64),
-        "mean": np.array([float(b.mean_resid) for b in kept], dtype=np.float64),
-        "q10": np.array([float(b.q10) for b in kept], dtype=np.float64),
-        "q90": np.array([float(b.q90) for b in kept], dtype=np.float64),
+    arrays = {
+        name: np.array([float(getattr(b, name)) for b in kept], dtype=np.float64)
+        for name in _PLOTTED_FIELDS
     }
+    arrays["x"] = np.array(
+        [_position(float(b.x_mean), float(b.lo), float(b.hi)) for b in kept], dtype=np.float64
+    )
+    return arrays
 
 
 def render_binned(
@@ -223,11 +228,11 @@ def render_binned(
     if width < _MIN_WIDTH or height < _MIN_HEIGHT:
         return _note(f"{title}: enlarge to see", width, height)
     arrays = _bin_arrays(bins)
-    x = arrays["x"]
+    x, mean = arrays["x"], arrays["mean_resid"]
     if x.size == 0:
         return _note(f"{title}: no rows to draw", width, height)
     band_ok = np.isfinite(arrays["q10"]) & np.isfinite(arrays["q90"])
-    values = np.concatenate([arrays["mean"], arrays["q10"][band_ok], arrays["q90"][band_ok], [0]])
+    values = np.concatenate([mean, arrays["q10"][band_ok], arrays["q90"][band_ok], [0]])
     y_lo, y_hi = float(values.min()), float(values.max())
     pad = 0.05 * (y_hi - y_lo) if y_hi > y_lo else 1.0
     finite_edges = np.concatenate([arrays["lo"], arrays["hi"]])
@@ -241,12 +246,9 @@ def render_binned(
             band_color = _BAND_COLOR if color else None
             plt.plot(xb, arrays["q90"][band_ok].tolist(), marker="dot", color=band_color)
             plt.plot(xb, arrays["q10"][band_ok].tolist(), marker="dot", color=band_color)
-        plt.plot(
-            x.tolist(), arrays["mean"].tolist(), marker="hd", color=_MEAN_COLOR if color else None
-        )
-        plt.scatter(
-            x.tolist(), arrays["mean"].tolist(), marker="●", color=_MEAN_COLOR if color else None
-        )
+        mean_color = _MEAN_COLOR if color else None
+        plt.plot(x.tolist(), mean.tolist(), marker="hd", color=mean_color)
+        plt.scatter(x.tolist(), mean.tolist(), marker="●", color=mean_color)
         plt.title(title)
         plt.xlabel(f"{x_label}   (● mean residual, dotted: 10%-90% of residuals)")
         plt.ylim(y_lo - pad, y_hi + pad)

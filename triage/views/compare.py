@@ -10,7 +10,7 @@ import textwrap
 from typing import TYPE_CHECKING, Any, Final
 
 from triage.views.format import NA, format_count, format_number, format_p
-from triage.views.text import Align, render_data_summary, rule, table
+from triage.views.text import Align, join_sections, render_data_summary, rule, table
 
 if TYPE_CHECKING:
     from triage.core.checks import CurvatureCheck, RobustCheck
@@ -35,6 +35,11 @@ _COLUMNS: Final[tuple[tuple[str, str, Criterion | None], ...]] = (
 def _wrap(text: str, width: int) -> str:
     """Wrap a sentence to `width` characters, continuation lines indented by two spaces."""
     return textwrap.fill(text, width=width, subsequent_indent="  ", break_on_hyphens=False)
+
+
+def _title(title: str, label: str) -> str:
+    """Return a section title, followed by ``: label`` when a model label is given."""
+    return f"{title}: {label}" if label else title
 
 
 def _digits(field: str) -> int:
@@ -161,9 +166,8 @@ def render_robust_check(check: RobustCheck, *, label: str = "", width: int = 100
         for c in check.coefficients
     ]
     align: list[Align] = ["<", ">", ">", ">", "<"]
-    title = f"robust refit (Huber, on the sample){': ' + label if label else ''}"
     lines = [
-        rule(title, width),
+        rule(_title("robust refit (Huber, on the sample)", label), width),
         table(headers, rows, align=align, width=width),
         _wrap(
             f"{format_count(check.n_downweighted)} of {format_count(check.n)} rows were "
@@ -209,9 +213,8 @@ def render_curvature_check(check: CurvatureCheck, *, label: str = "", width: int
         for p in check.predictors
     ]
     align: list[Align] = ["<", ">", ">", ">", ">", "<"]
-    title = f"curvature check ({check.folds}-fold, on the sample){': ' + label if label else ''}"
     lines = [
-        rule(title, width),
+        rule(_title(f"curvature check ({check.folds}-fold, on the sample)", label), width),
         f"K-fold RMSE of the model as written: {format_number(check.base_rmse)}",
         table(headers, rows, align=align, width=width),
     ]
@@ -248,10 +251,13 @@ def render_comparison(outcome: ComparisonOutcome, *, width: int = 100) -> str:
     str
         Sections joined by blank lines.
     """
-    sections = [render_data_summary(outcome.data, width=width)]
-    sections.append(render_holdout_summary(outcome, width=width))
-    sections.append(render_nested_tests(outcome.comparison, width=width))
-    return "\n\n".join(s for s in sections if s)
+    return join_sections(
+        [
+            render_data_summary(outcome.data, width=width),
+            render_holdout_summary(outcome, width=width),
+            render_nested_tests(outcome.comparison, width=width),
+        ]
+    )
 
 
 def render_holdout_summary(outcome: ComparisonOutcome, *, width: int = 100) -> str:

@@ -520,8 +520,18 @@ def render_flags(flags: Sequence[Any], *, width: int = 100) -> str:
     return "\n".join(lines)
 
 
-def _join(sections: Sequence[str]) -> str:
-    """Join non-empty sections with a blank line between them."""
+def join_sections(sections: Sequence[str]) -> str:
+    """Join non-empty sections with a blank line between them.
+
+    Parameters
+    ----------
+    sections : sequence of str
+        Rendered sections; empty ones (a section with nothing to show) are skipped.
+
+    Returns
+    -------
+    str
+    """
     return "\n\n".join(s for s in sections if s)
 
 
@@ -544,7 +554,7 @@ def render_fit_report(outcome: FitOutcome, *, width: int = 100) -> str:
     --------
     render_full_report : the same plus diagnostics and charts.
     """
-    return _join(
+    return join_sections(
         [
             render_data_summary(outcome.data, width=width),
             render_model(outcome.spec, width=width),
@@ -616,4 +626,4 @@ def render_full_report(
         )
         for column, levels in diagnostics.segments.items()
     ]
-    return _join(sections)
+    return join_sections(sections)

@@ -9,7 +9,7 @@ from textual.app import ComposeResult
 from textual.binding import BindingType
 from textual.containers import Vertical
 from textual.screen import ModalScreen
-from textual.widgets import Input, RadioButton, RadioSet, Static
+from textual.widgets import Checkbox, Input, RadioButton, RadioSet, Static
 
 from triage.data.export import PERSONAL_DATA_NOTICE
 from triage.tui.screens.dialogs import CLOSE_DIALOG
@@ -26,6 +26,8 @@ class ExportRequest:
     """How many worst rows (ignored for marked rows)."""
     path: str
     """Output file: `.parquet`, `.pq`, `.csv` or `.tsv`."""
+    is_replacing: bool
+    """Replace the file if it exists (never an input file of the session)."""
 
 
 class ExportScreen(ModalScreen[ExportRequest | None]):
@@ -56,6 +58,7 @@ class ExportScreen(ModalScreen[ExportRequest | None]):
             yield Input(str(min(20, self.top_k)), id="export-k", type="integer",
                         placeholder=f"K, at most {self.top_k}")
             yield Input("", id="export-path", placeholder="rows.parquet or rows.csv")
+            yield Checkbox("replace the file if it exists", value=False, id="export-replace")
             yield Static(f"note: {PERSONAL_DATA_NOTICE}", id="export-notice", markup=False)
             yield Static("tab: next field   enter in the file field: write   escape: close",
                          classes="dialog--keys", markup=False)
@@ -76,7 +79,8 @@ class ExportScreen(ModalScreen[ExportRequest | None]):
         is_marked = self.query_one("#export-marked", RadioButton).value
         k_text = self.query_one("#export-k", Input).value.strip()
         k = max(1, min(self.top_k, int(k_text))) if k_text.isdigit() else self.top_k
-        self.dismiss(ExportRequest("marked" if is_marked else "worst", k, path))
+        is_replacing = self.query_one("#export-replace", Checkbox).value
+        self.dismiss(ExportRequest("marked" if is_marked else "worst", k, path, is_replacing))
 
     def action_close_dialog(self) -> None:
         """Close without writing anything."""

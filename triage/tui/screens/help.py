@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING, ClassVar
+from typing import TYPE_CHECKING, Any, ClassVar
 
 from rich.text import Text
 from textual.app import ComposeResult
@@ -18,7 +18,7 @@ if TYPE_CHECKING:
     from textual.binding import ActiveBinding
 
 
-def help_rows(app: App[object], bindings: dict[str, ActiveBinding]) -> list[tuple[str, str, str]]:
+def help_rows(app: App[Any], bindings: dict[str, ActiveBinding]) -> list[tuple[str, str, str]]:
     """List (keys, what it does, more) for every described binding, grouping keys per action.
 
     Parameters
@@ -31,11 +31,18 @@ def help_rows(app: App[object], bindings: dict[str, ActiveBinding]) -> list[tupl
     Returns
     -------
     list of tuple of str
-        One row per action, in binding order, keys joined with ` / `.
+        One row per action, keys joined with ` / `: the app's keys, then the screen's, then
+        those of the focused widget (table cursor keys and the like).
     """
+    from textual.screen import Screen
+
+    def rank(active: ActiveBinding) -> int:
+        node = active.node
+        return 0 if node is app else 1 if isinstance(node, Screen) else 2
+
     rows: dict[tuple[str, str], list[str]] = {}
     tips: dict[tuple[str, str], str] = {}
-    for active in bindings.values():
+    for active in sorted(bindings.values(), key=rank):
         binding = active.binding
         if not binding.description or binding.system:
             continue

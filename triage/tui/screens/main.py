@@ -58,6 +58,7 @@ if TYPE_CHECKING:
     from triage._typing import Criterion
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
+    from triage.engine.progress import PassProgress
     from triage.tui.settings import Settings
 
 TILE_MIN_WIDTH: Final = 110
@@ -85,8 +86,8 @@ COLUMN_ACTIONS: Final = frozenset(
 
 FIT_ACTIONS: Final = frozenset(
     {
-        "start_full_pass", "toggle_robust", "next_predictor", "next_criterion",
-        "next_segment_column", "open_row", "next_row", "previous_row", "toggle_mark",
+        "toggle_robust", "next_predictor", "next_criterion",
+        "next_segment_column", "open_row", "step_row", "toggle_mark",
         "refit_without_marked", "clear_marks", "export_rows",
     }
 )
@@ -152,11 +153,11 @@ class MainScreen(Screen[None]):
                 tooltip="Stop the running pass; the sample results stay on screen."),
         Binding("r", "toggle_robust", "robust SE", show=False, id="toggle-robust",
                 tooltip="Show standard errors robust to changing spread (HC3), or the usual ones."),
-        Binding("v", "next_predictor", "next predictor", show=False, id="next-predictor",
-                tooltip="Show residuals against the next predictor."),
+        Binding("v", "next_predictor", "next input", show=False, id="next-predictor",
+                tooltip="Show residuals against the next numeric input of the model."),
         Binding("o", "next_criterion", "next ranking", show=False, id="next-criterion",
                 tooltip="Rank the worst rows by the next criterion."),
-        Binding("g", "next_segment_column", "next segment column", show=False,
+        Binding("g", "next_segment_column", "next group column", show=False,
                 id="next-segment-column", tooltip="Break residuals down by the next column."),
         Binding("d", "open_row", "open row", show=False, id="open-row",
                 tooltip="Show the whole original row under the cursor with its diagnostics."),
@@ -175,10 +176,12 @@ class MainScreen(Screen[None]):
                 tooltip="Write the marked rows or the worst K rows to Parquet or CSV."),
     ]
 
-    def __init__(self, settings: Settings) -> None:
+    def __init__(self, settings: Settings, *, opened: SourceOpened | None = None) -> None:
         super().__init__()
         self.settings = settings
         """How the session was opened."""
+        self.opened = opened
+        """A source already opened (when another file replaces the session's), else None."""
         self.source: Source | None = None
         """The open data source."""
         self.draft = ModelDraft(
@@ -211,6 +214,8 @@ class MainScreen(Screen[None]):
         """Columns the diagnostics pass breaks residuals down by."""
         self.row_position: int | None = None
         """Source position of the row in the Row pane."""
+        self.typed_terms: str | None = None
+        """The terms text last typed (offered again after a typing mistake)."""
         self.row_cache: OrderedDict[int, RowView] = OrderedDict()
         """Recently fetched rows, newest last."""
         self._pass_ids = count(1)
@@ -248,7 +253,9 @@ class MainScreen(Screen[None]):
             pane.is_colorless = self.settings.is_colorless
         self._apply_layout()
         self._update_model_line()
-        if self.settings.data is not None:
+        if self.opened is not None:
+            self.post_message(SourceOpened(self.opened.source, self.opened.profile))
+        elif self.settings.data is not None:
             self.open_data(self.settings.data)
 
     def on_resize(self) -> None:
@@ -277,15 +284,26 @@ class MainScreen(Screen[None]):
         strip.shown = frozenset(shown)
         self.refresh_pane_strip()
 
-    def refresh_pane_strip(self) -> None:
-        """Show each pane's key as the active keymap has it."""
-        keys: dict[str, str] = {}
+    def key_display(self, binding_id: str) -> str:
+        """Return the key of a binding as the active keymap has it (empty when unbound)."""
         for active in self.active_bindings.values():
-            binding = active.binding
-            if binding.id is not None and binding.id.startswith("pane-"):
-                keys.setdefault(binding.id.removeprefix("pane-"), self.app.get_key_display(binding))
+            if active.binding.id == binding_id:
+                return self.app.get_key_display(active.binding)
+        return ""
+
+    def refresh_pane_strip(self) -> None:
+        """Show each pane's key, and the model-building keys, as the active keymap has them."""
         self.query_one(PaneStrip).entries = tuple(
-            (info.pane_id, keys.get(info.pane_id, ""), info.title) for info in PANES
+            (info.pane_id, self.key_display(f"pane-{info.pane_id}"), info.title)
+            for info in PANES
+        )
+        hints = [
+            ("set-target", "target"), ("toggle-term", "term"), ("cycle-transform", "transform"),
+            ("toggle-categorical", "categorical"), ("set-weights", "weights"),
+            ("edit-terms", "type terms"), ("edit-filter", "filter"),
+        ]
+        self.query_one(ColumnsPane).keys_hint = "  ".join(
+            f"{self.key_display(binding_id)} {label}" for binding_id, label in hints
         )
 
     def pane(self, pane_id: PaneId) -> Pane:
@@ -298,7 +316,9 @@ class MainScreen(Screen[None]):
             return
         self.front = cast("PaneId", pane_id)
         self._apply_layout()
-        self.pane(self.front).focus_target().focus()
+        target = self.pane(self.front).focus_target()
+        if target.can_focus:
+            target.focus()
         self.refresh_bindings()
 
     def action_cycle_pane(self, step: int) -> None:
@@ -310,7 +330,7 @@ class MainScreen(Screen[None]):
         """Grey out keys that need the Columns pane in front, data, or a fit."""
         if action in COLUMN_ACTIONS:
             return None if self.source is None or self.front != "columns" else True
-        if action in {"edit_filter", "edit_terms", "quick_fit"}:
+        if action in {"edit_filter", "edit_terms", "quick_fit", "start_full_pass"}:
             return None if self.source is None else True
         if action == "cancel_pass":
             return None if self.running_pass is None else True
@@ -328,6 +348,8 @@ class MainScreen(Screen[None]):
     def on_worker_state_changed(self, event: Worker.StateChanged) -> None:
         """Report a worker that failed with an unexpected error, without closing the app."""
         if event.state is WorkerState.ERROR and event.worker.error is not None:
+            if event.worker is self.full_pass_worker and self.running_pass is not None:
+                self._end_full_pass(self.running_pass)
             error = event.worker.error
             self.log.error(f"worker {event.worker.name} failed: {error!r}")
             self.show_error(
@@ -354,20 +376,32 @@ class MainScreen(Screen[None]):
         self.post_message(SourceOpened(source, profile))
 
     def action_open_data(self) -> None:
-        """Ask for another data source and open it (the session's fits are kept)."""
+        """Ask for another data source; once it opens, a new session starts on it."""
 
         def apply(path: str | None) -> None:
             if path and path.strip():
                 self.open_data(path.strip())
 
         self.app.push_screen(
-            PromptScreen("open data (Parquet file, folder or glob; CSV; Arrow IPC)",
+            PromptScreen("open data (Parquet file, folder or glob; CSV; Arrow IPC); "
+                         "this starts a new session",
                          placeholder="sample_parquet/deliveries.parquet"),
             apply,
         )
 
     def on_source_opened(self, message: SourceOpened) -> None:
-        """Show the columns, and fit at once when the command line gave a target."""
+        """Show the columns, and fit at once when the command line gave a target.
+
+        When this screen already has data, the new source starts a fresh session on a new
+        main screen (fits, marks and rows of the old file do not carry over).
+        """
+        if self.source is not None:
+            fresh = replace(
+                self.settings, data=str(message.source.path), target=None, terms="",
+                weights=None, where=None, categorical=(), is_full_at_start=False,
+            )
+            self.app.switch_screen(MainScreen(fresh, opened=message))
+            return
         self.source = message.source
         self.segment_columns = self._segment_columns(message.profile)
         columns = self.query_one(ColumnsPane)
@@ -410,8 +444,15 @@ class MainScreen(Screen[None]):
         return self.query_one(ColumnsPane).cursor_column()
 
     def _set_draft(self, draft: ModelDraft) -> None:
-        """Keep a changed model, show it, and fit it on the sample when it has a target."""
+        """Keep a changed model, show it, and fit it on the sample when it has a target.
+
+        A model with a target is checked against the columns first; when it does not fit the
+        data the message says why and the previous model stays.
+        """
+        if draft.target is not None and self._spec(draft) is None:
+            return
         self.draft = draft
+        self.typed_terms = None
         self.query_one(ColumnsPane).draft = draft
         self._update_model_line()
         if draft.target is not None:
@@ -484,6 +525,7 @@ class MainScreen(Screen[None]):
         def apply(text: str | None) -> None:
             if text is None:
                 return
+            self.typed_terms = text
             try:
                 draft = self.draft.with_terms_text(text)
             except TriageError as error:
@@ -494,7 +536,7 @@ class MainScreen(Screen[None]):
         self.app.push_screen(
             PromptScreen(
                 "terms (comma list, or target ~ a + b)",
-                value=self.draft.terms_text(),
+                value=self.typed_terms or self.draft.terms_text(),
                 placeholder="distance_km, log(stops), depot, stops:weight_kg",
             ),
             apply,
@@ -508,12 +550,12 @@ class MainScreen(Screen[None]):
     # ----------------------------------------------------------------------------------------
     # passes
 
-    def _spec(self) -> ModelSpec | None:
-        """Check the draft against the data; show what is wrong if it does not fit."""
+    def _spec(self, draft: ModelDraft | None = None) -> ModelSpec | None:
+        """Check a draft (the current one by default) against the data; say what is wrong."""
         if self.source is None:
             return None
         try:
-            return self.draft.to_spec(
+            return (draft or self.draft).to_spec(
                 self.source.schema(),
                 reference=self.settings.reference,
                 max_levels=self.settings.max_levels,
@@ -548,6 +590,11 @@ class MainScreen(Screen[None]):
         spec = self._spec()
         if spec is None:
             return
+        current = self.current
+        if (is_full and current is not None and current.is_full_pass
+                and current.report.outcome.spec == spec and current.excluded == excluded):
+            self.notify(f"fit #{current.number} already uses every row")
+            return
         pass_id = next(self._pass_ids)
         job = PassJob(pass_id, spec, excluded, baseline)
         if is_full:
@@ -564,6 +611,10 @@ class MainScreen(Screen[None]):
         """Run one pass of `job` in the current worker and post how it ended."""
         assert self.source is not None
         worker = get_current_worker()
+
+        def report_progress(progress: PassProgress) -> None:
+            self.post_message(PassProgressed(job.pass_id, progress))
+
         try:
             report = run_report(
                 self.source,
@@ -574,9 +625,7 @@ class MainScreen(Screen[None]):
                 exclude_rows=job.excluded,
                 top_k=self.settings.top_k,
                 by=self.segment_columns,
-                on_progress=None
-                if rows is not None
-                else lambda p: self.post_message(PassProgressed(job.pass_id, p)),
+                on_progress=None if rows is not None else report_progress,
                 cancel=worker.cancelled_event,
             )
         except PassCancelled:
@@ -840,14 +889,19 @@ class MainScreen(Screen[None]):
             self.show_error("there are no rows to export: mark rows first",
                             title="nothing to export")
             return
-        self.write_export(self.current, positions, request.path)
+        self.write_export(self.current, positions, request)
 
     @work(thread=True, exclusive=True, group="export", exit_on_error=False)
-    def write_export(self, fit: SessionFit, positions: list[int], path: str) -> None:
-        """Write the rows with every column plus diagnostics (thread worker)."""
+    def write_export(self, fit: SessionFit, positions: list[int], request: ExportRequest) -> None:
+        """Write the rows with every column plus diagnostics (thread worker).
+
+        The rules are those of `triage export`: a temporary file renamed into place, never an
+        input file, an existing file replaced only when asked.
+        """
         assert self.source is not None
         try:
-            written = export_rows(self.source, fit.report.outcome, positions, path)
+            written = export_rows(self.source, fit.report.outcome, positions, request.path,
+                                  force=request.is_replacing)
         except TriageError as error:
             self.post_message(PassFailed(-1, str(error), "the export failed"))
             return

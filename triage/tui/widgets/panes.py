@@ -65,10 +65,10 @@ PANES: Final[tuple[PaneInfo, ...]] = (
     PaneInfo("fit", "Fit", "model", "no fit yet: pick a target and terms in Columns"),
     PaneInfo("spread", "Spread", "residuals", "residual histogram: no fit yet"),
     PaneInfo("trend", "Trend", "residuals", "residual by fitted value: no fit yet"),
-    PaneInfo("predictors", "Predictors", "residuals", "residual by predictor: no fit yet"),
+    PaneInfo("predictors", "Inputs", "residuals", "residual by each numeric input: no fit yet"),
     PaneInfo("flags", "Flags", "model", "flags: no fit yet"),
     PaneInfo("worst", "Worst", "rows", "worst rows: no fit yet"),
-    PaneInfo("segments", "Segments", "residuals", "segments: no fit yet"),
+    PaneInfo("segments", "Groups", "residuals", "residuals by group: no fit yet"),
     PaneInfo("row", "Row", "rows", "no row chosen: pick one in Worst"),
     PaneInfo("fits", "Fits", "model", "fits of this session: none yet"),
 )
@@ -90,7 +90,10 @@ class Pane(Vertical):
         """Draw without colour (the `NO_COLOR` convention)."""
 
     def focus_target(self) -> Widget:
-        """Return the child that takes the keyboard when the pane comes to the front."""
+        """Return the child that takes the keyboard when the pane comes to the front.
+
+        The pane itself (which cannot take focus) when it has no focusable child.
+        """
         for child in self.query("*"):
             if isinstance(child, Widget) and child.can_focus:
                 return child
@@ -131,12 +134,13 @@ class ColumnsPane(Pane):
     """One row per column from `column_profile`, None until the data opens."""
     draft: reactive[ModelDraft] = reactive(ModelDraft)
     """The model being built (roles are shown beside the columns)."""
+    keys_hint: reactive[str] = reactive("")
+    """The model-building keys of the active keymap, shown above the table."""
 
     def compose(self) -> ComposeResult:
         """Add the column table."""
         yield Static(self.info.hint, classes="pane--note", markup=False)
         table: DataTable[str] = DataTable(id="columns-table", cursor_type="row")
-        table.cursor_blink = False
         yield table
 
     def on_mount(self) -> None:
@@ -151,6 +155,10 @@ class ColumnsPane(Pane):
 
     def watch_draft(self) -> None:
         """Refresh the roles when the model changes."""
+        self._fill()
+
+    def watch_keys_hint(self) -> None:
+        """Show the keys once the keymap is known."""
         self._fill()
 
     def _role(self, name: str) -> str:
@@ -188,10 +196,8 @@ class ColumnsPane(Pane):
                 key=entry["name"],
             )
         table.move_cursor(row=min(row, table.row_count - 1), animate=False)
-        rows = self.profile.height
         self.query_one(".pane--note", Static).update(
-            f"{rows} columns; numbers from a sample of the rows. "
-            "Move to a column and press a key: target, term, transform, categorical, weights."
+            f"{self.profile.height} columns, numbers from a sample. On a column: {self.keys_hint}"
         )
 
     def cursor_column(self) -> str | None:
@@ -275,7 +281,6 @@ class FitsPane(Pane):
         """Add the list of fits."""
         yield Static(self.info.hint, classes="pane--note", markup=False)
         table: DataTable[str] = DataTable(id="fits-table", cursor_type="row")
-        table.cursor_blink = False
         yield table
 
     def on_mount(self) -> None:
@@ -339,7 +344,6 @@ class RowPane(Pane):
         """Add the heading and the row table."""
         yield Static(self.info.hint, classes="pane--note", markup=False)
         table: DataTable[str] = DataTable(id="row-table", cursor_type="row")
-        table.cursor_blink = False
         yield table
 
     def on_mount(self) -> None:
@@ -559,7 +563,6 @@ class WorstPane(Pane):
         """Add the heading and the table."""
         yield Static(self.info.hint, classes="pane--note", markup=False)
         table: DataTable[str] = DataTable(id="worst-table", cursor_type="row")
-        table.cursor_blink = False
         yield table
 
     def on_mount(self) -> None:
