@@ -5,11 +5,13 @@ fresh subprocess with its peak resident memory:
 
 - floor: polars alone reading the same columns in bounded batches (summing them, so every
   value is decoded);
-- triage: `triage fit --rows all` on the same file;
+- triage fit: `triage fit --rows all` on the same file (pass 1);
+- triage report: `triage report --rows all` (pass 1 and pass 2: two reads of the file);
 - in-memory: pandas + statsmodels OLS, the route a user would otherwise take (skipped when
   the estimated memory would exceed `--memory-cap-gb`).
 
-Prints ratios to the floor. Usage: ``python bench/bench_fit.py --rows 20000000``.
+Prints ratios to the floor, and peak memory at two sizes to show it is flat in rows.
+Usage: ``python bench/bench_fit.py --rows 2000000,20000000 --predictors 8,30``.
 """
 
 from __future__ import annotations
@@ -40,6 +42,14 @@ TRIAGE = """
 import sys
 from triage.cli.main import main
 args = ["fit", sys.argv[1], "--target", "y", "--terms", sys.argv[2], "--rows", "all", "--json"]
+code = main(args)
+sys.exit(code)
+"""
+
+REPORT = """
+import sys
+from triage.cli.main import main
+args = ["report", sys.argv[1], "-y", "y", "-x", sys.argv[2], "--rows", "all", "--json"]
 code = main(args)
 sys.exit(code)
 """
@@ -117,30 +127,35 @@ def _environ() -> dict[str, str]:
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__)
-    parser.add_argument("--rows", type=int, default=20_000_000)
+    parser.add_argument("--rows", default="2000000,20000000", help="comma-separated row counts")
     parser.add_argument("--predictors", default="8,30")
     parser.add_argument("--memory-cap-gb", type=float, default=16.0)
     args = parser.parse_args()
     results = []
-    for p in (int(s) for s in args.predictors.split(",")):
-        path = DATA / f"bench_{args.rows}_{p}.parquet"
+    cases = [(int(n), int(p)) for p in args.predictors.split(",") for n in args.rows.split(",")]
+    for n_rows, p in cases:
+        path = DATA / f"bench_{n_rows}_{p}.parquet"
         started = time.perf_counter()
-        make_file(path, args.rows, p)
+        make_file(path, n_rows, p)
         print(f"file {path.name}: ready in {time.perf_counter() - started:.1f} s", flush=True)
         names = ",".join(f"x{i}" for i in range(p))
         floor = measure(FLOOR, str(path), "y," + names)
         triage = measure(TRIAGE, str(path), names)
+        report = measure(REPORT, str(path), names)
         # pandas + statsmodels hold the frame, the design and QR copies: about 6 copies
-        estimate_gb = 6 * args.rows * (p + 1) * 8 / 2**30
+        estimate_gb = 6 * n_rows * (p + 1) * 8 / 2**30
         memory = measure(IN_MEMORY, str(path), names) if estimate_gb < args.memory_cap_gb else None
         row = {
-            "rows": args.rows,
+            "rows": n_rows,
             "predictors": p,
             "floor_s": floor[0],
             "floor_mib": floor[1],
             "triage_s": triage[0],
             "triage_mib": triage[1],
             "triage_vs_floor": triage[0] / floor[0],
+            "report_s": report[0],
+            "report_mib": report[1],
+            "report_vs_floor": report[0] / floor[0],
             "in_memory_s": memory[0] if memory else None,
             "in_memory_mib": memory[1] if memory else None,
             "in_memory_vs_triage_time": memory[0] / triage[0] if memory else None,
@@ -148,13 +163,17 @@ def main() -> None:
         }
         results.append(row)
         print(json.dumps(row), flush=True)
-    print("\nrows        p  floor s  triage s  ratio  triage MiB  in-memory s  in-memory MiB")
+    print(
+        "\nrows        p  floor s  fit s  ratio  fit MiB  report s  ratio  report MiB"
+        "  in-memory s  in-memory MiB"
+    )
     for r in results:
         mem_s = f"{r['in_memory_s']:11.1f}" if r["in_memory_s"] else "    skipped"
         mem_m = f"{r['in_memory_mib']:13.0f}" if r["in_memory_mib"] else "      skipped"
         print(
-            f"{r['rows']:<11,} {r['predictors']:>2} {r['floor_s']:8.2f} {r['triage_s']:9.2f}"
-            f" {r['triage_vs_floor']:6.2f} {r['triage_mib']:11.0f} {mem_s} {mem_m}"
+            f"{r['rows']:<11,} {r['predictors']:>2} {r['floor_s']:8.2f} {r['triage_s']:6.2f}"
+            f" {r['triage_vs_floor']:6.2f} {r['triage_mib']:8.0f} {r['report_s']:9.2f}"
+            f" {r['report_vs_floor']:6.2f} {r['report_mib']:11.0f} {mem_s} {mem_m}"
         )
 
 
