@@ -45,3 +45,20 @@ def test_layers_fit_command_never_imports_textual() -> None:
 
 def test_layers_package_has_version() -> None:
     assert triage.__version__.count(".") >= 2
+
+
+def test_layers_every_package_is_listed_for_installation() -> None:
+    # pyproject.toml lists packages explicitly (keymaps/ is mapped to triage.keymaps), so a
+    # new sub-package must be added there or an installed triage would lack it.
+    import tomllib
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    listed = set(
+        tomllib.loads((root / "pyproject.toml").read_text())["tool"]["setuptools"]["packages"]
+    )
+    found = {
+        ".".join(init.parent.relative_to(root).parts)
+        for init in (root / "triage").rglob("__init__.py")
+    }
+    assert found | {"triage.keymaps"} == listed

@@ -28,6 +28,7 @@ from triage.tui.widgets.panes import (
     ColumnsPane,
     FitPane,
     FitsPane,
+    FlagsPane,
     Pane,
     PredictorsPane,
     RowPane,
@@ -212,8 +213,9 @@ async def test_tui_typed_terms_weights_and_filter(config_home: Path, demo_file: 
 async def test_tui_command_line_model_fits_at_once_on_a_sample(
     config_home: Path, demo_file: Path
 ) -> None:
-    app = build_app(demo_file, target="minutes", terms="distance_km, stops",
-                    sample_rows=SAMPLE_ROWS)
+    app = build_app(
+        demo_file, target="minutes", terms="distance_km, stops", sample_rows=SAMPLE_ROWS
+    )
     async with app.run_test(size=SMALL) as pilot:
         await settle(pilot)
         fit = main_screen(app).current
@@ -240,8 +242,9 @@ async def _wait_for(pilot: Any, condition: Any, *, tries: int = 200) -> None:
 async def test_tui_full_pass_reports_progress_stays_responsive_and_finishes(
     config_home: Path, demo_file: Path, gated: list[GatedSource]
 ) -> None:
-    app = build_app(demo_file, target="minutes", terms="distance_km, stops",
-                    sample_rows=SAMPLE_ROWS)
+    app = build_app(
+        demo_file, target="minutes", terms="distance_km, stops", sample_rows=SAMPLE_ROWS
+    )
     async with app.run_test(size=SMALL) as pilot:
         await settle(pilot)
         screen = main_screen(app)
@@ -254,12 +257,17 @@ async def test_tui_full_pass_reports_progress_stays_responsive_and_finishes(
         for _ in range(3):
             await pilot.pause(0.3)  # the engine reports progress at most four times a second
             source.gate.release()
-            await _wait_for(pilot, lambda: pass_line.progress is not None
-                            and pass_line.progress.rows_done not in seen)
+            await _wait_for(
+                pilot,
+                lambda: pass_line.progress is not None and pass_line.progress.rows_done not in seen,
+            )
             assert pass_line.progress is not None
             seen.append(pass_line.progress.rows_done)
         assert seen == sorted(seen) and seen[-1] > seen[0]
         assert pass_line.progress is not None and pass_line.progress.rows_total
+        shown = str(pass_line.render())
+        assert f"{pass_line.progress.rows_done:,}/" in shown
+        assert "rows/s" in shown and "s left" in shown and "SAMPLE" in shown
         # the app answers keys while the pass runs
         await press_id(pilot, "pane-spread")
         assert screen.front == "spread"
@@ -273,15 +281,15 @@ async def test_tui_full_pass_reports_progress_stays_responsive_and_finishes(
         assert "EVERY ROW" in pass_line.basis
         assert pass_line.progress is None
         oracle = ols(pl.read_parquet(demo_file), "minutes", ["distance_km", "stops"])
-        np.testing.assert_allclose(screen.current.report.outcome.fit.coef, oracle.params,
-                                   rtol=1e-9)
+        np.testing.assert_allclose(screen.current.report.outcome.fit.coef, oracle.params, rtol=1e-9)
 
 
 async def test_tui_full_pass_cancel_keeps_sample_results(
     config_home: Path, demo_file: Path, gated: list[GatedSource]
 ) -> None:
-    app = build_app(demo_file, target="minutes", terms="distance_km, stops",
-                    sample_rows=SAMPLE_ROWS)
+    app = build_app(
+        demo_file, target="minutes", terms="distance_km, stops", sample_rows=SAMPLE_ROWS
+    )
     async with app.run_test(size=SMALL) as pilot:
         await settle(pilot)
         screen = main_screen(app)
@@ -317,8 +325,12 @@ async def _full_fit_app(pilot: Any) -> MainScreen:
 async def test_tui_each_pane_comes_to_front_and_shows_the_fit(
     config_home: Path, demo_file: Path
 ) -> None:
-    app = build_app(demo_file, target="minutes", terms="distance_km, log(weight_kg), stops, depot",
-                    sample_rows=SAMPLE_ROWS)
+    app = build_app(
+        demo_file,
+        target="minutes",
+        terms="distance_km, log(weight_kg), stops, depot",
+        sample_rows=SAMPLE_ROWS,
+    )
     async with app.run_test(size=SMALL) as pilot:
         screen = await _full_fit_app(pilot)
         fit = screen.current
@@ -346,6 +358,11 @@ async def test_tui_each_pane_comes_to_front_and_shows_the_fit(
             assert worst.criterion == criterion
             assert worst.positions() == [r.row for r in fit.report.diagnostics.worst[criterion]]
             await press_id(pilot, "next-criterion")
+        # every hint and every residual test reaches the Flags pane
+        flags_text = app.screen.query_one(FlagsPane).text_for(100) or ""
+        for flag in fit.report.diagnostics.flags:
+            assert flag.code in flags_text
+        assert "Breusch" in flags_text and "RESET" in flags_text
         # segments follow the column key
         segments = app.screen.query_one(SegmentsPane)
         first = segments.column
@@ -357,8 +374,9 @@ async def test_tui_each_pane_comes_to_front_and_shows_the_fit(
         used = frame.drop_nulls(["minutes", "distance_km", "weight_kg", "stops", "depot"])
         import statsmodels.formula.api as smf
 
-        oracle = smf.ols("minutes ~ distance_km + np.log(weight_kg) + stops + C(depot)",
-                         data=used.to_pandas()).fit()
+        oracle = smf.ols(
+            "minutes ~ distance_km + np.log(weight_kg) + stops + C(depot)", data=used.to_pandas()
+        ).fit()
         resid = pl.DataFrame({"depot": used["depot"], "e": np.asarray(oracle.resid)})
         means = dict(resid.group_by("depot").agg(pl.col("e").mean()).iter_rows())
         for level in fit.report.diagnostics.segments["depot"]:
@@ -406,9 +424,13 @@ async def test_tui_drill_down_shows_the_original_row_and_steps(
         used = frame.drop_nulls(["minutes", "distance_km", "stops"]).with_row_index("i")
         oracle = ols(frame, "minutes", ["distance_km", "stops"])
         influence = oracle.get_influence()
-        full_rows = frame.with_row_index("__row").filter(
-            pl.all_horizontal(pl.col("minutes", "distance_km", "stops").is_not_null())
-        )["__row"].to_list()
+        full_rows = (
+            frame.with_row_index("__row")
+            .filter(pl.all_horizontal(pl.col("minutes", "distance_km", "stops").is_not_null()))[
+                "__row"
+            ]
+            .to_list()
+        )
         steps = [(positions[0], "next-row"), (positions[1], "previous-row"), (positions[0], None)]
         for expected, then in steps:
             view = row_pane.row
@@ -419,12 +441,15 @@ async def test_tui_drill_down_shows_the_original_row_and_steps(
             shown = {k: v for k, v in view.frame.row(0, named=True).items() if k != "__row"}
             assert shown == original
             i = full_rows.index(expected)
-            assert view.diagnostics.cooks[0] == pytest.approx(influence.cooks_distance[0][i],
-                                                              rel=1e-7)
+            assert view.diagnostics.cooks[0] == pytest.approx(
+                influence.cooks_distance[0][i], rel=1e-7
+            )
             assert view.diagnostics.studentized[0] == pytest.approx(
-                influence.resid_studentized_external[i], rel=1e-7)
-            assert view.diagnostics.leverage[0] == pytest.approx(influence.hat_matrix_diag[i],
-                                                                 rel=1e-7)
+                influence.resid_studentized_external[i], rel=1e-7
+            )
+            assert view.diagnostics.leverage[0] == pytest.approx(
+                influence.hat_matrix_diag[i], rel=1e-7
+            )
             if then is not None:
                 await press_id(pilot, then)
                 await settle(pilot)
@@ -476,7 +501,8 @@ async def test_tui_export_marked_and_worst_rows(
         await press_id(pilot, "export-rows")
         assert isinstance(app.screen, ExportScreen)
         assert "no proof of error or wrongdoing" in str(
-            app.screen.query_one("#export-notice").content)
+            app.screen.query_one("#export-notice").content
+        )
         app.screen.query_one("#export-path").value = str(tmp_path / "marked.parquet")
         await pilot.press("enter")
         await settle(pilot)
@@ -536,12 +562,17 @@ async def test_tui_help_lists_every_key_of_the_active_keymap(
         for binding in [*MainScreen.BINDINGS, *type(app).BINDINGS]:
             key = app.get_key_display(binding.with_key(key_for(app, binding.id)))
             assert key in described[binding.description].split(" / ")
+        # the dialogs' keys are listed too, so every id of the keymap appears
+        for binding in [*ErrorScreen.BINDINGS, *ExportScreen.BINDINGS]:
+            key = app.get_key_display(binding.with_key(key_for(app, binding.id)))
+            assert key in described[f"{binding.description} (in dialogs)"].split(" / ")
         await press_id(pilot, "close-dialog")
         assert isinstance(app.screen, MainScreen)
 
 
-async def test_tui_keymap_file_overrides_keys(config_home: Path, demo_file: Path,
-                                              tmp_path: Path) -> None:
+async def test_tui_keymap_file_overrides_keys(
+    config_home: Path, demo_file: Path, tmp_path: Path
+) -> None:
     mine = tmp_path / "mine.toml"
     mine.write_text('pane-fit = "F"\nquick-fit = "z"\npane-fits = "ctrl+l"\n', encoding="utf-8")
     app = build_app(demo_file, keymap_file=mine)
@@ -607,8 +638,9 @@ async def test_tui_bad_filter_and_unreadable_file_show_messages(
 
 
 async def test_tui_stacks_at_80x24_and_tiles_at_120x40(config_home: Path, demo_file: Path) -> None:
-    app = build_app(demo_file, target="minutes", terms="distance_km, stops",
-                    sample_rows=SAMPLE_ROWS)
+    app = build_app(
+        demo_file, target="minutes", terms="distance_km, stops", sample_rows=SAMPLE_ROWS
+    )
     async with app.run_test(size=SMALL) as pilot:
         await settle(pilot)
 
@@ -629,8 +661,9 @@ async def test_tui_stacks_at_80x24_and_tiles_at_120x40(config_home: Path, demo_f
         assert shown() == {"trend"}
 
 
-async def test_tui_no_color_draws_plain_charts(config_home: Path, demo_file: Path,
-                                               monkeypatch: pytest.MonkeyPatch) -> None:
+async def test_tui_no_color_draws_plain_charts(
+    config_home: Path, demo_file: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     # NO_COLOR convention (no-color.org): any non-empty value turns colour off
     monkeypatch.setenv("NO_COLOR", "1")
     app = build_app(demo_file, target="minutes", terms="distance_km, stops")
@@ -646,8 +679,7 @@ async def test_tui_no_color_draws_plain_charts(config_home: Path, demo_file: Pat
         assert "\x1b[" in (app.screen.query_one(SpreadPane).draw(76, 16) or "")
 
 
-async def test_tui_command_palette_runs_a_screen_action(config_home: Path,
-                                                        demo_file: Path) -> None:
+async def test_tui_command_palette_runs_a_screen_action(config_home: Path, demo_file: Path) -> None:
     app = build_app(demo_file, target="minutes", terms="distance_km", sample_rows=SAMPLE_ROWS)
     async with app.run_test(size=SMALL) as pilot:
         await settle(pilot)
@@ -675,13 +707,34 @@ def test_tui_cli_open_hands_options_to_the_app(
     monkeypatch.setattr(TriageApp, "run", lambda self: opened.append(self))
     mine = tmp_path / "keys.toml"
     mine.write_text('quick-fit = "z"\n', encoding="utf-8")
-    code = main([str(demo_file), "--target", "minutes", "--terms", "distance_km, depot",
-                 "--rows", "all", "--seed", "3", "--where", "hour > 8", "--keyset", "fkeys",
-                 "--keymap", str(mine), "--categorical", "hour"])
+    code = main(
+        [
+            str(demo_file),
+            "--target",
+            "minutes",
+            "--terms",
+            "distance_km, depot",
+            "--rows",
+            "all",
+            "--seed",
+            "3",
+            "--where",
+            "hour > 8",
+            "--keyset",
+            "fkeys",
+            "--keymap",
+            str(mine),
+            "--categorical",
+            "hour",
+        ]
+    )
     assert code == 0
     settings = opened[0].settings
     assert (settings.data, settings.target, settings.terms) == (
-        str(demo_file), "minutes", "distance_km, depot")
+        str(demo_file),
+        "minutes",
+        "distance_km, depot",
+    )
     assert settings.is_full_at_start and settings.seed == 3
     assert settings.where == "hour > 8" and settings.categorical == ("hour",)
     assert opened[0].keymap["quick-fit"] == "z" and opened[0].keymap["pane-fit"] == "f3"
@@ -720,3 +773,16 @@ async def test_tui_open_another_file_starts_a_new_session(
         assert profile is not None
         assert profile["name"].to_list() == pl.read_csv(other).columns  # oracle: polars
 
+
+async def test_tui_full_pass_is_not_repeated_when_the_sample_was_every_row(
+    config_home: Path, demo_file: Path
+) -> None:
+    app = build_app(demo_file, target="minutes", terms="distance_km")  # 200,000 > 6,000 rows
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        screen = main_screen(app)
+        assert screen.current is not None and screen.current.is_full_pass
+        await press_id(pilot, "start-full-pass")
+        await settle(pilot)
+        assert len(screen.fits) == 1 and screen.running_pass is None
+        assert any("already uses every row" in n.message for n in app._notifications)

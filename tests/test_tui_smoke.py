@@ -48,8 +48,16 @@ def _command() -> list[str]:
 def test_tui_smoke_in_tmux_at_80x24(demo_file: Path, tmp_path: Path) -> None:
     session = f"triage-smoke-{uuid.uuid4().hex[:8]}"
     config = tmp_path / "config"
-    argv = [*_command(), str(demo_file), "--target", "minutes", "--terms", "distance_km, stops",
-            "--rows", "2000"]
+    argv = [
+        *_command(),
+        str(demo_file),
+        "--target",
+        "minutes",
+        "--terms",
+        "distance_km, stops",
+        "--rows",
+        "2000",
+    ]
     shell = (
         f"cd {shlex.quote(str(Path(__file__).parents[1]))} && "
         f"TRIAGE_CONFIG_DIR={shlex.quote(str(config))} {shlex.join(argv)}; "

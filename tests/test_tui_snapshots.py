@@ -33,8 +33,9 @@ async def _capture(pilot: Any, name: str) -> None:
 @pytest.mark.parametrize(
     "pane", ["columns", "fit", "spread", "trend", "predictors", "flags", "segments", "fits"]
 )
-async def test_tui_snapshot_sample_panes_80x24(config_home: Path, demo_file: Path,
-                                               pane: str) -> None:
+async def test_tui_snapshot_sample_panes_80x24(
+    config_home: Path, demo_file: Path, pane: str
+) -> None:
     app = build_app(demo_file, sample_rows=2_000, **MODEL)
     async with app.run_test(size=(80, 24)) as pilot:
         await settle(pilot)
@@ -55,8 +56,9 @@ async def test_tui_snapshot_rows_80x24(config_home: Path, demo_file: Path) -> No
 
 
 @pytest.mark.parametrize("pane", ["columns", "spread", "worst"])
-async def test_tui_snapshot_tiled_pages_120x40(config_home: Path, demo_file: Path,
-                                               pane: str) -> None:
+async def test_tui_snapshot_tiled_pages_120x40(
+    config_home: Path, demo_file: Path, pane: str
+) -> None:
     app = build_app(demo_file, **MODEL)
     async with app.run_test(size=(120, 40)) as pilot:
         await settle(pilot)

@@ -34,8 +34,9 @@ def write_demo(folder: Path) -> Path:
     """Write the demo delivery scenario (invented data, the project's demo) to `folder`."""
     from triage.data.scenario import write_scenario
 
-    return write_scenario(folder / "deliveries.parquet", n_rows=DEMO_ROWS, seed=7,
-                          row_group_rows=1_000)
+    return write_scenario(
+        folder / "deliveries.parquet", n_rows=DEMO_ROWS, seed=7, row_group_rows=1_000
+    )
 
 
 @pytest.fixture
@@ -102,7 +103,9 @@ def assert_snapshot(text: str, name: str) -> None:
         pytest.fail(f"no snapshot {path.name}; run with {UPDATE_ENV}=1 after checking the screen")
     expected = path.read_text(encoding="utf-8").removesuffix("\n")
     if text != expected:
-        diff = "\n".join(difflib.unified_diff(
-            expected.splitlines(), text.splitlines(), "stored", "now", lineterm=""
-        ))
+        diff = "\n".join(
+            difflib.unified_diff(
+                expected.splitlines(), text.splitlines(), "stored", "now", lineterm=""
+            )
+        )
         pytest.fail(f"screen differs from snapshot {path.name}:\n{diff}")

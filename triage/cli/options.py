@@ -9,6 +9,7 @@ from typing import TYPE_CHECKING
 if TYPE_CHECKING:
     from triage.core.holdout import HoldoutRule
     from triage.core.spec import ModelSpec
+    from triage.data.delimited import CsvOptions
     from triage.data.source import Source
 
 DEFAULT_SAMPLE_ROWS = 200_000
@@ -142,17 +143,28 @@ def add_row_options(parser: argparse.ArgumentParser) -> None:
     )
 
 
-def open_source_from_args(args: argparse.Namespace) -> Source:
-    """Open the data source named on the command line with its CSV options."""
-    from triage.data.source import CsvOptions, open_source
+def csv_options_from_args(args: argparse.Namespace) -> CsvOptions:
+    """Return the CSV reading options given on the command line."""
+    from triage.data.source import CsvOptions
 
     defaults = CsvOptions()
-    csv = CsvOptions(
+    return CsvOptions(
         separator=args.separator if args.separator is not None else defaults.separator,
         has_header=not args.no_header,
         null_values=tuple(args.null_value) if args.null_value else defaults.null_values,
     )
-    return open_source(args.data, csv=csv)
+
+
+def categorical_columns(args: argparse.Namespace) -> tuple[str, ...]:
+    """Return the columns named with `--categorical`."""
+    return tuple(c.strip() for c in args.categorical.split(",") if c.strip())
+
+
+def open_source_from_args(args: argparse.Namespace) -> Source:
+    """Open the data source named on the command line with its CSV options."""
+    from triage.data.source import open_source
+
+    return open_source(args.data, csv=csv_options_from_args(args))
 
 
 def parse_reference(pairs: list[str]) -> dict[str, str]:
@@ -182,7 +194,7 @@ def spec_from_args(
         intercept=not args.no_intercept,
         weights=args.weights,
         where=args.where,
-        categorical=tuple(c.strip() for c in args.categorical.split(",") if c.strip()),
+        categorical=categorical_columns(args),
         reference=parse_reference(args.reference),
         max_levels=args.max_levels,
         drop_invalid=args.drop_invalid,

@@ -23,12 +23,30 @@ class TriageApp(App[None]):
     TITLE = "triage"
     COMMANDS: ClassVar = {TriageCommands}
     BINDINGS: ClassVar[list[BindingType]] = [
-        Binding("ctrl+q", "quit", "quit", priority=True, id="quit",
-                tooltip="Leave triage (the data files are never changed)."),
-        Binding("question_mark", "show_help", "keys", id="show-help",
-                tooltip="List every key of the active keymap."),
-        Binding("ctrl+p", "command_palette", "commands", show=False, priority=True,
-                id="open-palette", tooltip="Search the commands by name."),
+        Binding(
+            "ctrl+q",
+            "quit",
+            "quit",
+            priority=True,
+            id="quit",
+            tooltip="Leave triage (the data files are never changed).",
+        ),
+        Binding(
+            "question_mark",
+            "show_help",
+            "keys",
+            id="show-help",
+            tooltip="List every key of the active keymap.",
+        ),
+        Binding(
+            "ctrl+p",
+            "command_palette",
+            "commands",
+            show=False,
+            priority=True,
+            id="open-palette",
+            tooltip="Search the commands by name.",
+        ),
     ]
 
     def __init__(self, settings: Settings, keymap: dict[str, str] | None = None) -> None:
@@ -45,10 +63,22 @@ class TriageApp(App[None]):
         self.push_screen(MainScreen(self.settings))
 
     def action_show_help(self) -> None:
-        """Show every key the screen in front answers to."""
+        """Show every key the screen in front answers to, then the keys of the dialogs."""
         if isinstance(self.screen, HelpScreen):
             return
-        self.push_screen(HelpScreen(help_rows(self, self.screen.active_bindings)))
+        rows = help_rows(self, self.screen.active_bindings)
+        shown = {active.binding.id for active in self.screen.active_bindings.values()}
+        for screen_type in (ErrorScreen, PromptScreen, ExportScreen, HelpScreen):
+            for binding in screen_type.BINDINGS:
+                if not isinstance(binding, Binding) or binding.id in shown:
+                    continue
+                shown.add(binding.id)
+                key = self.keymap.get(binding.id or "", binding.key)
+                display = " / ".join(
+                    self.get_key_display(binding.with_key(k.strip())) for k in key.split(",")
+                )
+                rows.append((display, f"{binding.description} (in dialogs)", binding.tooltip))
+        self.push_screen(HelpScreen(rows))
 
 
 def all_binding_ids() -> tuple[str, ...]:

@@ -43,19 +43,33 @@ class TriageCommands(Provider):
         for title, help_text, active in self._commands():
             score = matcher.match(title)
             if score > 0:
-                yield Hit(score, matcher.highlight(title), partial(self._run, active),
-                          help=help_text)
+                yield Hit(
+                    score, matcher.highlight(title), partial(self._run, active), help=help_text
+                )
 
 
 def _group(binding_id: str) -> str:
     """Return the group word of a binding id for the palette title."""
     if binding_id.startswith(("pane-", "next-pane", "previous-pane")):
         return "pane"
-    if binding_id in {"set-target", "toggle-term", "cycle-transform", "toggle-categorical",
-                      "set-weights", "edit-filter", "edit-terms"}:
+    if binding_id in {
+        "set-target",
+        "toggle-term",
+        "cycle-transform",
+        "toggle-categorical",
+        "set-weights",
+        "edit-filter",
+        "edit-terms",
+    }:
         return "model"
-    if binding_id in {"quick-fit", "start-full-pass", "cancel-pass", "toggle-robust",
-                      "next-predictor", "next-segment-column"}:
+    if binding_id in {
+        "quick-fit",
+        "start-full-pass",
+        "cancel-pass",
+        "toggle-robust",
+        "next-predictor",
+        "next-segment-column",
+    }:
         return "fit"
     if binding_id in {"quit", "show-help", "open-palette"}:
         return "app"

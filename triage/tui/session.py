@@ -207,8 +207,14 @@ def column_profile(schema: Mapping[str, pl.DataType], sample: pl.DataFrame) -> p
     return pl.DataFrame(
         rows,
         schema={
-            "name": pl.String, "dtype": pl.String, "missing": pl.Float64, "distinct": pl.Int64,
-            "low": pl.Float64, "mean": pl.Float64, "high": pl.Float64, "top": pl.String,
+            "name": pl.String,
+            "dtype": pl.String,
+            "missing": pl.Float64,
+            "distinct": pl.Int64,
+            "low": pl.Float64,
+            "mean": pl.Float64,
+            "high": pl.Float64,
+            "top": pl.String,
         },
     )
 

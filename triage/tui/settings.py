@@ -60,4 +60,3 @@ class Settings:
     """Rows kept per worst-row list."""
     is_colorless: bool = field(default_factory=lambda: bool(os.environ.get("NO_COLOR")))
     """Draw without colour (set when the `NO_COLOR` environment variable is non-empty)."""
-

@@ -6,7 +6,12 @@ import argparse
 from pathlib import Path
 from typing import Any
 
-from triage.cli.options import add_model_options, add_row_options, add_source_options
+from triage.cli.options import (
+    add_model_options,
+    add_row_options,
+    add_source_options,
+    integer_option,
+)
 
 
 def register(subparsers: Any) -> None:
@@ -39,7 +44,7 @@ def register(subparsers: Any) -> None:
     )
     parser.add_argument(
         "--top-k",
-        type=int,
+        type=integer_option("--top-k", minimum=1),
         default=50,
         metavar="K",
         help="rows kept in each worst-rows list (default 50)",
@@ -49,28 +54,26 @@ def register(subparsers: Any) -> None:
 
 def settings_from_args(args: argparse.Namespace) -> Any:
     """Turn parsed options into the app's `Settings`."""
-    from triage.cli.options import DEFAULT_SAMPLE_ROWS, parse_reference
-    from triage.data.source import CsvOptions
+    from triage.cli.options import (
+        DEFAULT_SAMPLE_ROWS,
+        categorical_columns,
+        csv_options_from_args,
+        parse_reference,
+    )
     from triage.tui.settings import Settings
 
-    defaults = CsvOptions()
-    csv = CsvOptions(
-        separator=args.separator if args.separator is not None else defaults.separator,
-        has_header=not args.no_header,
-        null_values=tuple(args.null_value) if args.null_value else defaults.null_values,
-    )
     return Settings(
         data=args.data,
         target=args.target,
         terms=args.terms,
         weights=args.weights,
         where=args.where,
-        categorical=tuple(c.strip() for c in args.categorical.split(",") if c.strip()),
+        categorical=categorical_columns(args),
         intercept=not args.no_intercept,
         reference=parse_reference(args.reference),
         max_levels=args.max_levels,
         drop_invalid=args.drop_invalid,
-        csv=csv,
+        csv=csv_options_from_args(args),
         sample_rows=DEFAULT_SAMPLE_ROWS if args.rows is None else args.rows,
         is_full_at_start=args.rows is None,
         seed=args.seed,

@@ -52,8 +52,11 @@ class ErrorScreen(ModalScreen[None]):
         """Name the dismiss keys as the active keymap has them."""
         keys = self.app.active_bindings
         shown = sorted(
-            {self.app.get_key_display(b.binding) for b in keys.values()
-             if b.binding.action == "close_dialog"}
+            {
+                self.app.get_key_display(b.binding)
+                for b in keys.values()
+                if b.binding.action == "close_dialog"
+            }
         )
         self.query_one("#error-keys", Static).update(" or ".join(shown) + ": dismiss")
 

@@ -48,20 +48,32 @@ class ExportScreen(ModalScreen[ExportRequest | None]):
         """Lay out the choice, the count, the file field and the reminder."""
         ranking = CRITERION_TITLES.get(self.criterion, self.criterion)
         with Vertical(classes="dialog"):
-            yield Static("export rows (all original columns plus diagnostics)",
-                         classes="dialog--title", markup=False)
+            yield Static(
+                "export rows (all original columns plus diagnostics)",
+                classes="dialog--title",
+                markup=False,
+            )
             with RadioSet(id="export-what"):
-                yield RadioButton(f"marked rows ({self.n_marked:,})", value=self.n_marked > 0,
-                                  id="export-marked")
-                yield RadioButton(f"worst K rows: {ranking}", value=self.n_marked == 0,
-                                  id="export-worst")
-            yield Input(str(min(20, self.top_k)), id="export-k", type="integer",
-                        placeholder=f"K, at most {self.top_k}")
+                yield RadioButton(
+                    f"marked rows ({self.n_marked:,})", value=self.n_marked > 0, id="export-marked"
+                )
+                yield RadioButton(
+                    f"worst K rows: {ranking}", value=self.n_marked == 0, id="export-worst"
+                )
+            yield Input(
+                str(min(20, self.top_k)),
+                id="export-k",
+                type="integer",
+                placeholder=f"K, at most {self.top_k}",
+            )
             yield Input("", id="export-path", placeholder="rows.parquet or rows.csv")
             yield Checkbox("replace the file if it exists", value=False, id="export-replace")
             yield Static(f"note: {PERSONAL_DATA_NOTICE}", id="export-notice", markup=False)
-            yield Static("tab: next field   enter in the file field: write   escape: close",
-                         classes="dialog--keys", markup=False)
+            yield Static(
+                "tab: next field   enter in the file field: write   escape: close",
+                classes="dialog--keys",
+                markup=False,
+            )
 
     def on_mount(self) -> None:
         """Start in the file field, without a blinking cursor."""

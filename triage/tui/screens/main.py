@@ -86,9 +86,16 @@ COLUMN_ACTIONS: Final = frozenset(
 
 FIT_ACTIONS: Final = frozenset(
     {
-        "toggle_robust", "next_predictor", "next_criterion",
-        "next_segment_column", "open_row", "step_row", "toggle_mark",
-        "refit_without_marked", "clear_marks", "export_rows",
+        "toggle_robust",
+        "next_predictor",
+        "next_criterion",
+        "next_segment_column",
+        "open_row",
+        "step_row",
+        "toggle_mark",
+        "refit_without_marked",
+        "clear_marks",
+        "export_rows",
     }
 )
 """Actions that need a fit on screen."""
@@ -125,55 +132,194 @@ class MainScreen(Screen[None]):
 
     BINDINGS: ClassVar[list[BindingType]] = [
         *(_pane_binding(i, info.pane_id, info.title) for i, info in enumerate(PANES)),
-        Binding("greater_than_sign", "cycle_pane(1)", "next pane", show=False, id="next-pane",
-                tooltip="Bring the next pane to the front."),
-        Binding("less_than_sign", "cycle_pane(-1)", "previous pane", show=False,
-                id="previous-pane", tooltip="Bring the previous pane to the front."),
-        Binding("ctrl+o", "open_data", "open file", show=False, id="open-data",
-                tooltip="Open another Parquet, CSV or Arrow file, folder or glob."),
-        Binding("y", "set_target", "target", id="set-target",
-                tooltip="Make the column under the cursor the target of the model."),
-        Binding("space", "toggle_term", "term", show=False, id="toggle-term",
-                tooltip="Add the column under the cursor as a term, or remove its term."),
-        Binding("t", "cycle_transform", "transform", show=False, id="cycle-transform",
-                tooltip="Step the column's term through log, log1p, sqrt, square, std, none."),
-        Binding("c", "toggle_categorical", "categorical", show=False, id="toggle-categorical",
-                tooltip="Treat the column under the cursor as categories, or stop doing so."),
-        Binding("w", "set_weights", "weights", show=False, id="set-weights",
-                tooltip="Use the column under the cursor as case weights, or stop doing so."),
-        Binding("f", "edit_filter", "filter", show=False, id="edit-filter",
-                tooltip="Type a row filter in SQL syntax, e.g. depot = 'north' AND hour < 20."),
-        Binding("e", "edit_terms", "type terms", show=False, id="edit-terms",
-                tooltip="Type the terms, e.g. distance_km, log(stops), depot, or y ~ a + b."),
-        Binding("s", "quick_fit", "sample fit", id="quick-fit",
-                tooltip="Fit the model on a sample now (about a second on a large file)."),
-        Binding("a", "start_full_pass", "every row", id="start-full-pass",
-                tooltip="Fit and diagnose on every row in the background."),
-        Binding("x", "cancel_pass", "stop pass", id="cancel-pass",
-                tooltip="Stop the running pass; the sample results stay on screen."),
-        Binding("r", "toggle_robust", "robust SE", show=False, id="toggle-robust",
-                tooltip="Show standard errors robust to changing spread (HC3), or the usual ones."),
-        Binding("v", "next_predictor", "next input", show=False, id="next-predictor",
-                tooltip="Show residuals against the next numeric input of the model."),
-        Binding("o", "next_criterion", "next ranking", show=False, id="next-criterion",
-                tooltip="Rank the worst rows by the next criterion."),
-        Binding("g", "next_segment_column", "next group column", show=False,
-                id="next-segment-column", tooltip="Break residuals down by the next column."),
-        Binding("d", "open_row", "open row", show=False, id="open-row",
-                tooltip="Show the whole original row under the cursor with its diagnostics."),
-        Binding("n", "step_row(1)", "next row", show=False, id="next-row",
-                tooltip="Open the next row of the worst-rows list."),
-        Binding("p", "step_row(-1)", "previous row", show=False, id="previous-row",
-                tooltip="Open the previous row of the worst-rows list."),
-        Binding("m", "toggle_mark", "mark row", show=False, id="toggle-mark",
-                tooltip="Mark or unmark the current row for a what-if refit or an export."),
-        Binding("i", "refit_without_marked", "refit w/o marked", show=False,
-                id="refit-without-marked",
-                tooltip="Refit without the marked rows and show how each coefficient moved."),
-        Binding("M", "clear_marks", "clear marks", show=False, id="clear-marks",
-                tooltip="Unmark every row."),
-        Binding("E", "export_rows", "export", show=False, id="export-rows",
-                tooltip="Write the marked rows or the worst K rows to Parquet or CSV."),
+        Binding(
+            "greater_than_sign",
+            "cycle_pane(1)",
+            "next pane",
+            show=False,
+            id="next-pane",
+            tooltip="Bring the next pane to the front.",
+        ),
+        Binding(
+            "less_than_sign",
+            "cycle_pane(-1)",
+            "previous pane",
+            show=False,
+            id="previous-pane",
+            tooltip="Bring the previous pane to the front.",
+        ),
+        Binding(
+            "ctrl+o",
+            "open_data",
+            "open file",
+            show=False,
+            id="open-data",
+            tooltip="Open another Parquet, CSV or Arrow file, folder or glob.",
+        ),
+        Binding(
+            "y",
+            "set_target",
+            "target",
+            id="set-target",
+            tooltip="Make the column under the cursor the target of the model.",
+        ),
+        Binding(
+            "space",
+            "toggle_term",
+            "term",
+            show=False,
+            id="toggle-term",
+            tooltip="Add the column under the cursor as a term, or remove its term.",
+        ),
+        Binding(
+            "t",
+            "cycle_transform",
+            "transform",
+            show=False,
+            id="cycle-transform",
+            tooltip="Step the column's term through log, log1p, sqrt, square, std, none.",
+        ),
+        Binding(
+            "c",
+            "toggle_categorical",
+            "categorical",
+            show=False,
+            id="toggle-categorical",
+            tooltip="Treat the column under the cursor as categories, or stop doing so.",
+        ),
+        Binding(
+            "w",
+            "set_weights",
+            "weights",
+            show=False,
+            id="set-weights",
+            tooltip="Use the column under the cursor as case weights, or stop doing so.",
+        ),
+        Binding(
+            "f",
+            "edit_filter",
+            "filter",
+            show=False,
+            id="edit-filter",
+            tooltip="Type a row filter in SQL syntax, e.g. depot = 'north' AND hour < 20.",
+        ),
+        Binding(
+            "e",
+            "edit_terms",
+            "type terms",
+            show=False,
+            id="edit-terms",
+            tooltip="Type the terms, e.g. distance_km, log(stops), depot, or y ~ a + b.",
+        ),
+        Binding(
+            "s",
+            "quick_fit",
+            "sample fit",
+            id="quick-fit",
+            tooltip="Fit the model on a sample now (about a second on a large file).",
+        ),
+        Binding(
+            "a",
+            "start_full_pass",
+            "every row",
+            id="start-full-pass",
+            tooltip="Fit and diagnose on every row in the background.",
+        ),
+        Binding(
+            "x",
+            "cancel_pass",
+            "stop pass",
+            id="cancel-pass",
+            tooltip="Stop the running pass; the sample results stay on screen.",
+        ),
+        Binding(
+            "r",
+            "toggle_robust",
+            "robust SE",
+            show=False,
+            id="toggle-robust",
+            tooltip="Show standard errors robust to changing spread (HC3), or the usual ones.",
+        ),
+        Binding(
+            "v",
+            "next_predictor",
+            "next input",
+            show=False,
+            id="next-predictor",
+            tooltip="Show residuals against the next numeric input of the model.",
+        ),
+        Binding(
+            "o",
+            "next_criterion",
+            "next ranking",
+            show=False,
+            id="next-criterion",
+            tooltip="Rank the worst rows by the next criterion.",
+        ),
+        Binding(
+            "g",
+            "next_segment_column",
+            "next group column",
+            show=False,
+            id="next-segment-column",
+            tooltip="Break residuals down by the next column.",
+        ),
+        Binding(
+            "d",
+            "open_row",
+            "open row",
+            show=False,
+            id="open-row",
+            tooltip="Show the whole original row under the cursor with its diagnostics.",
+        ),
+        Binding(
+            "n",
+            "step_row(1)",
+            "next row",
+            show=False,
+            id="next-row",
+            tooltip="Open the next row of the worst-rows list.",
+        ),
+        Binding(
+            "p",
+            "step_row(-1)",
+            "previous row",
+            show=False,
+            id="previous-row",
+            tooltip="Open the previous row of the worst-rows list.",
+        ),
+        Binding(
+            "m",
+            "toggle_mark",
+            "mark row",
+            show=False,
+            id="toggle-mark",
+            tooltip="Mark or unmark the current row for a what-if refit or an export.",
+        ),
+        Binding(
+            "i",
+            "refit_without_marked",
+            "refit w/o marked",
+            show=False,
+            id="refit-without-marked",
+            tooltip="Refit without the marked rows and show how each coefficient moved.",
+        ),
+        Binding(
+            "M",
+            "clear_marks",
+            "clear marks",
+            show=False,
+            id="clear-marks",
+            tooltip="Unmark every row.",
+        ),
+        Binding(
+            "E",
+            "export_rows",
+            "export",
+            show=False,
+            id="export-rows",
+            tooltip="Write the marked rows or the worst K rows to Parquet or CSV.",
+        ),
     ]
 
     def __init__(self, settings: Settings, *, opened: SourceOpened | None = None) -> None:
@@ -272,9 +418,7 @@ class MainScreen(Screen[None]):
             panes.set_class(self.is_tiled and page == name, f"-page-{name}")
         shown: set[str] = set()
         for pane in self.query(Pane):
-            is_shown = pane.info.pane_id == self.front or (
-                self.is_tiled and pane.info.page == page
-            )
+            is_shown = pane.info.pane_id == self.front or (self.is_tiled and pane.info.page == page)
             pane.set_class(is_shown, "-shown")
             pane.set_class(pane.info.pane_id == self.front, "-front")
             if is_shown:
@@ -294,13 +438,16 @@ class MainScreen(Screen[None]):
     def refresh_pane_strip(self) -> None:
         """Show each pane's key, and the model-building keys, as the active keymap has them."""
         self.query_one(PaneStrip).entries = tuple(
-            (info.pane_id, self.key_display(f"pane-{info.pane_id}"), info.title)
-            for info in PANES
+            (info.pane_id, self.key_display(f"pane-{info.pane_id}"), info.title) for info in PANES
         )
         hints = [
-            ("set-target", "target"), ("toggle-term", "term"), ("cycle-transform", "transform"),
-            ("toggle-categorical", "categorical"), ("set-weights", "weights"),
-            ("edit-terms", "type terms"), ("edit-filter", "filter"),
+            ("set-target", "target"),
+            ("toggle-term", "term"),
+            ("cycle-transform", "transform"),
+            ("toggle-categorical", "categorical"),
+            ("set-weights", "weights"),
+            ("edit-terms", "type terms"),
+            ("edit-filter", "filter"),
         ]
         self.query_one(ColumnsPane).keys_hint = "  ".join(
             f"{self.key_display(binding_id)} {label}" for binding_id, label in hints
@@ -383,9 +530,11 @@ class MainScreen(Screen[None]):
                 self.open_data(path.strip())
 
         self.app.push_screen(
-            PromptScreen("open data (Parquet file, folder or glob; CSV; Arrow IPC); "
-                         "this starts a new session",
-                         placeholder="sample_parquet/deliveries.parquet"),
+            PromptScreen(
+                "open data (Parquet file, folder or glob; CSV; Arrow IPC); "
+                "this starts a new session",
+                placeholder="sample_parquet/deliveries.parquet",
+            ),
             apply,
         )
 
@@ -397,8 +546,14 @@ class MainScreen(Screen[None]):
         """
         if self.source is not None:
             fresh = replace(
-                self.settings, data=str(message.source.path), target=None, terms="",
-                weights=None, where=None, categorical=(), is_full_at_start=False,
+                self.settings,
+                data=str(message.source.path),
+                target=None,
+                terms="",
+                weights=None,
+                where=None,
+                categorical=(),
+                is_full_at_start=False,
             )
             self.app.switch_screen(MainScreen(fresh, opened=message))
             return
@@ -591,8 +746,13 @@ class MainScreen(Screen[None]):
         if spec is None:
             return
         current = self.current
-        if (is_full and current is not None and current.is_full_pass
-                and current.report.outcome.spec == spec and current.excluded == excluded):
+        if (
+            is_full
+            and current is not None
+            and current.is_full_pass
+            and current.report.outcome.spec == spec
+            and current.excluded == excluded
+        ):
             self.notify(f"fit #{current.number} already uses every row")
             return
         pass_id = next(self._pass_ids)
@@ -797,8 +957,9 @@ class MainScreen(Screen[None]):
         cached = self.row_cache.get(position)
         if cached is not None:
             self.row_cache.move_to_end(position)
-            row_pane.row = RowView(position, cached.frame, cached.diagnostics,
-                                   is_marked=position in self.marked)
+            row_pane.row = RowView(
+                position, cached.frame, cached.diagnostics, is_marked=position in self.marked
+            )
         else:
             row_pane.row = RowView(position, None, None, is_marked=position in self.marked)
             if self.current is not None:
@@ -820,8 +981,12 @@ class MainScreen(Screen[None]):
 
     def on_rows_fetched(self, message: RowsFetched) -> None:
         """Fill the Row pane when the row it waits for arrives; cache it."""
-        view = RowView(message.position, message.frame, message.diagnostics,
-                       is_marked=message.position in self.marked)
+        view = RowView(
+            message.position,
+            message.frame,
+            message.diagnostics,
+            is_marked=message.position in self.marked,
+        )
         self.row_cache[message.position] = view
         while len(self.row_cache) > ROW_CACHE_SIZE:
             self.row_cache.popitem(last=False)
@@ -851,8 +1016,9 @@ class MainScreen(Screen[None]):
         row_pane = self.query_one(RowPane)
         if row_pane.row is not None:
             view = row_pane.row
-            row_pane.row = RowView(view.position, view.frame, view.diagnostics,
-                                   is_marked=view.position in self.marked)
+            row_pane.row = RowView(
+                view.position, view.frame, view.diagnostics, is_marked=view.position in self.marked
+            )
         self.query_one(PassLine).marks = len(self.marked)
 
     def action_refit_without_marked(self) -> None:
@@ -873,8 +1039,9 @@ class MainScreen(Screen[None]):
         if self.current is None:
             return
         self.app.push_screen(
-            ExportScreen(n_marked=len(self.marked), criterion=self._criterion(),
-                         top_k=self.settings.top_k),
+            ExportScreen(
+                n_marked=len(self.marked), criterion=self._criterion(), top_k=self.settings.top_k
+            ),
             self._export_chosen,
         )
 
@@ -886,8 +1053,9 @@ class MainScreen(Screen[None]):
         else:
             positions = self.query_one(WorstPane).positions()[: request.k]
         if not positions:
-            self.show_error("there are no rows to export: mark rows first",
-                            title="nothing to export")
+            self.show_error(
+                "there are no rows to export: mark rows first", title="nothing to export"
+            )
             return
         self.write_export(self.current, positions, request)
 
@@ -900,8 +1068,9 @@ class MainScreen(Screen[None]):
         """
         assert self.source is not None
         try:
-            written = export_rows(self.source, fit.report.outcome, positions, request.path,
-                                  force=request.is_replacing)
+            written = export_rows(
+                self.source, fit.report.outcome, positions, request.path, force=request.is_replacing
+            )
         except TriageError as error:
             self.post_message(PassFailed(-1, str(error), "the export failed"))
             return

@@ -6,7 +6,6 @@ screen assigns results to their reactives and they turn them into text with `tri
 
 from __future__ import annotations
 
-import textwrap
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Final, Literal
@@ -22,14 +21,19 @@ from textual.widgets import DataTable, Static
 from triage.data.source import ROW_INDEX
 from triage.tui.session import ModelDraft, SessionFit, coefficient_shifts
 from triage.views.charts import render_binned, render_histogram
-from triage.views.format import format_count, format_number, format_p, truncate
+from triage.views.format import format_number, truncate
 from triage.views.text import (
     CRITERION_TITLES,
+    join_sections,
     model_formula,
     render_aliased,
     render_coefficients,
     render_data_summary,
     render_fit_quality,
+    render_flags,
+    render_residual_summary,
+    render_segments,
+    render_tests,
     rule,
     table,
 )
@@ -233,9 +237,8 @@ class FitPane(TextPane):
         outcome = report.outcome
         robust = robust_se_by_name(report) if self.is_robust else None
         sections = [
-            f"fit #{self.fit.number}: " + (
-                "computed on EVERY ROW" if self.fit.is_full_pass else "computed on a SAMPLE"
-            ),
+            f"fit #{self.fit.number}: "
+            + ("computed on EVERY ROW" if self.fit.is_full_pass else "computed on a SAMPLE"),
             render_data_summary(outcome.data, width=width),
             render_fit_quality(outcome.fit, width=width),
             render_coefficients(outcome.fit, robust_se=robust, width=width),
@@ -243,15 +246,20 @@ class FitPane(TextPane):
         ]
         if self.baseline is not None:
             sections.append(_what_if_text(self.baseline, self.fit, width))
-        return "\n\n".join(s for s in sections if s)
+        return join_sections(sections)
 
 
 def _what_if_text(before: SessionFit, after: SessionFit, width: int) -> str:
     """Describe how the coefficients and R² moved when the marked rows were left out."""
     shifts = coefficient_shifts(before.report.outcome.fit, after.report.outcome.fit)
     rows = [
-        [s.name, format_number(s.before), format_number(s.after),
-         format_number(s.after - s.before), format_number(s.change_in_se, digits=3)]
+        [
+            s.name,
+            format_number(s.before),
+            format_number(s.after),
+            format_number(s.after - s.before),
+            format_number(s.change_in_se, digits=3),
+        ]
         for s in shifts
     ]
     headers = ["term", f"fit #{before.number}", f"fit #{after.number}", "moved", "moved / SE"]
@@ -263,8 +271,11 @@ def _what_if_text(before: SessionFit, after: SessionFit, width: int) -> str:
         rule(f"what-if: without {left_out:,} marked rows (the file is unchanged)", width),
         body,
         f"R² {format_number(r2_before)} -> {format_number(r2_after)}",
-        truncate("moved / SE: the shift in standard errors of the first fit; a large value "
-                 "says those rows pull on that coefficient, not that they are wrong.", width),
+        truncate(
+            "moved / SE: the shift in standard errors of the first fit; a large value "
+            "says those rows pull on that coefficient, not that they are wrong.",
+            width,
+        ),
     ]
     return "\n".join(lines)
 
@@ -458,7 +469,11 @@ class TrendPane(ChartPane):
             return None
         bins = self.shown.report.diagnostics.binned.get("fitted", ())
         return render_binned(
-            bins, width, height, title="residual by fitted value", x_label="fitted value",
+            bins,
+            width,
+            height,
+            title="residual by fitted value",
+            x_label="fitted value",
             color=self.color(),
         )
 
@@ -483,8 +498,12 @@ class PredictorsPane(ChartPane):
         position = f"{names.index(self.predictor) + 1} of {len(names)}"
         bins = self.shown.report.diagnostics.binned.get(self.predictor, ())
         return render_binned(
-            bins, width, height, title=f"residual by {self.predictor} ({position})",
-            x_label=self.predictor, color=self.color(),
+            bins,
+            width,
+            height,
+            title=f"residual by {self.predictor} ({position})",
+            x_label=self.predictor,
+            color=self.color(),
         )
 
 
@@ -500,50 +519,17 @@ class FlagsPane(TextPane):
             self.refresh_text()
 
     def text_for(self, width: int) -> str | None:
-        """Compose the flags, the residual tests and the threshold counts."""
+        """Compose the hints, the residual tests and the shape of the residuals."""
         if self.shown is None:
             return None
         diagnostics = self.shown.report.diagnostics
-        lines = [rule("hints (aids to judgement, not verdicts)", width)]
-        if diagnostics.flags:
-            for flag in diagnostics.flags:
-                lines.append(textwrap.fill(flag.message, width, initial_indent="- ",
-                                           subsequent_indent="  "))
-        else:
-            lines.append("nothing stood out in the checks run; the charts may still show more.")
-        lines.append("")
-        lines.append(rule("tests on the residuals", width))
-        rows = [
-            [TEST_TITLES.get(name, name), format_number(test.statistic, digits=4),
-             format_p(test.p_value)]
-            for name, test in diagnostics.tests.items()
-        ]
-        lines.append(table(["test", "statistic", "p"], rows, align=["<", ">", ">"], width=width))
-        counts = diagnostics.counts
-        lines.append("")
-        lines.append(rule("rows past common-practice thresholds", width))
-        lines.append(table(
-            ["rule", "rows"],
+        return join_sections(
             [
-                ["|studentized residual| > 3", format_count(counts.studentized)],
-                [f"leverage > 2p/n = {format_number(counts.leverage_threshold, digits=3)}",
-                 format_count(counts.leverage)],
-                [f"Cook's distance > 4/n = {format_number(counts.cooks_threshold, digits=3)}",
-                 format_count(counts.cooks)],
-            ],
-            align=["<", ">"],
-            width=width,
-        ))
-        return "\n".join(lines)
-
-
-TEST_TITLES: Final[dict[str, str]] = {
-    "breusch_pagan": "Breusch–Pagan (Koenker): spread vs predictors",
-    "reset": "RESET: missing curvature",
-    "jarque_bera": "Jarque–Bera: residual shape",
-    "durbin_watson": "Durbin–Watson: neighbours in file order",
-}
-"""How each residual test is named on screen."""
+                render_flags(diagnostics.flags, width=width),
+                render_tests(diagnostics.tests, width=width),
+                render_residual_summary(diagnostics, width=width),
+            ]
+        )
 
 
 class WorstPane(Pane):
@@ -643,28 +629,23 @@ class SegmentsPane(TextPane):
         self.watch_shown()
 
     def text_for(self, width: int) -> str | None:
-        """Lay out one row per level: rows, mean residual, RMSE and t."""
+        """Lay out one row per level of the chosen column: rows, mean residual, RMSE and t."""
         if self.shown is None:
             return None
-        segments = self.shown.report.diagnostics.segments
-        if self.column is None or self.column not in segments:
+        diagnostics = self.shown.report.diagnostics
+        names = list(diagnostics.segments)
+        if self.column is None or self.column not in diagnostics.segments:
             return "no column to break residuals down by (text columns or few-valued numbers)"
-        names = list(segments)
-        levels = segments[self.column]
-        rows = [
-            [level.level, format_count(level.n), format_number(level.mean_resid),
-             format_number(level.rmse), format_number(level.t, digits=3)]
-            for level in levels
-        ]
-        heading = f"by {self.column} ({names.index(self.column) + 1} of {len(names)})"
-        lines = [
-            rule(heading, width),
-            table(["level", "rows", "mean residual", "RMSE", "t of mean"], rows,
-                  align=["<", ">", ">", ">", ">"], width=width),
-            truncate("t of mean: mean residual in standard errors; far from 0 suggests the "
-                     "model is biased for that level, worth a look rather than a conclusion.",
-                     width),
-        ]
-        if self.column in self.shown.report.diagnostics.segments_capped:
-            lines.append(truncate("many levels: the rarest are pooled as (other)", width))
-        return "\n".join(lines)
+        position = f"column {names.index(self.column) + 1} of {len(names)}"
+        body = render_segments(
+            self.column,
+            diagnostics.segments[self.column],
+            is_capped=self.column in diagnostics.segments_capped,
+            width=width,
+        )
+        note = truncate(
+            "t of mean: the mean residual in standard errors; far from 0 suggests "
+            "the model is biased for that level, worth a look, not a conclusion.",
+            width,
+        )
+        return f"{position}\n{body}\n{note}"
