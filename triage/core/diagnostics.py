@@ -22,7 +22,7 @@ from __future__ import annotations
 import itertools
 import math
 from collections.abc import Collection, Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from typing import TYPE_CHECKING, Final
 
 import numpy as np
@@ -150,6 +150,11 @@ class RowDiagnostics:
     student_internal: FloatArray
     studentized: FloatArray
     cooks: FloatArray
+
+    def take(self, indices: ArrayLike) -> RowDiagnostics:
+        """Return the diagnostics of the rows at `indices` (indices into these arrays)."""
+        picked = np.asarray(indices, dtype=np.intp)
+        return RowDiagnostics(**{f.name: getattr(self, f.name)[picked] for f in fields(self)})
 
 
 def _rank(fit: LinearFit) -> int:
@@ -563,10 +568,10 @@ class _Binned:
         self.min_x = math.inf
         self.max_x = -math.inf
 
-    def update(self, x: FloatArray, e: FloatArray) -> None:
+    def update(self, x: FloatArray, e: FloatArray, cell: IntArray) -> None:
+        """Add values `x` with residuals `e`, whose fine-grid cells (`fine_index`) are `cell`."""
         n_bins = self.counts.shape[0]
         b = bin_index(self.edges, x)
-        cell = fine_index(self.fine_edges, e)
         flat = np.bincount(b * self.n_cells + cell, minlength=n_bins * self.n_cells)
         self.counts += flat.reshape(n_bins, self.n_cells)
         self.sum_x += np.bincount(b, weights=x, minlength=n_bins)
@@ -800,12 +805,13 @@ class DiagnosticsAccumulator:
         self._moments.update(e)
         self._dw.update(e)
         self._hist += np.bincount(fine_index(self.config.hist_edges, e), minlength=self._hist.size)
-        self._fine += np.bincount(fine_index(self.config.fine_edges, e), minlength=self._fine.size)
+        cell = fine_index(self.config.fine_edges, e)  # shared by every binned variable
+        self._fine += np.bincount(cell, minlength=self._fine.size)
         self._min = min(self._min, float(e.min()))
         self._max = max(self._max, float(e.max()))
         for name, binned in self._binned.items():
             x = rd.fitted if name == "fitted" else batch.frame[name].cast(pl.Float64).to_numpy()
-            binned.update(x, e)
+            binned.update(x, e, cell)
         payload = {f: getattr(rd, f) for f in _WORST_FIELDS}
         scores: dict[Criterion, FloatArray] = {
             "abs_resid": np.abs(e),

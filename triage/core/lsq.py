@@ -262,6 +262,11 @@ class _ShiftedFactor:
 
     def to_shifted(self, x: FloatArray) -> FloatArray:
         """Return the kept columns of ``x`` minus their shift."""
+        if self.kept.size == x.shape[1]:
+            # No aliased column: subtracting keeps x's memory layout (design batches are
+            # Fortran-ordered); taking columns by index would copy into C order first,
+            # which measured 6 ms on a 65,536 x 9 batch against under 1 ms for this.
+            return x - self.x_shift
         return x[:, self.kept] - self.x_shift[self.kept]
 
     def back_transform(self) -> FloatArray:

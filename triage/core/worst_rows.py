@@ -48,10 +48,15 @@ class TopRows:
 
     def update(self, scores: FloatArray, rows: IntArray, payload: dict[str, FloatArray]) -> None:
         """Offer a batch of rows; keeps the best `k` of those kept and those offered."""
-        keep = np.flatnonzero(~np.isnan(scores))
-        scores, rows = scores[keep], rows[keep]
-        pick = _select_top(scores, rows, self.k)
-        self._combine(scores[pick], rows[pick], {f: payload[f][keep][pick] for f in self.fields})
+        if self.scores.size == self.k and self.k > 0:
+            # Once k rows are kept, only a score at or above the k-th best can enter (ties
+            # may win on row position); this drops nearly every row of later batches before
+            # the O(n) selection, and also drops NaN scores (NaN >= x is false).
+            keep = np.flatnonzero(scores >= self.scores[-1])
+        else:
+            keep = np.flatnonzero(~np.isnan(scores))
+        pick = keep[_select_top(scores[keep], rows[keep], self.k)]
+        self._combine(scores[pick], rows[pick], {f: payload[f][pick] for f in self.fields})
 
     def merge(self, other: TopRows) -> None:
         """Fold another `TopRows` with the same `k` and fields into this one."""

@@ -7,7 +7,7 @@ cancel, checks the event between batches, and raises `PassCancelled` within one 
 from __future__ import annotations
 
 import threading
-from collections.abc import Collection, Iterator, Sequence
+from collections.abc import Callable, Collection, Iterator, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
@@ -341,13 +341,15 @@ def run_report(
     is_ordered: bool = False,
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
+    on_fit: Callable[[FitOutcome], None] | None = None,
 ) -> ReportOutcome:
     """Fit `spec` (pass 1), then compute residual diagnostics on the same rows (pass 2).
 
     Parameters are those of `fit_model`, plus `top_k` (rows kept per worst-row list), `by`
     (columns to break residuals down by) and `is_ordered` (rows are in a meaningful order,
     so serial-correlation flags apply). Progress runs from 0 to 1 over both passes when every
-    row is streamed.
+    row is streamed. `on_fit`, if given, receives the fit as soon as pass 1 ends, so a screen
+    can show it while pass 2 runs.
     """
     _check_segment_columns(source, spec, by)
     plan = PassPlan.read(
@@ -371,6 +373,8 @@ def run_report(
         return report
 
     outcome = _fit(plan, on_progress=halve(0), cancel=cancel)
+    if on_fit is not None:
+        on_fit(outcome)
     diagnostics = _diagnose(
         plan,
         outcome,

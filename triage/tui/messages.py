@@ -11,7 +11,7 @@ if TYPE_CHECKING:
     import polars as pl
 
     from triage.core.diagnostics import RowDiagnostics
-    from triage.engine.passes import ReportOutcome
+    from triage.engine.passes import FitOutcome, ReportOutcome
     from triage.engine.progress import PassProgress
 
 
@@ -37,6 +37,16 @@ class PassProgressed(Message):
     def can_replace(self, message: Message) -> bool:
         """Return True for an older progress report of the same pass."""
         return isinstance(message, PassProgressed) and message.pass_id == self.pass_id
+
+
+@dataclass
+class FitComputed(Message):
+    """The fit of a sample pass is ready; its residual diagnostics are still running."""
+
+    pass_id: int
+    """Which pass it belongs to."""
+    outcome: FitOutcome
+    """The fit (pass 1) and the rows it used."""
 
 
 @dataclass

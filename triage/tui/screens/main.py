@@ -17,12 +17,13 @@ from textual.worker import Worker, WorkerState, get_current_worker
 
 from triage._typing import CRITERIA
 from triage.data import source as data_source
-from triage.data.source import CsvOptions
+from triage.data.source import ROW_INDEX, CsvOptions
 from triage.engine.export import export_rows
 from triage.engine.passes import diagnose_rows, run_report
 from triage.errors import PassCancelled, TriageError
 from triage.tui.messages import (
     ExportWritten,
+    FitComputed,
     PassFailed,
     PassFinished,
     PassProgressed,
@@ -58,6 +59,7 @@ if TYPE_CHECKING:
     from triage._typing import Criterion
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
+    from triage.engine.passes import DataSummary, FitOutcome
     from triage.engine.progress import PassProgress
     from triage.tui.settings import Settings
 
@@ -76,7 +78,7 @@ MAX_SEGMENT_COLUMNS: Final = 8
 MAX_SEGMENT_LEVELS: Final = 50
 """A numeric column with at most this many distinct values in the sample can segment."""
 
-ROW_CACHE_SIZE: Final = 64
+ROW_CACHE_SIZE: Final = 256
 """Original rows kept after fetching, so stepping back and forth reads nothing again."""
 
 COLUMN_ACTIONS: Final = frozenset(
@@ -775,6 +777,9 @@ class MainScreen(Screen[None]):
         def report_progress(progress: PassProgress) -> None:
             self.post_message(PassProgressed(job.pass_id, progress))
 
+        def report_fit(outcome: FitOutcome) -> None:
+            self.post_message(FitComputed(job.pass_id, outcome))
+
         try:
             report = run_report(
                 self.source,
@@ -787,6 +792,7 @@ class MainScreen(Screen[None]):
                 by=self.segment_columns,
                 on_progress=None if rows is not None else report_progress,
                 cancel=worker.cancelled_event,
+                on_fit=None if rows is None else report_fit,
             )
         except PassCancelled:
             self.post_message(PassStopped(job.pass_id))
@@ -835,7 +841,29 @@ class MainScreen(Screen[None]):
     def on_pass_failed(self, message: PassFailed) -> None:
         """Show why a pass (or opening the data) failed."""
         self._end_full_pass(message.pass_id)
+        if message.pass_id == self.sample_pass:
+            self.query_one(FitPane).drop_provisional()
+            self._show_basis()
         self.show_error(message.message, title=message.title)
+
+    def _show_basis(self) -> None:
+        """Say on the pass line which rows the fit on screen comes from."""
+        fit = self.current
+        self.query_one(PassLine).basis = (
+            "no fit yet"
+            if fit is None
+            else basis_text(fit.number, fit.report.outcome.data, excluded=bool(fit.excluded))
+        )
+
+    def on_fit_computed(self, message: FitComputed) -> None:
+        """Show a sample fit at once, while its residual diagnostics are still computed."""
+        if message.pass_id != self.sample_pass:
+            return
+        number = len(self.fits) + 1
+        self.query_one(FitPane).show_provisional(message.outcome, number)
+        data = message.outcome.data
+        basis = basis_text(number, data, excluded=bool(data.rows_excluded))
+        self.query_one(PassLine).basis = f"{basis}; residual diagnostics running"
 
     def on_pass_finished(self, message: PassFinished) -> None:
         """Add the fit to the session's list and show it; drop late results of older passes."""
@@ -880,7 +908,8 @@ class MainScreen(Screen[None]):
         segments.shown = fit
         self.query_one(FitsPane).current = fit.number
         self.row_cache.clear()
-        self.query_one(PassLine).basis = basis_text(fit)
+        self.prefetch_rows(self._worst_positions(), fit)
+        self._show_basis()
         self.set_class(fit.is_full_pass, "-every-row")
         self.set_class(not fit.is_full_pass, "-from-sample")
         self.refresh_bindings()
@@ -914,6 +943,7 @@ class MainScreen(Screen[None]):
         self.criterion_index += 1
         if self.current is not None:
             self.query_one(WorstPane).show(self.current, self._criterion())
+            self.prefetch_rows(self._worst_positions(), self.current)
 
     def action_next_segment_column(self) -> None:
         """Break residuals down by the next column."""
@@ -978,6 +1008,28 @@ class MainScreen(Screen[None]):
             return
         if not get_current_worker().is_cancelled:
             self.post_message(RowsFetched(position, frame, diagnostics))
+
+    @work(thread=True, exclusive=True, group="row-prefetch", exit_on_error=False)
+    def prefetch_rows(self, positions: list[int], fit: SessionFit) -> None:
+        """Read the listed worst rows ahead, in one pass over their row groups (thread worker).
+
+        Stepping through worst rows then redraws from the cache at once instead of reading
+        a row group per key press (measured: about 200 ms a step on a 20-million-row file).
+        """
+        wanted = [p for p in positions if p not in self.row_cache]
+        if self.source is None or not wanted:
+            return
+        try:
+            frame, diagnostics = diagnose_rows(self.source, fit.report.outcome, wanted)
+        except TriageError:
+            return  # stepping reads each row on its own and reports the error there
+        worker = get_current_worker()
+        for position in wanted:
+            if worker.is_cancelled:
+                return
+            row = frame.filter(frame[ROW_INDEX] == position).head(1)
+            picked = (diagnostics.rows == position).nonzero()[0][:1]
+            self.post_message(RowsFetched(position, row, diagnostics.take(picked)))
 
     def on_rows_fetched(self, message: RowsFetched) -> None:
         """Fill the Row pane when the row it waits for arrives; cache it."""
@@ -1086,13 +1138,17 @@ class MainScreen(Screen[None]):
         )
 
 
-def basis_text(fit: SessionFit) -> str:
+def basis_text(number: int, data: DataSummary, *, excluded: bool) -> str:
     """Say which rows a fit's results come from, for the pass line.
 
     Parameters
     ----------
-    fit : SessionFit
-        The fit on screen.
+    number : int
+        The fit's number in the session.
+    data : DataSummary
+        The rows it used.
+    excluded : bool
+        Marked rows were left out (a what-if refit).
 
     Returns
     -------
@@ -1101,10 +1157,8 @@ def basis_text(fit: SessionFit) -> str:
     """
     from triage.views.format import format_count
 
-    data = fit.report.outcome.data
     total = "?" if data.rows_in_source is None else format_count(data.rows_in_source)
     used = format_count(data.rows_used)
-    excluded = f", {format_count(data.rows_excluded)} marked left out" if fit.excluded else ""
-    if data.is_full_pass:
-        return f"fit #{fit.number} from EVERY ROW: {used} of {total} rows used{excluded}"
-    return f"fit #{fit.number} from a SAMPLE: {used} of {total} rows used{excluded}"
+    left_out = f", {format_count(data.rows_excluded)} marked left out" if excluded else ""
+    basis = "EVERY ROW" if data.is_full_pass else "a SAMPLE"
+    return f"fit #{number} from {basis}: {used} of {total} rows used{left_out}"

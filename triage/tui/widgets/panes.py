@@ -42,7 +42,7 @@ if TYPE_CHECKING:
     from rich.console import RenderableType
 
     from triage.core.diagnostics import RowDiagnostics, WorstRow
-    from triage.engine.passes import ReportOutcome
+    from triage.engine.passes import FitOutcome, ReportOutcome
 
 PaneId = Literal[
     "columns", "fit", "spread", "trend", "predictors", "flags", "worst", "segments", "row", "fits"
@@ -223,30 +223,54 @@ class FitPane(TextPane):
         """The fit a what-if refit is compared with."""
         self.is_robust = False
         """Show robust (HC3) standard errors beside the usual ones."""
+        self.provisional: tuple[int, FitOutcome] | None = None
+        """A sample fit (its number and outcome) shown while its diagnostics are computed."""
 
     def set_fit(self, fit: SessionFit, baseline: SessionFit | None, *, robust: bool) -> None:
         """Show a fit (and its baseline, for a what-if refit)."""
         self.fit, self.baseline, self.is_robust = fit, baseline, robust
+        self.provisional = None
         self.refresh_text()
+
+    def show_provisional(self, outcome: FitOutcome, number: int) -> None:
+        """Show a fit before its diagnostics arrive (the first screen appears sooner)."""
+        self.provisional = (number, outcome)
+        self.refresh_text()
+
+    def drop_provisional(self) -> None:
+        """Go back to the last finished fit (the pass that made the provisional one failed)."""
+        if self.provisional is not None:
+            self.provisional = None
+            self.refresh_text()
 
     def text_for(self, width: int) -> str | None:
         """Compose data, fit quality, coefficients and the what-if comparison."""
+        if self.provisional is not None:
+            number, outcome = self.provisional
+            header = f"fit #{number}: computed on a SAMPLE (residual diagnostics still running)"
+            return join_sections(_fit_sections(header, outcome, None, width))
         if self.fit is None:
             return None
         report = self.fit.report
-        outcome = report.outcome
         robust = robust_se_by_name(report) if self.is_robust else None
-        sections = [
-            f"fit #{self.fit.number}: "
-            + ("computed on EVERY ROW" if self.fit.is_full_pass else "computed on a SAMPLE"),
-            render_data_summary(outcome.data, width=width),
-            render_fit_quality(outcome.fit, width=width),
-            render_coefficients(outcome.fit, robust_se=robust, width=width),
-            render_aliased(outcome.fit, width=width),
-        ]
+        basis = "computed on EVERY ROW" if self.fit.is_full_pass else "computed on a SAMPLE"
+        sections = _fit_sections(f"fit #{self.fit.number}: {basis}", report.outcome, robust, width)
         if self.baseline is not None:
             sections.append(_what_if_text(self.baseline, self.fit, width))
         return join_sections(sections)
+
+
+def _fit_sections(
+    header: str, outcome: FitOutcome, robust: dict[str, float] | None, width: int
+) -> list[str]:
+    """Header, data summary, fit quality, coefficients and aliased terms of one fit."""
+    return [
+        header,
+        render_data_summary(outcome.data, width=width),
+        render_fit_quality(outcome.fit, width=width),
+        render_coefficients(outcome.fit, robust_se=robust, width=width),
+        render_aliased(outcome.fit, width=width),
+    ]
 
 
 def _what_if_text(before: SessionFit, after: SessionFit, width: int) -> str:
