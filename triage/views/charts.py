@@ -235,27 +235,30 @@ def render_binned(
     values = np.concatenate([mean, arrays["q10"][band_ok], arrays["q90"][band_ok], [0]])
     y_lo, y_hi = float(values.min()), float(values.max())
     pad = 0.05 * (y_hi - y_lo) if y_hi > y_lo else 1.0
-    finite_edges = np.concatenate([arrays["lo"], arrays["hi"]])
-    finite_edges = finite_edges[np.isfinite(finite_edges)]
-    x_lo, x_hi = float(finite_edges.min()), float(finite_edges.max())
+    # Bins hold about equal numbers of rows, so they are drawn evenly spaced and labelled
+    # with the mean value inside each: a long tail (a few very large values) would otherwise
+    # squeeze every other bin into a corner of the chart.
+    order = np.arange(x.size, dtype=np.float64)
+    n_ticks = min(x.size, _tick_count(width))
+    tick_at = np.unique(np.linspace(0, x.size - 1, n_ticks).round().astype(int))
 
     def steps() -> None:
         plt.hline(0.0, color=_ZERO_COLOR if color else None)
         if band_ok.any():
-            xb = x[band_ok].tolist()
+            xb = order[band_ok].tolist()
             band_color = _BAND_COLOR if color else None
             plt.plot(xb, arrays["q90"][band_ok].tolist(), marker="dot", color=band_color)
             plt.plot(xb, arrays["q10"][band_ok].tolist(), marker="dot", color=band_color)
         mean_color = _MEAN_COLOR if color else None
-        plt.plot(x.tolist(), mean.tolist(), marker="hd", color=mean_color)
-        plt.scatter(x.tolist(), mean.tolist(), marker="●", color=mean_color)
+        plt.plot(order.tolist(), mean.tolist(), marker="hd", color=mean_color)
+        plt.scatter(order.tolist(), mean.tolist(), marker="●", color=mean_color)
         plt.title(title)
-        plt.xlabel(f"{x_label}   (● mean residual, dotted: 10%-90% of residuals)")
+        plt.xlabel(f"{x_label} in bins of about equal rows (● mean residual, dotted: 10%-90%)")
         plt.ylim(y_lo - pad, y_hi + pad)
-        if x_hi > x_lo:
-            plt.xlim(x_lo, x_hi)
-        ticks, labels = _ticks(x_lo, x_hi, _tick_count(width))
-        plt.xticks(ticks, labels)
+        plt.xlim(-0.5, x.size - 0.5)
+        plt.xticks(
+            tick_at.tolist(), [format_number(x[i], digits=3, trim=True) for i in tick_at]
+        )
         y_ticks, y_labels = _ticks(y_lo, y_hi, max(2, min(5, height // 3)))
         plt.yticks(y_ticks, y_labels)
 
