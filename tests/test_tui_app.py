@@ -15,11 +15,12 @@ import numpy as np
 import polars as pl
 import pytest
 import statsmodels.api as sm
+from textual.widgets import Static
 
 from tests import tui_support
 from tests.tui_support import build_app, key_for, press_id, settle
 from triage._typing import CRITERIA
-from triage.tui.screens.dialogs import ErrorScreen, PromptScreen
+from triage.tui.screens.dialogs import ErrorScreen, PromptScreen, TextScreen
 from triage.tui.screens.export import ExportScreen
 from triage.tui.screens.help import HelpScreen
 from triage.tui.screens.main import MainScreen
@@ -786,3 +787,49 @@ async def test_tui_full_pass_is_not_repeated_when_the_sample_was_every_row(
         await settle(pilot)
         assert len(screen.fits) == 1 and screen.running_pass is None
         assert any("already uses every row" in n.message for n in app._notifications)
+
+
+# ------------------------------------------------------------------------------------------
+# comparison of the session's fits, robust and curvature checks (issue 6)
+
+
+async def test_tui_fits_pane_compares_fits_on_the_same_rows(
+    config_home: Path, demo_file: Path
+) -> None:
+    app = build_app(demo_file, target="minutes", terms="distance_km, stops")
+    async with app.run_test(size=SMALL) as pilot:
+        screen = await _full_fit_app(pilot)
+        await press_id(pilot, "edit-terms")
+        assert isinstance(app.screen, PromptScreen)
+        app.screen.query_one("#prompt-input").value = "distance_km, square(distance_km), stops"
+        await pilot.press("enter")
+        await settle(pilot)
+        # the demo file is smaller than the sample: both fits read every row, the same rows
+        assert screen.current is not None and screen.current.number == 2
+        compared, comparison = app.screen.query_one(FitsPane).comparison or ((), None)
+        assert compared == (1, 2)
+        assert comparison is not None
+        frame = pl.read_parquet(demo_file).with_columns(distance_sq=pl.col("distance_km") ** 2)
+        small = ols(frame, "minutes", ["distance_km", "stops"])  # statsmodels as oracle
+        large = ols(frame, "minutes", ["distance_km", "distance_sq", "stops"])
+        best_aic = 0 if small.aic < large.aic else 1
+        assert comparison.best["aic"] == best_aic
+        f_test = comparison.nested_f[0]
+        f_oracle, p_oracle, _ = large.compare_f_test(small)
+        np.testing.assert_allclose(f_test.f, f_oracle, rtol=1e-8)
+        np.testing.assert_allclose(f_test.p, p_oracle, rtol=1e-6, atol=1e-300)
+
+
+async def test_tui_checks_key_shows_huber_and_spline_results(
+    config_home: Path, demo_file: Path
+) -> None:
+    app = build_app(demo_file, target="minutes", terms="distance_km, stops")
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        await press_id(pilot, "run-checks")
+        await settle(pilot)
+        assert isinstance(app.screen, TextScreen)
+        text = str(app.screen.query_one("#text-body", Static).content)
+        assert "Huber" in text and "distance_km" in text and "spline" in text
+        await press_id(pilot, "close-dialog")
+        assert isinstance(app.screen, MainScreen)

@@ -564,7 +564,7 @@ class BlockSource(abc.ABC):
             raise SourceError(msg)
         blocks = np.unique(np.searchsorted(offsets, positions, side="right") - 1)
         frame = self._read_blocks(columns, blocks, offsets)
-        return frame.filter(pl.col(ROW_INDEX).is_in(pl.Series(positions)))
+        return frame.filter(pl.col(ROW_INDEX).is_in(pl.Series(positions).implode()))
 
     # -- shared helpers -----------------------------------------------------------------------
 

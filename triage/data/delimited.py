@@ -135,7 +135,7 @@ class CsvSource(BlockSource):
         query = (
             self._indexed()
             .slice(0, int(positions[-1]) + 1)
-            .filter(pl.col(ROW_INDEX).is_in(pl.Series(positions)))
+            .filter(pl.col(ROW_INDEX).is_in(pl.Series(positions).implode()))
             .select(ROW_INDEX, *columns)
         )
         with reading(self._path, self._kind):

@@ -290,7 +290,7 @@ def _sample_rows(
     drop = np.union1d(held, np.fromiter(exclude_rows, dtype=np.int64))
     if drop.size == 0:
         return frame
-    return frame.filter(~pl.col(ROW_INDEX).is_in(pl.Series(drop)))
+    return frame.filter(~pl.col(ROW_INDEX).is_in(pl.Series(drop).implode()))
 
 
 def _sample_kfold(

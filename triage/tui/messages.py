@@ -50,6 +50,16 @@ class FitComputed(Message):
 
 
 @dataclass
+class ChecksFinished(Message):
+    """The robust refit and the curvature check of one fit are ready, as text."""
+
+    number: int
+    """Number of the fit checked."""
+    text: str
+    """Both checks, rendered for reading."""
+
+
+@dataclass
 class PassFinished(Message):
     """A fit with its diagnostics finished, on a sample or on every row."""
 

@@ -3,12 +3,13 @@
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 from typing import TYPE_CHECKING, Final
 
 import polars as pl
 
+from triage.core.compare import Comparison, compare_fits
 from triage.core.spec import Term, build_spec, parse_terms, quote_name
 
 if TYPE_CHECKING:
@@ -256,3 +257,36 @@ def coefficient_shifts(before: LinearFit, after: LinearFit) -> list[CoefficientS
         moved = (a - b) / se if se > 0 else math.nan
         shifts.append(CoefficientShift(name, b, a, moved))
     return shifts
+
+
+def compare_session_fits(
+    fits: Sequence[SessionFit], current: SessionFit
+) -> tuple[tuple[int, ...], Comparison]:
+    """Compare the session's fits that used the same rows as `current`.
+
+    Information criteria and F tests only compare models fitted to the same rows, so only
+    fits with the same basis (sample or every row), filter, weights, marked rows left out
+    and row count take part.
+
+    Returns
+    -------
+    tuple of int, Comparison
+        The numbers of the fits compared (in session order) and their comparison.
+    """
+
+    def basis(fit: SessionFit) -> tuple[object, ...]:
+        outcome = fit.report.outcome
+        return (
+            fit.is_full_pass,
+            fit.excluded,
+            outcome.spec.where,
+            outcome.spec.weights,
+            outcome.spec.target,
+            outcome.data.rows_used,
+        )
+
+    same = [fit for fit in fits if basis(fit) == basis(current)]
+    comparison = compare_fits(
+        [f"#{fit.number}" for fit in same], [fit.report.outcome.fit for fit in same]
+    )
+    return tuple(fit.number for fit in same), comparison

@@ -1,4 +1,4 @@
-"""Small modal screens: an error the user dismisses, and a one-line prompt."""
+"""Small modal screens: an error the user dismisses, a one-line prompt, a page of text."""
 
 from __future__ import annotations
 
@@ -6,7 +6,7 @@ from typing import ClassVar
 
 from textual.app import ComposeResult
 from textual.binding import Binding, BindingType
-from textual.containers import Vertical
+from textual.containers import Vertical, VerticalScroll
 from textual.screen import ModalScreen
 from textual.widgets import Input, Static
 
@@ -99,4 +99,29 @@ class PromptScreen(ModalScreen[str | None]):
 
     def action_close_dialog(self) -> None:
         """Close without changing anything."""
+        self.dismiss(None)
+
+
+class TextScreen(ModalScreen[None]):
+    """Shows a page of plain text (a check's result) until the user closes it."""
+
+    BINDINGS: ClassVar[list[BindingType]] = [CLOSE_DIALOG]
+
+    def __init__(self, text: str, *, title: str) -> None:
+        super().__init__()
+        self.text = text
+        """The text, shown as given (scrolls when long)."""
+        self.title_text = title
+        """Short heading above the text."""
+
+    def compose(self) -> ComposeResult:
+        """Lay out the heading and the scrolling text."""
+        with Vertical(classes="dialog dialog--text"):
+            yield Static(self.title_text, classes="dialog--title", markup=False)
+            with VerticalScroll():
+                yield Static(self.text, id="text-body", markup=False)
+            yield Static("escape: close", classes="dialog--keys", markup=False)
+
+    def action_close_dialog(self) -> None:
+        """Close the page."""
         self.dismiss(None)

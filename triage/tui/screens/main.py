@@ -22,6 +22,7 @@ from triage.engine.export import export_rows
 from triage.engine.passes import diagnose_rows, run_report
 from triage.errors import PassCancelled, TriageError
 from triage.tui.messages import (
+    ChecksFinished,
     ExportWritten,
     FitComputed,
     PassFailed,
@@ -31,9 +32,9 @@ from triage.tui.messages import (
     RowsFetched,
     SourceOpened,
 )
-from triage.tui.screens.dialogs import ErrorScreen, PromptScreen
+from triage.tui.screens.dialogs import ErrorScreen, PromptScreen, TextScreen
 from triage.tui.screens.export import ExportRequest, ExportScreen
-from triage.tui.session import ModelDraft, SessionFit, column_profile
+from triage.tui.session import ModelDraft, SessionFit, column_profile, compare_session_fits
 from triage.tui.widgets.panes import (
     PANE_BY_ID,
     PANES,
@@ -313,6 +314,15 @@ class MainScreen(Screen[None]):
             show=False,
             id="clear-marks",
             tooltip="Unmark every row.",
+        ),
+        Binding(
+            "k",
+            "run_checks",
+            "checks",
+            show=False,
+            id="run-checks",
+            tooltip="Refit the fit on screen robustly (Huber) and with a spline per numeric "
+            "input, on the sample, and show which coefficients move and which inputs curve.",
         ),
         Binding(
             "E",
@@ -906,7 +916,9 @@ class MainScreen(Screen[None]):
         columns = self.segment_columns
         segments.column = columns[self.segment_index % len(columns)] if columns else None
         segments.shown = fit
-        self.query_one(FitsPane).current = fit.number
+        fits_pane = self.query_one(FitsPane)
+        fits_pane.current = fit.number
+        fits_pane.comparison = compare_session_fits(self.fits, fit)
         self.row_cache.clear()
         self.prefetch_rows(self._worst_positions(), fit)
         self._show_basis()
@@ -1008,6 +1020,43 @@ class MainScreen(Screen[None]):
             return
         if not get_current_worker().is_cancelled:
             self.post_message(RowsFetched(position, frame, diagnostics))
+
+    def action_run_checks(self) -> None:
+        """Run the robust refit and the curvature check on the fit on screen."""
+        if self.current is None:
+            self.notify("no fit yet: fit a model first")
+            return
+        self.notify(f"checking fit #{self.current.number} on the sample…")
+        self.run_checks(self.current)
+
+    @work(thread=True, exclusive=True, group="checks", exit_on_error=False)
+    def run_checks(self, fit: SessionFit) -> None:
+        """Refit `fit` by Huber's method and with splines, on the sample (thread worker)."""
+        from triage.engine.compare import curvature_check_outcome, robust_check_outcome
+        from triage.views.compare import render_curvature_check, render_robust_check
+
+        outcome = fit.report.outcome
+        try:
+            robust = robust_check_outcome(outcome, exclude_rows=fit.excluded)
+            curvature = curvature_check_outcome(
+                outcome, folds=5, seed=self.settings.seed, exclude_rows=fit.excluded
+            )
+        except TriageError as error:
+            self.post_message(PassFailed(-1, str(error), "the checks failed"))
+            return
+        width = max(self.app.size.width - 6, 60)  # the text dialog spans the screen
+        text = "\n\n".join(
+            (
+                render_robust_check(robust, width=width),
+                render_curvature_check(curvature, width=width),
+            )
+        )
+        if not get_current_worker().is_cancelled:
+            self.post_message(ChecksFinished(fit.number, text))
+
+    def on_checks_finished(self, message: ChecksFinished) -> None:
+        """Show the checks' results on a page of their own."""
+        self.app.push_screen(TextScreen(message.text, title=f"checks of fit #{message.number}"))
 
     @work(thread=True, exclusive=True, group="row-prefetch", exit_on_error=False)
     def prefetch_rows(self, positions: list[int], fit: SessionFit) -> None:

@@ -6,6 +6,7 @@ screen assigns results to their reactives and they turn them into text with `tri
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Final, Literal
@@ -21,7 +22,7 @@ from textual.widgets import DataTable, Static
 from triage.data.source import ROW_INDEX
 from triage.tui.session import ModelDraft, SessionFit, coefficient_shifts
 from triage.views.charts import render_binned, render_histogram
-from triage.views.format import format_number, truncate
+from triage.views.format import format_count, format_number, truncate
 from triage.views.text import (
     CRITERION_TITLES,
     join_sections,
@@ -41,6 +42,7 @@ from triage.views.text import (
 if TYPE_CHECKING:
     from rich.console import RenderableType
 
+    from triage.core.compare import Comparison, Criterion
     from triage.core.diagnostics import RowDiagnostics, WorstRow
     from triage.engine.passes import FitOutcome, ReportOutcome
 
@@ -311,6 +313,8 @@ class FitsPane(Pane):
     """The session's fits, oldest first."""
     current: reactive[int | None] = reactive(None)
     """Number of the fit on screen."""
+    comparison: reactive[tuple[tuple[int, ...], Comparison] | None] = reactive(None)
+    """Numbers of the fits on the same rows as the one on screen, and their comparison."""
 
     def compose(self) -> ComposeResult:
         """Add the list of fits."""
@@ -320,7 +324,13 @@ class FitsPane(Pane):
 
     def on_mount(self) -> None:
         """Name the table's columns."""
-        _table(self, "fits-table").add_columns("", "#", "rows", "R²", "model")
+        _table(self, "fits-table").add_columns(
+            "", "#", "rows", "n", "R²", "adj. R²", "AIC", "BIC", "model"
+        )
+
+    def watch_comparison(self) -> None:
+        """Refill the list when the comparison changes."""
+        self._fill()
 
     def watch_fits(self) -> None:
         """Refill the list when a fit is added."""
@@ -335,8 +345,19 @@ class FitsPane(Pane):
             return
         table = _table(self, "fits-table")
         table.clear()
+        compared, comparison = self.comparison or ((), None)
+        best = {} if comparison is None else comparison.best
+
+        def cell(fit: SessionFit, criterion: Criterion, value: float) -> str:
+            # AIC and BIC are compared by differences of a few units: print them whole.
+            whole = criterion in ("aic", "bic") and math.isfinite(value)
+            text = f"{value:,.1f}" if whole else format_number(value)
+            if fit.number in compared and best.get(criterion) == compared.index(fit.number):
+                text += " ◆"
+            return text
+
         for fit in self.fits:
-            outcome = fit.report.outcome
+            lsq = fit.report.outcome.fit
             rows = "every row" if fit.is_full_pass else "sample"
             if fit.excluded:
                 rows += f" -{len(fit.excluded)}"
@@ -344,15 +365,23 @@ class FitsPane(Pane):
                 ">" if fit.number == self.current else "",
                 str(fit.number),
                 rows,
-                format_number(outcome.fit.r2),
-                model_formula(outcome.spec),
+                format_count(lsq.n),
+                format_number(lsq.r2),
+                cell(fit, "adj_r2", lsq.adj_r2),
+                cell(fit, "aic", lsq.aic),
+                cell(fit, "bic", lsq.bic),
+                model_formula(fit.report.outcome.spec),
                 key=str(fit.number),
             )
         if self.current is not None and self.fits:
             table.move_cursor(row=self.current - 1, animate=False)
-        self.query_one(".pane--note", Static).update(
-            f"{len(self.fits)} fits this session; enter shows one again"
-        )
+        note = f"{len(self.fits)} fits this session; enter shows one again"
+        if len(compared) > 1:
+            note += (
+                f"; ◆ best of fits {', '.join(f'#{n}' for n in compared)} (same rows as the "
+                "one on screen; R² is never marked: it rises with every term)"
+            )
+        self.query_one(".pane--note", Static).update(note)
 
 
 @dataclass(frozen=True, eq=False)
