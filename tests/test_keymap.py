@@ -45,11 +45,11 @@ def test_keymap_merge_order_user_then_command_line(config_home: Path, tmp_path: 
     user = user_keymap_path()
     user.write_text('quick-fit = "z"\npane-fit = "F"\n', encoding="utf-8")
     extra = tmp_path / "mine.toml"
-    extra.write_text('quick-fit = "k"\n', encoding="utf-8")
+    extra.write_text('quick-fit = "j"\n', encoding="utf-8")
     ids = all_binding_ids()
     assert load_keymap(ids)["quick-fit"] == "z"
     merged = load_keymap(ids, extra_file=extra)
-    assert merged["quick-fit"] == "k"
+    assert merged["quick-fit"] == "j"
     assert merged["pane-fit"] == "F"
     with_keyset = load_keymap(ids, keyset="fkeys", extra_file=extra)
     assert with_keyset["pane-fit"] == "F"  # the user file wins over the alternative
