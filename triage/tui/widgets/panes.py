@@ -375,7 +375,8 @@ class FitsPane(Pane):
             )
         if self.current is not None and self.fits:
             table.move_cursor(row=self.current - 1, animate=False)
-        note = f"{len(self.fits)} fits this session; enter shows one again"
+        plural = "" if len(self.fits) == 1 else "s"
+        note = f"{len(self.fits)} fit{plural} this session; enter shows one again"
         if len(compared) > 1:
             note += (
                 f"; ◆ best of fits {', '.join(f'#{n}' for n in compared)} (same rows as the "
