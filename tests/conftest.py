@@ -12,7 +12,13 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-NIST_DIR = Path(os.environ.get("TRIAGE_NIST_DIR", "/work/shared/reference/nist-strd"))
+NIST_DIR = Path(
+    os.environ.get(
+        "TRIAGE_NIST_DIR",
+        # the shared/ folder sits beside the checkout (in CI too)
+        Path(__file__).resolve().parents[2] / "shared" / "reference" / "nist-strd",
+    )
+)
 """Folder of the NIST StRD linear regression files (see its README.md)."""
 
 NIST_NAMES = (
