@@ -24,16 +24,16 @@ __all__ = [
     "Comparison",
     "ModelScore",
     "NestedFTest",
+    "RefitShift",
     "best_marks",
     "compare_fits",
     "is_nested",
     "nested_f_test",
+    "refit_shifts",
     "score_fit",
 ]
 
-Criterion: TypeAlias = Literal[
-    "adj_r2", "aic", "bic", "holdout_r2", "holdout_rmse", "cv_rmse"
-]
+Criterion: TypeAlias = Literal["adj_r2", "aic", "bic", "holdout_r2", "holdout_rmse", "cv_rmse"]
 """A model-choice criterion that can be marked best."""
 
 CRITERIA: Final[Mapping[Criterion, Literal["max", "min"]]] = {
@@ -285,3 +285,42 @@ def compare_fits(
         if i != j and fits[i].n == fits[j].n and is_nested(fits[i].names, fits[j].names)
     )
     return Comparison(scores, tests, best_marks(scores))
+
+
+@dataclass(frozen=True)
+class RefitShift:
+    """How one coefficient moved between a fit and its refit on other rows (a what-if)."""
+
+    name: str
+    """Design column name."""
+    before: float
+    """Estimate in the fit with every row (NaN when absent or aliased)."""
+    after: float
+    """Estimate in the refit without the marked rows (NaN when absent or aliased)."""
+    change_in_se: float
+    """`(after - before)` in units of the first fit's standard error (NaN when unknown)."""
+
+
+def refit_shifts(before: LinearFit, after: LinearFit) -> list[RefitShift]:
+    """Pair the coefficients of two fits by name, with the shift in standard errors.
+
+    Parameters
+    ----------
+    before, after : LinearFit
+        The fit and its refit without the marked rows.
+
+    Returns
+    -------
+    list of RefitShift
+        Names of `before` first, then names only `after` has.
+    """
+    b_index = {name: i for i, name in enumerate(before.names)}
+    a_index = {name: i for i, name in enumerate(after.names)}
+    shifts = []
+    for name in [*before.names, *(n for n in after.names if n not in b_index)]:
+        b = float(before.coef[b_index[name]]) if name in b_index else math.nan
+        a = float(after.coef[a_index[name]]) if name in a_index else math.nan
+        se = float(before.std_error[b_index[name]]) if name in b_index else math.nan
+        moved = (a - b) / se if se > 0 else math.nan
+        shifts.append(RefitShift(name, b, a, moved))
+    return shifts

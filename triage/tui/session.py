@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 from typing import TYPE_CHECKING, Final
@@ -13,7 +12,6 @@ from triage.core.compare import Comparison, compare_fits
 from triage.core.spec import Term, build_spec, parse_terms, quote_name
 
 if TYPE_CHECKING:
-    from triage.core.lsq import LinearFit
     from triage.core.spec import ModelSpec
     from triage.engine.passes import ReportOutcome
 
@@ -159,104 +157,6 @@ class SessionFit:
     def is_full_pass(self) -> bool:
         """True when every row of the source was read."""
         return self.report.outcome.data.is_full_pass
-
-
-def column_profile(schema: Mapping[str, pl.DataType], sample: pl.DataFrame) -> pl.DataFrame:
-    """Profile the columns for the Columns pane: type, share missing and a few numbers.
-
-    Parameters
-    ----------
-    schema : mapping of str to polars data type
-        Every column of the source.
-    sample : polars.DataFrame
-        Rows read from the source (a sample; the numbers describe it, not the whole file).
-
-    Returns
-    -------
-    polars.DataFrame
-        One row per column: `name`, `dtype`, `missing` (share of null or NaN values),
-        `distinct` (distinct values in the sample), `low`, `mean`, `high` (numeric columns;
-        null otherwise) and `top` (most frequent value, for other columns).
-    """
-    rows = []
-    n = max(sample.height, 1)
-    for name, dtype in schema.items():
-        series = sample[name] if name in sample.columns else pl.Series(name, [], dtype=dtype)
-        missing = series.null_count()
-        if dtype.is_float():
-            missing += int(series.is_nan().sum())
-        low = mean = high = None
-        top = None
-        if dtype.is_numeric() and series.len() > missing:
-            values = series.cast(pl.Float64).fill_nan(None).drop_nulls()
-            low, mean, high = values.min(), values.mean(), values.max()
-        elif series.len() > missing:
-            counts = series.drop_nulls().value_counts(sort=True)
-            top = str(counts[name][0])
-        rows.append(
-            {
-                "name": name,
-                "dtype": str(dtype),
-                "missing": missing / n,
-                "distinct": series.n_unique(),
-                "low": low,
-                "mean": mean,
-                "high": high,
-                "top": top,
-            }
-        )
-    return pl.DataFrame(
-        rows,
-        schema={
-            "name": pl.String,
-            "dtype": pl.String,
-            "missing": pl.Float64,
-            "distinct": pl.Int64,
-            "low": pl.Float64,
-            "mean": pl.Float64,
-            "high": pl.Float64,
-            "top": pl.String,
-        },
-    )
-
-
-@dataclass(frozen=True)
-class CoefficientShift:
-    """How one coefficient moved between a fit and its what-if refit."""
-
-    name: str
-    """Design column name."""
-    before: float
-    """Estimate in the fit with every row (NaN when absent or aliased)."""
-    after: float
-    """Estimate in the refit without the marked rows (NaN when absent or aliased)."""
-    change_in_se: float
-    """`(after - before)` in units of the first fit's standard error (NaN when unknown)."""
-
-
-def coefficient_shifts(before: LinearFit, after: LinearFit) -> list[CoefficientShift]:
-    """Pair the coefficients of two fits by name, with the shift in standard errors.
-
-    Parameters
-    ----------
-    before, after : LinearFit
-        The fit and its refit without the marked rows.
-
-    Returns
-    -------
-    list of CoefficientShift
-        Names of `before` first, then names only `after` has.
-    """
-    b_index = {name: i for i, name in enumerate(before.names)}
-    a_index = {name: i for i, name in enumerate(after.names)}
-    shifts = []
-    for name in [*before.names, *(n for n in after.names if n not in b_index)]:
-        b = float(before.coef[b_index[name]]) if name in b_index else math.nan
-        a = float(after.coef[a_index[name]]) if name in a_index else math.nan
-        se = float(before.std_error[b_index[name]]) if name in b_index else math.nan
-        moved = (a - b) / se if se > 0 else math.nan
-        shifts.append(CoefficientShift(name, b, a, moved))
-    return shifts
 
 
 def compare_session_fits(

@@ -256,9 +256,7 @@ def render_binned(
         plt.xlabel(f"{x_label} in bins of about equal rows (● mean residual, dotted: 10%-90%)")
         plt.ylim(y_lo - pad, y_hi + pad)
         plt.xlim(-0.5, x.size - 0.5)
-        plt.xticks(
-            tick_at.tolist(), [format_number(x[i], digits=3, trim=True) for i in tick_at]
-        )
+        plt.xticks(tick_at.tolist(), [format_number(x[i], digits=3, trim=True) for i in tick_at])
         y_ticks, y_labels = _ticks(y_lo, y_hi, max(2, min(5, height // 3)))
         plt.yticks(y_ticks, y_labels)
 

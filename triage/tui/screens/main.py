@@ -17,6 +17,7 @@ from textual.worker import Worker, WorkerState, get_current_worker
 
 from triage._typing import CRITERIA
 from triage.data import source as data_source
+from triage.data.profile import profile_columns
 from triage.data.source import ROW_INDEX, CsvOptions
 from triage.engine.export import export_rows
 from triage.engine.passes import diagnose_rows, run_report
@@ -34,7 +35,7 @@ from triage.tui.messages import (
 )
 from triage.tui.screens.dialogs import ErrorScreen, PromptScreen, TextScreen
 from triage.tui.screens.export import ExportRequest, ExportScreen
-from triage.tui.session import ModelDraft, SessionFit, column_profile, compare_session_fits
+from triage.tui.session import ModelDraft, SessionFit, compare_session_fits
 from triage.tui.widgets.panes import (
     PANE_BY_ID,
     PANES,
@@ -528,7 +529,7 @@ class MainScreen(Screen[None]):
             sample = source.read_sample(
                 list(schema), n_rows=PROFILE_ROWS, seed=self.settings.seed, design="groups"
             )
-            profile = column_profile(schema, sample.frame)
+            profile = profile_columns(schema, sample.frame)
         except TriageError as error:
             self.post_message(PassFailed(0, str(error), "cannot open the data"))
             return

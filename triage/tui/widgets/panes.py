@@ -19,8 +19,9 @@ from textual.reactive import reactive
 from textual.widget import Widget
 from textual.widgets import DataTable, Static
 
+from triage.core.compare import refit_shifts
 from triage.data.source import ROW_INDEX
-from triage.tui.session import ModelDraft, SessionFit, coefficient_shifts
+from triage.tui.session import ModelDraft, SessionFit
 from triage.views.charts import render_binned, render_histogram
 from triage.views.format import format_count, format_number, truncate
 from triage.views.text import (
@@ -137,7 +138,7 @@ class ColumnsPane(Pane):
     """The columns of the source, their role in the model and a profile from the sample."""
 
     profile: reactive[pl.DataFrame | None] = reactive(None, always_update=True)
-    """One row per column from `column_profile`, None until the data opens."""
+    """One row per column from `profile_columns`, None until the data opens."""
     draft: reactive[ModelDraft] = reactive(ModelDraft)
     """The model being built (roles are shown beside the columns)."""
     keys_hint: reactive[str] = reactive("")
@@ -277,7 +278,7 @@ def _fit_sections(
 
 def _what_if_text(before: SessionFit, after: SessionFit, width: int) -> str:
     """Describe how the coefficients and R² moved when the marked rows were left out."""
-    shifts = coefficient_shifts(before.report.outcome.fit, after.report.outcome.fit)
+    shifts = refit_shifts(before.report.outcome.fit, after.report.outcome.fit)
     rows = [
         [
             s.name,
