@@ -543,7 +543,7 @@ def test_views_data_summary_says_sample_and_drops(
 
 
 def test_views_no_intercept_says_uncentered(sampled_fit: FitOutcome) -> None:
-    assert model_formula(sampled_fit.spec) == "y ~ x + z - 1"
+    assert model_formula(sampled_fit.spec) == "y ~ x + z  (no intercept)"
     quality = render_fit_quality(sampled_fit.fit)
     assert "uncentered" in quality
     assert fit_to_json(sampled_fit)["model"]["intercept"] is False

@@ -161,7 +161,10 @@ def render_data_summary(data: DataSummary, *, width: int = 100) -> str:
 
 
 def model_formula(spec: ModelSpec) -> str:
-    """Write the model in Wilkinson–Rogers form, e.g. ``minutes ~ distance + log(weight) - 1``.
+    """Write the model as ``target ~ term + term``, the published Wilkinson–Rogers form.
+
+    The intercept is not written into the formula (our term syntax has it as a separate
+    option): a model without one, or with no terms, says so in words after the formula.
 
     Parameters
     ----------
@@ -171,14 +174,13 @@ def model_formula(spec: ModelSpec) -> str:
     Returns
     -------
     str
-        ``target ~ term + term``, with ``- 1`` when the model has no intercept and
-        ``1`` alone when it has no terms.
+        E.g. ``minutes ~ distance_km + log(weight_kg)  (no intercept)``.
     """
     labels = [term.label for term in spec.terms]
-    rhs = " + ".join(labels) if labels else ("1" if spec.intercept else "0")
-    if labels and not spec.intercept:
-        rhs += " - 1"
-    return f"{quote_name(spec.target)} ~ {rhs}"
+    formula = f"{quote_name(spec.target)} ~ {' + '.join(labels)}".rstrip()
+    if not labels:
+        return f"{formula}  (intercept only)"
+    return formula if spec.intercept else f"{formula}  (no intercept)"
 
 
 def render_model(spec: ModelSpec, *, width: int = 100) -> str:
