@@ -539,3 +539,19 @@ def test_diagnostics_ordered_rows_flag_serial_correlation_and_trend() -> None:
         assert ("serial-correlation" in codes) == (is_ordered and not 1.5 <= dw <= 2.5)
         assert ("shared-trend" in codes) == (is_ordered and res.rsquared > 0.95)
     assert dw < 1.5  # the random walk noise must actually trip the rule
+
+
+@pytest.mark.parametrize("n_edges", [2, 3, 21, 200])
+def test_bin_lookup_equals_searchsorted_bins(rng: np.random.Generator, n_edges: int) -> None:
+    # numpy.searchsorted (through bin_index) as oracle, on values that sit exactly on edges,
+    # outside the range, and edges crowded into one end (many edges per lookup cell).
+    from triage.core.binning import BinLookup, bin_index
+
+    raw = np.concatenate([rng.lognormal(size=5_000), rng.normal(size=5_000) * 1e-6])
+    edges = np.unique(np.quantile(raw, np.linspace(0, 1, n_edges)))
+    values = np.concatenate([raw, edges, edges + 1e-15, [-1e9, 1e9], rng.normal(size=3_000)])
+    np.testing.assert_array_equal(BinLookup(edges).index(values), bin_index(edges, values))
+    constant = np.array([2.0, 2.0])
+    np.testing.assert_array_equal(
+        BinLookup(constant).index(values), bin_index(constant, values)
+    )

@@ -4,9 +4,15 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import os
 import sys
 from collections.abc import Sequence
 from typing import NoReturn
+
+# One BLAS thread: the passes decode data in a read-ahead thread that keeps about 1.9 of
+# 2 cores busy, and a second BLAS thread competing with it was always slower (DESIGN.md,
+# "Memory and speed"). Set before numpy loads; a user's own setting wins.
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 from triage import __version__
 from triage.errors import TriageError

@@ -68,6 +68,54 @@ def bin_index(edges: FloatArray, values: FloatArray) -> IntArray:
     return np.clip(idx, 0, last).astype(np.int64)
 
 
+class BinLookup:
+    """Find bins like `bin_index`, but by a uniform lookup table plus exact corrections.
+
+    `numpy.searchsorted` took about 2.5 ms per 65,536 values on 21 edges here (it is the
+    main cost of the binned residual charts, one call per chart and batch). A table of
+    equal-width cells over the edges' range gives each value a first guess in O(1); moving
+    the guess up or down while an edge is crossed makes the answer exactly that of
+    `bin_index`, whatever the rounding.
+
+    Parameters
+    ----------
+    edges : ndarray of shape (n_edges,)
+        Increasing bin edges (as `quantile_edges` returns).
+    cells : int, default=1024
+        Cells of the lookup table.
+    """
+
+    def __init__(self, edges: FloatArray, *, cells: int = 1024) -> None:
+        self.edges = np.asarray(edges, dtype=np.float64)
+        self.last = max(self.edges.size - 2, 0)
+        self.low = float(self.edges[0])
+        span = float(self.edges[-1]) - self.low
+        self.scale = cells / span if span > 0 and np.isfinite(span) else 0.0
+        self.cells = cells
+        starts = self.low + np.arange(cells) / self.scale if self.scale else np.full(1, self.low)
+        self.table = bin_index(self.edges, starts)
+
+    def index(self, values: FloatArray) -> IntArray:
+        """Bin of each value, equal to ``bin_index(edges, values)``."""
+        if not self.scale or not np.isfinite(values).all():
+            return bin_index(self.edges, values)
+        cell = ((values - self.low) * self.scale).astype(np.int64)
+        np.clip(cell, 0, self.cells - 1, out=cell)
+        idx = self.table[cell]
+        edges = self.edges
+        while True:  # move up while the value is at or past the next edge
+            up = (idx < self.last) & (values >= edges[np.minimum(idx + 1, edges.size - 1)])
+            if not up.any():
+                break
+            idx += up
+        while True:  # move down while the value is below the bin's own edge
+            down = (idx > 0) & (values < edges[idx])
+            if not down.any():
+                break
+            idx -= down
+        return idx
+
+
 def fine_index(edges: FloatArray, values: FloatArray) -> IntArray:
     """Cell of each value on a fine grid with tails (see the module docstring).
 

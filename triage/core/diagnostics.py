@@ -30,7 +30,12 @@ import polars as pl
 from numpy.typing import ArrayLike, NDArray
 
 from triage._typing import CRITERIA, Criterion
-from triage.core.binning import bin_index, fine_index, quantile_edges, quantiles_from_counts
+from triage.core.binning import (
+    BinLookup,
+    fine_index,
+    quantile_edges,
+    quantiles_from_counts,
+)
 from triage.core.distributions import norm_sf
 from triage.core.moments import StreamMoments, pool_groups
 from triage.core.residual_tests import (
@@ -557,6 +562,7 @@ class _Binned:
 
     def __init__(self, edges: FloatArray, fine_edges: FloatArray) -> None:
         self.edges = edges
+        self.lookup = BinLookup(edges)
         self.fine_edges = fine_edges
         n_bins = max(edges.size - 1, 1)
         self.n_cells = fine_edges.size + 1
@@ -571,7 +577,7 @@ class _Binned:
     def update(self, x: FloatArray, e: FloatArray, cell: IntArray) -> None:
         """Add values `x` with residuals `e`, whose fine-grid cells (`fine_index`) are `cell`."""
         n_bins = self.counts.shape[0]
-        b = bin_index(self.edges, x)
+        b = self.lookup.index(x)
         flat = np.bincount(b * self.n_cells + cell, minlength=n_bins * self.n_cells)
         self.counts += flat.reshape(n_bins, self.n_cells)
         self.sum_x += np.bincount(b, weights=x, minlength=n_bins)
