@@ -97,11 +97,6 @@ class ModelScore:
     notes: tuple[str, ...]
     """Plain-language remarks, e.g. that no degrees of freedom are left."""
 
-    @property
-    def has_df_left(self) -> bool:
-        """True when the fit has residual degrees of freedom to judge it by."""
-        return self.df_resid > 0
-
     def value(self, criterion: Criterion) -> float | None:
         """Return the value of `criterion` for this model."""
         number: float | None = getattr(self, criterion)

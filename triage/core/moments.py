@@ -82,11 +82,6 @@ class StreamMoments:
         self.n = self.n + other.n
         self.m2, self.m3, self.m4 = m2, m3, m4
 
-    @property
-    def sum_squares(self) -> float:
-        """Σx², the raw sum of squares (m2 + n·mean²)."""
-        return self.m2 + self.n * self.mean * self.mean
-
     def skewness(self) -> float:
         """Moment skewness m3/n / (m2/n)^1.5 (no small-sample correction); NaN without spread."""
         if self.n == 0 or self.m2 <= 0.0:
