@@ -62,3 +62,18 @@ def test_layers_every_package_is_listed_for_installation() -> None:
         for init in (root / "triage").rglob("__init__.py")
     }
     assert found | {"triage.keymaps"} == listed
+
+
+def test_layers_code_is_ruff_clean() -> None:
+    # ruff (a test dependency) with the project's own settings in pyproject.toml
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    done = subprocess.run(
+        [sys.executable, "-m", "ruff", "check", "triage", "tests", "bench"],
+        cwd=root,
+        capture_output=True,
+        text=True,
+        check=False,
+    )
+    assert done.returncode == 0, done.stdout[-3000:]

@@ -10,8 +10,8 @@ import numpy as np
 import polars as pl
 import pyarrow.parquet as pq
 
+from triage.core.design import ROW_INDEX
 from triage.data.base import (
-    ROW_INDEX,
     BlockSource,
     block_positions,
     collect_batches,
