@@ -7,6 +7,7 @@ cancel, checks the event between batches, and raises `PassCancelled` within one 
 from __future__ import annotations
 
 import threading
+import time
 from collections.abc import Callable, Collection, Iterator, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
@@ -25,7 +26,7 @@ from triage.core.diagnostics import (
 from triage.core.filter import parse_filter
 from triage.core.lsq import LinearFit, QRAccumulator
 from triage.data.source import ROW_INDEX
-from triage.engine.progress import ProgressCallback, ProgressTracker, ReadAhead
+from triage.engine.progress import PassProgress, ProgressCallback, ProgressTracker, ReadAhead
 from triage.errors import DataError
 
 if TYPE_CHECKING:
@@ -378,16 +379,21 @@ def run_report(
     )
     total = plan.rows_total()
 
-    def halve(offset: int) -> ProgressCallback | None:
+    started = time.perf_counter()
+
+    def as_part_of_both(offset: int) -> ProgressCallback | None:
+        """Report one pass's progress as part of both passes (rows done out of twice the rows)."""
         if on_progress is None:
             return None
+        callback = on_progress
 
-        def report(progress: object) -> None:
-            on_progress(_two_pass_progress(progress, offset, total))  # type: ignore[arg-type]
+        def report(progress: PassProgress) -> None:
+            elapsed = time.perf_counter() - started
+            callback(_two_pass_progress(progress, offset, total, elapsed))
 
         return report
 
-    outcome = _fit(plan, on_progress=halve(0), cancel=cancel)
+    outcome = _fit(plan, on_progress=as_part_of_both(0), cancel=cancel)
     if on_fit is not None:
         on_fit(outcome)
     diagnostics = _diagnose(
@@ -396,22 +402,26 @@ def run_report(
         top_k=top_k,
         by=by,
         is_ordered=is_ordered,
-        on_progress=halve(total or 0),
+        on_progress=as_part_of_both(total or 0),
         cancel=cancel,
     )
     return ReportOutcome(outcome, diagnostics)
 
 
-def _two_pass_progress(progress: object, offset: int, total: int | None) -> object:
-    from triage.engine.progress import PassProgress
+def _two_pass_progress(
+    progress: PassProgress, offset: int, total: int | None, elapsed_s: float
+) -> PassProgress:
+    """Shift one pass's progress by `offset` rows, out of `2 * total` rows for both passes.
 
-    assert isinstance(progress, PassProgress)
+    `elapsed_s` counts from the start of the first pass, so the speed and time left cover
+    both passes.
+    """
     if total is None:
         return progress
     done = offset + progress.rows_done
-    speed = done / progress.elapsed_s if progress.elapsed_s > 0 else 0.0
+    speed = done / elapsed_s if elapsed_s > 0 else 0.0
     eta = (2 * total - done) / speed if speed > 0 else None
-    return PassProgress(done, 2 * total, progress.elapsed_s, speed, eta)
+    return PassProgress(done, 2 * total, elapsed_s, speed, eta)
 
 
 def _check_segment_columns(source: Source, spec: ModelSpec, by: Sequence[str]) -> None:

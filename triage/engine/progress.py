@@ -39,6 +39,9 @@ class PassProgress:
 
 ProgressCallback = Callable[[PassProgress], None]
 
+PROGRESS_INTERVAL_S = 0.25
+"""Least time between two progress reports: about four a second keeps a slow screen current."""
+
 
 class ProgressTracker:
     """Turn row counts into `PassProgress` reports, at most one per `interval_s`.
@@ -51,8 +54,8 @@ class ProgressTracker:
         Receives each report; None disables reporting.
     cancel : threading.Event or None
         When set, `check` raises `PassCancelled`.
-    interval_s : float, default=0.25
-        Minimum time between reports (about four a second keeps a slow screen current).
+    interval_s : float, optional
+        Least time between reports; `PROGRESS_INTERVAL_S` when not given (tests set 0).
     """
 
     def __init__(
@@ -61,12 +64,12 @@ class ProgressTracker:
         *,
         on_progress: ProgressCallback | None = None,
         cancel: threading.Event | None = None,
-        interval_s: float = 0.25,
+        interval_s: float | None = None,
     ) -> None:
         self.rows_total = rows_total
         self.on_progress = on_progress
         self.cancel = cancel
-        self.interval_s = interval_s
+        self.interval_s = PROGRESS_INTERVAL_S if interval_s is None else interval_s
         self.rows_done = 0
         self._start = time.perf_counter()
         self._last_report = float("-inf")
