@@ -18,6 +18,7 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
+from tests.json_contract import COEFFICIENT_KEYS, FIT_SECTIONS
 from triage.core.spec import build_spec
 from triage.data.source import open_source
 from triage.engine.passes import FitOutcome, ReportOutcome, fit_model, run_report
@@ -177,39 +178,12 @@ def _estimable(report: ReportOutcome) -> list[str]:
 # ── JSON ─────────────────────────────────────────────────────────────────────────────
 
 
-FIT_KEYS = {
-    "data": {"source", "rows_in_source", "rows_used", "rows_dropped", "sample"},
-    "model": {"target", "terms", "intercept", "weights", "where"},
-    "fit": {
-        "r2",
-        "adj_r2",
-        "resid_sd",
-        "f",
-        "f_p",
-        "df_model",
-        "df_resid",
-        "loglik",
-        "aic",
-        "bic",
-        "condition_number",
-    },
-}
-
-
 def test_views_fit_json_round_trips_with_contract_keys(report: ReportOutcome) -> None:
     outcome = report.outcome
     doc = json.loads(json.dumps(fit_to_json(outcome), allow_nan=False))
-    for section, keys in FIT_KEYS.items():
+    for section, keys in FIT_SECTIONS.items():
         assert keys <= set(doc[section]), section
-    assert set(doc["coefficients"][0]) == {
-        "term",
-        "estimate",
-        "std_error",
-        "t",
-        "p",
-        "ci_low",
-        "ci_high",
-    }
+    assert set(doc["coefficients"][0]) == COEFFICIENT_KEYS
     assert doc["coefficients"][0]["term"] == "intercept"
     assert doc["model"]["terms"] == ["x", "z", "g", "twice_x"]
     assert doc["data"]["rows_dropped"] == 4
