@@ -216,7 +216,12 @@ class PassPlan:
         sample = None if self.is_full_pass or self.sample is None else self.sample
         return DataSummary(
             source=self.source.description,
-            rows_in_source=self.rows_in_source,
+            # a CSV has no row count in metadata, but a pass over every row counted them
+            rows_in_source=(
+                counts.read
+                if self.rows_in_source is None and self.is_full_pass
+                else self.rows_in_source
+            ),
             rows_read=counts.read,
             rows_filtered_out=counts.read - counts.kept_by_filter,
             rows_dropped_missing=counts.missing,
