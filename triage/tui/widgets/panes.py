@@ -307,6 +307,20 @@ def _what_if_text(before: SessionFit, after: SessionFit, width: int) -> str:
     return "\n".join(lines)
 
 
+FITS_COLUMNS: Final[tuple[tuple[str, int | None], ...]] = (
+    ("", 1),
+    ("#", 2),
+    ("rows", 11),
+    ("n", 10),
+    ("R²", 6),
+    ("adj. R²", 8),
+    ("AIC", 13),
+    ("BIC", 13),
+    ("model", None),
+)
+"""Columns of the Fits table and their widths in cells (None: as wide as the model text)."""
+
+
 class FitsPane(Pane):
     """Every fit of the session; enter shows one again."""
 
@@ -325,9 +339,11 @@ class FitsPane(Pane):
 
     def on_mount(self) -> None:
         """Name the table's columns."""
-        _table(self, "fits-table").add_columns(
-            "", "#", "rows", "n", "R²", "adj. R²", "AIC", "BIC", "model"
-        )
+        table = _table(self, "fits-table")
+        # fixed widths: the table is refilled on every fit, and widths grown from content
+        # were seen to lag one refill behind
+        for label, width in FITS_COLUMNS:
+            table.add_column(label, width=width)
 
     def watch_comparison(self) -> None:
         """Refill the list when the comparison changes."""
