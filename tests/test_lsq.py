@@ -22,7 +22,7 @@ from triage.core.lsq import (
     RANK_TOLERANCE,
     LinearFit,
     QRAccumulator,
-    _cholesky_qr2_r,
+    _cholesky_r,
     fit_arrays,
     householder_r,
 )
@@ -69,7 +69,7 @@ def digits(estimate: Any, reference: Any) -> float:
 def test_lsq_cholesky_qr2_matches_householder(rng: np.random.Generator) -> None:
     # Oracle: numpy.linalg.qr (LAPACK Householder); R is unique once its diagonal is positive.
     z = rng.normal(size=(2_000, 8)) * np.logspace(-3, 3, 8)
-    r_chol = _cholesky_qr2_r(z)
+    r_chol = _cholesky_r(z)
     assert r_chol is not None
     r_np = np.linalg.qr(z, mode="r")
     r_np *= np.sign(np.diagonal(r_np))[:, np.newaxis]
@@ -81,7 +81,7 @@ def test_lsq_cholesky_qr2_declines_ill_conditioned_block(rng: np.random.Generato
     # A duplicated column makes the block singular: CholeskyQR2 must hand it to Householder.
     z = rng.normal(size=(500, 4))
     z[:, 3] = z[:, 1]
-    assert _cholesky_qr2_r(z) is None
+    assert _cholesky_r(z) is None
     # Householder still gives R'R = Z'Z (oracle: numpy matrix product).
     r = householder_r(z)
     np.testing.assert_allclose(r.T @ r, z.T @ z, rtol=1e-12, atol=1e-10)
@@ -92,7 +92,7 @@ def test_lsq_cholesky_qr2_handles_zero_column(rng: np.random.Generator) -> None:
     # and the factor still satisfies R'R = Z'Z (oracle: numpy matrix product).
     z = rng.normal(size=(300, 5))
     z[:, 2] = 0.0
-    r = _cholesky_qr2_r(z)
+    r = _cholesky_r(z)
     assert r is not None
     np.testing.assert_allclose(r.T @ r, z.T @ z, rtol=1e-12, atol=1e-10)
     np.testing.assert_array_equal(np.tril(r, -1), 0.0)
@@ -213,10 +213,13 @@ def hard_case(name: str, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarr
     return np.column_stack([np.ones(n), x1, x2]), 1.0 + x1 + x2 + noise
 
 
-# Measured here, coefficients (min over them, 1 batch / 5 batches): predictor-mean-1e9 14.9 /
-# 14.9, target-offset-1e12 15.3 / 15.3, near-collinear 12.6 / 10.7. numpy.linalg.lstsq
-# reaches 0.0 on the first. Asserted a bit below what was measured.
-HARD_DIGITS = {"predictor-mean-1e9": 13.5, "target-offset-1e12": 13.5, "near-collinear": 10.0}
+# Measured here, coefficients (min over them) for seeds 0-4, 1 batch / 5 batches:
+# predictor-mean-1e9 12.7-13.6 / 13.2-14.3 (CholeskyQR2 on every batch gave 13.2-14.3 /
+# 13.2-14.3: the one-Cholesky route of well-conditioned batches costs about 0.3 digit there),
+# target-offset-1e12 15.2 or more, near-collinear 8.9-12.8 (unchanged). numpy.linalg.lstsq
+# reaches 0.0 on the first. With the fixture's seed: 13.3 / 13.6, 15.3, 12.6 / 10.7.
+# Asserted a bit below what was measured with the fixture's seed.
+HARD_DIGITS = {"predictor-mean-1e9": 13.0, "target-offset-1e12": 13.5, "near-collinear": 10.0}
 
 
 @pytest.mark.parametrize("name", sorted(HARD_DIGITS))
@@ -569,11 +572,11 @@ def test_lsq_cholesky_qr2_matches_householder_on_well_conditioned_blocks(
 ) -> None:
     # numpy's Householder QR (LAPACK dgeqrf) as oracle: the fast CholeskyQR2 route (explicit
     # inverse below INVERSE_MAX_CONDITION) must give the same R to near machine precision.
-    from triage.core.lsq import _cholesky_qr2_r
+    from triage.core.lsq import _cholesky_r
 
     z = rng.normal(size=(20_000, n_cols)) * rng.uniform(0.1, 1e3, size=n_cols)
     z[:, 0] = 1.0
-    fast = _cholesky_qr2_r(z)
+    fast = _cholesky_r(z)
     assert fast is not None
     oracle = householder_r(z)
     np.testing.assert_allclose(fast, oracle, rtol=0, atol=1e-12 * np.abs(oracle).max())

@@ -5,11 +5,12 @@ shifted and weighted block ``sqrt(w) * [1 | X - m | y - m_y]``, of size
 ``(p + 1, p + 1)``, so memory does not grow with the number of rows. The shift
 ``(m, m_y)`` is taken from the first batch; the column of ones stays in the
 factorization, so the answer does not depend on the shift being the exact mean.
-Nothing here forms ``X'X`` of the raw data: each batch is factored by
-CholeskyQR2 on its equilibrated columns while the batch is well conditioned
-(its Gram matrix is then as good as a Householder factor), and by Householder
-QR otherwise. Two accumulators merge by stacking their ``R`` factors and
-factoring again, so a pass can be split over workers.
+Nothing here forms ``X'X`` of the raw data: each batch is shifted, and factored
+by one Cholesky of its equilibrated Gram matrix when its condition estimate
+bounds the loss to about 1e-12, by CholeskyQR2 (a factor of Householder quality)
+when it is less well conditioned, and by Householder QR otherwise. Two
+accumulators merge by stacking their ``R`` factors and factoring again, so a pass
+can be split over workers.
 
 Everything the fit reports comes from ``R``:
 
@@ -30,7 +31,6 @@ from typing import Final, Self
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy.linalg import lapack, solve_triangular
 
 from triage.core.distributions import f_sf, t_ppf, t_sf
 from triage.errors import DataError, SpecError
@@ -66,6 +66,16 @@ INVERSE_MAX_CONDITION: Final = 1e4
 
 The inverse's rounding error grows with the condition number; at 1e4 it stays near 1e-12
 relative, which the second Cholesky pass removes. Every NIST StRD design is above it.
+"""
+
+GRAM_MAX_CONDITION: Final = 1e2
+"""Largest condition estimate of a batch's equilibrated ``R1`` for which ``R1`` itself, the
+Cholesky factor of the batch's Gram matrix, is taken as the batch's factor.
+
+Forming the Gram matrix costs a relative error of about ``cond**2 * eps`` in ``R1``: at most
+about 1e-12 here. Shifted data with moderately correlated predictors stay below it; above
+it a second Cholesky pass (CholeskyQR2) brings the factor to Householder quality. One
+Cholesky costs one Gram product, a third of CholeskyQR2 (measured here).
 """
 
 CHOLQR_MAX_CONDITION: Final = 1e7
@@ -104,12 +114,14 @@ def householder_r(a: FloatArray) -> FloatArray:
     return _normalize_signs(r)
 
 
-def _cholesky_qr2_r(z: FloatArray) -> FloatArray | None:
-    """Return the triangular factor of ``z`` by CholeskyQR2, or None when ``z`` is ill conditioned.
+def _cholesky_r(z: FloatArray) -> FloatArray | None:
+    """Return the triangular factor of ``z`` by Cholesky QR, or None when ``z`` is ill conditioned.
 
     The Gram matrix is equilibrated (columns scaled to unit norm) before each
-    Cholesky, so the condition estimate ignores units. Cost: two Gram products and one
-    triangular solve with many right-hand sides, all matrix-matrix kernels.
+    Cholesky, so the condition estimate ignores units. Below `GRAM_MAX_CONDITION` one
+    Cholesky of the Gram matrix is enough; up to `CHOLQR_MAX_CONDITION` CholeskyQR2 adds
+    a triangular solve (or a product with the inverse) and a second Gram product, all
+    matrix-matrix kernels.
 
     Parameters
     ----------
@@ -131,49 +143,69 @@ def _cholesky_qr2_r(z: FloatArray) -> FloatArray | None:
         # columns back, which keeps R upper triangular with R'R = Z'Z.
         if not np.all(np.isfinite(diagonal)):
             return None
-        r_nonzero = _cholesky_qr2_r(z[:, nonzero]) if np.any(nonzero) else None
+        r_nonzero = _cholesky_r(z[:, nonzero]) if np.any(nonzero) else None
         if r_nonzero is None:
             return None
         r = np.zeros((z.shape[1], z.shape[1]))
         r[np.ix_(nonzero, nonzero)] = r_nonzero
         return r
     scale = np.sqrt(diagonal)
-    r1, info = lapack.dpotrf(gram / np.outer(scale, scale), lower=0, clean=1)
-    if info != 0:
+    r1 = _upper_cholesky(gram / np.outer(scale, scale))
+    if r1 is None:
         return None
-    rcond, info = lapack.dtrcon(r1, norm="1", uplo="U", diag="N")
-    if info != 0 or not rcond * CHOLQR_MAX_CONDITION > 1.0:
+    # The exact 1-norm condition number of the small equilibrated factor, from its inverse.
+    r1_inv = np.triu(np.linalg.inv(r1))
+    condition = np.abs(r1).sum(axis=0).max() * np.abs(r1_inv).sum(axis=0).max()
+    if not condition < CHOLQR_MAX_CONDITION:
         return None
     r1 *= scale[np.newaxis, :]
-    if rcond * INVERSE_MAX_CONDITION > 1.0:
+    if condition < GRAM_MAX_CONDITION:
+        return r1  # Cholesky leaves a positive diagonal
+    if condition < INVERSE_MAX_CONDITION:
         # Well conditioned: Q1 = Z R1^-1 by one matrix product with the explicit inverse,
         # 2-4x faster than the triangular solve on 65,536-row blocks (measured here).
-        r1_inv, info = lapack.dtrtri(r1, lower=0)
-        if info != 0:
-            return None
-        q1 = z @ r1_inv
+        q1 = z @ (r1_inv / scale[:, np.newaxis])
         gram_q = q1.T @ q1
     else:
-        # Q1' = R1^-T Z' by a triangular solve on the transposed (Fortran-ordered) view. The
-        # explicit inverse cost NIST Wampler4/5 two to three digits when fed in batches of
-        # 8 rows (measured here): the solve keeps each row's backward error small.
-        q1_t = solve_triangular(r1, z.T, trans="T", lower=False, check_finite=False)
+        # Q1' = R1^-T Z' by a solve on the transposed view. The explicit inverse cost NIST
+        # Wampler4/5 two to three digits when fed in batches of 8 rows (measured here):
+        # the solve keeps each row's backward error small.
+        q1_t = _solve_upper(r1, z.T, transposed=True)
         gram_q = q1_t @ q1_t.T
-    r2, info = lapack.dpotrf(gram_q, lower=0, clean=1)
-    if info != 0:
+    r2 = _upper_cholesky(gram_q)
+    if r2 is None:
         return None
     return _normalize_signs(r2 @ r1)
 
 
+def _upper_cholesky(gram: FloatArray) -> FloatArray | None:
+    """Return the upper-triangular ``R`` with ``R'R = gram``, or None if not positive definite."""
+    try:
+        lower = np.linalg.cholesky(gram)
+    except np.linalg.LinAlgError:
+        return None
+    return np.ascontiguousarray(lower.T)
+
+
+def _solve_upper(r: FloatArray, b: FloatArray, *, transposed: bool = False) -> FloatArray:
+    """Solve ``R v = b`` (or ``R' v = b`` when `transposed`) for an upper-triangular ``R``.
+
+    numpy's LU solve: on an upper-triangular ``R`` it pivots nowhere and is back-substitution;
+    on ``R'`` it is backward stable like a triangular solve.
+    """
+    solution: FloatArray = np.linalg.solve(r.T if transposed else r, b)
+    return solution
+
+
 def _factor_block(z: FloatArray) -> FloatArray:
-    """Return the triangular factor of a shifted, weighted block: CholeskyQR2, else Householder.
+    """Return the triangular factor of a shifted, weighted block: Cholesky QR, else Householder.
 
     Raises
     ------
     DataError
         If the block holds a NaN or infinite value.
     """
-    r = _cholesky_qr2_r(z) if z.shape[0] >= z.shape[1] else None
+    r = _cholesky_r(z) if z.shape[0] >= z.shape[1] else None
     # A NaN or inf in z makes its Gram diagonal non-finite, which sends the block here,
     # so the O(n p) finiteness check runs only on the Householder route.
     if r is None or not np.all(np.isfinite(r)):
@@ -283,10 +315,7 @@ class _ShiftedFactor:
 
     def cov_root(self) -> FloatArray:
         """Return ``V = R^-T A'``, so that ``cov(b) = s^2 V'V`` in reported coordinates."""
-        v: FloatArray = solve_triangular(
-            self.r, self.back_transform().T, trans="T", check_finite=False
-        )
-        return v
+        return _solve_upper(self.r, self.back_transform().T, transposed=True)
 
 
 @dataclass(frozen=True, eq=False)
@@ -427,7 +456,7 @@ class LinearFit:
             If ``x`` does not have ``p`` columns.
         """
         shifted = self._shifted(x, "leverage")
-        v = solve_triangular(self._factor.r, shifted.T, trans="T", check_finite=False)
+        v = _solve_upper(self._factor.r, shifted.T, transposed=True)
         h: FloatArray = np.einsum("ij,ij->j", v, v)
         if weights is not None:
             h *= np.asarray(weights, dtype=np.float64)
@@ -463,7 +492,7 @@ class LinearFit:
             )
             raise DataError(msg)
         # U = (R'R)^-1 A' = R^-1 V, so B meat B' in reported coordinates is U' meat U.
-        u = solve_triangular(self._factor.r, self._factor.cov_root(), check_finite=False)
+        u = _solve_upper(self._factor.r, self._factor.cov_root())
         inner = u.T @ m @ u
         return _embed(0.5 * (inner + inner.T), self._factor.kept, len(self.names))
 
@@ -692,7 +721,7 @@ class QRAccumulator:
         df_model = k - int(self._has_intercept)
 
         qty = r[:k, k]
-        shifted_coef = solve_triangular(r[:k, :k], qty, check_finite=False)
+        shifted_coef = _solve_upper(r[:k, :k], qty)
         factor = _ShiftedFactor(
             r=np.ascontiguousarray(r[:k, :k]),
             kept=kept,
