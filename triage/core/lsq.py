@@ -193,7 +193,9 @@ def _solve_upper(r: FloatArray, b: FloatArray, *, transposed: bool = False) -> F
     numpy's LU solve: on an upper-triangular ``R`` it pivots nowhere and is back-substitution;
     on ``R'`` it is backward stable like a triangular solve.
     """
-    solution: FloatArray = np.linalg.solve(r.T if transposed else r, b)
+    solution: FloatArray = np.linalg.solve(r.T if transposed else r, b).astype(
+        np.float64, copy=False
+    )
     return solution
 
 
