@@ -550,8 +550,13 @@ def test_bin_lookup_equals_searchsorted_bins(rng: np.random.Generator, n_edges: 
     raw = np.concatenate([rng.lognormal(size=5_000), rng.normal(size=5_000) * 1e-6])
     edges = np.unique(np.quantile(raw, np.linspace(0, 1, n_edges)))
     values = np.concatenate([raw, edges, edges + 1e-15, [-1e9, 1e9], rng.normal(size=3_000)])
+    values = np.concatenate([values, [np.nan, np.inf, -np.inf]])
     np.testing.assert_array_equal(BinLookup(edges).index(values), bin_index(edges, values))
     constant = np.array([2.0, 2.0])
-    np.testing.assert_array_equal(
-        BinLookup(constant).index(values), bin_index(constant, values)
-    )
+    np.testing.assert_array_equal(BinLookup(constant).index(values), bin_index(constant, values))
+    # Fine-grid cells with tails: numpy.searchsorted (side "right"), a value on the last
+    # edge counted in the last bin.
+    for grid in (edges, np.linspace(-3.0, 3.0, n_edges), constant):
+        expected = np.searchsorted(grid, values, side="right")
+        expected[values == grid[-1]] = grid.size - 1
+        np.testing.assert_array_equal(BinLookup(grid).fine(values), expected)

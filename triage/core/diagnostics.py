@@ -32,7 +32,6 @@ from numpy.typing import ArrayLike, NDArray
 from triage._typing import CRITERIA, Criterion
 from triage.core.binning import (
     BinLookup,
-    fine_index,
     quantile_edges,
     quantiles_from_counts,
 )
@@ -169,16 +168,16 @@ def _rank(fit: LinearFit) -> int:
 
 def _row_values(
     fit: LinearFit,
-    x: FloatArray,
+    shifted: FloatArray,
     y: FloatArray,
     weights: FloatArray | None,
     rows: IntArray,
 ) -> RowDiagnostics:
-    """Per-row diagnostics from arrays (see `row_diagnostics`)."""
-    fitted = fit.predict(x)
+    """Per-row diagnostics from design rows passed through `LinearFit.to_shifted`."""
+    fitted = fit.predict_shifted(shifted)
     resid = y - fitted
     weighted = resid if weights is None else np.sqrt(weights) * resid
-    h = fit.leverage(x, weights)
+    h = fit.leverage_shifted(shifted, weights)
     one_minus_h = 1.0 - h
     s = fit.resid_sd
     df = fit.df_resid
@@ -227,7 +226,7 @@ def row_diagnostics(fit: LinearFit, batch: DesignBatch) -> RowDiagnostics:
     --------
     DiagnosticsAccumulator : the same values summarised over a whole pass.
     """
-    return _row_values(fit, batch.x, batch.y, batch.weights, batch.rows)
+    return _row_values(fit, fit.to_shifted(batch.x), batch.y, batch.weights, batch.rows)
 
 
 # --------------------------------------------------------------------------- configuration
@@ -575,7 +574,7 @@ class _Binned:
         self.max_x = -math.inf
 
     def update(self, x: FloatArray, e: FloatArray, cell: IntArray) -> None:
-        """Add values `x` with residuals `e`, whose fine-grid cells (`fine_index`) are `cell`."""
+        """Add values `x` with residuals `e` in fine-grid cells `cell` (`BinLookup.fine`)."""
         n_bins = self.counts.shape[0]
         b = self.lookup.index(x)
         flat = np.bincount(b * self.n_cells + cell, minlength=n_bins * self.n_cells)
@@ -758,6 +757,8 @@ class DiagnosticsAccumulator:
         self._dw = DurbinWatsonAccumulator()
         self._hist = np.zeros(config.hist_edges.size + 1, dtype=np.int64)
         self._fine = np.zeros(config.fine_edges.size + 1, dtype=np.int64)
+        self._hist_lookup = BinLookup(config.hist_edges)
+        self._fine_lookup = BinLookup(config.fine_edges)
         self._min = math.inf
         self._max = -math.inf
         self._binned = {
@@ -805,13 +806,14 @@ class DiagnosticsAccumulator:
         if batch.x.shape[0] == 0:
             return
         self._check_frame(batch)
-        rd = row_diagnostics(self.fit, batch)
+        shifted = self.fit.to_shifted(batch.x)
+        rd = _row_values(self.fit, shifted, batch.y, batch.weights, batch.rows)
         e = rd.weighted_resid
         self._n += e.size
         self._moments.update(e)
         self._dw.update(e)
-        self._hist += np.bincount(fine_index(self.config.hist_edges, e), minlength=self._hist.size)
-        cell = fine_index(self.config.fine_edges, e)  # shared by every binned variable
+        self._hist += np.bincount(self._hist_lookup.fine(e), minlength=self._hist.size)
+        cell = self._fine_lookup.fine(e)  # shared by every binned variable
         self._fine += np.bincount(cell, minlength=self._fine.size)
         self._min = min(self._min, float(e.min()))
         self._max = max(self._max, float(e.max()))
@@ -831,26 +833,31 @@ class DiagnosticsAccumulator:
             seg.update(batch.frame[col], e)
         self._bp.update(batch.x, e)
         self._reset.update(batch.x, batch.y, rd.fitted, batch.weights)
-        self._update_meat(batch, rd)
+        self._update_meat(shifted, batch.weights, rd)
         with np.errstate(invalid="ignore"):
             self._n_studentized += int(np.sum(np.abs(rd.studentized) > STUDENTIZED_LIMIT))
             self._n_leverage += int(np.sum(rd.leverage > self._leverage_threshold))
             self._n_cooks += int(np.sum(rd.cooks > self._cooks_threshold))
 
-    def _update_meat(self, batch: DesignBatch, rd: RowDiagnostics) -> None:
-        """Add ``Σ x~ x~' e² ω`` for HC0 (ω = 1), HC2 (1/(1-h)) and HC3 (1/(1-h)²)."""
-        xs = self.fit.to_shifted(batch.x)
-        if batch.weights is not None:
-            xs = xs * np.sqrt(batch.weights)[:, np.newaxis]
-        e2 = rd.weighted_resid**2
+    def _update_meat(
+        self, shifted: FloatArray, weights: FloatArray | None, rd: RowDiagnostics
+    ) -> None:
+        """Add ``Σ x~ x~' e² ω`` for HC0 (ω = 1), HC2 (1/(1-h)) and HC3 (1/(1-h)²).
+
+        Each as ``B'B`` with ``B = x~ |e| sqrt(ω)``, which numpy hands to a symmetric
+        rank-k update: half the work of the general product.
+        """
+        root = np.abs(rd.weighted_resid)
+        if weights is not None:
+            root *= np.sqrt(weights)
         one_minus_h = 1.0 - rd.leverage
         ok = one_minus_h > LEVERAGE_ONE_TOLERANCE
-        hc2 = np.zeros_like(e2)
-        hc2[ok] = e2[ok] / one_minus_h[ok]
-        hc3 = np.zeros_like(e2)
-        hc3[ok] = hc2[ok] / one_minus_h[ok]
-        for j, u in enumerate((e2, hc2, hc3)):
-            self._meat[j] += (xs * u[:, np.newaxis]).T @ xs
+        root_hc3 = np.divide(root, one_minus_h, out=np.zeros_like(root), where=ok)
+        root_hc2 = np.sqrt(root * root_hc3)  # |e| / sqrt(1 - h), 0 where h is 1
+        block = np.empty_like(shifted)
+        for j, u in enumerate((root, root_hc2, root_hc3)):
+            np.multiply(shifted, u[:, np.newaxis], out=block)
+            self._meat[j] += block.T @ block
 
     def merge(self, other: DiagnosticsAccumulator) -> DiagnosticsAccumulator:
         """Fold in an accumulator over later rows of the same fit and config; returns self.

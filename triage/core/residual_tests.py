@@ -119,8 +119,13 @@ class ResetAccumulator:
     ) -> None:
         """Add design rows, targets, fitted values and weights (None for an unweighted fit)."""
         z = (fitted - self._center) / self._scale
-        z2 = z * z
-        self._acc.update(np.column_stack((x, z2, z2 * z)), y, weights)
+        n_design = x.shape[1]
+        # Fortran order, like design batches: the accumulator reads it column by column.
+        augmented = np.empty((x.shape[0], n_design + 2), order="F")
+        augmented[:, :n_design] = x
+        np.multiply(z, z, out=augmented[:, n_design])
+        np.multiply(augmented[:, n_design], z, out=augmented[:, n_design + 1])
+        self._acc.update(augmented, y, weights)
 
     def merge(self, other: ResetAccumulator) -> None:
         """Fold another accumulator over the same design into this one."""
