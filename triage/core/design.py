@@ -428,12 +428,23 @@ class DesignBuilder:
             of a value <= 0, sqrt of a negative, log1p of a value <= -1), a weight <= 0,
             or a design value too large for float64, with the row count in this batch.
         """
-        n_nulls, total, all_in_levels, any_bad = frame.select(self._quick).row(0)
-        if n_nulls == 0 and math.isfinite(total) and all_in_levels and not any_bad:
-            n_missing = n_unseen = n_domain = 0
+        n_missing = n_unseen = n_domain = 0
+        values = None
+        if not self.levels and not self._checks:
+            # Only missing values can drop a row: the design itself shows whether there are
+            # any (nulls come out as NaN), and most batches have none.
+            values = frame.select(self._design).to_numpy(order="fortran", writable=True)
+            with np.errstate(over="ignore", invalid="ignore"):
+                total = float(values.sum())
+            if not math.isfinite(total):  # an overflowing sum only costs the slow path
+                values = None
+                frame, n_missing, n_unseen, n_domain = self._drop_rows(frame)
         else:
-            frame, n_missing, n_unseen, n_domain = self._drop_rows(frame)
-        values = frame.select(self._design).to_numpy(order="fortran", writable=True)
+            n_nulls, total, all_in_levels, any_bad = frame.select(self._quick).row(0)
+            if not (n_nulls == 0 and math.isfinite(total) and all_in_levels and not any_bad):
+                frame, n_missing, n_unseen, n_domain = self._drop_rows(frame)
+        if values is None:
+            values = frame.select(self._design).to_numpy(order="fortran", writable=True)
         if self._may_overflow and not np.isfinite(values[:, self._may_overflow]).all():
             values, frame, n_overflow = self._drop_overflow(values, frame)
             n_domain += n_overflow

@@ -13,7 +13,6 @@ from typing import TYPE_CHECKING, Any, Final, Literal
 
 from triage._typing import CRITERIA
 from triage.core.spec import quote_name
-from triage.views.charts import render_binned, render_histogram
 from triage.views.format import NA, format_count, format_number, format_p, truncate
 
 if TYPE_CHECKING:
@@ -610,6 +609,9 @@ def render_full_report(
         render_residual_summary(diagnostics, width=width),
     ]
     if charts:
+        # plotext loads only when charts are drawn: `triage fit` never needs it.
+        from triage.views.charts import render_binned, render_histogram
+
         height = _chart_height(width)
         sections.append(render_histogram(diagnostics.histogram, width, height, color=color))
         for name, bins in diagnostics.binned.items():
