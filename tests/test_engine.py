@@ -6,6 +6,7 @@ against numpy's least squares (oracle) so a cancelled-then-rerun pass is still r
 
 from __future__ import annotations
 
+import sys
 import threading
 from pathlib import Path
 
@@ -86,3 +87,14 @@ def test_engine_read_ahead_stops_its_thread_when_closed_early() -> None:
             break
     assert not reader._thread.is_alive()
     assert len(produced) < 10
+
+
+def test_engine_keeps_batch_memory_in_the_heap_under_glibc() -> None:
+    # glibc's mallopt accepts each setting (returns 1, per glibc's malloc.h documentation);
+    # elsewhere the allocator is left alone.
+    import platform
+
+    from triage.engine.allocator import keep_batch_memory
+
+    expected = sys.platform.startswith("linux") and platform.libc_ver()[0] == "glibc"
+    assert keep_batch_memory() is expected

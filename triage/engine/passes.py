@@ -26,6 +26,7 @@ from triage.core.diagnostics import (
 from triage.core.filter import parse_filter
 from triage.core.lsq import LinearFit, QRAccumulator
 from triage.data.source import ROW_INDEX
+from triage.engine.allocator import keep_batch_memory
 from triage.engine.progress import PassProgress, ProgressCallback, ProgressTracker, ReadAhead
 from triage.errors import DataError
 
@@ -141,6 +142,7 @@ class PassPlan:
         exclude_rows: Collection[int] = (),
         extra_columns: Sequence[str] = (),
     ) -> None:
+        keep_batch_memory()
         self.source = source
         self.spec = spec
         self.where = _parse_where(source, spec)
