@@ -833,3 +833,137 @@ async def test_tui_checks_key_shows_huber_and_spline_results(
         assert "Huber" in text and "distance_km" in text and "spline" in text
         await press_id(pilot, "close-dialog")
         assert isinstance(app.screen, MainScreen)
+
+
+# ------------------------------------------------------------------------------------------
+# starting quickly: the head start, light imports, the keymap Textual applies, row steps
+
+
+def _head_start_app(demo_file: Path, **fields: Any) -> tuple[Any, Any]:
+    """Build the app as `triage open` does: a head start begun before the app is made."""
+    from triage.tui.app import make_app
+    from triage.tui.head_start import HeadStart
+    from triage.tui.settings import Settings
+
+    settings = Settings(data=str(demo_file), **fields)
+    head_start = HeadStart(settings).start()
+    return make_app(settings, head_start=head_start), head_start
+
+
+async def test_tui_head_start_fit_is_taken_over_not_repeated(
+    config_home: Path, demo_file: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    import triage.engine.passes as passes_module
+
+    runs: list[object] = []
+    real_run_report = passes_module.run_report
+
+    def counted(*args: Any, **kwargs: Any) -> Any:
+        runs.append(args[1])
+        return real_run_report(*args, **kwargs)
+
+    monkeypatch.setattr(passes_module, "run_report", counted)
+    app, head_start = _head_start_app(
+        demo_file, target="minutes", terms="distance_km, stops", sample_rows=SAMPLE_ROWS
+    )
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        screen = main_screen(app)
+        fit = screen.current
+        assert fit is not None and fit.number == 1 and not fit.is_full_pass
+        assert len(runs) == 1  # the head start's pass only; the screen took its report
+        outcome = fit.report.outcome
+        assert outcome.spec == runs[0] and outcome.data.rows_read == SAMPLE_ROWS
+        oracle = ols(outcome.sample, "minutes", ["distance_km", "stops"])  # statsmodels
+        np.testing.assert_allclose(outcome.fit.coef, oracle.params, rtol=1e-9)
+        # a report is handed over once: the next request of the same model computes its own
+        cancel = threading.Event()
+        again = head_start.take_report(
+            outcome.spec, screen.segment_columns, cancel=cancel, on_fit=lambda _: None
+        )
+        assert again is None
+        await press_id(pilot, "quick-fit")
+        await settle(pilot)
+        assert len(runs) == 2 and screen.current is not None and screen.current.number == 2
+
+
+async def test_tui_head_start_bad_terms_are_reported_by_the_screen(
+    config_home: Path, demo_file: Path
+) -> None:
+    app, _ = _head_start_app(demo_file, target="minutes", terms="distance_km, log(dpeot)")
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        assert isinstance(app.screen, ErrorScreen)
+        assert "dpeot" in app.screen.message and "depot" in app.screen.message
+        await press_id(pilot, "close-dialog")
+        assert main_screen(app).current is None
+
+
+async def test_tui_head_start_unreadable_file_is_reported_by_the_screen(
+    config_home: Path, tmp_path: Path
+) -> None:
+    broken = tmp_path / "broken.parquet"
+    broken.write_bytes(b"not a parquet file")
+    app, _ = _head_start_app(broken, target="minutes", terms="distance_km")
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        assert isinstance(app.screen, ErrorScreen)
+        assert app.screen.title_text == "cannot open the data"
+        assert app.is_running
+
+
+def test_tui_app_module_loads_no_data_or_statistics_library() -> None:
+    # the first frame must not wait for these: they load in the head start's thread or
+    # where a pane first draws results
+    import subprocess
+    import sys
+
+    heavy = ["numpy", "polars", "pyarrow", "plotext", "scipy", "sklearn", "statsmodels"]
+    code = f"import sys, triage.tui.app; print(','.join(m for m in {heavy!r} if m in sys.modules))"
+    loaded = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, check=True
+    ).stdout.strip()
+    assert loaded == ""
+
+
+@pytest.mark.parametrize("keyset", ["default", "fkeys"])
+async def test_tui_textual_gets_only_changed_keys_with_the_same_bindings(
+    config_home: Path, demo_file: Path, keyset: str
+) -> None:
+    from triage.tui.app import declared_keys
+    from triage.tui.keymap import keymap_overrides
+
+    app = build_app(demo_file, keyset=keyset)
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        applied = dict(app._keymap)
+        assert applied == keymap_overrides(app.keymap, declared_keys())
+        if keyset == "default":
+            assert applied == {}
+        reduced = {k: b.binding.id for k, b in app.screen.active_bindings.items()}
+        # oracle: Textual's own bindings under the whole merged keymap
+        app.set_keymap(app.keymap)
+        full = {k: b.binding.id for k, b in app.screen.active_bindings.items()}
+        assert reduced == full
+
+
+async def test_tui_row_table_shows_each_stepped_row_as_polars_reads_it(
+    config_home: Path, demo_file: Path
+) -> None:
+    app = build_app(demo_file, target="minutes", terms="distance_km, stops")
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        await press_id(pilot, "pane-worst")
+        await press_id(pilot, "open-row")
+        await settle(pilot)
+        frame = pl.read_parquet(demo_file)  # oracle: polars' own read of the file
+        table = app.screen.query_one("#row-table")
+        for _ in range(4):
+            position = main_screen(app).row_position
+            assert position is not None
+            cells = [tuple(str(c) for c in table.get_row_at(i)) for i in range(table.row_count)]
+            fields = dict(cells[cells.index(("─" * 8, "─" * 8)) + 1 :])
+            original = frame.row(position, named=True)
+            assert fields == {k: "(missing)" if v is None else str(v) for k, v in original.items()}
+            await press_id(pilot, "next-row")
+            await settle(pilot)

@@ -2,18 +2,21 @@
 
 from __future__ import annotations
 
-from typing import ClassVar
+from typing import TYPE_CHECKING, ClassVar, Final
 
 from textual.app import App
 from textual.binding import Binding, BindingType
 
 from triage.tui.commands import TriageCommands
-from triage.tui.keymap import binding_ids, load_keymap
+from triage.tui.keymap import binding_ids, keymap_overrides, load_keymap
 from triage.tui.screens.dialogs import ErrorScreen, PromptScreen
 from triage.tui.screens.export import ExportScreen
 from triage.tui.screens.help import HelpScreen, help_rows
 from triage.tui.screens.main import MainScreen
 from triage.tui.settings import Settings
+
+if TYPE_CHECKING:
+    from triage.tui.head_start import HeadStart
 
 
 class TriageApp(App[None]):
@@ -49,18 +52,26 @@ class TriageApp(App[None]):
         ),
     ]
 
-    def __init__(self, settings: Settings, keymap: dict[str, str] | None = None) -> None:
+    def __init__(
+        self,
+        settings: Settings,
+        keymap: dict[str, str] | None = None,
+        *,
+        head_start: HeadStart | None = None,
+    ) -> None:
         super().__init__(ansi_color=settings.is_colorless)
         self.settings = settings
         """How the session was opened."""
         self.keymap = keymap or {}
         """Merged keymap (binding id -> key) applied on mount."""
+        self.head_start = head_start
+        """Work begun before the app started, handed to the first main screen."""
         self.animation_level = "none"
 
     def on_mount(self) -> None:
         """Apply the keymap and open the main screen."""
-        self.set_keymap(self.keymap)
-        self.push_screen(MainScreen(self.settings))
+        self.set_keymap(keymap_overrides(self.keymap, declared_keys()))
+        self.push_screen(MainScreen(self.settings, head_start=self.head_start))
 
     def action_show_help(self) -> None:
         """Show every key the screen in front answers to, then the keys of the dialogs."""
@@ -81,19 +92,34 @@ class TriageApp(App[None]):
         self.push_screen(HelpScreen(rows))
 
 
+BINDING_OWNERS: Final = (TriageApp, MainScreen, HelpScreen, ErrorScreen, PromptScreen, ExportScreen)
+"""The app and its screens: the classes whose bindings a keymap may name."""
+
+
 def all_binding_ids() -> tuple[str, ...]:
     """Return the id of every binding of the app and its screens (what a keymap may name)."""
-    classes = (TriageApp, MainScreen, HelpScreen, ErrorScreen, PromptScreen, ExportScreen)
-    return tuple(dict.fromkeys(i for cls in classes for i in binding_ids(cls.BINDINGS)))
+    return tuple(dict.fromkeys(i for cls in BINDING_OWNERS for i in binding_ids(cls.BINDINGS)))
 
 
-def make_app(settings: Settings) -> TriageApp:
+def declared_keys() -> dict[str, str]:
+    """Return the keys each binding of the app and its screens is declared with, by id."""
+    return {
+        binding.id: binding.key
+        for cls in BINDING_OWNERS
+        for binding in cls.BINDINGS
+        if isinstance(binding, Binding) and binding.id is not None
+    }
+
+
+def make_app(settings: Settings, *, head_start: HeadStart | None = None) -> TriageApp:
     """Build the app as the command line does: settings plus the merged keymap.
 
     Parameters
     ----------
     settings : Settings
         Data, model, sample and keymap choices.
+    head_start : HeadStart, optional
+        Work on the same settings begun before the app was built.
 
     Returns
     -------
@@ -111,4 +137,4 @@ def make_app(settings: Settings) -> TriageApp:
         user_file=settings.user_keymap,
         extra_file=settings.keymap_file,
     )
-    return TriageApp(settings, keymap)
+    return TriageApp(settings, keymap, head_start=head_start)

@@ -223,6 +223,32 @@ def merge_keymaps(layers: Iterable[KeymapLayer], valid_ids: Iterable[str]) -> di
     return merged
 
 
+def keymap_overrides(keymap: Mapping[str, str], declared: Mapping[str, str]) -> dict[str, str]:
+    """Return the entries of `keymap` that give a binding other keys than it declares.
+
+    Textual applies its keymap again on every key press and every look-up of the active
+    bindings, at a cost that grows with the square of the bindings it names, so the app hands
+    it only the entries that change a key.
+
+    Parameters
+    ----------
+    keymap : mapping of str to str
+        Binding id -> keys, as `load_keymap` returns it.
+    declared : mapping of str to str
+        Binding id -> the keys its `Binding` is declared with.
+
+    Returns
+    -------
+    dict of str to str
+        The entries of `keymap` whose keys differ from the declared ones.
+    """
+    return {
+        binding_id: keys
+        for binding_id, keys in keymap.items()
+        if binding_id not in declared or key_names(keys) != key_names(declared[binding_id])
+    }
+
+
 def load_keymap(
     valid_ids: Iterable[str],
     *,

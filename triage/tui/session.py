@@ -6,14 +6,13 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 from typing import TYPE_CHECKING, Final
 
-import polars as pl
-
-from triage.core.compare import Comparison, compare_fits
-from triage.core.spec import Term, build_spec, parse_terms, quote_name
-
 if TYPE_CHECKING:
-    from triage.core.spec import ModelSpec
+    import polars as pl
+
+    from triage.core.compare import Comparison
+    from triage.core.spec import ModelSpec, Term
     from triage.engine.passes import ReportOutcome
+    from triage.tui.settings import Settings
 
 TRANSFORM_CYCLE: Final[tuple[str | None, ...]] = (None, "log", "log1p", "sqrt", "square", "std")
 """Transforms a numeric term steps through with the cycle-transform key."""
@@ -21,6 +20,8 @@ TRANSFORM_CYCLE: Final[tuple[str | None, ...]] = (None, "log", "log1p", "sqrt", 
 
 def _term_for(column: str, transform: str | None) -> Term:
     """Parse the term for `column` under `transform` (None for the bare column)."""
+    from triage.core.spec import parse_terms, quote_name
+
     name = quote_name(column)
     text = name if transform is None else f"{transform}({name})"
     return parse_terms(text)[1][0]
@@ -49,6 +50,8 @@ class ModelDraft:
 
     def formula(self) -> str:
         """Return `target ~ terms` for the model line (`?` stands for a target not yet chosen)."""
+        from triage.core.spec import quote_name
+
         target = "?" if self.target is None else quote_name(self.target)
         right = " + ".join(term.label for term in self.terms) or "1"
         return f"{target} ~ {right}"
@@ -108,24 +111,21 @@ class ModelDraft:
         SpecError
             When the text does not parse.
         """
+        from triage.core.spec import parse_terms
+
         target, terms = parse_terms(text)
         return replace(self, target=self.target if target is None else target, terms=terms)
 
-    def to_spec(
-        self,
-        schema: Mapping[str, pl.DataType],
-        *,
-        reference: Mapping[str, str] | None = None,
-        max_levels: int = 50,
-        drop_invalid: bool = False,
-    ) -> ModelSpec:
-        """Check the draft against the columns and build the model spec.
+    def to_spec(self, schema: Mapping[str, pl.DataType], settings: Settings) -> ModelSpec:
+        """Check the draft against the columns, with the session's reference levels and limits.
 
         Raises
         ------
         SpecError
             With the name of the bad column or term and the closest valid names.
         """
+        from triage.core.spec import build_spec
+
         return build_spec(
             schema,
             target=self.target,
@@ -134,10 +134,21 @@ class ModelDraft:
             weights=self.weights,
             where=self.where,
             categorical=self.categorical,
-            reference=reference,
-            max_levels=max_levels,
-            drop_invalid=drop_invalid,
+            reference=settings.reference,
+            max_levels=settings.max_levels,
+            drop_invalid=settings.drop_invalid,
         )
+
+
+def draft_from_settings(settings: Settings) -> ModelDraft:
+    """Return the model the settings start with, before their terms text is parsed."""
+    return ModelDraft(
+        target=settings.target,
+        weights=settings.weights,
+        where=settings.where,
+        categorical=settings.categorical,
+        intercept=settings.intercept,
+    )
 
 
 @dataclass(frozen=True, eq=False)
@@ -173,6 +184,7 @@ def compare_session_fits(
     tuple of int, Comparison
         The numbers of the fits compared (in session order) and their comparison.
     """
+    from triage.core.compare import compare_fits
 
     def basis(fit: SessionFit) -> tuple[object, ...]:
         outcome = fit.report.outcome

@@ -85,8 +85,19 @@ def settings_from_args(args: argparse.Namespace) -> Any:
 
 
 def run(args: argparse.Namespace) -> int:
-    """Run the app until the user quits; returns 0."""
-    from triage.tui.app import make_app
+    """Run the app until the user quits; returns 0.
 
-    make_app(settings_from_args(args)).run()
+    The data starts opening (and the given model fitting) before Textual loads, so the file
+    is read while the interface starts.
+    """
+    from triage.tui.head_start import HeadStart
+
+    settings = settings_from_args(args)
+    head_start = HeadStart(settings).start()
+    try:
+        from triage.tui.app import make_app
+
+        make_app(settings, head_start=head_start).run()
+    finally:
+        head_start.stop()
     return 0

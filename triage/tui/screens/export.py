@@ -11,9 +11,7 @@ from textual.containers import Vertical
 from textual.screen import ModalScreen
 from textual.widgets import Checkbox, Input, RadioButton, RadioSet, Static
 
-from triage.data.export import PERSONAL_DATA_NOTICE
 from triage.tui.screens.dialogs import CLOSE_DIALOG
-from triage.views.text import CRITERION_TITLES
 
 
 @dataclass(frozen=True)
@@ -46,6 +44,9 @@ class ExportScreen(ModalScreen[ExportRequest | None]):
 
     def compose(self) -> ComposeResult:
         """Lay out the choice, the count, the file field and the reminder."""
+        from triage.data.export import PERSONAL_DATA_NOTICE
+        from triage.views.text import CRITERION_TITLES
+
         ranking = CRITERION_TITLES.get(self.criterion, self.criterion)
         with Vertical(classes="dialog"):
             yield Static(

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import gc
 from collections import OrderedDict
 from dataclasses import dataclass, replace
 from itertools import count
@@ -16,12 +17,8 @@ from textual.widgets import DataTable, Footer
 from textual.worker import Worker, WorkerState, get_current_worker
 
 from triage._typing import CRITERIA
-from triage.data import source as data_source
-from triage.data.profile import profile_columns
-from triage.data.source import ROW_INDEX, CsvOptions
-from triage.engine.export import export_rows
-from triage.engine.passes import diagnose_rows, run_report
 from triage.errors import PassCancelled, TriageError
+from triage.tui.head_start import HeadStart, open_and_profile, segment_columns
 from triage.tui.messages import (
     ChecksFinished,
     ExportWritten,
@@ -35,7 +32,7 @@ from triage.tui.messages import (
 )
 from triage.tui.screens.dialogs import ErrorScreen, PromptScreen, TextScreen
 from triage.tui.screens.export import ExportRequest, ExportScreen
-from triage.tui.session import ModelDraft, SessionFit, compare_session_fits
+from triage.tui.session import ModelDraft, SessionFit, compare_session_fits, draft_from_settings
 from triage.tui.widgets.panes import (
     PANE_BY_ID,
     PANES,
@@ -56,8 +53,6 @@ from triage.tui.widgets.panes import (
 from triage.tui.widgets.status import ModelLine, PaneStrip, PassLine
 
 if TYPE_CHECKING:
-    import polars as pl
-
     from triage._typing import Criterion
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
@@ -70,15 +65,6 @@ TILE_MIN_WIDTH: Final = 110
 
 TILE_MIN_HEIGHT: Final = 32
 """From this many lines the panes of one page tile in two rows."""
-
-PROFILE_ROWS: Final = 20_000
-"""Rows read to profile the columns when the data opens."""
-
-MAX_SEGMENT_COLUMNS: Final = 8
-"""Most columns the diagnostics pass breaks residuals down by."""
-
-MAX_SEGMENT_LEVELS: Final = 50
-"""A numeric column with at most this many distinct values in the sample can segment."""
 
 ROW_CACHE_SIZE: Final = 256
 """Original rows kept after fetching, so stepping back and forth reads nothing again."""
@@ -335,21 +321,23 @@ class MainScreen(Screen[None]):
         ),
     ]
 
-    def __init__(self, settings: Settings, *, opened: SourceOpened | None = None) -> None:
+    def __init__(
+        self,
+        settings: Settings,
+        *,
+        opened: SourceOpened | None = None,
+        head_start: HeadStart | None = None,
+    ) -> None:
         super().__init__()
         self.settings = settings
         """How the session was opened."""
         self.opened = opened
         """A source already opened (when another file replaces the session's), else None."""
+        self.head_start = head_start
+        """Work begun before the app started (the data opened, the given model fitted)."""
         self.source: Source | None = None
         """The open data source."""
-        self.draft = ModelDraft(
-            target=settings.target,
-            weights=settings.weights,
-            where=settings.where,
-            categorical=settings.categorical,
-            intercept=settings.intercept,
-        )
+        self.draft = draft_from_settings(settings)
         """The model as being built."""
         self.fits: list[SessionFit] = []
         """Every fit of the session, oldest first."""
@@ -441,17 +429,22 @@ class MainScreen(Screen[None]):
         strip.shown = frozenset(shown)
         self.refresh_pane_strip()
 
-    def key_display(self, binding_id: str) -> str:
-        """Return the key of a binding as the active keymap has it (empty when unbound)."""
+    def key_displays(self) -> dict[str, str]:
+        """Return the key of each active binding, by binding id, as the active keymap has it.
+
+        A binding with several keys shows its first one.
+        """
+        displays: dict[str, str] = {}
         for active in self.active_bindings.values():
-            if active.binding.id == binding_id:
-                return self.app.get_key_display(active.binding)
-        return ""
+            if active.binding.id is not None and active.binding.id not in displays:
+                displays[active.binding.id] = self.app.get_key_display(active.binding)
+        return displays
 
     def refresh_pane_strip(self) -> None:
         """Show each pane's key, and the model-building keys, as the active keymap has them."""
+        displays = self.key_displays()
         self.query_one(PaneStrip).entries = tuple(
-            (info.pane_id, self.key_display(f"pane-{info.pane_id}"), info.title) for info in PANES
+            (info.pane_id, displays.get(f"pane-{info.pane_id}", ""), info.title) for info in PANES
         )
         hints = [
             ("set-target", "target"),
@@ -463,7 +456,7 @@ class MainScreen(Screen[None]):
             ("edit-filter", "filter"),
         ]
         self.query_one(ColumnsPane).keys_hint = "  ".join(
-            f"{self.key_display(binding_id)} {label}" for binding_id, label in hints
+            f"{displays.get(binding_id, '')} {label}" for binding_id, label in hints
         )
 
     def pane(self, pane_id: PaneId) -> Pane:
@@ -474,12 +467,15 @@ class MainScreen(Screen[None]):
         """Bring a pane to the front and give it the keyboard."""
         if pane_id not in PANE_BY_ID:
             return
-        self.front = cast("PaneId", pane_id)
-        self._apply_layout()
+        is_new = pane_id != self.front
+        if is_new:
+            self.front = cast("PaneId", pane_id)
+            self._apply_layout()
         target = self.pane(self.front).focus_target()
         if target.can_focus:
             target.focus()
-        self.refresh_bindings()
+        if is_new:
+            self.refresh_bindings()
 
     def action_cycle_pane(self, step: int) -> None:
         """Bring the next (step 1) or previous (step -1) pane to the front."""
@@ -523,17 +519,15 @@ class MainScreen(Screen[None]):
     @work(thread=True, exclusive=True, group="open", exit_on_error=False)
     def open_data(self, path: str) -> None:
         """Open the source and profile its columns on a small sample (thread worker)."""
+        settings = self.settings
         try:
-            source = data_source.open_source(path, csv=self.settings.csv or CsvOptions())
-            schema = source.schema()
-            sample = source.read_sample(
-                list(schema), n_rows=PROFILE_ROWS, seed=self.settings.seed, design="groups"
-            )
-            profile = profile_columns(schema, sample.frame)
+            opened = None if self.head_start is None else self.head_start.take_opened(path)
+            if opened is None:
+                opened = open_and_profile(path, csv=settings.csv, seed=settings.seed)
         except TriageError as error:
             self.post_message(PassFailed(0, str(error), "cannot open the data"))
             return
-        self.post_message(SourceOpened(source, profile))
+        self.post_message(SourceOpened(opened.source, opened.profile))
 
     def action_open_data(self) -> None:
         """Ask for another data source; once it opens, a new session starts on it."""
@@ -571,7 +565,7 @@ class MainScreen(Screen[None]):
             self.app.switch_screen(MainScreen(fresh, opened=message))
             return
         self.source = message.source
-        self.segment_columns = self._segment_columns(message.profile)
+        self.segment_columns = segment_columns(message.source.schema(), message.profile)
         columns = self.query_one(ColumnsPane)
         columns.profile = message.profile
         if self.settings.terms:
@@ -588,22 +582,6 @@ class MainScreen(Screen[None]):
             self.start_pass(is_full=False)
             if self.settings.is_full_at_start:
                 self.start_pass(is_full=True)
-
-    def _segment_columns(self, profile: pl.DataFrame) -> tuple[str, ...]:
-        """Choose columns to break residuals down by: text-like ones, then few-valued numbers."""
-        from triage.core.spec import is_categorical_dtype
-
-        assert self.source is not None
-        schema = self.source.schema()
-        text_like = [n for n, d in schema.items() if is_categorical_dtype(d)]
-        few = [
-            row["name"]
-            for row in profile.iter_rows(named=True)
-            if row["name"] not in text_like
-            and schema[row["name"]].is_integer()
-            and 1 < row["distinct"] <= MAX_SEGMENT_LEVELS
-        ]
-        return tuple([*text_like, *few][:MAX_SEGMENT_COLUMNS])
 
     # ----------------------------------------------------------------------------------------
     # building the model
@@ -723,12 +701,7 @@ class MainScreen(Screen[None]):
         if self.source is None:
             return None
         try:
-            return (draft or self.draft).to_spec(
-                self.source.schema(),
-                reference=self.settings.reference,
-                max_levels=self.settings.max_levels,
-                drop_invalid=self.settings.drop_invalid,
-            )
+            return (draft or self.draft).to_spec(self.source.schema(), self.settings)
         except TriageError as error:
             self.show_error(str(error), title="the model cannot be fitted")
             return None
@@ -781,7 +754,13 @@ class MainScreen(Screen[None]):
         self.refresh_bindings()
 
     def _report(self, job: PassJob, *, rows: int | None) -> None:
-        """Run one pass of `job` in the current worker and post how it ended."""
+        """Run one pass of `job` in the current worker and post how it ended.
+
+        A sample fit the head start already made (or is making) of the same model is taken
+        over instead of computed again.
+        """
+        from triage.engine.passes import run_report
+
         assert self.source is not None
         worker = get_current_worker()
 
@@ -791,8 +770,19 @@ class MainScreen(Screen[None]):
         def report_fit(outcome: FitOutcome) -> None:
             self.post_message(FitComputed(job.pass_id, outcome))
 
+        head_start = self.head_start if rows is not None and not job.excluded else None
         try:
-            report = run_report(
+            early = (
+                None
+                if head_start is None
+                else head_start.take_report(
+                    job.spec,
+                    self.segment_columns,
+                    cancel=worker.cancelled_event,
+                    on_fit=report_fit,
+                )
+            )
+            report = early or run_report(
                 self.source,
                 job.spec,
                 rows=rows,
@@ -892,6 +882,11 @@ class MainScreen(Screen[None]):
         self.fits.append(fit)
         self.query_one(FitsPane).fits = tuple(self.fits)
         self.show_fit(fit)
+        if fit.number == 1:
+            # Everything loaded by now (modules, widgets) lives as long as the app: keep it
+            # out of the collector's full sweeps, which otherwise took 140-190 ms in the
+            # middle of a keystroke (measured stepping through rows on a 20M-row file).
+            gc.freeze()
         if is_full:
             self.notify(f"fit #{fit.number} now uses every row")
 
@@ -1007,12 +1002,14 @@ class MainScreen(Screen[None]):
             row_pane.row = RowView(position, None, None, is_marked=position in self.marked)
             if self.current is not None:
                 self.fetch_row(position, self.current)
-        if not self.is_tiled or PANE_BY_ID[self.front].page != "rows":
+        if self.front != "row" and (not self.is_tiled or PANE_BY_ID[self.front].page != "rows"):
             self.action_show_pane("row")
 
     @work(thread=True, exclusive=True, group="row-fetch", exit_on_error=False)
     def fetch_row(self, position: int, fit: SessionFit) -> None:
         """Read the whole original row by position and diagnose it (thread worker)."""
+        from triage.engine.passes import diagnose_rows
+
         assert self.source is not None
         try:
             frame, diagnostics = diagnose_rows(self.source, fit.report.outcome, [position])
@@ -1066,6 +1063,9 @@ class MainScreen(Screen[None]):
         Stepping through worst rows then redraws from the cache at once instead of reading
         a row group per key press (measured: about 200 ms a step on a 20-million-row file).
         """
+        from triage.core.design import ROW_INDEX
+        from triage.engine.passes import diagnose_rows
+
         wanted = [p for p in positions if p not in self.row_cache]
         if self.source is None or not wanted:
             return
@@ -1168,6 +1168,8 @@ class MainScreen(Screen[None]):
         The rules are those of `triage export`: a temporary file renamed into place, never an
         input file, an existing file replaced only when asked.
         """
+        from triage.engine.export import export_rows
+
         assert self.source is not None
         try:
             written = export_rows(

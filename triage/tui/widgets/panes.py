@@ -2,6 +2,8 @@
 
 Panes never call the engine, never call each other and never compute a statistic: the
 screen assigns results to their reactives and they turn them into text with `triage.views`.
+The views (numpy, plotext) are imported where a pane first draws results, so the first frame
+does not wait for them.
 """
 
 from __future__ import annotations
@@ -11,7 +13,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Final, Literal
 
-import polars as pl
+from rich.cells import cell_len
 from rich.text import Text
 from textual.app import ComposeResult
 from textual.containers import Vertical, VerticalScroll
@@ -19,28 +21,10 @@ from textual.reactive import reactive
 from textual.widget import Widget
 from textual.widgets import DataTable, Static
 
-from triage.core.compare import refit_shifts
-from triage.data.source import ROW_INDEX
 from triage.tui.session import ModelDraft, SessionFit
-from triage.views.charts import render_binned, render_histogram
-from triage.views.format import format_count, format_number, truncate
-from triage.views.text import (
-    CRITERION_TITLES,
-    join_sections,
-    model_formula,
-    render_aliased,
-    render_coefficients,
-    render_data_summary,
-    render_fit_quality,
-    render_flags,
-    render_residual_summary,
-    render_segments,
-    render_tests,
-    rule,
-    table,
-)
 
 if TYPE_CHECKING:
+    import polars as pl
     from rich.console import RenderableType
 
     from triage.core.compare import Comparison, Criterion
@@ -187,6 +171,8 @@ class ColumnsPane(Pane):
     def _fill(self) -> None:
         if not self.is_mounted or self.profile is None:
             return
+        from triage.views.format import format_number
+
         table = _table(self, "columns-table")
         row = table.cursor_row
         table.clear()
@@ -248,6 +234,8 @@ class FitPane(TextPane):
 
     def text_for(self, width: int) -> str | None:
         """Compose data, fit quality, coefficients and the what-if comparison."""
+        from triage.views.text import join_sections
+
         if self.provisional is not None:
             number, outcome = self.provisional
             header = f"fit #{number}: computed on a SAMPLE (residual diagnostics still running)"
@@ -267,6 +255,13 @@ def _fit_sections(
     header: str, outcome: FitOutcome, robust: dict[str, float] | None, width: int
 ) -> list[str]:
     """Header, data summary, fit quality, coefficients and aliased terms of one fit."""
+    from triage.views.text import (
+        render_aliased,
+        render_coefficients,
+        render_data_summary,
+        render_fit_quality,
+    )
+
     return [
         header,
         render_data_summary(outcome.data, width=width),
@@ -278,6 +273,10 @@ def _fit_sections(
 
 def _what_if_text(before: SessionFit, after: SessionFit, width: int) -> str:
     """Describe how the coefficients and R² moved when the marked rows were left out."""
+    from triage.core.compare import refit_shifts
+    from triage.views.format import format_number, truncate
+    from triage.views.text import rule, table
+
     shifts = refit_shifts(before.report.outcome.fit, after.report.outcome.fit)
     rows = [
         [
@@ -360,6 +359,9 @@ class FitsPane(Pane):
     def _fill(self) -> None:
         if not self.is_mounted:
             return
+        from triage.views.format import format_count, format_number
+        from triage.views.text import model_formula
+
         table = _table(self, "fits-table")
         table.clear()
         compared, comparison = self.comparison or ((), None)
@@ -422,6 +424,11 @@ class RowPane(Pane):
     row: reactive[RowView | None] = reactive(None, always_update=True)
     """The row shown, or None before one is chosen."""
 
+    def __init__(self, info: PaneInfo) -> None:
+        super().__init__(info)
+        self.cells: list[tuple[str, str]] = []
+        """The (field, value) rows the table shows."""
+
     def compose(self) -> ComposeResult:
         """Add the heading and the row table."""
         yield Static(self.info.hint, classes="pane--note", markup=False)
@@ -436,25 +443,58 @@ class RowPane(Pane):
         """Show the row, or a placeholder while it is read."""
         if not self.is_mounted or view is None:
             return
-        note = self.query_one(".pane--note", Static)
-        table = _table(self, "row-table")
-        table.clear()
         mark = "  [marked]" if view.is_marked else ""
         if view.frame is None:
-            note.update(f"row {view.position:,}: reading…{mark}")
+            self._set_note(f"row {view.position:,}: reading…{mark}")
+            self._set_cells([])
             return
-        note.update(f"row {view.position:,} of the source (0-based){mark}")
-        for name, value in _diagnostic_cells(view):
-            table.add_row(name, value)
-        record = view.frame.row(0, named=True) if view.frame.height else {}
-        for name, value in record.items():
-            if name == ROW_INDEX:
-                continue
-            table.add_row(name, "(missing)" if value is None else str(value))
+        self._set_note(f"row {view.position:,} of the source (0-based){mark}")
+        self._set_cells([*_diagnostic_cells(view), *_record_cells(view.frame)])
+
+    def _set_note(self, text: str) -> None:
+        """Show `text` above the table; a note that stays on one line needs no new layout."""
+        note = self.query_one(".pane--note", Static)
+        stays_one_line = note.size.height == 1 and cell_len(text) <= note.size.width
+        note.update(text, layout=not stays_one_line)
+
+    def _set_cells(self, cells: list[tuple[str, str]]) -> None:
+        """Fill the table; when only the values changed, update those cells in place.
+
+        Stepping between rows of one source keeps the fields, so the table is not rebuilt
+        (and the cursor stays on the field it was on).
+        """
+        table = _table(self, "row-table")
+        if [name for name, _ in cells] != [name for name, _ in self.cells]:
+            table.clear()
+            for index, (name, value) in enumerate(cells):
+                table.add_row(name, value, key=str(index))
+        else:
+            column = table.ordered_columns[1]
+            for index, ((_, old), (_, new)) in enumerate(zip(self.cells, cells, strict=True)):
+                if new != old:
+                    # widen the column for a longer value; never narrow it (measuring the
+                    # whole column per cell made a step cost 10 ms more)
+                    wider = cell_len(new) > column.content_width
+                    table.update_cell(str(index), column.key, new, update_width=wider)
+        self.cells = cells
+
+
+def _record_cells(frame: pl.DataFrame) -> list[tuple[str, str]]:
+    """Name and format every original field of a one-row frame."""
+    from triage.core.design import ROW_INDEX
+
+    record = frame.row(0, named=True) if frame.height else {}
+    return [
+        (name, "(missing)" if value is None else str(value))
+        for name, value in record.items()
+        if name != ROW_INDEX
+    ]
 
 
 def _diagnostic_cells(view: RowView) -> list[tuple[str, str]]:
     """Name and format the diagnostics of one row (or say why there are none)."""
+    from triage.views.format import format_number
+
     diag = view.diagnostics
     if diag is None or len(diag.rows) == 0:
         return [("fitted", "not used by the model (missing value or unseen level)")]
@@ -527,6 +567,8 @@ class SpreadPane(ChartPane):
         """Draw the histogram of residuals."""
         if self.shown is None:
             return None
+        from triage.views.charts import render_histogram
+
         histogram = self.shown.report.diagnostics.histogram
         return render_histogram(histogram, width, height, color=self.color())
 
@@ -538,6 +580,8 @@ class TrendPane(ChartPane):
         """Draw residuals by fitted value."""
         if self.shown is None:
             return None
+        from triage.views.charts import render_binned
+
         bins = self.shown.report.diagnostics.binned.get("fitted", ())
         return render_binned(
             bins,
@@ -565,6 +609,8 @@ class PredictorsPane(ChartPane):
             return None
         if self.predictor is None:
             return "the model has no numeric predictor to draw against"
+        from triage.views.charts import render_binned
+
         names = self.shown.report.outcome.builder.numeric_predictors
         position = f"{names.index(self.predictor) + 1} of {len(names)}"
         bins = self.shown.report.diagnostics.binned.get(self.predictor, ())
@@ -593,6 +639,13 @@ class FlagsPane(TextPane):
         """Compose the hints, the residual tests and the shape of the residuals."""
         if self.shown is None:
             return None
+        from triage.views.text import (
+            join_sections,
+            render_flags,
+            render_residual_summary,
+            render_tests,
+        )
+
         diagnostics = self.shown.report.diagnostics
         return join_sections(
             [
@@ -630,6 +683,8 @@ class WorstPane(Pane):
 
     def show(self, fit: SessionFit, criterion: str) -> None:
         """List the worst rows of `fit` by `criterion`."""
+        from triage.views.text import CRITERION_TITLES
+
         self.rows = fit.report.diagnostics.worst.get(criterion, ())  # type: ignore[call-overload]
         self.criterion = criterion
         self._fill()
@@ -647,6 +702,8 @@ class WorstPane(Pane):
     def _fill(self) -> None:
         if not self.is_mounted:
             return
+        from triage.views.format import format_number
+
         table = _table(self, "worst-table")
         row = table.cursor_row
         table.clear()
@@ -707,6 +764,9 @@ class SegmentsPane(TextPane):
         names = list(diagnostics.segments)
         if self.column is None or self.column not in diagnostics.segments:
             return "no column to break residuals down by (text columns or few-valued numbers)"
+        from triage.views.format import truncate
+        from triage.views.text import render_segments
+
         position = f"column {names.index(self.column) + 1} of {len(names)}"
         body = render_segments(
             self.column,

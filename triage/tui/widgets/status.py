@@ -8,8 +8,6 @@ from rich.text import Text
 from textual.reactive import reactive
 from textual.widget import Widget
 
-from triage.views.format import format_count
-
 if TYPE_CHECKING:
     from rich.console import RenderableType
 
@@ -86,6 +84,8 @@ def progress_text(progress: PassProgress, width: int) -> str:
     str
         One line of plain text.
     """
+    from triage.views.format import format_count
+
     fraction = progress.fraction
     speed = f"{format_count(round(progress.rows_per_s))} rows/s"
     done = format_count(progress.rows_done)
