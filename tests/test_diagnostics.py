@@ -327,9 +327,14 @@ def test_diagnostics_streamed_and_merged_equal_one_batch(case, rng) -> None:
     first = run(fit, config, pieces[:4])
     second = run(fit, config, pieces[4:])
     merged = first.merge(second).finalize()
+    # Batches dealt out in turn to three accumulators, as a pass split over threads does,
+    # merged in reverse: Durbin-Watson must still join the batches in file order.
+    dealt = [run(fit, config, pieces[k::3]) for k in range(3)]
+    interleaved = dealt[2].merge(dealt[1]).merge(dealt[0]).finalize()
     # Oracle: the one-batch pass (itself checked against statsmodels above).
     assert_same(whole, streamed)
     assert_same(whole, merged)
+    assert_same(whole, interleaved)
 
 
 def test_diagnostics_merge_rejects_another_fit(case) -> None:

@@ -733,8 +733,8 @@ class DiagnosticsAccumulator:
 
     Notes
     -----
-    Feed batches in file order: Durbin–Watson joins neighbouring batches, and `merge`
-    assumes the other accumulator's rows come after this one's. Threshold counts for the
+    Batches may come in any order and parts of a pass merge in any order (Durbin–Watson
+    joins batches by the source position of their rows). Threshold counts for the
     flags are exact: the thresholds ``2p/n`` and ``4/n`` use the fit's row count, known
     after pass 1.
 
@@ -810,7 +810,7 @@ class DiagnosticsAccumulator:
         e = rd.weighted_resid
         self._n += e.size
         self._moments.update(e)
-        self._dw.update(e)
+        self._dw.update(e, start=int(batch.rows[0]))
         self._hist += np.bincount(self._hist_lookup.fine(e), minlength=self._hist.size)
         cell = self._fine_lookup.fine(e)  # shared by every binned variable
         self._fine += np.bincount(cell, minlength=self._fine.size)
@@ -859,7 +859,11 @@ class DiagnosticsAccumulator:
             self._meat[j] += block.T @ block
 
     def merge(self, other: DiagnosticsAccumulator) -> DiagnosticsAccumulator:
-        """Fold in an accumulator over later rows of the same fit and config; returns self.
+        """Fold in an accumulator over other rows of the same fit and config; returns self.
+
+        The rows may come from anywhere in the file: Durbin–Watson joins batches by
+        position. Which levels of a segment column past its level cap get rows of their own
+        depends on the order the levels were met in.
 
         Raises
         ------

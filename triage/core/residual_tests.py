@@ -12,6 +12,7 @@ A small p-value or an unusual statistic is an aid to judgement, not a verdict.
 
 from __future__ import annotations
 
+import itertools
 import math
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
@@ -159,44 +160,57 @@ def jarque_bera(moments: StreamMoments) -> ResidualTest:
     return ResidualTest(jb, (2.0,), chi2_sf(jb, 2))
 
 
+@dataclass(frozen=True)
+class _Run:
+    """Residuals of one batch of consecutive used rows, from source position `start`."""
+
+    start: int
+    n: int
+    first: float
+    last: float
+    sum_sq_diff: float
+    sum_sq: float
+
+
 class DurbinWatsonAccumulator:
-    """``Σ (e_t - e_{t-1})² / Σ e_t²`` over rows in file order; merge expects `other` later."""
+    """``Σ (e_t - e_{t-1})² / Σ e_t²`` over rows in file order.
+
+    Each batch is kept as a run of six numbers keyed by the source position of its first
+    row, so batches may come in any order and accumulators merge in any order (a pass split
+    over threads): `finalize` joins the runs by position. Memory grows with the number of
+    batches, not of rows.
+    """
 
     def __init__(self) -> None:
-        self.n = 0
-        self.first = 0.0
-        self.last = 0.0
-        self.sum_sq_diff = 0.0
-        self.sum_sq = 0.0
+        self._runs: list[_Run] = []
 
-    def update(self, resid: FloatArray) -> None:
-        """Add the next residuals in file order."""
+    def update(self, resid: FloatArray, start: int) -> None:
+        """Add the residuals of consecutive rows whose first row is at source position `start`."""
         if resid.size == 0:
             return
         diff = np.diff(resid)
-        block = DurbinWatsonAccumulator()
-        block.n = int(resid.size)
-        block.first, block.last = float(resid[0]), float(resid[-1])
-        block.sum_sq_diff = float(diff @ diff)
-        block.sum_sq = float(resid @ resid)
-        self.merge(block)
+        self._runs.append(
+            _Run(
+                start=start,
+                n=int(resid.size),
+                first=float(resid[0]),
+                last=float(resid[-1]),
+                sum_sq_diff=float(diff @ diff),
+                sum_sq=float(resid @ resid),
+            )
+        )
 
     def merge(self, other: DurbinWatsonAccumulator) -> None:
-        """Append `other`, whose rows follow this one's in file order."""
-        if other.n == 0:
-            return
-        if self.n == 0:
-            self.first = other.first
-        else:
-            step = other.first - self.last
-            self.sum_sq_diff += step * step
-        self.last = other.last
-        self.n += other.n
-        self.sum_sq_diff += other.sum_sq_diff
-        self.sum_sq += other.sum_sq
+        """Add the runs of `other`, from anywhere in the file."""
+        self._runs.extend(other._runs)
 
     def finalize(self) -> ResidualTest:
         """Return the statistic (NaN below 2 rows or with all-zero residuals); no p-value."""
-        if self.n < 2 or self.sum_sq <= 0.0:
+        runs = sorted(self._runs, key=lambda run: run.start)
+        n = sum(run.n for run in runs)
+        sum_sq = sum(run.sum_sq for run in runs)
+        if n < 2 or sum_sq <= 0.0:
             return ResidualTest(math.nan, (), math.nan)
-        return ResidualTest(self.sum_sq_diff / self.sum_sq, (), math.nan)
+        sum_sq_diff = sum(run.sum_sq_diff for run in runs)
+        sum_sq_diff += sum((b.first - a.last) ** 2 for a, b in itertools.pairwise(runs))
+        return ResidualTest(sum_sq_diff / sum_sq, (), math.nan)

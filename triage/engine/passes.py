@@ -28,6 +28,7 @@ from triage.core.lsq import LinearFit, QRAccumulator
 from triage.data.source import ROW_INDEX
 from triage.engine.allocator import keep_batch_memory
 from triage.engine.progress import PassProgress, ProgressCallback, ProgressTracker, ReadAhead
+from triage.engine.workers import BatchWorkers
 from triage.errors import DataError
 
 if TYPE_CHECKING:
@@ -124,6 +125,13 @@ class RowCounts:
         self.domain += batch.n_dropped_domain
         self.unseen += batch.n_dropped_unseen_level
         self.used += batch.x.shape[0]
+
+    def absorb(self, part: RowCounts) -> None:
+        """Add the design-batch counts (`add`) gathered by one part of a split pass."""
+        self.missing += part.missing
+        self.domain += part.domain
+        self.unseen += part.unseen
+        self.used += part.used
 
 
 class PassPlan:
@@ -337,14 +345,28 @@ def _fit(
 ) -> FitOutcome:
     spec = plan.spec
     builder = DesignBuilder.learn(spec, plan.source.schema(), plan.learning_frame)
-    accumulator = QRAccumulator(len(builder.column_names), has_intercept=spec.intercept)
-    counts = RowCounts()
-    tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
-    for frame in plan.frames(counts, tracker):
+
+    def new_part() -> tuple[QRAccumulator, RowCounts]:
+        return QRAccumulator(len(builder.column_names), has_intercept=spec.intercept), RowCounts()
+
+    def fold(part: tuple[QRAccumulator, RowCounts], frame: pl.DataFrame) -> None:
+        accumulator, part_counts = part
         batch = builder.build(frame)
-        counts.add(batch)
+        part_counts.add(batch)
         if batch.x.shape[0]:
             accumulator.update(batch.x, batch.y, batch.weights)
+
+    counts = RowCounts()
+    tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
+    with BatchWorkers(new_part, fold) as workers:
+        for frame in plan.frames(counts, tracker):
+            workers.submit(frame)
+        parts = workers.finish()
+    accumulator = parts[0][0]
+    for other, _ in parts[1:]:
+        accumulator.merge(other)
+    for _, part_counts in parts:
+        counts.absorb(part_counts)
     check_rows_left(counts, spec)
     n_coefficients = len(builder.column_names)
     if counts.used < n_coefficients:
@@ -475,13 +497,21 @@ def _diagnose(
         top_k=top_k,
         is_ordered=is_ordered,
     )
-    accumulator = DiagnosticsAccumulator(fit, config)
-    counts = RowCounts()
-    tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
-    for frame in plan.frames(counts, tracker):
+
+    def fold(accumulator: DiagnosticsAccumulator, frame: pl.DataFrame) -> None:
         batch = builder.build(frame)
         if batch.x.shape[0]:
             accumulator.update(batch)
+
+    counts = RowCounts()
+    tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
+    with BatchWorkers(lambda: DiagnosticsAccumulator(fit, config), fold) as workers:
+        for frame in plan.frames(counts, tracker):
+            workers.submit(frame)
+        parts = workers.finish()
+    accumulator = parts[0]
+    for other in parts[1:]:
+        accumulator.merge(other)
     return accumulator.finalize()
 
 
