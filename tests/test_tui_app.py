@@ -967,3 +967,51 @@ async def test_tui_row_table_shows_each_stepped_row_as_polars_reads_it(
             assert fields == {k: "(missing)" if v is None else str(v) for k, v in original.items()}
             await press_id(pilot, "next-row")
             await settle(pilot)
+
+
+async def test_tui_footer_follows_the_active_keys_and_rebuilds_only_on_change(
+    config_home: Path, demo_file: Path, gated: list[GatedSource]
+) -> None:
+    from textual.widgets._footer import FooterKey
+
+    from triage.tui.widgets.status import KeyFooter
+
+    app = build_app(
+        demo_file, target="minutes", terms="distance_km, stops", sample_rows=SAMPLE_ROWS
+    )
+
+    def footer_keys() -> list[FooterKey]:
+        return list(app.screen.query_one(KeyFooter).query(FooterKey))
+
+    def matches_textual() -> bool:
+        # oracle: Textual's own active bindings of the screen, those marked to be shown
+        shown = [
+            (active.binding.key, active.enabled)
+            for active in app.screen.active_bindings.values()
+            if active.binding.show
+        ]
+        drawn = [(key.key, not key.has_class("-disabled")) for key in footer_keys()]
+        return drawn[: len(shown)] == shown
+
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        assert matches_textual()
+        await press_id(pilot, "pane-fit")  # the column keys turn off away from Columns
+        await pilot.pause()
+        assert matches_textual()
+        before = footer_keys()
+        for pane in ("pane-worst", "pane-spread", "pane-row"):  # focus moves, keys stay
+            await press_id(pilot, pane)
+        await pilot.pause()
+        assert footer_keys() == before
+        await press_id(pilot, "start-full-pass")  # the stop key becomes active
+        await _wait_for(pilot, matches_textual)
+        assert footer_keys() != before
+        assert any(
+            key.action == "cancel_pass" and not key.has_class("-disabled") for key in footer_keys()
+        )
+        for _ in range(60):
+            gated[0].gate.release()
+        await _wait_for(pilot, lambda: main_screen(app).running_pass is None)
+        await settle(pilot)
+        assert matches_textual()

@@ -13,7 +13,7 @@ from textual.app import ComposeResult
 from textual.binding import Binding, BindingType
 from textual.containers import Container
 from textual.screen import Screen
-from textual.widgets import DataTable, Footer
+from textual.widgets import DataTable
 from textual.worker import Worker, WorkerState, get_current_worker
 
 from triage._typing import CRITERIA
@@ -50,7 +50,7 @@ from triage.tui.widgets.panes import (
     TrendPane,
     WorstPane,
 )
-from triage.tui.widgets.status import ModelLine, PaneStrip, PassLine
+from triage.tui.widgets.status import KeyFooter, ModelLine, PaneStrip, PassLine
 
 if TYPE_CHECKING:
     from triage._typing import Criterion
@@ -392,7 +392,7 @@ class MainScreen(Screen[None]):
             yield WorstPane(PANE_BY_ID["worst"])
             yield RowPane(PANE_BY_ID["row"])
         yield PassLine(id="pass-line")
-        yield Footer(compact=True)
+        yield KeyFooter(compact=True)
 
     def on_mount(self) -> None:
         """Lay out for the terminal's size, then open the data in the background."""
@@ -918,8 +918,10 @@ class MainScreen(Screen[None]):
         self.row_cache.clear()
         self.prefetch_rows(self._worst_positions(), fit)
         self._show_basis()
-        self.set_class(fit.is_full_pass, "-every-row")
-        self.set_class(not fit.is_full_pass, "-from-sample")
+        # on the pass line itself: a class on the screen would restyle every widget
+        pass_line = self.query_one(PassLine)
+        pass_line.set_class(fit.is_full_pass, "-every-row")
+        pass_line.set_class(not fit.is_full_pass, "-from-sample")
         self.refresh_bindings()
 
     @on(DataTable.RowSelected, "#fits-table")

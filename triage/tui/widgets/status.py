@@ -7,9 +7,11 @@ from typing import TYPE_CHECKING
 from rich.text import Text
 from textual.reactive import reactive
 from textual.widget import Widget
+from textual.widgets import Footer
 
 if TYPE_CHECKING:
     from rich.console import RenderableType
+    from textual.screen import Screen
 
     from triage.engine.progress import PassProgress
 
@@ -131,3 +133,30 @@ class PassLine(Widget):
             text.append("\n")
             text.append(progress_text(self.progress, self.size.width), style="bold")
         return text
+
+
+class KeyFooter(Footer):
+    """Textual's footer of keys, rebuilt only when the keys it shows change.
+
+    Textual rebuilds the footer (every key a widget) whenever the bindings may have changed:
+    each focus change and each `refresh_bindings`. Most change nothing it shows, and the
+    rebuilds took the main thread's time while the first fit was being made.
+    """
+
+    def __init__(self, *, compact: bool = False) -> None:
+        super().__init__(compact=compact)
+        self.shown_keys: tuple[tuple[str, str, bool], ...] | None = None
+        """(key, description, enabled) of each key shown at the last rebuild."""
+
+    def bindings_changed(self, screen: Screen[object]) -> None:
+        """Rebuild when the keys shown, their descriptions or their states changed."""
+        shown = tuple(
+            (active.binding.key, active.binding.description, active.enabled)
+            for active in screen.active_bindings.values()
+            if active.binding.show
+        )
+        if shown == self.shown_keys:
+            return
+        super().bindings_changed(screen)
+        if self.is_attached and screen is self.screen and screen.app.app_focus:
+            self.shown_keys = shown  # the rebuild is under way
