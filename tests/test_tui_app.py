@@ -6,6 +6,7 @@ statsmodels OLS (with its HC3 covariance and influence measures) on the same row
 
 from __future__ import annotations
 
+import gc
 import threading
 from collections.abc import Iterator
 from pathlib import Path
@@ -885,6 +886,8 @@ async def test_tui_head_start_fit_is_taken_over_not_repeated(
         await press_id(pilot, "quick-fit")
         await settle(pilot)
         assert len(runs) == 2 and screen.current is not None and screen.current.number == 2
+    head_start.stop()
+    assert gc.isenabled()  # the collector paused for the start only
 
 
 async def test_tui_head_start_bad_terms_are_reported_by_the_screen(
@@ -904,12 +907,14 @@ async def test_tui_head_start_unreadable_file_is_reported_by_the_screen(
 ) -> None:
     broken = tmp_path / "broken.parquet"
     broken.write_bytes(b"not a parquet file")
-    app, _ = _head_start_app(broken, target="minutes", terms="distance_km")
+    app, head_start = _head_start_app(broken, target="minutes", terms="distance_km")
     async with app.run_test(size=SMALL) as pilot:
         await settle(pilot)
         assert isinstance(app.screen, ErrorScreen)
         assert app.screen.title_text == "cannot open the data"
         assert app.is_running
+    head_start.stop()
+    assert gc.isenabled()
 
 
 def test_tui_app_module_loads_no_data_or_statistics_library() -> None:

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import gc
 from collections import OrderedDict
 from dataclasses import dataclass, replace
 from itertools import count
@@ -18,7 +17,7 @@ from textual.worker import Worker, WorkerState, get_current_worker
 
 from triage._typing import CRITERIA
 from triage.errors import PassCancelled, TriageError
-from triage.tui.head_start import HeadStart, open_and_profile, segment_columns
+from triage.tui.head_start import HeadStart, collect_again, open_and_profile, segment_columns
 from triage.tui.messages import (
     ChecksFinished,
     ExportWritten,
@@ -883,10 +882,7 @@ class MainScreen(Screen[None]):
         self.query_one(FitsPane).fits = tuple(self.fits)
         self.show_fit(fit)
         if fit.number == 1:
-            # Everything loaded by now (modules, widgets) lives as long as the app: keep it
-            # out of the collector's full sweeps, which otherwise took 140-190 ms in the
-            # middle of a keystroke (measured stepping through rows on a 20M-row file).
-            gc.freeze()
+            collect_again()
         if is_full:
             self.notify(f"fit #{fit.number} now uses every row")
 
