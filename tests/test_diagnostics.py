@@ -440,6 +440,34 @@ def test_diagnostics_segments_match_polars_group_by(case) -> None:
     )
 
 
+def test_diagnostics_segments_of_a_model_column_are_zero_and_ordered_by_size(rng) -> None:
+    # With `g` coded as dummies in the model, least squares makes every level's residuals
+    # sum to zero (statsmodels' residual means per level are rounding noise, checked below):
+    # t is 0 for each level, not noise, and levels come by size, then name (polars oracle).
+    data = make_data(rng)
+    levels = sorted(set(data["g"]))
+    dummies = [(data["g"] == level).astype(float) for level in levels[1:]]
+    x = np.column_stack([design(data), *dummies])
+    acc = QRAccumulator(x.shape[1], has_intercept=True)
+    acc.update(x, data["y"])
+    fit = acc.finalize([*NAMES, *levels[1:]])
+    res = sm.OLS(data["y"], x).fit()
+    e = np.asarray(res.resid)
+    assert max(abs(e[data["g"] == level].mean()) for level in levels) < 1e-12
+    config = default_config(fit, fit.predict(x), {}, ("g",), {"g": pl.Series(data["g"])})
+    n = x.shape[0]
+    batch = batch_of(data, x, None, 0, n)
+    diag = run(fit, config, [batch]).finalize()
+    sizes = (
+        pl.DataFrame({"g": data["g"]})
+        .group_by("g")
+        .len()
+        .sort(["len", "g"], descending=[True, False])
+    )
+    assert [lv.level for lv in diag.segments["g"]] == sizes["g"].to_list()
+    assert all(lv.t == 0.0 and lv.mean_resid == 0.0 for lv in diag.segments["g"])
+
+
 def test_diagnostics_segments_pool_levels_past_the_cap(case) -> None:
     data, x, w, fit, res = case
     config = config_for(fit, data, x, max_segment_levels=3)

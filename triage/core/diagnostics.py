@@ -632,6 +632,10 @@ def _interval_labels(cuts: FloatArray) -> list[str]:
     return [f"< {text[0]}", *middle, f">= {text[-1]}"]
 
 
+ROUNDING_MEAN: Final = 1e-9
+"""A segment's mean residual below this fraction of its RMSE is taken as exactly zero."""
+
+
 class _Segments:
     """Count, mean and Σ(e - mean)² of weighted residuals per level of one column."""
 
@@ -711,10 +715,22 @@ class _Segments:
             if n == 0:
                 continue
             mean, m2 = float(self.mean[j]), float(self.m2[j])
-            t = mean / math.sqrt(m2 / (n - 1) / n) if n > 1 and m2 > 0.0 else math.nan
             rmse = math.sqrt(m2 / n + mean * mean)
+            if abs(mean) <= ROUNDING_MEAN * rmse:
+                # Zero up to rounding, as for a column that is itself in the model: a t of
+                # rounding noise would order the levels at random.
+                mean = 0.0
+            t = mean / math.sqrt(m2 / (n - 1) / n) if n > 1 and m2 > 0.0 else math.nan
             out.append(SegmentLevel(level=label, n=n, mean_resid=mean, rmse=rmse, t=t))
-        out.sort(key=lambda lev: (math.isnan(lev.t), -abs(lev.t) if not math.isnan(lev.t) else 0))
+        # Largest |t| first; ties (say every level at 0) by size, then by name.
+        out.sort(
+            key=lambda lev: (
+                math.isnan(lev.t),
+                -abs(lev.t) if not math.isnan(lev.t) else 0.0,
+                -lev.n,
+                lev.level,
+            )
+        )
         return tuple(out)
 
 
