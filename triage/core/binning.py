@@ -79,6 +79,13 @@ def bin_index(edges: FloatArray, values: FloatArray) -> IntArray:
     return np.clip(idx, 0, last).astype(np.int64)
 
 
+MAX_LOOKUP_CELLS: Final = 65_536
+"""Most cells of a `BinLookup` table (512 KiB), so the table stays in the processor's cache."""
+
+_UNCERTAIN: Final = -1
+"""Table entry of a cell whose values go to `numpy.searchsorted`."""
+
+
 class BinLookup:
     """Find bins like `bin_index`, and cells of a fine grid with tails, by a lookup table.
 
@@ -94,14 +101,14 @@ class BinLookup:
     ----------
     edges : ndarray of shape (n_edges,)
         Increasing bin edges (as `quantile_edges` returns, or a fine grid).
-    cells_per_edge : int, default=64
-        Cells of the lookup table per edge (at least 1,024 cells): about ``3 / cells_per_edge``
-        of the values of an even spread then need `numpy.searchsorted`.
+    cells_per_edge : int, default=512
+        Cells of the lookup table per edge (1,024 to `MAX_LOOKUP_CELLS`): about
+        ``3 / cells_per_edge`` of the values of an even spread then need `numpy.searchsorted`.
     """
 
-    def __init__(self, edges: FloatArray, *, cells_per_edge: int = 64) -> None:
+    def __init__(self, edges: FloatArray, *, cells_per_edge: int = 512) -> None:
         self.edges = np.asarray(edges, dtype=np.float64)
-        cells = max(1024, cells_per_edge * self.edges.size)
+        cells = min(max(1024, cells_per_edge * self.edges.size), MAX_LOOKUP_CELLS)
         self.low = float(self.edges[0])
         span = float(self.edges[-1]) - self.low
         self.scale = cells / span if span > 0 and np.isfinite(span) else 0.0
@@ -110,22 +117,23 @@ class BinLookup:
             starts = self.low + np.arange(cells + 1) / self.scale
             counts = np.searchsorted(self.edges, starts, side="right")
             changes = np.flatnonzero(counts[:-1] != counts[1:])
-            uncertain = np.zeros(cells, dtype=bool)
+            table = counts[:-1].astype(np.int64)
             for shift in (-1, 0, 1):
-                uncertain[np.clip(changes + shift, 0, cells - 1)] = True
-            uncertain[[0, cells - 1]] = True  # values clipped into the end cells
-            self.count_table = counts[:-1]
-            self.uncertain = uncertain
+                table[np.clip(changes + shift, 0, cells - 1)] = _UNCERTAIN
+            table[[0, cells - 1]] = _UNCERTAIN  # values clipped into the end cells
+            self.table = table
 
     def _edges_at_or_below(self, values: FloatArray) -> tuple[IntArray, IntArray]:
         """Return ``searchsorted(edges, values, "right")`` and where the table was not used."""
         if not self.scale:
             return np.searchsorted(self.edges, values, side="right"), np.arange(values.size)
+        position = np.multiply(values, self.scale)
+        position -= self.low * self.scale
         with np.errstate(invalid="ignore"):  # NaN or inf cast to an integer: sorted out below
-            cell = ((values - self.low) * self.scale).astype(np.int64)
+            cell = position.astype(np.int64)
         np.clip(cell, 0, self.cells - 1, out=cell)
-        count = self.count_table[cell]
-        exact = np.flatnonzero(self.uncertain[cell])
+        count = self.table[cell]
+        exact = np.flatnonzero(count == _UNCERTAIN)
         count[exact] = np.searchsorted(self.edges, values[exact], side="right")
         return count, exact
 
