@@ -556,7 +556,12 @@ class Diagnostics:
 
 
 class _Binned:
-    """Weighted residuals binned by one variable, each bin with a fine residual histogram."""
+    """Weighted residuals binned by one variable, each bin with a fine residual histogram.
+
+    Per bin, the smallest residual below the fine grid and the largest above it are kept
+    exactly (the quantiles of a tail cell interpolate towards them); inside the grid the
+    fine cells alone place the quantiles.
+    """
 
     def __init__(self, edges: FloatArray, fine_edges: FloatArray) -> None:
         self.edges = edges
@@ -572,16 +577,21 @@ class _Binned:
         self.min_x = math.inf
         self.max_x = -math.inf
 
-    def update(self, x: FloatArray, e: FloatArray, cell: IntArray) -> None:
-        """Add values `x` with residuals `e` in fine-grid cells `cell` (`BinLookup.fine`)."""
+    def update(
+        self, x: FloatArray, e: FloatArray, cell: IntArray, below: IntArray, above: IntArray
+    ) -> None:
+        """Add values `x` with residuals `e` in fine-grid cells `cell` (`BinLookup.fine`).
+
+        `below` and `above` index the rows in the tail cells below and above the grid.
+        """
         n_bins = self.counts.shape[0]
         b = self.lookup.index(x)
         flat = np.bincount(b * self.n_cells + cell, minlength=n_bins * self.n_cells)
         self.counts += flat.reshape(n_bins, self.n_cells)
         self.sum_x += np.bincount(b, weights=x, minlength=n_bins)
         self.sum_e += np.bincount(b, weights=e, minlength=n_bins)
-        np.minimum.at(self.min_e, b, e)
-        np.maximum.at(self.max_e, b, e)
+        np.minimum.at(self.min_e, b[below], e[below])
+        np.maximum.at(self.max_e, b[above], e[above])
         self.min_x = min(self.min_x, float(x.min()))
         self.max_x = max(self.max_x, float(x.max()))
 
@@ -604,9 +614,10 @@ class _Binned:
                 lo = min(lo, self.min_x)
             if k == n_bins - 1:
                 hi = max(hi, self.max_x)
-            q = quantiles_from_counts(
-                self.counts[k], self.fine_edges, self.min_e[k], self.max_e[k], _BIN_QUANTILES
-            )
+            # with no row beyond the grid on a side, the grid's end bounds that side
+            low = min(float(self.min_e[k]), float(self.fine_edges[0]))
+            high = max(float(self.max_e[k]), float(self.fine_edges[-1]))
+            q = quantiles_from_counts(self.counts[k], self.fine_edges, low, high, _BIN_QUANTILES)
             nan = math.nan
             out.append(
                 ResidualBin(
@@ -829,12 +840,14 @@ class DiagnosticsAccumulator:
         self._dw.update(e, start=int(batch.rows[0]))
         self._hist += np.bincount(self._hist_lookup.fine(e), minlength=self._hist.size)
         cell = self._fine_lookup.fine(e)  # shared by every binned variable
+        below = np.flatnonzero(cell == 0)
+        above = np.flatnonzero(cell == self._fine.size - 1)
         self._fine += np.bincount(cell, minlength=self._fine.size)
         self._min = min(self._min, float(e.min()))
         self._max = max(self._max, float(e.max()))
         for name, binned in self._binned.items():
             x = rd.fitted if name == "fitted" else batch.frame[name].cast(pl.Float64).to_numpy()
-            binned.update(x, e, cell)
+            binned.update(x, e, cell, below, above)
         payload = {f: getattr(rd, f) for f in _WORST_FIELDS}
         scores: dict[Criterion, FloatArray] = {
             "abs_resid": np.abs(e),
