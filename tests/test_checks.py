@@ -85,8 +85,13 @@ def test_checks_curvature_names_the_curved_predictor(rng):
     y = 5 * np.sqrt(a) + 0.3 * b + rng.normal(0, 0.3, n)
     x = np.column_stack([np.ones(n), a, b])
     check = curvature_check(
-        x, y, has_intercept=True, predictors={"a": a, "b": b},
-        linear_columns={"a": [1], "b": [2]}, folds=5, seed=0,
+        x,
+        y,
+        has_intercept=True,
+        predictors={"a": a, "b": b},
+        linear_columns={"a": [1], "b": [2]},
+        folds=5,
+        seed=0,
     )
     assert check.flagged == ("a",)
     assert check.predictors[0].predictor == "a"
@@ -107,9 +112,16 @@ def test_checks_curvature_on_sample_data_names_distance():
 
     source = open_source(SAMPLE)
     spec = build_spec(
-        source.schema(), target="minutes", terms="distance_km, stops, weight_kg, vehicle",
-        intercept=True, weights=None, where=None, categorical=(), reference={},
-        max_levels=50, drop_invalid=False,
+        source.schema(),
+        target="minutes",
+        terms="distance_km, stops, weight_kg, vehicle",
+        intercept=True,
+        weights=None,
+        where=None,
+        categorical=(),
+        reference={},
+        max_levels=50,
+        drop_invalid=False,
     )
     outcome = fit_model(source, spec, rows=20_000, seed=0, design="uniform")
     as_is = curvature_check_outcome(outcome, folds=3)

@@ -23,8 +23,16 @@ from triage.engine.compare import HOLDOUT_SALT, compare_models
 
 def _spec(source, terms, **kw):
     return build_spec(
-        source.schema(), target="y", terms=terms, intercept=True, weights=kw.get("weights"),
-        where=None, categorical=(), reference={}, max_levels=50, drop_invalid=False,
+        source.schema(),
+        target="y",
+        terms=terms,
+        intercept=True,
+        weights=kw.get("weights"),
+        where=None,
+        categorical=(),
+        reference={},
+        max_levels=50,
+        drop_invalid=False,
     )
 
 
@@ -48,7 +56,9 @@ def test_compare_pure_noise_raises_r2_but_not_heldout_or_aic(tmp_path, rng):
     noise = ", ".join(f"z{j}" for j in range(25))
     labels = ["x1", f"x1, {noise}"]
     out = compare_models(
-        source, [_spec(source, t) for t in labels], labels,
+        source,
+        [_spec(source, t) for t in labels],
+        labels,
         holdout=HoldoutRule(fraction=0.3, seed=1),
     )
     small, big = out.comparison.models
@@ -188,8 +198,17 @@ def test_compare_cli_json_has_the_documented_shape(tmp_path, rng):
     source_path = tmp_path / "d.parquet"
     _noise_frame(rng, 300, 2).write_parquet(source_path)
     argv = [
-        "compare", str(source_path), "--target", "y", "--terms", "x1", "--terms", "x1, z0, z1",
-        "--holdout", "0.2", "--json",
+        "compare",
+        str(source_path),
+        "--target",
+        "y",
+        "--terms",
+        "x1",
+        "--terms",
+        "x1, z0, z1",
+        "--holdout",
+        "0.2",
+        "--json",
     ]
     buffer = io.StringIO()
     with redirect_stdout(buffer):
@@ -204,7 +223,9 @@ def test_compare_cli_json_has_the_documented_shape(tmp_path, rng):
     # Oracle: the same comparison run through the engine directly.
     source = open_source(source_path)
     out = compare_models(
-        source, [_spec(source, "x1"), _spec(source, "x1, z0, z1")], ["x1", "x1, z0, z1"],
+        source,
+        [_spec(source, "x1"), _spec(source, "x1, z0, z1")],
+        ["x1", "x1, z0, z1"],
         holdout=HoldoutRule(fraction=0.2, seed=0),
     )
     assert document["models"][1]["holdout_r2"] == pytest.approx(
