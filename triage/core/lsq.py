@@ -66,7 +66,10 @@ INVERSE_MAX_CONDITION: Final = 1e4
 ``Q1`` with the explicit inverse of ``R1`` (a matrix product) instead of a triangular solve.
 
 The inverse's rounding error grows with the condition number; at 1e4 it stays near 1e-12
-relative, which the second Cholesky pass removes. Every NIST StRD design is above it.
+relative, which the second Cholesky pass removes. The NIST StRD designs span every route
+(2-norm condition of the equilibrated, shifted block, measured here: NoInt2 25, NoInt1 79,
+Longley 146, Norris 800, Wampler3-5 1.6e3-1.8e3, Pontius 7.8e3, Filip 4.6e9, Wampler1-2
+about 4e16) and all meet their certified values (tests/test_nist.py).
 """
 
 GRAM_MAX_CONDITION: Final = 1e2
