@@ -22,14 +22,14 @@ from triage.core.lsq import LinearFit, QRAccumulator
 # Required coefficient digits with the whole file as one batch (the project's accuracy
 # targets; the README of the reference folder explains why Filip cannot pass ~7.7:
 # rounding its data to float64 already costs that much). Measured here, one batch:
-# Filip 8.07, Wampler1 9.38, Wampler3 9.51, Wampler4 8.82, Wampler5 6.79, the rest >= 12.6.
+# Filip 8.1, Wampler1 9.4, Wampler3 10.2, Wampler4 9.2, Wampler5 7.1, the rest >= 12.7.
 # numpy.linalg.lstsq gets Filip 0.0, Wampler4 7.86, Wampler5 5.86 on the same data.
 ONE_BATCH_DIGITS = {"Filip": 7.0, "Wampler4": 7.5, "Wampler5": 5.5}
 DEFAULT_DIGITS = 9.0
 
 # Split into batches of 8 rows (Wampler: 8 + 8 + 5, the last batch narrower than the design,
 # so it takes the Householder route), the higher-difficulty sets lose up to about a digit:
-# measured here with batches of 8, Filip 6.73, Wampler1 8.97, Wampler4 7.92, Wampler5 5.92;
+# measured here with batches of 8, Filip 6.7, Wampler1 9.0, Wampler4 8.0, Wampler5 6.1;
 # over splits into 2 to 11 equal batches Filip 6.86-7.76, Wampler1 8.93-9.90, Wampler4
 # 7.39-8.89, Wampler5 5.40-6.87 (errors of separately factored blocks add up instead of one
 # Householder sweep). So several batches are held to half a digit less.
