@@ -30,8 +30,8 @@ DEFAULT_DIGITS = 9.0
 # Split into batches of 8 rows (Wampler: 8 + 8 + 5, the last batch narrower than the design,
 # so it takes the Householder route), the higher-difficulty sets lose up to about a digit:
 # measured here with batches of 8, Filip 6.7, Wampler1 9.0, Wampler4 8.0, Wampler5 6.1;
-# over splits into 2 to 11 equal batches Filip 6.86-7.76, Wampler1 8.93-9.90, Wampler4
-# 7.39-8.89, Wampler5 5.40-6.87 (errors of separately factored blocks add up instead of one
+# over splits into 2 to 11 equal batches Filip 6.67-8.03, Wampler1 8.95-9.93, Wampler4
+# 7.39-8.77, Wampler5 5.40-6.72 (errors of separately factored blocks add up instead of one
 # Householder sweep). So several batches are held to half a digit less.
 SPLIT_LOSS = 0.5
 BATCH_ROWS = 8
