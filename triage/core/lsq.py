@@ -479,9 +479,9 @@ class LinearFit:
     def leverage_shifted(self, shifted: FloatArray, weights: ArrayLike | None = None) -> FloatArray:
         """Return hat values for rows already passed through `to_shifted`.
 
-        ``x~ R^-1`` by one matrix product with the inverse of the small factor: a
-        triangular solve per batch cost 4-5x more here, and both lose about
-        ``cond(R) * eps`` relative.
+        ``x~ R^-1`` by one matrix product with the inverse of the small factor: numpy's
+        solve per batch cost about 4x more here, and both lose about ``cond(R) * eps``
+        relative.
         """
         v = shifted @ self._factor.r_inverse
         h: FloatArray = np.einsum("ij,ij->i", v, v)
