@@ -10,7 +10,7 @@ import threading
 import time
 from collections.abc import Callable, Collection, Iterator, Sequence
 from dataclasses import dataclass
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, TypeVar
 
 import numpy as np
 import polars as pl
@@ -35,6 +35,8 @@ if TYPE_CHECKING:
     from triage._typing import SampleDesign
     from triage.core.spec import ModelSpec
     from triage.data.source import Sample, Source
+
+S = TypeVar("S")
 
 DEFAULT_SAMPLE_ROWS = 200_000
 """Rows in a quick fit's sample."""
@@ -224,6 +226,22 @@ class PassPlan:
             yield frame.slice(start, step)
         tracker.advance(self.sample.rows_read, force=True)
 
+    def fold_frames(
+        self,
+        new_part: Callable[[], S],
+        fold: Callable[[S, pl.DataFrame], None],
+        counts: RowCounts,
+        tracker: ProgressTracker,
+    ) -> list[S]:
+        """Deal the pass's frames out to worker threads, each folding into a part of its own.
+
+        Returns the parts, to be merged by the caller (see `BatchWorkers`).
+        """
+        with BatchWorkers(new_part, fold) as workers:
+            for frame in self.frames(counts, tracker):
+                workers.submit(frame)
+            return workers.finish()
+
     def summary(self, counts: RowCounts) -> DataSummary:
         """Describe the rows a finished pass used."""
         sample = None if self.is_full_pass or self.sample is None else self.sample
@@ -358,10 +376,7 @@ def _fit(
 
     counts = RowCounts()
     tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
-    with BatchWorkers(new_part, fold) as workers:
-        for frame in plan.frames(counts, tracker):
-            workers.submit(frame)
-        parts = workers.finish()
+    parts = plan.fold_frames(new_part, fold, counts, tracker)
     accumulator = parts[0][0]
     for other, _ in parts[1:]:
         accumulator.merge(other)
@@ -505,10 +520,7 @@ def _diagnose(
 
     counts = RowCounts()
     tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
-    with BatchWorkers(lambda: DiagnosticsAccumulator(fit, config), fold) as workers:
-        for frame in plan.frames(counts, tracker):
-            workers.submit(frame)
-        parts = workers.finish()
+    parts = plan.fold_frames(lambda: DiagnosticsAccumulator(fit, config), fold, counts, tracker)
     accumulator = parts[0]
     for other in parts[1:]:
         accumulator.merge(other)
