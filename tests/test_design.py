@@ -109,6 +109,33 @@ def test_design_arrays_are_contiguous_float64() -> None:
     np.testing.assert_array_equal(batch.rows, [0, 1, 3, 4])
 
 
+@pytest.mark.parametrize("intercept", [True, False])
+def test_design_columns_equal_the_built_matrix(intercept: bool) -> None:
+    # The matrix `build` makes (checked against numpy above) is the oracle here.
+    _, builder = make(SMALL, "a, square(k), a:b, poly(b, 2)", target="y", intercept=intercept)
+    columns = builder.build_columns(SMALL)
+    batch = builder.build(SMALL)
+    assert columns is not None and columns.n_rows == 5
+    first = 1 if intercept else 0
+    np.testing.assert_array_equal(np.column_stack(columns.predictors), batch.x[:, first:])
+    np.testing.assert_array_equal(columns.y, batch.y)
+    # A float64 column is read where polars holds it, not copied.
+    assert np.shares_memory(columns.predictors[0], SMALL["a"].to_numpy())
+
+
+def test_design_columns_leave_rows_to_drop_and_weights_to_build() -> None:
+    with_null = SMALL.with_columns(pl.Series("b", [0.5, None, 0.0, 3.0, 8.0]))
+    _, plain = make(SMALL, "a, b", target="y")
+    assert plain.build_columns(with_null) is None
+    for terms, kwargs in [
+        ("a, log(a)", {}),
+        ("a, k", {"categorical": ["k"]}),
+        ("a", {"weights": "b"}),
+    ]:
+        _, builder = make(SMALL, terms, target="y", **kwargs)
+        assert builder.build_columns(SMALL) is None, terms
+
+
 def test_design_intercept_only_and_empty_batch() -> None:
     _, builder = make(SMALL, "", target="y")
     batch = builder.build(SMALL)

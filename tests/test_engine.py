@@ -131,3 +131,28 @@ def test_engine_workers_raise_a_workers_error_in_the_caller() -> None:
         for item in range(50):
             workers.submit(item)
         workers.finish()
+
+
+def test_engine_full_pass_drops_missing_values_in_some_batches(tmp_path: Path) -> None:
+    # Clean batches take the column route, batches with a null, NaN or inf the full build;
+    # both must add up to numpy's least squares on the usable rows (oracle).
+    rng = np.random.default_rng(7)
+    x = rng.normal(size=(N_ROWS, 2))
+    y = 1.0 + x @ np.array([2.0, -1.0]) + rng.normal(size=N_ROWS)
+    a: list[float | None] = list(x[:, 0])
+    a[1_500] = None
+    a[7_001] = float("nan")
+    y[12_345] = np.inf
+    path = tmp_path / "holes.parquet"
+    pl.DataFrame({"y": y, "a": a, "b": x[:, 1]}).write_parquet(path, row_group_size=2_500)
+    source = open_source(path)
+    outcome = passes.fit_model(
+        source, build_spec(source.schema(), target="y", terms="a, b"), rows=None
+    )
+    usable = np.ones(N_ROWS, dtype=bool)
+    usable[[1_500, 7_001, 12_345]] = False
+    design = np.column_stack([np.ones(N_ROWS), x])[usable]
+    expected = np.linalg.lstsq(design, y[usable], rcond=None)[0]
+    np.testing.assert_allclose(outcome.fit.coef, expected, rtol=1e-10)
+    assert outcome.data.rows_dropped_missing == 3
+    assert outcome.data.rows_used == N_ROWS - 3

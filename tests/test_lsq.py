@@ -263,6 +263,47 @@ def test_lsq_merge_two_halves_equals_one_pass(rng: np.random.Generator) -> None:
     np.testing.assert_allclose(merged.std_error, one_pass.std_error, rtol=1e-9)
 
 
+@pytest.mark.parametrize("intercept", [True, False])
+def test_lsq_update_columns_equals_update(rng: np.random.Generator, intercept: bool) -> None:
+    # Column batches against matrix batches, and numpy.linalg.lstsq in memory (oracle).
+    design, y = make_data(rng, n=900, intercept=intercept)
+    design[:, 1:] += 1e6
+    by_matrix = QRAccumulator(design.shape[1], has_intercept=intercept)
+    by_columns = QRAccumulator(design.shape[1], has_intercept=intercept)
+    predictors = design[:, 1:] if intercept else design
+    for rows in np.array_split(np.arange(len(y)), 3):
+        by_matrix.update(design[rows], y[rows])
+        assert by_columns.update_columns([c[rows] for c in predictors.T], y[rows])
+    names = [f"c{j}" for j in range(design.shape[1])]
+    from_columns, from_matrix = by_columns.finalize(names), by_matrix.finalize(names)
+    np.testing.assert_array_equal(from_columns.coef, from_matrix.coef)
+    assert from_columns.rss == from_matrix.rss
+    expected = np.linalg.lstsq(design, y, rcond=None)[0]
+    assert digits(from_columns.coef, expected) >= 9
+
+
+def test_lsq_update_columns_declines_non_finite_batch(rng: np.random.Generator) -> None:
+    design, y = make_data(rng, n=300)
+    acc = QRAccumulator(design.shape[1], has_intercept=True)
+    assert acc.update_columns(list(design[:100, 1:].T), y[:100])
+    before = acc.factor
+    spoilt = design[100:200, 1:].copy()
+    spoilt[7, 2] = np.nan
+    assert not acc.update_columns(list(spoilt.T), y[100:200])
+    infinite = y[100:200].copy()
+    infinite[3] = np.inf
+    assert not acc.update_columns(list(design[100:200, 1:].T), infinite)
+    after = acc.factor
+    assert acc.n_rows == 100 and before is not None and after is not None
+    np.testing.assert_array_equal(after.r, before.r)
+    with pytest.raises(DataError, match="predictor columns"):
+        acc.update_columns(list(design[:10, 2:].T), y[:10])
+    with pytest.raises(DataError, match="predictor columns"):
+        acc.update_columns(list(design[:10, 1:].T), y[:9])
+    with pytest.raises(DataError, match="NaN or infinite"):
+        acc.update(np.column_stack([np.ones(100), spoilt]), y[100:200])
+
+
 def test_lsq_merge_into_empty_and_of_empty(rng: np.random.Generator) -> None:
     # Oracle: numpy.linalg.lstsq; empty accumulators must not change the result.
     design, y = make_data(rng, n=200)

@@ -104,6 +104,28 @@ class DesignBatch:
         return int(self.x.shape[0])
 
 
+@dataclass(frozen=True)
+class DesignColumns:
+    """One batch's design as separate columns, read where polars holds them (see `build_columns`).
+
+    Attributes
+    ----------
+    predictors : list of ndarray of shape (n_rows,)
+        The design columns after the intercept (all of them in a model without one),
+        float64, possibly read-only views of the batch.
+    y : ndarray of shape (n_rows,)
+        Target values.
+    """
+
+    predictors: list[NDArray[np.float64]]
+    y: NDArray[np.float64]
+
+    @property
+    def n_rows(self) -> int:
+        """Number of rows."""
+        return int(self.y.shape[0])
+
+
 def _rows(n: int) -> str:
     """Write a row count for a message: `1 row`, `1,204 rows`."""
     return f"{n:,} row" if n == 1 else f"{n:,} rows"
@@ -468,6 +490,32 @@ class DesignBuilder:
             n_dropped_domain=n_domain,
             n_dropped_unseen_level=n_unseen,
         )
+
+    def build_columns(self, frame: pl.DataFrame) -> DesignColumns | None:
+        """Return the batch's design as separate columns, not copied, or None to use `build`.
+
+        For a pass that copies each column once anyway, as pass 1 does while shifting it
+        (`QRAccumulator.update_columns`). None when a row might have to be dropped for a
+        reason only `build` checks: a null, a categorical level, a domain check or a
+        weight. NaN and infinite values are not looked for here; the accumulator finds
+        them, and the caller then passes the batch through `build`.
+
+        Parameters
+        ----------
+        frame : polars.DataFrame
+            A batch holding the spec's source columns.
+
+        Returns
+        -------
+        DesignColumns or None
+        """
+        if self.levels or self._checks or self.spec.weights is not None:
+            return None
+        design = frame.select(self._design[1:] if self.spec.intercept else self._design)
+        if any(series.has_nulls() for series in design.get_columns()):
+            return None
+        *predictors, y = (series.to_numpy() for series in design.get_columns())
+        return DesignColumns(predictors=predictors, y=y)
 
     def _drop_rows(self, frame: pl.DataFrame) -> tuple[pl.DataFrame, int, int, int]:
         """Drop unusable rows and count them (missing, unseen level, domain), or raise."""

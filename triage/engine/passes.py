@@ -369,10 +369,14 @@ def _fit(
 
     def fold(part: tuple[QRAccumulator, RowCounts], frame: pl.DataFrame) -> None:
         accumulator, part_counts = part
+        columns = builder.build_columns(frame)
+        if columns is not None and accumulator.update_columns(columns.predictors, columns.y):
+            part_counts.used += columns.n_rows
+            return
+        # Rows to drop (nulls, NaN, levels, domain) or weights: the batch's full build.
         batch = builder.build(frame)
         part_counts.add(batch)
-        if batch.x.shape[0]:
-            accumulator.update(batch.x, batch.y, batch.weights)
+        accumulator.update(batch.x, batch.y, batch.weights)
 
     counts = RowCounts()
     tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
