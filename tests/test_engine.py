@@ -6,8 +6,10 @@ against numpy's least squares (oracle) so a cancelled-then-rerun pass is still r
 
 from __future__ import annotations
 
+import operator
 import sys
 import threading
+import time
 from pathlib import Path
 
 import numpy as np
@@ -15,10 +17,12 @@ import polars as pl
 import pytest
 
 from triage.core.spec import build_spec
+from triage.data import parquet as parquet_module
 from triage.data.source import open_source
 from triage.engine import passes
 from triage.engine import progress as progress_module
 from triage.engine.progress import PassProgress, ReadAhead
+from triage.engine.workers import fold_in_order
 from triage.errors import PassCancelled
 
 N_ROWS = 20_000
@@ -41,7 +45,12 @@ def small_batches(monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setattr(progress_module, "PROGRESS_INTERVAL_S", 0.0)
 
 
-def test_engine_progress_only_increases_over_both_passes(data_file: Path) -> None:
+@pytest.mark.parametrize("part_rows", [500_000, 2_500])
+def test_engine_progress_only_increases_over_both_passes(
+    data_file: Path, monkeypatch: pytest.MonkeyPatch, part_rows: int
+) -> None:
+    # 500,000: one part, read ahead and dealt out in batches; 2,500: eight parts read at once.
+    monkeypatch.setattr(parquet_module, "PART_ROWS", part_rows)
     source = open_source(data_file)
     spec = build_spec(source.schema(), target="y", terms="a, b")
     seen: list[PassProgress] = []
@@ -53,8 +62,8 @@ def test_engine_progress_only_increases_over_both_passes(data_file: Path) -> Non
     design = np.column_stack([np.ones(N_ROWS), frame["a"], frame["b"]])
     oracle = np.linalg.lstsq(design, frame["y"].to_numpy(), rcond=None)[0]  # numpy as oracle
     np.testing.assert_allclose(report.outcome.fit.coef, oracle, rtol=1e-10)
-    # Both passes were dealt out to worker threads in 20 batches; Durbin-Watson must still
-    # join them in file order (statsmodels durbin_watson on the in-memory residuals).
+    # Both passes were split over worker threads; Durbin-Watson must still join the parts
+    # in file order (statsmodels durbin_watson on the in-memory residuals).
     from statsmodels.stats.stattools import durbin_watson
 
     resid = frame["y"].to_numpy() - design @ oracle
@@ -78,6 +87,52 @@ def test_engine_cancel_stops_within_one_batch(data_file: Path, stop_after: int) 
         passes.fit_model(source, spec, rows=None, on_progress=on_progress, cancel=cancel)
     assert len(reports) == stop_after  # no batch was read after the one that set it
     assert reports[-1] == stop_after * BATCH
+
+
+def test_engine_cancel_stops_a_pass_read_in_parts(
+    data_file: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setattr(parquet_module, "PART_ROWS", 2_500)
+    source = open_source(data_file)
+    spec = build_spec(source.schema(), target="y", terms="a, b")
+    cancel = threading.Event()
+    cancel.set()
+    with pytest.raises(PassCancelled):
+        passes.fit_model(source, spec, rows=None, cancel=cancel)
+
+
+def test_engine_fold_in_order_merges_in_unit_order_whoever_finishes_first() -> None:
+    # Oracle: the units' own order; unit 0 finishes last, on whichever thread took it.
+    def fold_unit(k: int, stopping: threading.Event) -> list[int]:
+        time.sleep(0.2 if k == 0 else 0.01)
+        return [k]
+
+    merged = fold_in_order(6, fold_unit, lambda a, b: a + b, wait=lambda: None, n_workers=2)
+    assert merged == [0, 1, 2, 3, 4, 5]
+
+
+def test_engine_fold_in_order_stops_on_an_error_or_a_cancel() -> None:
+    started: list[int] = []
+
+    def fold_unit(k: int, stopping: threading.Event) -> int:
+        started.append(k)
+        if k == 1:
+            msg = "bad part"
+            raise ValueError(msg)
+        stopping.wait(5.0)  # a long part that returns early when told to stop
+        return k
+
+    with pytest.raises(ValueError, match="bad part"):
+        fold_in_order(50, fold_unit, operator.add, wait=lambda: None, n_workers=2)
+    assert len(started) <= 3  # no part was started after the error
+
+    def wait() -> None:
+        raise PassCancelled("stopped")
+
+    started.clear()
+    with pytest.raises(PassCancelled):
+        fold_in_order(50, lambda k, stopping: fold_unit(2 * k, stopping), operator.add, wait=wait)
+    assert len(started) <= 4
 
 
 def test_engine_read_ahead_stops_its_thread_when_closed_early() -> None:

@@ -18,6 +18,7 @@ import pytest
 from polars.testing import assert_frame_equal
 from scipy import stats
 
+from triage.data import parquet as parquet_module
 from triage.data.source import ROW_INDEX, CsvOptions, Sample, Source, open_source
 from triage.errors import SourceError, SpecError
 
@@ -207,6 +208,35 @@ def test_source_filter_keeps_source_positions(
     assert 0 < got.height < every.height
     # positions are still positions in the file: read_rows gives the same rows back
     assert_frame_equal(source.read_rows(got[ROW_INDEX]).select(got.columns), got)
+
+
+@pytest.mark.parametrize("part_rows", [1, 300, 10_000])
+def test_source_parts_together_equal_one_scan(
+    parquet_file: Path, monkeypatch: pytest.MonkeyPatch, part_rows: int
+) -> None:
+    # polars' own read, filtered, is the oracle; parts are whole row groups of 128 rows.
+    monkeypatch.setattr(parquet_module, "PART_ROWS", part_rows)
+    source = open_source(parquet_file)
+    where = (pl.col("x") > 0.0) & pl.col("w").is_not_null()
+    parts = source.scan_parts(["x", "k"], where=where, batch_rows=50)
+    assert len(parts) == {1: 8, 300: 3, 10_000: 1}[part_rows]
+    frames, read = [], 0
+    for part in parts:
+        batches = list(part())
+        assert all(b.frame.height <= 50 for b in batches)
+        read += batches[-1].rows_read  # counted within the part
+        frames.extend(b.frame for b in batches)
+    oracle = _indexed(pl.read_parquet(parquet_file)).filter(where).select(ROW_INDEX, "x", "k")
+    assert read == 1_000
+    assert_frame_equal(pl.concat(frames), oracle)
+
+
+def test_source_streams_are_one_part(ipc_file: Path, tmp_path: Path) -> None:
+    path = tmp_path / "f.csv"
+    _frame(300, seed=5).write_csv(path)
+    for source in (open_source(path), open_source(ipc_file)):
+        (part,) = source.scan_parts(["x"], batch_rows=64)
+        assert_frame_equal(pl.concat(b.frame for b in part()), _scan_all(source, ["x"]))
 
 
 def test_source_column_projection_and_unknown_column(parquet_file: Path) -> None:

@@ -9,7 +9,8 @@ from __future__ import annotations
 
 import abc
 import contextlib
-from collections.abc import Iterable, Iterator, Sequence
+import functools
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Final, Protocol
@@ -37,7 +38,8 @@ class Batch:
     frame: pl.DataFrame
     """The rows kept by the filter: the requested columns plus `ROW_INDEX`."""
     rows_read: int
-    """Rows read from the source so far, before filtering (for progress)."""
+    """Rows read so far, before filtering (for progress): from the source's start, or from
+    the part's start for a part of `Source.scan_parts`."""
 
 
 @dataclass(frozen=True)
@@ -95,6 +97,12 @@ class Source(Protocol):
         self, columns: Sequence[str], *, where: pl.Expr | None = None, batch_rows: int = 65_536
     ) -> Iterator[Batch]:
         """Yield the rows in bounded batches (frames with `ROW_INDEX`) and the rows read so far."""
+        ...
+
+    def scan_parts(
+        self, columns: Sequence[str], *, where: pl.Expr | None = None, batch_rows: int = 65_536
+    ) -> list[Callable[[], Iterator[Batch]]]:
+        """Split the scan into parts that can be read at the same time, in source order."""
         ...
 
     def read_sample(
@@ -296,23 +304,24 @@ def offsets_from_sizes(sizes: Sequence[int] | np.ndarray) -> np.ndarray:
 
 
 def number_record_batches(
-    record_batches: Iterable[pa.RecordBatch], schema: dict[str, pl.DataType]
+    record_batches: Iterable[pa.RecordBatch], schema: dict[str, pl.DataType], *, start: int = 0
 ) -> Iterator[pl.DataFrame]:
-    """Turn consecutive record batches from the start of a source into frames with positions.
+    """Turn consecutive record batches of a source into frames with positions.
 
     Parameters
     ----------
     record_batches : iterable of pyarrow.RecordBatch
-        Every row of the source in order, from position 0.
+        Consecutive rows of the source, in order, from position `start`.
     schema : dict of str to DataType
         The source's polars types (see `conform`).
+    start : int, default=0
+        Position of the first row.
 
     Yields
     ------
     DataFrame
         `ROW_INDEX` then the batch's columns.
     """
-    start = 0
     for record_batch in record_batches:
         n = record_batch.num_rows
         frame = conform(pl.DataFrame(record_batch), schema)
@@ -442,8 +451,54 @@ class BlockSource(abc.ABC):
         names = self._check_columns(columns)
         check_count("batch_rows", batch_rows)
         extra = self._filter_only_columns(names, where)
+        yield from self._filtered(self._scan_raw(names + extra, batch_rows), where, extra)
+
+    def scan_parts(
+        self, columns: Sequence[str], *, where: pl.Expr | None = None, batch_rows: int = 65_536
+    ) -> list[Callable[[], Iterator[Batch]]]:
+        """Split the scan into parts that can be read at the same time, in source order.
+
+        Each part, called, yields what `scan_batches` would for its rows, with
+        ``rows_read`` counted from the part's start. A source that reads as one stream
+        (or is too small to split) gives one part.
+
+        Parameters
+        ----------
+        columns, where, batch_rows
+            As for `scan_batches`.
+
+        Returns
+        -------
+        list of callables
+            One per part; each reads its part on the thread that calls it.
+        """
+        names = self._check_columns(columns)
+        check_count("batch_rows", batch_rows)
+        extra = self._filter_only_columns(names, where)
+        spans = self._part_spans()
+        if len(spans) < 2:
+            return [functools.partial(self.scan_batches, names, where=where, batch_rows=batch_rows)]
+        return [
+            functools.partial(self._scan_part, names + extra, where, extra, batch_rows, span)
+            for span in spans
+        ]
+
+    def _scan_part(
+        self,
+        columns: list[str],
+        where: pl.Expr | None,
+        extra: list[str],
+        batch_rows: int,
+        span: tuple[int, int],
+    ) -> Iterator[Batch]:
+        yield from self._filtered(self._scan_span(columns, batch_rows, span), where, extra)
+
+    def _filtered(
+        self, frames: Iterable[pl.DataFrame], where: pl.Expr | None, extra: list[str]
+    ) -> Iterator[Batch]:
+        """Filter raw frames (dropping the filter's own columns), counting the rows read."""
         rows_read = 0
-        for frame in self._scan_raw(names + extra, batch_rows):
+        for frame in frames:
             rows_read += frame.height
             yield Batch(self._apply_filter(frame, where, extra), rows_read)
 
@@ -552,6 +607,16 @@ class BlockSource(abc.ABC):
         self, columns: list[str], blocks: np.ndarray, offsets: np.ndarray
     ) -> pl.DataFrame:
         """Read the sorted `blocks` (numbers into `offsets`) with `ROW_INDEX`, in order."""
+
+    def _part_spans(self) -> list[tuple[int, int]]:
+        """Return runs of blocks ``[first, stop)`` that `_scan_span` reads alone; none here."""
+        return []
+
+    def _scan_span(
+        self, columns: list[str], batch_rows: int, span: tuple[int, int]
+    ) -> Iterator[pl.DataFrame]:
+        """Yield the unfiltered batches of the blocks in `span`, with `ROW_INDEX`."""
+        raise NotImplementedError  # called only for the spans `_part_spans` returns
 
     def _count_by_scan(self) -> int:
         return sum(frame.height for frame in self._scan_raw([], 65_536))

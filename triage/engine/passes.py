@@ -6,6 +6,7 @@ cancel, checks the event between batches, and raises `PassCancelled` within one 
 
 from __future__ import annotations
 
+import functools
 import threading
 import time
 from collections.abc import Callable, Collection, Iterator, Sequence
@@ -28,13 +29,13 @@ from triage.core.lsq import LinearFit, QRAccumulator
 from triage.data.source import ROW_INDEX
 from triage.engine.allocator import keep_batch_memory
 from triage.engine.progress import PassProgress, ProgressCallback, ProgressTracker, ReadAhead
-from triage.engine.workers import BatchWorkers
+from triage.engine.workers import BatchWorkers, fold_in_order
 from triage.errors import DataError
 
 if TYPE_CHECKING:
     from triage._typing import SampleDesign
     from triage.core.spec import ModelSpec
-    from triage.data.source import Sample, Source
+    from triage.data.source import Batch, Sample, Source
 
 S = TypeVar("S")
 
@@ -129,7 +130,10 @@ class RowCounts:
         self.used += batch.x.shape[0]
 
     def absorb(self, part: RowCounts) -> None:
-        """Add the design-batch counts (`add`) gathered by one part of a split pass."""
+        """Add the counts gathered by one part of a split pass."""
+        self.read += part.read
+        self.kept_by_filter += part.kept_by_filter
+        self.excluded += part.excluded
         self.missing += part.missing
         self.domain += part.domain
         self.unseen += part.unseen
@@ -230,17 +234,49 @@ class PassPlan:
         self,
         new_part: Callable[[], S],
         fold: Callable[[S, pl.DataFrame], None],
+        merge: Callable[[S, S], S],
         counts: RowCounts,
         tracker: ProgressTracker,
-    ) -> list[S]:
-        """Deal the pass's frames out to worker threads, each folding into a part of its own.
+    ) -> S:
+        """Fold the pass's frames into parts on worker threads and merge the parts into one.
 
-        Returns the parts, to be merged by the caller (see `BatchWorkers`).
+        A full pass over a source that splits (`Source.scan_parts`) reads and folds its
+        parts at the same time, each in one thread, and merges them in source order
+        (`fold_in_order`). Otherwise the frames are read ahead and dealt out to the workers
+        in turn (`BatchWorkers`). Either way the result does not depend on timing.
         """
-        with BatchWorkers(new_part, fold) as workers:
-            for frame in self.frames(counts, tracker):
-                workers.submit(frame)
-            return workers.finish()
+        parts: Sequence[Callable[[], Iterator[Batch]]] = ()
+        if self.sample is None:
+            parts = self.source.scan_parts(
+                self.columns, where=self.where, batch_rows=batch_rows_for(len(self.columns))
+            )
+        if len(parts) < 2:
+            with BatchWorkers(new_part, fold) as workers:
+                for frame in self.frames(counts, tracker):
+                    workers.submit(frame)
+                states = workers.finish()
+            return functools.reduce(merge, states)
+        part_counts = [RowCounts() for _ in parts]
+
+        def fold_part(k: int, stopping: threading.Event) -> S:
+            state, k_counts = new_part(), part_counts[k]
+            for batch in parts[k]():
+                if stopping.is_set():
+                    break
+                tracker.check()  # a cancel stops each worker within one batch
+                k_counts.read = batch.rows_read
+                k_counts.kept_by_filter += batch.frame.height
+                fold(state, self._drop_excluded(batch.frame, k_counts))
+            return state
+
+        def report() -> None:
+            tracker.advance(sum(c.read for c in part_counts))
+
+        merged = fold_in_order(len(parts), fold_part, merge, wait=report)
+        for k_counts in part_counts:
+            counts.absorb(k_counts)
+        tracker.advance(counts.read, force=True)
+        return merged
 
     def summary(self, counts: RowCounts) -> DataSummary:
         """Describe the rows a finished pass used."""
@@ -378,14 +414,17 @@ def _fit(
         part_counts.add(batch)
         accumulator.update(batch.x, batch.y, batch.weights)
 
+    def merge(
+        part: tuple[QRAccumulator, RowCounts], other: tuple[QRAccumulator, RowCounts]
+    ) -> tuple[QRAccumulator, RowCounts]:
+        part[0].merge(other[0])
+        part[1].absorb(other[1])
+        return part
+
     counts = RowCounts()
     tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
-    parts = plan.fold_frames(new_part, fold, counts, tracker)
-    accumulator = parts[0][0]
-    for other, _ in parts[1:]:
-        accumulator.merge(other)
-    for _, part_counts in parts:
-        counts.absorb(part_counts)
+    accumulator, design_counts = plan.fold_frames(new_part, fold, merge, counts, tracker)
+    counts.absorb(design_counts)
     check_rows_left(counts, spec)
     n_coefficients = len(builder.column_names)
     if counts.used < n_coefficients:
@@ -524,10 +563,11 @@ def _diagnose(
 
     counts = RowCounts()
     tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
-    parts = plan.fold_frames(lambda: DiagnosticsAccumulator(fit, config), fold, counts, tracker)
-    accumulator = parts[0]
-    for other in parts[1:]:
-        accumulator.merge(other)
+
+    def new_part() -> DiagnosticsAccumulator:
+        return DiagnosticsAccumulator(fit, config)
+
+    accumulator = plan.fold_frames(new_part, fold, DiagnosticsAccumulator.merge, counts, tracker)
     return accumulator.finalize()
 
 

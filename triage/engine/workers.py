@@ -134,3 +134,97 @@ class BatchWorkers(Generic[S, T]):
         traceback: TracebackType | None,
     ) -> None:
         self.close()
+
+
+def fold_in_order(
+    n_units: int,
+    fold_unit: Callable[[int, threading.Event], S],
+    merge: Callable[[S, S], S],
+    *,
+    wait: Callable[[], None],
+    n_workers: int = PASS_WORKERS,
+    wait_s: float = 0.05,
+) -> S:
+    """Fold units ``0 .. n_units - 1`` on worker threads and merge the results in unit order.
+
+    A worker takes the next unit as soon as it is free, so the load balances itself; the
+    results are merged in unit order whichever thread made them, so the outcome does not
+    depend on timing.
+
+    Parameters
+    ----------
+    n_units : int
+        Units to fold, at least one.
+    fold_unit : callable
+        ``fold_unit(k, stopping)`` returns unit ``k``'s result; it runs in a worker thread
+        and should return early once the event `stopping` is set (its result is then dropped).
+    merge : callable
+        ``merge(a, b)``: the result of units ``..k`` and unit ``k + 1`` combined.
+    wait : callable
+        Runs on the calling thread every `wait_s` seconds while the workers run (progress,
+        cancel); an error it raises stops the workers and is raised here.
+    n_workers : int, default=PASS_WORKERS
+        Threads to use.
+    wait_s : float, default=0.05
+        Seconds between calls of `wait`.
+
+    Examples
+    --------
+    >>> fold_in_order(5, lambda k, stopping: [k], lambda a, b: a + b, wait=lambda: None)
+    [0, 1, 2, 3, 4]
+    """
+    stopping, all_done = threading.Event(), threading.Event()
+    lock = threading.Lock()
+    units = iter(range(n_units))
+    finished: dict[int, S] = {}
+    merged: list[S] = []  # the merge of units 0 .. n_merged - 1, once there is one
+    n_merged = 0
+    errors: list[BaseException] = []
+    n_threads = max(1, min(n_workers, n_units))
+    running = [n_threads]
+
+    def fold_units() -> None:
+        nonlocal n_merged
+        while not stopping.is_set():
+            with lock:
+                k = next(units, None)
+            if k is None:
+                return
+            result = fold_unit(k, stopping)
+            with lock:
+                finished[k] = result
+                while n_merged in finished:
+                    part = finished.pop(n_merged)
+                    merged[:] = [merge(merged[0], part) if merged else part]
+                    n_merged += 1
+
+    def work() -> None:
+        try:
+            fold_units()
+        except BaseException as error:  # handed to the caller, which raises it
+            errors.append(error)
+            stopping.set()
+        finally:
+            with lock:
+                running[0] -= 1
+                if running[0] == 0:
+                    all_done.set()
+
+    threads = [
+        threading.Thread(target=work, name=f"triage-worker-{k}", daemon=True)
+        for k in range(n_threads)
+    ]
+    for thread in threads:
+        thread.start()
+    try:
+        while not all_done.wait(wait_s):
+            wait()
+    except BaseException:
+        stopping.set()
+        raise
+    finally:
+        for thread in threads:
+            thread.join()
+    if errors:
+        raise errors[0]
+    return merged[0]
