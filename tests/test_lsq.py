@@ -18,6 +18,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from statsmodels.stats.outliers_influence import OLSInfluence
 
+from triage.core import lsq as lsq_module
 from triage.core.lsq import (
     RANK_TOLERANCE,
     LinearFit,
@@ -280,6 +281,20 @@ def test_lsq_update_columns_equals_update(rng: np.random.Generator, intercept: b
     assert from_columns.rss == from_matrix.rss
     expected = np.linalg.lstsq(design, y, rcond=None)[0]
     assert digits(from_columns.coef, expected) >= 9
+
+
+@pytest.mark.parametrize("chunk_rows", [7, 64, 100_000])
+def test_lsq_gram_in_chunks_matches_statsmodels_wls(
+    rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch, chunk_rows: int
+) -> None:
+    # statsmodels WLS as oracle, whatever the chunk the Gram matrix is formed in.
+    monkeypatch.setattr(lsq_module, "GRAM_CHUNK_ROWS", chunk_rows)
+    design, y = make_data(rng, n=500)
+    weights = rng.uniform(0.5, 2.0, size=len(y))
+    fit = fit_batches(design, y, weights, n_batches=2)
+    oracle = sm.WLS(y, design, weights=weights).fit()
+    np.testing.assert_allclose(fit.coef, oracle.params, rtol=1e-10)
+    np.testing.assert_allclose(fit.std_error, oracle.bse, rtol=1e-9)
 
 
 def test_lsq_update_columns_declines_non_finite_batch(rng: np.random.Generator) -> None:
