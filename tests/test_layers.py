@@ -43,8 +43,12 @@ def test_layers_fit_command_never_imports_textual() -> None:
     assert done.stdout.strip() == "False"
 
 
-def test_layers_package_has_version() -> None:
+def test_layers_package_version_is_the_installed_one() -> None:
+    # The installed distribution's metadata (importlib.metadata) as the outside record.
+    from importlib.metadata import version
+
     assert triage.__version__.count(".") >= 2
+    assert version("triage") == triage.__version__
 
 
 def test_layers_every_package_is_listed_for_installation() -> None:

@@ -2,11 +2,7 @@
 
 from __future__ import annotations
 
-from importlib.metadata import PackageNotFoundError, version
-
-try:
-    __version__ = version("triage")
-except PackageNotFoundError:  # running from a source tree that was never installed
-    __version__ = "0.0.0"
+__version__ = "0.1.0"
+"""The package's version; pyproject.toml reads it from here (no metadata lookup at start-up)."""
 
 __all__ = ["__version__"]
