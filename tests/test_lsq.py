@@ -277,8 +277,9 @@ def test_lsq_update_columns_equals_update(rng: np.random.Generator, intercept: b
         assert by_columns.update_columns([c[rows] for c in predictors.T], y[rows])
     names = [f"c{j}" for j in range(design.shape[1])]
     from_columns, from_matrix = by_columns.finalize(names), by_matrix.finalize(names)
-    np.testing.assert_array_equal(from_columns.coef, from_matrix.coef)
-    assert from_columns.rss == from_matrix.rss
+    # The same up to rounding: the matrix route takes its first shift in one reduction.
+    assert digits(from_columns.coef, from_matrix.coef) >= 12
+    assert from_columns.rss == pytest.approx(from_matrix.rss, rel=1e-12)
     expected = np.linalg.lstsq(design, y, rcond=None)[0]
     assert digits(from_columns.coef, expected) >= 9
 
