@@ -231,6 +231,18 @@ def test_source_parts_together_equal_one_scan(
     assert_frame_equal(pl.concat(frames), oracle)
 
 
+def test_source_parts_split_row_groups_into_equal_batches(
+    parquet_file: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Hand-worked: 128 rows in batches of at most 50 are 3 batches of 43, 43 and 42 rows.
+    monkeypatch.setattr(parquet_module, "PART_ROWS", 1)
+    assert parquet_module.even_batch_rows(128, 50) == 43
+    assert parquet_module.even_batch_rows(1_000_000, 262_144) == 250_000
+    assert parquet_module.even_batch_rows(5, 262_144) == 5
+    part = open_source(parquet_file).scan_parts(["x"], batch_rows=50)[0]
+    assert [b.frame.height for b in part()][:3] == [43, 43, 42]
+
+
 def test_source_streams_are_one_part(ipc_file: Path, tmp_path: Path) -> None:
     path = tmp_path / "f.csv"
     _frame(300, seed=5).write_csv(path)

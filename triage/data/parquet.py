@@ -37,6 +37,17 @@ of 9 float64 columns measured 1.55 s, 2.4 CPU-s and 309 MiB peak that way, and 0
 """
 
 
+def even_batch_rows(group_rows: int, batch_rows: int) -> int:
+    """Rows per batch that split a row group into equal batches of at most `batch_rows`.
+
+    pyarrow decodes a row group in equal batches for less: 20 million rows of 9 columns in
+    row groups of 1,000,000 took 0.65-0.73 user CPU-s in batches of 250,000 and 0.97-1.15
+    in batches of 262,144 (measured here, three runs each).
+    """
+    n_batches = -(-group_rows // max(batch_rows, 1))
+    return max(1, -(-group_rows // max(n_batches, 1)))
+
+
 class ParquetFileSource(BlockSource):
     """One Parquet file; batches and blocks come from pyarrow, one row group at a time.
 
@@ -103,15 +114,17 @@ class ParquetFileSource(BlockSource):
         # One thread per part: pyarrow's own threads cost 1.4-1.6 CPU-s against 1.3 alone
         # for 20 million rows of 9 columns (measured here), and the parts keep both cores busy.
         first, stop = span
-        with reading(self._path, self._kind):
-            record_batches = self._open().iter_batches(
-                batch_size=batch_rows,
-                row_groups=range(first, stop),
-                columns=columns,
-                use_threads=False,
-            )
-            start = int(self._offsets[first])
-            yield from number_record_batches(record_batches, self.schema(), start=start)
+        reader = self._open()
+        for group in range(first, stop):
+            start, end = int(self._offsets[group]), int(self._offsets[group + 1])
+            with reading(self._path, self._kind):
+                record_batches = reader.iter_batches(
+                    batch_size=even_batch_rows(end - start, batch_rows),
+                    row_groups=[group],
+                    columns=columns,
+                    use_threads=False,
+                )
+                yield from number_record_batches(record_batches, self.schema(), start=start)
 
     def _block_offsets(self, n_rows: int | None) -> np.ndarray:
         return self._offsets
