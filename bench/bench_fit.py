@@ -11,7 +11,7 @@ fresh subprocess with its peak resident memory:
   the estimated memory would exceed `--memory-cap-gb`).
 
 Prints ratios to the floor, and peak memory at two sizes to show it is flat in rows. The
-floor and the fit, which take seconds, run `--repeat` times in turn and their medians are
+floor and the fit, which take seconds, run `--repeat` times (5) in turn, and their medians are
 compared: on the machines this was written on, the floor alone varied by 30% between runs.
 Usage: ``python bench/bench_fit.py --rows 2000000,20000000 --predictors 8,30``.
 """
@@ -158,7 +158,7 @@ def main() -> None:
     parser.add_argument("--rows", default="2000000,20000000", help="comma-separated row counts")
     parser.add_argument("--predictors", default="8,30")
     parser.add_argument("--memory-cap-gb", type=float, default=16.0)
-    parser.add_argument("--repeat", type=int, default=3, help="runs of the floor and the fit")
+    parser.add_argument("--repeat", type=int, default=5, help="runs of the floor and the fit")
     args = parser.parse_args()
     compile_once()
     results = []
