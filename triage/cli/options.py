@@ -234,14 +234,15 @@ def add_holdout_options(parser: argparse.ArgumentParser) -> argparse._ArgumentGr
 
 def holdout_rule_from_args(args: argparse.Namespace) -> HoldoutRule | None:
     """Return the held-out rule the options describe, or None when no rows are held out."""
-    from triage.core.holdout import HoldoutRule
     from triage.errors import SpecError
 
     if args.cut is not None and args.holdout_by is None:
         msg = f"`--cut {args.cut}` needs `--holdout-by COL` to say which column it cuts"
         raise SpecError(msg)
+    if args.holdout is None and args.holdout_by is None:
+        return None
+    from triage.core.holdout import HoldoutRule  # only when rows are held out
+
     if args.holdout is not None:
         return HoldoutRule(fraction=args.holdout, seed=args.seed)
-    if args.holdout_by is not None:
-        return HoldoutRule(column=args.holdout_by, cut=args.cut, seed=args.seed)
-    return None
+    return HoldoutRule(column=args.holdout_by, cut=args.cut, seed=args.seed)

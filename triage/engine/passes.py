@@ -17,13 +17,6 @@ import numpy as np
 import polars as pl
 
 from triage.core.design import DesignBatch, DesignBuilder
-from triage.core.diagnostics import (
-    Diagnostics,
-    DiagnosticsAccumulator,
-    RowDiagnostics,
-    default_config,
-    row_diagnostics,
-)
 from triage.core.filter import parse_filter
 from triage.core.lsq import LinearFit, QRAccumulator
 from triage.data.source import ROW_INDEX
@@ -34,6 +27,7 @@ from triage.errors import DataError
 
 if TYPE_CHECKING:
     from triage._typing import SampleDesign
+    from triage.core.diagnostics import Diagnostics, RowDiagnostics
     from triage.core.spec import ModelSpec
     from triage.data.source import Batch, Sample, Source
 
@@ -558,6 +552,8 @@ def _diagnose(
     on_progress: ProgressCallback | None,
     cancel: threading.Event | None,
 ) -> Diagnostics:
+    from triage.core.diagnostics import DiagnosticsAccumulator, default_config
+
     builder, fit = outcome.builder, outcome.fit
     sample_batch = builder.build(plan.learning_frame)
     config = default_config(
@@ -593,6 +589,8 @@ def diagnose_rows(
     Rows the model cannot use (a missing value, an unseen level) come back in the frame
     but not in the diagnostics; match the two on `ROW_INDEX`.
     """
+    from triage.core.diagnostics import row_diagnostics
+
     frame = source.read_rows(list(positions))
     batch = outcome.builder.build(frame.select([*outcome.spec.source_columns(), ROW_INDEX]))
     return frame, row_diagnostics(outcome.fit, batch)
@@ -609,6 +607,8 @@ def iter_row_diagnostics(
 
     The fit is `outcome`'s, whether it came from a sample or from every row.
     """
+    from triage.core.diagnostics import row_diagnostics
+
     plan = PassPlan(source, outcome.spec, sample=None, learning_frame=outcome.sample)
     tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
     counts = RowCounts()
