@@ -258,3 +258,20 @@ def test_cli_bad_input_exits_2_with_one_line(
     assert expected in lines[0]
     assert "Traceback" not in err
     assert sorted(p.name for p in tmp_path.iterdir()) == before  # nothing written
+
+
+def test_cli_stops_quietly_when_its_reader_goes_away(diabetes: Path) -> None:
+    # `triage fit ... --json | head`: a reader that has closed the pipe gets no traceback;
+    # 141 is the shell's code for a command ended by SIGPIPE (128 + 13).
+    import subprocess
+    import sys
+
+    args = ["fit", str(diabetes), "-y", "target", "-x", "bmi, bp", "--json"]
+    command = [sys.executable, "-m", "triage", *args]
+    with subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE) as child:
+        assert child.stdout is not None and child.stderr is not None
+        child.stdout.close()
+        err = child.stderr.read().decode()
+        code = child.wait()
+    assert code == 141
+    assert "Traceback" not in err and "BrokenPipe" not in err

@@ -62,3 +62,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("triage: stopped", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # The reader of our output went away (`triage fit ... --json | head`): stop quietly,
+        # and point stdout at nothing so Python's exit flush does not fail again.
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 141
