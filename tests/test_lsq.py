@@ -64,6 +64,13 @@ def digits(estimate: Any, reference: Any) -> float:
         return float(np.min(-np.log10(np.abs(est - ref) / np.abs(ref))))
 
 
+def normwise_digits(estimate: Any, reference: Any) -> float:
+    """Agreeing digits of a whole vector: -log10 of ||estimate - reference|| / ||reference||."""
+    est = np.asarray(estimate, dtype=np.float64)
+    ref = np.asarray(reference, dtype=np.float64)
+    return float(-np.log10(np.linalg.norm(est - ref) / np.linalg.norm(ref)))
+
+
 # ---------------------------------------------------------------- per-batch factorization
 
 
@@ -382,7 +389,10 @@ def test_lsq_any_batch_split_gives_same_coefficients(cuts: list[int], seed: int)
     for start, stop in itertools.pairwise(bounds):
         acc.update(design[start:stop], y[start:stop])
     fit = acc.finalize([f"c{j}" for j in range(design.shape[1])])
-    assert digits(fit.coef, np.linalg.lstsq(design, y, rcond=None)[0]) >= 10
+    # Normwise: the seeds drawn here give some coefficient near zero now and then (seed
+    # 1318: -1.04e-6 beside others near 1), whose own relative error says nothing of the
+    # solve; hypothesis found that case for the per-coefficient measure.
+    assert normwise_digits(fit.coef, np.linalg.lstsq(design, y, rcond=None)[0]) >= 10
 
 
 # ---------------------------------------------------------------- rank deficiency
