@@ -180,8 +180,7 @@ def fold_in_order(
     merged: list[S] = []  # the merge of units 0 .. n_merged - 1, once there is one
     n_merged = 0
     errors: list[BaseException] = []
-    n_threads = max(1, min(n_workers, n_units))
-    running = [n_threads]
+    running = n_threads = max(1, min(n_workers, n_units))
 
     def fold_units() -> None:
         nonlocal n_merged
@@ -199,6 +198,7 @@ def fold_in_order(
                     n_merged += 1
 
     def work() -> None:
+        nonlocal running
         try:
             fold_units()
         except BaseException as error:  # handed to the caller, which raises it
@@ -206,8 +206,8 @@ def fold_in_order(
             stopping.set()
         finally:
             with lock:
-                running[0] -= 1
-                if running[0] == 0:
+                running -= 1
+                if running == 0:
                     all_done.set()
 
     threads = [
