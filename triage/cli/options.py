@@ -168,16 +168,17 @@ def open_source_from_args(args: argparse.Namespace) -> Source:
 
 
 def parse_reference(pairs: list[str]) -> dict[str, str]:
-    """Parse repeated `--reference COL=LEVEL` options."""
+    """Parse repeated `--reference COL=LEVEL` options (`COL[LEVEL]` is read the same way)."""
+    from triage.core.design import split_indicator_name
     from triage.errors import SpecError
 
     reference: dict[str, str] = {}
     for pair in pairs:
-        column, sep, level = pair.partition("=")
-        if not sep or not column.strip():
+        parts = split_indicator_name(pair)
+        if parts is None:
             msg = f"`--reference` takes COL=LEVEL, got `{pair}`"
             raise SpecError(msg)
-        reference[column.strip()] = level.strip()
+        reference[parts[0]] = parts[1]
     return reference
 
 
