@@ -462,7 +462,7 @@ class DesignBuilder:
         categorical = [t.column for t in spec.terms if t.kind == "categorical" and t.column]
         if level_tables is None:
             level_tables = count_levels(schema, categorical, sample)
-            basis = "the sample rows"
+            basis = "the sample"
         else:
             basis = "the rows read"
         tables = {c: _check_levels(spec, level_tables[c], basis) for c in categorical}
@@ -713,11 +713,6 @@ class DesignBuilder:
             )
             raise DataError(msg)
         return np.asfortranarray(values[keep]), frame.filter(pl.Series(keep)), n_bad
-
-
-def indicator_name(column: str, level: str) -> str:
-    """Name of the design column that is 1 where `column` equals `level`: ``depot[north]``."""
-    return f"{quote_name(column)}[{level}]"
 
 
 def reference_level(spec: ModelSpec, table: LevelTable) -> str:
