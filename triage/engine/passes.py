@@ -6,11 +6,11 @@ cancel, checks the event between batches, and raises `PassCancelled` within one 
 
 from __future__ import annotations
 
-import functools
+import contextlib
 import os
 import threading
 import time
-from collections.abc import Callable, Collection, Iterator, Sequence
+from collections.abc import Callable, Collection, Generator, Iterator, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, TypeVar
 
@@ -24,7 +24,7 @@ from triage.core.lsq import LinearFit, QRAccumulator
 from triage.data.source import ROW_INDEX
 from triage.engine.allocator import keep_batch_memory
 from triage.engine.progress import PassProgress, ProgressCallback, ProgressTracker, ReadAhead
-from triage.engine.workers import PASS_WORKERS, BatchWorkers, fold_in_order
+from triage.engine.workers import fold_in_order, pass_workers
 from triage.errors import DataError
 
 if TYPE_CHECKING:
@@ -239,7 +239,7 @@ class PassPlan:
         batch_values: int = BATCH_VALUES,
         columns: Sequence[str] | None = None,
         drop_marked: bool = True,
-    ) -> Iterator[pl.DataFrame]:
+    ) -> Generator[pl.DataFrame, None, None]:
         """Yield the filtered frames of the pass, counting rows and reporting progress.
 
         `columns` reads other columns than the plan's (a first read of the categoricals);
@@ -280,8 +280,9 @@ class PassPlan:
 
         A full pass over a source that splits (`Source.scan_parts`) reads and folds its
         parts at the same time, each in one thread, and merges them in source order
-        (`fold_in_order`). Otherwise the frames are read ahead and dealt out to the workers
-        in turn (`BatchWorkers`). Either way the result does not depend on timing.
+        (`fold_in_order`). Otherwise the frames are read ahead on one thread and each is
+        folded by the next free worker into a part of its own; the parts merge in frame
+        order. Either way the result depends neither on timing nor on the number of workers.
         `columns` and `drop_marked` are as for `frames`.
         """
         columns = self.columns if columns is None else list(columns)
@@ -291,18 +292,23 @@ class PassPlan:
                 columns, where=self.where, batch_rows=batch_rows_for(len(columns), batch_values)
             )
         if len(parts) < 2:
-            with BatchWorkers(new_part, fold) as workers:
-                frames = self.frames(
+
+            def fold_frame(frame: pl.DataFrame, stopping: threading.Event) -> S:
+                state = new_part()
+                fold(state, frame)
+                return state
+
+            with contextlib.closing(
+                self.frames(
                     counts,
                     tracker,
                     batch_values=batch_values,
                     columns=columns,
                     drop_marked=drop_marked,
                 )
-                for frame in frames:
-                    workers.submit(frame)
-                states = workers.finish()
-            return functools.reduce(merge, states)
+            ) as frames:
+                merged = fold_in_order(frames, fold_frame, merge, wait=tracker.check)
+            return new_part() if merged is None else merged
         part_counts = [RowCounts() for _ in parts]
 
         def fold_part(k: int, stopping: threading.Event) -> S:
@@ -320,7 +326,8 @@ class PassPlan:
         def report() -> None:
             tracker.advance(sum(c.read for c in part_counts))
 
-        merged = fold_in_order(len(parts), fold_part, merge, wait=report)
+        merged = fold_in_order(range(len(parts)), fold_part, merge, wait=report)
+        assert merged is not None  # there are at least two parts
         for k_counts in part_counts:
             counts.absorb(k_counts)
         tracker.advance(counts.read, force=True)
@@ -382,7 +389,7 @@ class PassPlan:
         budget = DesignBudget(
             limit_bytes=limit,
             batch_rows=batch_rows_for(len(self.columns), FIT_BATCH_VALUES),
-            n_workers=PASS_WORKERS,
+            n_workers=pass_workers(),
         )
         return DesignBuilder.learn(
             spec,
