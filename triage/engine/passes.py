@@ -28,6 +28,8 @@ from triage.engine.workers import fold_in_order, pass_workers
 from triage.errors import DataError
 
 if TYPE_CHECKING:
+    from numpy.typing import NDArray
+
     from triage._typing import SampleDesign
     from triage.core.diagnostics import Diagnostics, RowDiagnostics
     from triage.core.levels import LevelTable
@@ -674,18 +676,47 @@ def _diagnose(
 
 
 def diagnose_rows(
-    source: Source, outcome: FitOutcome, positions: Sequence[int]
+    source: Source,
+    outcome: FitOutcome,
+    positions: Sequence[int],
+    *,
+    exclude_rows: Collection[int] = (),
 ) -> tuple[pl.DataFrame, RowDiagnostics]:
     """Read the full original rows at `positions` and compute their diagnostics under the fit.
 
     Rows the model cannot use (a missing value, an unseen level) come back in the frame
-    but not in the diagnostics; match the two on `ROW_INDEX`.
+    but not in the diagnostics; match the two on `ROW_INDEX`. A row the fit did not use
+    (outside its filter, among `exclude_rows`, or outside the sample of a sample fit) is
+    scored as a new observation: see `RowDiagnostics.in_fit`.
     """
     from triage.core.diagnostics import row_diagnostics
 
     frame = source.read_rows(list(positions))
     batch = outcome.builder.build(frame.select([*outcome.spec.source_columns(), ROW_INDEX]))
-    return frame, row_diagnostics(outcome.fit, batch)
+    inside = rows_in_fit(source, outcome, frame, exclude_rows)
+    in_fit = np.isin(batch.rows, frame[ROW_INDEX].to_numpy()[inside])
+    return frame, row_diagnostics(outcome.fit, batch, in_fit)
+
+
+def rows_in_fit(
+    source: Source, outcome: FitOutcome, frame: pl.DataFrame, exclude_rows: Collection[int] = ()
+) -> NDArray[np.bool_]:
+    """Return, per row of `frame` (every column plus `ROW_INDEX`), whether the fit used it.
+
+    A row is in the fit when it passes the model's filter, is not among `exclude_rows` and,
+    for a fit on a sample, was drawn into that sample. Rows with a missing value are never
+    in a design batch, so they are not asked about.
+    """
+    rows = frame[ROW_INDEX].to_numpy()
+    inside: NDArray[np.bool_] = np.ones(rows.size, dtype=np.bool_)
+    where = _parse_where(source, outcome.spec)
+    if where is not None and rows.size:
+        inside &= frame.select(where.fill_null(value=False)).to_series().to_numpy()
+    if exclude_rows:
+        inside &= ~np.isin(rows, np.fromiter(exclude_rows, dtype=np.int64))
+    if not outcome.data.is_full_pass:
+        inside &= np.isin(rows, outcome.sample[ROW_INDEX].to_numpy())
+    return inside
 
 
 def iter_row_diagnostics(
