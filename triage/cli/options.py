@@ -141,6 +141,13 @@ def add_row_options(parser: argparse.ArgumentParser) -> None:
         default="groups",
         help="groups: whole row groups at random (fast); uniform: exact random rows (full read)",
     )
+    group.add_argument(
+        "--workers",
+        type=integer_option("--workers", minimum=1),
+        default=None,
+        metavar="N",
+        help="threads of a pass (default: every CPU this process may use); results do not change",
+    )
 
 
 def csv_options_from_args(args: argparse.Namespace) -> CsvOptions:
