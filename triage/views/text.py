@@ -17,10 +17,10 @@ from triage.views.format import NA, format_count, format_number, format_p, trunc
 
 if TYPE_CHECKING:
     from triage._typing import Criterion
-    from triage.core.diagnostics import Diagnostics
     from triage.core.lsq import LinearFit
     from triage.core.spec import ModelSpec
-    from triage.engine.passes import DataSummary, FitOutcome, ReportOutcome
+    from triage.results.diagnostics import Diagnostics
+    from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
 
 Align = Literal["<", ">"]
 
