@@ -48,6 +48,59 @@ _DROP_HINT: Final = (
 )
 _OVERFLOW_TRANSFORMS: Final = frozenset({"square", "pow", "poly"})
 _SQL_NAME: Final = re.compile(r"[A-Za-z_][A-Za-z0-9_]*\Z")
+_BRACKET_INDICATOR: Final = re.compile(r"(.+?)\[(.*)\]")
+"""The bracket form ``depot[north]`` of an indicator name, still accepted as input."""
+
+
+def indicator_name(column: str, level: str) -> str:
+    """Name the indicator (dummy) column of one level of a categorical column.
+
+    Every view, export and JSON document shows an indicator under this one name:
+    ``vehicle=cargo_bike`` reads as "the rows where `vehicle` is `cargo_bike`".
+
+    Parameters
+    ----------
+    column : str
+        The categorical column (written in backticks when not a plain name).
+    level : str
+        The level the indicator is 1 for.
+
+    Returns
+    -------
+    str
+        ``column=level``.
+    """
+    return f"{quote_name(column)}={level}"
+
+
+def split_indicator_name(text: str) -> tuple[str, str] | None:
+    """Read an indicator name typed by a user back into (column, level).
+
+    Accepts our form ``depot=north`` and, for older notes and scripts, ``depot[north]``.
+    A backticked column name is unquoted.
+
+    Parameters
+    ----------
+    text : str
+        The typed name.
+
+    Returns
+    -------
+    tuple of (str, str) or None
+        The column and the level (both stripped), or None when `text` is neither form.
+    """
+    text = text.strip()
+    bracket = _BRACKET_INDICATOR.fullmatch(text)
+    if bracket is not None:
+        column, level = bracket.group(1), bracket.group(2)
+    else:
+        column, sep, level = text.partition("=")
+        if not sep:
+            return None
+    column, level = column.strip(), level.strip()
+    if len(column) > 1 and column.startswith("`") and column.endswith("`"):
+        column = column[1:-1]
+    return (column, level) if column else None
 
 
 @dataclass(frozen=True)
@@ -255,7 +308,8 @@ class DesignBuilder:
     column_names : tuple of str
         Design column names: ``intercept`` first when the model has one, a numeric or
         transform term under its label, ``poly(x, 3)`` as ``x``, ``x^2``, ``x^3``, and a
-        categorical as one dummy per non-reference level, ``depot[north]``.
+        categorical as one dummy per non-reference level, ``depot=north`` (see
+        `indicator_name`).
     term_of_column : tuple of str
         The term label of each design column (``intercept`` for the column of ones).
     numeric_predictors : tuple of str
@@ -371,7 +425,7 @@ class DesignBuilder:
                 level_ok.append(in_levels)
                 for level, is_level in zip(found, equal, strict=True):
                     if level != reference:
-                        name = f"{quote_name(column)}[{level}]"
+                        name = indicator_name(column, level)
                         design.append(is_level.cast(pl.Float64).alias(name))
                         names.append(name)
                         owners.append(term.label)

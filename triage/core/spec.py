@@ -176,6 +176,15 @@ def _tokenize(text: str) -> list[_Token]:
                     f"`-` at position {where + 1} in terms `{text}`: terms cannot be removed; "
                     "the intercept is a separate option of the model, on by default"
                 )
+            elif bad[0] in "=[" and tokens and tokens[-1].kind == "name":
+                column = tokens[-1].text
+                written = re.split(r"[,+]", text[tokens[-1].start :])[0].strip()
+                msg = (
+                    f"`{written}` names one indicator of "
+                    f"the categorical `{column}`: give `{column}` as a term (it gets an "
+                    f"indicator per level) and choose the level left out with "
+                    f"`--reference {column}=LEVEL`"
+                )
             else:
                 msg = (
                     f"unexpected `{bad[0]}` at position {where + 1} in terms `{text}`; "

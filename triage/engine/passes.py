@@ -6,10 +6,10 @@ cancel, checks the event between batches, and raises `PassCancelled` within one 
 
 from __future__ import annotations
 
-import functools
+import contextlib
 import threading
 import time
-from collections.abc import Callable, Collection, Iterator, Sequence
+from collections.abc import Callable, Collection, Generator, Iterator, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, TypeVar
 
@@ -22,7 +22,7 @@ from triage.core.lsq import QRAccumulator
 from triage.data.source import ROW_INDEX
 from triage.engine.allocator import keep_batch_memory
 from triage.engine.progress import ProgressCallback, ProgressTracker, ReadAhead
-from triage.engine.workers import BatchWorkers, fold_in_order
+from triage.engine.workers import fold_in_order
 from triage.errors import DataError
 from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
 from triage.results.progress import PassProgress
@@ -167,7 +167,7 @@ class PassPlan:
 
     def frames(
         self, counts: RowCounts, tracker: ProgressTracker, *, batch_values: int = BATCH_VALUES
-    ) -> Iterator[pl.DataFrame]:
+    ) -> Generator[pl.DataFrame, None, None]:
         """Yield the filtered frames of the pass, counting rows and reporting progress."""
         step = batch_rows_for(len(self.columns), batch_values)
         if self.sample is None:
@@ -201,8 +201,9 @@ class PassPlan:
 
         A full pass over a source that splits (`Source.scan_parts`) reads and folds its
         parts at the same time, each in one thread, and merges them in source order
-        (`fold_in_order`). Otherwise the frames are read ahead and dealt out to the workers
-        in turn (`BatchWorkers`). Either way the result does not depend on timing.
+        (`fold_in_order`). Otherwise the frames are read ahead on one thread and each is
+        folded by the next free worker into a part of its own; the parts merge in frame
+        order. Either way the result depends neither on timing nor on the number of workers.
         """
         parts: Sequence[Callable[[], Iterator[Batch]]] = ()
         if self.sample is None:
@@ -212,11 +213,17 @@ class PassPlan:
                 batch_rows=batch_rows_for(len(self.columns), batch_values),
             )
         if len(parts) < 2:
-            with BatchWorkers(new_part, fold) as workers:
-                for frame in self.frames(counts, tracker, batch_values=batch_values):
-                    workers.submit(frame)
-                states = workers.finish()
-            return functools.reduce(merge, states)
+
+            def fold_frame(frame: pl.DataFrame, stopping: threading.Event) -> S:
+                state = new_part()
+                fold(state, frame)
+                return state
+
+            with contextlib.closing(
+                self.frames(counts, tracker, batch_values=batch_values)
+            ) as frames:
+                merged = fold_in_order(frames, fold_frame, merge, wait=tracker.check)
+            return new_part() if merged is None else merged
         part_counts = [RowCounts() for _ in parts]
 
         def fold_part(k: int, stopping: threading.Event) -> S:
@@ -233,7 +240,8 @@ class PassPlan:
         def report() -> None:
             tracker.advance(sum(c.read for c in part_counts))
 
-        merged = fold_in_order(len(parts), fold_part, merge, wait=report)
+        merged = fold_in_order(range(len(parts)), fold_part, merge, wait=report)
+        assert merged is not None  # there are at least two parts
         for k_counts in part_counts:
             counts.absorb(k_counts)
         tracker.advance(counts.read, force=True)
