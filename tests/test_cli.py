@@ -275,3 +275,18 @@ def test_cli_stops_quietly_when_its_reader_goes_away(diabetes: Path) -> None:
         code = child.wait()
     assert code == 141
     assert "Traceback" not in err and "BrokenPipe" not in err
+
+
+def test_cli_progress_line_names_the_pass_and_counts_its_rows_once() -> None:
+    # Oracle: the line written out by hand from the numbers given.
+    import io
+
+    from triage.cli.progress import StderrProgress
+    from triage.results.progress import PassProgress
+
+    stream = io.StringIO()
+    progress = StderrProgress(delay_s=0.0, stream=stream)
+    progress(PassProgress(7_500_000, 20_000_000, 9.0, 2_500_000.0, 5.0, pass_number=2, n_passes=2))
+    line = stream.getvalue()
+    assert "pass 2 of 2: 7,500,000 of 20,000,000 rows" in line
+    assert "2,500,000 rows/s, about 5 s left" in line

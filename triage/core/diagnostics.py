@@ -22,7 +22,7 @@ from __future__ import annotations
 import itertools
 import math
 from collections.abc import Collection, Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import TYPE_CHECKING, Final
 
 import numpy as np
@@ -158,10 +158,13 @@ def _row_values(
         student_internal=internal,
         studentized=external,
         cooks=cooks,
+        in_fit=np.ones(h.size, dtype=np.bool_),
     )
 
 
-def row_diagnostics(fit: LinearFit, batch: DesignBatch) -> RowDiagnostics:
+def row_diagnostics(
+    fit: LinearFit, batch: DesignBatch, in_fit: NDArray[np.bool_] | None = None
+) -> RowDiagnostics:
     """Compute fitted values, residuals, leverage, studentized residuals and Cook's distance.
 
     Parameters
@@ -170,6 +173,9 @@ def row_diagnostics(fit: LinearFit, batch: DesignBatch) -> RowDiagnostics:
         The fit of pass 1.
     batch : DesignBatch
         Design rows built by the same builder as the fit's.
+    in_fit : ndarray of bool, optional
+        Per row of the batch, True when the row was among the fit's rows; rows outside are
+        scored as new observations (see `RowDiagnostics`). By default every row is in.
 
     Returns
     -------
@@ -180,7 +186,31 @@ def row_diagnostics(fit: LinearFit, batch: DesignBatch) -> RowDiagnostics:
     --------
     DiagnosticsAccumulator : the same values summarised over a whole pass.
     """
-    return _row_values(fit, fit.to_shifted(batch.x), batch.y, batch.weights, batch.rows)
+    values = _row_values(fit, fit.to_shifted(batch.x), batch.y, batch.weights, batch.rows)
+    if in_fit is None or bool(np.all(in_fit)):
+        return values
+    outside = ~np.asarray(in_fit, dtype=np.bool_)
+    h0 = values.leverage[outside]
+    s = fit.resid_sd
+    with np.errstate(divide="ignore", invalid="ignore"):
+        predicted = values.weighted_resid[outside] / (s * np.sqrt(1.0 + h0))
+    if not (s > 0.0 and math.isfinite(s)):
+        predicted = np.full(h0.size, np.nan)
+    internal, external, cooks = (
+        values.student_internal.copy(),
+        values.studentized.copy(),
+        values.cooks.copy(),
+    )
+    internal[outside] = predicted
+    external[outside] = predicted
+    cooks[outside] = np.nan
+    return replace(
+        values,
+        student_internal=internal,
+        studentized=external,
+        cooks=cooks,
+        in_fit=~outside,
+    )
 
 
 # --------------------------------------------------------------------------- configuration

@@ -103,7 +103,10 @@ class ModelSpec:
         Column -> reference level for dummy coding; other categoricals use their most
         frequent level in the sample.
     max_levels : int, default=50
-        Most levels a categorical column may have in the sample.
+        Most levels a categorical column may have in the rows it is learned from.
+    max_memory : int or None, default=None
+        Most bytes a pass's design may take (checked before it is built); None for the
+        engine's default, a share of the machine's memory.
     drop_invalid : bool, default=False
         Leave out rows outside a transform's domain or with weight <= 0 instead of failing.
     """
@@ -116,6 +119,7 @@ class ModelSpec:
     categorical: tuple[str, ...] = ()
     reference: Mapping[str, str] = field(default_factory=lambda: MappingProxyType({}), hash=False)
     max_levels: int = 50
+    max_memory: int | None = None
     drop_invalid: bool = False
 
     def model_columns(self) -> tuple[str, ...]:
@@ -597,6 +601,7 @@ def build_spec(
     categorical: Sequence[str] = (),
     reference: Mapping[str, str] | None = None,
     max_levels: int = 50,
+    max_memory: int | None = None,
     drop_invalid: bool = False,
 ) -> ModelSpec:
     """Check a model description against the columns of a source and build its spec.
@@ -620,7 +625,9 @@ def build_spec(
     reference : mapping of str to str or None, default=None
         Reference level per categorical column.
     max_levels : int, default=50
-        Most levels a categorical may have in the sample.
+        Most levels a categorical may have in the rows it is learned from.
+    max_memory : int or None, default=None
+        Most bytes a pass's design may take; None for the engine's default.
     drop_invalid : bool, default=False
         Leave out rows outside a transform's domain or with weight <= 0 instead of failing.
 
@@ -691,5 +698,6 @@ def build_spec(
         categorical=tuple(dict.fromkeys(categorical)),
         reference=MappingProxyType(reference),
         max_levels=max_levels,
+        max_memory=max_memory,
         drop_invalid=drop_invalid,
     )

@@ -52,12 +52,21 @@ class RowDiagnostics:
         ``s_(i)² = (RSS - e_i²/(1 - h_i)) / (df_resid - 1)``.
     cooks : ndarray of shape (n,)
         Cook's distance ``student_internal² h / (p (1 - h))``, ``p`` the rank of the design.
+    in_fit : ndarray of bool, shape (n,)
+        True where the row was one of the rows the fit was computed on.
 
     Notes
     -----
     Studentized values and Cook's distance are NaN where ``h`` is 1 (see
     `LEVERAGE_ONE_TOLERANCE`), where the fit has no residual spread, and (external only) where
     fewer than 2 residual degrees of freedom are left.
+
+    A row outside the fit (filtered out, left out by a mark, not in the sample) is scored as
+    a new observation: `leverage` is ``h0 = x0ᵀ(XᵀX)⁻¹x0`` (times its weight), computed as
+    ``‖R⁻ᵀx0‖²`` like the hat values, and both studentized columns hold the standardised
+    prediction residual ``√w·e0 / (s √(1 + h0))``, whose variance under the model is
+    ``σ²(1 + h0)`` since the row did not pull the fit. Cook's distance measures how a row
+    moves the fit it is part of, so it is NaN there.
     """
 
     rows: IntArray
@@ -68,6 +77,7 @@ class RowDiagnostics:
     student_internal: FloatArray
     studentized: FloatArray
     cooks: FloatArray
+    in_fit: NDArray[np.bool_]
 
     def take(self, indices: ArrayLike) -> RowDiagnostics:
         """Return the diagnostics of the rows at `indices` (indices into these arrays)."""
