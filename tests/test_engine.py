@@ -46,7 +46,7 @@ def small_batches(monkeypatch: pytest.MonkeyPatch) -> None:
 
 
 @pytest.mark.parametrize("part_rows", [500_000, 2_500])
-def test_engine_progress_only_increases_over_both_passes(
+def test_engine_progress_counts_each_row_once_per_pass_and_names_the_pass(
     data_file: Path, monkeypatch: pytest.MonkeyPatch, part_rows: int
 ) -> None:
     # 500,000: one part, read ahead and dealt out in batches; 2,500: eight parts read at once.
@@ -55,9 +55,16 @@ def test_engine_progress_only_increases_over_both_passes(
     spec = build_spec(source.schema(), target="y", terms="a, b")
     seen: list[PassProgress] = []
     report = passes.run_report(source, spec, rows=None, on_progress=seen.append)
-    done = [p.rows_done for p in seen]
-    assert done == sorted(done) and done[-1] == 2 * N_ROWS
-    assert all(p.rows_total == 2 * N_ROWS for p in seen)
+    assert [p.pass_number for p in seen] == sorted(p.pass_number for p in seen)
+    assert {p.pass_number for p in seen} == {1, 2}
+    for number in (1, 2):
+        done = [p.rows_done for p in seen if p.pass_number == number]
+        assert done == sorted(done) and done[-1] == N_ROWS
+    assert all(p.rows_total == N_ROWS and p.n_passes == 2 for p in seen)
+    assert seen[-1].stage.startswith("pass 2 of 2")
+    # The time left of pass 1 includes pass 2: at pass 1's speed, at least its own rows.
+    first = [p for p in seen if p.pass_number == 1 and p.eta_s is not None and p.rows_per_s > 0]
+    assert all(p.eta_s >= N_ROWS / p.rows_per_s * 0.999 for p in first)  # type: ignore[operator]
     frame = pl.read_parquet(data_file)
     design = np.column_stack([np.ones(N_ROWS), frame["a"], frame["b"]])
     oracle = np.linalg.lstsq(design, frame["y"].to_numpy(), rcond=None)[0]  # numpy as oracle

@@ -111,7 +111,6 @@ def export_worst_rows(
     rows: int | None = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
     design: SampleDesign = "groups",
-    by: Sequence[str] = (),
     force: bool = False,
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
@@ -124,7 +123,6 @@ def export_worst_rows(
         seed=seed,
         design=design,
         top_k=k,
-        by=by,
         on_progress=on_progress,
         cancel=cancel,
     )

@@ -564,9 +564,9 @@ def run_report(
 
     Parameters are those of `fit_model`, plus `top_k` (rows kept per worst-row list), `by`
     (columns to break residuals down by) and `is_ordered` (rows are in a meaningful order,
-    so serial-correlation flags apply). Progress runs from 0 to 1 over both passes when every
-    row is streamed. `on_fit`, if given, receives the fit as soon as pass 1 ends, so a screen
-    can show it while pass 2 runs.
+    so serial-correlation flags apply). Progress counts each row once per pass and says which
+    pass it is ("pass 2 of 2"); its time left covers both passes. `on_fit`, if given,
+    receives the fit as soon as pass 1 ends, so a screen can show it while pass 2 runs.
     """
     _check_segment_columns(source, spec, by)
     plan = PassPlan.read(
@@ -578,23 +578,21 @@ def run_report(
         exclude_rows=exclude_rows,
         extra_columns=by,
     )
-    total = plan.rows_total()
-
     started = time.perf_counter()
 
-    def as_part_of_both(offset: int) -> ProgressCallback | None:
-        """Report one pass's progress as part of both passes (rows done out of twice the rows)."""
+    def as_pass_of_two(number: int) -> ProgressCallback | None:
+        """Report one pass's progress as pass `number` of 2, with the time left for both."""
         if on_progress is None:
             return None
         callback = on_progress
 
         def report(progress: PassProgress) -> None:
             elapsed = time.perf_counter() - started
-            callback(_two_pass_progress(progress, offset, total, elapsed))
+            callback(_pass_of_two(progress, number, elapsed))
 
         return report
 
-    outcome = _fit(plan, on_progress=as_part_of_both(0), cancel=cancel)
+    outcome = _fit(plan, on_progress=as_pass_of_two(1), cancel=cancel)
     if on_fit is not None:
         on_fit(outcome)
     diagnostics = _diagnose(
@@ -603,26 +601,30 @@ def run_report(
         top_k=top_k,
         by=by,
         is_ordered=is_ordered,
-        on_progress=as_part_of_both(total or 0),
+        on_progress=as_pass_of_two(2),
         cancel=cancel,
     )
     return ReportOutcome(outcome, diagnostics)
 
 
-def _two_pass_progress(
-    progress: PassProgress, offset: int, total: int | None, elapsed_s: float
-) -> PassProgress:
-    """Shift one pass's progress by `offset` rows, out of `2 * total` rows for both passes.
+def _pass_of_two(progress: PassProgress, number: int, elapsed_s: float) -> PassProgress:
+    """Label one pass's progress as pass `number` of two; the time left covers both passes.
 
-    `elapsed_s` counts from the start of the first pass, so the speed and time left cover
-    both passes.
+    Rows are counted once per pass, at this pass's speed; before pass 2 starts its rows are
+    assumed to go as fast as pass 1's. `elapsed_s` counts from the start of the first pass.
     """
-    if total is None:
-        return progress
-    done = offset + progress.rows_done
-    speed = done / elapsed_s if elapsed_s > 0 else 0.0
-    eta = (2 * total - done) / speed if speed > 0 else None
-    return PassProgress(done, 2 * total, elapsed_s, speed, eta)
+    eta = progress.eta_s
+    if eta is not None and number == 1 and progress.rows_per_s > 0 and progress.rows_total:
+        eta += progress.rows_total / progress.rows_per_s
+    return PassProgress(
+        progress.rows_done,
+        progress.rows_total,
+        elapsed_s,
+        progress.rows_per_s,
+        eta,
+        pass_number=number,
+        n_passes=2,
+    )
 
 
 def _check_segment_columns(source: Source, spec: ModelSpec, by: Sequence[str]) -> None:

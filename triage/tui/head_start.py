@@ -179,6 +179,7 @@ class HeadStart:
                 design=settings.sample_design,
                 top_k=settings.top_k,
                 by=self._planned.by,
+                is_ordered=settings.is_ordered,
                 cancel=self._cancel,
                 on_fit=self._fit.set_result,
             )
