@@ -23,6 +23,7 @@ from triage.core.levels import LevelCounter
 from triage.core.spec import build_spec
 from triage.data.source import open_source
 from triage.engine.passes import fit_model
+from triage.results.fit import FitOutcome
 
 N_ROWS = 24_000
 GROUP_ROWS = 500
@@ -84,7 +85,7 @@ def small_learning_sample(monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setattr(passes, "LEARNING_SAMPLE_ROWS", 2 * GROUP_ROWS)
 
 
-def _fit(path: Path, **options: object) -> passes.FitOutcome:
+def _fit(path: Path, **options: object) -> FitOutcome:
     source = open_source(path)
     spec = build_spec(
         source.schema(),

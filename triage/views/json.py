@@ -19,10 +19,9 @@ from triage.views.text import CODING_RULE, model_formula
 
 if TYPE_CHECKING:
     from triage.core.design import DesignBuilder
-    from triage.core.diagnostics import Diagnostics, ResidualBin, WorstRow
-    from triage.core.residual_tests import ResidualTest
     from triage.core.spec import Term
-    from triage.engine.passes import DataSummary, FitOutcome, ReportOutcome
+    from triage.results.diagnostics import Diagnostics, ResidualBin, ResidualTest, WorstRow
+    from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
 
 
 def json_safe(value: Any) -> Any:

@@ -26,10 +26,10 @@ from triage.views.format import (
 if TYPE_CHECKING:
     from triage._typing import Criterion
     from triage.core.design import DesignBuilder
-    from triage.core.diagnostics import Diagnostics
     from triage.core.lsq import LinearFit
     from triage.core.spec import ModelSpec
-    from triage.engine.passes import DataSummary, FitOutcome, ReportOutcome
+    from triage.results.diagnostics import Diagnostics
+    from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
 
 Align = Literal["<", ">"]
 

@@ -26,9 +26,9 @@ if TYPE_CHECKING:
     import polars as pl
     from rich.console import RenderableType
 
-    from triage.core.compare import Comparison, Criterion
-    from triage.core.diagnostics import RowDiagnostics, WorstRow
-    from triage.engine.passes import FitOutcome, ReportOutcome
+    from triage.results.compare import Comparison, Criterion
+    from triage.results.diagnostics import RowDiagnostics, WorstRow
+    from triage.results.fit import FitOutcome, ReportOutcome
 
 PaneId = Literal[
     "columns", "fit", "spread", "trend", "predictors", "flags", "worst", "segments", "row", "fits"
