@@ -313,7 +313,7 @@ def test_cli_progress_line_names_the_pass_and_counts_its_rows_once() -> None:
     import io
 
     from triage.cli.progress import StderrProgress
-    from triage.engine.progress import PassProgress
+    from triage.results.progress import PassProgress
 
     stream = io.StringIO()
     progress = StderrProgress(delay_s=0.0, stream=stream)

@@ -21,9 +21,10 @@ from triage.data import parquet as parquet_module
 from triage.data.source import open_source
 from triage.engine import passes
 from triage.engine import progress as progress_module
-from triage.engine.progress import PassProgress, ReadAhead
+from triage.engine.progress import ReadAhead
 from triage.engine.workers import fold_in_order
 from triage.errors import PassCancelled
+from triage.results.progress import PassProgress
 
 N_ROWS = 20_000
 BATCH = 1_000

@@ -21,7 +21,8 @@ from hypothesis import strategies as st
 from tests.json_contract import COEFFICIENT_KEYS, FIT_SECTIONS
 from triage.core.spec import build_spec
 from triage.data.source import open_source
-from triage.engine.passes import FitOutcome, ReportOutcome, fit_model, run_report
+from triage.engine.passes import fit_model, run_report
+from triage.results.fit import FitOutcome, ReportOutcome
 from triage.views.charts import render_binned, render_histogram
 from triage.views.format import NA, format_count, format_number, format_p, truncate
 from triage.views.json import fit_to_json, json_safe, report_to_json

@@ -7,7 +7,7 @@ import time
 from typing import TYPE_CHECKING, TextIO
 
 if TYPE_CHECKING:
-    from triage.engine.progress import PassProgress
+    from triage.results.progress import PassProgress
 
 
 class StderrProgress:

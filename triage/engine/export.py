@@ -13,19 +13,19 @@ from triage.data.export import StreamingExport, write_frame
 from triage.data.source import ROW_INDEX
 from triage.engine.passes import (
     DEFAULT_SAMPLE_ROWS,
-    FitOutcome,
     diagnose_rows,
     fit_model,
     iter_row_diagnostics,
     run_report,
 )
+from triage.results.fit import FitOutcome
 
 if TYPE_CHECKING:
     from triage._typing import Criterion, SampleDesign
-    from triage.core.diagnostics import RowDiagnostics
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
     from triage.engine.progress import ProgressCallback
+    from triage.results.diagnostics import RowDiagnostics
 
 DIAGNOSTIC_COLUMNS: tuple[str, ...] = (
     "row",

@@ -20,21 +20,23 @@ import polars as pl
 from triage.core.design import DesignBatch, DesignBudget, DesignBuilder
 from triage.core.filter import parse_filter
 from triage.core.levels import LevelCounter
-from triage.core.lsq import LinearFit, QRAccumulator
+from triage.core.lsq import QRAccumulator
 from triage.data.source import ROW_INDEX
 from triage.engine.allocator import keep_batch_memory
-from triage.engine.progress import PassProgress, ProgressCallback, ProgressTracker, ReadAhead
+from triage.engine.progress import ProgressCallback, ProgressTracker, ReadAhead
 from triage.engine.workers import fold_in_order, pass_workers
 from triage.errors import DataError
+from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
+from triage.results.progress import PassProgress
 
 if TYPE_CHECKING:
     from numpy.typing import NDArray
 
     from triage._typing import SampleDesign
-    from triage.core.diagnostics import Diagnostics, RowDiagnostics
     from triage.core.levels import LevelTable
     from triage.core.spec import ModelSpec
     from triage.data.source import Batch, Sample, Source
+    from triage.results.diagnostics import Diagnostics, RowDiagnostics
 
 S = TypeVar("S")
 
@@ -86,53 +88,6 @@ def batch_rows_for(n_columns: int, values: int = BATCH_VALUES) -> int:
     """Rows per batch when reading `n_columns` columns: a power of two, 4,096 to `BATCH_ROWS`."""
     rows = max(values // max(n_columns, 1), 4_096)
     return min(BATCH_ROWS, 1 << (rows.bit_length() - 1))
-
-
-@dataclass(frozen=True)
-class DataSummary:
-    """Which rows a result was computed on, and why the others were left out."""
-
-    source: str
-    rows_in_source: int | None
-    rows_read: int
-    rows_filtered_out: int
-    rows_dropped_missing: int
-    rows_dropped_domain: int
-    rows_dropped_unseen_level: int
-    rows_excluded: int
-    rows_used: int
-    sample: str | None
-    """None when every row was read, else how the sample was drawn."""
-    sample_warning: str | None
-    is_full_pass: bool
-
-    @property
-    def rows_dropped(self) -> int:
-        """Rows left out for missing values, domain errors or unseen levels."""
-        return self.rows_dropped_missing + self.rows_dropped_domain + self.rows_dropped_unseen_level
-
-
-@dataclass(frozen=True)
-class FitOutcome:
-    """A fitted model together with what it was fitted on."""
-
-    spec: ModelSpec
-    builder: DesignBuilder
-    fit: LinearFit
-    data: DataSummary
-    sample: pl.DataFrame
-    """The in-memory sample the builder learned from (and the quick fit used).
-
-    Empty after `fit_model` streamed every row of a model with nothing to learn.
-    """
-
-
-@dataclass(frozen=True)
-class ReportOutcome:
-    """A fit and its residual diagnostics, computed on the same rows."""
-
-    outcome: FitOutcome
-    diagnostics: Diagnostics
 
 
 @dataclass

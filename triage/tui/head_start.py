@@ -25,7 +25,7 @@ if TYPE_CHECKING:
 
     from triage.core.spec import ModelSpec
     from triage.data.source import CsvOptions, Source
-    from triage.engine.passes import FitOutcome, ReportOutcome
+    from triage.results.fit import FitOutcome, ReportOutcome
     from triage.tui.settings import Settings
 
 PROFILE_ROWS: Final = 20_000

@@ -55,8 +55,8 @@ if TYPE_CHECKING:
     from triage._typing import Criterion
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
-    from triage.engine.passes import DataSummary, FitOutcome
-    from triage.engine.progress import PassProgress
+    from triage.results.fit import DataSummary, FitOutcome
+    from triage.results.progress import PassProgress
     from triage.tui.settings import Settings
 
 TILE_MIN_WIDTH: Final = 110

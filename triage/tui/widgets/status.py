@@ -13,7 +13,7 @@ if TYPE_CHECKING:
     from rich.console import RenderableType
     from textual.screen import Screen
 
-    from triage.engine.progress import PassProgress
+    from triage.results.progress import PassProgress
 
 
 class PaneStrip(Widget):
