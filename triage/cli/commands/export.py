@@ -53,6 +53,7 @@ def run(args: argparse.Namespace) -> int:
     """Run `triage export`."""
     from triage.cli.options import open_source_from_args, spec_from_args
     from triage.cli.progress import StderrProgress
+    from triage.cli.signals import stop_event
     from triage.data.export import PERSONAL_DATA_NOTICE, check_output_path
     from triage.engine.export import export_all_rows, export_worst_rows
 
@@ -71,6 +72,7 @@ def run(args: argparse.Namespace) -> int:
                 design=args.sample,
                 force=args.force,
                 on_progress=progress,
+                cancel=stop_event,
             )
         else:
             written, n_rows = export_worst_rows(
@@ -85,6 +87,7 @@ def run(args: argparse.Namespace) -> int:
                 by=segment_columns(args),
                 force=args.force,
                 on_progress=progress,
+                cancel=stop_event,
             )
     finally:
         progress.finish()
