@@ -8,7 +8,7 @@ import os
 import sys
 import warnings
 from collections.abc import Sequence
-from typing import NoReturn
+from typing import Any, NoReturn
 
 # One BLAS thread: the passes decode data in a read-ahead thread that keeps about 1.9 of
 # 2 cores busy, and a second BLAS thread competing with it was always slower (DESIGN.md,
@@ -23,7 +23,15 @@ COMMANDS: tuple[str, ...] = ("fit", "report", "export", "compare", "sample", "op
 
 
 class _Parser(argparse.ArgumentParser):
-    """An argument parser that reports a usage error in one line (exit 2), not a usage block."""
+    """An argument parser that reports a usage error in one line (exit 2), not a usage block.
+
+    Options must be spelled out: with abbreviations, `export --by` would be read as
+    `--by-criterion`, an option of another meaning.
+    """
+
+    def __init__(self, *args: Any, **kwargs: Any) -> None:
+        kwargs.setdefault("allow_abbrev", False)
+        super().__init__(*args, **kwargs)
 
     def error(self, message: str) -> NoReturn:
         """Print `message` with a pointer to `--help` and exit with code 2."""
@@ -64,6 +72,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     if args.command is None:
         parser.print_help()
         return 0
+    if getattr(args, "workers", None) is not None:
+        from triage.engine.workers import set_pass_workers  # standard library only
+
+        set_pass_workers(args.workers)
     from triage.cli.signals import StopRequested, received, stop_on_signals
 
     try:

@@ -18,9 +18,8 @@ from triage.views.format import format_number
 from triage.views.text import model_formula
 
 if TYPE_CHECKING:
-    from triage.core.diagnostics import Diagnostics, ResidualBin, WorstRow
-    from triage.core.residual_tests import ResidualTest
-    from triage.engine.passes import DataSummary, FitOutcome, ReportOutcome
+    from triage.results.diagnostics import Diagnostics, ResidualBin, ResidualTest, WorstRow
+    from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
 
 
 def json_safe(value: Any) -> Any:

@@ -6,7 +6,6 @@ import argparse
 import sys
 from typing import Any
 
-from triage.cli.commands.report import add_diagnostics_options, segment_columns
 from triage.cli.options import (
     add_model_options,
     add_row_options,
@@ -29,7 +28,6 @@ def register(subparsers: Any) -> None:
     add_source_options(parser)
     add_model_options(parser)
     add_row_options(parser)
-    add_diagnostics_options(parser)
     what = parser.add_mutually_exclusive_group(required=True)
     what.add_argument(
         "--worst",
@@ -84,7 +82,6 @@ def run(args: argparse.Namespace) -> int:
                 rows=args.rows,
                 seed=args.seed,
                 design=args.sample,
-                by=segment_columns(args),
                 force=args.force,
                 on_progress=progress,
                 cancel=stop_event,

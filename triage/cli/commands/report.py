@@ -95,6 +95,8 @@ def run(args: argparse.Namespace) -> int:
     from triage.views.text import render_full_report
 
     width = args.width or min(shutil.get_terminal_size((100, 40)).columns, 120)
-    text = render_full_report(report, width=width, charts=not args.no_charts, color=False)
+    text = render_full_report(
+        report, width=width, charts=not args.no_charts, color=False, is_ordered=args.ordered
+    )
     sys.stdout.write(text + "\n")
     return 0
