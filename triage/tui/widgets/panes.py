@@ -258,6 +258,7 @@ def _fit_sections(
     """Header, data summary, fit quality, coefficients and aliased terms of one fit."""
     from triage.views.text import (
         render_aliased,
+        render_coding,
         render_coefficients,
         render_data_summary,
         render_fit_quality,
@@ -268,6 +269,7 @@ def _fit_sections(
         render_data_summary(outcome.data, width=width),
         render_fit_quality(outcome.fit, target=outcome.spec.target, width=width),
         render_coefficients(outcome.fit, robust_se=robust, width=width),
+        render_coding(outcome.builder, width=width),
         render_aliased(outcome.fit, width=width),
     ]
 
