@@ -66,7 +66,7 @@ def run(args: argparse.Namespace) -> int:
                 args.out,
                 rows=args.rows,
                 seed=args.seed,
-                design=args.sample,
+                sampling=args.sample,
                 force=args.force,
                 on_progress=progress,
             )
@@ -79,7 +79,7 @@ def run(args: argparse.Namespace) -> int:
                 criterion=args.by_criterion,
                 rows=args.rows,
                 seed=args.seed,
-                design=args.sample,
+                sampling=args.sample,
                 force=args.force,
                 on_progress=progress,
             )

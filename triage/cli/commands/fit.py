@@ -50,7 +50,7 @@ def run(args: argparse.Namespace) -> int:
                 spec,
                 rows=args.rows,
                 seed=args.seed,
-                design=args.sample,
+                sampling=args.sample,
                 on_progress=progress,
             )
             comparison = None
@@ -63,7 +63,7 @@ def run(args: argparse.Namespace) -> int:
                 [args.terms],
                 rows=args.rows,
                 seed=args.seed,
-                design=args.sample,
+                sampling=args.sample,
                 holdout=rule,
                 on_progress=progress,
             )
