@@ -19,6 +19,7 @@ import pyarrow.parquet as pq
 import pytest
 
 import triage.engine.passes as passes
+from triage._typing import ALL_ROWS
 from triage.core.levels import LevelCounter
 from triage.core.spec import build_spec
 from triage.data.source import open_source
@@ -93,7 +94,7 @@ def _fit(path: Path, **options: object) -> FitOutcome:
         terms="cost ~ age + region + office + cat(month)",
         **options,  # type: ignore[arg-type]
     )
-    return fit_model(source, spec, rows=None)
+    return fit_model(source, spec, rows=ALL_ROWS)
 
 
 def test_sorted_table_full_pass_uses_every_row_and_matches_statsmodels(
@@ -222,7 +223,7 @@ def test_fit_json_rebuilds_the_model(tmp_path: Path, small_learning_sample: None
     frame.write_parquet(path, row_group_size=GROUP_ROWS)
     source = open_source(path)
     spec = build_spec(source.schema(), target=None, terms="cost ~ std(age) + region + cat(month)")
-    document = json.loads(json.dumps(fit_to_json(fit_model(source, spec, rows=None))))
+    document = json.loads(json.dumps(fit_to_json(fit_model(source, spec, rows=ALL_ROWS))))
     model = document["model"]
     data = frame.drop_nulls()
     columns = [np.ones(data.height)]

@@ -17,6 +17,7 @@ from typing import TYPE_CHECKING, TypeVar
 import numpy as np
 import polars as pl
 
+from triage._typing import ALL_ROWS
 from triage.core.design import DesignBatch, DesignBudget, DesignBuilder
 from triage.core.filter import parse_filter
 from triage.core.levels import LevelCounter
@@ -32,7 +33,7 @@ from triage.results.progress import PassProgress
 if TYPE_CHECKING:
     from numpy.typing import NDArray
 
-    from triage._typing import Sampling
+    from triage._typing import RowsToRead, Sampling
     from triage.core.levels import LevelTable
     from triage.core.spec import ModelSpec
     from triage.data.source import Batch, Sample, Source
@@ -152,7 +153,7 @@ class PassPlan:
         source: Source,
         spec: ModelSpec,
         *,
-        rows: int | None,
+        rows: RowsToRead,
         seed: int,
         sampling: Sampling,
         exclude_rows: Collection[int],
@@ -161,12 +162,12 @@ class PassPlan:
         """Draw the sample (a quick fit's rows, or a full pass's learning rows); plan the pass."""
         sample = source.read_sample(
             _pass_columns(spec, extra_columns),
-            n_rows=rows if rows is not None else LEARNING_SAMPLE_ROWS,
+            n_rows=LEARNING_SAMPLE_ROWS if rows is ALL_ROWS else rows,
             seed=seed,
             sampling=sampling,
             where=_parse_where(source, spec),
         )
-        streams = rows is None and not sample.is_whole
+        streams = rows is ALL_ROWS and not sample.is_whole
         return cls(
             source,
             spec,
@@ -394,7 +395,7 @@ def fit_model(
     source: Source,
     spec: ModelSpec,
     *,
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
     sampling: Sampling = "groups",
     exclude_rows: Collection[int] = (),
@@ -409,8 +410,8 @@ def fit_model(
         Where the rows come from.
     spec : ModelSpec
         The model, already validated against the source's schema.
-    rows : int or None, default=200_000
-        Sample size; None streams every row in bounded memory.
+    rows : int or ALL_ROWS, default=200_000
+        Sample size; `ALL_ROWS` streams every row in bounded memory.
     seed : int, default=0
         Seed of the sample.
     sampling : {"groups", "uniform"}, default="groups"
@@ -431,7 +432,7 @@ def fit_model(
     DataError
         When no rows are left or the data cannot support the fit.
     """
-    if rows is None and not DesignBuilder.learns_from_sample(spec):
+    if rows is ALL_ROWS and not DesignBuilder.learns_from_sample(spec):
         # Nothing to learn: a full pass skips the sample (0.3 s on a 20-million-row file).
         schema = source.schema()
         columns = {c: schema[c] for c in _pass_columns(spec, ())}
@@ -504,7 +505,7 @@ def run_report(
     source: Source,
     spec: ModelSpec,
     *,
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
     sampling: Sampling = "groups",
     exclude_rows: Collection[int] = (),
