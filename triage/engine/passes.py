@@ -20,12 +20,13 @@ import polars as pl
 from triage.core.design import DesignBatch, DesignBudget, DesignBuilder
 from triage.core.filter import parse_filter
 from triage.core.levels import LevelCounter
+from triage.core.limits import check_column_values, check_factor_scale
 from triage.core.lsq import QRAccumulator
 from triage.data.source import ROW_INDEX
 from triage.engine.allocator import keep_batch_memory
 from triage.engine.progress import ProgressCallback, ProgressTracker, ReadAhead
 from triage.engine.workers import fold_in_order, pass_workers
-from triage.errors import DataError
+from triage.errors import DataError, TriageError
 from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
 from triage.results.progress import PassProgress
 
@@ -372,6 +373,35 @@ def _pass_columns(spec: ModelSpec, extra_columns: Sequence[str]) -> list[str]:
     return columns + [c for c in extra_columns if c not in columns]
 
 
+@contextlib.contextmanager
+def naming_values_too_large(builder: DesignBuilder, frame: pl.DataFrame) -> Iterator[None]:
+    """Turn a failure of the fit on a batch into an error naming a column too large to fit.
+
+    Values near the float limit overflow the fit's sums of squares, which shows up as a
+    floating-point warning or an error about non-finite values; the batch is then built
+    again, quietly, to find the column (or target) responsible. Other failures pass as
+    they were.
+    """
+    try:
+        yield
+    except (DataError, ArithmeticError, RuntimeWarning):
+        columns = _design_quietly(builder, frame)
+        if columns is not None:
+            check_column_values(columns)
+        raise
+
+
+def _design_quietly(builder: DesignBuilder, frame: pl.DataFrame) -> dict[str, np.ndarray] | None:
+    """Build `frame`'s design columns and target by label, or None if that fails too."""
+    try:
+        with np.errstate(all="ignore"):  # numpy's error state is per thread: safe in a worker
+            batch = builder.build(frame)
+    except (TriageError, ArithmeticError, RuntimeWarning):
+        return None
+    design = dict(zip(builder.column_names, batch.x.T, strict=True))
+    return {**design, builder.spec.target: batch.y}
+
+
 def check_rows_left(counts: RowCounts, spec: ModelSpec) -> None:
     """Raise `DataError`, saying why, when a pass left no rows to fit."""
     if counts.used > 0:
@@ -459,15 +489,16 @@ def _fit(
         return QRAccumulator(len(builder.column_names), has_intercept=spec.intercept), RowCounts()
 
     def fold(part: tuple[QRAccumulator, RowCounts], frame: pl.DataFrame) -> None:
-        accumulator, part_counts = part
-        columns = builder.build_columns(frame)
-        if columns is not None and accumulator.update_columns(columns.predictors, columns.y):
-            part_counts.used += columns.n_rows
-            return
-        # Rows to drop (nulls, NaN, levels, domain) or weights: the batch's full build.
-        batch = builder.build(frame)
-        part_counts.add(batch)
-        accumulator.update(batch.x, batch.y, batch.weights)
+        with naming_values_too_large(builder, frame):
+            accumulator, part_counts = part
+            columns = builder.build_columns(frame)
+            if columns is not None and accumulator.update_columns(columns.predictors, columns.y):
+                part_counts.used += columns.n_rows
+                return
+            # Rows to drop (nulls, NaN, levels, domain) or weights: the batch's full build.
+            batch = builder.build(frame)
+            part_counts.add(batch)
+            accumulator.update(batch.x, batch.y, batch.weights)
 
     def merge(
         part: tuple[QRAccumulator, RowCounts], other: tuple[QRAccumulator, RowCounts]
@@ -490,6 +521,7 @@ def _fit(
             "drop terms, loosen `--where`, or use more rows (`--rows`)"
         )
         raise DataError(msg)
+    check_factor_scale(accumulator.factor, builder.column_names, spec.target)
     fit = accumulator.finalize(builder.column_names)
     if not fit.tss > 0:
         msg = (
