@@ -73,14 +73,15 @@ MEMORY_SHARE = 0.5
 def default_memory_limit() -> int:
     """Bytes a design may take by default: `MEMORY_SHARE` of the machine's memory.
 
-    A lower address-space limit on the process (``ulimit -v``) counts instead.
+    A lower address-space or data limit on the process (``ulimit -v``, ``-d``) counts instead.
     """
     import resource
 
     total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
-    soft, _ = resource.getrlimit(resource.RLIMIT_AS)
-    if soft != resource.RLIM_INFINITY:
-        total = min(total, soft)
+    for kind in (resource.RLIMIT_AS, resource.RLIMIT_DATA):
+        soft, _ = resource.getrlimit(kind)
+        if soft != resource.RLIM_INFINITY:
+            total = min(total, soft)
     return int(total * MEMORY_SHARE)
 
 
@@ -313,12 +314,13 @@ class PassPlan:
             is_full_pass=self.is_full_pass,
         )
 
-    def count_levels(self, tracker: ProgressTracker) -> dict[str, LevelTable] | None:
+    def count_levels(self, tracker: ProgressTracker, cap: int) -> dict[str, LevelTable] | None:
         """Count every level of the model's categoricals over every row, or None for a sample.
 
         A full pass reads only the categorical columns first (the filter's columns too),
         so its design has every level present and never drops a row as unseen. Rows the
-        user marked are counted: the coding is that of the rows under the filter.
+        user marked are counted: the coding is that of the rows under the filter. A column
+        stops being counted past `cap` levels (it is refused then, whatever its count).
         """
         columns = [t.column for t in self.spec.terms if t.kind == "categorical" and t.column]
         if self.sample is not None or not columns:
@@ -329,7 +331,7 @@ class PassPlan:
             counter.update(frame)
 
         return self.fold_frames(
-            lambda: LevelCounter(schema, columns),
+            lambda: LevelCounter(schema, columns, cap=cap),
             fold,
             LevelCounter.merge,
             RowCounts(),
@@ -348,11 +350,12 @@ class PassPlan:
             batch_rows=batch_rows_for(len(self.columns), FIT_BATCH_VALUES),
             n_workers=pass_workers(),
         )
+        cap = min(spec.max_levels, budget.max_columns())
         return DesignBuilder.learn(
             spec,
             self.source.schema(),
             self.learning_frame,
-            level_tables=self.count_levels(tracker),
+            level_tables=self.count_levels(tracker, cap),
             budget=budget,
         )
 
