@@ -302,17 +302,26 @@ class StreamingExport:
             return  # never entered
         self._handle = None
         try:
+            self._finish(handle, temporary, failed=exc_type is not None)
+        except BaseException:  # a signal or an error while finishing: leave no partial file
+            handle.close()
+            temporary.unlink(missing_ok=True)
+            raise
+
+    def _finish(self, handle: IO[bytes], temporary: Path, *, failed: bool) -> None:
+        """Close the file and move it into place, or remove it when the block `failed`."""
+        try:
             if self._writer is not None:
                 self._writer.close()  # writes the Parquet footer
             handle.close()
         except (OSError, pa.ArrowException) as close_error:
             handle.close()
             temporary.unlink(missing_ok=True)
-            if exc_type is None:
+            if not failed:
                 msg = f"cannot finish `{self._target.name}`: {close_error}"
                 raise ExportError(msg) from close_error
             return
-        if exc_type is not None:
+        if failed:
             temporary.unlink(missing_ok=True)
             return
         if self._schema is None:

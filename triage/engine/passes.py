@@ -32,7 +32,7 @@ from triage.results.progress import PassProgress
 if TYPE_CHECKING:
     from numpy.typing import NDArray
 
-    from triage._typing import SampleDesign
+    from triage._typing import Sampling
     from triage.core.levels import LevelTable
     from triage.core.spec import ModelSpec
     from triage.data.source import Batch, Sample, Source
@@ -155,7 +155,7 @@ class PassPlan:
         *,
         rows: int | None,
         seed: int,
-        design: SampleDesign,
+        sampling: Sampling,
         exclude_rows: Collection[int],
         extra_columns: Sequence[str] = (),
     ) -> PassPlan:
@@ -164,7 +164,7 @@ class PassPlan:
             _pass_columns(spec, extra_columns),
             n_rows=rows if rows is not None else LEARNING_SAMPLE_ROWS,
             seed=seed,
-            design=design,
+            sampling=sampling,
             where=_parse_where(source, spec),
         )
         streams = rows is None and not sample.is_whole
@@ -399,7 +399,7 @@ def fit_model(
     *,
     rows: int | None = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
-    design: SampleDesign = "groups",
+    sampling: Sampling = "groups",
     exclude_rows: Collection[int] = (),
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
@@ -416,7 +416,7 @@ def fit_model(
         Sample size; None streams every row in bounded memory.
     seed : int, default=0
         Seed of the sample.
-    design : {"groups", "uniform"}, default="groups"
+    sampling : {"groups", "uniform"}, default="groups"
         How the sample is drawn (see `Source.read_sample`).
     exclude_rows : collection of int
         Source positions to leave out (a what-if refit; the file is never changed).
@@ -444,7 +444,7 @@ def fit_model(
         )
     else:
         plan = PassPlan.read(
-            source, spec, rows=rows, seed=seed, design=design, exclude_rows=exclude_rows
+            source, spec, rows=rows, seed=seed, sampling=sampling, exclude_rows=exclude_rows
         )
     return _fit(plan, on_progress=on_progress, cancel=cancel)
 
@@ -509,7 +509,7 @@ def run_report(
     *,
     rows: int | None = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
-    design: SampleDesign = "groups",
+    sampling: Sampling = "groups",
     exclude_rows: Collection[int] = (),
     top_k: int = 20,
     by: Sequence[str] = (),
@@ -532,7 +532,7 @@ def run_report(
         spec,
         rows=rows,
         seed=seed,
-        design=design,
+        sampling=sampling,
         exclude_rows=exclude_rows,
         extra_columns=by,
     )

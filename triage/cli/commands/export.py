@@ -51,6 +51,7 @@ def run(args: argparse.Namespace) -> int:
     """Run `triage export`."""
     from triage.cli.options import open_source_from_args, spec_from_args
     from triage.cli.progress import StderrProgress
+    from triage.cli.signals import stop_event
     from triage.data.export import PERSONAL_DATA_NOTICE, check_output_path
     from triage.engine.export import export_all_rows, export_worst_rows
 
@@ -66,9 +67,10 @@ def run(args: argparse.Namespace) -> int:
                 args.out,
                 rows=args.rows,
                 seed=args.seed,
-                design=args.sample,
+                sampling=args.sample,
                 force=args.force,
                 on_progress=progress,
+                cancel=stop_event,
             )
         else:
             written, n_rows = export_worst_rows(
@@ -79,9 +81,10 @@ def run(args: argparse.Namespace) -> int:
                 criterion=args.by_criterion,
                 rows=args.rows,
                 seed=args.seed,
-                design=args.sample,
+                sampling=args.sample,
                 force=args.force,
                 on_progress=progress,
+                cancel=stop_event,
             )
     finally:
         progress.finish()
