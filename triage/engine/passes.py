@@ -21,12 +21,13 @@ from triage._typing import ALL_ROWS
 from triage.core.design import DesignBatch, DesignBudget, DesignBuilder
 from triage.core.filter import parse_filter
 from triage.core.levels import LevelCounter
+from triage.core.limits import check_column_values, check_factor_scale
 from triage.core.lsq import QRAccumulator
 from triage.data.source import ROW_INDEX
 from triage.engine.allocator import keep_batch_memory
 from triage.engine.progress import ProgressCallback, ProgressTracker, ReadAhead
 from triage.engine.workers import fold_in_order, pass_workers
-from triage.errors import DataError
+from triage.errors import DataError, TriageError
 from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
 from triage.results.progress import PassProgress
 
@@ -74,14 +75,15 @@ MEMORY_SHARE = 0.5
 def default_memory_limit() -> int:
     """Bytes a design may take by default: `MEMORY_SHARE` of the machine's memory.
 
-    A lower address-space limit on the process (``ulimit -v``) counts instead.
+    A lower address-space or data limit on the process (``ulimit -v``, ``-d``) counts instead.
     """
     import resource
 
     total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
-    soft, _ = resource.getrlimit(resource.RLIMIT_AS)
-    if soft != resource.RLIM_INFINITY:
-        total = min(total, soft)
+    for kind in (resource.RLIMIT_AS, resource.RLIMIT_DATA):
+        soft, _ = resource.getrlimit(kind)
+        if soft != resource.RLIM_INFINITY:
+            total = min(total, soft)
     return int(total * MEMORY_SHARE)
 
 
@@ -314,12 +316,13 @@ class PassPlan:
             is_full_pass=self.is_full_pass,
         )
 
-    def count_levels(self, tracker: ProgressTracker) -> dict[str, LevelTable] | None:
+    def count_levels(self, tracker: ProgressTracker, cap: int) -> dict[str, LevelTable] | None:
         """Count every level of the model's categoricals over every row, or None for a sample.
 
         A full pass reads only the categorical columns first (the filter's columns too),
         so its design has every level present and never drops a row as unseen. Rows the
-        user marked are counted: the coding is that of the rows under the filter.
+        user marked are counted: the coding is that of the rows under the filter. A column
+        stops being counted past `cap` levels (it is refused then, whatever its count).
         """
         columns = [t.column for t in self.spec.terms if t.kind == "categorical" and t.column]
         if self.sample is not None or not columns:
@@ -330,7 +333,7 @@ class PassPlan:
             counter.update(frame)
 
         return self.fold_frames(
-            lambda: LevelCounter(schema, columns),
+            lambda: LevelCounter(schema, columns, cap=cap),
             fold,
             LevelCounter.merge,
             RowCounts(),
@@ -349,11 +352,12 @@ class PassPlan:
             batch_rows=batch_rows_for(len(self.columns), FIT_BATCH_VALUES),
             n_workers=pass_workers(),
         )
+        cap = min(spec.max_levels, budget.max_columns())
         return DesignBuilder.learn(
             spec,
             self.source.schema(),
             self.learning_frame,
-            level_tables=self.count_levels(tracker),
+            level_tables=self.count_levels(tracker, cap),
             budget=budget,
         )
 
@@ -371,6 +375,35 @@ def _parse_where(source: Source, spec: ModelSpec) -> pl.Expr | None:
 def _pass_columns(spec: ModelSpec, extra_columns: Sequence[str]) -> list[str]:
     columns = list(spec.source_columns())
     return columns + [c for c in extra_columns if c not in columns]
+
+
+@contextlib.contextmanager
+def naming_values_too_large(builder: DesignBuilder, frame: pl.DataFrame) -> Iterator[None]:
+    """Turn a failure of the fit on a batch into an error naming a column too large to fit.
+
+    Values near the float limit overflow the fit's sums of squares, which shows up as a
+    floating-point warning or an error about non-finite values; the batch is then built
+    again, quietly, to find the column (or target) responsible. Other failures pass as
+    they were.
+    """
+    try:
+        yield
+    except (DataError, ArithmeticError, RuntimeWarning):
+        columns = _design_quietly(builder, frame)
+        if columns is not None:
+            check_column_values(columns)
+        raise
+
+
+def _design_quietly(builder: DesignBuilder, frame: pl.DataFrame) -> dict[str, np.ndarray] | None:
+    """Build `frame`'s design columns and target by label, or None if that fails too."""
+    try:
+        with np.errstate(all="ignore"):  # numpy's error state is per thread: safe in a worker
+            batch = builder.build(frame)
+    except (TriageError, ArithmeticError, RuntimeWarning):
+        return None
+    design = dict(zip(builder.column_names, batch.x.T, strict=True))
+    return {**design, builder.spec.target: batch.y}
 
 
 def check_rows_left(counts: RowCounts, spec: ModelSpec) -> None:
@@ -460,15 +493,16 @@ def _fit(
         return QRAccumulator(len(builder.column_names), has_intercept=spec.intercept), RowCounts()
 
     def fold(part: tuple[QRAccumulator, RowCounts], frame: pl.DataFrame) -> None:
-        accumulator, part_counts = part
-        columns = builder.build_columns(frame)
-        if columns is not None and accumulator.update_columns(columns.predictors, columns.y):
-            part_counts.used += columns.n_rows
-            return
-        # Rows to drop (nulls, NaN, levels, domain) or weights: the batch's full build.
-        batch = builder.build(frame)
-        part_counts.add(batch)
-        accumulator.update(batch.x, batch.y, batch.weights)
+        with naming_values_too_large(builder, frame):
+            accumulator, part_counts = part
+            columns = builder.build_columns(frame)
+            if columns is not None and accumulator.update_columns(columns.predictors, columns.y):
+                part_counts.used += columns.n_rows
+                return
+            # Rows to drop (nulls, NaN, levels, domain) or weights: the batch's full build.
+            batch = builder.build(frame)
+            part_counts.add(batch)
+            accumulator.update(batch.x, batch.y, batch.weights)
 
     def merge(
         part: tuple[QRAccumulator, RowCounts], other: tuple[QRAccumulator, RowCounts]
@@ -491,6 +525,7 @@ def _fit(
             "drop terms, loosen `--where`, or use more rows (`--rows`)"
         )
         raise DataError(msg)
+    check_factor_scale(accumulator.factor, builder.column_names, spec.target)
     fit = accumulator.finalize(builder.column_names)
     if not fit.tss > 0:
         msg = (
