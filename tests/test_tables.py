@@ -349,7 +349,7 @@ def test_cat_of_a_stray_text_column_still_fits_it_as_a_category(tmp_path: Path) 
     source = open_source(path)
     assert source.schema()["code"] == pl.Int64  # read as numbers: cat() makes a category
     spec = build_spec(source.schema(), target=None, terms="y ~ cat(code)")
-    outcome = fit_model(source, spec, rows=None)
+    outcome = fit_model(source, spec, rows=ALL_ROWS)
     assert outcome.builder.levels["code"] == ("0", "1", "2")
 
 
