@@ -122,7 +122,7 @@ def test_checks_curvature_on_sample_data_names_distance():
         max_levels=50,
         drop_invalid=False,
     )
-    outcome = fit_model(source, spec, rows=20_000, seed=0, design="uniform")
+    outcome = fit_model(source, spec, rows=20_000, seed=0, sampling="uniform")
     as_is = curvature_check_outcome(outcome, folds=3)
     assert as_is.predictors[0].predictor == "distance_km"
     # With the 40 rows recorded in seconds left in, they swamp the RMSE (the spline gains
