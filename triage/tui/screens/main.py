@@ -523,6 +523,8 @@ class MainScreen(Screen[None]):
             opened = None if self.head_start is None else self.head_start.take_opened(path)
             if opened is None:
                 opened = open_and_profile(path, csv=settings.csv, seed=settings.seed)
+            elif self.head_start is not None and self.head_start.plan_failure:
+                self.notify(self.head_start.plan_failure, severity="warning")
         except TriageError as error:
             self.post_message(PassFailed(0, str(error), "cannot open the data"))
             return
