@@ -266,6 +266,7 @@ async def test_tui_full_pass_reports_progress_stays_responsive_and_finishes(
         shown = str(pass_line.render())
         assert f"{pass_line.progress.rows_done:,}/" in shown
         assert "rows/s" in shown and "s left" in shown and "SAMPLE" in shown
+        assert "pass 1 of 2" in shown  # rows counted once per pass, the pass named
         # the app answers keys while the pass runs
         await press_id(pilot, "pane-spread")
         assert screen.front == "spread"

@@ -15,7 +15,6 @@ from __future__ import annotations
 import math
 import warnings
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
 from typing import TYPE_CHECKING, Final
 
 import numpy as np
@@ -23,6 +22,7 @@ import numpy as np
 from triage.core.holdout import kfold_rmse
 from triage.core.lsq import fit_arrays
 from triage.errors import DataError
+from triage.results.checks import CoefficientShift, CurvatureCheck, PredictorCurvature, RobustCheck
 
 if TYPE_CHECKING:
     from numpy.typing import ArrayLike, NDArray
@@ -30,10 +30,6 @@ if TYPE_CHECKING:
 __all__ = [
     "CURVATURE_GAIN_THRESHOLD",
     "ROBUST_SHIFT_THRESHOLD",
-    "CoefficientShift",
-    "CurvatureCheck",
-    "PredictorCurvature",
-    "RobustCheck",
     "curvature_check",
     "huber_refit",
 ]
@@ -58,51 +54,6 @@ chance on a large sample.
 
 SPLINE_KNOTS: Final = 5
 """Knots of the cubic spline basis (at quantiles of the predictor): 6 basis columns."""
-
-
-@dataclass(frozen=True)
-class CoefficientShift:
-    """One coefficient under the ordinary and the robust fit."""
-
-    name: str
-    """Design column name."""
-    ordinary: float
-    """Least-squares estimate on the sample."""
-    robust: float
-    """Huber estimate on the same rows."""
-    std_error: float
-    """Ordinary standard error."""
-    shift_se: float | None
-    """``(robust - ordinary) / std_error``; None when the standard error is not defined."""
-    is_flagged: bool
-    """Whether ``|shift_se|`` reaches the threshold."""
-
-
-@dataclass(frozen=True)
-class RobustCheck:
-    """The Huber refit beside the ordinary fit of the same sample rows."""
-
-    n: int
-    """Rows refitted."""
-    epsilon: float
-    """Huber's tuning constant used."""
-    scale: float
-    """Huber's estimate of the residual scale."""
-    n_downweighted: int
-    """Rows whose scaled residual exceeds `epsilon` (scikit-learn's ``outliers_``)."""
-    coefficients: tuple[CoefficientShift, ...]
-    """One entry per estimable design column, in design order."""
-    threshold: float
-    """Shift, in standard errors, at which a coefficient is flagged."""
-    converged: bool
-    """False when the optimizer stopped at its iteration cap (the figures are then rough)."""
-    notes: tuple[str, ...]
-    """Plain-language remarks."""
-
-    @property
-    def flagged(self) -> tuple[str, ...]:
-        """Names of the flagged coefficients."""
-        return tuple(c.name for c in self.coefficients if c.is_flagged)
 
 
 def huber_refit(
@@ -215,45 +166,6 @@ def huber_refit(
         converged=converged,
         notes=tuple(notes),
     )
-
-
-@dataclass(frozen=True)
-class PredictorCurvature:
-    """The curvature check of one predictor."""
-
-    predictor: str
-    """Source column."""
-    spline_rmse: float
-    """K-fold RMSE with the spline basis in place of the plain term."""
-    gain: float
-    """Model's K-fold RMSE minus `spline_rmse` (positive: the spline predicts better)."""
-    relative_gain: float
-    """`gain` as a share of the model's K-fold RMSE."""
-    relative_gain_given_top: float | None
-    """Relative gain of this spline added to the top predictor's spline; None for the top."""
-    is_flagged: bool
-    """Whether the relative gain reaches the threshold (given the top spline, for the others)."""
-
-
-@dataclass(frozen=True)
-class CurvatureCheck:
-    """Curvature check of every numeric predictor of a model, on the sample."""
-
-    n: int
-    """Rows used."""
-    folds: int
-    """Folds of the cross-validation."""
-    base_rmse: float
-    """K-fold RMSE of the model as written."""
-    predictors: tuple[PredictorCurvature, ...]
-    """One entry per predictor, largest gain first."""
-    threshold: float
-    """Relative gain at which a predictor is flagged."""
-
-    @property
-    def flagged(self) -> tuple[str, ...]:
-        """Predictors whose effect may be curved, largest gain first."""
-        return tuple(p.predictor for p in self.predictors if p.is_flagged)
 
 
 def spline_basis(values: ArrayLike, *, n_knots: int = SPLINE_KNOTS) -> NDArray[np.float64]:

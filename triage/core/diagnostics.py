@@ -22,7 +22,7 @@ from __future__ import annotations
 import itertools
 import math
 from collections.abc import Collection, Mapping
-from dataclasses import dataclass, field, fields
+from dataclasses import dataclass, field, replace
 from typing import TYPE_CHECKING, Final
 
 import numpy as np
@@ -41,29 +41,30 @@ from triage.core.residual_tests import (
     BreuschPaganAccumulator,
     DurbinWatsonAccumulator,
     ResetAccumulator,
-    ResidualTest,
     jarque_bera,
 )
 from triage.core.worst_rows import TopRows
 from triage.errors import SpecError
+from triage.results.diagnostics import (
+    Diagnostics,
+    Flag,
+    ResidualBin,
+    ResidualHistogram,
+    ResidualTest,
+    RobustStdErrors,
+    RowDiagnostics,
+    SegmentLevel,
+    ThresholdCounts,
+    WorstRow,
+)
 
 if TYPE_CHECKING:
     from triage.core.design import DesignBatch
     from triage.core.lsq import LinearFit
 
 __all__ = [
-    "Diagnostics",
     "DiagnosticsAccumulator",
     "DiagnosticsConfig",
-    "Flag",
-    "ResidualBin",
-    "ResidualHistogram",
-    "ResidualTest",
-    "RobustStdErrors",
-    "RowDiagnostics",
-    "SegmentLevel",
-    "ThresholdCounts",
-    "WorstRow",
     "default_config",
     "row_diagnostics",
 ]
@@ -115,52 +116,6 @@ _BIN_QUANTILES: Final = (0.1, 0.5, 0.9)
 # --------------------------------------------------------------------------- per-row values
 
 
-@dataclass(frozen=True, eq=False)
-class RowDiagnostics:
-    """Per-row diagnostics of design rows under a fit.
-
-    Attributes
-    ----------
-    rows : ndarray of shape (n,)
-        Row positions in the source.
-    fitted : ndarray of shape (n,)
-        Fitted values.
-    resid : ndarray of shape (n,)
-        ``y - fitted``.
-    weighted_resid : ndarray of shape (n,)
-        ``√w·(y - fitted)``; the same array as `resid` for an unweighted fit.
-    leverage : ndarray of shape (n,)
-        Hat values of the (whitened) design.
-    student_internal : ndarray of shape (n,)
-        ``weighted_resid / (s √(1 - h))`` with ``s`` the fit's residual SD.
-    studentized : ndarray of shape (n,)
-        Externally studentized: as above with the leave-one-out SD
-        ``s_(i)² = (RSS - e_i²/(1 - h_i)) / (df_resid - 1)``.
-    cooks : ndarray of shape (n,)
-        Cook's distance ``student_internal² h / (p (1 - h))``, ``p`` the rank of the design.
-
-    Notes
-    -----
-    Studentized values and Cook's distance are NaN where ``h`` is 1 (see
-    `LEVERAGE_ONE_TOLERANCE`), where the fit has no residual spread, and (external only) where
-    fewer than 2 residual degrees of freedom are left.
-    """
-
-    rows: IntArray
-    fitted: FloatArray
-    resid: FloatArray
-    weighted_resid: FloatArray
-    leverage: FloatArray
-    student_internal: FloatArray
-    studentized: FloatArray
-    cooks: FloatArray
-
-    def take(self, indices: ArrayLike) -> RowDiagnostics:
-        """Return the diagnostics of the rows at `indices` (indices into these arrays)."""
-        picked = np.asarray(indices, dtype=np.intp)
-        return RowDiagnostics(**{f.name: getattr(self, f.name)[picked] for f in fields(self)})
-
-
 def _rank(fit: LinearFit) -> int:
     """Return the number of estimated (not aliased) coefficients."""
     return len(fit.names) - len(fit.aliased)
@@ -203,10 +158,13 @@ def _row_values(
         student_internal=internal,
         studentized=external,
         cooks=cooks,
+        in_fit=np.ones(h.size, dtype=np.bool_),
     )
 
 
-def row_diagnostics(fit: LinearFit, batch: DesignBatch) -> RowDiagnostics:
+def row_diagnostics(
+    fit: LinearFit, batch: DesignBatch, in_fit: NDArray[np.bool_] | None = None
+) -> RowDiagnostics:
     """Compute fitted values, residuals, leverage, studentized residuals and Cook's distance.
 
     Parameters
@@ -215,6 +173,9 @@ def row_diagnostics(fit: LinearFit, batch: DesignBatch) -> RowDiagnostics:
         The fit of pass 1.
     batch : DesignBatch
         Design rows built by the same builder as the fit's.
+    in_fit : ndarray of bool, optional
+        Per row of the batch, True when the row was among the fit's rows; rows outside are
+        scored as new observations (see `RowDiagnostics`). By default every row is in.
 
     Returns
     -------
@@ -225,7 +186,31 @@ def row_diagnostics(fit: LinearFit, batch: DesignBatch) -> RowDiagnostics:
     --------
     DiagnosticsAccumulator : the same values summarised over a whole pass.
     """
-    return _row_values(fit, fit.to_shifted(batch.x), batch.y, batch.weights, batch.rows)
+    values = _row_values(fit, fit.to_shifted(batch.x), batch.y, batch.weights, batch.rows)
+    if in_fit is None or bool(np.all(in_fit)):
+        return values
+    outside = ~np.asarray(in_fit, dtype=np.bool_)
+    h0 = values.leverage[outside]
+    s = fit.resid_sd
+    with np.errstate(divide="ignore", invalid="ignore"):
+        predicted = values.weighted_resid[outside] / (s * np.sqrt(1.0 + h0))
+    if not (s > 0.0 and math.isfinite(s)):
+        predicted = np.full(h0.size, np.nan)
+    internal, external, cooks = (
+        values.student_internal.copy(),
+        values.studentized.copy(),
+        values.cooks.copy(),
+    )
+    internal[outside] = predicted
+    external[outside] = predicted
+    cooks[outside] = np.nan
+    return replace(
+        values,
+        student_internal=internal,
+        studentized=external,
+        cooks=cooks,
+        in_fit=~outside,
+    )
 
 
 # --------------------------------------------------------------------------- configuration
@@ -408,148 +393,6 @@ def default_config(
 
 
 # --------------------------------------------------------------------------- results
-
-
-@dataclass(frozen=True, eq=False)
-class ResidualHistogram:
-    """Counts of weighted residuals on `edges`, tails, extremes and quantiles."""
-
-    edges: FloatArray
-    """Bin edges; bin k is ``[edges[k], edges[k + 1])``, the last one closed."""
-    counts: IntArray
-    """Residuals per bin."""
-    below: int
-    """Residuals below the first edge."""
-    above: int
-    """Residuals above the last edge."""
-    minimum: float
-    """Smallest residual (NaN when empty)."""
-    maximum: float
-    """Largest residual (NaN when empty)."""
-    quantiles: dict[float, float]
-    """Probability -> quantile from the fine grid, within one fine bin of the exact value
-    inside ±8 SD (rough beyond: see `triage.core.binning`)."""
-
-
-@dataclass(frozen=True)
-class ResidualBin:
-    """Residuals of the rows whose binned variable falls in ``[lo, hi)``."""
-
-    lo: float
-    """Lower edge (the smallest value seen, if below the first edge, for the first bin)."""
-    hi: float
-    """Upper edge (the largest value seen, if above the last edge, for the last bin)."""
-    n: int
-    """Rows in the bin."""
-    x_mean: float
-    """Mean of the binned variable in the bin (NaN when empty)."""
-    mean_resid: float
-    """Mean weighted residual (NaN when empty)."""
-    q10: float
-    """10% quantile of the weighted residuals, from the fine grid."""
-    q50: float
-    """Median."""
-    q90: float
-    """90% quantile."""
-
-
-@dataclass(frozen=True)
-class WorstRow:
-    """One row of a worst-rows list."""
-
-    row: int
-    """Position in the source."""
-    fitted: float
-    resid: float
-    """``y - fitted``."""
-    weighted_resid: float
-    """``√w·(y - fitted)``; the ranking value of ``abs_resid`` (equal to `resid` unweighted)."""
-    studentized: float
-    """Externally studentized residual."""
-    leverage: float
-    cooks: float
-    """Cook's distance."""
-
-
-@dataclass(frozen=True)
-class SegmentLevel:
-    """Weighted residuals of one level (or bin) of a segment column."""
-
-    level: str
-    """The level as text, ``"(missing)"`` for nulls, ``"(other)"`` for pooled levels, or an
-    interval such as ``"[2.5, 4)"`` for a numeric column."""
-    n: int
-    mean_resid: float
-    rmse: float
-    """Root mean square residual in the level."""
-    t: float
-    """``mean / (sd / √n)``: the mean residual in standard-error units (NaN below 2 rows)."""
-
-
-@dataclass(frozen=True)
-class RobustStdErrors:
-    """Heteroscedasticity-consistent standard errors of one coefficient (NaN if aliased)."""
-
-    hc0: float
-    hc1: float
-    """HC0 scaled by ``n / (n - p)``."""
-    hc2: float
-    """Squared residuals divided by ``1 - h``."""
-    hc3: float
-    """Squared residuals divided by ``(1 - h)²``."""
-
-
-@dataclass(frozen=True)
-class ThresholdCounts:
-    """Rows beyond the common-practice thresholds used by the flags (exact counts)."""
-
-    studentized: int
-    """Rows with ``|studentized| > 3``."""
-    leverage: int
-    """Rows with leverage above `leverage_threshold`."""
-    leverage_threshold: float
-    """``2 p / n`` with ``p`` the rank and ``n`` the rows of the fit."""
-    cooks: int
-    """Rows with Cook's distance above `cooks_threshold`."""
-    cooks_threshold: float
-    """``4 / n``."""
-
-
-@dataclass(frozen=True)
-class Flag:
-    """A plain-word hint that something may deserve a look; never a verdict."""
-
-    code: str
-    """Stable identifier, e.g. ``"spread-changes"``."""
-    message: str
-    """One or two sentences naming the rule behind the hint."""
-
-
-@dataclass(frozen=True, eq=False)
-class Diagnostics:
-    """Everything pass 2 found; plain values ready for text, JSON or a screen."""
-
-    n: int
-    """Rows seen in pass 2."""
-    histogram: ResidualHistogram
-    binned: dict[str, tuple[ResidualBin, ...]]
-    """``"fitted"`` and each numeric predictor -> bins in ascending order."""
-    worst: dict[Criterion, tuple[WorstRow, ...]]
-    """Criterion -> rows, worst first (ties: lower row position first)."""
-    segments: dict[str, tuple[SegmentLevel, ...]]
-    """Segment column -> levels by ``|t|`` descending (NaN last); empty levels left out."""
-    segments_capped: tuple[str, ...]
-    """Segment columns that had more levels than `max_segment_levels`."""
-    tests: dict[str, ResidualTest]
-    """``breusch_pagan``, ``reset``, ``jarque_bera``, ``durbin_watson``."""
-    robust_se: dict[str, RobustStdErrors]
-    """Coefficient name -> HC0–HC3 standard errors."""
-    counts: ThresholdCounts
-    resid_skewness: float
-    """Moment skewness of the weighted residuals."""
-    resid_kurtosis: float
-    """Moment kurtosis of the weighted residuals (3 for a normal)."""
-    flags: tuple[Flag, ...]
 
 
 # --------------------------------------------------------------------------- accumulator parts

@@ -34,6 +34,7 @@ import polars as pl
 
 from triage.core.lsq import QRAccumulator, fit_arrays
 from triage.errors import DataError, SpecError
+from triage.results.holdout import HoldoutScore, KFoldResult
 
 if TYPE_CHECKING:
     from numpy.typing import ArrayLike, NDArray
@@ -41,8 +42,6 @@ if TYPE_CHECKING:
 __all__ = [
     "HoldoutAccumulator",
     "HoldoutRule",
-    "HoldoutScore",
-    "KFoldResult",
     "cut_holdout_mask",
     "kfold_rmse",
     "random_holdout_mask",
@@ -160,22 +159,6 @@ def _cast_cut(values: pl.Series, cut: object) -> pl.Series:
         raise SpecError(msg) from error
 
 
-@dataclass(frozen=True)
-class HoldoutScore:
-    """How well one coefficient vector predicts the held-out rows."""
-
-    n: int
-    """Held-out rows scored."""
-    sse: float
-    """Sum of (weighted) squared prediction errors."""
-    sst: float
-    """Sum of (weighted) squares of the target about its held-out mean."""
-    r2: float
-    """``1 - sse / sst``; NaN when the held-out target is constant or no rows were held out."""
-    rmse: float
-    """``sqrt(sse / sum(w))``; NaN when no rows were held out."""
-
-
 class HoldoutAccumulator:
     """Streaming, mergeable factor of the held-out rows, able to score any coefficients.
 
@@ -290,21 +273,6 @@ class HoldoutAccumulator:
         sum_w = float(factor.r[0, 0] ** 2)
         r2 = 1.0 - sse / sst if sst > 0.0 else math.nan
         return HoldoutScore(self.n_rows, sse, sst, r2, math.sqrt(sse / sum_w))
-
-
-@dataclass(frozen=True)
-class KFoldResult:
-    """Cross-validated prediction error of one design on an in-memory sample."""
-
-    folds: int
-    """Number of folds."""
-    fold_rmse: tuple[float, ...]
-    """RMSE on each held-out fold, from a fit on the other folds."""
-
-    @property
-    def rmse(self) -> float:
-        """Mean of the per-fold RMSEs (scikit-learn's ``cross_val_score`` convention)."""
-        return float(np.mean(self.fold_rmse))
 
 
 def kfold_rmse(

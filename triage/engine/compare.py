@@ -11,20 +11,17 @@ from __future__ import annotations
 
 import threading
 from collections.abc import Collection, Sequence
-from dataclasses import dataclass
 from typing import TYPE_CHECKING, Final
 
 import numpy as np
 import polars as pl
 
-from triage.core.checks import CurvatureCheck, RobustCheck, curvature_check, huber_refit
-from triage.core.compare import Comparison, compare_fits
+from triage.core.checks import curvature_check, huber_refit
+from triage.core.compare import compare_fits
 from triage.core.design import DesignBatch, DesignBuilder
 from triage.core.holdout import (
     HoldoutAccumulator,
     HoldoutRule,
-    HoldoutScore,
-    KFoldResult,
     cut_holdout_mask,
     kfold_rmse,
     random_holdout_mask,
@@ -32,16 +29,13 @@ from triage.core.holdout import (
 from triage.core.lsq import QRAccumulator
 from triage.data.base import random_keys
 from triage.data.source import ROW_INDEX
-from triage.engine.passes import (
-    DEFAULT_SAMPLE_ROWS,
-    DataSummary,
-    FitOutcome,
-    PassPlan,
-    RowCounts,
-    check_rows_left,
-)
+from triage.engine.passes import DEFAULT_SAMPLE_ROWS, PassPlan, RowCounts, check_rows_left
 from triage.engine.progress import ProgressCallback, ProgressTracker
 from triage.errors import SpecError
+from triage.results.checks import CurvatureCheck, RobustCheck
+from triage.results.compare import ComparedModel, ComparisonOutcome
+from triage.results.fit import FitOutcome
+from triage.results.holdout import KFoldResult
 
 if TYPE_CHECKING:
     from triage._typing import SampleDesign
@@ -49,8 +43,6 @@ if TYPE_CHECKING:
     from triage.data.source import Source
 
 __all__ = [
-    "ComparedModel",
-    "ComparisonOutcome",
     "compare_models",
     "curvature_check_outcome",
     "robust_check_outcome",
@@ -63,41 +55,6 @@ A uniform sample keeps the rows with the smallest `random_keys` under the user's
 with the same keys the sample would be exactly the held-out rows. (The constant is the
 fractional part of sqrt(2) in hex, a number with no structure of its own.)
 """
-
-
-@dataclass(frozen=True)
-class ComparedModel:
-    """One model of a comparison: its fit on the rows not held out, and its held-out scores."""
-
-    label: str
-    """The terms as written."""
-    outcome: FitOutcome
-    """The fit, its builder and the rows it used; `sample` holds the sample rows every model
-    could use (the rows the K-fold RMSE, robust refit and curvature check run on)."""
-    holdout: HoldoutScore | None
-    """Score on the held-out rows, or None without a held-out rule."""
-    cv: KFoldResult | None
-    """K-fold RMSE on the sample's rows not held out, or None with too few rows."""
-
-
-@dataclass(frozen=True)
-class ComparisonOutcome:
-    """Several models fitted to the same rows, compared."""
-
-    models: tuple[ComparedModel, ...]
-    """In the order given."""
-    comparison: Comparison
-    """Criteria, nested F tests and best marks."""
-    data: DataSummary
-    """The rows every model could use; `rows_used` counts the rows fitted (not held out)."""
-    holdout_rule: HoldoutRule | None
-    """How rows were held out, if they were."""
-    rows_held_out: int
-    """Rows scored but not fitted."""
-    rows_without_cut: int
-    """Rows left out of both parts because the held-out-by column was missing."""
-    folds: int
-    """Folds of the K-fold RMSE."""
 
 
 def _check_same_rows_spec(specs: Sequence[ModelSpec]) -> None:

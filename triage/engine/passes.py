@@ -6,30 +6,37 @@ cancel, checks the event between batches, and raises `PassCancelled` within one 
 
 from __future__ import annotations
 
-import functools
+import contextlib
+import os
 import threading
 import time
-from collections.abc import Callable, Collection, Iterator, Sequence
+from collections.abc import Callable, Collection, Generator, Iterator, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, TypeVar
 
 import numpy as np
 import polars as pl
 
-from triage.core.design import DesignBatch, DesignBuilder
+from triage.core.design import DesignBatch, DesignBudget, DesignBuilder
 from triage.core.filter import parse_filter
-from triage.core.lsq import LinearFit, QRAccumulator
+from triage.core.levels import LevelCounter
+from triage.core.lsq import QRAccumulator
 from triage.data.source import ROW_INDEX
 from triage.engine.allocator import keep_batch_memory
-from triage.engine.progress import PassProgress, ProgressCallback, ProgressTracker, ReadAhead
-from triage.engine.workers import BatchWorkers, fold_in_order
+from triage.engine.progress import ProgressCallback, ProgressTracker, ReadAhead
+from triage.engine.workers import fold_in_order, pass_workers
 from triage.errors import DataError
+from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
+from triage.results.progress import PassProgress
 
 if TYPE_CHECKING:
+    from numpy.typing import NDArray
+
     from triage._typing import SampleDesign
-    from triage.core.diagnostics import Diagnostics, RowDiagnostics
+    from triage.core.levels import LevelTable
     from triage.core.spec import ModelSpec
     from triage.data.source import Batch, Sample, Source
+    from triage.results.diagnostics import Diagnostics, RowDiagnostics
 
 S = TypeVar("S")
 
@@ -59,57 +66,28 @@ MiB peak with `BATCH_VALUES` (batches of 62,500 rows), 5.0 s and 725 MiB with th
 """
 
 
+MEMORY_SHARE = 0.5
+"""Share of the machine's memory (or of the process's address-space limit) a design may take."""
+
+
+def default_memory_limit() -> int:
+    """Bytes a design may take by default: `MEMORY_SHARE` of the machine's memory.
+
+    A lower address-space limit on the process (``ulimit -v``) counts instead.
+    """
+    import resource
+
+    total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    soft, _ = resource.getrlimit(resource.RLIMIT_AS)
+    if soft != resource.RLIM_INFINITY:
+        total = min(total, soft)
+    return int(total * MEMORY_SHARE)
+
+
 def batch_rows_for(n_columns: int, values: int = BATCH_VALUES) -> int:
     """Rows per batch when reading `n_columns` columns: a power of two, 4,096 to `BATCH_ROWS`."""
     rows = max(values // max(n_columns, 1), 4_096)
     return min(BATCH_ROWS, 1 << (rows.bit_length() - 1))
-
-
-@dataclass(frozen=True)
-class DataSummary:
-    """Which rows a result was computed on, and why the others were left out."""
-
-    source: str
-    rows_in_source: int | None
-    rows_read: int
-    rows_filtered_out: int
-    rows_dropped_missing: int
-    rows_dropped_domain: int
-    rows_dropped_unseen_level: int
-    rows_excluded: int
-    rows_used: int
-    sample: str | None
-    """None when every row was read, else how the sample was drawn."""
-    sample_warning: str | None
-    is_full_pass: bool
-
-    @property
-    def rows_dropped(self) -> int:
-        """Rows left out for missing values, domain errors or unseen levels."""
-        return self.rows_dropped_missing + self.rows_dropped_domain + self.rows_dropped_unseen_level
-
-
-@dataclass(frozen=True)
-class FitOutcome:
-    """A fitted model together with what it was fitted on."""
-
-    spec: ModelSpec
-    builder: DesignBuilder
-    fit: LinearFit
-    data: DataSummary
-    sample: pl.DataFrame
-    """The in-memory sample the builder learned from (and the quick fit used).
-
-    Empty after `fit_model` streamed every row of a model with nothing to learn.
-    """
-
-
-@dataclass(frozen=True)
-class ReportOutcome:
-    """A fit and its residual diagnostics, computed on the same rows."""
-
-    outcome: FitOutcome
-    diagnostics: Diagnostics
 
 
 @dataclass
@@ -211,17 +189,28 @@ class PassPlan:
         return frame.filter(pl.Series(keep))
 
     def frames(
-        self, counts: RowCounts, tracker: ProgressTracker, *, batch_values: int = BATCH_VALUES
-    ) -> Iterator[pl.DataFrame]:
-        """Yield the filtered frames of the pass, counting rows and reporting progress."""
-        step = batch_rows_for(len(self.columns), batch_values)
+        self,
+        counts: RowCounts,
+        tracker: ProgressTracker,
+        *,
+        batch_values: int = BATCH_VALUES,
+        columns: Sequence[str] | None = None,
+        drop_marked: bool = True,
+    ) -> Generator[pl.DataFrame, None, None]:
+        """Yield the filtered frames of the pass, counting rows and reporting progress.
+
+        `columns` reads other columns than the plan's (a first read of the categoricals);
+        `drop_marked=False` keeps the rows the user marked.
+        """
+        columns = self.columns if columns is None else list(columns)
+        step = batch_rows_for(len(columns), batch_values)
         if self.sample is None:
-            batches = self.source.scan_batches(self.columns, where=self.where, batch_rows=step)
+            batches = self.source.scan_batches(columns, where=self.where, batch_rows=step)
             for batch in ReadAhead(iter(batches)):
                 counts.read = batch.rows_read
                 counts.kept_by_filter += batch.frame.height
                 tracker.advance(batch.rows_read)
-                yield self._drop_excluded(batch.frame, counts)
+                yield self._drop_excluded(batch.frame, counts) if drop_marked else batch.frame
             return
         frame = self.sample.frame
         counts.read = self.sample.rows_read
@@ -241,27 +230,42 @@ class PassPlan:
         tracker: ProgressTracker,
         *,
         batch_values: int = BATCH_VALUES,
+        columns: Sequence[str] | None = None,
+        drop_marked: bool = True,
     ) -> S:
         """Fold the pass's frames into parts on worker threads and merge the parts into one.
 
         A full pass over a source that splits (`Source.scan_parts`) reads and folds its
         parts at the same time, each in one thread, and merges them in source order
-        (`fold_in_order`). Otherwise the frames are read ahead and dealt out to the workers
-        in turn (`BatchWorkers`). Either way the result does not depend on timing.
+        (`fold_in_order`). Otherwise the frames are read ahead on one thread and each is
+        folded by the next free worker into a part of its own; the parts merge in frame
+        order. Either way the result depends neither on timing nor on the number of workers.
+        `columns` and `drop_marked` are as for `frames`.
         """
+        columns = self.columns if columns is None else list(columns)
         parts: Sequence[Callable[[], Iterator[Batch]]] = ()
         if self.sample is None:
             parts = self.source.scan_parts(
-                self.columns,
-                where=self.where,
-                batch_rows=batch_rows_for(len(self.columns), batch_values),
+                columns, where=self.where, batch_rows=batch_rows_for(len(columns), batch_values)
             )
         if len(parts) < 2:
-            with BatchWorkers(new_part, fold) as workers:
-                for frame in self.frames(counts, tracker, batch_values=batch_values):
-                    workers.submit(frame)
-                states = workers.finish()
-            return functools.reduce(merge, states)
+
+            def fold_frame(frame: pl.DataFrame, stopping: threading.Event) -> S:
+                state = new_part()
+                fold(state, frame)
+                return state
+
+            with contextlib.closing(
+                self.frames(
+                    counts,
+                    tracker,
+                    batch_values=batch_values,
+                    columns=columns,
+                    drop_marked=drop_marked,
+                )
+            ) as frames:
+                merged = fold_in_order(frames, fold_frame, merge, wait=tracker.check)
+            return new_part() if merged is None else merged
         part_counts = [RowCounts() for _ in parts]
 
         def fold_part(k: int, stopping: threading.Event) -> S:
@@ -272,13 +276,15 @@ class PassPlan:
                 tracker.check()  # a cancel stops each worker within one batch
                 k_counts.read = batch.rows_read
                 k_counts.kept_by_filter += batch.frame.height
-                fold(state, self._drop_excluded(batch.frame, k_counts))
+                frame = batch.frame
+                fold(state, self._drop_excluded(frame, k_counts) if drop_marked else frame)
             return state
 
         def report() -> None:
             tracker.advance(sum(c.read for c in part_counts))
 
-        merged = fold_in_order(len(parts), fold_part, merge, wait=report)
+        merged = fold_in_order(range(len(parts)), fold_part, merge, wait=report)
+        assert merged is not None  # there are at least two parts
         for k_counts in part_counts:
             counts.absorb(k_counts)
         tracker.advance(counts.read, force=True)
@@ -305,6 +311,49 @@ class PassPlan:
             sample=None if sample is None else sample.description,
             sample_warning=None if sample is None else sample.warning,
             is_full_pass=self.is_full_pass,
+        )
+
+    def count_levels(self, tracker: ProgressTracker) -> dict[str, LevelTable] | None:
+        """Count every level of the model's categoricals over every row, or None for a sample.
+
+        A full pass reads only the categorical columns first (the filter's columns too),
+        so its design has every level present and never drops a row as unseen. Rows the
+        user marked are counted: the coding is that of the rows under the filter.
+        """
+        columns = [t.column for t in self.spec.terms if t.kind == "categorical" and t.column]
+        if self.sample is not None or not columns:
+            return None
+        schema = self.source.schema()
+
+        def fold(counter: LevelCounter, frame: pl.DataFrame) -> None:
+            counter.update(frame)
+
+        return self.fold_frames(
+            lambda: LevelCounter(schema, columns),
+            fold,
+            LevelCounter.merge,
+            RowCounts(),
+            tracker,
+            batch_values=FIT_BATCH_VALUES,
+            columns=columns,
+            drop_marked=False,
+        ).finalize()
+
+    def learn(self, tracker: ProgressTracker) -> DesignBuilder:
+        """Learn the design: levels over every row of a full pass, within the memory limit."""
+        spec = self.spec
+        limit = spec.max_memory if spec.max_memory is not None else default_memory_limit()
+        budget = DesignBudget(
+            limit_bytes=limit,
+            batch_rows=batch_rows_for(len(self.columns), FIT_BATCH_VALUES),
+            n_workers=pass_workers(),
+        )
+        return DesignBuilder.learn(
+            spec,
+            self.source.schema(),
+            self.learning_frame,
+            level_tables=self.count_levels(tracker),
+            budget=budget,
         )
 
     def rows_total(self) -> int | None:
@@ -404,7 +453,7 @@ def _fit(
     cancel: threading.Event | None,
 ) -> FitOutcome:
     spec = plan.spec
-    builder = DesignBuilder.learn(spec, plan.source.schema(), plan.learning_frame)
+    builder = plan.learn(ProgressTracker(None, cancel=cancel))
 
     def new_part() -> tuple[QRAccumulator, RowCounts]:
         return QRAccumulator(len(builder.column_names), has_intercept=spec.intercept), RowCounts()
@@ -470,9 +519,9 @@ def run_report(
 
     Parameters are those of `fit_model`, plus `top_k` (rows kept per worst-row list), `by`
     (columns to break residuals down by) and `is_ordered` (rows are in a meaningful order,
-    so serial-correlation flags apply). Progress runs from 0 to 1 over both passes when every
-    row is streamed. `on_fit`, if given, receives the fit as soon as pass 1 ends, so a screen
-    can show it while pass 2 runs.
+    so serial-correlation flags apply). Progress counts each row once per pass and says which
+    pass it is ("pass 2 of 2"); its time left covers both passes. `on_fit`, if given,
+    receives the fit as soon as pass 1 ends, so a screen can show it while pass 2 runs.
     """
     _check_segment_columns(source, spec, by)
     plan = PassPlan.read(
@@ -484,23 +533,21 @@ def run_report(
         exclude_rows=exclude_rows,
         extra_columns=by,
     )
-    total = plan.rows_total()
-
     started = time.perf_counter()
 
-    def as_part_of_both(offset: int) -> ProgressCallback | None:
-        """Report one pass's progress as part of both passes (rows done out of twice the rows)."""
+    def as_pass_of_two(number: int) -> ProgressCallback | None:
+        """Report one pass's progress as pass `number` of 2, with the time left for both."""
         if on_progress is None:
             return None
         callback = on_progress
 
         def report(progress: PassProgress) -> None:
             elapsed = time.perf_counter() - started
-            callback(_two_pass_progress(progress, offset, total, elapsed))
+            callback(_pass_of_two(progress, number, elapsed))
 
         return report
 
-    outcome = _fit(plan, on_progress=as_part_of_both(0), cancel=cancel)
+    outcome = _fit(plan, on_progress=as_pass_of_two(1), cancel=cancel)
     if on_fit is not None:
         on_fit(outcome)
     diagnostics = _diagnose(
@@ -509,26 +556,30 @@ def run_report(
         top_k=top_k,
         by=by,
         is_ordered=is_ordered,
-        on_progress=as_part_of_both(total or 0),
+        on_progress=as_pass_of_two(2),
         cancel=cancel,
     )
     return ReportOutcome(outcome, diagnostics)
 
 
-def _two_pass_progress(
-    progress: PassProgress, offset: int, total: int | None, elapsed_s: float
-) -> PassProgress:
-    """Shift one pass's progress by `offset` rows, out of `2 * total` rows for both passes.
+def _pass_of_two(progress: PassProgress, number: int, elapsed_s: float) -> PassProgress:
+    """Label one pass's progress as pass `number` of two; the time left covers both passes.
 
-    `elapsed_s` counts from the start of the first pass, so the speed and time left cover
-    both passes.
+    Rows are counted once per pass, at this pass's speed; before pass 2 starts its rows are
+    assumed to go as fast as pass 1's. `elapsed_s` counts from the start of the first pass.
     """
-    if total is None:
-        return progress
-    done = offset + progress.rows_done
-    speed = done / elapsed_s if elapsed_s > 0 else 0.0
-    eta = (2 * total - done) / speed if speed > 0 else None
-    return PassProgress(done, 2 * total, elapsed_s, speed, eta)
+    eta = progress.eta_s
+    if eta is not None and number == 1 and progress.rows_per_s > 0 and progress.rows_total:
+        eta += progress.rows_total / progress.rows_per_s
+    return PassProgress(
+        progress.rows_done,
+        progress.rows_total,
+        elapsed_s,
+        progress.rows_per_s,
+        eta,
+        pass_number=number,
+        n_passes=2,
+    )
 
 
 def _check_segment_columns(source: Source, spec: ModelSpec, by: Sequence[str]) -> None:
@@ -582,18 +633,47 @@ def _diagnose(
 
 
 def diagnose_rows(
-    source: Source, outcome: FitOutcome, positions: Sequence[int]
+    source: Source,
+    outcome: FitOutcome,
+    positions: Sequence[int],
+    *,
+    exclude_rows: Collection[int] = (),
 ) -> tuple[pl.DataFrame, RowDiagnostics]:
     """Read the full original rows at `positions` and compute their diagnostics under the fit.
 
     Rows the model cannot use (a missing value, an unseen level) come back in the frame
-    but not in the diagnostics; match the two on `ROW_INDEX`.
+    but not in the diagnostics; match the two on `ROW_INDEX`. A row the fit did not use
+    (outside its filter, among `exclude_rows`, or outside the sample of a sample fit) is
+    scored as a new observation: see `RowDiagnostics.in_fit`.
     """
     from triage.core.diagnostics import row_diagnostics
 
     frame = source.read_rows(list(positions))
     batch = outcome.builder.build(frame.select([*outcome.spec.source_columns(), ROW_INDEX]))
-    return frame, row_diagnostics(outcome.fit, batch)
+    inside = rows_in_fit(source, outcome, frame, exclude_rows)
+    in_fit = np.isin(batch.rows, frame[ROW_INDEX].to_numpy()[inside])
+    return frame, row_diagnostics(outcome.fit, batch, in_fit)
+
+
+def rows_in_fit(
+    source: Source, outcome: FitOutcome, frame: pl.DataFrame, exclude_rows: Collection[int] = ()
+) -> NDArray[np.bool_]:
+    """Return, per row of `frame` (every column plus `ROW_INDEX`), whether the fit used it.
+
+    A row is in the fit when it passes the model's filter, is not among `exclude_rows` and,
+    for a fit on a sample, was drawn into that sample. Rows with a missing value are never
+    in a design batch, so they are not asked about.
+    """
+    rows = frame[ROW_INDEX].to_numpy()
+    inside: NDArray[np.bool_] = np.ones(rows.size, dtype=np.bool_)
+    where = _parse_where(source, outcome.spec)
+    if where is not None and rows.size:
+        inside &= frame.select(where.fill_null(value=False)).to_series().to_numpy()
+    if exclude_rows:
+        inside &= ~np.isin(rows, np.fromiter(exclude_rows, dtype=np.int64))
+    if not outcome.data.is_full_pass:
+        inside &= np.isin(rows, outcome.sample[ROW_INDEX].to_numpy())
+    return inside
 
 
 def iter_row_diagnostics(

@@ -25,7 +25,7 @@ if TYPE_CHECKING:
 
     from triage.core.spec import ModelSpec
     from triage.data.source import CsvOptions, Source
-    from triage.engine.passes import FitOutcome, ReportOutcome
+    from triage.results.fit import FitOutcome, ReportOutcome
     from triage.tui.settings import Settings
 
 PROFILE_ROWS: Final = 20_000
@@ -189,6 +189,7 @@ class HeadStart:
                 design=settings.sample_design,
                 top_k=settings.top_k,
                 by=self._planned.by,
+                is_ordered=settings.is_ordered,
                 cancel=self._cancel,
                 on_fit=self._fit.set_result,
             )

@@ -58,5 +58,7 @@ class Settings:
     """The user's keymap file; None means `keymap.toml` in the configuration directory."""
     top_k: int = 50
     """Rows kept per worst-row list."""
+    is_ordered: bool = False
+    """Row order means something (time order): judge serial correlation and trends."""
     is_colorless: bool = field(default_factory=lambda: bool(os.environ.get("NO_COLOR")))
     """Draw without colour (set when the `NO_COLOR` environment variable is non-empty)."""

@@ -13,9 +13,8 @@ from triage.views.format import NA, format_count, format_number, format_p
 from triage.views.text import Align, join_sections, render_data_summary, rule, table
 
 if TYPE_CHECKING:
-    from triage.core.checks import CurvatureCheck, RobustCheck
-    from triage.core.compare import Comparison, Criterion
-    from triage.engine.compare import ComparisonOutcome
+    from triage.results.checks import CurvatureCheck, RobustCheck
+    from triage.results.compare import Comparison, ComparisonOutcome, Criterion
 
 BEST_MARK: Final = "◆"
 """Put after the best value of a criterion in the comparison table."""

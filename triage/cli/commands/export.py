@@ -6,7 +6,6 @@ import argparse
 import sys
 from typing import Any
 
-from triage.cli.commands.report import add_diagnostics_options, segment_columns
 from triage.cli.options import (
     add_model_options,
     add_row_options,
@@ -29,7 +28,6 @@ def register(subparsers: Any) -> None:
     add_source_options(parser)
     add_model_options(parser)
     add_row_options(parser)
-    add_diagnostics_options(parser)
     what = parser.add_mutually_exclusive_group(required=True)
     what.add_argument(
         "--worst",
@@ -53,6 +51,7 @@ def run(args: argparse.Namespace) -> int:
     """Run `triage export`."""
     from triage.cli.options import open_source_from_args, spec_from_args
     from triage.cli.progress import StderrProgress
+    from triage.cli.signals import stop_event
     from triage.data.export import PERSONAL_DATA_NOTICE, check_output_path
     from triage.engine.export import export_all_rows, export_worst_rows
 
@@ -71,6 +70,7 @@ def run(args: argparse.Namespace) -> int:
                 design=args.sample,
                 force=args.force,
                 on_progress=progress,
+                cancel=stop_event,
             )
         else:
             written, n_rows = export_worst_rows(
@@ -82,9 +82,9 @@ def run(args: argparse.Namespace) -> int:
                 rows=args.rows,
                 seed=args.seed,
                 design=args.sample,
-                by=segment_columns(args),
                 force=args.force,
                 on_progress=progress,
+                cancel=stop_event,
             )
     finally:
         progress.finish()

@@ -43,11 +43,16 @@ def register(subparsers: Any) -> None:
         help="a TOML file of binding-id = key, applied after the user's keymap",
     )
     parser.add_argument(
-        "--top-k",
-        type=integer_option("--top-k", minimum=1),
+        "--top",
+        type=integer_option("--top", minimum=1),
         default=50,
         metavar="K",
         help="rows kept in each worst-rows list (default 50)",
+    )
+    parser.add_argument(
+        "--ordered",
+        action="store_true",
+        help="rows are in a meaningful order (time): judge serial correlation and trends",
     )
     parser.set_defaults(handler=run)
 
@@ -80,7 +85,8 @@ def settings_from_args(args: argparse.Namespace) -> Any:
         sample_design=args.sample,
         keyset=args.keyset,
         keymap_file=args.keymap,
-        top_k=args.top_k,
+        top_k=args.top,
+        is_ordered=args.ordered,
     )
 
 

@@ -55,8 +55,8 @@ if TYPE_CHECKING:
     from triage._typing import Criterion
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
-    from triage.engine.passes import DataSummary, FitOutcome
-    from triage.engine.progress import PassProgress
+    from triage.results.fit import DataSummary, FitOutcome
+    from triage.results.progress import PassProgress
     from triage.tui.settings import Settings
 
 TILE_MIN_WIDTH: Final = 110
@@ -397,6 +397,7 @@ class MainScreen(Screen[None]):
         """Lay out for the terminal's size, then open the data in the background."""
         for pane in self.query(Pane):
             pane.is_colorless = self.settings.is_colorless
+            pane.is_ordered = self.settings.is_ordered
         self._apply_layout()
         self._update_model_line()
         if self.opened is not None:
@@ -792,6 +793,7 @@ class MainScreen(Screen[None]):
                 exclude_rows=job.excluded,
                 top_k=self.settings.top_k,
                 by=self.segment_columns,
+                is_ordered=self.settings.is_ordered,
                 on_progress=None if rows is not None else report_progress,
                 cancel=worker.cancelled_event,
                 on_fit=None if rows is None else report_fit,
