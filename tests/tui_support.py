@@ -120,14 +120,17 @@ def _busy_workers(app: TriageApp) -> list[str]:
 
 
 async def settle(pilot: Pilot[None]) -> None:
-    """Wait until the app is quiet: no worker pending or running, every message handled.
+    """Wait until the app is quiet: no worker pending or running, every message handled, and
+    the screen drawn the same after one more round of the event loop.
 
-    A handled message may start another worker (the data opens, then the fit starts), so this
-    repeats until a round ends with no worker left to wait for.
+    A handled message may start another worker (the data opens, then the fit starts), and a
+    new result may take another layout (a scroll bar follows the text it scrolls), so this
+    repeats until a round changes nothing.
     """
     app = pilot.app
     assert isinstance(app, TriageApp)
     deadline = time.monotonic() + HANG_S
+    drawn = None
     while True:
         try:
             await asyncio.wait_for(
@@ -137,7 +140,10 @@ async def settle(pilot: Pilot[None]) -> None:
             msg = f"the app did not settle in {HANG_S:.0f} s; still busy: {_busy_workers(app)}"
             raise AssertionError(msg) from None
         await pilot.pause()  # handle what the finished workers posted
-        if not _busy_workers(app):
+        if _busy_workers(app):
+            continue
+        before, drawn = drawn, screen_text(app)
+        if drawn == before:
             return
 
 
