@@ -9,6 +9,10 @@ as a category, and missing values.
 from __future__ import annotations
 
 import json
+import os
+import resource
+import subprocess
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -244,3 +248,115 @@ def test_fit_json_rebuilds_the_model(tmp_path: Path, small_learning_sample: None
     np.testing.assert_allclose(estimates, coef, rtol=1e-8, atol=1e-8)
     month = next(t for t in model["term_coding"] if t["column"] == "month")
     assert sum(entry["rows"] for entry in month["levels"]) == frame.height
+
+
+# ── bad tables: each one line on stderr, exit 2, in a process held under 1 GiB ──────────
+
+MEMORY_LIMIT = 1 << 30
+"""The issue's bound: each bad case ends within 1 GiB of data memory (RLIMIT_DATA)."""
+
+
+def _run_limited(args: list[str]) -> subprocess.CompletedProcess[str]:
+    """Run the CLI in a child whose data memory is capped at `MEMORY_LIMIT`."""
+
+    def cap_memory() -> None:
+        resource.setrlimit(resource.RLIMIT_DATA, (MEMORY_LIMIT, MEMORY_LIMIT))
+
+    env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parents[1])}
+    return subprocess.run(
+        [sys.executable, "-m", "triage", *args],
+        preexec_fn=cap_memory,
+        capture_output=True,
+        text=True,
+        env=env,
+        timeout=120,
+        check=False,
+    )
+
+
+def _stray_text_csv(path: Path) -> Path:
+    rng = np.random.default_rng(5)
+    x1 = [f"{v:.4f}" for v in rng.normal(size=200)]
+    x1[17] = "oops"
+    frame = pl.DataFrame({"y": rng.normal(size=200), "x1": x1, "x2": rng.normal(size=200)})
+    frame.write_csv(path)
+    return path
+
+
+def _million_level_parquet(path: Path) -> Path:
+    rng = np.random.default_rng(6)
+    n = 1_000_000
+    ids = pl.Series("person", rng.permutation(n)).cast(pl.String).str.zfill(7)
+    frame = pl.DataFrame({"person": ids, "y": rng.normal(size=n), "x": rng.normal(size=n)})
+    frame.write_parquet(path, row_group_size=100_000)
+    return path
+
+
+@pytest.mark.parametrize(
+    ("case", "terms", "extra", "expected"),
+    [
+        (
+            "stray",
+            "y ~ x1 + x2",
+            [],
+            "column `x1` is text because 1 of 200 values is not a number (first at row 17: "
+            "`oops`); mark it missing with `--null-value oops`, or use `cat(x1)` to treat it "
+            "as a category",
+        ),
+        ("header", "y ~ x1", [], "the data has no rows (only a header line?), so the target `y`"),
+        ("empty_target", "y ~ x1", [], "every value of the target `y` is missing (50 rows)"),
+        (
+            "million",
+            "y ~ x + person",
+            ["--rows", "all", "--max-levels", "2000000"],
+            "the design would have at least",
+        ),
+    ],
+)
+def test_bad_tables_exit_2_with_one_line(
+    tmp_path: Path, case: str, terms: str, extra: list[str], expected: str
+) -> None:
+    if case == "stray":
+        path = _stray_text_csv(tmp_path / "stray.csv")
+    elif case == "header":
+        path = tmp_path / "header.csv"
+        path.write_text("y,x1,x2\n")
+    elif case == "empty_target":
+        path = tmp_path / "empty.csv"
+        frame = pl.DataFrame(
+            {"y": [None] * 50, "x1": np.arange(50.0)}, schema_overrides={"y": pl.String}
+        )
+        frame.write_csv(path)
+    else:
+        path = _million_level_parquet(tmp_path / "people.parquet")
+    result = _run_limited(["fit", str(path), "--terms", terms, *extra])
+    assert result.returncode == 2, result.stderr[-2000:]
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1, result.stderr[-2000:]
+    assert expected in lines[0]
+    if case == "million":
+        # names the column and its level count, the estimate, and what to do
+        assert "`person` has at least" in lines[0]
+        assert "--max-memory" in lines[0] and "leave the column out" in lines[0]
+
+
+def test_cat_of_a_stray_text_column_still_fits_it_as_a_category(tmp_path: Path) -> None:
+    path = tmp_path / "codes.csv"
+    frame = pl.DataFrame({"y": np.arange(30.0) % 7, "code": [str(i % 3) for i in range(30)]})
+    frame = frame.with_columns(pl.col("code").cast(pl.String))
+    frame.write_csv(path)
+    source = open_source(path)
+    assert source.schema()["code"] == pl.Int64  # read as numbers: cat() makes a category
+    spec = build_spec(source.schema(), target=None, terms="y ~ cat(code)")
+    outcome = fit_model(source, spec, rows=None)
+    assert outcome.builder.levels["code"] == ("0", "1", "2")
+
+
+def test_level_counter_stops_past_its_cap_and_says_so() -> None:
+    frame = pl.DataFrame({"id": [f"p{i}" for i in range(5_000)]})
+    counter = LevelCounter(frame.schema, ["id"], cap=100)
+    for start in range(0, 5_000, 500):
+        counter.update(frame.slice(start, 500))
+    table = counter.finalize()["id"]
+    assert table.is_partial
+    assert 100 < len(table.levels) <= 1_000  # stopped after the batch that passed the cap

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import Literal, TypeAlias
 
-SampleDesign: TypeAlias = Literal["groups", "uniform"]
+Sampling: TypeAlias = Literal["groups", "uniform"]
 """How a sample is drawn: whole row groups (or CSV blocks) at random, or exact uniform rows."""
 
 Criterion: TypeAlias = Literal["abs_resid", "studentized", "leverage", "cooks"]

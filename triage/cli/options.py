@@ -113,6 +113,13 @@ def add_model_options(parser: argparse.ArgumentParser, *, terms_repeatable: bool
         help="cap on levels of a category (default 50)",
     )
     group.add_argument(
+        "--max-memory",
+        type=parse_memory,
+        default=None,
+        metavar="SIZE",
+        help="most memory a model's design may take, e.g. 4G (default: half the machine's)",
+    )
+    group.add_argument(
         "--drop-invalid",
         action="store_true",
         help="leave out rows outside a transform's domain (e.g. log of 0) instead of stopping",
@@ -193,7 +200,10 @@ def spec_from_args(
     args: argparse.Namespace, source: Source, *, terms: str | None = None
 ) -> ModelSpec:
     """Build and validate the model spec from parsed options against the source's schema."""
+    import functools
+
     from triage.core.spec import build_spec
+    from triage.data.text_columns import text_column_facts
 
     return build_spec(
         source.schema(),
@@ -205,8 +215,27 @@ def spec_from_args(
         categorical=categorical_columns(args),
         reference=parse_reference(args.reference),
         max_levels=args.max_levels,
+        max_memory=args.max_memory,
         drop_invalid=args.drop_invalid,
+        check_text=functools.partial(text_column_facts, source),
     )
+
+
+_SIZE_UNITS = {"": 1, "K": 1 << 10, "M": 1 << 20, "G": 1 << 30, "T": 1 << 40}
+
+
+def parse_memory(text: str) -> int:
+    """Parse `--max-memory`: bytes, or a number with K, M, G or T (powers of 1,024)."""
+    cleaned = text.strip().upper().removesuffix("IB").removesuffix("B")
+    unit = cleaned[-1:] if cleaned[-1:] in _SIZE_UNITS else ""
+    try:
+        value = float(cleaned.removesuffix(unit)) * _SIZE_UNITS[unit]
+    except ValueError:
+        value = 0.0
+    if not value >= 1:
+        msg = f"`--max-memory` must be a size such as 4G, 500M or 2000000000, got `{text}`"
+        raise argparse.ArgumentTypeError(msg)
+    return int(value)
 
 
 def _fraction(text: str) -> float:

@@ -334,6 +334,19 @@ class DesignBudget:
     batch_rows: int
     n_workers: int
 
+    def max_columns(self) -> int:
+        """Most design columns that fit within the limit."""
+        low, high = 0, 1
+        while design_memory_bytes(high, self.batch_rows, self.n_workers) <= self.limit_bytes:
+            low, high = high, 2 * high
+        while high - low > 1:
+            middle = (low + high) // 2
+            if design_memory_bytes(middle, self.batch_rows, self.n_workers) <= self.limit_bytes:
+                low = middle
+            else:
+                high = middle
+        return low
+
     def check(self, spec: ModelSpec, tables: Mapping[str, LevelTable]) -> None:
         """Raise `DataError` in one line when the design would need more than the limit."""
         width = design_width(spec, tables)
@@ -342,12 +355,15 @@ class DesignBudget:
             return
         widest = max(tables.values(), key=lambda t: len(t.levels), default=None)
         culprit = (
-            f"`{widest.column}` has {len(widest.levels):,} levels"
+            f"`{widest.column}` has {_level_count(widest)}"
             if widest is not None
             else f"{len(spec.terms)} terms"
         )
+        partial = any(t.is_partial for t in tables.values())
+        at_least = "at least " if partial else ""
         msg = (
-            f"the design would have {width:,} columns ({culprit}) and need about "
+            f"the design would have {at_least}{width:,} columns ({culprit}) and need "
+            f"{at_least or 'about '}"
             f"{memory_text(need)} of memory, more than the limit of "
             f"{memory_text(self.limit_bytes)}; leave the column out or group its levels "
             "(`--where` can keep fewer), or raise the limit with `--max-memory`"
@@ -720,12 +736,18 @@ def reference_level(spec: ModelSpec, table: LevelTable) -> str:
     return spec.reference.get(table.column) or table.most_frequent()
 
 
+def _level_count(table: LevelTable) -> str:
+    """Write a level count: `12 levels`, or `at least 16,384 levels` when counting stopped."""
+    at_least = "at least " if table.is_partial else ""
+    return f"{at_least}{len(table.levels):,} levels"
+
+
 def _check_levels(spec: ModelSpec, table: LevelTable, basis: str) -> LevelTable:
     """Check a categorical's level count and named reference; return the table."""
     column, found = table.column, table.levels
     if len(found) > spec.max_levels:
         msg = (
-            f"categorical column `{column}` has {len(found):,} levels in {basis}, more than "
+            f"categorical column `{column}` has {_level_count(table)} in {basis}, more than "
             f"the limit of {spec.max_levels}; raise the limit with `--max-levels` or filter "
             "the rows with `--where`"
         )

@@ -26,7 +26,7 @@ from triage.data.snapshot import SourceSnapshot
 from triage.errors import SourceChanged, SourceError, SpecError, TriageError
 
 if TYPE_CHECKING:
-    from triage._typing import SampleDesign
+    from triage._typing import Sampling
 
 
 _GOLDEN: Final[int] = 0x9E3779B97F4A7C15
@@ -113,7 +113,7 @@ class Source(Protocol):
         *,
         n_rows: int,
         seed: int,
-        design: SampleDesign = "groups",
+        sampling: Sampling = "groups",
         where: pl.Expr | None = None,
     ) -> Sample:
         """Read a sample of about `n_rows` rows into memory."""
@@ -337,10 +337,10 @@ def number_record_batches(
         start += n
 
 
-def _check_sample_args(n_rows: int, design: str) -> None:
+def _check_sample_args(n_rows: int, sampling: str) -> None:
     check_count("n_rows", n_rows)
-    if design not in ("groups", "uniform"):
-        msg = f"`design` must be `groups` or `uniform`, got `{design!r}`"
+    if sampling not in ("groups", "uniform"):
+        msg = f"`sampling` must be `groups` or `uniform`, got `{sampling!r}`"
         raise SpecError(msg)
 
 
@@ -553,7 +553,7 @@ class BlockSource(abc.ABC):
         *,
         n_rows: int,
         seed: int,
-        design: SampleDesign = "groups",
+        sampling: Sampling = "groups",
         where: pl.Expr | None = None,
     ) -> Sample:
         """Read a sample of about `n_rows` rows into memory, deterministically for `seed`.
@@ -563,12 +563,12 @@ class BlockSource(abc.ABC):
         columns : sequence of str
             Columns to read; `ROW_INDEX` is added in front.
         n_rows : int
-            Rows wanted. With ``design="groups"`` whole blocks are added at random until they
+            Rows wanted. With ``sampling="groups"`` whole blocks are added at random until they
             hold at least `n_rows` rows (counted before `where`); with ``"uniform"`` exactly
             `n_rows` rows are drawn from those that pass `where`.
         seed : int
             Seed of the random choice.
-        design : {"groups", "uniform"}, default="groups"
+        sampling : {"groups", "uniform"}, default="groups"
             Whole row groups (record batches, CSV blocks) at random, cheap; or an exact
             uniform sample of rows, which reads the whole source.
         where : Expr, optional
@@ -581,12 +581,12 @@ class BlockSource(abc.ABC):
             every row is read and ``is_whole`` is True.
         """
         names = self._check_columns(columns)
-        _check_sample_args(n_rows, design)
+        _check_sample_args(n_rows, sampling)
         with self._unchanged(self.files):
             total = self.row_count()
             if total is not None and total <= n_rows:
                 return self._read_whole(names, total, where)
-            if design == "uniform":
+            if sampling == "uniform":
                 return self._read_uniform(names, n_rows, seed, where)
             return self._read_groups(names, n_rows, seed, where)
 
@@ -781,7 +781,7 @@ class BlockSource(abc.ABC):
             else (f"{rows_read:,} rows")
         )
         if n_passing <= n_rows:
-            text = f"all {population} (uniform design; read the whole source)"
+            text = f"all {population} (uniform sampling; read the whole source)"
             return Sample(frame, text, is_whole=True, warning=None, rows_read=rows_read)
         text = (
             f"{frame.height:,} rows drawn uniformly at random (seed {seed}) from {population}; "

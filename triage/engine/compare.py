@@ -38,7 +38,7 @@ from triage.results.fit import FitOutcome
 from triage.results.holdout import KFoldResult
 
 if TYPE_CHECKING:
-    from triage._typing import SampleDesign
+    from triage._typing import Sampling
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
 
@@ -125,7 +125,7 @@ def compare_models(
     *,
     rows: int | None = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
-    design: SampleDesign = "groups",
+    sampling: Sampling = "groups",
     holdout: HoldoutRule | None = None,
     folds: int = 5,
     exclude_rows: Collection[int] = (),
@@ -146,7 +146,7 @@ def compare_models(
         Sample size; None streams every row.
     seed : int, default=0
         Seed of the sample, of the held-out split and of the fold assignment.
-    design : {"groups", "uniform"}, default="groups"
+    sampling : {"groups", "uniform"}, default="groups"
         How the sample is drawn.
     holdout : HoldoutRule, optional
         Rows to hold out of every fit and score afterwards; with it, in-sample figures
@@ -186,7 +186,7 @@ def compare_models(
         specs[0],
         rows=rows,
         seed=seed,
-        design=design,
+        sampling=sampling,
         exclude_rows=exclude_rows,
         extra_columns=list(dict.fromkeys(extra)),
     )

@@ -21,7 +21,7 @@ from triage.engine.passes import (
 from triage.results.fit import FitOutcome
 
 if TYPE_CHECKING:
-    from triage._typing import Criterion, SampleDesign
+    from triage._typing import Criterion, Sampling
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
     from triage.engine.progress import ProgressCallback
@@ -110,7 +110,7 @@ def export_worst_rows(
     criterion: Criterion = "cooks",
     rows: int | None = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
-    design: SampleDesign = "groups",
+    sampling: Sampling = "groups",
     force: bool = False,
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
@@ -121,7 +121,7 @@ def export_worst_rows(
         spec,
         rows=rows,
         seed=seed,
-        design=design,
+        sampling=sampling,
         top_k=k,
         on_progress=on_progress,
         cancel=cancel,
@@ -137,7 +137,7 @@ def export_all_rows(
     *,
     rows: int | None = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
-    design: SampleDesign = "groups",
+    sampling: Sampling = "groups",
     force: bool = False,
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
@@ -147,7 +147,13 @@ def export_all_rows(
     Memory stays bounded: one batch of diagnostics is held at a time.
     """
     outcome = fit_model(
-        source, spec, rows=rows, seed=seed, design=design, on_progress=on_progress, cancel=cancel
+        source,
+        spec,
+        rows=rows,
+        seed=seed,
+        sampling=sampling,
+        on_progress=on_progress,
+        cancel=cancel,
     )
     n_rows = 0
     with StreamingExport(out, force=force, protected=(*source.files, source.path)) as sink:

@@ -32,7 +32,7 @@ from triage.results.progress import PassProgress
 if TYPE_CHECKING:
     from numpy.typing import NDArray
 
-    from triage._typing import SampleDesign
+    from triage._typing import Sampling
     from triage.core.levels import LevelTable
     from triage.core.spec import ModelSpec
     from triage.data.source import Batch, Sample, Source
@@ -73,14 +73,15 @@ MEMORY_SHARE = 0.5
 def default_memory_limit() -> int:
     """Bytes a design may take by default: `MEMORY_SHARE` of the machine's memory.
 
-    A lower address-space limit on the process (``ulimit -v``) counts instead.
+    A lower address-space or data limit on the process (``ulimit -v``, ``-d``) counts instead.
     """
     import resource
 
     total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
-    soft, _ = resource.getrlimit(resource.RLIMIT_AS)
-    if soft != resource.RLIM_INFINITY:
-        total = min(total, soft)
+    for kind in (resource.RLIMIT_AS, resource.RLIMIT_DATA):
+        soft, _ = resource.getrlimit(kind)
+        if soft != resource.RLIM_INFINITY:
+            total = min(total, soft)
     return int(total * MEMORY_SHARE)
 
 
@@ -154,7 +155,7 @@ class PassPlan:
         *,
         rows: int | None,
         seed: int,
-        design: SampleDesign,
+        sampling: Sampling,
         exclude_rows: Collection[int],
         extra_columns: Sequence[str] = (),
     ) -> PassPlan:
@@ -163,7 +164,7 @@ class PassPlan:
             _pass_columns(spec, extra_columns),
             n_rows=rows if rows is not None else LEARNING_SAMPLE_ROWS,
             seed=seed,
-            design=design,
+            sampling=sampling,
             where=_parse_where(source, spec),
         )
         streams = rows is None and not sample.is_whole
@@ -313,12 +314,13 @@ class PassPlan:
             is_full_pass=self.is_full_pass,
         )
 
-    def count_levels(self, tracker: ProgressTracker) -> dict[str, LevelTable] | None:
+    def count_levels(self, tracker: ProgressTracker, cap: int) -> dict[str, LevelTable] | None:
         """Count every level of the model's categoricals over every row, or None for a sample.
 
         A full pass reads only the categorical columns first (the filter's columns too),
         so its design has every level present and never drops a row as unseen. Rows the
-        user marked are counted: the coding is that of the rows under the filter.
+        user marked are counted: the coding is that of the rows under the filter. A column
+        stops being counted past `cap` levels (it is refused then, whatever its count).
         """
         columns = [t.column for t in self.spec.terms if t.kind == "categorical" and t.column]
         if self.sample is not None or not columns:
@@ -329,7 +331,7 @@ class PassPlan:
             counter.update(frame)
 
         return self.fold_frames(
-            lambda: LevelCounter(schema, columns),
+            lambda: LevelCounter(schema, columns, cap=cap),
             fold,
             LevelCounter.merge,
             RowCounts(),
@@ -348,11 +350,12 @@ class PassPlan:
             batch_rows=batch_rows_for(len(self.columns), FIT_BATCH_VALUES),
             n_workers=pass_workers(),
         )
+        cap = min(spec.max_levels, budget.max_columns())
         return DesignBuilder.learn(
             spec,
             self.source.schema(),
             self.learning_frame,
-            level_tables=self.count_levels(tracker),
+            level_tables=self.count_levels(tracker, cap),
             budget=budget,
         )
 
@@ -396,7 +399,7 @@ def fit_model(
     *,
     rows: int | None = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
-    design: SampleDesign = "groups",
+    sampling: Sampling = "groups",
     exclude_rows: Collection[int] = (),
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
@@ -413,7 +416,7 @@ def fit_model(
         Sample size; None streams every row in bounded memory.
     seed : int, default=0
         Seed of the sample.
-    design : {"groups", "uniform"}, default="groups"
+    sampling : {"groups", "uniform"}, default="groups"
         How the sample is drawn (see `Source.read_sample`).
     exclude_rows : collection of int
         Source positions to leave out (a what-if refit; the file is never changed).
@@ -441,7 +444,7 @@ def fit_model(
         )
     else:
         plan = PassPlan.read(
-            source, spec, rows=rows, seed=seed, design=design, exclude_rows=exclude_rows
+            source, spec, rows=rows, seed=seed, sampling=sampling, exclude_rows=exclude_rows
         )
     return _fit(plan, on_progress=on_progress, cancel=cancel)
 
@@ -506,7 +509,7 @@ def run_report(
     *,
     rows: int | None = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
-    design: SampleDesign = "groups",
+    sampling: Sampling = "groups",
     exclude_rows: Collection[int] = (),
     top_k: int = 20,
     by: Sequence[str] = (),
@@ -529,7 +532,7 @@ def run_report(
         spec,
         rows=rows,
         seed=seed,
-        design=design,
+        sampling=sampling,
         exclude_rows=exclude_rows,
         extra_columns=by,
     )

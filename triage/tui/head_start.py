@@ -77,7 +77,7 @@ def open_and_profile(path: str, *, csv: CsvOptions | None, seed: int) -> OpenedD
 
     source = open_source(path, csv=csv or CsvOptions())
     schema = source.schema()
-    sample = source.read_sample(list(schema), n_rows=PROFILE_ROWS, seed=seed, design="groups")
+    sample = source.read_sample(list(schema), n_rows=PROFILE_ROWS, seed=seed, sampling="groups")
     return OpenedData(source, profile_columns(schema, sample.frame))
 
 
@@ -186,7 +186,7 @@ class HeadStart:
                 self._planned.spec,
                 rows=settings.sample_rows,
                 seed=settings.seed,
-                design=settings.sample_design,
+                sampling=settings.sampling,
                 top_k=settings.top_k,
                 by=self._planned.by,
                 is_ordered=settings.is_ordered,

@@ -75,7 +75,7 @@ def run(args: argparse.Namespace) -> int:
             labels,
             rows=args.rows,
             seed=args.seed,
-            design=args.sample,
+            sampling=args.sample,
             holdout=rule,
             folds=args.folds,
             on_progress=progress,

@@ -51,7 +51,7 @@ def run(args: argparse.Namespace) -> int:
                 spec,
                 rows=args.rows,
                 seed=args.seed,
-                design=args.sample,
+                sampling=args.sample,
                 on_progress=progress,
                 cancel=stop_event,
             )
@@ -65,7 +65,7 @@ def run(args: argparse.Namespace) -> int:
                 [args.terms],
                 rows=args.rows,
                 seed=args.seed,
-                design=args.sample,
+                sampling=args.sample,
                 holdout=rule,
                 on_progress=progress,
                 cancel=stop_event,

@@ -82,7 +82,7 @@ def settings_from_args(args: argparse.Namespace) -> Any:
         sample_rows=DEFAULT_SAMPLE_ROWS if args.rows is None else args.rows,
         is_full_at_start=args.rows is None,
         seed=args.seed,
-        sample_design=args.sample,
+        sampling=args.sample,
         keyset=args.keyset,
         keymap_file=args.keymap,
         top_k=args.top,

@@ -77,7 +77,7 @@ def run(args: argparse.Namespace) -> int:
             spec,
             rows=args.rows,
             seed=args.seed,
-            design=args.sample,
+            sampling=args.sample,
             top_k=args.top,
             by=segment_columns(args),
             is_ordered=args.ordered,

@@ -789,7 +789,7 @@ class MainScreen(Screen[None]):
                 job.spec,
                 rows=rows,
                 seed=self.settings.seed,
-                design=self.settings.sample_design,
+                sampling=self.settings.sampling,
                 exclude_rows=job.excluded,
                 top_k=self.settings.top_k,
                 by=self.segment_columns,
