@@ -28,6 +28,7 @@ from triage.tui.settings import Settings
 
 if TYPE_CHECKING:
     from textual.pilot import Pilot
+    from textual.worker import Worker
 
     from triage.tui.head_start import HeadStart
 
@@ -115,8 +116,8 @@ async def press_id(pilot: Pilot[None], binding_id: str) -> None:
     await pilot.pause()
 
 
-def _busy_workers(app: TriageApp) -> list[str]:
-    return [worker.name for worker in app.workers if not worker.is_finished]
+def _busy_workers(app: TriageApp) -> list[Worker[Any]]:
+    return [worker for worker in app.workers if not worker.is_finished]
 
 
 async def settle(pilot: Pilot[None]) -> None:
@@ -133,11 +134,14 @@ async def settle(pilot: Pilot[None]) -> None:
     drawn = None
     while True:
         try:
+            # a worker that fails is the app's to report (tests check what it shows)
             await asyncio.wait_for(
-                app.workers.wait_for_complete(), timeout=max(deadline - time.monotonic(), 0.0)
+                asyncio.gather(*(w.wait() for w in _busy_workers(app)), return_exceptions=True),
+                timeout=max(deadline - time.monotonic(), 0.0),
             )
         except TimeoutError:
-            msg = f"the app did not settle in {HANG_S:.0f} s; still busy: {_busy_workers(app)}"
+            busy = [worker.name for worker in _busy_workers(app)]
+            msg = f"the app did not settle in {HANG_S:.0f} s; still busy: {busy}"
             raise AssertionError(msg) from None
         await pilot.pause()  # handle what the finished workers posted
         if _busy_workers(app):
