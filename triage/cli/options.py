@@ -6,6 +6,8 @@ import argparse
 from collections.abc import Callable
 from typing import TYPE_CHECKING
 
+from triage._typing import ALL_ROWS, RowsToRead
+
 if TYPE_CHECKING:
     from triage.core.holdout import HoldoutRule
     from triage.core.spec import ModelSpec
@@ -39,10 +41,10 @@ def integer_option(name: str, *, minimum: int) -> Callable[[str], int]:
     return parse
 
 
-def parse_rows(text: str) -> int | None:
-    """Parse `--rows`: a positive integer, or `all` (returned as None)."""
+def parse_rows(text: str) -> RowsToRead:
+    """Parse `--rows`: a positive integer, or `all` (returned as `ALL_ROWS`)."""
     if text.strip().lower() == "all":
-        return None
+        return ALL_ROWS
     try:
         return integer_option("--rows", minimum=1)(text)
     except argparse.ArgumentTypeError:

@@ -21,7 +21,7 @@ from triage.engine.passes import (
 from triage.results.fit import FitOutcome
 
 if TYPE_CHECKING:
-    from triage._typing import Criterion, Sampling
+    from triage._typing import Criterion, RowsToRead, Sampling
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
     from triage.engine.progress import ProgressCallback
@@ -108,7 +108,7 @@ def export_worst_rows(
     *,
     k: int,
     criterion: Criterion = "cooks",
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
     sampling: Sampling = "groups",
     force: bool = False,
@@ -135,7 +135,7 @@ def export_all_rows(
     spec: ModelSpec,
     out: str | Path,
     *,
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
     sampling: Sampling = "groups",
     force: bool = False,
