@@ -23,6 +23,7 @@ import pyarrow.parquet as pq
 import pytest
 
 import triage.engine.passes as passes
+from triage._typing import ALL_ROWS
 from triage.core.levels import LevelCounter
 from triage.core.spec import build_spec
 from triage.data.source import open_source
@@ -97,7 +98,7 @@ def _fit(path: Path, **options: object) -> FitOutcome:
         terms="cost ~ age + region + office + cat(month)",
         **options,  # type: ignore[arg-type]
     )
-    return fit_model(source, spec, rows=None)
+    return fit_model(source, spec, rows=ALL_ROWS)
 
 
 def test_sorted_table_full_pass_uses_every_row_and_matches_statsmodels(
@@ -226,7 +227,7 @@ def test_fit_json_rebuilds_the_model(tmp_path: Path, small_learning_sample: None
     frame.write_parquet(path, row_group_size=GROUP_ROWS)
     source = open_source(path)
     spec = build_spec(source.schema(), target=None, terms="cost ~ std(age) + region + cat(month)")
-    document = json.loads(json.dumps(fit_to_json(fit_model(source, spec, rows=None))))
+    document = json.loads(json.dumps(fit_to_json(fit_model(source, spec, rows=ALL_ROWS))))
     model = document["model"]
     data = frame.drop_nulls()
     columns = [np.ones(data.height)]
@@ -348,7 +349,7 @@ def test_cat_of_a_stray_text_column_still_fits_it_as_a_category(tmp_path: Path) 
     source = open_source(path)
     assert source.schema()["code"] == pl.Int64  # read as numbers: cat() makes a category
     spec = build_spec(source.schema(), target=None, terms="y ~ cat(code)")
-    outcome = fit_model(source, spec, rows=None)
+    outcome = fit_model(source, spec, rows=ALL_ROWS)
     assert outcome.builder.levels["code"] == ("0", "1", "2")
 
 
@@ -388,7 +389,7 @@ def test_export_all_holds_every_row_and_its_status_matches_the_fit(
     # the counts of the same model's full fit (and of the data, counted here independently)
     source = open_source(path)
     spec = build_spec(source.schema(), target=None, terms=terms, where=where)
-    data = fit_model(source, spec, rows=None).data
+    data = fit_model(source, spec, rows=ALL_ROWS).data
     in_filter = frame.get_column("office") != "OF000"
     assert statuses["removed by the filter"] == data.rows_filtered_out == (~in_filter).sum()
     assert statuses["missing value"] == data.rows_dropped_missing

@@ -6,6 +6,8 @@ import argparse
 from collections.abc import Callable
 from typing import TYPE_CHECKING
 
+from triage._typing import ALL_ROWS, RowsToRead
+
 if TYPE_CHECKING:
     from triage.core.holdout import HoldoutRule
     from triage.core.spec import ModelSpec
@@ -39,10 +41,10 @@ def integer_option(name: str, *, minimum: int) -> Callable[[str], int]:
     return parse
 
 
-def parse_rows(text: str) -> int | None:
-    """Parse `--rows`: a positive integer, or `all` (returned as None)."""
+def parse_rows(text: str) -> RowsToRead:
+    """Parse `--rows`: a positive integer, or `all` (returned as `ALL_ROWS`)."""
     if text.strip().lower() == "all":
-        return None
+        return ALL_ROWS
     try:
         return integer_option("--rows", minimum=1)(text)
     except argparse.ArgumentTypeError:
@@ -133,7 +135,7 @@ def add_row_options(parser: argparse.ArgumentParser, *, every_row: bool = False)
     group.add_argument(
         "--rows",
         type=parse_rows,
-        default=None if every_row else DEFAULT_SAMPLE_ROWS,
+        default=ALL_ROWS if every_row else DEFAULT_SAMPLE_ROWS,
         metavar="N|all",
         help=f"sample about N rows or stream `all` rows (default {default})",
     )

@@ -10,6 +10,7 @@ from typing import TYPE_CHECKING, Final
 import numpy as np
 import polars as pl
 
+from triage._typing import ALL_ROWS
 from triage.core.design import STATUS_DOMAIN, STATUS_USED
 from triage.core.filter import parse_filter
 from triage.data.export import StreamingExport, write_frame
@@ -24,7 +25,7 @@ from triage.engine.progress import ProgressTracker
 from triage.results.fit import DataSummary, FitOutcome
 
 if TYPE_CHECKING:
-    from triage._typing import Criterion, Sampling
+    from triage._typing import Criterion, RowsToRead, Sampling
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
     from triage.engine.progress import ProgressCallback
@@ -111,7 +112,7 @@ def export_worst_rows(
     *,
     k: int,
     criterion: Criterion = "cooks",
-    rows: int | None = None,
+    rows: RowsToRead = ALL_ROWS,
     seed: int = 0,
     sampling: Sampling = "groups",
     force: bool = False,
@@ -120,7 +121,7 @@ def export_worst_rows(
 ) -> tuple[Path, int, DataSummary]:
     """Fit, rank rows by `criterion`, and write the `k` worst.
 
-    Every row is ranked by default (`rows=None`); a list handed on should not depend on a
+    Every row is ranked by default (`rows=ALL_ROWS`); a list handed on should not depend on a
     sample. Returns the path, the number of rows written and the rows ranked.
     """
     report = run_report(
@@ -195,7 +196,7 @@ def export_all_rows(
     spec: ModelSpec,
     out: str | Path,
     *,
-    rows: int | None = None,
+    rows: RowsToRead = ALL_ROWS,
     seed: int = 0,
     sampling: Sampling = "groups",
     force: bool = False,

@@ -17,22 +17,24 @@ from typing import TYPE_CHECKING, TypeVar
 import numpy as np
 import polars as pl
 
+from triage._typing import ALL_ROWS
 from triage.core.design import DesignBatch, DesignBudget, DesignBuilder
 from triage.core.filter import parse_filter
 from triage.core.levels import LevelCounter
+from triage.core.limits import check_column_values, check_factor_scale
 from triage.core.lsq import QRAccumulator
 from triage.data.source import ROW_INDEX
 from triage.engine.allocator import keep_batch_memory
 from triage.engine.progress import ProgressCallback, ProgressTracker, ReadAhead
 from triage.engine.workers import fold_in_order, pass_workers
-from triage.errors import DataError
+from triage.errors import DataError, TriageError
 from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
 from triage.results.progress import PassProgress
 
 if TYPE_CHECKING:
     from numpy.typing import NDArray
 
-    from triage._typing import Sampling
+    from triage._typing import RowsToRead, Sampling
     from triage.core.levels import LevelTable
     from triage.core.spec import ModelSpec
     from triage.data.source import Batch, Sample, Source
@@ -153,7 +155,7 @@ class PassPlan:
         source: Source,
         spec: ModelSpec,
         *,
-        rows: int | None,
+        rows: RowsToRead,
         seed: int,
         sampling: Sampling,
         exclude_rows: Collection[int],
@@ -162,12 +164,12 @@ class PassPlan:
         """Draw the sample (a quick fit's rows, or a full pass's learning rows); plan the pass."""
         sample = source.read_sample(
             _pass_columns(spec, extra_columns),
-            n_rows=rows if rows is not None else LEARNING_SAMPLE_ROWS,
+            n_rows=LEARNING_SAMPLE_ROWS if rows is ALL_ROWS else rows,
             seed=seed,
             sampling=sampling,
             where=_parse_where(source, spec),
         )
-        streams = rows is None and not sample.is_whole
+        streams = rows is ALL_ROWS and not sample.is_whole
         return cls(
             source,
             spec,
@@ -375,6 +377,35 @@ def _pass_columns(spec: ModelSpec, extra_columns: Sequence[str]) -> list[str]:
     return columns + [c for c in extra_columns if c not in columns]
 
 
+@contextlib.contextmanager
+def naming_values_too_large(builder: DesignBuilder, frame: pl.DataFrame) -> Iterator[None]:
+    """Turn a failure of the fit on a batch into an error naming a column too large to fit.
+
+    Values near the float limit overflow the fit's sums of squares, which shows up as a
+    floating-point warning or an error about non-finite values; the batch is then built
+    again, quietly, to find the column (or target) responsible. Other failures pass as
+    they were.
+    """
+    try:
+        yield
+    except (DataError, ArithmeticError, RuntimeWarning):
+        columns = _design_quietly(builder, frame)
+        if columns is not None:
+            check_column_values(columns)
+        raise
+
+
+def _design_quietly(builder: DesignBuilder, frame: pl.DataFrame) -> dict[str, np.ndarray] | None:
+    """Build `frame`'s design columns and target by label, or None if that fails too."""
+    try:
+        with np.errstate(all="ignore"):  # numpy's error state is per thread: safe in a worker
+            batch = builder.build(frame)
+    except (TriageError, ArithmeticError, RuntimeWarning):
+        return None
+    design = dict(zip(builder.column_names, batch.x.T, strict=True))
+    return {**design, builder.spec.target: batch.y}
+
+
 def check_rows_left(counts: RowCounts, spec: ModelSpec) -> None:
     """Raise `DataError`, saying why, when a pass left no rows to fit."""
     if counts.used > 0:
@@ -397,7 +428,7 @@ def fit_model(
     source: Source,
     spec: ModelSpec,
     *,
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
     sampling: Sampling = "groups",
     exclude_rows: Collection[int] = (),
@@ -412,8 +443,8 @@ def fit_model(
         Where the rows come from.
     spec : ModelSpec
         The model, already validated against the source's schema.
-    rows : int or None, default=200_000
-        Sample size; None streams every row in bounded memory.
+    rows : int or ALL_ROWS, default=200_000
+        Sample size; `ALL_ROWS` streams every row in bounded memory.
     seed : int, default=0
         Seed of the sample.
     sampling : {"groups", "uniform"}, default="groups"
@@ -434,7 +465,7 @@ def fit_model(
     DataError
         When no rows are left or the data cannot support the fit.
     """
-    if rows is None and not DesignBuilder.learns_from_sample(spec):
+    if rows is ALL_ROWS and not DesignBuilder.learns_from_sample(spec):
         # Nothing to learn: a full pass skips the sample (0.3 s on a 20-million-row file).
         schema = source.schema()
         columns = {c: schema[c] for c in _pass_columns(spec, ())}
@@ -462,15 +493,16 @@ def _fit(
         return QRAccumulator(len(builder.column_names), has_intercept=spec.intercept), RowCounts()
 
     def fold(part: tuple[QRAccumulator, RowCounts], frame: pl.DataFrame) -> None:
-        accumulator, part_counts = part
-        columns = builder.build_columns(frame)
-        if columns is not None and accumulator.update_columns(columns.predictors, columns.y):
-            part_counts.used += columns.n_rows
-            return
-        # Rows to drop (nulls, NaN, levels, domain) or weights: the batch's full build.
-        batch = builder.build(frame)
-        part_counts.add(batch)
-        accumulator.update(batch.x, batch.y, batch.weights)
+        with naming_values_too_large(builder, frame):
+            accumulator, part_counts = part
+            columns = builder.build_columns(frame)
+            if columns is not None and accumulator.update_columns(columns.predictors, columns.y):
+                part_counts.used += columns.n_rows
+                return
+            # Rows to drop (nulls, NaN, levels, domain) or weights: the batch's full build.
+            batch = builder.build(frame)
+            part_counts.add(batch)
+            accumulator.update(batch.x, batch.y, batch.weights)
 
     def merge(
         part: tuple[QRAccumulator, RowCounts], other: tuple[QRAccumulator, RowCounts]
@@ -493,6 +525,7 @@ def _fit(
             "drop terms, loosen `--where`, or use more rows (`--rows`)"
         )
         raise DataError(msg)
+    check_factor_scale(accumulator.factor, builder.column_names, spec.target)
     fit = accumulator.finalize(builder.column_names)
     if not fit.tss > 0:
         msg = (
@@ -507,7 +540,7 @@ def run_report(
     source: Source,
     spec: ModelSpec,
     *,
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
     sampling: Sampling = "groups",
     exclude_rows: Collection[int] = (),

@@ -15,7 +15,7 @@ from textual.screen import Screen
 from textual.widgets import DataTable
 from textual.worker import Worker, WorkerState, get_current_worker
 
-from triage._typing import CRITERIA
+from triage._typing import ALL_ROWS, CRITERIA, RowsToRead
 from triage.errors import PassCancelled, TriageError
 from triage.tui.head_start import HeadStart, collect_again, open_and_profile, segment_columns
 from triage.tui.messages import (
@@ -753,7 +753,7 @@ class MainScreen(Screen[None]):
             self.run_sample_fit(job)
         self.refresh_bindings()
 
-    def _report(self, job: PassJob, *, rows: int | None) -> None:
+    def _report(self, job: PassJob, *, rows: RowsToRead) -> None:
         """Run one pass of `job` in the current worker and post how it ended.
 
         A sample fit the head start already made (or is making) of the same model is taken
@@ -770,7 +770,7 @@ class MainScreen(Screen[None]):
         def report_fit(outcome: FitOutcome) -> None:
             self.post_message(FitComputed(job.pass_id, outcome))
 
-        head_start = self.head_start if rows is not None and not job.excluded else None
+        head_start = self.head_start if rows is not ALL_ROWS and not job.excluded else None
         try:
             early = (
                 None
@@ -792,9 +792,9 @@ class MainScreen(Screen[None]):
                 top_k=self.settings.top_k,
                 by=self.segment_columns,
                 is_ordered=self.settings.is_ordered,
-                on_progress=None if rows is not None else report_progress,
+                on_progress=None if rows is not ALL_ROWS else report_progress,
                 cancel=worker.cancelled_event,
-                on_fit=None if rows is None else report_fit,
+                on_fit=None if rows is ALL_ROWS else report_fit,
             )
         except PassCancelled:
             self.post_message(PassStopped(job.pass_id))
@@ -811,7 +811,7 @@ class MainScreen(Screen[None]):
     @work(thread=True, exclusive=True, group="full-pass", exit_on_error=False)
     def run_full_pass(self, job: PassJob) -> None:
         """Fit and diagnose on every row (thread worker; the cancel key stops it)."""
-        self._report(job, rows=None)
+        self._report(job, rows=ALL_ROWS)
 
     def action_cancel_pass(self) -> None:
         """Stop the running full pass; the results on screen stay."""
