@@ -128,15 +128,16 @@ def add_model_options(parser: argparse.ArgumentParser, *, terms_repeatable: bool
     )
 
 
-def add_row_options(parser: argparse.ArgumentParser) -> None:
-    """Add the options that choose which rows a pass reads."""
+def add_row_options(parser: argparse.ArgumentParser, *, every_row: bool = False) -> None:
+    """Add the options that choose which rows a pass reads; `every_row` makes `all` the default."""
     group = parser.add_argument_group("rows")
+    default = "all" if every_row else f"{DEFAULT_SAMPLE_ROWS:,}"
     group.add_argument(
         "--rows",
         type=parse_rows,
-        default=DEFAULT_SAMPLE_ROWS,
+        default=ALL_ROWS if every_row else DEFAULT_SAMPLE_ROWS,
         metavar="N|all",
-        help=f"sample about N rows (default {DEFAULT_SAMPLE_ROWS:,}) or stream `all` rows",
+        help=f"sample about N rows or stream `all` rows (default {default})",
     )
     group.add_argument(
         "--seed",

@@ -710,25 +710,3 @@ def rows_in_fit(
     if not outcome.data.is_full_pass:
         inside &= np.isin(rows, outcome.sample[ROW_INDEX].to_numpy())
     return inside
-
-
-def iter_row_diagnostics(
-    source: Source,
-    outcome: FitOutcome,
-    *,
-    on_progress: ProgressCallback | None = None,
-    cancel: threading.Event | None = None,
-) -> Iterator[RowDiagnostics]:
-    """Stream every row of `source` (under the model's filter) and yield per-row diagnostics.
-
-    The fit is `outcome`'s, whether it came from a sample or from every row.
-    """
-    from triage.core.diagnostics import row_diagnostics
-
-    plan = PassPlan(source, outcome.spec, sample=None, learning_frame=outcome.sample)
-    tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
-    counts = RowCounts()
-    for frame in plan.frames(counts, tracker):
-        batch = outcome.builder.build(frame)
-        if batch.x.shape[0]:
-            yield row_diagnostics(outcome.fit, batch)
