@@ -39,12 +39,12 @@ from triage.tui.widgets.panes import (
     FitPane,
     FitsPane,
     FlagsPane,
+    GroupsPane,
+    InputsPane,
     Pane,
     PaneId,
-    PredictorsPane,
     RowPane,
     RowView,
-    SegmentsPane,
     SpreadPane,
     TrendPane,
     WorstPane,
@@ -386,8 +386,8 @@ class MainScreen(Screen[None]):
             yield FitsPane(PANE_BY_ID["fits"])
             yield SpreadPane(PANE_BY_ID["spread"])
             yield TrendPane(PANE_BY_ID["trend"])
-            yield PredictorsPane(PANE_BY_ID["predictors"])
-            yield SegmentsPane(PANE_BY_ID["segments"])
+            yield InputsPane(PANE_BY_ID["inputs"])
+            yield GroupsPane(PANE_BY_ID["groups"])
             yield WorstPane(PANE_BY_ID["worst"])
             yield RowPane(PANE_BY_ID["row"])
         yield PassLine(id="pass-line")
@@ -524,6 +524,8 @@ class MainScreen(Screen[None]):
             opened = None if self.head_start is None else self.head_start.take_opened(path)
             if opened is None:
                 opened = open_and_profile(path, csv=settings.csv, seed=settings.seed)
+            elif self.head_start is not None and self.head_start.plan_failure:
+                self.notify(self.head_start.plan_failure, severity="warning")
         except TriageError as error:
             self.post_message(PassFailed(0, str(error), "cannot open the data"))
             return
@@ -899,14 +901,14 @@ class MainScreen(Screen[None]):
         )
         self.query_one(SpreadPane).shown = fit
         self.query_one(TrendPane).shown = fit
-        predictors_pane = self.query_one(PredictorsPane)
+        predictors_pane = self.query_one(InputsPane)
         predictors_pane.predictor = predictors[self.predictor_index] if predictors else None
         predictors_pane.shown = fit
         self.query_one(FlagsPane).shown = fit
         worst = self.query_one(WorstPane)
         worst.marked = frozenset(self.marked)
         worst.show(fit, self._criterion())
-        segments = self.query_one(SegmentsPane)
+        segments = self.query_one(GroupsPane)
         columns = self.segment_columns
         segments.column = columns[self.segment_index % len(columns)] if columns else None
         segments.shown = fit
