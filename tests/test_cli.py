@@ -8,6 +8,7 @@ Error cases use small frames written in the test: they check behaviour, not numb
 from __future__ import annotations
 
 import json
+import re
 from pathlib import Path
 
 import numpy as np
@@ -320,3 +321,12 @@ def test_cli_progress_line_names_the_pass_and_counts_its_rows_once() -> None:
     line = stream.getvalue()
     assert "pass 2 of 2: 7,500,000 of 20,000,000 rows" in line
     assert "2,500,000 rows/s, about 5 s left" in line
+
+
+def test_cli_fit_holdout_prints_figures_not_a_table_for_one_model(
+    small: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    code, out, _ = run_cli(["fit", str(small), "-y", "y", "-x", "x", "--holdout", "0.25"], capsys)
+    assert code == 0
+    assert "models side by side" not in out and "◆" not in out
+    assert re.search(r"^held-out RMSE\s+\d", out, re.MULTILINE)

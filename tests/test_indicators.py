@@ -14,6 +14,7 @@ import pytest
 import statsmodels.api as sm
 
 from tests.tables import administrative_table
+from triage._typing import ALL_ROWS
 from triage.core.indicators import CodedDesign, IndicatorCodes, coded_gram
 from triage.core.lsq import QRAccumulator, UncertifiedGram
 from triage.core.spec import build_spec
@@ -159,7 +160,7 @@ def test_full_pass_with_codes_matches_statsmodels(
         weights="weight",
         reference=reference,
     )
-    outcome = passes.fit_model(source, spec, rows=None)
+    outcome = passes.fit_model(source, spec, rows=ALL_ROWS)
     used = table.drop_nulls().to_pandas()
     exog = used[["age"]].assign(log_income=np.log(used["income"]))
     for column, ref in (("region", outcome.builder.reference_levels["region"]),):

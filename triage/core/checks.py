@@ -6,7 +6,8 @@
   to look at the worst rows, not a verdict that the ordinary fit is wrong.
 - **Curvature check.** For each numeric predictor, the plain linear term is replaced by a
   cubic B-spline basis of the predictor (scikit-learn's `SplineTransformer`) and the
-  K-fold RMSE is compared with the model's own. A clear gain suggests the predictor's
+  held-out errors of K folds are compared with the model's own, by RMSE and by median
+  absolute error (robust to a few gross errors). A clear gain suggests the predictor's
   effect is curved and a transform may help.
 """
 
@@ -19,10 +20,11 @@ from typing import TYPE_CHECKING, Final
 
 import numpy as np
 
-from triage.core.holdout import kfold_rmse
+from triage.core.holdout import kfold_errors
 from triage.core.lsq import fit_arrays
 from triage.errors import DataError
 from triage.results.checks import CoefficientShift, CurvatureCheck, PredictorCurvature, RobustCheck
+from triage.results.holdout import KFoldErrors
 
 if TYPE_CHECKING:
     from numpy.typing import ArrayLike, NDArray
@@ -206,12 +208,17 @@ def curvature_check(
     seed: int = 0,
     threshold: float = CURVATURE_GAIN_THRESHOLD,
 ) -> CurvatureCheck:
-    """Compare the model's K-fold RMSE with refits that give each predictor a spline.
+    """Compare the model's held-out errors with refits that give each predictor a spline.
+
+    Every refit is scored on the same K held-out folds twice: by RMSE, and by the median
+    absolute error, which a few gross errors (a duration typed in seconds, say) barely
+    move while they can swamp the RMSE and hide a curve. Predictors are ranked by the
+    median absolute error, and flagged when either score drops by the threshold.
 
     Correlated predictors can each pick up part of one predictor's curve, so the check
     runs in two steps: every predictor's spline alone, then each other predictor's spline
     added to the spline of the one with the largest gain. The top predictor is flagged on
-    its own gain, the others on their gain given the top spline.
+    its own gains, the others on their gains given the top spline.
 
     Parameters
     ----------
@@ -246,36 +253,54 @@ def curvature_check(
     """
     xa = np.asarray(x, dtype=np.float64)
 
-    def rmse_with(splines: Sequence[str]) -> float:
+    def errors_with(splines: Sequence[str]) -> KFoldErrors:
         drop = [j for name in splines for j in linear_columns.get(name, ())]
         bases = [spline_basis(predictors[name]) for name in splines]
         design = np.hstack([np.delete(xa, drop, axis=1), *bases])
-        result = kfold_rmse(design, y, weights, has_intercept=has_intercept, folds=folds, seed=seed)
+        result = kfold_errors(
+            design, y, weights, has_intercept=has_intercept, folds=folds, seed=seed
+        )
         if result is None:
             msg = (
                 f"the curvature check needs at least {folds} rows for {folds} folds, "
                 f"got {xa.shape[0]}; use more rows or fewer `--folds`"
             )
             raise DataError(msg)
-        return result.rmse
+        return result
 
-    base = rmse_with(())
+    def drop(before: float, after: float) -> float:
+        return (before - after) / before if before > 0 else 0.0
+
+    base = errors_with(())
     # A cubic piece needs at least 4 distinct values.
     usable = [n for n, v in predictors.items() if np.unique(np.asarray(v)).size >= 4]
-    alone = {name: rmse_with((name,)) for name in usable}
-    ranked = sorted(usable, key=lambda name: alone[name])
+    alone = {name: errors_with((name,)) for name in usable}
+    ranked = sorted(usable, key=lambda name: (alone[name].median_abs_error, alone[name].rmse))
     results = []
     for rank, name in enumerate(ranked):
-        relative = (base - alone[name]) / base if base > 0 else 0.0
-        given_top = None
+        own = alone[name]
+        given_top = robust_given_top = None
         if rank > 0:
-            top_rmse = alone[ranked[0]]
-            both = rmse_with((ranked[0], name))
-            given_top = (top_rmse - both) / top_rmse if top_rmse > 0 else 0.0
-        decisive = relative if given_top is None else given_top
+            top = alone[ranked[0]]
+            both = errors_with((ranked[0], name))
+            given_top = drop(top.rmse, both.rmse)
+            robust_given_top = drop(top.median_abs_error, both.median_abs_error)
+        relative = drop(base.rmse, own.rmse)
+        robust = drop(base.median_abs_error, own.median_abs_error)
+        decisive = (relative, robust) if given_top is None else (given_top, robust_given_top or 0.0)
         results.append(
             PredictorCurvature(
-                name, alone[name], base - alone[name], relative, given_top, decisive >= threshold
+                predictor=name,
+                spline_rmse=own.rmse,
+                gain=base.rmse - own.rmse,
+                relative_gain=relative,
+                relative_gain_given_top=given_top,
+                spline_median_abs_error=own.median_abs_error,
+                robust_gain=robust,
+                robust_gain_given_top=robust_given_top,
+                is_flagged=max(decisive) >= threshold,
             )
         )
-    return CurvatureCheck(xa.shape[0], folds, base, tuple(results), threshold)
+    return CurvatureCheck(
+        xa.shape[0], folds, base.rmse, base.median_abs_error, tuple(results), threshold
+    )

@@ -26,10 +26,17 @@ from triage.core.holdout import (
     kfold_rmse,
     random_holdout_mask,
 )
+from triage.core.limits import check_factor_scale
 from triage.core.lsq import QRAccumulator
 from triage.data.base import random_keys
 from triage.data.source import ROW_INDEX
-from triage.engine.passes import DEFAULT_SAMPLE_ROWS, PassPlan, RowCounts, check_rows_left
+from triage.engine.passes import (
+    DEFAULT_SAMPLE_ROWS,
+    PassPlan,
+    RowCounts,
+    check_rows_left,
+    naming_values_too_large,
+)
 from triage.engine.progress import ProgressCallback, ProgressTracker
 from triage.errors import SpecError
 from triage.results.checks import CurvatureCheck, RobustCheck
@@ -38,7 +45,7 @@ from triage.results.fit import FitOutcome
 from triage.results.holdout import KFoldResult
 
 if TYPE_CHECKING:
-    from triage._typing import SampleDesign
+    from triage._typing import RowsToRead, Sampling
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
 
@@ -123,9 +130,9 @@ def compare_models(
     specs: Sequence[ModelSpec],
     labels: Sequence[str],
     *,
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
-    design: SampleDesign = "groups",
+    sampling: Sampling = "groups",
     holdout: HoldoutRule | None = None,
     folds: int = 5,
     exclude_rows: Collection[int] = (),
@@ -142,11 +149,11 @@ def compare_models(
         The models; they must share target, weights and filter.
     labels : sequence of str
         Each model's terms as written, for the table.
-    rows : int or None, default=200_000
-        Sample size; None streams every row.
+    rows : int or ALL_ROWS, default=200_000
+        Sample size; `ALL_ROWS` streams every row.
     seed : int, default=0
         Seed of the sample, of the held-out split and of the fold assignment.
-    design : {"groups", "uniform"}, default="groups"
+    sampling : {"groups", "uniform"}, default="groups"
         How the sample is drawn.
     holdout : HoldoutRule, optional
         Rows to hold out of every fit and score afterwards; with it, in-sample figures
@@ -186,7 +193,7 @@ def compare_models(
         specs[0],
         rows=rows,
         seed=seed,
-        design=design,
+        sampling=sampling,
         exclude_rows=exclude_rows,
         extra_columns=list(dict.fromkeys(extra)),
     )
@@ -205,8 +212,11 @@ def compare_models(
         is_held = np.isin(batches[0].rows, held_positions)
         n_held += int(is_held.sum())
         counts.used += int((~is_held).sum())
-        for batch, accumulator, scorer in zip(batches, accumulators, scorers, strict=True):
-            _split_update(batch, is_held, accumulator, scorer)
+        for builder, batch, accumulator, scorer in zip(
+            builders, batches, accumulators, scorers, strict=True
+        ):
+            with naming_values_too_large(builder, frame):
+                _split_update(batch, is_held, accumulator, scorer)
     check_rows_left(counts, specs[0])
     summary = plan.summary(counts)
     cvs = _sample_kfold(builders, common_sample, holdout, exclude_rows, folds, seed)
@@ -214,6 +224,7 @@ def compare_models(
     for label, builder, accumulator, scorer, cv in zip(
         labels, builders, accumulators, scorers, cvs, strict=True
     ):
+        check_factor_scale(accumulator.factor, builder.column_names, builder.spec.target)
         fit = accumulator.finalize(builder.column_names)
         outcome = FitOutcome(builder.spec, builder, fit, summary, common_sample)
         score = scorer.score(fit.coef) if holdout is not None else None

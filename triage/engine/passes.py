@@ -17,22 +17,24 @@ from typing import TYPE_CHECKING, TypeVar
 import numpy as np
 import polars as pl
 
+from triage._typing import ALL_ROWS
 from triage.core.design import CodedBatch, DesignBatch, DesignBudget, DesignBuilder
 from triage.core.filter import parse_filter
 from triage.core.levels import LevelCounter
+from triage.core.limits import check_column_values, check_factor_scale
 from triage.core.lsq import QRAccumulator, UncertifiedGram
 from triage.data.source import ROW_INDEX
 from triage.engine.allocator import keep_batch_memory
 from triage.engine.progress import ProgressCallback, ProgressTracker, ReadAhead
 from triage.engine.workers import fold_in_order, pass_workers
-from triage.errors import DataError
+from triage.errors import DataError, TriageError
 from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
 from triage.results.progress import PassProgress
 
 if TYPE_CHECKING:
     from numpy.typing import NDArray
 
-    from triage._typing import SampleDesign
+    from triage._typing import RowsToRead, Sampling
     from triage.core.levels import LevelTable
     from triage.core.lsq import LinearFit
     from triage.core.spec import ModelSpec
@@ -74,14 +76,15 @@ MEMORY_SHARE = 0.5
 def default_memory_limit() -> int:
     """Bytes a design may take by default: `MEMORY_SHARE` of the machine's memory.
 
-    A lower address-space limit on the process (``ulimit -v``) counts instead.
+    A lower address-space or data limit on the process (``ulimit -v``, ``-d``) counts instead.
     """
     import resource
 
     total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
-    soft, _ = resource.getrlimit(resource.RLIMIT_AS)
-    if soft != resource.RLIM_INFINITY:
-        total = min(total, soft)
+    for kind in (resource.RLIMIT_AS, resource.RLIMIT_DATA):
+        soft, _ = resource.getrlimit(kind)
+        if soft != resource.RLIM_INFINITY:
+            total = min(total, soft)
     return int(total * MEMORY_SHARE)
 
 
@@ -153,21 +156,21 @@ class PassPlan:
         source: Source,
         spec: ModelSpec,
         *,
-        rows: int | None,
+        rows: RowsToRead,
         seed: int,
-        design: SampleDesign,
+        sampling: Sampling,
         exclude_rows: Collection[int],
         extra_columns: Sequence[str] = (),
     ) -> PassPlan:
         """Draw the sample (a quick fit's rows, or a full pass's learning rows); plan the pass."""
         sample = source.read_sample(
             _pass_columns(spec, extra_columns),
-            n_rows=rows if rows is not None else LEARNING_SAMPLE_ROWS,
+            n_rows=LEARNING_SAMPLE_ROWS if rows is ALL_ROWS else rows,
             seed=seed,
-            design=design,
+            sampling=sampling,
             where=_parse_where(source, spec),
         )
-        streams = rows is None and not sample.is_whole
+        streams = rows is ALL_ROWS and not sample.is_whole
         return cls(
             source,
             spec,
@@ -314,12 +317,13 @@ class PassPlan:
             is_full_pass=self.is_full_pass,
         )
 
-    def count_levels(self, tracker: ProgressTracker) -> dict[str, LevelTable] | None:
+    def count_levels(self, tracker: ProgressTracker, cap: int) -> dict[str, LevelTable] | None:
         """Count every level of the model's categoricals over every row, or None for a sample.
 
         A full pass reads only the categorical columns first (the filter's columns too),
         so its design has every level present and never drops a row as unseen. Rows the
-        user marked are counted: the coding is that of the rows under the filter.
+        user marked are counted: the coding is that of the rows under the filter. A column
+        stops being counted past `cap` levels (it is refused then, whatever its count).
         """
         columns = [t.column for t in self.spec.terms if t.kind == "categorical" and t.column]
         if self.sample is not None or not columns:
@@ -330,7 +334,7 @@ class PassPlan:
             counter.update(frame)
 
         return self.fold_frames(
-            lambda: LevelCounter(schema, columns),
+            lambda: LevelCounter(schema, columns, cap=cap),
             fold,
             LevelCounter.merge,
             RowCounts(),
@@ -349,11 +353,12 @@ class PassPlan:
             batch_rows=batch_rows_for(len(self.columns), FIT_BATCH_VALUES),
             n_workers=pass_workers(),
         )
+        cap = min(spec.max_levels, budget.max_columns())
         return DesignBuilder.learn(
             spec,
             self.source.schema(),
             self.learning_frame,
-            level_tables=self.count_levels(tracker),
+            level_tables=self.count_levels(tracker, cap),
             budget=budget,
         )
 
@@ -371,6 +376,35 @@ def _parse_where(source: Source, spec: ModelSpec) -> pl.Expr | None:
 def _pass_columns(spec: ModelSpec, extra_columns: Sequence[str]) -> list[str]:
     columns = list(spec.source_columns())
     return columns + [c for c in extra_columns if c not in columns]
+
+
+@contextlib.contextmanager
+def naming_values_too_large(builder: DesignBuilder, frame: pl.DataFrame) -> Iterator[None]:
+    """Turn a failure of the fit on a batch into an error naming a column too large to fit.
+
+    Values near the float limit overflow the fit's sums of squares, which shows up as a
+    floating-point warning or an error about non-finite values; the batch is then built
+    again, quietly, to find the column (or target) responsible. Other failures pass as
+    they were.
+    """
+    try:
+        yield
+    except (DataError, ArithmeticError, RuntimeWarning):
+        columns = _design_quietly(builder, frame)
+        if columns is not None:
+            check_column_values(columns)
+        raise
+
+
+def _design_quietly(builder: DesignBuilder, frame: pl.DataFrame) -> dict[str, np.ndarray] | None:
+    """Build `frame`'s design columns and target by label, or None if that fails too."""
+    try:
+        with np.errstate(all="ignore"):  # numpy's error state is per thread: safe in a worker
+            batch = builder.build(frame)
+    except (TriageError, ArithmeticError, RuntimeWarning):
+        return None
+    design = dict(zip(builder.column_names, batch.x.T, strict=True))
+    return {**design, builder.spec.target: batch.y}
 
 
 def check_rows_left(counts: RowCounts, spec: ModelSpec) -> None:
@@ -395,9 +429,9 @@ def fit_model(
     source: Source,
     spec: ModelSpec,
     *,
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
-    design: SampleDesign = "groups",
+    sampling: Sampling = "groups",
     exclude_rows: Collection[int] = (),
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
@@ -410,11 +444,11 @@ def fit_model(
         Where the rows come from.
     spec : ModelSpec
         The model, already validated against the source's schema.
-    rows : int or None, default=200_000
-        Sample size; None streams every row in bounded memory.
+    rows : int or ALL_ROWS, default=200_000
+        Sample size; `ALL_ROWS` streams every row in bounded memory.
     seed : int, default=0
         Seed of the sample.
-    design : {"groups", "uniform"}, default="groups"
+    sampling : {"groups", "uniform"}, default="groups"
         How the sample is drawn (see `Source.read_sample`).
     exclude_rows : collection of int
         Source positions to leave out (a what-if refit; the file is never changed).
@@ -432,7 +466,7 @@ def fit_model(
     DataError
         When no rows are left or the data cannot support the fit.
     """
-    if rows is None and not DesignBuilder.learns_from_sample(spec):
+    if rows is ALL_ROWS and not DesignBuilder.learns_from_sample(spec):
         # Nothing to learn: a full pass skips the sample (0.3 s on a 20-million-row file).
         schema = source.schema()
         columns = {c: schema[c] for c in _pass_columns(spec, ())}
@@ -442,7 +476,7 @@ def fit_model(
         )
     else:
         plan = PassPlan.read(
-            source, spec, rows=rows, seed=seed, design=design, exclude_rows=exclude_rows
+            source, spec, rows=rows, seed=seed, sampling=sampling, exclude_rows=exclude_rows
         )
     return _fit(plan, on_progress=on_progress, cancel=cancel)
 
@@ -484,19 +518,20 @@ def _fit_pass(
         return accumulator, RowCounts()
 
     def fold(part: tuple[QRAccumulator, RowCounts], frame: pl.DataFrame) -> None:
-        accumulator, part_counts = part
-        columns = builder.build_columns(frame)
-        if columns is not None and accumulator.update_columns(columns.predictors, columns.y):
-            part_counts.used += columns.n_rows
-            return
-        coded = builder.build_coded(frame) if use_codes else None
-        if coded is not None and accumulator.update_coded(coded.design, coded.y, coded.weights):
-            part_counts.add(coded)
-            return
-        # Rows to drop (nulls, NaN, levels, domain) or weights: the batch's full build.
-        batch = builder.build(frame)
-        part_counts.add(batch)
-        accumulator.update(batch.x, batch.y, batch.weights)
+        with naming_values_too_large(builder, frame):
+            accumulator, part_counts = part
+            columns = builder.build_columns(frame)
+            if columns is not None and accumulator.update_columns(columns.predictors, columns.y):
+                part_counts.used += columns.n_rows
+                return
+            coded = builder.build_coded(frame) if use_codes else None
+            if coded is not None and accumulator.update_coded(coded.design, coded.y, coded.weights):
+                part_counts.add(coded)
+                return
+            # Rows to drop (nulls, NaN, levels, domain) or weights: the batch's full build.
+            batch = builder.build(frame)
+            part_counts.add(batch)
+            accumulator.update(batch.x, batch.y, batch.weights)
 
     def merge(
         part: tuple[QRAccumulator, RowCounts], other: tuple[QRAccumulator, RowCounts]
@@ -526,6 +561,7 @@ def _finalize_fit(
             "drop terms, loosen `--where`, or use more rows (`--rows`)"
         )
         raise DataError(msg)
+    check_factor_scale(accumulator.factor, builder.column_names, spec.target)
     fit = accumulator.finalize(builder.column_names)
     if not fit.tss > 0:
         msg = (
@@ -540,9 +576,9 @@ def run_report(
     source: Source,
     spec: ModelSpec,
     *,
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
-    design: SampleDesign = "groups",
+    sampling: Sampling = "groups",
     exclude_rows: Collection[int] = (),
     top_k: int = 20,
     by: Sequence[str] = (),
@@ -565,7 +601,7 @@ def run_report(
         spec,
         rows=rows,
         seed=seed,
-        design=design,
+        sampling=sampling,
         exclude_rows=exclude_rows,
         extra_columns=by,
     )
@@ -710,25 +746,3 @@ def rows_in_fit(
     if not outcome.data.is_full_pass:
         inside &= np.isin(rows, outcome.sample[ROW_INDEX].to_numpy())
     return inside
-
-
-def iter_row_diagnostics(
-    source: Source,
-    outcome: FitOutcome,
-    *,
-    on_progress: ProgressCallback | None = None,
-    cancel: threading.Event | None = None,
-) -> Iterator[RowDiagnostics]:
-    """Stream every row of `source` (under the model's filter) and yield per-row diagnostics.
-
-    The fit is `outcome`'s, whether it came from a sample or from every row.
-    """
-    from triage.core.diagnostics import row_diagnostics
-
-    plan = PassPlan(source, outcome.spec, sample=None, learning_frame=outcome.sample)
-    tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
-    counts = RowCounts()
-    for frame in plan.frames(counts, tracker):
-        batch = outcome.builder.build(frame)
-        if batch.x.shape[0]:
-            yield row_diagnostics(outcome.fit, batch)

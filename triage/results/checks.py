@@ -54,7 +54,7 @@ class RobustCheck:
 
 @dataclass(frozen=True)
 class PredictorCurvature:
-    """The curvature check of one predictor."""
+    """The curvature check of one predictor, scored by RMSE and by median absolute error."""
 
     predictor: str
     """Source column."""
@@ -65,9 +65,15 @@ class PredictorCurvature:
     relative_gain: float
     """`gain` as a share of the model's K-fold RMSE."""
     relative_gain_given_top: float | None
-    """Relative gain of this spline added to the top predictor's spline; None for the top."""
+    """RMSE gain of this spline added to the top predictor's spline; None for the top."""
+    spline_median_abs_error: float
+    """Median absolute held-out error with the spline basis in place of the plain term."""
+    robust_gain: float
+    """Relative drop of the median absolute held-out error (a few gross errors barely move it)."""
+    robust_gain_given_top: float | None
+    """`robust_gain` of this spline added to the top predictor's spline; None for the top."""
     is_flagged: bool
-    """Whether the relative gain reaches the threshold (given the top spline, for the others)."""
+    """Whether either relative gain reaches the threshold (given the top spline, for the others)."""
 
 
 @dataclass(frozen=True)
@@ -80,8 +86,10 @@ class CurvatureCheck:
     """Folds of the cross-validation."""
     base_rmse: float
     """K-fold RMSE of the model as written."""
+    base_median_abs_error: float
+    """Median absolute held-out error of the model as written, on the same folds."""
     predictors: tuple[PredictorCurvature, ...]
-    """One entry per predictor, largest gain first."""
+    """One entry per predictor, largest robust gain first."""
     threshold: float
     """Relative gain at which a predictor is flagged."""
 

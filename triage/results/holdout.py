@@ -6,7 +6,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["HoldoutScore", "KFoldResult"]
+__all__ = ["HoldoutScore", "KFoldErrors", "KFoldResult"]
 
 
 @dataclass(frozen=True)
@@ -38,3 +38,18 @@ class KFoldResult:
     def rmse(self) -> float:
         """Mean of the per-fold RMSEs (scikit-learn's ``cross_val_score`` convention)."""
         return float(np.mean(self.fold_rmse))
+
+
+@dataclass(frozen=True)
+class KFoldErrors:
+    """Held-out errors of one design under K-fold cross-validation, scored two ways."""
+
+    folds: int
+    """Number of folds."""
+    rmse: float
+    """Mean of the per-fold RMSEs (as `KFoldResult.rmse`)."""
+    median_abs_error: float
+    """Median of every row's absolute held-out error (``sqrt(w) |e|`` with weights).
+
+    A few gross errors move it hardly at all, where they can dominate the RMSE.
+    """

@@ -7,7 +7,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from triage._typing import SampleDesign
+from triage._typing import Sampling
 
 if TYPE_CHECKING:
     from triage.data.source import CsvOptions
@@ -48,7 +48,7 @@ class Settings:
     """Start a pass over every row as soon as the model is fitted on the sample."""
     seed: int = 0
     """Seed of the sample, so a session can be repeated."""
-    sample_design: SampleDesign = "groups"
+    sampling: Sampling = "groups"
     """How the sample is drawn: `groups` (whole row groups at random) or `uniform`."""
     keyset: str | None = None
     """A shipped alternative keymap laid over the default, e.g. `fkeys`."""

@@ -25,6 +25,7 @@ from triage.views.format import (
 
 if TYPE_CHECKING:
     from triage._typing import Criterion
+    from triage.core.design import DesignBuilder
     from triage.core.lsq import LinearFit
     from triage.core.spec import ModelSpec
     from triage.results.diagnostics import Diagnostics
@@ -233,6 +234,61 @@ def render_model(spec: ModelSpec, *, width: int = 100) -> str:
     if spec.where:
         pairs.append(("rows where", spec.where))
     return rule("model", width) + "\n" + _pairs(pairs, width)
+
+
+CODING_RULE: Final = (
+    "each indicator's coefficient is its level's difference from the reference level; "
+    "the reference is the level with the most rows (ties: the first in natural order) "
+    "unless `--reference COL=LEVEL` names one"
+)
+"""The reference rule, said under the coding section."""
+
+
+def coding_lines(builder: DesignBuilder) -> list[tuple[str, str]]:
+    """Describe each categorical's coding: its level count and reference, and why that one.
+
+    Parameters
+    ----------
+    builder : DesignBuilder
+        The fitted model's design.
+
+    Returns
+    -------
+    list of (str, str)
+        (column, e.g. ``12 levels, reference R00 (most rows: 151,234 of 970,479)``).
+    """
+    lines = []
+    for column, table in builder.level_tables.items():
+        reference = builder.reference_levels[column]
+        if column in builder.spec.reference:
+            why = "named with --reference"
+        else:
+            n_reference = table.counts[table.levels.index(reference)]
+            why = f"most rows: {n_reference:,} of {table.n_rows:,}"
+        lines.append((column, f"{len(table.levels):,} levels, reference {reference} ({why})"))
+    return lines
+
+
+def render_coding(builder: DesignBuilder, *, width: int = 100) -> str:
+    """Show the reference level of each categorical term and the rule that chose it.
+
+    Parameters
+    ----------
+    builder : DesignBuilder
+        The fitted model's design.
+    width : int, default=100
+        Line width.
+
+    Returns
+    -------
+    str
+        The ``categorical coding`` section, or "" for a model without categoricals.
+    """
+    lines = coding_lines(builder)
+    if not lines:
+        return ""
+    note = textwrap.fill(CODING_RULE, width=width)
+    return f"{rule('categorical coding', width)}\n{_pairs(lines, width)}\n{note}"
 
 
 def _grouped(groups: Sequence[tuple[str, Sequence[tuple[str, str]]]], width: int) -> str:
@@ -681,6 +737,7 @@ def render_fit_report(outcome: FitOutcome, *, width: int = 100) -> str:
             render_model(outcome.spec, width=width),
             render_fit_quality(outcome.fit, target=outcome.spec.target, width=width),
             render_coefficients(outcome.fit, width=width),
+            render_coding(outcome.builder, width=width),
             render_aliased(outcome.fit, width=width),
         ]
     )
@@ -731,6 +788,7 @@ def render_full_report(
         render_fit_quality(outcome.fit, target=outcome.spec.target, width=width),
         render_flags(diagnostics.flags, width=width),
         render_coefficients(outcome.fit, robust_se=hc3, robust_label="HC3", width=width),
+        render_coding(outcome.builder, width=width),
         render_aliased(outcome.fit, width=width),
         render_tests(diagnostics, is_ordered=is_ordered, width=width),
         render_residual_summary(diagnostics, width=width),

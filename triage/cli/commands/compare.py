@@ -55,6 +55,7 @@ def run(args: argparse.Namespace) -> int:
     """Run `triage compare`."""
     from triage.cli.options import holdout_rule_from_args, open_source_from_args, spec_from_args
     from triage.cli.progress import StderrProgress
+    from triage.cli.signals import stop_event
     from triage.engine.compare import (
         compare_models,
         curvature_check_outcome,
@@ -74,10 +75,11 @@ def run(args: argparse.Namespace) -> int:
             labels,
             rows=args.rows,
             seed=args.seed,
-            design=args.sample,
+            sampling=args.sample,
             holdout=rule,
             folds=args.folds,
             on_progress=progress,
+            cancel=stop_event,
         )
     finally:
         progress.finish()

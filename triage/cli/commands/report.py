@@ -65,6 +65,7 @@ def run(args: argparse.Namespace) -> int:
     """Run `triage report`."""
     from triage.cli.options import open_source_from_args, spec_from_args
     from triage.cli.progress import StderrProgress
+    from triage.cli.signals import stop_event
     from triage.engine.passes import run_report
 
     source = open_source_from_args(args)
@@ -76,11 +77,12 @@ def run(args: argparse.Namespace) -> int:
             spec,
             rows=args.rows,
             seed=args.seed,
-            design=args.sample,
+            sampling=args.sample,
             top_k=args.top,
             by=segment_columns(args),
             is_ordered=args.ordered,
             on_progress=progress,
+            cancel=stop_event,
         )
     finally:
         progress.finish()
