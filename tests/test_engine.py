@@ -16,6 +16,7 @@ import numpy as np
 import polars as pl
 import pytest
 
+from triage._typing import ALL_ROWS
 from triage.core.spec import build_spec
 from triage.data import parquet as parquet_module
 from triage.data.source import open_source
@@ -55,7 +56,7 @@ def test_engine_progress_counts_each_row_once_per_pass_and_names_the_pass(
     source = open_source(data_file)
     spec = build_spec(source.schema(), target="y", terms="a, b")
     seen: list[PassProgress] = []
-    report = passes.run_report(source, spec, rows=None, on_progress=seen.append)
+    report = passes.run_report(source, spec, rows=ALL_ROWS, on_progress=seen.append)
     assert [p.pass_number for p in seen] == sorted(p.pass_number for p in seen)
     assert {p.pass_number for p in seen} == {1, 2}
     for number in (1, 2):
@@ -92,7 +93,7 @@ def test_engine_cancel_stops_within_one_batch(data_file: Path, stop_after: int) 
             cancel.set()
 
     with pytest.raises(PassCancelled):
-        passes.fit_model(source, spec, rows=None, on_progress=on_progress, cancel=cancel)
+        passes.fit_model(source, spec, rows=ALL_ROWS, on_progress=on_progress, cancel=cancel)
     assert len(reports) == stop_after  # no batch was read after the one that set it
     assert reports[-1] == stop_after * BATCH
 
@@ -106,7 +107,7 @@ def test_engine_cancel_stops_a_pass_read_in_parts(
     cancel = threading.Event()
     cancel.set()
     with pytest.raises(PassCancelled):
-        passes.fit_model(source, spec, rows=None, cancel=cancel)
+        passes.fit_model(source, spec, rows=ALL_ROWS, cancel=cancel)
 
 
 def test_engine_fold_in_order_merges_in_unit_order_whoever_finishes_first() -> None:
@@ -224,7 +225,7 @@ def test_engine_report_is_the_same_for_1_2_and_8_workers(
     try:
         for n_workers in (1, 2, 8):
             set_pass_workers(n_workers)
-            report = passes.run_report(source, spec, rows=None, by=("region",), top_k=10)
+            report = passes.run_report(source, spec, rows=ALL_ROWS, by=("region",), top_k=10)
             reports[n_workers] = report
     finally:
         set_pass_workers(None)
@@ -268,7 +269,7 @@ def test_engine_full_pass_drops_missing_values_in_some_batches(tmp_path: Path) -
     pl.DataFrame({"y": y, "a": a, "b": x[:, 1]}).write_parquet(path, row_group_size=2_500)
     source = open_source(path)
     outcome = passes.fit_model(
-        source, build_spec(source.schema(), target="y", terms="a, b"), rows=None
+        source, build_spec(source.schema(), target="y", terms="a, b"), rows=ALL_ROWS
     )
     usable = np.ones(N_ROWS, dtype=bool)
     usable[[1_500, 7_001, 12_345]] = False

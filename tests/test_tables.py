@@ -23,6 +23,7 @@ import pyarrow.parquet as pq
 import pytest
 
 import triage.engine.passes as passes
+from triage._typing import ALL_ROWS
 from triage.core.levels import LevelCounter
 from triage.core.spec import build_spec
 from triage.data.source import open_source
@@ -97,7 +98,7 @@ def _fit(path: Path, **options: object) -> FitOutcome:
         terms="cost ~ age + region + office + cat(month)",
         **options,  # type: ignore[arg-type]
     )
-    return fit_model(source, spec, rows=None)
+    return fit_model(source, spec, rows=ALL_ROWS)
 
 
 def test_sorted_table_full_pass_uses_every_row_and_matches_statsmodels(
@@ -226,7 +227,7 @@ def test_fit_json_rebuilds_the_model(tmp_path: Path, small_learning_sample: None
     frame.write_parquet(path, row_group_size=GROUP_ROWS)
     source = open_source(path)
     spec = build_spec(source.schema(), target=None, terms="cost ~ std(age) + region + cat(month)")
-    document = json.loads(json.dumps(fit_to_json(fit_model(source, spec, rows=None))))
+    document = json.loads(json.dumps(fit_to_json(fit_model(source, spec, rows=ALL_ROWS))))
     model = document["model"]
     data = frame.drop_nulls()
     columns = [np.ones(data.height)]
@@ -348,7 +349,7 @@ def test_cat_of_a_stray_text_column_still_fits_it_as_a_category(tmp_path: Path) 
     source = open_source(path)
     assert source.schema()["code"] == pl.Int64  # read as numbers: cat() makes a category
     spec = build_spec(source.schema(), target=None, terms="y ~ cat(code)")
-    outcome = fit_model(source, spec, rows=None)
+    outcome = fit_model(source, spec, rows=ALL_ROWS)
     assert outcome.builder.levels["code"] == ("0", "1", "2")
 
 
@@ -360,3 +361,60 @@ def test_level_counter_stops_past_its_cap_and_says_so() -> None:
     table = counter.finalize()["id"]
     assert table.is_partial
     assert 100 < len(table.levels) <= 1_000  # stopped after the batch that passed the cap
+
+
+# ── exports account for every row ────────────────────────────────────────────────────
+
+
+def test_export_all_holds_every_row_and_its_status_matches_the_fit(
+    tmp_path: Path, small_learning_sample: None, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from triage.cli.main import main
+
+    frame = _claims_table()
+    path = tmp_path / "claims.parquet"
+    frame.write_parquet(path, row_group_size=GROUP_ROWS)
+    terms = "cost ~ sqrt(age) + region + cat(month)"
+    where = "office <> 'OF000'"
+    out = tmp_path / "all.csv"
+    assert (
+        main(["export", str(path), "--terms", terms, "--where", where, "--all", "--out", str(out)])
+        == 0
+    )
+    printed = capsys.readouterr().out
+    written = pl.read_csv(out)
+    # one line per source row, in source order
+    assert written.get_column("row").to_list() == list(range(N_ROWS))
+    statuses = dict(written.group_by("status").len().iter_rows())
+    # the counts of the same model's full fit (and of the data, counted here independently)
+    source = open_source(path)
+    spec = build_spec(source.schema(), target=None, terms=terms, where=where)
+    data = fit_model(source, spec, rows=ALL_ROWS).data
+    in_filter = frame.get_column("office") != "OF000"
+    assert statuses["removed by the filter"] == data.rows_filtered_out == (~in_filter).sum()
+    assert statuses["missing value"] == data.rows_dropped_missing
+    assert statuses["missing value"] == frame.filter(in_filter).get_column("age").null_count()
+    assert statuses["used"] == data.rows_used
+    assert sum(statuses.values()) == data.rows_in_source == N_ROWS
+    # diagnostics only where the row was used
+    used = written.filter(pl.col("status") == "used")
+    assert used.get_column("fitted").null_count() == 0
+    assert written.filter(pl.col("status") != "used").get_column("fitted").null_count() == (
+        N_ROWS - data.rows_used
+    )
+    assert f"wrote {N_ROWS:,} rows" in printed and f"{data.rows_used:,} used" in printed
+
+
+def test_export_worst_ranks_every_row_by_default_and_names_a_sample(
+    tmp_path: Path, small_learning_sample: None, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from triage.cli.main import main
+
+    path = tmp_path / "claims.parquet"
+    _claims_table().write_parquet(path, row_group_size=GROUP_ROWS)
+    args = ["export", str(path), "--terms", "cost ~ age + region", "--worst", "5"]
+    assert main([*args, "--out", str(tmp_path / "a.csv")]) == 0
+    assert "among every row" in capsys.readouterr().out
+    assert main([*args, "--rows", "2000", "--out", str(tmp_path / "b.csv")]) == 0
+    printed = capsys.readouterr().out
+    assert "among a SAMPLE" in printed and "`--rows all` ranks every row" in printed

@@ -19,6 +19,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from tests.json_contract import COEFFICIENT_KEYS, FIT_SECTIONS
+from triage._typing import ALL_ROWS
 from triage.core.spec import build_spec
 from triage.data.source import open_source
 from triage.engine.passes import fit_model, run_report
@@ -145,7 +146,7 @@ def trips_path(tmp_path_factory: pytest.TempPathFactory, trips: pl.DataFrame) ->
 def report(trips_path: Path) -> ReportOutcome:
     source = open_source(trips_path)
     spec = build_spec(source.schema(), target="y", terms="x, z, g, twice_x")
-    return run_report(source, spec, rows=None, top_k=5, by=("g",))
+    return run_report(source, spec, rows=ALL_ROWS, top_k=5, by=("g",))
 
 
 @pytest.fixture(scope="module")
@@ -379,7 +380,7 @@ def test_views_binned_chart_shows_missed_curve(tmp_path: Path) -> None:
     pl.DataFrame({"y": y, "x": x}).write_parquet(path)
     source = open_source(path)
     spec = build_spec(source.schema(), target="y", terms="x")
-    bins = run_report(source, spec, rows=None).diagnostics.binned["x"]
+    bins = run_report(source, spec, rows=ALL_ROWS).diagnostics.binned["x"]
     resid = y - np.polyval(np.polyfit(x, y, 1), x)
     assert resid[x < -2.5].mean() > 0 > resid[np.abs(x) < 0.5].mean()
     text = render_binned(bins, 120, 30, title="by x", x_label="x", color=False)

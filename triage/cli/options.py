@@ -6,6 +6,8 @@ import argparse
 from collections.abc import Callable
 from typing import TYPE_CHECKING
 
+from triage._typing import ALL_ROWS, RowsToRead
+
 if TYPE_CHECKING:
     from triage.core.holdout import HoldoutRule
     from triage.core.spec import ModelSpec
@@ -39,10 +41,10 @@ def integer_option(name: str, *, minimum: int) -> Callable[[str], int]:
     return parse
 
 
-def parse_rows(text: str) -> int | None:
-    """Parse `--rows`: a positive integer, or `all` (returned as None)."""
+def parse_rows(text: str) -> RowsToRead:
+    """Parse `--rows`: a positive integer, or `all` (returned as `ALL_ROWS`)."""
     if text.strip().lower() == "all":
-        return None
+        return ALL_ROWS
     try:
         return integer_option("--rows", minimum=1)(text)
     except argparse.ArgumentTypeError:
@@ -126,15 +128,16 @@ def add_model_options(parser: argparse.ArgumentParser, *, terms_repeatable: bool
     )
 
 
-def add_row_options(parser: argparse.ArgumentParser) -> None:
-    """Add the options that choose which rows a pass reads."""
+def add_row_options(parser: argparse.ArgumentParser, *, every_row: bool = False) -> None:
+    """Add the options that choose which rows a pass reads; `every_row` makes `all` the default."""
     group = parser.add_argument_group("rows")
+    default = "all" if every_row else f"{DEFAULT_SAMPLE_ROWS:,}"
     group.add_argument(
         "--rows",
         type=parse_rows,
-        default=DEFAULT_SAMPLE_ROWS,
+        default=ALL_ROWS if every_row else DEFAULT_SAMPLE_ROWS,
         metavar="N|all",
-        help=f"sample about N rows (default {DEFAULT_SAMPLE_ROWS:,}) or stream `all` rows",
+        help=f"sample about N rows or stream `all` rows (default {default})",
     )
     group.add_argument(
         "--seed",

@@ -34,6 +34,15 @@ ROW_INDEX: Final = "__row"
 INTERCEPT: Final = "intercept"
 """Name of the column of ones, and of its term."""
 
+STATUS_USED: Final = "used"
+"""`DesignBuilder.row_status` of a row the design keeps."""
+STATUS_MISSING: Final = "missing value"
+"""A row with a null, NaN or infinite value in a model column."""
+STATUS_UNSEEN: Final = "level not in the fit"
+"""A row whose categorical level the fit did not learn (only after a sample fit)."""
+STATUS_DOMAIN: Final = "outside a transform's domain"
+"""A row outside a transform's domain, with weight <= 0, or too large for float64."""
+
 _Y: Final = "__y"
 _W: Final = "__w"
 _PRESENT: Final = "__present"
@@ -683,6 +692,36 @@ class DesignBuilder:
             return None
         *predictors, y = (series.to_numpy() for series in design.get_columns())
         return DesignColumns(predictors=predictors, y=y)
+
+    def row_status(self, frame: pl.DataFrame) -> pl.Series:
+        """Say for each row whether `build` keeps it, or the first reason it leaves it out.
+
+        The reasons and their order are those `build` counts: ``missing value``,
+        ``level not in the fit``, ``outside a transform's domain``; a kept row is ``used``.
+        A row whose design values overflow float64 is found only by `build`.
+
+        Parameters
+        ----------
+        frame : polars.DataFrame
+            Rows holding the spec's source columns.
+
+        Returns
+        -------
+        polars.Series
+            Text, one value per row of `frame`, named ``status``.
+        """
+        masks = frame.select(self._masks)
+        bad = _any([pl.col(check.name) for check in self._checks])
+        status = (
+            pl.when(~pl.col(_PRESENT))
+            .then(pl.lit(STATUS_MISSING))
+            .when(~pl.col(_IN_LEVELS))
+            .then(pl.lit(STATUS_UNSEEN))
+            .when(bad)
+            .then(pl.lit(STATUS_DOMAIN))
+            .otherwise(pl.lit(STATUS_USED))
+        )
+        return masks.select(status.alias("status")).to_series()
 
     def _drop_rows(self, frame: pl.DataFrame) -> tuple[pl.DataFrame, int, int, int]:
         """Drop unusable rows and count them (missing, unseen level, domain), or raise."""

@@ -45,7 +45,7 @@ from triage.results.fit import FitOutcome
 from triage.results.holdout import KFoldResult
 
 if TYPE_CHECKING:
-    from triage._typing import Sampling
+    from triage._typing import RowsToRead, Sampling
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
 
@@ -130,7 +130,7 @@ def compare_models(
     specs: Sequence[ModelSpec],
     labels: Sequence[str],
     *,
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
     sampling: Sampling = "groups",
     holdout: HoldoutRule | None = None,
@@ -149,8 +149,8 @@ def compare_models(
         The models; they must share target, weights and filter.
     labels : sequence of str
         Each model's terms as written, for the table.
-    rows : int or None, default=200_000
-        Sample size; None streams every row.
+    rows : int or ALL_ROWS, default=200_000
+        Sample size; `ALL_ROWS` streams every row.
     seed : int, default=0
         Seed of the sample, of the held-out split and of the fold assignment.
     sampling : {"groups", "uniform"}, default="groups"

@@ -17,6 +17,7 @@ from typing import TYPE_CHECKING, TypeVar
 import numpy as np
 import polars as pl
 
+from triage._typing import ALL_ROWS
 from triage.core.design import DesignBatch, DesignBudget, DesignBuilder
 from triage.core.filter import parse_filter
 from triage.core.levels import LevelCounter
@@ -33,7 +34,7 @@ from triage.results.progress import PassProgress
 if TYPE_CHECKING:
     from numpy.typing import NDArray
 
-    from triage._typing import Sampling
+    from triage._typing import RowsToRead, Sampling
     from triage.core.levels import LevelTable
     from triage.core.spec import ModelSpec
     from triage.data.source import Batch, Sample, Source
@@ -154,7 +155,7 @@ class PassPlan:
         source: Source,
         spec: ModelSpec,
         *,
-        rows: int | None,
+        rows: RowsToRead,
         seed: int,
         sampling: Sampling,
         exclude_rows: Collection[int],
@@ -163,12 +164,12 @@ class PassPlan:
         """Draw the sample (a quick fit's rows, or a full pass's learning rows); plan the pass."""
         sample = source.read_sample(
             _pass_columns(spec, extra_columns),
-            n_rows=rows if rows is not None else LEARNING_SAMPLE_ROWS,
+            n_rows=LEARNING_SAMPLE_ROWS if rows is ALL_ROWS else rows,
             seed=seed,
             sampling=sampling,
             where=_parse_where(source, spec),
         )
-        streams = rows is None and not sample.is_whole
+        streams = rows is ALL_ROWS and not sample.is_whole
         return cls(
             source,
             spec,
@@ -427,7 +428,7 @@ def fit_model(
     source: Source,
     spec: ModelSpec,
     *,
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
     sampling: Sampling = "groups",
     exclude_rows: Collection[int] = (),
@@ -442,8 +443,8 @@ def fit_model(
         Where the rows come from.
     spec : ModelSpec
         The model, already validated against the source's schema.
-    rows : int or None, default=200_000
-        Sample size; None streams every row in bounded memory.
+    rows : int or ALL_ROWS, default=200_000
+        Sample size; `ALL_ROWS` streams every row in bounded memory.
     seed : int, default=0
         Seed of the sample.
     sampling : {"groups", "uniform"}, default="groups"
@@ -464,7 +465,7 @@ def fit_model(
     DataError
         When no rows are left or the data cannot support the fit.
     """
-    if rows is None and not DesignBuilder.learns_from_sample(spec):
+    if rows is ALL_ROWS and not DesignBuilder.learns_from_sample(spec):
         # Nothing to learn: a full pass skips the sample (0.3 s on a 20-million-row file).
         schema = source.schema()
         columns = {c: schema[c] for c in _pass_columns(spec, ())}
@@ -539,7 +540,7 @@ def run_report(
     source: Source,
     spec: ModelSpec,
     *,
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
     sampling: Sampling = "groups",
     exclude_rows: Collection[int] = (),
@@ -709,25 +710,3 @@ def rows_in_fit(
     if not outcome.data.is_full_pass:
         inside &= np.isin(rows, outcome.sample[ROW_INDEX].to_numpy())
     return inside
-
-
-def iter_row_diagnostics(
-    source: Source,
-    outcome: FitOutcome,
-    *,
-    on_progress: ProgressCallback | None = None,
-    cancel: threading.Event | None = None,
-) -> Iterator[RowDiagnostics]:
-    """Stream every row of `source` (under the model's filter) and yield per-row diagnostics.
-
-    The fit is `outcome`'s, whether it came from a sample or from every row.
-    """
-    from triage.core.diagnostics import row_diagnostics
-
-    plan = PassPlan(source, outcome.spec, sample=None, learning_frame=outcome.sample)
-    tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
-    counts = RowCounts()
-    for frame in plan.frames(counts, tracker):
-        batch = outcome.builder.build(frame)
-        if batch.x.shape[0]:
-            yield row_diagnostics(outcome.fit, batch)

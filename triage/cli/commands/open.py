@@ -6,6 +6,7 @@ import argparse
 from pathlib import Path
 from typing import Any
 
+from triage._typing import ALL_ROWS
 from triage.cli.options import (
     add_model_options,
     add_row_options,
@@ -79,8 +80,8 @@ def settings_from_args(args: argparse.Namespace) -> Any:
         max_levels=args.max_levels,
         drop_invalid=args.drop_invalid,
         csv=csv_options_from_args(args),
-        sample_rows=DEFAULT_SAMPLE_ROWS if args.rows is None else args.rows,
-        is_full_at_start=args.rows is None,
+        sample_rows=DEFAULT_SAMPLE_ROWS if args.rows is ALL_ROWS else args.rows,
+        is_full_at_start=args.rows is ALL_ROWS,
         seed=args.seed,
         sampling=args.sample,
         keyset=args.keyset,

@@ -31,7 +31,7 @@ if TYPE_CHECKING:
     from triage.results.fit import FitOutcome, ReportOutcome
 
 PaneId = Literal[
-    "columns", "fit", "spread", "trend", "predictors", "flags", "worst", "segments", "row", "fits"
+    "columns", "fit", "spread", "trend", "inputs", "flags", "worst", "groups", "row", "fits"
 ]
 Page = Literal["model", "residuals", "rows"]
 
@@ -55,10 +55,10 @@ PANES: Final[tuple[PaneInfo, ...]] = (
     PaneInfo("fit", "Fit", "model", "no fit yet: pick a target and terms in Columns"),
     PaneInfo("spread", "Spread", "residuals", "residual histogram: no fit yet"),
     PaneInfo("trend", "Trend", "residuals", "residual by fitted value: no fit yet"),
-    PaneInfo("predictors", "Inputs", "residuals", "residual by each numeric input: no fit yet"),
+    PaneInfo("inputs", "Inputs", "residuals", "residual by each numeric input: no fit yet"),
     PaneInfo("flags", "Flags", "model", "flags: no fit yet"),
     PaneInfo("worst", "Worst", "rows", "worst rows: no fit yet"),
-    PaneInfo("segments", "Groups", "residuals", "residuals by group: no fit yet"),
+    PaneInfo("groups", "Groups", "residuals", "residuals by group: no fit yet"),
     PaneInfo("row", "Row", "rows", "no row chosen: pick one in Worst"),
     PaneInfo("fits", "Fits", "model", "fits of this session: none yet"),
 )
@@ -595,7 +595,7 @@ class TrendPane(ChartPane):
         )
 
 
-class PredictorsPane(ChartPane):
+class InputsPane(ChartPane):
     """Mean residual and its band in bins of one predictor; a key steps to the next."""
 
     predictor: reactive[str | None] = reactive(None)
@@ -741,7 +741,7 @@ class WorstPane(Pane):
             _table(self, "worst-table").move_cursor(row=positions.index(position), animate=False)
 
 
-class SegmentsPane(TextPane):
+class GroupsPane(TextPane):
     """Residuals broken down by the levels of one column; a key steps to the next column."""
 
     shown: reactive[SessionFit | None] = reactive(None, always_update=True)
