@@ -76,7 +76,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         from triage.engine.workers import set_pass_workers  # standard library only
 
         set_pass_workers(args.workers)
-    from triage.cli.signals import StopRequested, received, stop_on_signals
+    from triage.engine.signals import StopRequested, received, stop_on_signals
 
     try:
         with stop_on_signals(), warnings.catch_warnings():

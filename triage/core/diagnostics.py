@@ -31,7 +31,7 @@ from triage.core.binning import (
     BinLookup,
     quantiles_from_counts,
 )
-from triage.core.flag_rules import STUDENTIZED_LIMIT, raise_flags
+from triage.core.flag_rules import STUDENTIZED_LIMIT, bonferroni_bound, raise_flags
 from triage.core.moments import StreamMoments
 from triage.core.residual_breakdown import BinnedResiduals, SegmentResiduals
 from triage.core.residual_tests import (
@@ -126,6 +126,8 @@ class DiagnosticsAccumulator:
         self._meat = np.zeros((3, rank, rank))
         self._leverage_threshold = 2.0 * rank / fit.n
         self._cooks_threshold = 4.0 / fit.n
+        self._extreme_threshold = bonferroni_bound(fit.n, fit.df_resid)
+        self._n_extreme = 0
         self._n_studentized = 0
         self._n_leverage = 0
         self._n_cooks = 0
@@ -185,6 +187,7 @@ class DiagnosticsAccumulator:
         self._update_meat(shifted, batch.weights, rd)
         with np.errstate(invalid="ignore"):
             self._n_studentized += int(np.sum(np.abs(rd.studentized) > STUDENTIZED_LIMIT))
+            self._n_extreme += int(np.sum(np.abs(rd.studentized) > self._extreme_threshold))
             self._n_leverage += int(np.sum(rd.leverage > self._leverage_threshold))
             self._n_cooks += int(np.sum(rd.cooks > self._cooks_threshold))
 
@@ -253,6 +256,7 @@ class DiagnosticsAccumulator:
         self._reset.merge(other._reset)
         self._meat += other._meat
         self._n_studentized += other._n_studentized
+        self._n_extreme += other._n_extreme
         self._n_leverage += other._n_leverage
         self._n_cooks += other._n_cooks
         return self
@@ -316,6 +320,8 @@ class DiagnosticsAccumulator:
         }
         counts = ThresholdCounts(
             studentized=self._n_studentized,
+            extreme=self._n_extreme,
+            extreme_threshold=self._extreme_threshold,
             leverage=self._n_leverage,
             leverage_threshold=self._leverage_threshold,
             cooks=self._n_cooks,
@@ -335,6 +341,3 @@ class DiagnosticsAccumulator:
             resid_kurtosis=self._moments.kurtosis(),
             flags=raise_flags(self.fit, self.config, self._n, counts, tests, self._moments),
         )
-
-
-# --------------------------------------------------------------------------- flags

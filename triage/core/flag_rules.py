@@ -8,7 +8,7 @@ from __future__ import annotations
 import math
 from typing import TYPE_CHECKING, Final
 
-from triage.core.distributions import norm_sf
+from triage.core.distributions import chi2_sf, norm_sf, t_ppf
 from triage.core.row_values import fit_rank
 from triage.results.diagnostics import Flag
 
@@ -24,6 +24,8 @@ __all__ = [
     "ROWS_PER_TERM",
     "STUDENTIZED_LIMIT",
     "TREND_R2",
+    "bonferroni_bound",
+    "poisson_at_least",
     "raise_flags",
 ]
 
@@ -47,6 +49,37 @@ ROWS_PER_TERM: Final = 10
 """Fewer rows than this per coefficient raises an overfitting flag (common practice)."""
 
 
+def _rows(count: int) -> str:
+    """``1 row``, ``2 rows``, ``4,149 rows``."""
+    return f"{count:,} row{'' if count == 1 else 's'}"
+
+
+def _have(count: int) -> str:
+    return "has" if count == 1 else "have"
+
+
+def bonferroni_bound(n: int, df_resid: int, level: float = 0.05) -> float:
+    """Return the size of studentized residual that chance passes in under `level` of fits.
+
+    The Bonferroni outlier bound: the t quantile at ``1 - level / (2 n)`` with
+    ``df_resid - 1`` degrees of freedom (each externally studentized residual follows that
+    t under normal errors); infinite when there are too few degrees of freedom.
+    """
+    if n < 1 or df_resid < 2:
+        return math.inf
+    return t_ppf(1.0 - level / (2.0 * n), df_resid - 1)
+
+
+def poisson_at_least(count: int, mean: float) -> float:
+    """Return P(X >= count) for X Poisson with `mean` (1 for a count of 0)."""
+    if count <= 0:
+        return 1.0
+    if mean <= 0.0:
+        return 0.0
+    # P(X >= k) = P(chi-squared with 2k df <= 2 mean)
+    return 1.0 - chi2_sf(2.0 * mean, 2.0 * count)
+
+
 def raise_flags(
     fit: LinearFit,
     config: DiagnosticsConfig,
@@ -57,23 +90,34 @@ def raise_flags(
 ) -> tuple[Flag, ...]:
     """Plain-word hints, each naming its rule; aids to judgement, not verdicts."""
     flags: list[Flag] = []
-    if counts.studentized:
-        # Two-sided normal tail beyond 3: what chance alone would give with normal errors.
-        expected = n * 2.0 * norm_sf(STUDENTIZED_LIMIT)
+    # Two-sided normal tail beyond 3: what chance alone would give with normal errors.
+    expected = n * 2.0 * norm_sf(STUDENTIZED_LIMIT)
+    many_beyond_3 = poisson_at_least(counts.studentized, expected) < FLAG_P_VALUE
+    if counts.extreme or many_beyond_3:
+        found = []
+        if counts.extreme:
+            found.append(
+                f"{_rows(counts.extreme)} beyond ±{counts.extreme_threshold:.3g}, further out "
+                f"than normal errors would put any of {n:,} rows in 19 fits of 20 (Bonferroni "
+                "bound)"
+            )
+        if many_beyond_3:
+            found.append(
+                f"{_rows(counts.studentized)} beyond ±3 where chance would put about "
+                f"{expected:,.0f} (common practice threshold)"
+            )
         flags.append(
             Flag(
                 "large-studentized",
-                f"{counts.studentized:,} rows have a studentized residual beyond ±3 (a common "
-                f"practice threshold; about {expected:,.1f} would be expected by chance with "
-                "normal errors). Worth a look: they may be data errors or cases the model "
-                "does not cover, though this is no proof of error.",
+                f"studentized residuals: {'; '.join(found)}. Worth a look: they may be data "
+                "errors or cases the model does not cover, though this is no proof of error.",
             )
         )
     if counts.leverage:
         flags.append(
             Flag(
                 "high-leverage",
-                f"{counts.leverage:,} rows have leverage above 2p/n = "
+                f"{_rows(counts.leverage)} {_have(counts.leverage)} leverage above 2p/n = "
                 f"{counts.leverage_threshold:.3g} (common practice): their predictor values "
                 "are unusual and may pull the fit towards them. Worth a look.",
             )
@@ -82,7 +126,7 @@ def raise_flags(
         flags.append(
             Flag(
                 "influential-rows",
-                f"{counts.cooks:,} rows have Cook's distance above 4/n = "
+                f"{_rows(counts.cooks)} {_have(counts.cooks)} Cook's distance above 4/n = "
                 f"{counts.cooks_threshold:.3g} (common practice): leaving one out may move "
                 "the coefficients noticeably. Worth a look, no proof of error.",
             )
@@ -116,10 +160,10 @@ def raise_flags(
             Flag(
                 "tails",
                 f"Jarque–Bera p = {jb.p_value:.2g} < 0.01 (skewness "
-                f"{moments.skewness():.2f}, kurtosis {moments.kurtosis():.2f}; normal: 0 "
-                "and 3): the residuals may have heavy tails or skew, so intervals that "
-                "assume normal errors may be off. With many rows this reacts to small "
-                "departures.",
+                f"{moments.skewness():.2f}, excess kurtosis {moments.kurtosis() - 3.0:.2f}; "
+                "both 0 for a normal): the residuals may have heavy tails or skew, so "
+                "intervals that assume normal errors may be off. With many rows this reacts "
+                "to small departures.",
             )
         )
     low, high = DURBIN_WATSON_RANGE

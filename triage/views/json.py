@@ -262,9 +262,12 @@ def _diagnostics_to_json(d: Diagnostics) -> dict[str, Any]:
             "n": d.n,
             "skewness": d.resid_skewness,
             "kurtosis": d.resid_kurtosis,
+            "excess_kurtosis": d.resid_kurtosis - 3.0,
         },
         "threshold_counts": {
             "studentized": d.counts.studentized,
+            "extreme": d.counts.extreme,
+            "extreme_threshold": d.counts.extreme_threshold,
             "leverage": d.counts.leverage,
             "leverage_threshold": d.counts.leverage_threshold,
             "cooks": d.counts.cooks,
