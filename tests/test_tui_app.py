@@ -1089,3 +1089,29 @@ async def test_tui_footer_follows_the_active_keys_and_rebuilds_only_on_change(
         await wait_until(pilot, lambda: main_screen(app).running_pass is None, "the pass to end")
         await settle(pilot)
         assert matches_textual()
+
+
+async def test_tui_keys_that_cannot_act_say_why(config_home: Path, demo_file: Path) -> None:
+    app = build_app(demo_file, target="minutes", terms="distance_km, stops")
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        screen = main_screen(app)
+        await press_id(pilot, "cancel-pass")  # no pass over every row is running
+        await press_id(pilot, "pane-fit")
+        await press_id(pilot, "toggle-mark")  # marks belong to Worst and Row
+        messages = [n.message for n in app._notifications]
+        assert any("no pass over every row is running" in m for m in messages)
+        assert any("rows are marked in Worst or Row" in m for m in messages)
+        assert screen.marked == set()
+
+
+async def test_tui_weights_equal_to_the_target_get_a_message(
+    config_home: Path, demo_file: Path
+) -> None:
+    app = build_app(demo_file, target="minutes", terms="distance_km", weights="minutes")
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        shown = [n.message for n in app._notifications]
+        if isinstance(app.screen, ErrorScreen):
+            shown.append(str(app.screen.message))
+        assert any("is also the target" in m for m in shown), shown
