@@ -58,9 +58,9 @@ def run(args: argparse.Namespace) -> int:
     """Run `triage export`."""
     from triage.cli.options import open_source_from_args, spec_from_args
     from triage.cli.progress import StderrProgress
-    from triage.cli.signals import stop_event
     from triage.data.export import PERSONAL_DATA_NOTICE, check_output_path
     from triage.engine.export import export_all_rows, export_worst_rows
+    from triage.engine.signals import stop_event
 
     source = open_source_from_args(args)
     spec = spec_from_args(args, source)
@@ -106,6 +106,10 @@ def run(args: argparse.Namespace) -> int:
         )
     else:
         print(f"wrote {n_rows:,} rows to {written}, {ranked_basis(data, args.by_criterion)}")
+    if spec.target_transform is not None:
+        from triage.views.text import target_scale_note
+
+        print(f"note: {target_scale_note(spec)}")
     print(f"note: {PERSONAL_DATA_NOTICE}", file=sys.stderr)
     return 0
 

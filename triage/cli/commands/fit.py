@@ -34,7 +34,7 @@ def run(args: argparse.Namespace) -> int:
     """Run `triage fit`."""
     from triage.cli.options import holdout_rule_from_args, open_source_from_args, spec_from_args
     from triage.cli.progress import StderrProgress
-    from triage.cli.signals import stop_event
+    from triage.engine.signals import stop_event
     from triage.views.json import fit_to_json
     from triage.views.text import render_fit_report
 
