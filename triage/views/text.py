@@ -857,7 +857,7 @@ def render_full_report(
         render_worst_rows(
             diagnostics.worst[c],
             criterion=c,
-            target=quote_name(outcome.spec.target),
+            target=outcome.spec.target_label,
             decimals=amount_decimals(outcome.fit.resid_sd),
             width=width,
         )

@@ -785,7 +785,7 @@ class WorstPane(Pane):
         self.rows = fit.report.diagnostics.worst.get(criterion, ())  # type: ignore[call-overload]
         self.decimals = amount_decimals(fit.report.outcome.fit.resid_sd)
         self.criterion = criterion
-        self.target = truncate(fit.report.outcome.spec.target, 12)
+        self.target = truncate(fit.report.outcome.spec.target_label, 14)
         self._set_columns()
         self._fill()
         title = CRITERION_TITLES.get(criterion, criterion)
