@@ -68,7 +68,7 @@ def _check_same_rows_spec(specs: Sequence[ModelSpec]) -> None:
     first = specs[0]
     for spec in specs[1:]:
         for field, a, b in (
-            ("target", first.target, spec.target),
+            ("target", first.target_label, spec.target_label),
             ("weights", first.weights, spec.weights),
             ("filter", first.where, spec.where),
         ):
@@ -224,7 +224,7 @@ def compare_models(
     for label, builder, accumulator, scorer, cv in zip(
         labels, builders, accumulators, scorers, cvs, strict=True
     ):
-        check_factor_scale(accumulator.factor, builder.column_names, builder.spec.target)
+        check_factor_scale(accumulator.factor, builder.column_names, builder.spec.target_label)
         fit = accumulator.finalize(builder.column_names)
         outcome = FitOutcome(builder.spec, builder, fit, summary, common_sample)
         score = scorer.score(fit.coef) if holdout is not None else None

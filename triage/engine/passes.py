@@ -404,7 +404,7 @@ def _design_quietly(builder: DesignBuilder, frame: pl.DataFrame) -> dict[str, np
     except (TriageError, ArithmeticError, RuntimeWarning):
         return None
     design = dict(zip(builder.column_names, batch.x.T, strict=True))
-    return {**design, builder.spec.target: batch.y}
+    return {**design, builder.spec.target_label: batch.y}
 
 
 def check_rows_left(counts: RowCounts, spec: ModelSpec) -> None:
@@ -421,7 +421,9 @@ def check_rows_left(counts: RowCounts, spec: ModelSpec) -> None:
     if counts.excluded:
         reasons.append(f"{counts.excluded:,} marked by you")
     why = "; ".join(reasons) if reasons else "the source has no rows"
-    msg = f"no rows left to fit `{spec.target}` ({why}); loosen `--where` or check the columns"
+    msg = (
+        f"no rows left to fit `{spec.target_label}` ({why}); loosen `--where` or check the columns"
+    )
     raise DataError(msg)
 
 
@@ -561,11 +563,11 @@ def _finalize_fit(
             "drop terms, loosen `--where`, or use more rows (`--rows`)"
         )
         raise DataError(msg)
-    check_factor_scale(accumulator.factor, builder.column_names, spec.target)
+    check_factor_scale(accumulator.factor, builder.column_names, spec.target_label)
     fit = accumulator.finalize(builder.column_names)
     if not fit.tss > 0:
         msg = (
-            f"the target `{spec.target}` does not vary over the {counts.used:,} rows used, "
+            f"the target `{spec.target_label}` does not vary over the {counts.used:,} rows used, "
             "so there is nothing to explain; check the column or the filter"
         )
         raise DataError(msg)

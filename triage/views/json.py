@@ -146,6 +146,8 @@ def fit_to_json(outcome: FitOutcome) -> dict[str, Any]:
         "data": _data_to_json(outcome.data),
         "model": {
             "target": spec.target,
+            "target_transform": spec.target_transform,
+            "target_label": spec.target_label,
             "terms": [term.label for term in spec.terms],
             "intercept": spec.intercept,
             "weights": spec.weights,

@@ -262,12 +262,15 @@ def _fit_sections(
         render_coefficients,
         render_data_summary,
         render_fit_quality,
+        target_scale_note,
     )
 
+    if outcome.spec.target_transform is not None:
+        header = f"{header}\n{target_scale_note(outcome.spec)}"
     return [
         header,
         render_data_summary(outcome.data, width=width),
-        render_fit_quality(outcome.fit, target=outcome.spec.target, width=width),
+        render_fit_quality(outcome.fit, target=outcome.spec.target_label, width=width),
         render_coefficients(outcome.fit, robust_se=robust, width=width),
         render_coding(outcome.builder, width=width),
         render_aliased(outcome.fit, width=width),
