@@ -27,7 +27,7 @@ if TYPE_CHECKING:
     from triage.core.design import DesignBuilder
     from triage.core.lsq import LinearFit
     from triage.core.spec import ModelSpec
-    from triage.results.diagnostics import Diagnostics
+    from triage.results.diagnostics import Diagnostics, Flag
     from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
 
 Align = Literal["<", ">"]
@@ -701,13 +701,13 @@ def render_segments(
     return "\n".join(lines)
 
 
-def render_flags(flags: Sequence[Any], *, width: int = 100) -> str:
+def render_flags(flags: Sequence[Flag], *, width: int = 100) -> str:
     """List the hints the checks raised; each names the rule behind it.
 
     Parameters
     ----------
     flags : sequence of Flag
-        Hints with ``code`` and ``message``.
+        The flags of a pass-2 result, worded by `triage.views.flags`.
     width : int, default=100
         Line width.
 
@@ -716,6 +716,8 @@ def render_flags(flags: Sequence[Any], *, width: int = 100) -> str:
     str
         The ``worth a look`` section, messages wrapped to ``width``.
     """
+    from triage.views.flags import flag_message  # the flag rules load with a report only
+
     lines = [rule("worth a look", width)]
     if not flags:
         lines.append("none of the checks raised a hint (which does not prove the model right).")
@@ -723,7 +725,7 @@ def render_flags(flags: Sequence[Any], *, width: int = 100) -> str:
     lines.append("hints to aid judgement, not verdicts:")
     for flag in flags:
         lines += textwrap.wrap(
-            f"[{flag.code}] {flag.message}",
+            f"[{flag.code}] {flag_message(flag)}",
             width=max(width, 20),
             initial_indent="• ",
             subsequent_indent="  ",
