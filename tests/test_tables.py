@@ -490,3 +490,25 @@ def test_log_target_outside_its_domain_says_so(tmp_path: Path) -> None:
         fit_model(source, spec, rows=ALL_ROWS)
     kept = build_spec(source.schema(), target=None, terms="log(cost) ~ age", drop_invalid=True)
     assert fit_model(source, kept, rows=ALL_ROWS).data.rows_dropped_domain == 1
+
+
+def test_compare_over_every_row_uses_every_level(
+    tmp_path: Path, small_learning_sample: None
+) -> None:
+    from triage.engine.compare import compare_models
+
+    frame = _claims_table()
+    path = tmp_path / "claims.parquet"
+    frame.write_parquet(path, row_group_size=GROUP_ROWS)
+    source = open_source(path)
+    specs = [
+        build_spec(source.schema(), target=None, terms=terms)
+        for terms in ("cost ~ age + region", "cost ~ age + region + office")
+    ]
+    comparison = compare_models(source, specs, ["a", "b"], rows=ALL_ROWS)
+    assert comparison.data.rows_dropped_unseen_level == 0
+    assert comparison.data.rows_used == frame.drop_nulls().height
+    single = _fit(path).builder  # same table, one model: the same levels and reference
+    builder = comparison.models[1].outcome.builder
+    assert builder.levels["office"] == single.levels["office"]
+    assert builder.reference_levels["region"] == single.reference_levels["region"]
