@@ -26,7 +26,7 @@ if TYPE_CHECKING:
     import polars as pl
     from rich.console import RenderableType
 
-    from triage.results.compare import Comparison, Criterion
+    from triage.results.compare import Comparison, ModelCriterion
     from triage.results.diagnostics import RowDiagnostics, WorstRow
     from triage.results.fit import FitOutcome, ReportOutcome
 
@@ -373,7 +373,7 @@ class FitsPane(Pane):
         compared, comparison = self.comparison or ((), None)
         best = {} if comparison is None else comparison.best
 
-        def cell(fit: SessionFit, criterion: Criterion, value: float) -> str:
+        def cell(fit: SessionFit, criterion: ModelCriterion, value: float) -> str:
             whole = criterion in ("aic", "bic")
             text = criterion_text(value) if whole else format_number(value)
             if fit.number in compared and best.get(criterion) == compared.index(fit.number):
