@@ -490,3 +490,49 @@ def test_log_target_outside_its_domain_says_so(tmp_path: Path) -> None:
         fit_model(source, spec, rows=ALL_ROWS)
     kept = build_spec(source.schema(), target=None, terms="log(cost) ~ age", drop_invalid=True)
     assert fit_model(source, kept, rows=ALL_ROWS).data.rows_dropped_domain == 1
+
+
+def test_compare_over_every_row_uses_every_level(
+    tmp_path: Path, small_learning_sample: None
+) -> None:
+    from triage.engine.compare import compare_models
+
+    frame = _claims_table()
+    path = tmp_path / "claims.parquet"
+    frame.write_parquet(path, row_group_size=GROUP_ROWS)
+    source = open_source(path)
+    specs = [
+        build_spec(source.schema(), target=None, terms=terms)
+        for terms in ("cost ~ age + region", "cost ~ age + region + office")
+    ]
+    comparison = compare_models(source, specs, ["a", "b"], rows=ALL_ROWS)
+    assert comparison.data.rows_dropped_unseen_level == 0
+    assert comparison.data.rows_used == frame.drop_nulls().height
+    single = _fit(path).builder  # same table, one model: the same levels and reference
+    builder = comparison.models[1].outcome.builder
+    assert builder.levels["office"] == single.levels["office"]
+    assert builder.reference_levels["region"] == single.reference_levels["region"]
+
+
+def test_export_all_after_a_sample_fit_counts_rows_of_levels_the_sample_lacked(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from triage.cli.main import main
+
+    frame = _claims_table()
+    path = tmp_path / "claims.parquet"
+    frame.write_parquet(path, row_group_size=GROUP_ROWS)
+    out = tmp_path / "all.parquet"
+    args = ["export", str(path), "--terms", "cost ~ age + region", "--all", "--rows", "1000"]
+    assert main([*args, "--out", str(out)]) == 0
+    printed = capsys.readouterr().out
+    written = pl.read_parquet(out)
+    assert written.height == N_ROWS
+    statuses = dict(written.group_by("status").len().iter_rows())
+    # a few row groups of a file sorted by region hold few regions: count those rows
+    sampled = written.filter(pl.col("status") == "used").get_column("row").to_list()
+    seen = set(frame[sampled].get_column("region").to_list())
+    lacked = frame.filter(~pl.col("region").is_in(list(seen)) & pl.col("age").is_not_null())
+    assert statuses["level not in the fit"] == lacked.height > 0
+    assert f"{lacked.height:,} rows have a level the sample did not have" in printed
+    assert "`--rows all` learns every level" in printed

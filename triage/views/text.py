@@ -29,7 +29,7 @@ if TYPE_CHECKING:
     from triage.core.design import DesignBuilder
     from triage.core.lsq import LinearFit
     from triage.core.spec import ModelSpec
-    from triage.results.diagnostics import Diagnostics
+    from triage.results.diagnostics import Diagnostics, Flag
     from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
 
 Align = Literal["<", ">"]
@@ -280,13 +280,15 @@ def coding_lines(builder: DesignBuilder) -> list[tuple[str, str]]:
     return lines
 
 
-def render_coding(builder: DesignBuilder, *, width: int = 100) -> str:
+def render_coding(builder: DesignBuilder, *, from_sample: bool = False, width: int = 100) -> str:
     """Show the reference level of each categorical term and the rule that chose it.
 
     Parameters
     ----------
     builder : DesignBuilder
         The fitted model's design.
+    from_sample : bool, default=False
+        The levels were learned from a sample: a line says what that leaves out.
     width : int, default=100
         Line width.
 
@@ -298,7 +300,13 @@ def render_coding(builder: DesignBuilder, *, width: int = 100) -> str:
     lines = coding_lines(builder)
     if not lines:
         return ""
-    note = textwrap.fill(CODING_RULE, width=width)
+    rule_text = CODING_RULE
+    if from_sample:
+        rule_text += (
+            "; the levels come from the sample: a level it lacks is not in the model, and "
+            "`--rows all` learns every level"
+        )
+    note = textwrap.fill(rule_text, width=width)
     return f"{rule('categorical coding', width)}\n{_pairs(lines, width)}\n{note}"
 
 
@@ -716,13 +724,13 @@ def render_segments(
     return "\n".join(lines)
 
 
-def render_flags(flags: Sequence[Any], *, width: int = 100) -> str:
+def render_flags(flags: Sequence[Flag], *, width: int = 100) -> str:
     """List the hints the checks raised; each names the rule behind it.
 
     Parameters
     ----------
     flags : sequence of Flag
-        Hints with ``code`` and ``message``.
+        The flags of a pass-2 result, worded by `triage.views.flags`.
     width : int, default=100
         Line width.
 
@@ -731,6 +739,8 @@ def render_flags(flags: Sequence[Any], *, width: int = 100) -> str:
     str
         The ``worth a look`` section, messages wrapped to ``width``.
     """
+    from triage.views.flags import flag_message  # the flag rules load with a report only
+
     lines = [rule("worth a look", width)]
     if not flags:
         lines.append("none of the checks raised a hint (which does not prove the model right).")
@@ -738,7 +748,7 @@ def render_flags(flags: Sequence[Any], *, width: int = 100) -> str:
     lines.append("hints to aid judgement, not verdicts:")
     for flag in flags:
         lines += textwrap.wrap(
-            f"[{flag.code}] {flag.message}",
+            f"[{flag.code}] {flag_message(flag)}",
             width=max(width, 20),
             initial_indent="• ",
             subsequent_indent="  ",
@@ -786,7 +796,7 @@ def render_fit_report(outcome: FitOutcome, *, width: int = 100) -> str:
             render_model(outcome.spec, width=width),
             render_fit_quality(outcome.fit, target=outcome.spec.target_label, width=width),
             render_coefficients(outcome.fit, width=width),
-            render_coding(outcome.builder, width=width),
+            render_coding(outcome.builder, from_sample=not outcome.data.is_full_pass, width=width),
             render_aliased(outcome.fit, width=width),
         ]
     )
@@ -837,7 +847,7 @@ def render_full_report(
         render_fit_quality(outcome.fit, target=outcome.spec.target_label, width=width),
         render_flags(diagnostics.flags, width=width),
         render_coefficients(outcome.fit, robust_se=hc3, robust_label="HC3", width=width),
-        render_coding(outcome.builder, width=width),
+        render_coding(outcome.builder, from_sample=not outcome.data.is_full_pass, width=width),
         render_aliased(outcome.fit, width=width),
         render_tests(diagnostics, is_ordered=is_ordered, width=width),
         render_residual_summary(diagnostics, width=width),

@@ -27,7 +27,7 @@ if TYPE_CHECKING:
     from rich.console import RenderableType
 
     from triage.core.spec import ModelSpec
-    from triage.results.compare import Comparison, Criterion
+    from triage.results.compare import Comparison, ModelCriterion
     from triage.results.diagnostics import RowDiagnostics, WorstRow
     from triage.results.fit import FitOutcome, ReportOutcome
 
@@ -278,7 +278,7 @@ def _fit_sections(
         render_data_summary(outcome.data, width=width),
         render_fit_quality(outcome.fit, target=outcome.spec.target_label, width=width),
         render_coefficients(outcome.fit, robust_se=robust, width=width),
-        render_coding(outcome.builder, width=width),
+        render_coding(outcome.builder, from_sample=not outcome.data.is_full_pass, width=width),
         render_aliased(outcome.fit, width=width),
     ]
 
@@ -416,7 +416,7 @@ class FitsPane(Pane):
         compared, comparison = self.comparison or ((), None)
         best = {} if comparison is None else comparison.best
 
-        def cell(fit: SessionFit, criterion: Criterion, value: float) -> Text:
+        def cell(fit: SessionFit, criterion: ModelCriterion, value: float) -> Text:
             whole = criterion in ("aic", "bic")
             text = criterion_text(value) if whole else format_number(value)
             is_best = fit.number in compared and best.get(criterion) == compared.index(fit.number)
