@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING
 
+from rich.cells import cell_len
 from rich.text import Text
 from textual.reactive import reactive
 from textual.widget import Widget
@@ -14,6 +15,7 @@ if TYPE_CHECKING:
     from textual.screen import Screen
 
     from triage.engine.progress import PassProgress
+    from triage.tui.session import FitLabel
 
 
 class PaneStrip(Widget):
@@ -57,21 +59,38 @@ class PaneStrip(Widget):
 
 
 class ModelLine(Widget):
-    """The model being built or shown, in the term syntax, with filter and weights."""
+    """The heading: the fit on screen (number, basis, model, filter, marks), or the draft.
+
+    Every pane shows results of the fit named here. When the line is too short, the
+    formula is shortened first, so the fit's number, basis and filter stay in view.
+    """
 
     DEFAULT_CSS = """
     ModelLine { height: 1; }
     """
 
     text: reactive[str] = reactive("no model yet")
-    """What to show."""
+    """What to show while no fit is on screen (the model being built)."""
+    label: reactive[FitLabel | None] = reactive(None)
+    """The fit on screen, or None."""
 
     def render(self) -> RenderableType:
-        """Draw the model text on one line."""
-        return Text(self.text, no_wrap=True, overflow="ellipsis")
+        """Draw the heading on one line."""
+        label = self.label
+        if label is None:
+            return Text(self.text, no_wrap=True, overflow="ellipsis")
+        head = f"fit #{label.number} {label.basis}: "
+        tail = "".join(f"  |  {detail}" for detail in label.details)
+        room = self.size.width - cell_len(head) - cell_len(tail)
+        formula = label.formula
+        if cell_len(formula) > room:
+            formula = formula[: max(room - 1, 8)] + "…"
+        text = Text(head, style="bold", no_wrap=True, overflow="ellipsis")
+        text.append(formula + tail)
+        return text
 
 
-def progress_text(progress: PassProgress, width: int) -> str:
+def progress_text(progress: PassProgress, width: int, *, label: str = "every row") -> str:
     """Describe a running pass: bar, share done, rows done, rows per second, time left.
 
     Parameters
@@ -80,6 +99,8 @@ def progress_text(progress: PassProgress, width: int) -> str:
         The latest report from the engine.
     width : int
         Room for the whole line, in cells.
+    label : str, default="every row"
+        What the pass is, said first.
 
     Returns
     -------
@@ -98,11 +119,11 @@ def progress_text(progress: PassProgress, width: int) -> str:
     left = "time left unknown" if progress.eta_s is None else f"{progress.eta_s:,.0f} s left"
     tail = f"{done}  {speed}  {left}"
     if fraction is None:
-        return f"every row: {tail}"
-    bar_width = max(4, min(30, width - len(tail) - 20))
+        return f"{label}: {tail}"
+    bar_width = max(4, min(30, width - len(tail) - len(label) - 11))
     filled = round(fraction * bar_width)
     bar = "#" * filled + "." * (bar_width - filled)
-    return f"every row: [{bar}] {fraction:4.0%}  {tail}"
+    return f"{label}: [{bar}] {fraction:4.0%}  {tail}"
 
 
 class PassLine(Widget):
@@ -118,7 +139,9 @@ class PassLine(Widget):
     progress: reactive[PassProgress | None] = reactive(None)
     """Latest report of the running full pass, None when no pass runs."""
     marks: reactive[int] = reactive(0)
-    """Rows the user marked."""
+    """Rows the user marked (always shown)."""
+    pass_label: reactive[str] = reactive("every row")
+    """What the running pass is: one that will take the screen, or one bound for Fits."""
 
     def watch_progress(self, progress: PassProgress | None) -> None:
         """Grow to two lines while a pass runs."""
@@ -126,12 +149,15 @@ class PassLine(Widget):
 
     def render(self) -> RenderableType:
         """Draw the basis, and the progress of the running pass on a second line."""
-        text = Text(self.basis, no_wrap=True, overflow="ellipsis")
-        if self.marks:
-            text.append(f"  [{self.marks:,} marked]", style="bold")
+        marks = f"  [{self.marks:,} marked]"
+        room = max(self.size.width - cell_len(marks), 10)
+        basis = self.basis if cell_len(self.basis) <= room else self.basis[: room - 1] + "…"
+        text = Text(basis, no_wrap=True, overflow="ellipsis")
+        text.append(marks, style="bold" if self.marks else "")
         if self.progress is not None:
             text.append("\n")
-            text.append(progress_text(self.progress, self.size.width), style="bold")
+            progress = progress_text(self.progress, self.size.width, label=self.pass_label)
+            text.append(progress, style="bold")
         return text
 
 
