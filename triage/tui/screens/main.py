@@ -390,10 +390,13 @@ class MainScreen(Screen[None]):
         """Id of the running full pass, or None."""
         self.running_job: PassJob | None = None
         """What the running full pass fits, or None."""
-        self.screen_pass: int | None = None
-        """Id of the pass whose result takes the screen: the latest one asked for, or None
-        once a fit was chosen from the list. Any other pass's result never replaces the fit
-        on screen: a full pass goes to the Fits list, a sample fit is dropped."""
+        self.screen_passes: set[int] = set()
+        """Ids of the passes whose results take the screen: the latest one asked for (with the
+        sample fit of the same model while a full pass of it runs), none once a fit was chosen
+        from the list. Any other pass's result never replaces the fit on screen: a full pass
+        joins the Fits list, a sample fit is dropped."""
+        self.sample_job: PassJob | None = None
+        """The latest sample fit asked for, until it ends."""
         self.pending: tuple[int, FitLabel] | None = None
         """(pass id, label) of a sample fit on screen whose diagnostics are still running."""
         self.full_pass_worker: Worker[None] | None = None
@@ -793,7 +796,16 @@ class MainScreen(Screen[None]):
             return
         pass_id = next(self._pass_ids)
         job = PassJob(pass_id, spec, excluded, baseline, is_full)
-        self.screen_pass = pass_id
+        sample = self.sample_job
+        if (
+            is_full
+            and sample is not None
+            and sample.pass_id in self.screen_passes
+            and (sample.spec, sample.excluded) == (spec, excluded)
+        ):
+            self.screen_passes = {sample.pass_id, pass_id}  # the sample fit shows first
+        else:
+            self.screen_passes = {pass_id}
         if is_full:
             self.running_pass = pass_id
             self.running_job = job
@@ -801,6 +813,7 @@ class MainScreen(Screen[None]):
             self.query_one(PassLine).set_class(True, "-running")
             self.notify("reading every row in the background; the sample results stay until done")
         else:
+            self.sample_job = job
             self.run_sample_fit(job)
             self._running_pass_gives_way()
         self.refresh_bindings()
@@ -812,7 +825,7 @@ class MainScreen(Screen[None]):
         it goes on, and its fit joins the Fits list as a fit of its own.
         """
         job = self.running_job
-        if job is None or job.pass_id == self.screen_pass:
+        if job is None or job.pass_id in self.screen_passes:
             return
         pass_line = self.query_one(PassLine)
         if pass_line.pass_label != "every row":
@@ -924,8 +937,9 @@ class MainScreen(Screen[None]):
             else:
                 self._show_basis()
                 self._update_model_line()
-        if pass_id == self.screen_pass:
-            self.screen_pass = None
+        self.screen_passes.discard(pass_id)
+        if self.sample_job is not None and self.sample_job.pass_id == pass_id:
+            self.sample_job = None
 
     def on_pass_stopped(self, message: PassStopped) -> None:
         """Say that the full pass stopped and what stays on screen."""
@@ -962,7 +976,7 @@ class MainScreen(Screen[None]):
         The fit takes its number now, and the heading names it; the panes that need the
         diagnostics show nothing of the previous fit meanwhile.
         """
-        if message.pass_id != self.screen_pass:
+        if message.pass_id not in self.screen_passes:
             return
         number = self._take_number()
         self.reserved[message.pass_id] = number
@@ -997,7 +1011,7 @@ class MainScreen(Screen[None]):
         screen; a late sample fit of an older request is dropped.
         """
         is_full = self._end_full_pass(message.pass_id)
-        takes_screen = message.pass_id == self.screen_pass
+        takes_screen = message.pass_id in self.screen_passes
         if not is_full and not takes_screen:
             self._end_pass(message.pass_id)
             return
@@ -1012,7 +1026,10 @@ class MainScreen(Screen[None]):
         fits_pane = self.query_one(FitsPane)
         fits_pane.fits = tuple(self.fits)
         if takes_screen:
-            self.screen_pass = None
+            # a full pass ends every claim on the screen; a sample fit only its own
+            self.screen_passes = set() if is_full else self.screen_passes - {message.pass_id}
+            if self.sample_job is not None and self.sample_job.pass_id == message.pass_id:
+                self.sample_job = None
             self.show_fit(fit)
             if is_full:
                 self.notify(f"fit #{fit.number} now uses every row")
@@ -1088,7 +1105,7 @@ class MainScreen(Screen[None]):
         if fit is None:
             return
         self.workers.cancel_group(self, "sample-fit")
-        self.screen_pass = None
+        self.screen_passes = set()
         self.draft = draft_from_spec(fit.report.outcome.spec)
         self.typed_terms = None
         self.query_one(ColumnsPane).draft = self.draft
@@ -1360,7 +1377,10 @@ class MainScreen(Screen[None]):
 
         self.app.push_screen(
             ExportScreen(
-                n_marked=len(self.marked), criterion=self._criterion(), top_k=self.settings.top_k
+                n_marked=len(self.marked),
+                criterion=self._criterion(),
+                top_k=self.settings.top_k,
+                basis=fit.label.one_line(),
             ),
             chosen,
         )

@@ -453,9 +453,7 @@ class RowPane(Pane):
         diag = view.diagnostics
         outside = diag is not None and len(diag.rows) > 0 and not diag.in_fit[0]
         basis = "not in" if outside else "under"
-        self._set_note(
-            f"row {view.position:,} of the source (0-based), {basis} fit #{view.fit_number}{mark}"
-        )
+        self._set_note(f"row {view.position:,} (0-based) {basis} fit #{view.fit_number}{mark}")
         self._set_cells([*_diagnostic_cells(view), *_record_cells(view.frame)])
 
     def _set_note(self, text: str) -> None:
