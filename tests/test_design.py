@@ -325,16 +325,19 @@ def test_design_drops_and_counts_missing_values() -> None:
     assert batch.frame.columns == frame.columns
 
 
-def test_design_levels_learned_only_from_usable_rows_and_unseen_levels_dropped() -> None:
+def test_design_levels_are_the_rows_with_a_value_in_the_column_and_unseen_levels_dropped() -> None:
     sample = with_rows(pl.DataFrame({"y": [1.0, 2.0, 3.0, None], "g": ["a", "b", "a", "c"]}))
     _, builder = make(sample, "g", target="y")
-    # `c` only appears where the target is missing, so it is not a level
-    assert builder.levels["g"] == ("a", "b")
+    # the documented rule: levels and their counts come from every row with a value in the
+    # column, whatever the other columns hold (so a full pass can count them cheaply)
+    assert builder.levels["g"] == ("a", "b", "c")
+    assert builder.level_tables["g"].counts == (2, 1, 1)
+    assert builder.reference_levels["g"] == "a"
     batch_frame = with_rows(pl.DataFrame({"y": [1.0, 2.0, 3.0, 4.0], "g": ["c", "b", "d", "a"]}))
     batch = builder.build(batch_frame)
-    assert batch.n_dropped_unseen_level == 2
-    np.testing.assert_array_equal(batch.rows, [1, 3])
-    np.testing.assert_array_equal(batch.x, [[1.0, 1.0], [1.0, 0.0]])
+    assert batch.n_dropped_unseen_level == 1
+    np.testing.assert_array_equal(batch.rows, [0, 1, 3])
+    np.testing.assert_array_equal(batch.x, [[1.0, 0.0, 1.0], [1.0, 1.0, 0.0], [1.0, 0.0, 0.0]])
 
 
 @pytest.mark.parametrize(

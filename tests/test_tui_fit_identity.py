@@ -12,8 +12,6 @@ and pyarrow reading the written file's metadata.
 
 from __future__ import annotations
 
-import time
-from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -26,7 +24,7 @@ from textual.widgets import Input
 
 from tests import tui_support
 from tests.test_tui_app import GatedSource, gated, main_screen
-from tests.tui_support import build_app, press_id
+from tests.tui_support import build_app, notifications, press_id, wait_until
 from triage.data.export import NOTE_KEY
 from triage.tui.screens.dialogs import PromptScreen
 from triage.tui.screens.export import ExportScreen
@@ -36,9 +34,9 @@ from triage.tui.widgets.panes import (
     FitPane,
     FitsPane,
     FlagsPane,
-    PredictorsPane,
+    GroupsPane,
+    InputsPane,
     RowPane,
-    SegmentsPane,
     SpreadPane,
     TrendPane,
     WorstPane,
@@ -54,31 +52,6 @@ gated_source = gated
 SMALL = (80, 24)
 SAMPLE_ROWS = 2_000
 """Two of the demo file's six row groups: a quick fit is a real sample."""
-
-WAIT_S = 60.0
-"""Longest wait for a state of the app (a deadline for a stuck test, not a pacing)."""
-
-
-async def until(pilot: Any, condition: Callable[[], bool], what: str) -> None:
-    """Let the app process its messages until `condition` holds."""
-    deadline = time.monotonic() + WAIT_S
-    while not condition():
-        if time.monotonic() > deadline:
-            raise AssertionError(f"the app never reached: {what}")
-        await pilot.pause()
-
-
-def record_notifications(app: Any) -> list[str]:
-    """Keep every notification's text as it is posted (toasts expire; this list does not)."""
-    posted: list[str] = []
-    notify = app.notify
-
-    def recording(message: str, **kwargs: Any) -> None:
-        posted.append(message)
-        notify(message, **kwargs)
-
-    app.notify = recording
-    return posted
 
 
 def settled(screen: MainScreen) -> bool:
@@ -98,7 +71,7 @@ def assert_screen_names(screen: MainScreen, fit: SessionFit) -> None:
     assert f"fit #{fit.number}:" in text
     for name in fit.report.outcome.fit.names:
         assert name in text
-    for pane_type in (SpreadPane, TrendPane, PredictorsPane, FlagsPane, SegmentsPane):
+    for pane_type in (SpreadPane, TrendPane, InputsPane, FlagsPane, GroupsPane):
         assert screen.query_one(pane_type).shown is fit, pane_type.__name__
     worst = screen.query_one(WorstPane)
     assert worst.rows == fit.report.diagnostics.worst[worst.criterion]  # type: ignore[index]
@@ -129,7 +102,7 @@ async def export_from_screen(pilot: Any, path: Path, *, worst_k: int | None = No
     """Export the marked rows (or the worst K) through the dialog and wait for the file."""
     screen = main_screen(pilot.app)
     await press_id(pilot, "export-rows")
-    await until(pilot, lambda: isinstance(pilot.app.screen, ExportScreen), "the export dialog")
+    await wait_until(pilot, lambda: isinstance(pilot.app.screen, ExportScreen), "the export dialog")
     dialog = pilot.app.screen
     if worst_k is not None:
         dialog.query_one("#export-worst").value = True
@@ -137,8 +110,8 @@ async def export_from_screen(pilot: Any, path: Path, *, worst_k: int | None = No
     dialog.query_one("#export-path", Input).value = str(path)
     dialog.query_one("#export-path", Input).focus()
     await pilot.press("enter")
-    await until(pilot, path.exists, f"{path.name} written")
-    await until(pilot, lambda: pilot.app.screen is screen, "the main screen back")
+    await wait_until(pilot, path.exists, f"{path.name} written")
+    await wait_until(pilot, lambda: pilot.app.screen is screen, "the main screen back")
 
 
 def row_shown(screen: MainScreen, position: int) -> bool:
@@ -164,34 +137,34 @@ async def test_a_full_pass_ending_after_the_model_changed_joins_fits_without_the
     app = build_app(
         demo_file, target="minutes", terms=", ".join(old_terms), sample_rows=SAMPLE_ROWS
     )
-    posted = record_notifications(app)
+    posted = notifications(app)
     async with app.run_test(size=SMALL, notifications=True) as pilot:
         screen = main_screen(app)
-        await until(pilot, lambda: settled(screen), "the first fit")
+        await wait_until(pilot, lambda: settled(screen), "the first fit")
         assert screen.front == "fit"  # the command line named a model
         await press_id(pilot, "start-full-pass")
         source = gated_source[0]
         pass_line = screen.query_one(PassLine)
-        await until(pilot, source.batches_started.is_set, "the pass reading")
+        await wait_until(pilot, source.batches_started.is_set, "the pass reading")
         # progress stays in view: no notification covers the two-line pass line at 80x24
-        await until(pilot, lambda: bool(toasts(screen)), "the pass's start announced")
+        await wait_until(pilot, lambda: bool(toasts(screen)), "the pass's start announced")
         assert pass_line.region.height == 2
         assert all(not toast.region.overlaps(pass_line.region) for toast in toasts(screen))
         # the terms change while the pass reads
         await press_id(pilot, "edit-terms")
-        await until(pilot, lambda: isinstance(app.screen, PromptScreen), "the terms prompt")
+        await wait_until(pilot, lambda: isinstance(app.screen, PromptScreen), "the terms prompt")
         app.screen.query_one("#prompt-input", Input).value = "distance_km, stops"
         await pilot.press("enter")
-        await until(pilot, lambda: settled(screen), "the fit of the new terms")
+        await wait_until(pilot, lambda: settled(screen), "the fit of the new terms")
         assert screen.running_pass is not None  # the gated pass still runs
-        assert pass_line.pass_label == "every row, for Fits"  # says where its fit goes
+        assert pass_line.pass_label == "every row (to Fits)"  # says where its fit goes
         assert any("goes on; its fit will join Fits" in m for m in posted)
         new = screen.current
         assert new is not None and new.number == 2
         for _ in range(60):  # let the pass finish: the race the issue describes
             source.gate.release()
-        await until(pilot, lambda: screen.running_pass is None, "the pass's end")
-        await until(pilot, lambda: len(screen.fits) == 3, "the pass's fit in the list")
+        await wait_until(pilot, lambda: screen.running_pass is None, "the pass's end")
+        await wait_until(pilot, lambda: len(screen.fits) == 3, "the pass's fit in the list")
         full = screen.fit_numbered(3)
         assert full is not None and full.is_full_pass
         assert [t.label for t in full.report.outcome.spec.terms] == old_terms
@@ -231,7 +204,7 @@ async def test_a_full_pass_ending_after_the_model_changed_joins_fits_without_the
         await press_id(pilot, "pane-fits")
         screen.query_one("#fits-table").move_cursor(row=2, animate=False)
         await pilot.press("enter")
-        await until(pilot, lambda: screen.current is full, "fit #3 chosen")
+        await wait_until(pilot, lambda: screen.current is full, "fit #3 chosen")
         assert_screen_names(screen, full)
 
 
@@ -241,22 +214,22 @@ async def test_a_recalled_fit_comes_back_whole_and_editing_starts_from_it(
     app = build_app(demo_file, target="minutes", terms="distance_km", sample_rows=SAMPLE_ROWS)
     async with app.run_test(size=SMALL) as pilot:
         screen = main_screen(app)
-        await until(pilot, lambda: settled(screen), "the first fit")
+        await wait_until(pilot, lambda: settled(screen), "the first fit")
         await press_id(pilot, "edit-terms")
-        await until(pilot, lambda: isinstance(app.screen, PromptScreen), "the terms prompt")
+        await wait_until(pilot, lambda: isinstance(app.screen, PromptScreen), "the terms prompt")
         app.screen.query_one("#prompt-input", Input).value = "distance_km, stops, depot"
         await pilot.press("enter")
-        await until(pilot, lambda: settled(screen) and len(screen.fits) == 2, "fit #2")
+        await wait_until(pilot, lambda: settled(screen) and len(screen.fits) == 2, "fit #2")
         await press_id(pilot, "pane-worst")
         await press_id(pilot, "open-row")  # a row under fit #2 is open
-        await until(pilot, lambda: screen.query_one(RowPane).row is not None, "the row")
+        await wait_until(pilot, lambda: screen.query_one(RowPane).row is not None, "the row")
         first = screen.fits[0]
         await press_id(pilot, "pane-fits")
         screen.query_one("#fits-table").move_cursor(row=0, animate=False)
         await pilot.press("enter")
-        await until(pilot, lambda: screen.current is first, "fit #1 chosen")
+        await wait_until(pilot, lambda: screen.current is first, "fit #1 chosen")
         row_pane = screen.query_one(RowPane)
-        await until(
+        await wait_until(
             pilot,
             lambda: row_pane.row is not None and row_pane.row.diagnostics is not None,
             "the open row read again under fit #1",
@@ -275,12 +248,12 @@ async def test_a_recalled_fit_comes_back_whole_and_editing_starts_from_it(
         # editing starts from the recalled fit's model
         assert screen.draft.terms_text() == "distance_km"
         await press_id(pilot, "edit-terms")
-        await until(pilot, lambda: isinstance(app.screen, PromptScreen), "the terms prompt")
+        await wait_until(pilot, lambda: isinstance(app.screen, PromptScreen), "the terms prompt")
         field = app.screen.query_one("#prompt-input", Input)
         assert field.value == "distance_km"
         field.value = "distance_km, hour"
         await pilot.press("enter")
-        await until(pilot, lambda: settled(screen) and len(screen.fits) == 3, "fit #3")
+        await wait_until(pilot, lambda: settled(screen) and len(screen.fits) == 3, "fit #3")
         third = screen.current
         assert third is not None and third.number == 3
         assert [t.label for t in third.report.outcome.spec.terms] == ["distance_km", "hour"]
@@ -294,7 +267,7 @@ async def test_exported_rows_outside_the_fit_match_the_screen_and_say_so(
     app = build_app(demo_file, target="minutes", terms="distance_km, stops")
     async with app.run_test(size=SMALL) as pilot:
         screen = main_screen(app)
-        await until(pilot, lambda: settled(screen), "the first fit")
+        await wait_until(pilot, lambda: settled(screen), "the first fit")
         await press_id(pilot, "pane-worst")
         worst = screen.query_one(WorstPane)
         frame = pl.read_parquet(demo_file).with_row_index("__row").cast({"__row": pl.Int64})
@@ -305,10 +278,12 @@ async def test_exported_rows_outside_the_fit_match_the_screen_and_say_so(
             await press_id(pilot, "toggle-mark")
         # a filter that leaves the marked rows out
         await press_id(pilot, "edit-filter")
-        await until(pilot, lambda: isinstance(app.screen, PromptScreen), "the filter prompt")
+        await wait_until(pilot, lambda: isinstance(app.screen, PromptScreen), "the filter prompt")
         app.screen.query_one("#prompt-input", Input).value = "minutes < 1000"
         await pilot.press("enter")
-        await until(pilot, lambda: settled(screen) and len(screen.fits) == 2, "the filtered fit")
+        await wait_until(
+            pilot, lambda: settled(screen) and len(screen.fits) == 2, "the filtered fit"
+        )
         filtered = screen.current
         assert filtered is not None and filtered.label.details == ("where minutes < 1000",)
         assert_screen_names(screen, filtered)
@@ -337,7 +312,9 @@ async def test_exported_rows_outside_the_fit_match_the_screen_and_say_so(
         # the Row pane shows the same numbers for the same fit
         for record in written.iter_rows(named=True):
             screen.open_row(record["row"])
-            await until(pilot, lambda shown=record["row"]: row_shown(screen, shown), "the row read")
+            await wait_until(
+                pilot, lambda shown=record["row"]: row_shown(screen, shown), "the row read"
+            )
             assert row_pane_values(screen)["in the fit"].startswith("no")
             shown = row_pane_values(screen)
             assert shown["fitted"] == format_number(record["fitted"])
@@ -356,7 +333,9 @@ async def test_exported_rows_outside_the_fit_match_the_screen_and_say_so(
             worst.move_to(position)
             await press_id(pilot, "toggle-mark")
         await press_id(pilot, "refit-without-marked")
-        await until(pilot, lambda: settled(screen) and len(screen.fits) == 3, "the what-if fit")
+        await wait_until(
+            pilot, lambda: settled(screen) and len(screen.fits) == 3, "the what-if fit"
+        )
         refit = screen.current
         assert refit is not None and refit.excluded == frozenset(left_out)
         assert_screen_names(screen, refit)
@@ -383,7 +362,7 @@ async def test_exported_rows_outside_the_fit_match_the_screen_and_say_so(
         )
         screen.open_row(left_out[0])
         record = written.filter(pl.col("row") == left_out[0]).row(0, named=True)
-        await until(pilot, lambda: row_shown(screen, left_out[0]), "the left-out row read")
+        await wait_until(pilot, lambda: row_shown(screen, left_out[0]), "the left-out row read")
         shown = row_pane_values(screen)
         assert shown["in the fit"].startswith("no")
         assert shown["standardised residual"] == format_number(record["studentized"], digits=3)
@@ -394,22 +373,24 @@ async def test_a_check_finishing_while_the_user_types_does_not_take_the_keys(
     config_home: Path, demo_file: Path
 ) -> None:
     app = build_app(demo_file, target="minutes", terms="distance_km, stops")
-    posted = record_notifications(app)
+    posted = notifications(app)
     async with app.run_test(size=SMALL) as pilot:
         screen = main_screen(app)
-        await until(pilot, lambda: settled(screen), "the first fit")
+        await wait_until(pilot, lambda: settled(screen), "the first fit")
         await press_id(pilot, "run-checks")
         await press_id(pilot, "edit-filter")
-        await until(pilot, lambda: isinstance(app.screen, PromptScreen), "the filter prompt")
+        await wait_until(pilot, lambda: isinstance(app.screen, PromptScreen), "the filter prompt")
         prompt = app.screen
         await type_into_prompt(pilot, "minutes")
-        await until(pilot, lambda: 1 in screen.checks, "the checks' end")
+        await wait_until(pilot, lambda: 1 in screen.checks, "the checks' end")
         await type_into_prompt(pilot, " < 1000")
         assert app.screen is prompt
         assert prompt.query_one("#prompt-input", Input).value == "minutes < 1000"
         assert any("checks of fit #1 are ready" in m for m in posted)
         await pilot.press("enter")
-        await until(pilot, lambda: settled(screen) and len(screen.fits) == 2, "the filtered fit")
+        await wait_until(
+            pilot, lambda: settled(screen) and len(screen.fits) == 2, "the filtered fit"
+        )
         assert screen.current is not None and screen.current.report.outcome.spec.where == (
             "minutes < 1000"
         )

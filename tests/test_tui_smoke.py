@@ -132,7 +132,7 @@ def test_tui_terms_edited_during_a_full_pass_in_tmux_at_80x24(tmp_path: Path) ->
     try:
         wait_for("rows used  [0 marked]")  # fit #1 with its diagnostics
         tmux("send-keys", "-t", "app", "a")
-        wait_for("every row: [")  # the pass over every row is under way
+        wait_for("rows/s")  # the pass over every row is under way
         tmux("send-keys", "-t", "app", "e")
         wait_for("terms (comma list")
         # the model's terms are selected in the field: typing replaces them
@@ -140,7 +140,7 @@ def test_tui_terms_edited_during_a_full_pass_in_tmux_at_80x24(tmp_path: Path) ->
         wait_for("distance_km, stops ")
         tmux("send-keys", "-t", "app", "Enter")
         # the edit landed while the pass ran: the pass is now bound for the Fits list
-        wait_for("every row, for Fits")
+        wait_for("every row (to Fits)")
         wait_for("joined Fits")
         tmux("send-keys", "-t", "app", "2")
         tmux("send-keys", "-t", "app", "End")

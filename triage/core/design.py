@@ -17,6 +17,8 @@ from typing import TYPE_CHECKING, Final
 import numpy as np
 import polars as pl
 
+from triage.core.indicators import CodedDesign, IndicatorCodes
+from triage.core.levels import LevelTable, count_levels, level_text, present_value
 from triage.core.spec import is_categorical_dtype, quote_name
 from triage.errors import DataError, SpecError
 
@@ -32,6 +34,15 @@ ROW_INDEX: Final = "__row"
 
 INTERCEPT: Final = "intercept"
 """Name of the column of ones, and of its term."""
+
+STATUS_USED: Final = "used"
+"""`DesignBuilder.row_status` of a row the design keeps."""
+STATUS_MISSING: Final = "missing value"
+"""A row with a null, NaN or infinite value in a model column."""
+STATUS_UNSEEN: Final = "level not in the fit"
+"""A row whose categorical level the fit did not learn (only after a sample fit)."""
+STATUS_DOMAIN: Final = "outside a transform's domain"
+"""A row outside a transform's domain, with weight <= 0, or too large for float64."""
 
 _Y: Final = "__y"
 _W: Final = "__w"
@@ -158,6 +169,28 @@ class DesignBatch:
 
 
 @dataclass(frozen=True)
+class CodedBatch:
+    """One batch with its categoricals as level codes, not indicator columns (`build_coded`).
+
+    Attributes as for `DesignBatch`, with `design` (a `CodedDesign`) in place of ``x``.
+    """
+
+    design: CodedDesign
+    y: NDArray[np.float64]
+    weights: NDArray[np.float64] | None
+    rows: NDArray[np.int64]
+    frame: pl.DataFrame
+    n_dropped_missing: int
+    n_dropped_domain: int
+    n_dropped_unseen_level: int
+
+    @property
+    def n_rows(self) -> int:
+        """Number of rows kept."""
+        return int(self.y.shape[0])
+
+
+@dataclass(frozen=True)
 class DesignColumns:
     """One batch's design as separate columns, read where polars holds them (see `build_columns`).
 
@@ -188,20 +221,8 @@ def _is_float(dtype: pl.DataType | type[pl.DataType]) -> bool:
     return bool(dtype.is_float()) or bool(dtype.is_decimal())
 
 
-def _present(column: str, dtype: pl.DataType | type[pl.DataType]) -> pl.Expr:
-    """Mark usable values: not null and, for floats, finite."""
-    if _is_float(dtype):
-        return pl.col(column).cast(pl.Float64).is_finite().fill_null(value=False)
-    return pl.col(column).is_not_null()
-
-
 def _as_float(column: str) -> pl.Expr:
     return pl.col(column).cast(pl.Float64)
-
-
-def _levels_of(column: str) -> pl.Expr:
-    """Levels of a column as text (booleans read `true`/`false`), as learned from a sample."""
-    return pl.col(column).cast(pl.String)
 
 
 def _match_levels(
@@ -216,7 +237,7 @@ def _match_levels(
     if dtype == pl.Boolean:
         flags = [level == "true" for level in levels]
         return pl.col(column).is_in(flags), [pl.col(column) == flag for flag in flags]
-    source = pl.col(column) if is_categorical_dtype(dtype) else _levels_of(column)
+    source = pl.col(column) if is_categorical_dtype(dtype) else level_text(column)
     return source.is_in(list(levels)), [source == level for level in levels]
 
 
@@ -289,6 +310,99 @@ def _quick_checks(
     )
 
 
+def design_width(spec: ModelSpec, tables: Mapping[str, LevelTable]) -> int:
+    """Count the design's columns.
+
+    The intercept, one per numeric term, one per `poly` degree, and one indicator per
+    non-reference level of each categorical.
+    """
+    width = int(spec.intercept)
+    for term in spec.terms:
+        if term.kind == "categorical" and term.column is not None:
+            width += max(len(tables[term.column].levels) - 1, 0)
+        elif term.transform == "poly" and term.arg is not None:
+            width += term.arg
+        else:
+            width += 1
+    return width
+
+
+def design_memory_bytes(n_columns: int, batch_rows: int, n_workers: int) -> int:
+    """Estimate the peak memory of a pass over a design of `n_columns` columns.
+
+    Each worker holds its triangular factor (the shifted design plus target and a spare
+    column), twice that while two factors merge, and a batch's design three times over
+    (the polars frame, its float64 copy, the shifted copy the accumulator factors).
+    """
+    width = n_columns + 2
+    per_worker = 3 * width * width * 8 + 3 * batch_rows * width * 8
+    return n_workers * per_worker
+
+
+def memory_text(n_bytes: float) -> str:
+    """Write a byte count for a message: ``512 MiB``, ``7.5 GiB``, ``7,450 TiB``."""
+    for unit in ("KiB", "MiB", "GiB"):
+        n_bytes /= 1024
+        if n_bytes < 1024:
+            return f"{n_bytes:,.0f} {unit}" if n_bytes >= 100 else f"{n_bytes:.1f} {unit}"
+    return f"{n_bytes / 1024:,.0f} TiB"
+
+
+@dataclass(frozen=True)
+class DesignBudget:
+    """The memory a design may take, and the shape of the pass it is estimated for.
+
+    Attributes
+    ----------
+    limit_bytes : int
+        Most memory the pass's design may take (`design_memory_bytes`).
+    batch_rows : int
+        Rows per batch of the pass.
+    n_workers : int
+        Threads that each hold a factor and a batch.
+    """
+
+    limit_bytes: int
+    batch_rows: int
+    n_workers: int
+
+    def max_columns(self) -> int:
+        """Most design columns that fit within the limit."""
+        low, high = 0, 1
+        while design_memory_bytes(high, self.batch_rows, self.n_workers) <= self.limit_bytes:
+            low, high = high, 2 * high
+        while high - low > 1:
+            middle = (low + high) // 2
+            if design_memory_bytes(middle, self.batch_rows, self.n_workers) <= self.limit_bytes:
+                low = middle
+            else:
+                high = middle
+        return low
+
+    def check(self, spec: ModelSpec, tables: Mapping[str, LevelTable]) -> None:
+        """Raise `DataError` in one line when the design would need more than the limit."""
+        width = design_width(spec, tables)
+        need = design_memory_bytes(width, self.batch_rows, self.n_workers)
+        if need <= self.limit_bytes:
+            return
+        widest = max(tables.values(), key=lambda t: len(t.levels), default=None)
+        culprit = (
+            f"`{widest.column}` has {_level_count(widest)}"
+            if widest is not None
+            else f"{len(spec.terms)} terms"
+        )
+        partial = any(t.is_partial for t in tables.values())
+        at_least = "at least " if partial else ""
+        msg = (
+            f"the design would have {at_least}{width:,} columns ({culprit}) and need "
+            f"{at_least or 'about '}"
+            f"{memory_text(need)} of memory, more than the limit of "
+            f"{memory_text(self.limit_bytes)}; leave the column out or group its levels "
+            "(`--where` can keep fewer), or raise the limit with `--max-memory`"
+        )
+        raise DataError(msg)
+
+
 def _describe_levels(levels: list[str]) -> str:
     shown = ", ".join(f"`{level}`" for level in levels[:_SHOWN_LEVELS])
     more = len(levels) - _SHOWN_LEVELS
@@ -315,9 +429,12 @@ class DesignBuilder:
     numeric_predictors : tuple of str
         Source columns used by numeric, transform and interaction terms, in order.
     levels : mapping of str to tuple of str
-        Each categorical column's levels seen in the sample, sorted, reference included.
+        Each categorical column's levels in natural order, reference included.
+    level_tables : mapping of str to LevelTable
+        Each categorical column's levels with the rows counted for each (the rows the
+        levels and the reference were learned from).
     reference_levels : mapping of str to str
-        Each categorical column's reference level (no dummy column).
+        Each categorical column's reference level (no indicator column).
     scaling : mapping of str to tuple of float
         For each ``std(x)`` term label, the sample mean and SD (ddof=1) it uses.
     """
@@ -327,6 +444,7 @@ class DesignBuilder:
     term_of_column: tuple[str, ...]
     numeric_predictors: tuple[str, ...]
     levels: Mapping[str, tuple[str, ...]]
+    level_tables: Mapping[str, LevelTable]
     reference_levels: Mapping[str, str]
     scaling: Mapping[str, tuple[float, float]]
     _design: tuple[pl.Expr, ...] = field(repr=False, compare=False)
@@ -334,6 +452,10 @@ class DesignBuilder:
     _masks: tuple[pl.Expr, ...] = field(repr=False, compare=False)
     _checks: tuple[_DomainCheck, ...] = field(repr=False, compare=False)
     _may_overflow: tuple[int, ...] = field(repr=False, compare=False)
+    _coded: tuple[pl.Expr, ...] = field(repr=False, compare=False)
+    """Dense design columns (no intercept, no indicators), level codes, target, weights."""
+    _dense_positions: NDArray[np.intp] = field(repr=False, compare=False)
+    _level_positions: tuple[NDArray[np.intp], ...] = field(repr=False, compare=False)
 
     @staticmethod
     def learns_from_sample(spec: ModelSpec) -> bool:
@@ -345,11 +467,23 @@ class DesignBuilder:
         )
 
     @classmethod
-    def learn(cls, spec: ModelSpec, schema: SchemaLike, sample: pl.DataFrame) -> DesignBuilder:
-        """Learn the coding of every term from a sample.
+    def learn(
+        cls,
+        spec: ModelSpec,
+        schema: SchemaLike,
+        sample: pl.DataFrame,
+        *,
+        level_tables: Mapping[str, LevelTable] | None = None,
+        budget: DesignBudget | None = None,
+    ) -> DesignBuilder:
+        """Learn the coding of every term: levels and references, and `std()` scaling.
 
-        Statistics come from the sample rows that have a usable value in every model
-        column and meet every domain check, i.e. the rows `build` would keep.
+        A categorical's levels are those of `level_tables` (a full pass counts every row
+        first) or else of the sample rows with a value in that column; its reference is
+        the one the spec names, else the level with the most of those rows, ties going to
+        the first in natural order (`LevelTable.most_frequent`). The mean and SD behind
+        ``std(x)`` come from the sample rows that have a usable value in every model column
+        and meet every domain check, i.e. the rows `build` would keep.
 
         Parameters
         ----------
@@ -359,6 +493,10 @@ class DesignBuilder:
             The source's column types (they decide which values count as missing).
         sample : polars.DataFrame
             Rows holding at least the spec's model columns (target, terms, weights).
+        level_tables : mapping of str to LevelTable, optional
+            Levels counted over every row a full pass reads; None learns them from `sample`.
+        budget : DesignBudget, optional
+            Memory the design may take; checked before any design column is made.
 
         Returns
         -------
@@ -368,12 +506,21 @@ class DesignBuilder:
         ------
         SpecError
             If a categorical column has more than ``spec.max_levels`` levels, a given
-            reference level is not in the sample, or two design columns share a name.
+            reference level is not among its levels, or two design columns share a name.
         DataError
-            If a categorical has fewer than two levels or a ``std`` term has no spread
-            in the usable sample rows.
+            If a categorical has fewer than two levels, a ``std`` term has no spread in
+            the usable sample rows, or the design would need more memory than `budget`.
         """
-        present = _all([_present(c, schema[c]) for c in spec.model_columns()])
+        categorical = [t.column for t in spec.terms if t.kind == "categorical" and t.column]
+        if level_tables is None:
+            level_tables = count_levels(schema, categorical, sample)
+            basis = "the sample"
+        else:
+            basis = "the rows read"
+        tables = {c: _check_levels(spec, level_tables[c], basis) for c in categorical}
+        if budget is not None:
+            budget.check(spec, tables)
+        present = _all([present_value(c, schema[c]) for c in spec.model_columns()])
         checks = _domain_checks(spec)
         usable = sample.filter(present & ~_any([c.bad for c in checks]).fill_null(value=False))
 
@@ -418,7 +565,8 @@ class DesignBuilder:
             if term.kind == "categorical":
                 column = term.column
                 assert column is not None  # categorical terms have a column
-                found, reference = _learn_levels(spec, usable, column)
+                table = tables[column]
+                found, reference = table.levels, reference_level(spec, table)
                 levels[column] = found
                 references[column] = reference
                 in_levels, equal = _match_levels(column, schema[column], found)
@@ -469,12 +617,43 @@ class DesignBuilder:
             for part in _single_columns(term)
             if part.column is not None
         ]
+        index = {name: i for i, name in enumerate(names)}
+        categorical_columns = list(levels)
+        indicator_at = {
+            index[indicator_name(c, level)]
+            for c in categorical_columns
+            for level in levels[c]
+            if level != references[c]
+        }
+        dense_positions = [
+            i for i in range(int(spec.intercept), len(names)) if i not in indicator_at
+        ]
+        level_positions = tuple(
+            np.array(
+                [
+                    -1 if level == references[c] else index[indicator_name(c, level)]
+                    for level in levels[c]
+                ],
+                dtype=np.intp,
+            )
+            for c in categorical_columns
+        )
+        codes = [
+            level_text(c).cast(pl.Enum(list(levels[c]))).to_physical().alias(f"__code_{k}")
+            for k, c in enumerate(categorical_columns)
+        ]
+        coded = (
+            *[design[i] for i in dense_positions],
+            *codes,
+            *design[len(names) :],  # target and weights
+        )
         return cls(
             spec=spec,
             column_names=tuple(names),
             term_of_column=tuple(owners),
             numeric_predictors=tuple(dict.fromkeys(predictors)),
             levels=MappingProxyType(levels),
+            level_tables=MappingProxyType(tables),
             reference_levels=MappingProxyType(references),
             scaling=MappingProxyType(scaling),
             _design=tuple(design),
@@ -486,6 +665,9 @@ class DesignBuilder:
             ),
             _checks=tuple(checks),
             _may_overflow=tuple(may_overflow),
+            _coded=coded,
+            _dense_positions=np.array(dense_positions, dtype=np.intp),
+            _level_positions=level_positions,
         )
 
     def build(self, frame: pl.DataFrame) -> DesignBatch:
@@ -545,6 +727,84 @@ class DesignBuilder:
             n_dropped_unseen_level=n_unseen,
         )
 
+    @property
+    def indicator_positions(self) -> tuple[int, ...]:
+        """Design columns that are indicators of a categorical's levels."""
+        return tuple(int(i) for p in self._level_positions for i in p if i >= 0)
+
+    def build_coded(self, frame: pl.DataFrame) -> CodedBatch | None:
+        """Turn one batch into dense columns and level codes, dropping rows as `build` does.
+
+        The indicators of a categorical are never written out: each row keeps one small
+        integer, its level (`triage.core.indicators`). None for a design without a
+        categorical, or when a value overflowed float64 (`build` then drops or reports it).
+
+        Parameters
+        ----------
+        frame : polars.DataFrame
+            A batch holding the spec's source columns and `ROW_INDEX`.
+
+        Returns
+        -------
+        CodedBatch or None
+
+        Raises
+        ------
+        DataError
+            As `build`.
+        """
+        if not self.levels:
+            return None
+        q, c = self._dense_positions.size, len(self._level_positions)
+        n_values = q + c + 1 + int(self.spec.weights is not None)
+        # One select gives the values and the masks; a level not among the learned ones
+        # reads as a null code, so no per-level comparison is needed.
+        selected = frame.select(*self._coded, *self._masks[:1], *self._masks[2:])
+        columns = selected.get_columns()
+        present = columns[n_values].to_numpy()
+        known = np.ones(frame.height, dtype=np.bool_)
+        for series in columns[q : q + c]:
+            if series.has_nulls():
+                known &= series.is_not_null().to_numpy()
+        bad = np.zeros(frame.height, dtype=np.bool_)
+        for series in columns[n_values + 1 :]:
+            bad |= series.to_numpy()
+        usable = present & known
+        n_missing = n_unseen = n_domain = 0
+        if not (usable.all() and not bad.any()):
+            if not self.spec.drop_invalid and (usable & bad).any():
+                self._drop_rows(frame)  # raises, saying which check failed and how often
+            keep = usable & ~bad
+            n_missing = int(np.count_nonzero(~present))
+            n_unseen = int(np.count_nonzero(present & ~known))
+            n_domain = int(np.count_nonzero(usable & bad))
+            kept = pl.Series(keep)
+            frame, selected = frame.filter(kept), selected.filter(kept)
+            columns = selected.get_columns()
+        dense = [series.to_numpy() for series in columns[:q]]
+        if self._may_overflow and not all(np.isfinite(column).all() for column in dense):
+            return None
+        design = CodedDesign(
+            dense=dense,
+            dense_positions=self._dense_positions,
+            factors=[
+                IndicatorCodes(codes=series.to_numpy(), positions=positions)
+                for series, positions in zip(columns[q : q + c], self._level_positions, strict=True)
+            ],
+            n_cols=len(self.column_names),
+            has_intercept=self.spec.intercept,
+        )
+        return CodedBatch(
+            design=design,
+            y=columns[q + c].to_numpy(),
+            weights=columns[q + c + 1].to_numpy() if self.spec.weights is not None else None,
+            rows=frame.get_column(ROW_INDEX).cast(pl.Int64).to_numpy(),
+            frame=frame,
+            n_dropped_missing=n_missing,
+            n_dropped_domain=n_domain,
+            n_dropped_unseen_level=n_unseen,
+        )
+
     def build_columns(self, frame: pl.DataFrame) -> DesignColumns | None:
         """Return the batch's design as separate columns, not copied, or None to use `build`.
 
@@ -570,6 +830,36 @@ class DesignBuilder:
             return None
         *predictors, y = (series.to_numpy() for series in design.get_columns())
         return DesignColumns(predictors=predictors, y=y)
+
+    def row_status(self, frame: pl.DataFrame) -> pl.Series:
+        """Say for each row whether `build` keeps it, or the first reason it leaves it out.
+
+        The reasons and their order are those `build` counts: ``missing value``,
+        ``level not in the fit``, ``outside a transform's domain``; a kept row is ``used``.
+        A row whose design values overflow float64 is found only by `build`.
+
+        Parameters
+        ----------
+        frame : polars.DataFrame
+            Rows holding the spec's source columns.
+
+        Returns
+        -------
+        polars.Series
+            Text, one value per row of `frame`, named ``status``.
+        """
+        masks = frame.select(self._masks)
+        bad = _any([pl.col(check.name) for check in self._checks])
+        status = (
+            pl.when(~pl.col(_PRESENT))
+            .then(pl.lit(STATUS_MISSING))
+            .when(~pl.col(_IN_LEVELS))
+            .then(pl.lit(STATUS_UNSEEN))
+            .when(bad)
+            .then(pl.lit(STATUS_DOMAIN))
+            .otherwise(pl.lit(STATUS_USED))
+        )
+        return masks.select(status.alias("status")).to_series()
 
     def _drop_rows(self, frame: pl.DataFrame) -> tuple[pl.DataFrame, int, int, int]:
         """Drop unusable rows and count them (missing, unseen level, domain), or raise."""
@@ -618,45 +908,42 @@ class DesignBuilder:
         return np.asfortranarray(values[keep]), frame.filter(pl.Series(keep)), n_bad
 
 
-def _learn_levels(
-    spec: ModelSpec, usable: pl.DataFrame, column: str
-) -> tuple[tuple[str, ...], str]:
-    """Sorted levels of a categorical column in the usable sample rows, and its reference.
+def reference_level(spec: ModelSpec, table: LevelTable) -> str:
+    """Return a categorical's reference: the one the spec names, else its most frequent level."""
+    return spec.reference.get(table.column) or table.most_frequent()
 
-    The reference is the one given in the spec, else the most frequent level (ties go to
-    the level first in sorted order).
-    """
-    counts = (
-        usable.select(_levels_of(column).alias("level"))
-        .get_column("level")
-        .value_counts(name="n")
-        .sort(["n", "level"], descending=[True, False])
-    )
-    by_frequency = counts.get_column("level").to_list()
-    found = sorted(by_frequency)
-    label = quote_name(column)
+
+def _level_count(table: LevelTable) -> str:
+    """Write a level count: `12 levels`, or `at least 16,384 levels` when counting stopped."""
+    at_least = "at least " if table.is_partial else ""
+    return f"{at_least}{len(table.levels):,} levels"
+
+
+def _check_levels(spec: ModelSpec, table: LevelTable, basis: str) -> LevelTable:
+    """Check a categorical's level count and named reference; return the table."""
+    column, found = table.column, table.levels
     if len(found) > spec.max_levels:
         msg = (
-            f"categorical column `{column}` has {len(found):,} levels in the sample, more than "
+            f"categorical column `{column}` has {_level_count(table)} in {basis}, more than "
             f"the limit of {spec.max_levels}; raise the limit with `--max-levels` or filter "
             "the rows with `--where`"
         )
         raise SpecError(msg)
     if len(found) < 2:
-        got = f"only the level `{found[0]}`" if found else "no usable rows"
+        got = f"only the level `{found[0]}`" if found else "no values"
         msg = (
-            f"categorical term `{label}` has {got} in the sample rows with every model column "
-            "present; it needs at least two levels: remove the term or widen the sample"
+            f"categorical term `{quote_name(column)}` has {got} in {basis}; it needs at least "
+            "two levels: remove the term or widen the rows"
         )
         raise DataError(msg)
-    reference = spec.reference.get(column, by_frequency[0])
-    if reference not in found:
+    reference = spec.reference.get(column)
+    if reference is not None and reference not in found:
         msg = (
-            f"reference level `{reference}` for `{column}` is not among its levels in the "
-            f"sample: {_describe_levels(found)}; choose one of those"
+            f"reference level `{reference}` for `{column}` is not among its levels in "
+            f"{basis}: {_describe_levels(list(found))}; choose one of those"
         )
         raise SpecError(msg)
-    return tuple(found), reference
+    return table
 
 
 def _learn_scaling(usable: pl.DataFrame, term: Term) -> tuple[float, float]:

@@ -22,7 +22,7 @@ from __future__ import annotations
 import itertools
 import math
 from collections.abc import Collection, Mapping
-from dataclasses import dataclass, field, fields, replace
+from dataclasses import dataclass, field, replace
 from typing import TYPE_CHECKING, Final
 
 import numpy as np
@@ -35,35 +35,36 @@ from triage.core.binning import (
     quantile_edges,
     quantiles_from_counts,
 )
-from triage.core.distributions import norm_sf
+from triage.core.distributions import chi2_sf, norm_sf, t_ppf
 from triage.core.moments import StreamMoments, pool_groups
 from triage.core.residual_tests import (
     BreuschPaganAccumulator,
     DurbinWatsonAccumulator,
     ResetAccumulator,
-    ResidualTest,
     jarque_bera,
 )
 from triage.core.worst_rows import TopRows
 from triage.errors import SpecError
+from triage.results.diagnostics import (
+    Diagnostics,
+    Flag,
+    ResidualBin,
+    ResidualHistogram,
+    ResidualTest,
+    RobustStdErrors,
+    RowDiagnostics,
+    SegmentLevel,
+    ThresholdCounts,
+    WorstRow,
+)
 
 if TYPE_CHECKING:
     from triage.core.design import DesignBatch
     from triage.core.lsq import LinearFit
 
 __all__ = [
-    "Diagnostics",
     "DiagnosticsAccumulator",
     "DiagnosticsConfig",
-    "Flag",
-    "ResidualBin",
-    "ResidualHistogram",
-    "ResidualTest",
-    "RobustStdErrors",
-    "RowDiagnostics",
-    "SegmentLevel",
-    "ThresholdCounts",
-    "WorstRow",
     "default_config",
     "row_diagnostics",
 ]
@@ -113,62 +114,6 @@ _BIN_QUANTILES: Final = (0.1, 0.5, 0.9)
 
 
 # --------------------------------------------------------------------------- per-row values
-
-
-@dataclass(frozen=True, eq=False)
-class RowDiagnostics:
-    """Per-row diagnostics of design rows under a fit.
-
-    Attributes
-    ----------
-    rows : ndarray of shape (n,)
-        Row positions in the source.
-    fitted : ndarray of shape (n,)
-        Fitted values.
-    resid : ndarray of shape (n,)
-        ``y - fitted``.
-    weighted_resid : ndarray of shape (n,)
-        ``√w·(y - fitted)``; the same array as `resid` for an unweighted fit.
-    leverage : ndarray of shape (n,)
-        Hat values of the (whitened) design.
-    student_internal : ndarray of shape (n,)
-        ``weighted_resid / (s √(1 - h))`` with ``s`` the fit's residual SD.
-    studentized : ndarray of shape (n,)
-        Externally studentized: as above with the leave-one-out SD
-        ``s_(i)² = (RSS - e_i²/(1 - h_i)) / (df_resid - 1)``.
-    cooks : ndarray of shape (n,)
-        Cook's distance ``student_internal² h / (p (1 - h))``, ``p`` the rank of the design.
-    in_fit : ndarray of bool, shape (n,)
-        True where the row was one of the rows the fit was computed on.
-
-    Notes
-    -----
-    Studentized values and Cook's distance are NaN where ``h`` is 1 (see
-    `LEVERAGE_ONE_TOLERANCE`), where the fit has no residual spread, and (external only) where
-    fewer than 2 residual degrees of freedom are left.
-
-    A row outside the fit (filtered out, left out by a mark, not in the sample) is scored as
-    a new observation: `leverage` is ``h0 = x0ᵀ(XᵀX)⁻¹x0`` (times its weight), computed as
-    ``‖R⁻ᵀx0‖²`` like the hat values, and both studentized columns hold the standardised
-    prediction residual ``√w·e0 / (s √(1 + h0))``, whose variance under the model is
-    ``σ²(1 + h0)`` since the row did not pull the fit. Cook's distance measures how a row
-    moves the fit it is part of, so it is NaN there.
-    """
-
-    rows: IntArray
-    fitted: FloatArray
-    resid: FloatArray
-    weighted_resid: FloatArray
-    leverage: FloatArray
-    student_internal: FloatArray
-    studentized: FloatArray
-    cooks: FloatArray
-    in_fit: NDArray[np.bool_]
-
-    def take(self, indices: ArrayLike) -> RowDiagnostics:
-        """Return the diagnostics of the rows at `indices` (indices into these arrays)."""
-        picked = np.asarray(indices, dtype=np.intp)
-        return RowDiagnostics(**{f.name: getattr(self, f.name)[picked] for f in fields(self)})
 
 
 def _rank(fit: LinearFit) -> int:
@@ -450,148 +395,6 @@ def default_config(
 # --------------------------------------------------------------------------- results
 
 
-@dataclass(frozen=True, eq=False)
-class ResidualHistogram:
-    """Counts of weighted residuals on `edges`, tails, extremes and quantiles."""
-
-    edges: FloatArray
-    """Bin edges; bin k is ``[edges[k], edges[k + 1])``, the last one closed."""
-    counts: IntArray
-    """Residuals per bin."""
-    below: int
-    """Residuals below the first edge."""
-    above: int
-    """Residuals above the last edge."""
-    minimum: float
-    """Smallest residual (NaN when empty)."""
-    maximum: float
-    """Largest residual (NaN when empty)."""
-    quantiles: dict[float, float]
-    """Probability -> quantile from the fine grid, within one fine bin of the exact value
-    inside ±8 SD (rough beyond: see `triage.core.binning`)."""
-
-
-@dataclass(frozen=True)
-class ResidualBin:
-    """Residuals of the rows whose binned variable falls in ``[lo, hi)``."""
-
-    lo: float
-    """Lower edge (the smallest value seen, if below the first edge, for the first bin)."""
-    hi: float
-    """Upper edge (the largest value seen, if above the last edge, for the last bin)."""
-    n: int
-    """Rows in the bin."""
-    x_mean: float
-    """Mean of the binned variable in the bin (NaN when empty)."""
-    mean_resid: float
-    """Mean weighted residual (NaN when empty)."""
-    q10: float
-    """10% quantile of the weighted residuals, from the fine grid."""
-    q50: float
-    """Median."""
-    q90: float
-    """90% quantile."""
-
-
-@dataclass(frozen=True)
-class WorstRow:
-    """One row of a worst-rows list."""
-
-    row: int
-    """Position in the source."""
-    fitted: float
-    resid: float
-    """``y - fitted``."""
-    weighted_resid: float
-    """``√w·(y - fitted)``; the ranking value of ``abs_resid`` (equal to `resid` unweighted)."""
-    studentized: float
-    """Externally studentized residual."""
-    leverage: float
-    cooks: float
-    """Cook's distance."""
-
-
-@dataclass(frozen=True)
-class SegmentLevel:
-    """Weighted residuals of one level (or bin) of a segment column."""
-
-    level: str
-    """The level as text, ``"(missing)"`` for nulls, ``"(other)"`` for pooled levels, or an
-    interval such as ``"[2.5, 4)"`` for a numeric column."""
-    n: int
-    mean_resid: float
-    rmse: float
-    """Root mean square residual in the level."""
-    t: float
-    """``mean / (sd / √n)``: the mean residual in standard-error units (NaN below 2 rows)."""
-
-
-@dataclass(frozen=True)
-class RobustStdErrors:
-    """Heteroscedasticity-consistent standard errors of one coefficient (NaN if aliased)."""
-
-    hc0: float
-    hc1: float
-    """HC0 scaled by ``n / (n - p)``."""
-    hc2: float
-    """Squared residuals divided by ``1 - h``."""
-    hc3: float
-    """Squared residuals divided by ``(1 - h)²``."""
-
-
-@dataclass(frozen=True)
-class ThresholdCounts:
-    """Rows beyond the common-practice thresholds used by the flags (exact counts)."""
-
-    studentized: int
-    """Rows with ``|studentized| > 3``."""
-    leverage: int
-    """Rows with leverage above `leverage_threshold`."""
-    leverage_threshold: float
-    """``2 p / n`` with ``p`` the rank and ``n`` the rows of the fit."""
-    cooks: int
-    """Rows with Cook's distance above `cooks_threshold`."""
-    cooks_threshold: float
-    """``4 / n``."""
-
-
-@dataclass(frozen=True)
-class Flag:
-    """A plain-word hint that something may deserve a look; never a verdict."""
-
-    code: str
-    """Stable identifier, e.g. ``"spread-changes"``."""
-    message: str
-    """One or two sentences naming the rule behind the hint."""
-
-
-@dataclass(frozen=True, eq=False)
-class Diagnostics:
-    """Everything pass 2 found; plain values ready for text, JSON or a screen."""
-
-    n: int
-    """Rows seen in pass 2."""
-    histogram: ResidualHistogram
-    binned: dict[str, tuple[ResidualBin, ...]]
-    """``"fitted"`` and each numeric predictor -> bins in ascending order."""
-    worst: dict[Criterion, tuple[WorstRow, ...]]
-    """Criterion -> rows, worst first (ties: lower row position first)."""
-    segments: dict[str, tuple[SegmentLevel, ...]]
-    """Segment column -> levels by ``|t|`` descending (NaN last); empty levels left out."""
-    segments_capped: tuple[str, ...]
-    """Segment columns that had more levels than `max_segment_levels`."""
-    tests: dict[str, ResidualTest]
-    """``breusch_pagan``, ``reset``, ``jarque_bera``, ``durbin_watson``."""
-    robust_se: dict[str, RobustStdErrors]
-    """Coefficient name -> HC0–HC3 standard errors."""
-    counts: ThresholdCounts
-    resid_skewness: float
-    """Moment skewness of the weighted residuals."""
-    resid_kurtosis: float
-    """Moment kurtosis of the weighted residuals (3 for a normal)."""
-    flags: tuple[Flag, ...]
-
-
 # --------------------------------------------------------------------------- accumulator parts
 
 
@@ -845,7 +648,9 @@ class DiagnosticsAccumulator:
         self._meat = np.zeros((3, rank, rank))
         self._leverage_threshold = 2.0 * rank / fit.n
         self._cooks_threshold = 4.0 / fit.n
+        self._extreme_threshold = bonferroni_bound(fit.n, fit.df_resid)
         self._n_studentized = 0
+        self._n_extreme = 0
         self._n_leverage = 0
         self._n_cooks = 0
 
@@ -904,6 +709,7 @@ class DiagnosticsAccumulator:
         self._update_meat(shifted, batch.weights, rd)
         with np.errstate(invalid="ignore"):
             self._n_studentized += int(np.sum(np.abs(rd.studentized) > STUDENTIZED_LIMIT))
+            self._n_extreme += int(np.sum(np.abs(rd.studentized) > self._extreme_threshold))
             self._n_leverage += int(np.sum(rd.leverage > self._leverage_threshold))
             self._n_cooks += int(np.sum(rd.cooks > self._cooks_threshold))
 
@@ -972,6 +778,7 @@ class DiagnosticsAccumulator:
         self._reset.merge(other._reset)
         self._meat += other._meat
         self._n_studentized += other._n_studentized
+        self._n_extreme += other._n_extreme
         self._n_leverage += other._n_leverage
         self._n_cooks += other._n_cooks
         return self
@@ -1035,6 +842,8 @@ class DiagnosticsAccumulator:
         }
         counts = ThresholdCounts(
             studentized=self._n_studentized,
+            extreme=self._n_extreme,
+            extreme_threshold=self._extreme_threshold,
             leverage=self._n_leverage,
             leverage_threshold=self._leverage_threshold,
             cooks=self._n_cooks,
@@ -1059,6 +868,37 @@ class DiagnosticsAccumulator:
 # --------------------------------------------------------------------------- flags
 
 
+def _rows(count: int) -> str:
+    """``1 row``, ``2 rows``, ``4,149 rows``."""
+    return f"{count:,} row{'' if count == 1 else 's'}"
+
+
+def _have(count: int) -> str:
+    return "has" if count == 1 else "have"
+
+
+def bonferroni_bound(n: int, df_resid: int, level: float = 0.05) -> float:
+    """Return the size of studentized residual that chance passes in under `level` of fits.
+
+    The Bonferroni outlier bound: the t quantile at ``1 - level / (2 n)`` with
+    ``df_resid - 1`` degrees of freedom (each externally studentized residual follows that
+    t under normal errors); infinite when there are too few degrees of freedom.
+    """
+    if n < 1 or df_resid < 2:
+        return math.inf
+    return t_ppf(1.0 - level / (2.0 * n), df_resid - 1)
+
+
+def poisson_at_least(count: int, mean: float) -> float:
+    """Return P(X >= count) for X Poisson with `mean` (1 for a count of 0)."""
+    if count <= 0:
+        return 1.0
+    if mean <= 0.0:
+        return 0.0
+    # P(X >= k) = P(chi-squared with 2k df <= 2 mean)
+    return 1.0 - chi2_sf(2.0 * mean, 2.0 * count)
+
+
 def _flags(
     fit: LinearFit,
     config: DiagnosticsConfig,
@@ -1069,23 +909,34 @@ def _flags(
 ) -> tuple[Flag, ...]:
     """Plain-word hints, each naming its rule; aids to judgement, not verdicts."""
     flags: list[Flag] = []
-    if counts.studentized:
-        # Two-sided normal tail beyond 3: what chance alone would give with normal errors.
-        expected = n * 2.0 * norm_sf(STUDENTIZED_LIMIT)
+    # Two-sided normal tail beyond 3: what chance alone would give with normal errors.
+    expected = n * 2.0 * norm_sf(STUDENTIZED_LIMIT)
+    many_beyond_3 = poisson_at_least(counts.studentized, expected) < FLAG_P_VALUE
+    if counts.extreme or many_beyond_3:
+        found = []
+        if counts.extreme:
+            found.append(
+                f"{_rows(counts.extreme)} beyond ±{counts.extreme_threshold:.3g}, further out "
+                f"than normal errors would put any of {n:,} rows in 19 fits of 20 (Bonferroni "
+                "bound)"
+            )
+        if many_beyond_3:
+            found.append(
+                f"{_rows(counts.studentized)} beyond ±3 where chance would put about "
+                f"{expected:,.0f} (common practice threshold)"
+            )
         flags.append(
             Flag(
                 "large-studentized",
-                f"{counts.studentized:,} rows have a studentized residual beyond ±3 (a common "
-                f"practice threshold; about {expected:,.1f} would be expected by chance with "
-                "normal errors). Worth a look: they may be data errors or cases the model "
-                "does not cover, though this is no proof of error.",
+                f"studentized residuals: {'; '.join(found)}. Worth a look: they may be data "
+                "errors or cases the model does not cover, though this is no proof of error.",
             )
         )
     if counts.leverage:
         flags.append(
             Flag(
                 "high-leverage",
-                f"{counts.leverage:,} rows have leverage above 2p/n = "
+                f"{_rows(counts.leverage)} {_have(counts.leverage)} leverage above 2p/n = "
                 f"{counts.leverage_threshold:.3g} (common practice): their predictor values "
                 "are unusual and may pull the fit towards them. Worth a look.",
             )
@@ -1094,7 +945,7 @@ def _flags(
         flags.append(
             Flag(
                 "influential-rows",
-                f"{counts.cooks:,} rows have Cook's distance above 4/n = "
+                f"{_rows(counts.cooks)} {_have(counts.cooks)} Cook's distance above 4/n = "
                 f"{counts.cooks_threshold:.3g} (common practice): leaving one out may move "
                 "the coefficients noticeably. Worth a look, no proof of error.",
             )
@@ -1128,10 +979,10 @@ def _flags(
             Flag(
                 "tails",
                 f"Jarque–Bera p = {jb.p_value:.2g} < 0.01 (skewness "
-                f"{moments.skewness():.2f}, kurtosis {moments.kurtosis():.2f}; normal: 0 "
-                "and 3): the residuals may have heavy tails or skew, so intervals that "
-                "assume normal errors may be off. With many rows this reacts to small "
-                "departures.",
+                f"{moments.skewness():.2f}, excess kurtosis {moments.kurtosis() - 3.0:.2f}; "
+                "both 0 for a normal): the residuals may have heavy tails or skew, so "
+                "intervals that assume normal errors may be off. With many rows this reacts "
+                "to small departures.",
             )
         )
     low, high = DURBIN_WATSON_RANGE

@@ -86,6 +86,8 @@ class ParquetFileSource(BlockSource):
         # A fresh reader per operation: a read-ahead thread and a drill-down can overlap.
         # pre_buffer=False: the default buffered about the whole file (4.7 GB measured).
         # buffer_size: read column chunks in pieces instead of whole (see READ_BUFFER_BYTES).
+        # The footer read at opening is reused, so the file must still be the one it describes.
+        self.snapshot.check_file(self._path)
         return pq.ParquetFile(
             self._path, metadata=self._metadata, pre_buffer=False, buffer_size=READ_BUFFER_BYTES
         )
@@ -157,9 +159,9 @@ class ParquetDatasetSource(BlockSource):
     _block_unit = "row groups"
 
     def __init__(self, path: Path, files: list[Path], base: Path) -> None:
-        super().__init__(path)
         self._files = tuple(files)
         self._base = base
+        super().__init__(path)
         self.schema()
 
     @property
@@ -190,13 +192,18 @@ class ParquetDatasetSource(BlockSource):
         return dict(self._lazy().collect_schema())
 
     @functools.cached_property
-    def _offsets(self) -> np.ndarray:
-        sizes: list[int] = []
+    def _footer_rows(self) -> list[list[int]]:
+        """Rows of each row group of each file, from the footers."""
+        rows: list[list[int]] = []
         for file in self._files:
             with reading(file, self._kind):
                 metadata = pq.read_metadata(file)
-            sizes.extend(metadata.row_group(i).num_rows for i in range(metadata.num_row_groups))
-        return offsets_from_sizes(sizes)
+            rows.append([metadata.row_group(i).num_rows for i in range(metadata.num_row_groups)])
+        return rows
+
+    @functools.cached_property
+    def _offsets(self) -> np.ndarray:
+        return offsets_from_sizes([n for groups in self._footer_rows for n in groups])
 
     def _scan_raw(self, columns: list[str], batch_rows: int) -> Iterator[pl.DataFrame]:
         query = (
@@ -204,8 +211,17 @@ class ParquetDatasetSource(BlockSource):
             .with_row_index(ROW_INDEX)
             .select(pl.col(ROW_INDEX).cast(pl.Int64), *columns)
         )
+        # Each file is checked against the snapshot as the scan reaches its rows.
+        file_starts = offsets_from_sizes([sum(groups) for groups in self._footer_rows])[:-1]
+        n_checked = 0
         with reading(self._path, self._kind):
-            yield from collect_batches(query, batch_rows=batch_rows)
+            for frame in collect_batches(query, batch_rows=batch_rows):
+                if frame.height:
+                    last = int(frame[ROW_INDEX][-1])
+                    n_reached = int(np.searchsorted(file_starts, last, side="right"))
+                    self.snapshot.check_files(self._files[n_checked:n_reached])
+                    n_checked = max(n_checked, n_reached)
+                yield frame
 
     def _block_offsets(self, n_rows: int | None) -> np.ndarray:
         return self._offsets

@@ -11,46 +11,45 @@ from __future__ import annotations
 
 import threading
 from collections.abc import Collection, Sequence
-from dataclasses import dataclass
 from typing import TYPE_CHECKING, Final
 
 import numpy as np
 import polars as pl
 
-from triage.core.checks import CurvatureCheck, RobustCheck, curvature_check, huber_refit
-from triage.core.compare import Comparison, compare_fits
+from triage.core.checks import curvature_check, huber_refit
+from triage.core.compare import compare_fits
 from triage.core.design import DesignBatch, DesignBuilder
 from triage.core.holdout import (
     HoldoutAccumulator,
     HoldoutRule,
-    HoldoutScore,
-    KFoldResult,
     cut_holdout_mask,
     kfold_rmse,
     random_holdout_mask,
 )
+from triage.core.limits import check_factor_scale
 from triage.core.lsq import QRAccumulator
 from triage.data.base import random_keys
 from triage.data.source import ROW_INDEX
 from triage.engine.passes import (
     DEFAULT_SAMPLE_ROWS,
-    DataSummary,
-    FitOutcome,
     PassPlan,
     RowCounts,
     check_rows_left,
+    naming_values_too_large,
 )
 from triage.engine.progress import ProgressCallback, ProgressTracker
 from triage.errors import SpecError
+from triage.results.checks import CurvatureCheck, RobustCheck
+from triage.results.compare import ComparedModel, ComparisonOutcome
+from triage.results.fit import FitOutcome
+from triage.results.holdout import KFoldResult
 
 if TYPE_CHECKING:
-    from triage._typing import SampleDesign
+    from triage._typing import RowsToRead, Sampling
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
 
 __all__ = [
-    "ComparedModel",
-    "ComparisonOutcome",
     "compare_models",
     "curvature_check_outcome",
     "robust_check_outcome",
@@ -63,41 +62,6 @@ A uniform sample keeps the rows with the smallest `random_keys` under the user's
 with the same keys the sample would be exactly the held-out rows. (The constant is the
 fractional part of sqrt(2) in hex, a number with no structure of its own.)
 """
-
-
-@dataclass(frozen=True)
-class ComparedModel:
-    """One model of a comparison: its fit on the rows not held out, and its held-out scores."""
-
-    label: str
-    """The terms as written."""
-    outcome: FitOutcome
-    """The fit, its builder and the rows it used; `sample` holds the sample rows every model
-    could use (the rows the K-fold RMSE, robust refit and curvature check run on)."""
-    holdout: HoldoutScore | None
-    """Score on the held-out rows, or None without a held-out rule."""
-    cv: KFoldResult | None
-    """K-fold RMSE on the sample's rows not held out, or None with too few rows."""
-
-
-@dataclass(frozen=True)
-class ComparisonOutcome:
-    """Several models fitted to the same rows, compared."""
-
-    models: tuple[ComparedModel, ...]
-    """In the order given."""
-    comparison: Comparison
-    """Criteria, nested F tests and best marks."""
-    data: DataSummary
-    """The rows every model could use; `rows_used` counts the rows fitted (not held out)."""
-    holdout_rule: HoldoutRule | None
-    """How rows were held out, if they were."""
-    rows_held_out: int
-    """Rows scored but not fitted."""
-    rows_without_cut: int
-    """Rows left out of both parts because the held-out-by column was missing."""
-    folds: int
-    """Folds of the K-fold RMSE."""
 
 
 def _check_same_rows_spec(specs: Sequence[ModelSpec]) -> None:
@@ -166,9 +130,9 @@ def compare_models(
     specs: Sequence[ModelSpec],
     labels: Sequence[str],
     *,
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
-    design: SampleDesign = "groups",
+    sampling: Sampling = "groups",
     holdout: HoldoutRule | None = None,
     folds: int = 5,
     exclude_rows: Collection[int] = (),
@@ -185,11 +149,11 @@ def compare_models(
         The models; they must share target, weights and filter.
     labels : sequence of str
         Each model's terms as written, for the table.
-    rows : int or None, default=200_000
-        Sample size; None streams every row.
+    rows : int or ALL_ROWS, default=200_000
+        Sample size; `ALL_ROWS` streams every row.
     seed : int, default=0
         Seed of the sample, of the held-out split and of the fold assignment.
-    design : {"groups", "uniform"}, default="groups"
+    sampling : {"groups", "uniform"}, default="groups"
         How the sample is drawn.
     holdout : HoldoutRule, optional
         Rows to hold out of every fit and score afterwards; with it, in-sample figures
@@ -229,7 +193,7 @@ def compare_models(
         specs[0],
         rows=rows,
         seed=seed,
-        design=design,
+        sampling=sampling,
         exclude_rows=exclude_rows,
         extra_columns=list(dict.fromkeys(extra)),
     )
@@ -248,8 +212,11 @@ def compare_models(
         is_held = np.isin(batches[0].rows, held_positions)
         n_held += int(is_held.sum())
         counts.used += int((~is_held).sum())
-        for batch, accumulator, scorer in zip(batches, accumulators, scorers, strict=True):
-            _split_update(batch, is_held, accumulator, scorer)
+        for builder, batch, accumulator, scorer in zip(
+            builders, batches, accumulators, scorers, strict=True
+        ):
+            with naming_values_too_large(builder, frame):
+                _split_update(batch, is_held, accumulator, scorer)
     check_rows_left(counts, specs[0])
     summary = plan.summary(counts)
     cvs = _sample_kfold(builders, common_sample, holdout, exclude_rows, folds, seed)
@@ -257,6 +224,7 @@ def compare_models(
     for label, builder, accumulator, scorer, cv in zip(
         labels, builders, accumulators, scorers, cvs, strict=True
     ):
+        check_factor_scale(accumulator.factor, builder.column_names, builder.spec.target)
         fit = accumulator.finalize(builder.column_names)
         outcome = FitOutcome(builder.spec, builder, fit, summary, common_sample)
         score = scorer.score(fit.coef) if holdout is not None else None

@@ -7,6 +7,7 @@ cancel, checks the event between batches, and raises `PassCancelled` within one 
 from __future__ import annotations
 
 import contextlib
+import os
 import threading
 import time
 from collections.abc import Callable, Collection, Generator, Iterator, Sequence
@@ -16,22 +17,29 @@ from typing import TYPE_CHECKING, TypeVar
 import numpy as np
 import polars as pl
 
-from triage.core.design import DesignBatch, DesignBuilder
+from triage._typing import ALL_ROWS
+from triage.core.design import CodedBatch, DesignBatch, DesignBudget, DesignBuilder
 from triage.core.filter import parse_filter
-from triage.core.lsq import LinearFit, QRAccumulator
+from triage.core.levels import LevelCounter
+from triage.core.limits import check_column_values, check_factor_scale
+from triage.core.lsq import QRAccumulator, UncertifiedGram
 from triage.data.source import ROW_INDEX
 from triage.engine.allocator import keep_batch_memory
-from triage.engine.progress import PassProgress, ProgressCallback, ProgressTracker, ReadAhead
-from triage.engine.workers import fold_in_order
-from triage.errors import DataError
+from triage.engine.progress import ProgressCallback, ProgressTracker, ReadAhead
+from triage.engine.workers import fold_in_order, pass_workers
+from triage.errors import DataError, TriageError
+from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
+from triage.results.progress import PassProgress
 
 if TYPE_CHECKING:
     from numpy.typing import NDArray
 
-    from triage._typing import SampleDesign
-    from triage.core.diagnostics import Diagnostics, RowDiagnostics
+    from triage._typing import RowsToRead, Sampling
+    from triage.core.levels import LevelTable
+    from triage.core.lsq import LinearFit
     from triage.core.spec import ModelSpec
     from triage.data.source import Batch, Sample, Source
+    from triage.results.diagnostics import Diagnostics, RowDiagnostics
 
 S = TypeVar("S")
 
@@ -61,57 +69,29 @@ MiB peak with `BATCH_VALUES` (batches of 62,500 rows), 5.0 s and 725 MiB with th
 """
 
 
+MEMORY_SHARE = 0.5
+"""Share of the machine's memory (or of the process's address-space limit) a design may take."""
+
+
+def default_memory_limit() -> int:
+    """Bytes a design may take by default: `MEMORY_SHARE` of the machine's memory.
+
+    A lower address-space or data limit on the process (``ulimit -v``, ``-d``) counts instead.
+    """
+    import resource
+
+    total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    for kind in (resource.RLIMIT_AS, resource.RLIMIT_DATA):
+        soft, _ = resource.getrlimit(kind)
+        if soft != resource.RLIM_INFINITY:
+            total = min(total, soft)
+    return int(total * MEMORY_SHARE)
+
+
 def batch_rows_for(n_columns: int, values: int = BATCH_VALUES) -> int:
     """Rows per batch when reading `n_columns` columns: a power of two, 4,096 to `BATCH_ROWS`."""
     rows = max(values // max(n_columns, 1), 4_096)
     return min(BATCH_ROWS, 1 << (rows.bit_length() - 1))
-
-
-@dataclass(frozen=True)
-class DataSummary:
-    """Which rows a result was computed on, and why the others were left out."""
-
-    source: str
-    rows_in_source: int | None
-    rows_read: int
-    rows_filtered_out: int
-    rows_dropped_missing: int
-    rows_dropped_domain: int
-    rows_dropped_unseen_level: int
-    rows_excluded: int
-    rows_used: int
-    sample: str | None
-    """None when every row was read, else how the sample was drawn."""
-    sample_warning: str | None
-    is_full_pass: bool
-
-    @property
-    def rows_dropped(self) -> int:
-        """Rows left out for missing values, domain errors or unseen levels."""
-        return self.rows_dropped_missing + self.rows_dropped_domain + self.rows_dropped_unseen_level
-
-
-@dataclass(frozen=True)
-class FitOutcome:
-    """A fitted model together with what it was fitted on."""
-
-    spec: ModelSpec
-    builder: DesignBuilder
-    fit: LinearFit
-    data: DataSummary
-    sample: pl.DataFrame
-    """The in-memory sample the builder learned from (and the quick fit used).
-
-    Empty after `fit_model` streamed every row of a model with nothing to learn.
-    """
-
-
-@dataclass(frozen=True)
-class ReportOutcome:
-    """A fit and its residual diagnostics, computed on the same rows."""
-
-    outcome: FitOutcome
-    diagnostics: Diagnostics
 
 
 @dataclass
@@ -126,12 +106,12 @@ class RowCounts:
     excluded: int = 0
     used: int = 0
 
-    def add(self, batch: DesignBatch) -> None:
+    def add(self, batch: DesignBatch | CodedBatch) -> None:
         """Count the rows a design batch kept and dropped."""
         self.missing += batch.n_dropped_missing
         self.domain += batch.n_dropped_domain
         self.unseen += batch.n_dropped_unseen_level
-        self.used += batch.x.shape[0]
+        self.used += batch.n_rows
 
     def absorb(self, part: RowCounts) -> None:
         """Add the counts gathered by one part of a split pass."""
@@ -176,21 +156,21 @@ class PassPlan:
         source: Source,
         spec: ModelSpec,
         *,
-        rows: int | None,
+        rows: RowsToRead,
         seed: int,
-        design: SampleDesign,
+        sampling: Sampling,
         exclude_rows: Collection[int],
         extra_columns: Sequence[str] = (),
     ) -> PassPlan:
         """Draw the sample (a quick fit's rows, or a full pass's learning rows); plan the pass."""
         sample = source.read_sample(
             _pass_columns(spec, extra_columns),
-            n_rows=rows if rows is not None else LEARNING_SAMPLE_ROWS,
+            n_rows=LEARNING_SAMPLE_ROWS if rows is ALL_ROWS else rows,
             seed=seed,
-            design=design,
+            sampling=sampling,
             where=_parse_where(source, spec),
         )
-        streams = rows is None and not sample.is_whole
+        streams = rows is ALL_ROWS and not sample.is_whole
         return cls(
             source,
             spec,
@@ -213,17 +193,28 @@ class PassPlan:
         return frame.filter(pl.Series(keep))
 
     def frames(
-        self, counts: RowCounts, tracker: ProgressTracker, *, batch_values: int = BATCH_VALUES
+        self,
+        counts: RowCounts,
+        tracker: ProgressTracker,
+        *,
+        batch_values: int = BATCH_VALUES,
+        columns: Sequence[str] | None = None,
+        drop_marked: bool = True,
     ) -> Generator[pl.DataFrame, None, None]:
-        """Yield the filtered frames of the pass, counting rows and reporting progress."""
-        step = batch_rows_for(len(self.columns), batch_values)
+        """Yield the filtered frames of the pass, counting rows and reporting progress.
+
+        `columns` reads other columns than the plan's (a first read of the categoricals);
+        `drop_marked=False` keeps the rows the user marked.
+        """
+        columns = self.columns if columns is None else list(columns)
+        step = batch_rows_for(len(columns), batch_values)
         if self.sample is None:
-            batches = self.source.scan_batches(self.columns, where=self.where, batch_rows=step)
+            batches = self.source.scan_batches(columns, where=self.where, batch_rows=step)
             for batch in ReadAhead(iter(batches)):
                 counts.read = batch.rows_read
                 counts.kept_by_filter += batch.frame.height
                 tracker.advance(batch.rows_read)
-                yield self._drop_excluded(batch.frame, counts)
+                yield self._drop_excluded(batch.frame, counts) if drop_marked else batch.frame
             return
         frame = self.sample.frame
         counts.read = self.sample.rows_read
@@ -243,6 +234,8 @@ class PassPlan:
         tracker: ProgressTracker,
         *,
         batch_values: int = BATCH_VALUES,
+        columns: Sequence[str] | None = None,
+        drop_marked: bool = True,
     ) -> S:
         """Fold the pass's frames into parts on worker threads and merge the parts into one.
 
@@ -251,13 +244,13 @@ class PassPlan:
         (`fold_in_order`). Otherwise the frames are read ahead on one thread and each is
         folded by the next free worker into a part of its own; the parts merge in frame
         order. Either way the result depends neither on timing nor on the number of workers.
+        `columns` and `drop_marked` are as for `frames`.
         """
+        columns = self.columns if columns is None else list(columns)
         parts: Sequence[Callable[[], Iterator[Batch]]] = ()
         if self.sample is None:
             parts = self.source.scan_parts(
-                self.columns,
-                where=self.where,
-                batch_rows=batch_rows_for(len(self.columns), batch_values),
+                columns, where=self.where, batch_rows=batch_rows_for(len(columns), batch_values)
             )
         if len(parts) < 2:
 
@@ -267,7 +260,13 @@ class PassPlan:
                 return state
 
             with contextlib.closing(
-                self.frames(counts, tracker, batch_values=batch_values)
+                self.frames(
+                    counts,
+                    tracker,
+                    batch_values=batch_values,
+                    columns=columns,
+                    drop_marked=drop_marked,
+                )
             ) as frames:
                 merged = fold_in_order(frames, fold_frame, merge, wait=tracker.check)
             return new_part() if merged is None else merged
@@ -281,7 +280,8 @@ class PassPlan:
                 tracker.check()  # a cancel stops each worker within one batch
                 k_counts.read = batch.rows_read
                 k_counts.kept_by_filter += batch.frame.height
-                fold(state, self._drop_excluded(batch.frame, k_counts))
+                frame = batch.frame
+                fold(state, self._drop_excluded(frame, k_counts) if drop_marked else frame)
             return state
 
         def report() -> None:
@@ -317,6 +317,51 @@ class PassPlan:
             is_full_pass=self.is_full_pass,
         )
 
+    def count_levels(self, tracker: ProgressTracker, cap: int) -> dict[str, LevelTable] | None:
+        """Count every level of the model's categoricals over every row, or None for a sample.
+
+        A full pass reads only the categorical columns first (the filter's columns too),
+        so its design has every level present and never drops a row as unseen. Rows the
+        user marked are counted: the coding is that of the rows under the filter. A column
+        stops being counted past `cap` levels (it is refused then, whatever its count).
+        """
+        columns = [t.column for t in self.spec.terms if t.kind == "categorical" and t.column]
+        if self.sample is not None or not columns:
+            return None
+        schema = self.source.schema()
+
+        def fold(counter: LevelCounter, frame: pl.DataFrame) -> None:
+            counter.update(frame)
+
+        return self.fold_frames(
+            lambda: LevelCounter(schema, columns, cap=cap),
+            fold,
+            LevelCounter.merge,
+            RowCounts(),
+            tracker,
+            batch_values=FIT_BATCH_VALUES,
+            columns=columns,
+            drop_marked=False,
+        ).finalize()
+
+    def learn(self, tracker: ProgressTracker) -> DesignBuilder:
+        """Learn the design: levels over every row of a full pass, within the memory limit."""
+        spec = self.spec
+        limit = spec.max_memory if spec.max_memory is not None else default_memory_limit()
+        budget = DesignBudget(
+            limit_bytes=limit,
+            batch_rows=batch_rows_for(len(self.columns), FIT_BATCH_VALUES),
+            n_workers=pass_workers(),
+        )
+        cap = min(spec.max_levels, budget.max_columns())
+        return DesignBuilder.learn(
+            spec,
+            self.source.schema(),
+            self.learning_frame,
+            level_tables=self.count_levels(tracker, cap),
+            budget=budget,
+        )
+
     def rows_total(self) -> int | None:
         """Rows the pass will read, when known."""
         if self.sample is None:
@@ -331,6 +376,35 @@ def _parse_where(source: Source, spec: ModelSpec) -> pl.Expr | None:
 def _pass_columns(spec: ModelSpec, extra_columns: Sequence[str]) -> list[str]:
     columns = list(spec.source_columns())
     return columns + [c for c in extra_columns if c not in columns]
+
+
+@contextlib.contextmanager
+def naming_values_too_large(builder: DesignBuilder, frame: pl.DataFrame) -> Iterator[None]:
+    """Turn a failure of the fit on a batch into an error naming a column too large to fit.
+
+    Values near the float limit overflow the fit's sums of squares, which shows up as a
+    floating-point warning or an error about non-finite values; the batch is then built
+    again, quietly, to find the column (or target) responsible. Other failures pass as
+    they were.
+    """
+    try:
+        yield
+    except (DataError, ArithmeticError, RuntimeWarning):
+        columns = _design_quietly(builder, frame)
+        if columns is not None:
+            check_column_values(columns)
+        raise
+
+
+def _design_quietly(builder: DesignBuilder, frame: pl.DataFrame) -> dict[str, np.ndarray] | None:
+    """Build `frame`'s design columns and target by label, or None if that fails too."""
+    try:
+        with np.errstate(all="ignore"):  # numpy's error state is per thread: safe in a worker
+            batch = builder.build(frame)
+    except (TriageError, ArithmeticError, RuntimeWarning):
+        return None
+    design = dict(zip(builder.column_names, batch.x.T, strict=True))
+    return {**design, builder.spec.target: batch.y}
 
 
 def check_rows_left(counts: RowCounts, spec: ModelSpec) -> None:
@@ -355,9 +429,9 @@ def fit_model(
     source: Source,
     spec: ModelSpec,
     *,
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
-    design: SampleDesign = "groups",
+    sampling: Sampling = "groups",
     exclude_rows: Collection[int] = (),
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
@@ -370,11 +444,11 @@ def fit_model(
         Where the rows come from.
     spec : ModelSpec
         The model, already validated against the source's schema.
-    rows : int or None, default=200_000
-        Sample size; None streams every row in bounded memory.
+    rows : int or ALL_ROWS, default=200_000
+        Sample size; `ALL_ROWS` streams every row in bounded memory.
     seed : int, default=0
         Seed of the sample.
-    design : {"groups", "uniform"}, default="groups"
+    sampling : {"groups", "uniform"}, default="groups"
         How the sample is drawn (see `Source.read_sample`).
     exclude_rows : collection of int
         Source positions to leave out (a what-if refit; the file is never changed).
@@ -392,7 +466,7 @@ def fit_model(
     DataError
         When no rows are left or the data cannot support the fit.
     """
-    if rows is None and not DesignBuilder.learns_from_sample(spec):
+    if rows is ALL_ROWS and not DesignBuilder.learns_from_sample(spec):
         # Nothing to learn: a full pass skips the sample (0.3 s on a 20-million-row file).
         schema = source.schema()
         columns = {c: schema[c] for c in _pass_columns(spec, ())}
@@ -402,7 +476,7 @@ def fit_model(
         )
     else:
         plan = PassPlan.read(
-            source, spec, rows=rows, seed=seed, design=design, exclude_rows=exclude_rows
+            source, spec, rows=rows, seed=seed, sampling=sampling, exclude_rows=exclude_rows
         )
     return _fit(plan, on_progress=on_progress, cancel=cancel)
 
@@ -414,21 +488,50 @@ def _fit(
     cancel: threading.Event | None,
 ) -> FitOutcome:
     spec = plan.spec
-    builder = DesignBuilder.learn(spec, plan.source.schema(), plan.learning_frame)
+    builder = plan.learn(ProgressTracker(None, cancel=cancel))
+    tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
+    try:
+        counts, accumulator = _fit_pass(plan, builder, tracker, use_codes=True)
+        fit_or_none: LinearFit | None = _finalize_fit(plan, builder, counts, accumulator)
+    except UncertifiedGram:
+        # Rare: a design the counts and sums cannot factor to full accuracy (say a rare
+        # reference level). The pass runs again with the indicators written out.
+        fit_or_none = None
+    if fit_or_none is None:
+        tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
+        counts, accumulator = _fit_pass(plan, builder, tracker, use_codes=False)
+        fit_or_none = _finalize_fit(plan, builder, counts, accumulator)
+    return FitOutcome(spec, builder, fit_or_none, plan.summary(counts), plan.learning_frame)
+
+
+def _fit_pass(
+    plan: PassPlan, builder: DesignBuilder, tracker: ProgressTracker, *, use_codes: bool
+) -> tuple[RowCounts, QRAccumulator]:
+    """Fold every batch of pass 1 into one accumulator; categoricals as codes if `use_codes`."""
+    spec = plan.spec
+    unshifted = builder.indicator_positions if use_codes else ()
 
     def new_part() -> tuple[QRAccumulator, RowCounts]:
-        return QRAccumulator(len(builder.column_names), has_intercept=spec.intercept), RowCounts()
+        accumulator = QRAccumulator(
+            len(builder.column_names), has_intercept=spec.intercept, unshifted=unshifted
+        )
+        return accumulator, RowCounts()
 
     def fold(part: tuple[QRAccumulator, RowCounts], frame: pl.DataFrame) -> None:
-        accumulator, part_counts = part
-        columns = builder.build_columns(frame)
-        if columns is not None and accumulator.update_columns(columns.predictors, columns.y):
-            part_counts.used += columns.n_rows
-            return
-        # Rows to drop (nulls, NaN, levels, domain) or weights: the batch's full build.
-        batch = builder.build(frame)
-        part_counts.add(batch)
-        accumulator.update(batch.x, batch.y, batch.weights)
+        with naming_values_too_large(builder, frame):
+            accumulator, part_counts = part
+            columns = builder.build_columns(frame)
+            if columns is not None and accumulator.update_columns(columns.predictors, columns.y):
+                part_counts.used += columns.n_rows
+                return
+            coded = builder.build_coded(frame) if use_codes else None
+            if coded is not None and accumulator.update_coded(coded.design, coded.y, coded.weights):
+                part_counts.add(coded)
+                return
+            # Rows to drop (nulls, NaN, levels, domain) or weights: the batch's full build.
+            batch = builder.build(frame)
+            part_counts.add(batch)
+            accumulator.update(batch.x, batch.y, batch.weights)
 
     def merge(
         part: tuple[QRAccumulator, RowCounts], other: tuple[QRAccumulator, RowCounts]
@@ -438,11 +541,18 @@ def _fit(
         return part
 
     counts = RowCounts()
-    tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
     accumulator, design_counts = plan.fold_frames(
         new_part, fold, merge, counts, tracker, batch_values=FIT_BATCH_VALUES
     )
     counts.absorb(design_counts)
+    return counts, accumulator
+
+
+def _finalize_fit(
+    plan: PassPlan, builder: DesignBuilder, counts: RowCounts, accumulator: QRAccumulator
+) -> LinearFit:
+    """Check the rows left and solve; raises `UncertifiedGram` when codes cannot be factored."""
+    spec = plan.spec
     check_rows_left(counts, spec)
     n_coefficients = len(builder.column_names)
     if counts.used < n_coefficients:
@@ -451,6 +561,7 @@ def _fit(
             "drop terms, loosen `--where`, or use more rows (`--rows`)"
         )
         raise DataError(msg)
+    check_factor_scale(accumulator.factor, builder.column_names, spec.target)
     fit = accumulator.finalize(builder.column_names)
     if not fit.tss > 0:
         msg = (
@@ -458,16 +569,16 @@ def _fit(
             "so there is nothing to explain; check the column or the filter"
         )
         raise DataError(msg)
-    return FitOutcome(spec, builder, fit, plan.summary(counts), plan.learning_frame)
+    return fit
 
 
 def run_report(
     source: Source,
     spec: ModelSpec,
     *,
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
-    design: SampleDesign = "groups",
+    sampling: Sampling = "groups",
     exclude_rows: Collection[int] = (),
     top_k: int = 20,
     by: Sequence[str] = (),
@@ -480,9 +591,9 @@ def run_report(
 
     Parameters are those of `fit_model`, plus `top_k` (rows kept per worst-row list), `by`
     (columns to break residuals down by) and `is_ordered` (rows are in a meaningful order,
-    so serial-correlation flags apply). Progress runs from 0 to 1 over both passes when every
-    row is streamed. `on_fit`, if given, receives the fit as soon as pass 1 ends, so a screen
-    can show it while pass 2 runs.
+    so serial-correlation flags apply). Progress counts each row once per pass and says which
+    pass it is ("pass 2 of 2"); its time left covers both passes. `on_fit`, if given,
+    receives the fit as soon as pass 1 ends, so a screen can show it while pass 2 runs.
     """
     _check_segment_columns(source, spec, by)
     plan = PassPlan.read(
@@ -490,27 +601,25 @@ def run_report(
         spec,
         rows=rows,
         seed=seed,
-        design=design,
+        sampling=sampling,
         exclude_rows=exclude_rows,
         extra_columns=by,
     )
-    total = plan.rows_total()
-
     started = time.perf_counter()
 
-    def as_part_of_both(offset: int) -> ProgressCallback | None:
-        """Report one pass's progress as part of both passes (rows done out of twice the rows)."""
+    def as_pass_of_two(number: int) -> ProgressCallback | None:
+        """Report one pass's progress as pass `number` of 2, with the time left for both."""
         if on_progress is None:
             return None
         callback = on_progress
 
         def report(progress: PassProgress) -> None:
             elapsed = time.perf_counter() - started
-            callback(_two_pass_progress(progress, offset, total, elapsed))
+            callback(_pass_of_two(progress, number, elapsed))
 
         return report
 
-    outcome = _fit(plan, on_progress=as_part_of_both(0), cancel=cancel)
+    outcome = _fit(plan, on_progress=as_pass_of_two(1), cancel=cancel)
     if on_fit is not None:
         on_fit(outcome)
     diagnostics = _diagnose(
@@ -519,26 +628,30 @@ def run_report(
         top_k=top_k,
         by=by,
         is_ordered=is_ordered,
-        on_progress=as_part_of_both(total or 0),
+        on_progress=as_pass_of_two(2),
         cancel=cancel,
     )
     return ReportOutcome(outcome, diagnostics)
 
 
-def _two_pass_progress(
-    progress: PassProgress, offset: int, total: int | None, elapsed_s: float
-) -> PassProgress:
-    """Shift one pass's progress by `offset` rows, out of `2 * total` rows for both passes.
+def _pass_of_two(progress: PassProgress, number: int, elapsed_s: float) -> PassProgress:
+    """Label one pass's progress as pass `number` of two; the time left covers both passes.
 
-    `elapsed_s` counts from the start of the first pass, so the speed and time left cover
-    both passes.
+    Rows are counted once per pass, at this pass's speed; before pass 2 starts its rows are
+    assumed to go as fast as pass 1's. `elapsed_s` counts from the start of the first pass.
     """
-    if total is None:
-        return progress
-    done = offset + progress.rows_done
-    speed = done / elapsed_s if elapsed_s > 0 else 0.0
-    eta = (2 * total - done) / speed if speed > 0 else None
-    return PassProgress(done, 2 * total, elapsed_s, speed, eta)
+    eta = progress.eta_s
+    if eta is not None and number == 1 and progress.rows_per_s > 0 and progress.rows_total:
+        eta += progress.rows_total / progress.rows_per_s
+    return PassProgress(
+        progress.rows_done,
+        progress.rows_total,
+        elapsed_s,
+        progress.rows_per_s,
+        eta,
+        pass_number=number,
+        n_passes=2,
+    )
 
 
 def _check_segment_columns(source: Source, spec: ModelSpec, by: Sequence[str]) -> None:
@@ -633,25 +746,3 @@ def rows_in_fit(
     if not outcome.data.is_full_pass:
         inside &= np.isin(rows, outcome.sample[ROW_INDEX].to_numpy())
     return inside
-
-
-def iter_row_diagnostics(
-    source: Source,
-    outcome: FitOutcome,
-    *,
-    on_progress: ProgressCallback | None = None,
-    cancel: threading.Event | None = None,
-) -> Iterator[RowDiagnostics]:
-    """Stream every row of `source` (under the model's filter) and yield per-row diagnostics.
-
-    The fit is `outcome`'s, whether it came from a sample or from every row.
-    """
-    from triage.core.diagnostics import row_diagnostics
-
-    plan = PassPlan(source, outcome.spec, sample=None, learning_frame=outcome.sample)
-    tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
-    counts = RowCounts()
-    for frame in plan.frames(counts, tracker):
-        batch = outcome.builder.build(frame)
-        if batch.x.shape[0]:
-            yield row_diagnostics(outcome.fit, batch)

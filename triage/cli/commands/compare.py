@@ -60,6 +60,7 @@ def run(args: argparse.Namespace) -> int:
         curvature_check_outcome,
         robust_check_outcome,
     )
+    from triage.engine.signals import stop_event
     from triage.views import compare as views
 
     rule = holdout_rule_from_args(args)
@@ -74,10 +75,11 @@ def run(args: argparse.Namespace) -> int:
             labels,
             rows=args.rows,
             seed=args.seed,
-            design=args.sample,
+            sampling=args.sample,
             holdout=rule,
             folds=args.folds,
             on_progress=progress,
+            cancel=stop_event,
         )
     finally:
         progress.finish()

@@ -34,6 +34,7 @@ def run(args: argparse.Namespace) -> int:
     """Run `triage fit`."""
     from triage.cli.options import holdout_rule_from_args, open_source_from_args, spec_from_args
     from triage.cli.progress import StderrProgress
+    from triage.engine.signals import stop_event
     from triage.views.json import fit_to_json
     from triage.views.text import render_fit_report
 
@@ -50,8 +51,9 @@ def run(args: argparse.Namespace) -> int:
                 spec,
                 rows=args.rows,
                 seed=args.seed,
-                design=args.sample,
+                sampling=args.sample,
                 on_progress=progress,
+                cancel=stop_event,
             )
             comparison = None
         else:
@@ -63,9 +65,10 @@ def run(args: argparse.Namespace) -> int:
                 [args.terms],
                 rows=args.rows,
                 seed=args.seed,
-                design=args.sample,
+                sampling=args.sample,
                 holdout=rule,
                 on_progress=progress,
+                cancel=stop_event,
             )
             outcome = comparison.models[0].outcome
     finally:

@@ -6,6 +6,7 @@ import argparse
 from pathlib import Path
 from typing import Any
 
+from triage._typing import ALL_ROWS
 from triage.cli.options import (
     add_model_options,
     add_row_options,
@@ -43,11 +44,16 @@ def register(subparsers: Any) -> None:
         help="a TOML file of binding-id = key, applied after the user's keymap",
     )
     parser.add_argument(
-        "--top-k",
-        type=integer_option("--top-k", minimum=1),
+        "--top",
+        type=integer_option("--top", minimum=1),
         default=50,
         metavar="K",
         help="rows kept in each worst-rows list (default 50)",
+    )
+    parser.add_argument(
+        "--ordered",
+        action="store_true",
+        help="rows are in a meaningful order (time): judge serial correlation and trends",
     )
     parser.set_defaults(handler=run)
 
@@ -74,18 +80,19 @@ def settings_from_args(args: argparse.Namespace) -> Any:
         max_levels=args.max_levels,
         drop_invalid=args.drop_invalid,
         csv=csv_options_from_args(args),
-        sample_rows=DEFAULT_SAMPLE_ROWS if args.rows is None else args.rows,
-        is_full_at_start=args.rows is None,
+        sample_rows=DEFAULT_SAMPLE_ROWS if args.rows is ALL_ROWS else args.rows,
+        is_full_at_start=args.rows is ALL_ROWS,
         seed=args.seed,
-        sample_design=args.sample,
+        sampling=args.sample,
         keyset=args.keyset,
         keymap_file=args.keymap,
-        top_k=args.top_k,
+        top_k=args.top,
+        is_ordered=args.ordered,
     )
 
 
 def run(args: argparse.Namespace) -> int:
-    """Run the app until the user quits; returns 0.
+    """Run the app until the user quits (0) or a signal stops it (128 plus its number).
 
     The data starts opening (and the given model fitting) before Textual loads, so the file
     is read while the interface starts.
@@ -97,7 +104,8 @@ def run(args: argparse.Namespace) -> int:
     try:
         from triage.tui.app import make_app
 
-        make_app(settings, head_start=head_start).run()
+        app = make_app(settings, head_start=head_start)
+        app.run()
     finally:
         head_start.stop()
-    return 0
+    return app.return_code or 0

@@ -66,6 +66,7 @@ def run(args: argparse.Namespace) -> int:
     from triage.cli.options import open_source_from_args, spec_from_args
     from triage.cli.progress import StderrProgress
     from triage.engine.passes import run_report
+    from triage.engine.signals import stop_event
 
     source = open_source_from_args(args)
     spec = spec_from_args(args, source)
@@ -76,11 +77,12 @@ def run(args: argparse.Namespace) -> int:
             spec,
             rows=args.rows,
             seed=args.seed,
-            design=args.sample,
+            sampling=args.sample,
             top_k=args.top,
             by=segment_columns(args),
             is_ordered=args.ordered,
             on_progress=progress,
+            cancel=stop_event,
         )
     finally:
         progress.finish()
@@ -93,6 +95,8 @@ def run(args: argparse.Namespace) -> int:
     from triage.views.text import render_full_report
 
     width = args.width or min(shutil.get_terminal_size((100, 40)).columns, 120)
-    text = render_full_report(report, width=width, charts=not args.no_charts, color=False)
+    text = render_full_report(
+        report, width=width, charts=not args.no_charts, color=False, is_ordered=args.ordered
+    )
     sys.stdout.write(text + "\n")
     return 0

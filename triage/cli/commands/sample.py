@@ -60,9 +60,10 @@ def run(args: argparse.Namespace) -> int:
     from triage.cli.progress import StderrProgress
     from triage.data.scenario import scenario_format, write_scenario
     from triage.engine.progress import ProgressTracker
+    from triage.engine.signals import stop_event
 
     progress = StderrProgress()
-    tracker = ProgressTracker(args.rows, on_progress=progress)
+    tracker = ProgressTracker(args.rows, on_progress=progress, cancel=stop_event)
     try:
         path = write_scenario(
             args.out,

@@ -7,7 +7,7 @@ from dataclasses import dataclass, replace
 from itertools import count
 from typing import TYPE_CHECKING, ClassVar, Final, cast
 
-from textual import on, work
+from textual import events, on, work
 from textual.app import ComposeResult
 from textual.binding import Binding, BindingType
 from textual.containers import Container
@@ -15,7 +15,7 @@ from textual.screen import Screen
 from textual.widgets import DataTable
 from textual.worker import Worker, WorkerState, get_current_worker
 
-from triage._typing import CRITERIA
+from triage._typing import ALL_ROWS, CRITERIA, RowsToRead
 from triage.errors import PassCancelled, TriageError
 from triage.tui.head_start import HeadStart, collect_again, open_and_profile, segment_columns
 from triage.tui.messages import (
@@ -46,12 +46,12 @@ from triage.tui.widgets.panes import (
     FitPane,
     FitsPane,
     FlagsPane,
+    GroupsPane,
+    InputsPane,
     Pane,
     PaneId,
-    PredictorsPane,
     RowPane,
     RowView,
-    SegmentsPane,
     SpreadPane,
     TrendPane,
     WorstPane,
@@ -62,8 +62,8 @@ if TYPE_CHECKING:
     from triage._typing import Criterion
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
-    from triage.engine.passes import DataSummary, FitOutcome
-    from triage.engine.progress import PassProgress
+    from triage.results.fit import DataSummary, FitOutcome
+    from triage.results.progress import PassProgress
     from triage.tui.settings import Settings
 
 TILE_MIN_WIDTH: Final = 110
@@ -423,8 +423,8 @@ class MainScreen(Screen[None]):
             yield FitsPane(PANE_BY_ID["fits"])
             yield SpreadPane(PANE_BY_ID["spread"])
             yield TrendPane(PANE_BY_ID["trend"])
-            yield PredictorsPane(PANE_BY_ID["predictors"])
-            yield SegmentsPane(PANE_BY_ID["segments"])
+            yield InputsPane(PANE_BY_ID["inputs"])
+            yield GroupsPane(PANE_BY_ID["groups"])
             yield WorstPane(PANE_BY_ID["worst"])
             yield RowPane(PANE_BY_ID["row"])
         yield PassLine(id="pass-line")
@@ -434,6 +434,7 @@ class MainScreen(Screen[None]):
         """Lay out for the terminal's size, then open the data in the background."""
         for pane in self.query(Pane):
             pane.is_colorless = self.settings.is_colorless
+            pane.is_ordered = self.settings.is_ordered
         self._apply_layout()
         self._update_model_line()
         if self.opened is not None:
@@ -522,10 +523,10 @@ class MainScreen(Screen[None]):
         """Grey out keys that need the Columns pane in front, data, or a fit."""
         if action in COLUMN_ACTIONS:
             return None if self.source is None or self.front != "columns" else True
-        if action in {"edit_filter", "edit_terms", "quick_fit", "start_full_pass"}:
-            return None if self.source is None else True
         if action == "cancel_pass":
             return None if self.running_pass is None else True
+        if action in {"edit_filter", "edit_terms", "quick_fit", "start_full_pass"}:
+            return None if self.source is None else True
         if action in FIT_ACTIONS:  # not while a fit shows without its diagnostics
             return None if self.current is None or self.pending is not None else True
         return True
@@ -571,6 +572,8 @@ class MainScreen(Screen[None]):
             opened = None if self.head_start is None else self.head_start.take_opened(path)
             if opened is None:
                 opened = open_and_profile(path, csv=settings.csv, seed=settings.seed)
+            elif self.head_start is not None and self.head_start.plan_failure:
+                self.notify(self.head_start.plan_failure, severity="warning")
         except TriageError as error:
             self.post_message(PassFailed(0, str(error), "cannot open the data"))
             return
@@ -832,14 +835,14 @@ class MainScreen(Screen[None]):
             return
         from triage.views.text import model_formula
 
-        pass_line.pass_label = "every row, for Fits"
+        pass_line.pass_label = "every row (to Fits)"
         self.notify(
             f"the pass over every row of {model_formula(job.spec)} goes on; its fit will join "
             "Fits (0) without replacing the one on screen (x stops it)",
             timeout=8,
         )
 
-    def _report(self, job: PassJob, *, rows: int | None) -> None:
+    def _report(self, job: PassJob, *, rows: RowsToRead) -> None:
         """Run one pass of `job` in the current worker and post how it ended.
 
         A sample fit the head start already made (or is making) of the same model is taken
@@ -857,7 +860,7 @@ class MainScreen(Screen[None]):
             if not worker.is_cancelled:
                 self.post_message(FitComputed(job.pass_id, outcome))
 
-        head_start = self.head_start if rows is not None and not job.excluded else None
+        head_start = self.head_start if rows is not ALL_ROWS and not job.excluded else None
         try:
             early = (
                 None
@@ -874,13 +877,14 @@ class MainScreen(Screen[None]):
                 job.spec,
                 rows=rows,
                 seed=self.settings.seed,
-                design=self.settings.sample_design,
+                sampling=self.settings.sampling,
                 exclude_rows=job.excluded,
                 top_k=self.settings.top_k,
                 by=self.segment_columns,
-                on_progress=None if rows is not None else report_progress,
+                is_ordered=self.settings.is_ordered,
+                on_progress=None if rows is not ALL_ROWS else report_progress,
                 cancel=worker.cancelled_event,
-                on_fit=None if rows is None else report_fit,
+                on_fit=None if rows is ALL_ROWS else report_fit,
             )
         except PassCancelled:
             self.post_message(PassStopped(job.pass_id))
@@ -900,12 +904,20 @@ class MainScreen(Screen[None]):
     @work(thread=True, exclusive=True, group="full-pass", exit_on_error=False)
     def run_full_pass(self, job: PassJob) -> None:
         """Fit and diagnose on every row (thread worker; the cancel key stops it)."""
-        self._report(job, rows=None)
+        self._report(job, rows=ALL_ROWS)
 
     def action_cancel_pass(self) -> None:
         """Stop the running full pass; the results on screen stay."""
         if self.full_pass_worker is not None:
             self.full_pass_worker.cancel()
+
+    def on_key(self, event: events.Key) -> None:
+        """Say why a greyed-out key does nothing, where a word helps."""
+        active = self.app.active_bindings.get(event.key)
+        if active is None or active.enabled:
+            return
+        if active.binding.action == "cancel_pass":
+            self.notify("no pass over every row is running; nothing to stop")
 
     def on_pass_progressed(self, message: PassProgressed) -> None:
         """Show the progress of the running full pass."""
@@ -986,9 +998,9 @@ class MainScreen(Screen[None]):
         self.query_one(FitPane).show_provisional(outcome, number)
         self.query_one(SpreadPane).shown = None
         self.query_one(TrendPane).shown = None
-        self.query_one(PredictorsPane).shown = None
+        self.query_one(InputsPane).shown = None
         self.query_one(FlagsPane).shown = None
-        self.query_one(SegmentsPane).shown = None
+        self.query_one(GroupsPane).shown = None
         self.query_one(WorstPane).show_pending(number)
         if self.row_position is not None:
             self.query_one(RowPane).row = RowView(
@@ -1066,14 +1078,14 @@ class MainScreen(Screen[None]):
         self.query_one(FitPane).set_fit(fit, baseline, robust=self.is_robust)
         self.query_one(SpreadPane).shown = fit
         self.query_one(TrendPane).shown = fit
-        predictors_pane = self.query_one(PredictorsPane)
+        predictors_pane = self.query_one(InputsPane)
         predictors_pane.predictor = predictors[self.predictor_index] if predictors else None
         predictors_pane.shown = fit
         self.query_one(FlagsPane).shown = fit
         worst = self.query_one(WorstPane)
         worst.marked = frozenset(self.marked)
         worst.show(fit, self._criterion())
-        segments = self.query_one(SegmentsPane)
+        segments = self.query_one(GroupsPane)
         columns = self.segment_columns
         segments.column = columns[self.segment_index % len(columns)] if columns else None
         segments.shown = fit
@@ -1320,7 +1332,10 @@ class MainScreen(Screen[None]):
         return self.query_one(WorstPane).cursor_position()
 
     def action_toggle_mark(self) -> None:
-        """Mark or unmark the row under the cursor (or the open row)."""
+        """Mark or unmark the row under the cursor in Worst, or the row open in Row."""
+        if self.front not in ("worst", "row"):
+            self.notify("rows are marked in Worst or Row: bring one of them to the front first")
+            return
         position = self._focused_position()
         if position is None:
             return

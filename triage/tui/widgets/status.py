@@ -14,7 +14,7 @@ if TYPE_CHECKING:
     from rich.console import RenderableType
     from textual.screen import Screen
 
-    from triage.engine.progress import PassProgress
+    from triage.results.progress import PassProgress
     from triage.tui.session import FitLabel
 
 
@@ -91,7 +91,10 @@ class ModelLine(Widget):
 
 
 def progress_text(progress: PassProgress, width: int, *, label: str = "every row") -> str:
-    """Describe a running pass: bar, share done, rows done, rows per second, time left.
+    """Describe a running pass: which pass, bar, share done, rows done, rows per second, time left.
+
+    When the line is too short, the bar goes first, then the total rows, then where a later
+    pass reads from: the pass, the share done, the speed and the time left stay.
 
     Parameters
     ----------
@@ -112,18 +115,24 @@ def progress_text(progress: PassProgress, width: int, *, label: str = "every row
     fraction = progress.fraction
     speed = f"{format_count(round(progress.rows_per_s))} rows/s"
     done = format_count(progress.rows_done)
-    if progress.rows_total:
-        done = f"{done}/{format_count(progress.rows_total)} rows"
-    else:
-        done = f"{done} rows"
     left = "time left unknown" if progress.eta_s is None else f"{progress.eta_s:,.0f} s left"
-    tail = f"{done}  {speed}  {left}"
-    if fraction is None:
-        return f"{label}: {tail}"
-    bar_width = max(4, min(30, width - len(tail) - len(label) - 11))
-    filled = round(fraction * bar_width)
-    bar = "#" * filled + "." * (bar_width - filled)
-    return f"{label}: [{bar}] {fraction:4.0%}  {tail}"
+    stage = f"pass {progress.pass_number} of {progress.n_passes}" if progress.stage else ""
+    total = f"/{format_count(progress.rows_total)}" if progress.rows_total else ""
+    share = "" if fraction is None else f"{fraction:4.0%}  "
+    line = ""
+    for full_stage, with_total in ((progress.stage, True), (progress.stage, False), (stage, False)):
+        head = f"{label}, {full_stage}" if full_stage else label
+        rows = f"{done}{total if with_total else ''} rows"
+        line = f"{head}: {share}{rows}  {speed}  {left}"
+        room = width - len(line) - 3
+        if fraction is not None and room >= 4:
+            bar_width = min(30, room)
+            filled = round(fraction * bar_width)
+            bar = "#" * filled + "." * (bar_width - filled)
+            return f"{head}: [{bar}] {share}{rows}  {speed}  {left}"
+        if len(line) <= width:
+            return line
+    return line
 
 
 class PassLine(Widget):
