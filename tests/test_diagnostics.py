@@ -23,15 +23,12 @@ from statsmodels.stats.stattools import durbin_watson, jarque_bera
 from triage._typing import CRITERIA
 from triage.core.binning import quantile_edges
 from triage.core.design import DesignBatch
-from triage.core.diagnostics import (
-    DiagnosticsAccumulator,
-    DiagnosticsConfig,
-    default_config,
-    poisson_at_least,
-    row_diagnostics,
-)
+from triage.core.diagnostics import DiagnosticsAccumulator
+from triage.core.diagnostics_config import DiagnosticsConfig, default_config
+from triage.core.flag_rules import poisson_at_least
 from triage.core.lsq import LinearFit, QRAccumulator
 from triage.core.moments import StreamMoments
+from triage.core.row_values import row_diagnostics
 from triage.core.worst_rows import TopRows
 from triage.errors import SpecError
 from triage.results.diagnostics import Diagnostics

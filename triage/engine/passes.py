@@ -675,7 +675,8 @@ def _diagnose(
     on_progress: ProgressCallback | None,
     cancel: threading.Event | None,
 ) -> Diagnostics:
-    from triage.core.diagnostics import DiagnosticsAccumulator, default_config
+    from triage.core.diagnostics import DiagnosticsAccumulator
+    from triage.core.diagnostics_config import default_config
 
     builder, fit = outcome.builder, outcome.fit
     sample_batch = builder.build(plan.learning_frame)
@@ -718,7 +719,7 @@ def diagnose_rows(
     (outside its filter, among `exclude_rows`, or outside the sample of a sample fit) is
     scored as a new observation: see `RowDiagnostics.in_fit`.
     """
-    from triage.core.diagnostics import row_diagnostics
+    from triage.core.row_values import row_diagnostics
 
     frame = source.read_rows(list(positions))
     batch = outcome.builder.build(frame.select([*outcome.spec.source_columns(), ROW_INDEX]))
