@@ -106,6 +106,10 @@ def run(args: argparse.Namespace) -> int:
         )
     else:
         print(f"wrote {n_rows:,} rows to {written}, {ranked_basis(data, args.by_criterion)}")
+    if spec.target_transform is not None:
+        from triage.views.text import target_scale_note
+
+        print(f"note: {target_scale_note(spec)}")
     print(f"note: {PERSONAL_DATA_NOTICE}", file=sys.stderr)
     return 0
 
