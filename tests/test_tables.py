@@ -512,3 +512,27 @@ def test_compare_over_every_row_uses_every_level(
     builder = comparison.models[1].outcome.builder
     assert builder.levels["office"] == single.levels["office"]
     assert builder.reference_levels["region"] == single.reference_levels["region"]
+
+
+def test_export_all_after_a_sample_fit_counts_rows_of_levels_the_sample_lacked(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from triage.cli.main import main
+
+    frame = _claims_table()
+    path = tmp_path / "claims.parquet"
+    frame.write_parquet(path, row_group_size=GROUP_ROWS)
+    out = tmp_path / "all.parquet"
+    args = ["export", str(path), "--terms", "cost ~ age + region", "--all", "--rows", "1000"]
+    assert main([*args, "--out", str(out)]) == 0
+    printed = capsys.readouterr().out
+    written = pl.read_parquet(out)
+    assert written.height == N_ROWS
+    statuses = dict(written.group_by("status").len().iter_rows())
+    # a few row groups of a file sorted by region hold few regions: count those rows
+    sampled = written.filter(pl.col("status") == "used").get_column("row").to_list()
+    seen = set(frame[sampled].get_column("region").to_list())
+    lacked = frame.filter(~pl.col("region").is_in(list(seen)) & pl.col("age").is_not_null())
+    assert statuses["level not in the fit"] == lacked.height > 0
+    assert f"{lacked.height:,} rows have a level the sample did not have" in printed
+    assert "`--rows all` learns every level" in printed

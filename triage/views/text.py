@@ -278,13 +278,15 @@ def coding_lines(builder: DesignBuilder) -> list[tuple[str, str]]:
     return lines
 
 
-def render_coding(builder: DesignBuilder, *, width: int = 100) -> str:
+def render_coding(builder: DesignBuilder, *, from_sample: bool = False, width: int = 100) -> str:
     """Show the reference level of each categorical term and the rule that chose it.
 
     Parameters
     ----------
     builder : DesignBuilder
         The fitted model's design.
+    from_sample : bool, default=False
+        The levels were learned from a sample: a line says what that leaves out.
     width : int, default=100
         Line width.
 
@@ -296,7 +298,13 @@ def render_coding(builder: DesignBuilder, *, width: int = 100) -> str:
     lines = coding_lines(builder)
     if not lines:
         return ""
-    note = textwrap.fill(CODING_RULE, width=width)
+    rule_text = CODING_RULE
+    if from_sample:
+        rule_text += (
+            "; the levels come from the sample: a level it lacks is not in the model, and "
+            "`--rows all` learns every level"
+        )
+    note = textwrap.fill(rule_text, width=width)
     return f"{rule('categorical coding', width)}\n{_pairs(lines, width)}\n{note}"
 
 
@@ -773,7 +781,7 @@ def render_fit_report(outcome: FitOutcome, *, width: int = 100) -> str:
             render_model(outcome.spec, width=width),
             render_fit_quality(outcome.fit, target=outcome.spec.target_label, width=width),
             render_coefficients(outcome.fit, width=width),
-            render_coding(outcome.builder, width=width),
+            render_coding(outcome.builder, from_sample=not outcome.data.is_full_pass, width=width),
             render_aliased(outcome.fit, width=width),
         ]
     )
@@ -824,7 +832,7 @@ def render_full_report(
         render_fit_quality(outcome.fit, target=outcome.spec.target_label, width=width),
         render_flags(diagnostics.flags, width=width),
         render_coefficients(outcome.fit, robust_se=hc3, robust_label="HC3", width=width),
-        render_coding(outcome.builder, width=width),
+        render_coding(outcome.builder, from_sample=not outcome.data.is_full_pass, width=width),
         render_aliased(outcome.fit, width=width),
         render_tests(diagnostics, is_ordered=is_ordered, width=width),
         render_residual_summary(diagnostics, width=width),

@@ -272,7 +272,7 @@ def _fit_sections(
         render_data_summary(outcome.data, width=width),
         render_fit_quality(outcome.fit, target=outcome.spec.target_label, width=width),
         render_coefficients(outcome.fit, robust_se=robust, width=width),
-        render_coding(outcome.builder, width=width),
+        render_coding(outcome.builder, from_sample=not outcome.data.is_full_pass, width=width),
         render_aliased(outcome.fit, width=width),
     ]
 
