@@ -35,7 +35,10 @@ from triage.core.binning import (
     quantile_edges,
     quantiles_from_counts,
 )
+from triage.core.design import CodedBatch, DesignBatch
 from triage.core.distributions import chi2_sf, norm_sf, t_ppf
+from triage.core.indicators import coded_gram
+from triage.core.lsq import shifted_gram
 from triage.core.moments import StreamMoments, pool_groups
 from triage.core.residual_tests import (
     BreuschPaganAccumulator,
@@ -59,7 +62,9 @@ from triage.results.diagnostics import (
 )
 
 if TYPE_CHECKING:
-    from triage.core.design import DesignBatch
+    from collections.abc import Sequence
+
+    from triage.core.indicators import CodedDesign
     from triage.core.lsq import LinearFit
 
 __all__ = [
@@ -121,18 +126,27 @@ def _rank(fit: LinearFit) -> int:
     return len(fit.names) - len(fit.aliased)
 
 
+def _fitted_and_leverage(
+    fit: LinearFit, batch: DesignBatch | CodedBatch
+) -> tuple[FloatArray | None, FloatArray, FloatArray]:
+    """Fitted values and hat values of a batch, and its shifted rows when written out."""
+    if isinstance(batch, CodedBatch):
+        design = batch.design
+        return None, fit.predict_coded(design), fit.leverage_coded(design, batch.weights)
+    shifted = fit.to_shifted(batch.x)
+    return shifted, fit.predict_shifted(shifted), fit.leverage_shifted(shifted, batch.weights)
+
+
 def _row_values(
     fit: LinearFit,
-    shifted: FloatArray,
-    y: FloatArray,
-    weights: FloatArray | None,
-    rows: IntArray,
+    fitted: FloatArray,
+    h: FloatArray,
+    batch: DesignBatch | CodedBatch,
 ) -> RowDiagnostics:
-    """Per-row diagnostics from design rows passed through `LinearFit.to_shifted`."""
-    fitted = fit.predict_shifted(shifted)
+    """Per-row diagnostics from a batch's fitted values and hat values."""
+    y, weights, rows = batch.y, batch.weights, batch.rows
     resid = y - fitted
     weighted = resid if weights is None else np.sqrt(weights) * resid
-    h = fit.leverage_shifted(shifted, weights)
     one_minus_h = 1.0 - h
     s = fit.resid_sd
     df = fit.df_resid
@@ -163,7 +177,7 @@ def _row_values(
 
 
 def row_diagnostics(
-    fit: LinearFit, batch: DesignBatch, in_fit: NDArray[np.bool_] | None = None
+    fit: LinearFit, batch: DesignBatch | CodedBatch, in_fit: NDArray[np.bool_] | None = None
 ) -> RowDiagnostics:
     """Compute fitted values, residuals, leverage, studentized residuals and Cook's distance.
 
@@ -171,8 +185,8 @@ def row_diagnostics(
     ----------
     fit : LinearFit
         The fit of pass 1.
-    batch : DesignBatch
-        Design rows built by the same builder as the fit's.
+    batch : DesignBatch or CodedBatch
+        Design rows built by the same builder as the fit's (written out or coded).
     in_fit : ndarray of bool, optional
         Per row of the batch, True when the row was among the fit's rows; rows outside are
         scored as new observations (see `RowDiagnostics`). By default every row is in.
@@ -186,7 +200,8 @@ def row_diagnostics(
     --------
     DiagnosticsAccumulator : the same values summarised over a whole pass.
     """
-    values = _row_values(fit, fit.to_shifted(batch.x), batch.y, batch.weights, batch.rows)
+    _, fitted, h = _fitted_and_leverage(fit, batch)
+    values = _row_values(fit, fitted, h, batch)
     if in_fit is None or bool(np.all(in_fit)):
         return values
     outside = ~np.asarray(in_fit, dtype=np.bool_)
@@ -591,6 +606,20 @@ class _Segments:
 # --------------------------------------------------------------------------- the accumulator
 
 
+def _meat_roots(
+    weights: FloatArray | None, rd: RowDiagnostics
+) -> tuple[FloatArray, FloatArray, FloatArray]:
+    """Row factors ``|e| sqrt(w ω)`` of the HC0, HC2 and HC3 meats (0 where h is 1)."""
+    root = np.abs(rd.weighted_resid)
+    if weights is not None:
+        root *= np.sqrt(weights)
+    one_minus_h = 1.0 - rd.leverage
+    ok = one_minus_h > LEVERAGE_ONE_TOLERANCE
+    root_hc3 = np.divide(root, one_minus_h, out=np.zeros_like(root), where=ok)
+    root_hc2 = np.sqrt(root * root_hc3)  # |e| / sqrt(1 - h), 0 where h is 1
+    return root, root_hc2, root_hc3
+
+
 class DiagnosticsAccumulator:
     """Streaming, mergeable residual diagnostics of a finished fit (pass 2).
 
@@ -616,9 +645,12 @@ class DiagnosticsAccumulator:
     >>> diagnostics = acc.finalize()  # doctest: +SKIP
     """
 
-    def __init__(self, fit: LinearFit, config: DiagnosticsConfig) -> None:
+    def __init__(
+        self, fit: LinearFit, config: DiagnosticsConfig, *, indicators: Sequence[int] = ()
+    ) -> None:
         self.fit = fit
         self.config = config
+        self._indicators = tuple(indicators)
         p = len(fit.names)
         rank = _rank(fit)
         self._n = 0
@@ -638,12 +670,15 @@ class DiagnosticsAccumulator:
             col: _Segments(col, config.segment_cuts.get(col), config.max_segment_levels)
             for col in config.segment_columns
         }
-        self._bp = BreuschPaganAccumulator(p, has_intercept=fit.has_intercept)
+        self._bp = BreuschPaganAccumulator(
+            p, has_intercept=fit.has_intercept, unshifted=self._indicators
+        )
         self._reset = ResetAccumulator(
             p,
             has_intercept=fit.has_intercept,
             center=config.fitted_center,
             scale=config.fitted_scale,
+            unshifted=self._indicators,
         )
         self._meat = np.zeros((3, rank, rank))
         self._leverage_threshold = 2.0 * rank / fit.n
@@ -654,7 +689,7 @@ class DiagnosticsAccumulator:
         self._n_leverage = 0
         self._n_cooks = 0
 
-    def _check_frame(self, batch: DesignBatch) -> None:
+    def _check_frame(self, batch: DesignBatch | CodedBatch) -> None:
         """Raise `SpecError` if a binned predictor or segment column is not in the frame."""
         wanted = [c for c in self._binned if c != "fitted"] + list(self._segments)
         missing = [c for c in wanted if c not in batch.frame.columns]
@@ -666,7 +701,7 @@ class DiagnosticsAccumulator:
             )
             raise SpecError(msg)
 
-    def update(self, batch: DesignBatch) -> None:
+    def update(self, batch: DesignBatch | CodedBatch) -> None:
         """Add the next batch of design rows (in file order).
 
         Raises
@@ -674,11 +709,11 @@ class DiagnosticsAccumulator:
         SpecError
             If a binned predictor or segment column is missing from ``batch.frame``.
         """
-        if batch.x.shape[0] == 0:
+        if batch.n_rows == 0:
             return
         self._check_frame(batch)
-        shifted = self.fit.to_shifted(batch.x)
-        rd = _row_values(self.fit, shifted, batch.y, batch.weights, batch.rows)
+        shifted, fitted, h = _fitted_and_leverage(self.fit, batch)
+        rd = _row_values(self.fit, fitted, h, batch)
         e = rd.weighted_resid
         self._n += e.size
         self._moments.update(e)
@@ -704,9 +739,16 @@ class DiagnosticsAccumulator:
             top.update(scores[criterion], rd.rows, payload)
         for col, seg in self._segments.items():
             seg.update(batch.frame[col], e)
-        self._bp.update(batch.x, e)
-        self._reset.update(batch.x, batch.y, rd.fitted, batch.weights)
-        self._update_meat(shifted, batch.weights, rd)
+        if shifted is None:
+            assert isinstance(batch, CodedBatch)  # only coded batches have no shifted rows
+            self._bp.update_coded(batch.design, e)
+            self._reset.update_coded(batch.design, batch.y, rd.fitted, batch.weights)
+            self._update_meat_coded(batch.design, batch.weights, rd)
+        else:
+            assert isinstance(batch, DesignBatch)
+            self._bp.update(batch.x, e)
+            self._reset.update(batch.x, batch.y, rd.fitted, batch.weights)
+            self._update_meat(shifted, batch.weights, rd)
         with np.errstate(invalid="ignore"):
             self._n_studentized += int(np.sum(np.abs(rd.studentized) > STUDENTIZED_LIMIT))
             self._n_extreme += int(np.sum(np.abs(rd.studentized) > self._extreme_threshold))
@@ -721,17 +763,31 @@ class DiagnosticsAccumulator:
         Each as ``B'B`` with ``B = x~ |e| sqrt(ω)``, which numpy hands to a symmetric
         rank-k update: half the work of the general product.
         """
-        root = np.abs(rd.weighted_resid)
-        if weights is not None:
-            root *= np.sqrt(weights)
-        one_minus_h = 1.0 - rd.leverage
-        ok = one_minus_h > LEVERAGE_ONE_TOLERANCE
-        root_hc3 = np.divide(root, one_minus_h, out=np.zeros_like(root), where=ok)
-        root_hc2 = np.sqrt(root * root_hc3)  # |e| / sqrt(1 - h), 0 where h is 1
         block = np.empty_like(shifted)
-        for j, u in enumerate((root, root_hc2, root_hc3)):
+        for j, u in enumerate(_meat_roots(weights, rd)):
             np.multiply(shifted, u[:, np.newaxis], out=block)
             self._meat[j] += block.T @ block
+
+    def _update_meat_coded(
+        self, design: CodedDesign, weights: FloatArray | None, rd: RowDiagnostics
+    ) -> None:
+        """Add the same sums as `_update_meat` for coded rows: Gram matrices of counts and sums.
+
+        The Gram matrix of the coded rows (indicators unshifted) moves to the fit's shift,
+        which subtracts each indicator's shift times the ones column, by a rank-2 update.
+        """
+        kept, x_shift = self.fit.kept_columns, self.fit.column_shift
+        indicators = list(self._indicators)
+        delta = np.zeros(x_shift.size)
+        delta[indicators] = -x_shift[indicators]
+        dense = [c - x_shift[j] for c, j in zip(design.dense, design.dense_positions, strict=True)]
+        for j, u in enumerate(_meat_roots(weights, rd)):
+            dense_gram = shifted_gram(dense, np.zeros(len(dense)), u, intercept=True)
+            gram = coded_gram(design, dense, dense_gram, u * u)
+            if delta.any():
+                g0 = gram[:, 0].copy()
+                gram += np.outer(g0, delta) + np.outer(delta, g0) + g0[0] * np.outer(delta, delta)
+            self._meat[j] += gram[np.ix_(kept, kept)]
 
     def merge(self, other: DiagnosticsAccumulator) -> DiagnosticsAccumulator:
         """Fold in an accumulator over other rows of the same fit and config; returns self.
