@@ -15,7 +15,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from triage.views.format import format_number
-from triage.views.text import CODING_RULE, model_formula
+from triage.views.text import CODING_RULE, model_formula, zero_by_construction
 
 if TYPE_CHECKING:
     from triage.core.design import DesignBuilder
@@ -146,6 +146,8 @@ def fit_to_json(outcome: FitOutcome) -> dict[str, Any]:
         "data": _data_to_json(outcome.data),
         "model": {
             "target": spec.target,
+            "target_transform": spec.target_transform,
+            "target_label": spec.target_label,
             "terms": [term.label for term in spec.terms],
             "intercept": spec.intercept,
             "weights": spec.weights,
@@ -223,6 +225,8 @@ def _worst_to_json(r: WorstRow) -> dict[str, Any]:
 
 def _diagnostics_to_json(d: Diagnostics) -> dict[str, Any]:
     """Write everything pass 2 found, under the keys that `report_to_json` documents."""
+    from triage.views.flags import flag_message  # the flag rules load with a report only
+
     hist = d.histogram
     robust = {
         label: {name: getattr(se, attr) for name, se in d.robust_se.items()}
@@ -273,7 +277,7 @@ def _diagnostics_to_json(d: Diagnostics) -> dict[str, Any]:
             "cooks": d.counts.cooks,
             "cooks_threshold": d.counts.cooks_threshold,
         },
-        "flags": [{"code": f.code, "message": f.message} for f in d.flags],
+        "flags": [{"code": f.code, "message": flag_message(f)} for f in d.flags],
     }
 
 
@@ -291,8 +295,10 @@ def report_to_json(report: ReportOutcome) -> dict[str, Any]:
         The keys of `fit_to_json` plus ``robust_se`` (``HC0``..``HC3``: term -> SE),
         ``tests`` (each with ``stat``, ``df`` or ``df1``/``df2``, and ``p`` where one
         exists), ``worst`` (criterion -> rows), ``segments`` (column -> levels),
-        ``segments_capped``, ``histogram``, ``binned`` (``fitted`` and each numeric
-        predictor -> bins), ``residuals``, ``threshold_counts`` and ``flags``.
+        ``segments_capped``, ``segments_zero_by_construction`` (segment columns that are
+        categorical terms, whose mean residuals are 0 by construction), ``histogram``,
+        ``binned`` (``fitted`` and each numeric predictor -> bins), ``residuals``,
+        ``threshold_counts`` and ``flags``.
 
     See Also
     --------
@@ -300,4 +306,9 @@ def report_to_json(report: ReportOutcome) -> dict[str, Any]:
     """
     result = fit_to_json(report.outcome)
     result.update(json_safe(_diagnostics_to_json(report.diagnostics)))
+    spec = report.outcome.spec
+    # segment columns whose mean residuals least squares makes 0 (a categorical term)
+    result["segments_zero_by_construction"] = [
+        column for column in report.diagnostics.segments if zero_by_construction(spec, column)
+    ]
     return result
