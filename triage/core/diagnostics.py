@@ -31,7 +31,13 @@ from triage.core.binning import (
     BinLookup,
     quantiles_from_counts,
 )
-from triage.core.flag_rules import STUDENTIZED_LIMIT, bonferroni_bound, raise_flags
+from triage.core.flag_rules import (
+    COOKS_NUMERATOR,
+    LEVERAGE_FACTOR,
+    STUDENTIZED_LIMIT,
+    bonferroni_bound,
+    raise_flags,
+)
 from triage.core.moments import StreamMoments
 from triage.core.residual_breakdown import BinnedResiduals, SegmentResiduals
 from triage.core.residual_tests import (
@@ -144,8 +150,8 @@ class DiagnosticsAccumulator:
             scale=config.fitted_scale,
         )
         self._meat = np.zeros((3, rank, rank))
-        self._leverage_threshold = 2.0 * rank / fit.n
-        self._cooks_threshold = 4.0 / fit.n
+        self._leverage_threshold = LEVERAGE_FACTOR * rank / fit.n
+        self._cooks_threshold = COOKS_NUMERATOR / fit.n
         self._extreme_threshold = bonferroni_bound(fit.n, fit.df_resid)
         self._n_extreme = 0
         self._n_studentized = 0

@@ -327,7 +327,10 @@ class StreamingExport:
                 frame.write_csv(self._handle, include_header=is_first, separator=separator)
         except (pl.exceptions.PolarsError, pa.ArrowException, OSError) as exc:
             first_line = (str(exc).strip().splitlines() or [type(exc).__name__])[0]
-            msg = f"cannot write to `{self._target.name}`: {first_line}"
+            msg = (
+                f"cannot write to `{self._target.name}`: {first_line}; check the free space "
+                "and the folder's permissions, or choose another folder"
+            )
             raise ExportError(msg) from exc
         self.rows_written += frame.height
 

@@ -317,15 +317,25 @@ class PassPlan:
             is_full_pass=self.is_full_pass,
         )
 
-    def count_levels(self, tracker: ProgressTracker, cap: int) -> dict[str, LevelTable] | None:
-        """Count every level of the model's categoricals over every row, or None for a sample.
+    def count_levels(
+        self, tracker: ProgressTracker, cap: int, specs: Sequence[ModelSpec] = ()
+    ) -> dict[str, LevelTable] | None:
+        """Count every level of the models' categoricals over every row, or None for a sample.
 
         A full pass reads only the categorical columns first (the filter's columns too),
         so its design has every level present and never drops a row as unseen. Rows the
         user marked are counted: the coding is that of the rows under the filter. A column
         stops being counted past `cap` levels (it is refused then, whatever its count).
+        `specs` are the models of the pass (default: the plan's).
         """
-        columns = [t.column for t in self.spec.terms if t.kind == "categorical" and t.column]
+        columns = list(
+            dict.fromkeys(
+                t.column
+                for spec in (specs or (self.spec,))
+                for t in spec.terms
+                if t.kind == "categorical" and t.column
+            )
+        )
         if self.sample is not None or not columns:
             return None
         schema = self.source.schema()
@@ -344,18 +354,21 @@ class PassPlan:
             drop_marked=False,
         ).finalize()
 
-    def learn(self, tracker: ProgressTracker) -> DesignBuilder:
-        """Learn the design: levels over every row of a full pass, within the memory limit."""
-        spec = self.spec
-        limit = spec.max_memory if spec.max_memory is not None else default_memory_limit()
-        budget = DesignBudget(
-            limit_bytes=limit,
+    def budget(self) -> DesignBudget:
+        """Return this pass's design memory budget (the spec's `max_memory` or the default)."""
+        limit = self.spec.max_memory
+        return DesignBudget(
+            limit_bytes=limit if limit is not None else default_memory_limit(),
             batch_rows=batch_rows_for(len(self.columns), FIT_BATCH_VALUES),
             n_workers=pass_workers(),
         )
-        cap = min(spec.max_levels, budget.max_columns())
+
+    def learn(self, tracker: ProgressTracker) -> DesignBuilder:
+        """Learn the design: levels over every row of a full pass, within the memory limit."""
+        budget = self.budget()
+        cap = min(self.spec.max_levels, budget.max_columns())
         return DesignBuilder.learn(
-            spec,
+            self.spec,
             self.source.schema(),
             self.learning_frame,
             level_tables=self.count_levels(tracker, cap),
@@ -404,7 +417,7 @@ def _design_quietly(builder: DesignBuilder, frame: pl.DataFrame) -> dict[str, np
     except (TriageError, ArithmeticError, RuntimeWarning):
         return None
     design = dict(zip(builder.column_names, batch.x.T, strict=True))
-    return {**design, builder.spec.target: batch.y}
+    return {**design, builder.spec.target_label: batch.y}
 
 
 def check_rows_left(counts: RowCounts, spec: ModelSpec) -> None:
@@ -421,7 +434,9 @@ def check_rows_left(counts: RowCounts, spec: ModelSpec) -> None:
     if counts.excluded:
         reasons.append(f"{counts.excluded:,} marked by you")
     why = "; ".join(reasons) if reasons else "the source has no rows"
-    msg = f"no rows left to fit `{spec.target}` ({why}); loosen `--where` or check the columns"
+    msg = (
+        f"no rows left to fit `{spec.target_label}` ({why}); loosen `--where` or check the columns"
+    )
     raise DataError(msg)
 
 
@@ -561,11 +576,11 @@ def _finalize_fit(
             "drop terms, loosen `--where`, or use more rows (`--rows`)"
         )
         raise DataError(msg)
-    check_factor_scale(accumulator.factor, builder.column_names, spec.target)
+    check_factor_scale(accumulator.factor, builder.column_names, spec.target_label)
     fit = accumulator.finalize(builder.column_names)
     if not fit.tss > 0:
         msg = (
-            f"the target `{spec.target}` does not vary over the {counts.used:,} rows used, "
+            f"the target `{spec.target_label}` does not vary over the {counts.used:,} rows used, "
             "so there is nothing to explain; check the column or the filter"
         )
         raise DataError(msg)
