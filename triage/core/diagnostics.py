@@ -117,10 +117,30 @@ class DiagnosticsAccumulator:
 
     Examples
     --------
-    >>> acc = DiagnosticsAccumulator(fit, config)  # doctest: +SKIP
-    >>> for batch in batches:  # doctest: +SKIP
+    Eight rows in two batches; the last lies far off the line of the others.
+
+    >>> import polars as pl
+    >>> from triage.core.design import ROW_INDEX, DesignBuilder
+    >>> from triage.core.diagnostics_config import default_config
+    >>> from triage.core.lsq import QRAccumulator
+    >>> from triage.core.spec import build_spec
+    >>> frame = pl.DataFrame(
+    ...     {"minutes": [12.0, 15, 21, 24, 30, 33, 41, 90], "km": [1.0, 2, 3, 4, 5, 6, 7, 8]}
+    ... ).with_row_index(ROW_INDEX)
+    >>> spec = build_spec(frame.schema, target="minutes", terms="km")
+    >>> builder = DesignBuilder.learn(spec, frame.schema, frame)
+    >>> batches = [builder.build(frame[:4]), builder.build(frame[4:])]
+    >>> qr = QRAccumulator(2, has_intercept=True)
+    >>> for batch in batches:
+    ...     qr.update(batch.x, batch.y)
+    >>> fit = qr.finalize(builder.column_names)
+    >>> config = default_config(fit, fit.predict(builder.build(frame).x), {})
+    >>> acc = DiagnosticsAccumulator(fit, config)
+    >>> for batch in batches:
     ...     acc.update(batch)
-    >>> diagnostics = acc.finalize()  # doctest: +SKIP
+    >>> diagnostics = acc.finalize()
+    >>> [(row.row, round(row.resid, 2)) for row in diagnostics.worst["abs_resid"][:2]]
+    [(7, 26.83), (6, -13.62)]
     """
 
     def __init__(
