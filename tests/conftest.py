@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import math
-import os
 import re
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -12,14 +11,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-NIST_DIR = Path(
-    os.environ.get(
-        "TRIAGE_NIST_DIR",
-        # the shared/ folder sits beside the checkout (in CI too)
-        Path(__file__).resolve().parents[2] / "shared" / "reference" / "nist-strd",
-    )
-)
-"""Folder of the NIST StRD linear regression files (see its README.md)."""
+NIST_DIR = Path(__file__).resolve().parent / "data" / "nist-strd"
+"""Folder of the NIST StRD linear regression files shipped with the tests (see its README.md)."""
 
 NIST_NAMES = (
     "Norris",
@@ -125,13 +118,10 @@ def rng() -> np.random.Generator:
 
 @pytest.fixture
 def nist() -> Callable[[str | Path], NistCase]:
-    """Return a loader of NIST StRD cases by name (from `NIST_DIR`) or by path; skips if absent."""
+    """Return a loader of NIST StRD cases by name (from `NIST_DIR`) or by path."""
 
     def load(source: str | Path) -> NistCase:
-        path = NIST_DIR / f"{source}.dat" if isinstance(source, str) else source
-        if not path.is_file():
-            pytest.skip(f"NIST StRD file not available: {path}")
-        return parse_nist(path)
+        return parse_nist(NIST_DIR / f"{source}.dat" if isinstance(source, str) else source)
 
     return load
 

@@ -101,7 +101,6 @@ def test_checks_curvature_names_the_curved_predictor(rng):
     assert check.predictors[1].relative_gain_given_top < check.threshold
 
 
-@pytest.mark.skipif(not SAMPLE.exists(), reason="sample_parquet/deliveries.parquet not built")
 def test_checks_curvature_on_sample_data_names_distance():
     """The demo file plants a curved effect on `distance_km` (sample_parquet/README.md)."""
     from triage.core.spec import build_spec

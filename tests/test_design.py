@@ -8,7 +8,13 @@ import polars as pl
 import pytest
 import statsmodels.formula.api as smf
 
-from triage.core.design import INTERCEPT, ROW_INDEX, DesignBuilder
+from triage.core.design import (
+    INTERCEPT,
+    ROW_INDEX,
+    DesignBuilder,
+    indicator_name,
+    split_indicator_name,
+)
 from triage.core.spec import ModelSpec, build_spec
 from triage.errors import DataError, SpecError
 
@@ -176,7 +182,7 @@ def test_design_dummies_equal_pandas_get_dummies(column: str, dtype: pl.DataType
     values = LEVELS[column].cast(pl.String).to_list()
     dummies = pd.get_dummies(pd.Series(values), dtype=float).drop(columns=[reference])
     np.testing.assert_array_equal(batch.x[:, 1:], dummies.to_numpy())
-    assert builder.column_names[1:] == tuple(f"{column}[{c}]" for c in dummies.columns)
+    assert builder.column_names[1:] == tuple(f"{column}={c}" for c in dummies.columns)
     assert set(builder.term_of_column[1:]) == {column}
 
 
@@ -187,15 +193,44 @@ def test_design_reference_is_most_frequent_ties_sorted_or_chosen() -> None:
     assert builder.levels["depot"] == ("east", "north", "south", "west")
     assert builder.column_names == (
         INTERCEPT,
-        "depot[north]",
-        "depot[south]",
-        "depot[west]",
-        "grade[1]",
-        "grade[3]",
+        "depot=north",
+        "depot=south",
+        "depot=west",
+        "grade=1",
+        "grade=3",
     )
     _, chosen = make(LEVELS, "depot", target="y", reference={"depot": "west"})
     assert chosen.reference_levels == {"depot": "west"}
-    assert chosen.column_names[1:] == ("depot[east]", "depot[north]", "depot[south]")
+    assert chosen.column_names[1:] == ("depot=east", "depot=north", "depot=south")
+
+
+@pytest.mark.parametrize(
+    ("typed", "expected"),
+    [
+        ("depot=north", ("depot", "north")),
+        ("depot[north]", ("depot", "north")),  # the older bracket form is still read
+        (" `pick up` = cargo bike ", ("pick up", "cargo bike")),
+        ("`pick up`[cargo bike]", ("pick up", "cargo bike")),
+        ("depot", None),
+        ("=north", None),
+    ],
+)
+def test_indicator_names_read_back_in_either_form(
+    typed: str, expected: tuple[str, str] | None
+) -> None:
+    assert split_indicator_name(typed) == expected
+
+
+def test_indicator_name_round_trips_and_quotes_odd_columns() -> None:
+    assert indicator_name("vehicle", "cargo_bike") == "vehicle=cargo_bike"
+    assert indicator_name("pick up", "van") == "`pick up`=van"
+    assert split_indicator_name(indicator_name("pick up", "van")) == ("pick up", "van")
+
+
+@pytest.mark.parametrize("typed", ["vehicle=van", "vehicle[van]"])
+def test_a_typed_indicator_term_points_at_the_column_and_reference(typed: str) -> None:
+    with pytest.raises(SpecError, match=r"give `vehicle` as a term.*--reference vehicle=LEVEL"):
+        build_spec({"y": pl.Float64, "vehicle": pl.String}, terms=f"{typed}, y", target="y")
 
 
 def test_design_matches_statsmodels_wls_with_categorical_interaction_and_weights(rng) -> None:
@@ -244,8 +279,8 @@ def test_design_matches_statsmodels_wls_with_categorical_interaction_and_weights
     ours = dict(zip(builder.column_names, coef, strict=True))
     reordered = [
         ours[INTERCEPT],
-        ours["depot[east]"],
-        ours["depot[south]"],
+        ours["depot=east"],
+        ours["depot=south"],
         ours["distance_km"],
         ours["stops:log(weight_kg)"],
     ]
@@ -290,16 +325,19 @@ def test_design_drops_and_counts_missing_values() -> None:
     assert batch.frame.columns == frame.columns
 
 
-def test_design_levels_learned_only_from_usable_rows_and_unseen_levels_dropped() -> None:
+def test_design_levels_are_the_rows_with_a_value_in_the_column_and_unseen_levels_dropped() -> None:
     sample = with_rows(pl.DataFrame({"y": [1.0, 2.0, 3.0, None], "g": ["a", "b", "a", "c"]}))
     _, builder = make(sample, "g", target="y")
-    # `c` only appears where the target is missing, so it is not a level
-    assert builder.levels["g"] == ("a", "b")
+    # the documented rule: levels and their counts come from every row with a value in the
+    # column, whatever the other columns hold (so a full pass can count them cheaply)
+    assert builder.levels["g"] == ("a", "b", "c")
+    assert builder.level_tables["g"].counts == (2, 1, 1)
+    assert builder.reference_levels["g"] == "a"
     batch_frame = with_rows(pl.DataFrame({"y": [1.0, 2.0, 3.0, 4.0], "g": ["c", "b", "d", "a"]}))
     batch = builder.build(batch_frame)
-    assert batch.n_dropped_unseen_level == 2
-    np.testing.assert_array_equal(batch.rows, [1, 3])
-    np.testing.assert_array_equal(batch.x, [[1.0, 1.0], [1.0, 0.0]])
+    assert batch.n_dropped_unseen_level == 1
+    np.testing.assert_array_equal(batch.rows, [0, 1, 3])
+    np.testing.assert_array_equal(batch.x, [[1.0, 0.0, 1.0], [1.0, 1.0, 0.0], [1.0, 0.0, 0.0]])
 
 
 @pytest.mark.parametrize(

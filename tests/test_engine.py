@@ -107,7 +107,7 @@ def test_engine_fold_in_order_merges_in_unit_order_whoever_finishes_first() -> N
         time.sleep(0.2 if k == 0 else 0.01)
         return [k]
 
-    merged = fold_in_order(6, fold_unit, lambda a, b: a + b, wait=lambda: None, n_workers=2)
+    merged = fold_in_order(range(6), fold_unit, lambda a, b: a + b, wait=lambda: None, n_workers=2)
     assert merged == [0, 1, 2, 3, 4, 5]
 
 
@@ -123,7 +123,7 @@ def test_engine_fold_in_order_stops_on_an_error_or_a_cancel() -> None:
         return k
 
     with pytest.raises(ValueError, match="bad part"):
-        fold_in_order(50, fold_unit, operator.add, wait=lambda: None, n_workers=2)
+        fold_in_order(range(50), fold_unit, operator.add, wait=lambda: None, n_workers=2)
     assert len(started) <= 3  # no part was started after the error
 
     def wait() -> None:
@@ -131,7 +131,9 @@ def test_engine_fold_in_order_stops_on_an_error_or_a_cancel() -> None:
 
     started.clear()
     with pytest.raises(PassCancelled):
-        fold_in_order(50, lambda k, stopping: fold_unit(2 * k, stopping), operator.add, wait=wait)
+        fold_in_order(
+            range(50), lambda k, stopping: fold_unit(2 * k, stopping), operator.add, wait=wait
+        )
     assert len(started) <= 4
 
 
@@ -162,30 +164,86 @@ def test_engine_keeps_batch_memory_in_the_heap_under_glibc() -> None:
     assert keep_batch_memory() is expected
 
 
-def test_engine_workers_deal_items_in_turn_and_return_every_state() -> None:
-    # Oracle: the round-robin rule written out by hand (item i to worker i mod 2).
-    from triage.engine.workers import BatchWorkers
+def _administrative_table(rng: np.random.Generator, n_rows: int) -> pl.DataFrame:
+    """A table shaped like an administrative extract: sorted by a region code, skewed levels,
+    a few missing values, case weights."""
+    region = np.sort(rng.choice(12, size=n_rows, p=np.arange(12, 0, -1) / 78.0))
+    channel = rng.choice(["post", "phone", "web", "desk"], size=n_rows, p=[0.6, 0.25, 0.1, 0.05])
+    age = rng.gamma(4.0, 10.0, size=n_rows)
+    income = rng.lognormal(10.0, 0.6, size=n_rows)
+    y = 3.0 + 0.02 * age + 0.4 * np.log(income) + 0.3 * region + rng.standard_t(5, size=n_rows)
+    frame = pl.DataFrame(
+        {
+            "region": [f"R{r:02d}" for r in region],
+            "channel": channel,
+            "age": age,
+            "income": income,
+            "weight": rng.uniform(0.5, 2.0, size=n_rows),
+            "y": y,
+        }
+    )
+    missing = rng.random(n_rows) < 0.02
+    return frame.with_columns(
+        pl.when(pl.Series(missing)).then(None).otherwise(pl.col("age")).alias("age")
+    )
 
-    with BatchWorkers(list, list.append, n_workers=2) as workers:
-        for item in range(7):
-            workers.submit(item)
-        states = workers.finish()
-    assert states == [[0, 2, 4, 6], [1, 3, 5]]
+
+@pytest.mark.parametrize("split", ["parts", "read-ahead"])
+def test_engine_report_is_the_same_for_1_2_and_8_workers(
+    tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch, split: str
+) -> None:
+    # Oracle: the one-worker run; the merge order is fixed, so any worker count must give
+    # the same numbers bit for bit (8 workers on this 2-core machine interleave at random).
+    from triage.engine.workers import set_pass_workers
+    from triage.views.json import report_to_json
+
+    table = _administrative_table(rng, N_ROWS)
+    if split == "parts":
+        monkeypatch.setattr(parquet_module, "PART_ROWS", 2_500)
+        path = tmp_path / "admin.parquet"
+        table.write_parquet(path, row_group_size=1_250)
+    else:
+        path = tmp_path / "admin.csv"
+        table.write_csv(path)
+    source = open_source(path)
+    spec = build_spec(
+        source.schema(),
+        target="y",
+        terms="age, log(income), region, channel, age:income",
+        weights="weight",
+    )
+    reports = {}
+    try:
+        for n_workers in (1, 2, 8):
+            set_pass_workers(n_workers)
+            report = passes.run_report(source, spec, rows=None, by=("region",), top_k=10)
+            reports[n_workers] = report
+    finally:
+        set_pass_workers(None)
+    one = reports[1]
+    assert one.outcome.data.rows_used > N_ROWS // 4
+    for n_workers in (2, 8):
+        other = reports[n_workers]
+        assert np.array_equal(other.outcome.fit.coef, one.outcome.fit.coef, equal_nan=True)
+        assert np.array_equal(other.outcome.fit.cov, one.outcome.fit.cov, equal_nan=True)
+        assert report_to_json(other) == report_to_json(one)
 
 
-def test_engine_workers_raise_a_workers_error_in_the_caller() -> None:
-    from triage.engine.workers import BatchWorkers
+def test_engine_workers_default_to_the_cpus_the_process_may_use() -> None:
+    # Oracle: the operating system's affinity mask (os.sched_getaffinity, Linux).
+    import os
 
-    def fold(state: list[int], item: int) -> None:
-        if item == 3:
-            msg = "bad batch"
-            raise ValueError(msg)
-        state.append(item)
+    from triage.engine.workers import pass_workers, set_pass_workers
 
-    with pytest.raises(ValueError, match="bad batch"), BatchWorkers(list, fold) as workers:
-        for item in range(50):
-            workers.submit(item)
-        workers.finish()
+    set_pass_workers(None)
+    assert pass_workers() == len(os.sched_getaffinity(0))
+    set_pass_workers(3)
+    try:
+        assert pass_workers() == 3
+    finally:
+        set_pass_workers(None)
+    with pytest.raises(ValueError, match="at least one worker"):
+        set_pass_workers(0)
 
 
 def test_engine_full_pass_drops_missing_values_in_some_batches(tmp_path: Path) -> None:

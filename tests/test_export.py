@@ -153,3 +153,27 @@ def test_export_write_outside_block(tmp_path: Path) -> None:
 def test_export_personal_data_notice_is_one_line() -> None:
     assert "\n" not in PERSONAL_DATA_NOTICE
     assert "personal" in PERSONAL_DATA_NOTICE and "no proof" in PERSONAL_DATA_NOTICE
+
+
+@pytest.mark.parametrize("name", ["out.parquet", "out.csv"])
+def test_export_note_goes_to_metadata_or_a_sidecar(tmp_path: Path, name: str) -> None:
+    import pyarrow.parquet as pq
+
+    from triage.data.export import NOTE_KEY, NOTE_SUFFIX
+
+    note = "fit #3: minutes ~ distance_km | where hour > 8 | a SAMPLE of 2,000 rows"
+    path = write_frame(_frame(4), tmp_path / name, note=note)
+    if name.endswith("parquet"):  # oracle: pyarrow's own reading of the footer
+        assert pq.read_schema(path).metadata[NOTE_KEY.encode()].decode() == note
+        assert not (tmp_path / (name + NOTE_SUFFIX)).exists()
+        assert_frame_equal(pl.read_parquet(path), _frame(4))
+    else:
+        assert (tmp_path / (name + NOTE_SUFFIX)).read_text(encoding="utf-8") == note + "\n"
+        assert_frame_equal(pl.read_csv(path), _frame(4))
+        (tmp_path / ("other.csv" + NOTE_SUFFIX)).write_text("keep me\n", encoding="utf-8")
+        with pytest.raises(
+            ExportError, match=r"note `other\.csv\.fit\.txt` beside the export exists"
+        ):
+            write_frame(_frame(4), tmp_path / "other.csv", note=note)
+        assert not (tmp_path / "other.csv").exists()
+    assert _leftovers(tmp_path) == []

@@ -1,22 +1,25 @@
 """The QR accumulator against NIST StRD certified values (linear least squares section).
 
 Source of every certified value: NIST ITL Statistical Reference Datasets,
-https://www.itl.nist.gov/div898/strd/ , files in /work/shared/reference/nist-strd/
+https://www.itl.nist.gov/div898/strd/ , files shipped in tests/data/nist-strd/
 (see its README.md); the same data also ship in scipy and statsmodels, checked below.
 Accuracy is counted in digits, LRE = -log10(|estimate - certified| / |certified|).
 """
 
 from __future__ import annotations
 
+import hashlib
 import importlib
 import importlib.resources
 import math
+import re
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pytest
 
+from tests.conftest import NIST_DIR, NIST_NAMES
 from triage.core.lsq import LinearFit, QRAccumulator
 
 # Required coefficient digits with the whole file as one batch (the project's accuracy
@@ -117,11 +120,8 @@ def test_lsq_nist_longley_from_statsmodels(
     # Data: statsmodels.datasets.longley (statsmodels/datasets/longley/longley.csv).
     # Certified values: statsmodels/regression/tests/results/results_regression.py, class
     # Longley (estimates and SEs copied there from NIST StRD; llf, aic, bic from Stata).
-    longley = pytest.importorskip("statsmodels.datasets.longley")
-    try:
-        results = importlib.import_module("statsmodels.regression.tests.results.results_regression")
-    except ImportError:
-        pytest.skip("statsmodels test results are not installed")
+    longley = importlib.import_module("statsmodels.datasets.longley")
+    results = importlib.import_module("statsmodels.regression.tests.results.results_regression")
     certified = results.Longley()
     data = longley.load_pandas()
     x = data.exog.to_numpy(dtype=np.float64)
@@ -148,3 +148,13 @@ def test_lsq_nist_longley_from_statsmodels(
         assert lre(fit.loglik, certified.llf) >= 5.5
         assert lre(fit.aic, certified.aic) >= 5.5
         assert lre(fit.bic, certified.bic) >= 5.5
+
+
+def test_nist_files_match_the_published_checksums() -> None:
+    # The sha256 of each shipped file, as listed in tests/data/nist-strd/README.md when the
+    # files were copied from NIST StRD (via mathnet-numerics, data/NIST/): the copies are intact.
+    readme = (NIST_DIR / "README.md").read_text()
+    listed = dict(re.findall(r"^\| (\w+\.dat) \|.*\| ([0-9a-f]{64}) \|$", readme, re.M))
+    assert sorted(listed) == sorted(f"{name}.dat" for name in NIST_NAMES)
+    for name, digest in listed.items():
+        assert hashlib.sha256((NIST_DIR / name).read_bytes()).hexdigest() == digest, name

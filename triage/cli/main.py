@@ -54,6 +54,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     if args.command is None:
         parser.print_help()
         return 0
+    if getattr(args, "workers", None) is not None:
+        from triage.engine.workers import set_pass_workers  # standard library only
+
+        set_pass_workers(args.workers)
     try:
         return int(args.handler(args))
     except TriageError as error:

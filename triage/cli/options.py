@@ -141,6 +141,13 @@ def add_row_options(parser: argparse.ArgumentParser) -> None:
         default="groups",
         help="groups: whole row groups at random (fast); uniform: exact random rows (full read)",
     )
+    group.add_argument(
+        "--workers",
+        type=integer_option("--workers", minimum=1),
+        default=None,
+        metavar="N",
+        help="threads of a pass (default: every CPU this process may use); results do not change",
+    )
 
 
 def csv_options_from_args(args: argparse.Namespace) -> CsvOptions:
@@ -168,16 +175,17 @@ def open_source_from_args(args: argparse.Namespace) -> Source:
 
 
 def parse_reference(pairs: list[str]) -> dict[str, str]:
-    """Parse repeated `--reference COL=LEVEL` options."""
+    """Parse repeated `--reference COL=LEVEL` options (`COL[LEVEL]` is read the same way)."""
+    from triage.core.design import split_indicator_name
     from triage.errors import SpecError
 
     reference: dict[str, str] = {}
     for pair in pairs:
-        column, sep, level = pair.partition("=")
-        if not sep or not column.strip():
+        parts = split_indicator_name(pair)
+        if parts is None:
             msg = f"`--reference` takes COL=LEVEL, got `{pair}`"
             raise SpecError(msg)
-        reference[column.strip()] = level.strip()
+        reference[parts[0]] = parts[1]
     return reference
 
 

@@ -17,6 +17,7 @@ from typing import TYPE_CHECKING, Final
 import numpy as np
 import polars as pl
 
+from triage.core.levels import LevelTable, count_levels, level_text, present_value
 from triage.core.spec import is_categorical_dtype, quote_name
 from triage.errors import DataError, SpecError
 
@@ -48,6 +49,59 @@ _DROP_HINT: Final = (
 )
 _OVERFLOW_TRANSFORMS: Final = frozenset({"square", "pow", "poly"})
 _SQL_NAME: Final = re.compile(r"[A-Za-z_][A-Za-z0-9_]*\Z")
+_BRACKET_INDICATOR: Final = re.compile(r"(.+?)\[(.*)\]")
+"""The bracket form ``depot[north]`` of an indicator name, still accepted as input."""
+
+
+def indicator_name(column: str, level: str) -> str:
+    """Name the indicator (dummy) column of one level of a categorical column.
+
+    Every view, export and JSON document shows an indicator under this one name:
+    ``vehicle=cargo_bike`` reads as "the rows where `vehicle` is `cargo_bike`".
+
+    Parameters
+    ----------
+    column : str
+        The categorical column (written in backticks when not a plain name).
+    level : str
+        The level the indicator is 1 for.
+
+    Returns
+    -------
+    str
+        ``column=level``.
+    """
+    return f"{quote_name(column)}={level}"
+
+
+def split_indicator_name(text: str) -> tuple[str, str] | None:
+    """Read an indicator name typed by a user back into (column, level).
+
+    Accepts our form ``depot=north`` and, for older notes and scripts, ``depot[north]``.
+    A backticked column name is unquoted.
+
+    Parameters
+    ----------
+    text : str
+        The typed name.
+
+    Returns
+    -------
+    tuple of (str, str) or None
+        The column and the level (both stripped), or None when `text` is neither form.
+    """
+    text = text.strip()
+    bracket = _BRACKET_INDICATOR.fullmatch(text)
+    if bracket is not None:
+        column, level = bracket.group(1), bracket.group(2)
+    else:
+        column, sep, level = text.partition("=")
+        if not sep:
+            return None
+    column, level = column.strip(), level.strip()
+    if len(column) > 1 and column.startswith("`") and column.endswith("`"):
+        column = column[1:-1]
+    return (column, level) if column else None
 
 
 @dataclass(frozen=True)
@@ -135,20 +189,8 @@ def _is_float(dtype: pl.DataType | type[pl.DataType]) -> bool:
     return bool(dtype.is_float()) or bool(dtype.is_decimal())
 
 
-def _present(column: str, dtype: pl.DataType | type[pl.DataType]) -> pl.Expr:
-    """Mark usable values: not null and, for floats, finite."""
-    if _is_float(dtype):
-        return pl.col(column).cast(pl.Float64).is_finite().fill_null(value=False)
-    return pl.col(column).is_not_null()
-
-
 def _as_float(column: str) -> pl.Expr:
     return pl.col(column).cast(pl.Float64)
-
-
-def _levels_of(column: str) -> pl.Expr:
-    """Levels of a column as text (booleans read `true`/`false`), as learned from a sample."""
-    return pl.col(column).cast(pl.String)
 
 
 def _match_levels(
@@ -163,7 +205,7 @@ def _match_levels(
     if dtype == pl.Boolean:
         flags = [level == "true" for level in levels]
         return pl.col(column).is_in(flags), [pl.col(column) == flag for flag in flags]
-    source = pl.col(column) if is_categorical_dtype(dtype) else _levels_of(column)
+    source = pl.col(column) if is_categorical_dtype(dtype) else level_text(column)
     return source.is_in(list(levels)), [source == level for level in levels]
 
 
@@ -236,6 +278,83 @@ def _quick_checks(
     )
 
 
+def design_width(spec: ModelSpec, tables: Mapping[str, LevelTable]) -> int:
+    """Count the design's columns.
+
+    The intercept, one per numeric term, one per `poly` degree, and one indicator per
+    non-reference level of each categorical.
+    """
+    width = int(spec.intercept)
+    for term in spec.terms:
+        if term.kind == "categorical" and term.column is not None:
+            width += max(len(tables[term.column].levels) - 1, 0)
+        elif term.transform == "poly" and term.arg is not None:
+            width += term.arg
+        else:
+            width += 1
+    return width
+
+
+def design_memory_bytes(n_columns: int, batch_rows: int, n_workers: int) -> int:
+    """Estimate the peak memory of a pass over a design of `n_columns` columns.
+
+    Each worker holds its triangular factor (the shifted design plus target and a spare
+    column), twice that while two factors merge, and a batch's design three times over
+    (the polars frame, its float64 copy, the shifted copy the accumulator factors).
+    """
+    width = n_columns + 2
+    per_worker = 3 * width * width * 8 + 3 * batch_rows * width * 8
+    return n_workers * per_worker
+
+
+def memory_text(n_bytes: float) -> str:
+    """Write a byte count for a message: ``512 MiB``, ``7.5 GiB``, ``7,450 TiB``."""
+    for unit in ("KiB", "MiB", "GiB"):
+        n_bytes /= 1024
+        if n_bytes < 1024:
+            return f"{n_bytes:,.0f} {unit}" if n_bytes >= 100 else f"{n_bytes:.1f} {unit}"
+    return f"{n_bytes / 1024:,.0f} TiB"
+
+
+@dataclass(frozen=True)
+class DesignBudget:
+    """The memory a design may take, and the shape of the pass it is estimated for.
+
+    Attributes
+    ----------
+    limit_bytes : int
+        Most memory the pass's design may take (`design_memory_bytes`).
+    batch_rows : int
+        Rows per batch of the pass.
+    n_workers : int
+        Threads that each hold a factor and a batch.
+    """
+
+    limit_bytes: int
+    batch_rows: int
+    n_workers: int
+
+    def check(self, spec: ModelSpec, tables: Mapping[str, LevelTable]) -> None:
+        """Raise `DataError` in one line when the design would need more than the limit."""
+        width = design_width(spec, tables)
+        need = design_memory_bytes(width, self.batch_rows, self.n_workers)
+        if need <= self.limit_bytes:
+            return
+        widest = max(tables.values(), key=lambda t: len(t.levels), default=None)
+        culprit = (
+            f"`{widest.column}` has {len(widest.levels):,} levels"
+            if widest is not None
+            else f"{len(spec.terms)} terms"
+        )
+        msg = (
+            f"the design would have {width:,} columns ({culprit}) and need about "
+            f"{memory_text(need)} of memory, more than the limit of "
+            f"{memory_text(self.limit_bytes)}; leave the column out or group its levels "
+            "(`--where` can keep fewer), or raise the limit with `--max-memory`"
+        )
+        raise DataError(msg)
+
+
 def _describe_levels(levels: list[str]) -> str:
     shown = ", ".join(f"`{level}`" for level in levels[:_SHOWN_LEVELS])
     more = len(levels) - _SHOWN_LEVELS
@@ -255,15 +374,19 @@ class DesignBuilder:
     column_names : tuple of str
         Design column names: ``intercept`` first when the model has one, a numeric or
         transform term under its label, ``poly(x, 3)`` as ``x``, ``x^2``, ``x^3``, and a
-        categorical as one dummy per non-reference level, ``depot[north]``.
+        categorical as one dummy per non-reference level, ``depot=north`` (see
+        `indicator_name`).
     term_of_column : tuple of str
         The term label of each design column (``intercept`` for the column of ones).
     numeric_predictors : tuple of str
         Source columns used by numeric, transform and interaction terms, in order.
     levels : mapping of str to tuple of str
-        Each categorical column's levels seen in the sample, sorted, reference included.
+        Each categorical column's levels in natural order, reference included.
+    level_tables : mapping of str to LevelTable
+        Each categorical column's levels with the rows counted for each (the rows the
+        levels and the reference were learned from).
     reference_levels : mapping of str to str
-        Each categorical column's reference level (no dummy column).
+        Each categorical column's reference level (no indicator column).
     scaling : mapping of str to tuple of float
         For each ``std(x)`` term label, the sample mean and SD (ddof=1) it uses.
     """
@@ -273,6 +396,7 @@ class DesignBuilder:
     term_of_column: tuple[str, ...]
     numeric_predictors: tuple[str, ...]
     levels: Mapping[str, tuple[str, ...]]
+    level_tables: Mapping[str, LevelTable]
     reference_levels: Mapping[str, str]
     scaling: Mapping[str, tuple[float, float]]
     _design: tuple[pl.Expr, ...] = field(repr=False, compare=False)
@@ -291,11 +415,23 @@ class DesignBuilder:
         )
 
     @classmethod
-    def learn(cls, spec: ModelSpec, schema: SchemaLike, sample: pl.DataFrame) -> DesignBuilder:
-        """Learn the coding of every term from a sample.
+    def learn(
+        cls,
+        spec: ModelSpec,
+        schema: SchemaLike,
+        sample: pl.DataFrame,
+        *,
+        level_tables: Mapping[str, LevelTable] | None = None,
+        budget: DesignBudget | None = None,
+    ) -> DesignBuilder:
+        """Learn the coding of every term: levels and references, and `std()` scaling.
 
-        Statistics come from the sample rows that have a usable value in every model
-        column and meet every domain check, i.e. the rows `build` would keep.
+        A categorical's levels are those of `level_tables` (a full pass counts every row
+        first) or else of the sample rows with a value in that column; its reference is
+        the one the spec names, else the level with the most of those rows, ties going to
+        the first in natural order (`LevelTable.most_frequent`). The mean and SD behind
+        ``std(x)`` come from the sample rows that have a usable value in every model column
+        and meet every domain check, i.e. the rows `build` would keep.
 
         Parameters
         ----------
@@ -305,6 +441,10 @@ class DesignBuilder:
             The source's column types (they decide which values count as missing).
         sample : polars.DataFrame
             Rows holding at least the spec's model columns (target, terms, weights).
+        level_tables : mapping of str to LevelTable, optional
+            Levels counted over every row a full pass reads; None learns them from `sample`.
+        budget : DesignBudget, optional
+            Memory the design may take; checked before any design column is made.
 
         Returns
         -------
@@ -314,12 +454,21 @@ class DesignBuilder:
         ------
         SpecError
             If a categorical column has more than ``spec.max_levels`` levels, a given
-            reference level is not in the sample, or two design columns share a name.
+            reference level is not among its levels, or two design columns share a name.
         DataError
-            If a categorical has fewer than two levels or a ``std`` term has no spread
-            in the usable sample rows.
+            If a categorical has fewer than two levels, a ``std`` term has no spread in
+            the usable sample rows, or the design would need more memory than `budget`.
         """
-        present = _all([_present(c, schema[c]) for c in spec.model_columns()])
+        categorical = [t.column for t in spec.terms if t.kind == "categorical" and t.column]
+        if level_tables is None:
+            level_tables = count_levels(schema, categorical, sample)
+            basis = "the sample"
+        else:
+            basis = "the rows read"
+        tables = {c: _check_levels(spec, level_tables[c], basis) for c in categorical}
+        if budget is not None:
+            budget.check(spec, tables)
+        present = _all([present_value(c, schema[c]) for c in spec.model_columns()])
         checks = _domain_checks(spec)
         usable = sample.filter(present & ~_any([c.bad for c in checks]).fill_null(value=False))
 
@@ -364,14 +513,15 @@ class DesignBuilder:
             if term.kind == "categorical":
                 column = term.column
                 assert column is not None  # categorical terms have a column
-                found, reference = _learn_levels(spec, usable, column)
+                table = tables[column]
+                found, reference = table.levels, reference_level(spec, table)
                 levels[column] = found
                 references[column] = reference
                 in_levels, equal = _match_levels(column, schema[column], found)
                 level_ok.append(in_levels)
                 for level, is_level in zip(found, equal, strict=True):
                     if level != reference:
-                        name = f"{quote_name(column)}[{level}]"
+                        name = indicator_name(column, level)
                         design.append(is_level.cast(pl.Float64).alias(name))
                         names.append(name)
                         owners.append(term.label)
@@ -421,6 +571,7 @@ class DesignBuilder:
             term_of_column=tuple(owners),
             numeric_predictors=tuple(dict.fromkeys(predictors)),
             levels=MappingProxyType(levels),
+            level_tables=MappingProxyType(tables),
             reference_levels=MappingProxyType(references),
             scaling=MappingProxyType(scaling),
             _design=tuple(design),
@@ -564,45 +715,36 @@ class DesignBuilder:
         return np.asfortranarray(values[keep]), frame.filter(pl.Series(keep)), n_bad
 
 
-def _learn_levels(
-    spec: ModelSpec, usable: pl.DataFrame, column: str
-) -> tuple[tuple[str, ...], str]:
-    """Sorted levels of a categorical column in the usable sample rows, and its reference.
+def reference_level(spec: ModelSpec, table: LevelTable) -> str:
+    """Return a categorical's reference: the one the spec names, else its most frequent level."""
+    return spec.reference.get(table.column) or table.most_frequent()
 
-    The reference is the one given in the spec, else the most frequent level (ties go to
-    the level first in sorted order).
-    """
-    counts = (
-        usable.select(_levels_of(column).alias("level"))
-        .get_column("level")
-        .value_counts(name="n")
-        .sort(["n", "level"], descending=[True, False])
-    )
-    by_frequency = counts.get_column("level").to_list()
-    found = sorted(by_frequency)
-    label = quote_name(column)
+
+def _check_levels(spec: ModelSpec, table: LevelTable, basis: str) -> LevelTable:
+    """Check a categorical's level count and named reference; return the table."""
+    column, found = table.column, table.levels
     if len(found) > spec.max_levels:
         msg = (
-            f"categorical column `{column}` has {len(found):,} levels in the sample, more than "
+            f"categorical column `{column}` has {len(found):,} levels in {basis}, more than "
             f"the limit of {spec.max_levels}; raise the limit with `--max-levels` or filter "
             "the rows with `--where`"
         )
         raise SpecError(msg)
     if len(found) < 2:
-        got = f"only the level `{found[0]}`" if found else "no usable rows"
+        got = f"only the level `{found[0]}`" if found else "no values"
         msg = (
-            f"categorical term `{label}` has {got} in the sample rows with every model column "
-            "present; it needs at least two levels: remove the term or widen the sample"
+            f"categorical term `{quote_name(column)}` has {got} in {basis}; it needs at least "
+            "two levels: remove the term or widen the rows"
         )
         raise DataError(msg)
-    reference = spec.reference.get(column, by_frequency[0])
-    if reference not in found:
+    reference = spec.reference.get(column)
+    if reference is not None and reference not in found:
         msg = (
-            f"reference level `{reference}` for `{column}` is not among its levels in the "
-            f"sample: {_describe_levels(found)}; choose one of those"
+            f"reference level `{reference}` for `{column}` is not among its levels in "
+            f"{basis}: {_describe_levels(list(found))}; choose one of those"
         )
         raise SpecError(msg)
-    return tuple(found), reference
+    return table
 
 
 def _learn_scaling(usable: pl.DataFrame, term: Term) -> tuple[float, float]:

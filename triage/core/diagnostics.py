@@ -22,7 +22,7 @@ from __future__ import annotations
 import itertools
 import math
 from collections.abc import Collection, Mapping
-from dataclasses import dataclass, field, fields
+from dataclasses import dataclass, field, fields, replace
 from typing import TYPE_CHECKING, Final
 
 import numpy as np
@@ -138,12 +138,21 @@ class RowDiagnostics:
         ``s_(i)² = (RSS - e_i²/(1 - h_i)) / (df_resid - 1)``.
     cooks : ndarray of shape (n,)
         Cook's distance ``student_internal² h / (p (1 - h))``, ``p`` the rank of the design.
+    in_fit : ndarray of bool, shape (n,)
+        True where the row was one of the rows the fit was computed on.
 
     Notes
     -----
     Studentized values and Cook's distance are NaN where ``h`` is 1 (see
     `LEVERAGE_ONE_TOLERANCE`), where the fit has no residual spread, and (external only) where
     fewer than 2 residual degrees of freedom are left.
+
+    A row outside the fit (filtered out, left out by a mark, not in the sample) is scored as
+    a new observation: `leverage` is ``h0 = x0ᵀ(XᵀX)⁻¹x0`` (times its weight), computed as
+    ``‖R⁻ᵀx0‖²`` like the hat values, and both studentized columns hold the standardised
+    prediction residual ``√w·e0 / (s √(1 + h0))``, whose variance under the model is
+    ``σ²(1 + h0)`` since the row did not pull the fit. Cook's distance measures how a row
+    moves the fit it is part of, so it is NaN there.
     """
 
     rows: IntArray
@@ -154,6 +163,7 @@ class RowDiagnostics:
     student_internal: FloatArray
     studentized: FloatArray
     cooks: FloatArray
+    in_fit: NDArray[np.bool_]
 
     def take(self, indices: ArrayLike) -> RowDiagnostics:
         """Return the diagnostics of the rows at `indices` (indices into these arrays)."""
@@ -203,10 +213,13 @@ def _row_values(
         student_internal=internal,
         studentized=external,
         cooks=cooks,
+        in_fit=np.ones(h.size, dtype=np.bool_),
     )
 
 
-def row_diagnostics(fit: LinearFit, batch: DesignBatch) -> RowDiagnostics:
+def row_diagnostics(
+    fit: LinearFit, batch: DesignBatch, in_fit: NDArray[np.bool_] | None = None
+) -> RowDiagnostics:
     """Compute fitted values, residuals, leverage, studentized residuals and Cook's distance.
 
     Parameters
@@ -215,6 +228,9 @@ def row_diagnostics(fit: LinearFit, batch: DesignBatch) -> RowDiagnostics:
         The fit of pass 1.
     batch : DesignBatch
         Design rows built by the same builder as the fit's.
+    in_fit : ndarray of bool, optional
+        Per row of the batch, True when the row was among the fit's rows; rows outside are
+        scored as new observations (see `RowDiagnostics`). By default every row is in.
 
     Returns
     -------
@@ -225,7 +241,31 @@ def row_diagnostics(fit: LinearFit, batch: DesignBatch) -> RowDiagnostics:
     --------
     DiagnosticsAccumulator : the same values summarised over a whole pass.
     """
-    return _row_values(fit, fit.to_shifted(batch.x), batch.y, batch.weights, batch.rows)
+    values = _row_values(fit, fit.to_shifted(batch.x), batch.y, batch.weights, batch.rows)
+    if in_fit is None or bool(np.all(in_fit)):
+        return values
+    outside = ~np.asarray(in_fit, dtype=np.bool_)
+    h0 = values.leverage[outside]
+    s = fit.resid_sd
+    with np.errstate(divide="ignore", invalid="ignore"):
+        predicted = values.weighted_resid[outside] / (s * np.sqrt(1.0 + h0))
+    if not (s > 0.0 and math.isfinite(s)):
+        predicted = np.full(h0.size, np.nan)
+    internal, external, cooks = (
+        values.student_internal.copy(),
+        values.studentized.copy(),
+        values.cooks.copy(),
+    )
+    internal[outside] = predicted
+    external[outside] = predicted
+    cooks[outside] = np.nan
+    return replace(
+        values,
+        student_internal=internal,
+        studentized=external,
+        cooks=cooks,
+        in_fit=~outside,
+    )
 
 
 # --------------------------------------------------------------------------- configuration

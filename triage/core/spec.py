@@ -103,7 +103,10 @@ class ModelSpec:
         Column -> reference level for dummy coding; other categoricals use their most
         frequent level in the sample.
     max_levels : int, default=50
-        Most levels a categorical column may have in the sample.
+        Most levels a categorical column may have in the rows it is learned from.
+    max_memory : int or None, default=None
+        Most bytes a pass's design may take (checked before it is built); None for the
+        engine's default, a share of the machine's memory.
     drop_invalid : bool, default=False
         Leave out rows outside a transform's domain or with weight <= 0 instead of failing.
     """
@@ -116,6 +119,7 @@ class ModelSpec:
     categorical: tuple[str, ...] = ()
     reference: Mapping[str, str] = field(default_factory=lambda: MappingProxyType({}), hash=False)
     max_levels: int = 50
+    max_memory: int | None = None
     drop_invalid: bool = False
 
     def model_columns(self) -> tuple[str, ...]:
@@ -175,6 +179,15 @@ def _tokenize(text: str) -> list[_Token]:
                 msg = (
                     f"`-` at position {where + 1} in terms `{text}`: terms cannot be removed; "
                     "the intercept is a separate option of the model, on by default"
+                )
+            elif bad[0] in "=[" and tokens and tokens[-1].kind == "name":
+                column = tokens[-1].text
+                written = re.split(r"[,+]", text[tokens[-1].start :])[0].strip()
+                msg = (
+                    f"`{written}` names one indicator of "
+                    f"the categorical `{column}`: give `{column}` as a term (it gets an "
+                    f"indicator per level) and choose the level left out with "
+                    f"`--reference {column}=LEVEL`"
                 )
             else:
                 msg = (
@@ -588,6 +601,7 @@ def build_spec(
     categorical: Sequence[str] = (),
     reference: Mapping[str, str] | None = None,
     max_levels: int = 50,
+    max_memory: int | None = None,
     drop_invalid: bool = False,
 ) -> ModelSpec:
     """Check a model description against the columns of a source and build its spec.
@@ -611,7 +625,9 @@ def build_spec(
     reference : mapping of str to str or None, default=None
         Reference level per categorical column.
     max_levels : int, default=50
-        Most levels a categorical may have in the sample.
+        Most levels a categorical may have in the rows it is learned from.
+    max_memory : int or None, default=None
+        Most bytes a pass's design may take; None for the engine's default.
     drop_invalid : bool, default=False
         Leave out rows outside a transform's domain or with weight <= 0 instead of failing.
 
@@ -682,5 +698,6 @@ def build_spec(
         categorical=tuple(dict.fromkeys(categorical)),
         reference=MappingProxyType(reference),
         max_levels=max_levels,
+        max_memory=max_memory,
         drop_invalid=drop_invalid,
     )

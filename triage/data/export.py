@@ -25,6 +25,12 @@ PERSONAL_DATA_NOTICE: Final[str] = (
 )
 """One-line reminder shown whenever rows are exported."""
 
+NOTE_KEY: Final[str] = "triage.fit"
+"""Parquet metadata key of an export's note (which fit scored its rows)."""
+
+NOTE_SUFFIX: Final[str] = ".fit.txt"
+"""Added to a CSV or TSV export's file name for its sidecar note."""
+
 ExportFormat = Literal["parquet", "csv", "tsv"]
 
 _FORMATS: Final[dict[str, ExportFormat]] = {
@@ -134,6 +140,7 @@ def write_frame(
     *,
     force: bool = False,
     protected: Iterable[str | os.PathLike[str]] = (),
+    note: str | None = None,
 ) -> Path:
     """Write `frame` to Parquet or CSV (by extension), atomically.
 
@@ -151,6 +158,9 @@ def write_frame(
     protected : iterable of path, default=()
         Paths never written, even with `force` (the input files or folders of the session);
         a target inside a protected folder is refused too.
+    note : str, optional
+        One line about the rows (which fit scored them): stored under `NOTE_KEY` in a
+        Parquet file's metadata, or in a sidecar text file (name + `NOTE_SUFFIX`) for CSV.
 
     Returns
     -------
@@ -167,7 +177,7 @@ def write_frame(
     --------
     StreamingExport : Write many batches in bounded memory.
     """
-    with StreamingExport(path, force=force, protected=protected) as export:
+    with StreamingExport(path, force=force, protected=protected, note=note) as export:
         export.write(frame)
     return export.path
 
@@ -186,6 +196,8 @@ class StreamingExport:
         Replace an existing file.
     protected : iterable of path, default=()
         Paths never written, even with `force`.
+    note : str, optional
+        One line about the rows; see `write_frame`.
 
     Raises
     ------
@@ -206,8 +218,19 @@ class StreamingExport:
         *,
         force: bool = False,
         protected: Iterable[str | os.PathLike[str]] = (),
+        note: str | None = None,
     ) -> None:
+        protected = tuple(protected)
         self._target, self._format = _check_target(path, force=force, protected=protected)
+        self._note = note
+        self._sidecar: Path | None = None
+        if note is not None and self._format != "parquet":
+            self._sidecar = self._target.with_name(self._target.name + NOTE_SUFFIX)
+            guard = _is_protected(self._sidecar, protected)
+            if guard is not None or (not force and self._sidecar.exists()):
+                why = "is an input" if guard is not None else "exists; pass `--force` to replace it"
+                msg = f"the note `{self._sidecar.name}` beside the export {why}"
+                raise ExportError(msg)
         self._force = force
         self._handle: IO[bytes] | None = None
         self._temporary: Path | None = None
@@ -254,6 +277,8 @@ class StreamingExport:
         try:
             if self._format == "parquet":
                 table = frame.to_arrow()
+                if self._note is not None:
+                    table = table.replace_schema_metadata({NOTE_KEY: self._note})
                 if self._writer is None:
                     self._writer = pq.ParquetWriter(self._handle, table.schema)
                 self._writer.write_table(table)
@@ -295,3 +320,8 @@ class StreamingExport:
             msg = f"nothing was written to `{self._target.name}`; no file was created"
             raise ExportError(msg)
         _move_into_place(temporary, self._target, force=self._force)
+        if self._sidecar is not None and self._note is not None:
+            handle, temporary = _temporary(self._sidecar)
+            with handle:
+                handle.write((self._note + "\n").encode("utf-8"))
+            _move_into_place(temporary, self._sidecar, force=True)

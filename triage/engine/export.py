@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import threading
-from collections.abc import Sequence
+from collections.abc import Collection, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -52,17 +52,30 @@ def diagnostics_frame(diagnostics: RowDiagnostics, *, prefix: str = "") -> pl.Da
 
 
 def rows_with_diagnostics(
-    source: Source, outcome: FitOutcome, positions: Sequence[int]
+    source: Source,
+    outcome: FitOutcome,
+    positions: Sequence[int],
+    *,
+    exclude_rows: Collection[int] = (),
+    fit_number: int | None = None,
 ) -> pl.DataFrame:
     """Read the rows at `positions` (all columns, in that order) and join their diagnostics.
 
-    A diagnostic column whose name is already taken by the data gets the prefix `triage_`.
+    Beside the `DIAGNOSTIC_COLUMNS`, `in_fit` says whether the fit used the row (see
+    `diagnose_rows`: a row outside it is scored as a new observation, with no Cook's
+    distance), and `fit` names the fit by its number when one is given. A diagnostic column
+    whose name is already taken by the data gets the prefix `triage_`.
     """
-    frame, diagnostics = diagnose_rows(source, outcome, positions)
-    taken = set(frame.columns)
-    prefix = "triage_" if taken & set(DIAGNOSTIC_COLUMNS) else ""
-    extra = diagnostics_frame(diagnostics, prefix=prefix)
+    frame, diagnostics = diagnose_rows(source, outcome, positions, exclude_rows=exclude_rows)
+    added = [*DIAGNOSTIC_COLUMNS, "in_fit", "fit"]
+    prefix = "triage_" if set(frame.columns) & set(added) else ""
+    extra = diagnostics_frame(diagnostics, prefix=prefix).with_columns(
+        pl.Series(prefix + "in_fit", diagnostics.in_fit)
+    )
     joined = frame.join(extra, left_on=ROW_INDEX, right_on=prefix + "row", how="left")
+    joined = joined.with_columns(pl.col(prefix + "in_fit").fill_null(value=False))
+    if fit_number is not None:
+        joined = joined.with_columns(pl.lit(fit_number, dtype=pl.Int64).alias(prefix + "fit"))
     return joined.rename({ROW_INDEX: prefix + "row"})
 
 
@@ -73,10 +86,19 @@ def export_rows(
     out: str | Path,
     *,
     force: bool = False,
+    exclude_rows: Collection[int] = (),
+    fit_number: int | None = None,
+    note: str | None = None,
 ) -> Path:
-    """Write the rows at `positions` with all their columns plus diagnostics to `out`."""
-    frame = rows_with_diagnostics(source, outcome, positions)
-    return write_frame(frame, out, force=force, protected=(*source.files, source.path))
+    """Write the rows at `positions` with all their columns plus diagnostics to `out`.
+
+    `note` (one line saying which fit scored the rows) goes into the file's metadata, or a
+    sidecar note for CSV; see `write_frame`.
+    """
+    frame = rows_with_diagnostics(
+        source, outcome, positions, exclude_rows=exclude_rows, fit_number=fit_number
+    )
+    return write_frame(frame, out, force=force, protected=(*source.files, source.path), note=note)
 
 
 def export_worst_rows(

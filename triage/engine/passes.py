@@ -6,28 +6,33 @@ cancel, checks the event between batches, and raises `PassCancelled` within one 
 
 from __future__ import annotations
 
-import functools
+import contextlib
+import os
 import threading
 import time
-from collections.abc import Callable, Collection, Iterator, Sequence
+from collections.abc import Callable, Collection, Generator, Iterator, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, TypeVar
 
 import numpy as np
 import polars as pl
 
-from triage.core.design import DesignBatch, DesignBuilder
+from triage.core.design import DesignBatch, DesignBudget, DesignBuilder
 from triage.core.filter import parse_filter
+from triage.core.levels import LevelCounter
 from triage.core.lsq import LinearFit, QRAccumulator
 from triage.data.source import ROW_INDEX
 from triage.engine.allocator import keep_batch_memory
 from triage.engine.progress import PassProgress, ProgressCallback, ProgressTracker, ReadAhead
-from triage.engine.workers import BatchWorkers, fold_in_order
+from triage.engine.workers import fold_in_order, pass_workers
 from triage.errors import DataError
 
 if TYPE_CHECKING:
+    from numpy.typing import NDArray
+
     from triage._typing import SampleDesign
     from triage.core.diagnostics import Diagnostics, RowDiagnostics
+    from triage.core.levels import LevelTable
     from triage.core.spec import ModelSpec
     from triage.data.source import Batch, Sample, Source
 
@@ -57,6 +62,24 @@ FIT_BATCH_VALUES = 8_388_608
 Measured here on 20 million rows of 30 predictors in row groups of 1,000,000: 5.9 s and 477
 MiB peak with `BATCH_VALUES` (batches of 62,500 rows), 5.0 s and 725 MiB with these (250,000).
 """
+
+
+MEMORY_SHARE = 0.5
+"""Share of the machine's memory (or of the process's address-space limit) a design may take."""
+
+
+def default_memory_limit() -> int:
+    """Bytes a design may take by default: `MEMORY_SHARE` of the machine's memory.
+
+    A lower address-space limit on the process (``ulimit -v``) counts instead.
+    """
+    import resource
+
+    total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    soft, _ = resource.getrlimit(resource.RLIMIT_AS)
+    if soft != resource.RLIM_INFINITY:
+        total = min(total, soft)
+    return int(total * MEMORY_SHARE)
 
 
 def batch_rows_for(n_columns: int, values: int = BATCH_VALUES) -> int:
@@ -211,17 +234,28 @@ class PassPlan:
         return frame.filter(pl.Series(keep))
 
     def frames(
-        self, counts: RowCounts, tracker: ProgressTracker, *, batch_values: int = BATCH_VALUES
-    ) -> Iterator[pl.DataFrame]:
-        """Yield the filtered frames of the pass, counting rows and reporting progress."""
-        step = batch_rows_for(len(self.columns), batch_values)
+        self,
+        counts: RowCounts,
+        tracker: ProgressTracker,
+        *,
+        batch_values: int = BATCH_VALUES,
+        columns: Sequence[str] | None = None,
+        drop_marked: bool = True,
+    ) -> Generator[pl.DataFrame, None, None]:
+        """Yield the filtered frames of the pass, counting rows and reporting progress.
+
+        `columns` reads other columns than the plan's (a first read of the categoricals);
+        `drop_marked=False` keeps the rows the user marked.
+        """
+        columns = self.columns if columns is None else list(columns)
+        step = batch_rows_for(len(columns), batch_values)
         if self.sample is None:
-            batches = self.source.scan_batches(self.columns, where=self.where, batch_rows=step)
+            batches = self.source.scan_batches(columns, where=self.where, batch_rows=step)
             for batch in ReadAhead(iter(batches)):
                 counts.read = batch.rows_read
                 counts.kept_by_filter += batch.frame.height
                 tracker.advance(batch.rows_read)
-                yield self._drop_excluded(batch.frame, counts)
+                yield self._drop_excluded(batch.frame, counts) if drop_marked else batch.frame
             return
         frame = self.sample.frame
         counts.read = self.sample.rows_read
@@ -241,27 +275,42 @@ class PassPlan:
         tracker: ProgressTracker,
         *,
         batch_values: int = BATCH_VALUES,
+        columns: Sequence[str] | None = None,
+        drop_marked: bool = True,
     ) -> S:
         """Fold the pass's frames into parts on worker threads and merge the parts into one.
 
         A full pass over a source that splits (`Source.scan_parts`) reads and folds its
         parts at the same time, each in one thread, and merges them in source order
-        (`fold_in_order`). Otherwise the frames are read ahead and dealt out to the workers
-        in turn (`BatchWorkers`). Either way the result does not depend on timing.
+        (`fold_in_order`). Otherwise the frames are read ahead on one thread and each is
+        folded by the next free worker into a part of its own; the parts merge in frame
+        order. Either way the result depends neither on timing nor on the number of workers.
+        `columns` and `drop_marked` are as for `frames`.
         """
+        columns = self.columns if columns is None else list(columns)
         parts: Sequence[Callable[[], Iterator[Batch]]] = ()
         if self.sample is None:
             parts = self.source.scan_parts(
-                self.columns,
-                where=self.where,
-                batch_rows=batch_rows_for(len(self.columns), batch_values),
+                columns, where=self.where, batch_rows=batch_rows_for(len(columns), batch_values)
             )
         if len(parts) < 2:
-            with BatchWorkers(new_part, fold) as workers:
-                for frame in self.frames(counts, tracker, batch_values=batch_values):
-                    workers.submit(frame)
-                states = workers.finish()
-            return functools.reduce(merge, states)
+
+            def fold_frame(frame: pl.DataFrame, stopping: threading.Event) -> S:
+                state = new_part()
+                fold(state, frame)
+                return state
+
+            with contextlib.closing(
+                self.frames(
+                    counts,
+                    tracker,
+                    batch_values=batch_values,
+                    columns=columns,
+                    drop_marked=drop_marked,
+                )
+            ) as frames:
+                merged = fold_in_order(frames, fold_frame, merge, wait=tracker.check)
+            return new_part() if merged is None else merged
         part_counts = [RowCounts() for _ in parts]
 
         def fold_part(k: int, stopping: threading.Event) -> S:
@@ -272,13 +321,15 @@ class PassPlan:
                 tracker.check()  # a cancel stops each worker within one batch
                 k_counts.read = batch.rows_read
                 k_counts.kept_by_filter += batch.frame.height
-                fold(state, self._drop_excluded(batch.frame, k_counts))
+                frame = batch.frame
+                fold(state, self._drop_excluded(frame, k_counts) if drop_marked else frame)
             return state
 
         def report() -> None:
             tracker.advance(sum(c.read for c in part_counts))
 
-        merged = fold_in_order(len(parts), fold_part, merge, wait=report)
+        merged = fold_in_order(range(len(parts)), fold_part, merge, wait=report)
+        assert merged is not None  # there are at least two parts
         for k_counts in part_counts:
             counts.absorb(k_counts)
         tracker.advance(counts.read, force=True)
@@ -305,6 +356,49 @@ class PassPlan:
             sample=None if sample is None else sample.description,
             sample_warning=None if sample is None else sample.warning,
             is_full_pass=self.is_full_pass,
+        )
+
+    def count_levels(self, tracker: ProgressTracker) -> dict[str, LevelTable] | None:
+        """Count every level of the model's categoricals over every row, or None for a sample.
+
+        A full pass reads only the categorical columns first (the filter's columns too),
+        so its design has every level present and never drops a row as unseen. Rows the
+        user marked are counted: the coding is that of the rows under the filter.
+        """
+        columns = [t.column for t in self.spec.terms if t.kind == "categorical" and t.column]
+        if self.sample is not None or not columns:
+            return None
+        schema = self.source.schema()
+
+        def fold(counter: LevelCounter, frame: pl.DataFrame) -> None:
+            counter.update(frame)
+
+        return self.fold_frames(
+            lambda: LevelCounter(schema, columns),
+            fold,
+            LevelCounter.merge,
+            RowCounts(),
+            tracker,
+            batch_values=FIT_BATCH_VALUES,
+            columns=columns,
+            drop_marked=False,
+        ).finalize()
+
+    def learn(self, tracker: ProgressTracker) -> DesignBuilder:
+        """Learn the design: levels over every row of a full pass, within the memory limit."""
+        spec = self.spec
+        limit = spec.max_memory if spec.max_memory is not None else default_memory_limit()
+        budget = DesignBudget(
+            limit_bytes=limit,
+            batch_rows=batch_rows_for(len(self.columns), FIT_BATCH_VALUES),
+            n_workers=pass_workers(),
+        )
+        return DesignBuilder.learn(
+            spec,
+            self.source.schema(),
+            self.learning_frame,
+            level_tables=self.count_levels(tracker),
+            budget=budget,
         )
 
     def rows_total(self) -> int | None:
@@ -404,7 +498,7 @@ def _fit(
     cancel: threading.Event | None,
 ) -> FitOutcome:
     spec = plan.spec
-    builder = DesignBuilder.learn(spec, plan.source.schema(), plan.learning_frame)
+    builder = plan.learn(ProgressTracker(None, cancel=cancel))
 
     def new_part() -> tuple[QRAccumulator, RowCounts]:
         return QRAccumulator(len(builder.column_names), has_intercept=spec.intercept), RowCounts()
@@ -582,18 +676,47 @@ def _diagnose(
 
 
 def diagnose_rows(
-    source: Source, outcome: FitOutcome, positions: Sequence[int]
+    source: Source,
+    outcome: FitOutcome,
+    positions: Sequence[int],
+    *,
+    exclude_rows: Collection[int] = (),
 ) -> tuple[pl.DataFrame, RowDiagnostics]:
     """Read the full original rows at `positions` and compute their diagnostics under the fit.
 
     Rows the model cannot use (a missing value, an unseen level) come back in the frame
-    but not in the diagnostics; match the two on `ROW_INDEX`.
+    but not in the diagnostics; match the two on `ROW_INDEX`. A row the fit did not use
+    (outside its filter, among `exclude_rows`, or outside the sample of a sample fit) is
+    scored as a new observation: see `RowDiagnostics.in_fit`.
     """
     from triage.core.diagnostics import row_diagnostics
 
     frame = source.read_rows(list(positions))
     batch = outcome.builder.build(frame.select([*outcome.spec.source_columns(), ROW_INDEX]))
-    return frame, row_diagnostics(outcome.fit, batch)
+    inside = rows_in_fit(source, outcome, frame, exclude_rows)
+    in_fit = np.isin(batch.rows, frame[ROW_INDEX].to_numpy()[inside])
+    return frame, row_diagnostics(outcome.fit, batch, in_fit)
+
+
+def rows_in_fit(
+    source: Source, outcome: FitOutcome, frame: pl.DataFrame, exclude_rows: Collection[int] = ()
+) -> NDArray[np.bool_]:
+    """Return, per row of `frame` (every column plus `ROW_INDEX`), whether the fit used it.
+
+    A row is in the fit when it passes the model's filter, is not among `exclude_rows` and,
+    for a fit on a sample, was drawn into that sample. Rows with a missing value are never
+    in a design batch, so they are not asked about.
+    """
+    rows = frame[ROW_INDEX].to_numpy()
+    inside: NDArray[np.bool_] = np.ones(rows.size, dtype=np.bool_)
+    where = _parse_where(source, outcome.spec)
+    if where is not None and rows.size:
+        inside &= frame.select(where.fill_null(value=False)).to_series().to_numpy()
+    if exclude_rows:
+        inside &= ~np.isin(rows, np.fromiter(exclude_rows, dtype=np.int64))
+    if not outcome.data.is_full_pass:
+        inside &= np.isin(rows, outcome.sample[ROW_INDEX].to_numpy())
+    return inside
 
 
 def iter_row_diagnostics(

@@ -1,195 +1,115 @@
-"""Split one pass over worker threads, each folding its batches into an accumulator of its own.
+"""Split one pass over worker threads and merge what they gathered in a fixed order.
 
 The accumulators of both passes merge (`QRAccumulator.merge`, `DiagnosticsAccumulator.merge`),
-so a pass can deal its batches out to threads and merge what they gathered at the end. numpy,
-BLAS and polars release the GIL for the work on a batch, so two workers use both cores while
-the read-ahead thread decodes.
+so a pass can hand its units (parts of a file, or batches) to threads, fold each unit into an
+accumulator of its own, and merge the accumulators in unit order. numpy, BLAS, pyarrow and
+polars release the GIL for the work on a unit, so the workers use every core they are given.
+The order of the merges depends only on the units, never on the number of workers or on which
+was quicker, so a result is the same, bit for bit, for any worker count.
 """
 
 from __future__ import annotations
 
-import contextlib
 import os
-import queue
 import threading
-from collections.abc import Callable
-from types import TracebackType
-from typing import Final, Generic, Self, TypeVar
+from collections.abc import Callable, Iterable
+from typing import TypeVar
 
 S = TypeVar("S")
-T = TypeVar("T")
+U = TypeVar("U")
 
-PASS_WORKERS: Final = min(2, os.cpu_count() or 1)
-"""Worker threads of a pass: the machines this was measured on have two cores."""
-
-_STOP: Final = object()
+_chosen_workers: int | None = None
 
 
-class BatchWorkers(Generic[S, T]):
-    """Deal items out to `n_workers` threads in turn; each folds its items into its own state.
+def available_cpus() -> int:
+    """Return the number of CPUs this process may run on (its affinity mask, where known)."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # no affinity call on this platform (macOS, Windows)
+        return max(1, os.cpu_count() or 1)
 
-    Item ``i`` goes to worker ``i mod n_workers``, so the split does not depend on timing.
-    Each worker holds at most one item waiting, so memory stays bounded. An error in a
-    worker is raised again in the caller by the next `submit` or by `finish`.
 
-    Parameters
-    ----------
-    make_state : callable
-        Builds one worker's state (an accumulator, counters).
-    fold : callable
-        ``fold(state, item)``: adds one item to a state; runs in the worker's thread.
-    n_workers : int, default=PASS_WORKERS
-        Threads to use.
+def set_pass_workers(n_workers: int | None) -> None:
+    """Set the worker threads of every later pass in this process; None restores the default.
 
-    Examples
-    --------
-    >>> with BatchWorkers(list, list.append, n_workers=2) as workers:
-    ...     for item in range(5):
-    ...         workers.submit(item)
-    ...     states = workers.finish()
-    >>> states
-    [[0, 2, 4], [1, 3]]
+    The command line's `--workers` and the app's setting of the same name call this.
     """
+    global _chosen_workers  # one process-wide setting, like a thread pool's size
+    if n_workers is not None and n_workers < 1:
+        msg = f"a pass needs at least one worker, got {n_workers}"
+        raise ValueError(msg)
+    _chosen_workers = n_workers
 
-    def __init__(
-        self,
-        make_state: Callable[[], S],
-        fold: Callable[[S, T], None],
-        *,
-        n_workers: int = PASS_WORKERS,
-    ) -> None:
-        self._fold = fold
-        self._states = [make_state() for _ in range(max(n_workers, 1))]
-        self._queues: list[queue.Queue[object]] = [queue.Queue(maxsize=1) for _ in self._states]
-        self._error: BaseException | None = None
-        self._failed = threading.Event()
-        self._next = 0
-        self._threads = [
-            threading.Thread(target=self._work, args=(k,), name=f"triage-worker-{k}", daemon=True)
-            for k in range(len(self._states))
-        ]
-        for thread in self._threads:
-            thread.start()
 
-    def _work(self, k: int) -> None:
-        state, items = self._states[k], self._queues[k]
-        while True:
-            item = items.get()
-            if item is _STOP:
-                return
-            try:
-                self._fold(state, item)  # type: ignore[arg-type]
-            except BaseException as error:  # handed to the caller, which raises it
-                self._error = self._error or error
-                self._failed.set()
-                return
-
-    def _raise_if_failed(self) -> None:
-        if self._error is not None:
-            raise self._error
-
-    def submit(self, item: T) -> None:
-        """Hand `item` to the next worker, waiting while that worker still has one queued."""
-        items = self._queues[self._next % len(self._queues)]
-        self._next += 1
-        while True:
-            self._raise_if_failed()
-            try:
-                items.put(item, timeout=0.1)
-            except queue.Full:
-                continue
-            return
-
-    def finish(self) -> list[S]:
-        """Wait for every item to be folded; return the states in worker order."""
-        self._stop()
-        self._raise_if_failed()
-        return self._states
-
-    def _stop(self) -> None:
-        for items, thread in zip(self._queues, self._threads, strict=True):
-            while thread.is_alive():
-                try:
-                    items.put(_STOP, timeout=0.1)
-                except queue.Full:
-                    continue
-                break
-        for thread in self._threads:
-            thread.join()
-
-    def close(self) -> None:
-        """Stop the workers without waiting for queued items (after an error or a cancel)."""
-        for items in self._queues:
-            with contextlib.suppress(queue.Empty):
-                items.get_nowait()
-        self._stop()
-
-    def __enter__(self) -> Self:
-        return self
-
-    def __exit__(
-        self,
-        kind: type[BaseException] | None,
-        error: BaseException | None,
-        traceback: TracebackType | None,
-    ) -> None:
-        self.close()
+def pass_workers() -> int:
+    """Return the worker threads of a pass: as set, else the CPUs the process may use."""
+    return _chosen_workers if _chosen_workers is not None else available_cpus()
 
 
 def fold_in_order(
-    n_units: int,
-    fold_unit: Callable[[int, threading.Event], S],
+    units: Iterable[U],
+    fold_unit: Callable[[U, threading.Event], S],
     merge: Callable[[S, S], S],
     *,
     wait: Callable[[], None],
-    n_workers: int = PASS_WORKERS,
+    n_workers: int | None = None,
     wait_s: float = 0.05,
-) -> S:
-    """Fold units ``0 .. n_units - 1`` on worker threads and merge the results in unit order.
+) -> S | None:
+    """Fold every unit on worker threads and merge the results in unit order.
 
     A worker takes the next unit as soon as it is free, so the load balances itself; the
     results are merged in unit order whichever thread made them, so the outcome does not
-    depend on timing.
+    depend on timing or on the number of workers. `units` is read under a lock, one unit
+    at a time, so it may be a generator (say, frames read ahead on another thread).
 
     Parameters
     ----------
-    n_units : int
-        Units to fold, at least one.
+    units : iterable
+        The units to fold, in order.
     fold_unit : callable
-        ``fold_unit(k, stopping)`` returns unit ``k``'s result; it runs in a worker thread
+        ``fold_unit(unit, stopping)`` returns the unit's result; it runs in a worker thread
         and should return early once the event `stopping` is set (its result is then dropped).
     merge : callable
-        ``merge(a, b)``: the result of units ``..k`` and unit ``k + 1`` combined.
+        ``merge(a, b)``: the result of the units up to one and the next unit's combined.
     wait : callable
         Runs on the calling thread every `wait_s` seconds while the workers run (progress,
         cancel); an error it raises stops the workers and is raised here.
-    n_workers : int, default=PASS_WORKERS
-        Threads to use.
+    n_workers : int, optional
+        Threads to use; `pass_workers()` when not given.
     wait_s : float, default=0.05
         Seconds between calls of `wait`.
 
+    Returns
+    -------
+    The merged result, or None when there were no units.
+
     Examples
     --------
-    >>> fold_in_order(5, lambda k, stopping: [k], lambda a, b: a + b, wait=lambda: None)
+    >>> fold_in_order(range(5), lambda k, stopping: [k], lambda a, b: a + b, wait=lambda: None)
     [0, 1, 2, 3, 4]
     """
     stopping, all_done = threading.Event(), threading.Event()
-    lock = threading.Lock()
-    units = iter(range(n_units))
+    # One lock for taking units (a generator may block while it reads) and one for merging,
+    # so a worker that has finished a unit never waits for the next unit to be read.
+    taking, lock = threading.Lock(), threading.Lock()
+    numbered = enumerate(units)
     finished: dict[int, S] = {}
     merged: list[S] = []  # the merge of units 0 .. n_merged - 1, once there is one
     n_merged = 0
     errors: list[BaseException] = []
-    running = n_threads = max(1, min(n_workers, n_units))
+    n_threads = max(1, n_workers if n_workers is not None else pass_workers())
+    if isinstance(units, range | list | tuple):
+        n_threads = max(1, min(n_threads, len(units)))
+    running = n_threads
 
     def fold_units() -> None:
         nonlocal n_merged
         while not stopping.is_set():
-            with lock:
-                k = next(units, None)
-            if k is None:
+            with taking:
+                k, unit = next(numbered, (-1, None))
+            if k < 0:
                 return
-            result = fold_unit(k, stopping)
+            result = fold_unit(unit, stopping)  # type: ignore[arg-type]
             with lock:
                 finished[k] = result
                 while n_merged in finished:
@@ -227,4 +147,4 @@ def fold_in_order(
             thread.join()
     if errors:
         raise errors[0]
-    return merged[0]
+    return merged[0] if merged else None

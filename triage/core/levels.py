@@ -1,0 +1,137 @@
+"""Levels of categorical columns: counted over rows, in natural order, with one reference rule.
+
+`LevelCounter` counts the rows of each level of some columns, batch by batch, and merges
+with another counter in any order (a full pass counts every row this way before it builds
+a design; a sample fit counts its sample). `LevelTable` holds one column's levels in
+natural order (numbers numerically, booleans false before true, dates by date, text by its
+sort order) with their row counts, and applies the reference rule: the level with the most
+rows, ties going to the first in natural order, unless the user names one. The result
+depends only on which rows are counted, never on storage, batch order or threads.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import TYPE_CHECKING
+
+import polars as pl
+
+if TYPE_CHECKING:
+    from collections.abc import Mapping, Sequence
+
+    from triage.core.spec import SchemaLike
+
+_COUNT = "__n"
+
+
+def level_text(column: str) -> pl.Expr:
+    """Read a column's values as level names (text; booleans read `true`/`false`)."""
+    return pl.col(column).cast(pl.String)
+
+
+def present_value(column: str, dtype: pl.DataType | type[pl.DataType]) -> pl.Expr:
+    """Mark usable values: not null and, for a float or decimal, finite."""
+    if dtype.is_float() or dtype.is_decimal():
+        return pl.col(column).cast(pl.Float64).is_finite().fill_null(value=False)
+    return pl.col(column).is_not_null()
+
+
+def _sortable(column: str, dtype: pl.DataType | type[pl.DataType]) -> pl.Expr:
+    """Sort key of a column in natural order: Categorical by its text, anything else as it is."""
+    if dtype == pl.Categorical:
+        return pl.col(column).cast(pl.String)
+    return pl.col(column)
+
+
+@dataclass(frozen=True)
+class LevelTable:
+    """One categorical column's levels in natural order, with the rows counted for each.
+
+    Attributes
+    ----------
+    column : str
+        The source column.
+    levels : tuple of str
+        Level names (the values as text), in natural order.
+    counts : tuple of int
+        Rows counted for each level.
+    """
+
+    column: str
+    levels: tuple[str, ...]
+    counts: tuple[int, ...]
+
+    @property
+    def n_rows(self) -> int:
+        """Rows counted over every level."""
+        return sum(self.counts)
+
+    def most_frequent(self) -> str:
+        """Return the level with the most rows; a tie goes to the one first in natural order."""
+        best = max(range(len(self.levels)), key=lambda i: (self.counts[i], -i))
+        return self.levels[best]
+
+
+class LevelCounter:
+    """Counts the rows of each level of some columns; mergeable in any order.
+
+    Only rows with a usable value (not null, finite for floats) are counted.
+
+    Parameters
+    ----------
+    schema : mapping of str to polars data type
+        Types of the columns to count (they decide the natural order).
+    columns : sequence of str
+        The categorical columns.
+    """
+
+    def __init__(self, schema: SchemaLike, columns: Sequence[str]) -> None:
+        self._dtypes = {c: schema[c] for c in columns}
+        self._tables: dict[str, pl.DataFrame | None] = dict.fromkeys(columns)
+
+    def update(self, frame: pl.DataFrame) -> None:
+        """Count the levels of one batch."""
+        for column, dtype in self._dtypes.items():
+            counted = (
+                frame.lazy()
+                .filter(present_value(column, dtype))
+                .group_by(_sortable(column, dtype).alias(column))
+                .agg(pl.len().cast(pl.Int64).alias(_COUNT))
+                .collect()
+            )
+            self._tables[column] = _add(self._tables[column], counted, column)
+
+    def merge(self, other: LevelCounter) -> LevelCounter:
+        """Add another counter's counts into this one; return this one."""
+        for column, table in other._tables.items():
+            if table is not None:
+                self._tables[column] = _add(self._tables[column], table, column)
+        return self
+
+    def finalize(self) -> dict[str, LevelTable]:
+        """Each column's levels in natural order with their row counts."""
+        result: dict[str, LevelTable] = {}
+        for column, table in self._tables.items():
+            if table is None:
+                result[column] = LevelTable(column, (), ())
+                continue
+            ordered = table.sort(column, nulls_last=True)
+            names = ordered.select(level_text(column)).to_series().to_list()
+            counts = ordered.get_column(_COUNT).to_list()
+            result[column] = LevelTable(column, tuple(names), tuple(int(n) for n in counts))
+        return result
+
+
+def _add(total: pl.DataFrame | None, more: pl.DataFrame, column: str) -> pl.DataFrame:
+    if total is None:
+        return more
+    return pl.concat([total, more]).group_by(column).agg(pl.col(_COUNT).sum())
+
+
+def count_levels(
+    schema: SchemaLike, columns: Sequence[str], frame: pl.DataFrame
+) -> Mapping[str, LevelTable]:
+    """Count the levels of `columns` in one in-memory frame (a sample)."""
+    counter = LevelCounter(schema, columns)
+    counter.update(frame)
+    return counter.finalize()
