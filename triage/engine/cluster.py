@@ -13,12 +13,11 @@ pass first needs the cluster, so a sample fit never contacts the scheduler.
 
 from __future__ import annotations
 
+import asyncio
 import contextlib
 import copy
-import gc
 import logging
 import os
-import sys
 import threading
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
@@ -37,13 +36,7 @@ if TYPE_CHECKING:
     from triage.engine.progress import ProgressTracker
 
 S = TypeVar("S")
-
-CLUSTER_PART_ROWS: Final = 2_000_000
-"""Least rows in a task's part (whole row groups, never across files).
-
-Per-task scheduler overhead was measured at a few milliseconds (`bench/bench_cluster.py`),
-against about a second of reading and folding two million rows on a worker.
-"""
+T = TypeVar("T")
 
 SCHEDULER_VARIABLE: Final = "TRIAGE_SCHEDULER"
 """Environment variable naming the scheduler's address when `--scheduler` is not given."""
@@ -96,6 +89,26 @@ def missing_files(paths: Sequence[str]) -> str | None:
     return next((path for path in paths if not os.path.exists(path)), None)
 
 
+def merge_tree(leaves: Sequence[T], merge_pair: Callable[[T, T], T]) -> tuple[T, list[T]]:
+    """Join `leaves` pairwise, level by level, in order; return the root and every join made.
+
+    Level one joins leaves 0 and 1, 2 and 3, ...; an odd last one moves up a level as it
+    is. This is the tree `fold_in_order` merges a local pass's parts in, so both engines
+    give the same bits.
+
+    Examples
+    --------
+    >>> merge_tree("abcde", lambda a, b: f"({a}{b})")[0]
+    '(((ab)(cd))e)'
+    """
+    level, joins = list(leaves), []
+    while len(level) > 1:
+        pairs = [level[i : i + 2] for i in range(0, len(level), 2)]
+        level = [merge_pair(*pair) if len(pair) == 2 else pair[0] for pair in pairs]
+        joins += [node for node, pair in zip(level, pairs, strict=True) if len(pair) == 2]
+    return level[0], joins
+
+
 def tree_levels(n_parts: int) -> int:
     """Levels of pairwise merges that join `n_parts` results into one."""
     return max(n_parts - 1, 0).bit_length()
@@ -108,8 +121,9 @@ class ClusterEngine:
     ----------
     address : str
         The scheduler's address, e.g. ``tcp://10.0.0.5:8786``.
-    part_rows : int, default=CLUSTER_PART_ROWS
-        Least rows in a task's part.
+    part_rows : int, optional
+        Least rows in a task's part; by default the source's own (`PART_ROWS` for Parquet,
+        as the local engine splits it), so the parts are the local engine's.
 
     Examples
     --------
@@ -117,7 +131,7 @@ class ClusterEngine:
     ...     outcome = fit_model(source, spec, rows=None, engine=engine)
     """
 
-    def __init__(self, address: str, *, part_rows: int = CLUSTER_PART_ROWS) -> None:
+    def __init__(self, address: str, *, part_rows: int | None = None) -> None:
         self.address = address.strip()
         self.part_rows = part_rows
         self._client: Any = None
@@ -173,33 +187,28 @@ class ClusterEngine:
         client = self.client()
         self._check_workers_see(client, parts)
         job = client.submit(pass_job_task, PassJob(new_part, fold, merge, marked), pure=False)
-        folded = [client.submit(fold_part_task, part, job, pure=False) for part in parts]
-        every, level = [job, *folded], list(folded)
-        while len(level) > 1:
-            pairs = [level[i : i + 2] for i in range(0, len(level), 2)]
-            level = [
-                client.submit(merge_task, job, *pair, pure=False) if len(pair) == 2 else pair[0]
-                for pair in pairs
-            ]
-            every += level
-        root = level[0]
+        pending = {
+            k: client.submit(fold_part_task, part, job, pure=False) for k, part in enumerate(parts)
+        }
+        root, _ = merge_tree(
+            list(pending.values()),
+            lambda left, right: client.submit(merge_task, job, left, right, pure=False),
+        )
         finished = threading.Event()
         root.add_done_callback(lambda _: finished.set())
         sizes = [getattr(part, "rows", 0) for part in parts]
+        rows_done = 0
         try:
-            pending = dict(enumerate(folded))
-            rows_done = 0
             while not finished.wait(POLL_S):
                 for k in [k for k, future in pending.items() if future.done()]:
                     rows_done += sizes[k]
-                    del pending[k]  # the merge above it holds it as long as it needs it
+                    # dropped here, the part's result lives on the cluster only until merged
+                    del pending[k]
                 tracker.advance(rows_done)
             result: tuple[S, RowCounts] = _result(root, self.address)
         except BaseException:
-            client.cancel(every, force=True)
+            client.cancel([root, job, *pending.values()], force=True)
             raise
-        finally:
-            del every, folded, level, pending, root, job  # released: the scheduler forgets them
         return result
 
     def _check_workers_see(
@@ -271,7 +280,12 @@ def _first_line(error: BaseException) -> str:
 
 
 def _connect(address: str) -> Any:
-    """Connect to the scheduler at `address`, turning every failure into one `ClusterError`."""
+    """Connect to the scheduler at `address`, turning every failure into one `ClusterError`.
+
+    The scheduler is first asked who it is, within the connect timeout (Dask's
+    ``distributed.comm.timeouts.connect``): a client alone would wait for ever on a port
+    that accepts connections and never answers.
+    """
     if not address:
         msg = (
             "`--engine dask` needs a scheduler: give `--scheduler ADDRESS` "
@@ -280,30 +294,39 @@ def _connect(address: str) -> Any:
         raise ClusterError(msg)
     try:
         import dask
+        from dask.utils import parse_timedelta
         from distributed import Client
     except ImportError:
         msg = f"`--engine dask` needs Dask distributed, which is not installed; {INSTALL_HINT}"
         raise ClusterError(msg) from None
     # Our messages say what went wrong; distributed's own log lines would repeat it.
     logging.getLogger("distributed").setLevel(logging.CRITICAL)
-    timeout = dask.config.get("distributed.comm.timeouts.connect")
-    # A client that failed to connect closes itself when collected, and its complaints
-    # then would reach stderr past our one line: they are dropped while it is collected.
-    hook, sys.unraisablehook = sys.unraisablehook, lambda _: None
+    seconds = parse_timedelta(dask.config.get("distributed.comm.timeouts.connect"), "s")
     try:
-        try:
-            return Client(address, set_as_default=False, timeout=timeout)  # type: ignore[no-untyped-call]
-        except (ValueError, TypeError) as error:
-            msg = (
-                f"`{address}` is not a scheduler address ({_first_line(error)}); "
-                "give one like `tcp://HOST:8786`"
-            )
-        except Exception as error:
-            msg = (
-                f"no Dask scheduler answered at `{address}` within {timeout} "
-                f"({_first_line(error)}); check the address and that the scheduler runs"
-            )
-        gc.collect()
+        identity = asyncio.run(_identify(address, seconds))
+    except (ValueError, TypeError) as error:
+        msg = (
+            f"`{address}` is not a scheduler address ({_first_line(error)}); "
+            "give one like `tcp://HOST:8786`"
+        )
+        raise ClusterError(msg) from None
+    except Exception as error:
+        why = _first_line(error) if str(error).strip() else "no answer"
+        msg = (
+            f"no Dask scheduler answered at `{address}` within {seconds:g} s ({why}); "
+            "check the address and that the scheduler runs"
+        )
+        raise ClusterError(msg) from None
+    kind = identity.get("type") if isinstance(identity, dict) else None
+    if kind != "Scheduler":
+        msg = f"`{address}` answered as a Dask {kind or 'server'}, not a scheduler; check the port"
         raise ClusterError(msg)
-    finally:
-        sys.unraisablehook = hook
+    return Client(address, set_as_default=False, timeout=seconds)  # type: ignore[no-untyped-call]
+
+
+async def _identify(address: str, seconds: float) -> Any:
+    """Ask the server at `address` who it is, giving up after `seconds` at each step."""
+    from distributed.core import rpc
+
+    async with rpc(address, timeout=seconds) as server:  # type: ignore[no-untyped-call]
+        return await asyncio.wait_for(server.identity(), seconds)

@@ -25,6 +25,7 @@ if TYPE_CHECKING:
     from triage.core.diagnostics import RowDiagnostics
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
+    from triage.engine.cluster import ClusterEngine
     from triage.engine.progress import ProgressCallback
 
 DIAGNOSTIC_COLUMNS: tuple[str, ...] = (
@@ -115,6 +116,7 @@ def export_worst_rows(
     force: bool = False,
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
+    engine: ClusterEngine | None = None,
 ) -> tuple[Path, int]:
     """Fit, rank rows by `criterion`, and write the `k` worst; return the path and row count."""
     report = run_report(
@@ -127,6 +129,7 @@ def export_worst_rows(
         by=by,
         on_progress=on_progress,
         cancel=cancel,
+        engine=engine,
     )
     positions = [entry.row for entry in report.diagnostics.worst[criterion]]
     return export_rows(source, report.outcome, positions, out, force=force), len(positions)
@@ -143,13 +146,23 @@ def export_all_rows(
     force: bool = False,
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
+    engine: ClusterEngine | None = None,
 ) -> tuple[Path, int]:
     """Fit (on a sample or every row), then stream every row's diagnostics to `out`.
 
-    Memory stays bounded: one batch of diagnostics is held at a time.
+    Memory stays bounded: one batch of diagnostics is held at a time. With a cluster
+    `engine`, the fit over every row runs on the cluster and only the fit comes back; the
+    rows are then read and written here, next to the output, so no row crosses the network.
     """
     outcome = fit_model(
-        source, spec, rows=rows, seed=seed, design=design, on_progress=on_progress, cancel=cancel
+        source,
+        spec,
+        rows=rows,
+        seed=seed,
+        design=design,
+        on_progress=on_progress,
+        cancel=cancel,
+        engine=engine,
     )
     n_rows = 0
     with StreamingExport(out, force=force, protected=(*source.files, source.path)) as sink:

@@ -8,6 +8,7 @@ from typing import Any
 
 from triage.cli.commands.report import add_diagnostics_options, segment_columns
 from triage.cli.options import (
+    add_engine_options,
     add_model_options,
     add_row_options,
     add_source_options,
@@ -29,6 +30,7 @@ def register(subparsers: Any) -> None:
     add_source_options(parser)
     add_model_options(parser)
     add_row_options(parser)
+    add_engine_options(parser)
     add_diagnostics_options(parser)
     what = parser.add_mutually_exclusive_group(required=True)
     what.add_argument(
@@ -51,7 +53,7 @@ def register(subparsers: Any) -> None:
 
 def run(args: argparse.Namespace) -> int:
     """Run `triage export`."""
-    from triage.cli.options import open_source_from_args, spec_from_args
+    from triage.cli.options import open_source_from_args, pass_engine, spec_from_args
     from triage.cli.progress import StderrProgress
     from triage.data.export import PERSONAL_DATA_NOTICE, check_output_path
     from triage.engine.export import export_all_rows, export_worst_rows
@@ -61,31 +63,34 @@ def run(args: argparse.Namespace) -> int:
     check_output_path(args.out, force=args.force, protected=(*source.files, source.path))
     progress = StderrProgress()
     try:
-        if args.all:
-            written, n_rows = export_all_rows(
-                source,
-                spec,
-                args.out,
-                rows=args.rows,
-                seed=args.seed,
-                design=args.sample,
-                force=args.force,
-                on_progress=progress,
-            )
-        else:
-            written, n_rows = export_worst_rows(
-                source,
-                spec,
-                args.out,
-                k=args.worst,
-                criterion=args.by_criterion,
-                rows=args.rows,
-                seed=args.seed,
-                design=args.sample,
-                by=segment_columns(args),
-                force=args.force,
-                on_progress=progress,
-            )
+        with pass_engine(args) as engine:
+            if args.all:
+                written, n_rows = export_all_rows(
+                    source,
+                    spec,
+                    args.out,
+                    rows=args.rows,
+                    seed=args.seed,
+                    design=args.sample,
+                    force=args.force,
+                    on_progress=progress,
+                    engine=engine,
+                )
+            else:
+                written, n_rows = export_worst_rows(
+                    source,
+                    spec,
+                    args.out,
+                    k=args.worst,
+                    criterion=args.by_criterion,
+                    rows=args.rows,
+                    seed=args.seed,
+                    design=args.sample,
+                    by=segment_columns(args),
+                    force=args.force,
+                    on_progress=progress,
+                    engine=engine,
+                )
     finally:
         progress.finish()
     print(f"wrote {n_rows:,} rows to {written}")
