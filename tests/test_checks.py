@@ -122,11 +122,38 @@ def test_checks_curvature_on_sample_data_names_distance():
         max_levels=50,
         drop_invalid=False,
     )
-    outcome = fit_model(source, spec, rows=20_000, seed=0, design="uniform")
+    outcome = fit_model(source, spec, rows=20_000, seed=0, sampling="uniform")
     as_is = curvature_check_outcome(outcome, folds=3)
     assert as_is.predictors[0].predictor == "distance_km"
+    # With the 40 rows recorded in seconds left in, they swamp the RMSE (the spline gains
+    # well under 1% of it) but not the median absolute held-out error: the robust score
+    # names the planted curve, and distance_km alone.
+    top = as_is.predictors[0]
+    assert top.relative_gain < as_is.threshold < top.robust_gain
+    assert as_is.flagged == ("distance_km",)
     # With the rows recorded in seconds left out (their positions are documented in the
     # README), the spline's gain clears the threshold for distance_km alone.
     gross = planted_positions(source.row_count() or 0).gross_errors.tolist()
     cleaned = curvature_check_outcome(outcome, folds=3, exclude_rows=gross)
     assert cleaned.flagged == ("distance_km",)
+
+
+def test_checks_kfold_errors_match_scikit_learn_cross_val_predict(rng):
+    """Oracle: scikit-learn's LinearRegression under the same KFold split, scored by numpy."""
+    from sklearn.linear_model import LinearRegression
+    from sklearn.model_selection import KFold, cross_val_predict
+
+    from triage.core.holdout import kfold_errors, kfold_rmse
+
+    n = 400
+    a = rng.uniform(0, 10, n)
+    y = 2.0 + 0.5 * a + rng.standard_t(3, n)
+    y[::50] += 200.0  # a few gross errors
+    x = np.column_stack([np.ones(n), a])
+    result = kfold_errors(x, y, has_intercept=True, folds=4, seed=3)
+    assert result is not None
+    split = KFold(4, shuffle=True, random_state=3)
+    predicted = cross_val_predict(LinearRegression(), a.reshape(-1, 1), y, cv=split)
+    assert result.median_abs_error == pytest.approx(np.median(np.abs(y - predicted)), rel=1e-10)
+    same_folds = kfold_rmse(x, y, has_intercept=True, folds=4, seed=3)
+    assert same_folds is not None and result.rmse == pytest.approx(same_folds.rmse, rel=1e-12)

@@ -8,6 +8,7 @@ Error cases use small frames written in the test: they check behaviour, not numb
 from __future__ import annotations
 
 import json
+import re
 from pathlib import Path
 
 import numpy as np
@@ -275,3 +276,57 @@ def test_cli_stops_quietly_when_its_reader_goes_away(diabetes: Path) -> None:
         code = child.wait()
     assert code == 141
     assert "Traceback" not in err and "BrokenPipe" not in err
+
+
+@pytest.mark.parametrize(
+    ("args", "unknown"),
+    [
+        (["export", "{small}", "-y", "y", "-x", "x", "--worst", "3", "--by", "label"], "--by"),
+        (["export", "{small}", "-y", "y", "-x", "x", "--worst", "3", "--ordered"], "--ordered"),
+        (["open", "{small}", "--top-k", "5"], "--top-k"),
+    ],
+)
+def test_cli_refuses_options_that_would_do_nothing(
+    args: list[str], unknown: str, small: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    argv = [a.format(small=small) for a in args]
+    if argv[0] == "export":
+        argv += ["--out", str(tmp_path / "w.csv")]
+    with pytest.raises(SystemExit) as stop:
+        main(argv)
+    assert stop.value.code == 2
+    assert f"unrecognized arguments: {unknown}" in capsys.readouterr().err
+    assert not (tmp_path / "w.csv").exists()
+
+
+def test_cli_open_takes_top_and_ordered_like_report(small: Path) -> None:
+    from triage.cli.commands.open import settings_from_args
+    from triage.cli.main import build_parser
+
+    args = build_parser().parse_args(["open", str(small), "--top", "7", "--ordered"])
+    settings = settings_from_args(args)
+    assert settings.top_k == 7 and settings.is_ordered
+
+
+def test_cli_progress_line_names_the_pass_and_counts_its_rows_once() -> None:
+    # Oracle: the line written out by hand from the numbers given.
+    import io
+
+    from triage.cli.progress import StderrProgress
+    from triage.results.progress import PassProgress
+
+    stream = io.StringIO()
+    progress = StderrProgress(delay_s=0.0, stream=stream)
+    progress(PassProgress(7_500_000, 20_000_000, 9.0, 2_500_000.0, 5.0, pass_number=2, n_passes=2))
+    line = stream.getvalue()
+    assert "pass 2 of 2: 7,500,000 of 20,000,000 rows" in line
+    assert "2,500,000 rows/s, about 5 s left" in line
+
+
+def test_cli_fit_holdout_prints_figures_not_a_table_for_one_model(
+    small: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    code, out, _ = run_cli(["fit", str(small), "-y", "y", "-x", "x", "--holdout", "0.25"], capsys)
+    assert code == 0
+    assert "models side by side" not in out and "◆" not in out
+    assert re.search(r"^held-out RMSE\s+\d", out, re.MULTILINE)

@@ -11,6 +11,7 @@ import numpy as np
 import polars as pl
 import pytest
 
+from triage._typing import ALL_ROWS
 from triage.core.compare import NO_DF_NOTE, best_marks, is_nested, nested_f_test
 from triage.core.holdout import HoldoutRule, random_holdout_mask
 from triage.core.lsq import QRAccumulator
@@ -157,7 +158,7 @@ def test_compare_heldout_in_streamed_pass_equals_numpy(tmp_path, rng, monkeypatc
     labels = ["x1, z0"]
     spec = _spec(source, labels[0], weights="w" if weighted else None)
     out = compare_models(
-        source, [spec], labels, rows=None, seed=4, holdout=HoldoutRule(fraction=0.25, seed=4)
+        source, [spec], labels, rows=ALL_ROWS, seed=4, holdout=HoldoutRule(fraction=0.25, seed=4)
     )
     held = random_holdout_mask(random_keys(np.arange(n, dtype=np.int64), 4 ^ HOLDOUT_SALT), 0.25)
     x = np.column_stack([np.ones(n), frame["x1"], frame["z0"]])

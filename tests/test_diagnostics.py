@@ -24,7 +24,6 @@ from triage._typing import CRITERIA
 from triage.core.binning import quantile_edges
 from triage.core.design import DesignBatch
 from triage.core.diagnostics import (
-    Diagnostics,
     DiagnosticsAccumulator,
     DiagnosticsConfig,
     default_config,
@@ -34,6 +33,7 @@ from triage.core.lsq import LinearFit, QRAccumulator
 from triage.core.moments import StreamMoments
 from triage.core.worst_rows import TopRows
 from triage.errors import SpecError
+from triage.results.diagnostics import Diagnostics
 
 NAMES = ("intercept", "a", "b", "a:b")
 RTOL = 1e-8

@@ -16,14 +16,16 @@ import numpy as np
 import polars as pl
 import pytest
 
+from triage._typing import ALL_ROWS
 from triage.core.spec import build_spec
 from triage.data import parquet as parquet_module
 from triage.data.source import open_source
 from triage.engine import passes
 from triage.engine import progress as progress_module
-from triage.engine.progress import PassProgress, ReadAhead
+from triage.engine.progress import ReadAhead
 from triage.engine.workers import fold_in_order
 from triage.errors import PassCancelled
+from triage.results.progress import PassProgress
 
 N_ROWS = 20_000
 BATCH = 1_000
@@ -46,7 +48,7 @@ def small_batches(monkeypatch: pytest.MonkeyPatch) -> None:
 
 
 @pytest.mark.parametrize("part_rows", [500_000, 2_500])
-def test_engine_progress_only_increases_over_both_passes(
+def test_engine_progress_counts_each_row_once_per_pass_and_names_the_pass(
     data_file: Path, monkeypatch: pytest.MonkeyPatch, part_rows: int
 ) -> None:
     # 500,000: one part, read ahead and dealt out in batches; 2,500: eight parts read at once.
@@ -54,10 +56,17 @@ def test_engine_progress_only_increases_over_both_passes(
     source = open_source(data_file)
     spec = build_spec(source.schema(), target="y", terms="a, b")
     seen: list[PassProgress] = []
-    report = passes.run_report(source, spec, rows=None, on_progress=seen.append)
-    done = [p.rows_done for p in seen]
-    assert done == sorted(done) and done[-1] == 2 * N_ROWS
-    assert all(p.rows_total == 2 * N_ROWS for p in seen)
+    report = passes.run_report(source, spec, rows=ALL_ROWS, on_progress=seen.append)
+    assert [p.pass_number for p in seen] == sorted(p.pass_number for p in seen)
+    assert {p.pass_number for p in seen} == {1, 2}
+    for number in (1, 2):
+        done = [p.rows_done for p in seen if p.pass_number == number]
+        assert done == sorted(done) and done[-1] == N_ROWS
+    assert all(p.rows_total == N_ROWS and p.n_passes == 2 for p in seen)
+    assert seen[-1].stage.startswith("pass 2 of 2")
+    # The time left of pass 1 includes pass 2: at pass 1's speed, at least its own rows.
+    first = [p for p in seen if p.pass_number == 1 and p.eta_s is not None and p.rows_per_s > 0]
+    assert all(p.eta_s >= N_ROWS / p.rows_per_s * 0.999 for p in first)  # type: ignore[operator]
     frame = pl.read_parquet(data_file)
     design = np.column_stack([np.ones(N_ROWS), frame["a"], frame["b"]])
     oracle = np.linalg.lstsq(design, frame["y"].to_numpy(), rcond=None)[0]  # numpy as oracle
@@ -84,7 +93,7 @@ def test_engine_cancel_stops_within_one_batch(data_file: Path, stop_after: int) 
             cancel.set()
 
     with pytest.raises(PassCancelled):
-        passes.fit_model(source, spec, rows=None, on_progress=on_progress, cancel=cancel)
+        passes.fit_model(source, spec, rows=ALL_ROWS, on_progress=on_progress, cancel=cancel)
     assert len(reports) == stop_after  # no batch was read after the one that set it
     assert reports[-1] == stop_after * BATCH
 
@@ -98,7 +107,7 @@ def test_engine_cancel_stops_a_pass_read_in_parts(
     cancel = threading.Event()
     cancel.set()
     with pytest.raises(PassCancelled):
-        passes.fit_model(source, spec, rows=None, cancel=cancel)
+        passes.fit_model(source, spec, rows=ALL_ROWS, cancel=cancel)
 
 
 def test_engine_fold_in_order_merges_in_unit_order_whoever_finishes_first() -> None:
@@ -216,7 +225,7 @@ def test_engine_report_is_the_same_for_1_2_and_8_workers(
     try:
         for n_workers in (1, 2, 8):
             set_pass_workers(n_workers)
-            report = passes.run_report(source, spec, rows=None, by=("region",), top_k=10)
+            report = passes.run_report(source, spec, rows=ALL_ROWS, by=("region",), top_k=10)
             reports[n_workers] = report
     finally:
         set_pass_workers(None)
@@ -260,7 +269,7 @@ def test_engine_full_pass_drops_missing_values_in_some_batches(tmp_path: Path) -
     pl.DataFrame({"y": y, "a": a, "b": x[:, 1]}).write_parquet(path, row_group_size=2_500)
     source = open_source(path)
     outcome = passes.fit_model(
-        source, build_spec(source.schema(), target="y", terms="a, b"), rows=None
+        source, build_spec(source.schema(), target="y", terms="a, b"), rows=ALL_ROWS
     )
     usable = np.ones(N_ROWS, dtype=bool)
     usable[[1_500, 7_001, 12_345]] = False

@@ -15,6 +15,7 @@ import pytest
 import statsmodels.api as sm
 
 from tests import tui_support
+from triage._typing import ALL_ROWS
 from triage.core.spec import build_spec, parse_terms
 from triage.data.source import open_source
 from triage.engine.export import rows_with_diagnostics
@@ -44,7 +45,7 @@ def test_rows_outside_a_filter_and_marks_are_scored_as_new_observations(
     frame = pl.read_parquet(demo_file).with_row_index("__row").cast({"__row": pl.Int64})
     north = frame.filter(pl.col("depot") == "north").drop_nulls(["minutes", *PREDICTORS])
     marked = north["__row"].head(2).to_list()
-    outcome = fit_model(source, spec, rows=None, exclude_rows=marked)
+    outcome = fit_model(source, spec, rows=ALL_ROWS, exclude_rows=marked)
     fit_rows = north.filter(~pl.col("__row").is_in(marked))
     oracle, oracle_rows = _oracle(fit_rows)
     np.testing.assert_allclose(outcome.fit.coef, oracle.params, rtol=1e-9)

@@ -56,6 +56,18 @@ def test_keymap_merge_order_user_then_command_line(config_home: Path, tmp_path: 
     assert with_keyset["pane-spread"] == "f4"  # the alternative wins over the default
 
 
+def test_keymap_file_with_pane_ids_of_earlier_versions_still_works(
+    config_home: Path, tmp_path: Path
+) -> None:
+    # Panes are named by their titles (Inputs, Groups); a keymap written for the earlier
+    # ids `pane-predictors` and `pane-segments` moves the same panes.
+    older = tmp_path / "older.toml"
+    older.write_text('pane-predictors = "I"\npane-segments = "G"\n', encoding="utf-8")
+    merged = load_keymap(all_binding_ids(), extra_file=older)
+    assert (merged["pane-inputs"], merged["pane-groups"]) == ("I", "G")
+    assert "pane-predictors" not in merged
+
+
 def test_keymap_unknown_id_names_file_and_closest(config_home: Path, tmp_path: Path) -> None:
     bad = tmp_path / "typo.toml"
     bad.write_text('qiut = "ctrl+x"\n', encoding="utf-8")

@@ -12,6 +12,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from triage._typing import ALL_ROWS
 from triage.core.spec import build_spec
 from triage.data.scenario import planted_positions, write_scenario
 from triage.data.source import open_source
@@ -43,7 +44,7 @@ def straight_line_report(demo_path: Path):  # type: ignore[no-untyped-def]
     )
     planted = planted_positions(source.row_count() or 0, seed=SEED)
     top_k = len(planted.gross_errors) + 20
-    return run_report(source, spec, rows=None, top_k=top_k, by=("depot",)), planted
+    return run_report(source, spec, rows=ALL_ROWS, top_k=top_k, by=("depot",)), planted
 
 
 def test_planted_gross_errors_are_among_the_worst_rows(straight_line_report) -> None:  # type: ignore[no-untyped-def]

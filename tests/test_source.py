@@ -374,15 +374,15 @@ def test_source_uniform_sample(kind: str, parquet_file: Path, tmp_path: Path) ->
     else:
         path = parquet_file
     source = open_source(path)
-    sample = source.read_sample(["x", "k"], n_rows=300, seed=11, design="uniform")
+    sample = source.read_sample(["x", "k"], n_rows=300, seed=11, sampling="uniform")
     assert sample.frame.height == 300
     _assert_same_sample(
-        sample, source.read_sample(["x", "k"], n_rows=300, seed=11, design="uniform")
+        sample, source.read_sample(["x", "k"], n_rows=300, seed=11, sampling="uniform")
     )
     assert not sample.is_whole and sample.warning is None
     assert "uniformly" in sample.description
     _assert_sample_rows_match(source, sample.frame)
-    other = source.read_sample(["x", "k"], n_rows=300, seed=12, design="uniform")
+    other = source.read_sample(["x", "k"], n_rows=300, seed=12, sampling="uniform")
     assert not other.frame[ROW_INDEX].equals(sample.frame[ROW_INDEX])
     # same rows whatever the batching: the choice depends on positions and seed only
     assert sample.frame[ROW_INDEX].to_list() == sorted(sample.frame[ROW_INDEX].to_list())
@@ -393,7 +393,7 @@ def test_source_uniform_sample_is_uniform(tmp_path: Path) -> None:
     pq.write_table(pl.DataFrame({"k": np.arange(20_000)}).to_arrow(), path, row_group_size=1_000)
     positions = (
         open_source(path)
-        .read_sample(["k"], n_rows=2_000, seed=0, design="uniform")
+        .read_sample(["k"], n_rows=2_000, seed=0, sampling="uniform")
         .frame[ROW_INDEX]
     )
     # scipy's one-sample Kolmogorov-Smirnov test against U(0, 20000): a uniform sample passes;
@@ -405,9 +405,9 @@ def test_source_uniform_sample_is_uniform(tmp_path: Path) -> None:
 def test_source_uniform_sample_with_filter_draws_from_passing_rows(parquet_file: Path) -> None:
     source = open_source(parquet_file)
     where = pl.col("depot") == "north"
-    sample = source.read_sample(["depot"], n_rows=100, seed=0, design="uniform", where=where)
+    sample = source.read_sample(["depot"], n_rows=100, seed=0, sampling="uniform", where=where)
     assert sample.frame.height == 100
-    assert sample.rows_read == 1_000  # the uniform design reads every row
+    assert sample.rows_read == 1_000  # uniform sampling reads every row
     assert (sample.frame["depot"] == "north").all()
     assert "pass the filter" in sample.description
 
@@ -426,8 +426,8 @@ def test_source_filter_on_a_column_not_requested(parquet_file: Path) -> None:
 
 def test_source_small_source_is_read_whole(parquet_file: Path, tmp_path: Path) -> None:
     source = open_source(parquet_file)
-    for design in ("groups", "uniform"):
-        sample = source.read_sample(["k"], n_rows=5_000, seed=0, design=design)  # type: ignore[arg-type]
+    for sampling in ("groups", "uniform"):
+        sample = source.read_sample(["k"], n_rows=5_000, seed=0, sampling=sampling)  # type: ignore[arg-type]
         assert sample.is_whole and sample.warning is None
         assert sample.frame.height == 1_000
         assert sample.description.startswith("all 1,000 rows")

@@ -31,10 +31,10 @@ from triage.tui.widgets.panes import (
     FitPane,
     FitsPane,
     FlagsPane,
+    GroupsPane,
+    InputsPane,
     Pane,
-    PredictorsPane,
     RowPane,
-    SegmentsPane,
     SpreadPane,
     TrendPane,
     WorstPane,
@@ -270,6 +270,7 @@ async def test_tui_full_pass_reports_progress_stays_responsive_and_finishes(
         shown = str(pass_line.render())
         assert f"{pass_line.progress.rows_done:,}/" in shown
         assert "rows/s" in shown and "s left" in shown and "SAMPLE" in shown
+        assert "pass 1 of 2" in shown  # rows counted once per pass, the pass named
         # the app answers keys while the pass runs
         await press_id(pilot, "pane-spread")
         assert screen.front == "spread"
@@ -342,13 +343,13 @@ async def test_tui_each_pane_comes_to_front_and_shows_the_fit(
             assert screen.front == info.pane_id
             shown = [p.info.pane_id for p in app.screen.query(Pane) if p.has_class("-shown")]
             assert shown == [info.pane_id]  # 80x24: one pane at a time
-        for pane_type in (SpreadPane, TrendPane, PredictorsPane):
+        for pane_type in (SpreadPane, TrendPane, InputsPane):
             pane = app.screen.query_one(pane_type)
             assert pane.shown is fit
             assert pane.draw(76, 16)
         # predictors cycle by key through the model's numeric predictors
         predictors = fit.report.outcome.builder.numeric_predictors
-        pane = app.screen.query_one(PredictorsPane)
+        pane = app.screen.query_one(InputsPane)
         seen = [pane.predictor]
         for _ in range(len(predictors) - 1):
             await press_id(pilot, "next-predictor")
@@ -366,7 +367,7 @@ async def test_tui_each_pane_comes_to_front_and_shows_the_fit(
             assert flag.code in flags_text
         assert "Breusch" in flags_text and "RESET" in flags_text
         # segments follow the column key
-        segments = app.screen.query_one(SegmentsPane)
+        segments = app.screen.query_one(GroupsPane)
         first = segments.column
         assert first in fit.report.diagnostics.segments
         await press_id(pilot, "next-segment-column")
@@ -654,7 +655,7 @@ async def test_tui_stacks_at_80x24_and_tiles_at_120x40(config_home: Path, demo_f
         await pilot.pause()
         assert shown() == {"columns", "fit", "flags", "fits"}
         await press_id(pilot, "pane-trend")
-        assert shown() == {"spread", "trend", "predictors", "segments"}
+        assert shown() == {"spread", "trend", "inputs", "groups"}
         for pane in app.screen.query(Pane):
             if pane.has_class("-shown"):
                 assert pane.region.width >= 55 and pane.region.height >= 16

@@ -31,7 +31,7 @@ async def _capture(pilot: Any, name: str) -> None:
 
 
 @pytest.mark.parametrize(
-    "pane", ["columns", "fit", "spread", "trend", "predictors", "flags", "segments", "fits"]
+    "pane", ["columns", "fit", "spread", "trend", "inputs", "flags", "groups", "fits"]
 )
 async def test_tui_snapshot_sample_panes_80x24(
     config_home: Path, demo_file: Path, pane: str

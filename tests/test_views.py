@@ -19,9 +19,11 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from tests.json_contract import COEFFICIENT_KEYS, FIT_SECTIONS
+from triage._typing import ALL_ROWS
 from triage.core.spec import build_spec
 from triage.data.source import open_source
-from triage.engine.passes import FitOutcome, ReportOutcome, fit_model, run_report
+from triage.engine.passes import fit_model, run_report
+from triage.results.fit import FitOutcome, ReportOutcome
 from triage.views.charts import render_binned, render_histogram
 from triage.views.format import NA, format_count, format_number, format_p, truncate
 from triage.views.json import fit_to_json, json_safe, report_to_json
@@ -144,7 +146,7 @@ def trips_path(tmp_path_factory: pytest.TempPathFactory, trips: pl.DataFrame) ->
 def report(trips_path: Path) -> ReportOutcome:
     source = open_source(trips_path)
     spec = build_spec(source.schema(), target="y", terms="x, z, g, twice_x")
-    return run_report(source, spec, rows=None, top_k=5, by=("g",))
+    return run_report(source, spec, rows=ALL_ROWS, top_k=5, by=("g",))
 
 
 @pytest.fixture(scope="module")
@@ -156,7 +158,7 @@ def sampled_fit(trips_path: Path) -> FitOutcome:
 
 def _statsmodels_fit(trips: pl.DataFrame, names: list[str]) -> Any:
     """Oracle: statsmodels OLS on the same complete rows, with the design columns `names`
-    (``intercept``, numeric columns, and ``g[level]`` dummies) built here with numpy."""
+    (``intercept``, numeric columns, and ``g=level`` dummies) built here with numpy."""
     import statsmodels.api as sm
 
     frame = trips.drop_nulls(["x"])
@@ -164,8 +166,8 @@ def _statsmodels_fit(trips: pl.DataFrame, names: list[str]) -> Any:
     for name in names:
         if name == "intercept":
             columns.append(np.ones(frame.height))
-        elif name.startswith("g["):
-            columns.append((frame["g"] == name[2:-1]).to_numpy().astype(float))
+        elif name.startswith("g="):
+            columns.append((frame["g"] == name[2:]).to_numpy().astype(float))
         else:
             columns.append(frame[name].to_numpy())
     return sm.OLS(frame["y"].to_numpy(), np.column_stack(columns)).fit()
@@ -378,7 +380,7 @@ def test_views_binned_chart_shows_missed_curve(tmp_path: Path) -> None:
     pl.DataFrame({"y": y, "x": x}).write_parquet(path)
     source = open_source(path)
     spec = build_spec(source.schema(), target="y", terms="x")
-    bins = run_report(source, spec, rows=None).diagnostics.binned["x"]
+    bins = run_report(source, spec, rows=ALL_ROWS).diagnostics.binned["x"]
     resid = y - np.polyval(np.polyfit(x, y, 1), x)
     assert resid[x < -2.5].mean() > 0 > resid[np.abs(x) < 0.5].mean()
     text = render_binned(bins, 120, 30, title="by x", x_label="x", color=False)
@@ -491,7 +493,7 @@ def test_views_full_report_fits_width_and_uses_own_wording(
     assert "── fit quality" in text
     assert "R² alone does not judge a fit" in text
     assert "twice_x" in render_aliased(report.outcome.fit)
-    assert "Breusch–Pagan" in text and "Durbin–Watson" in text
+    assert "Breusch–Pagan" in text and "Durbin–Watson" not in text  # rows not ordered
     for flag in report.diagnostics.flags:
         assert f"[{flag.code}]" in text
 
@@ -524,8 +526,45 @@ def test_views_no_intercept_says_uncentered(sampled_fit: FitOutcome) -> None:
 
 
 def test_views_tests_table_shows_missing_p_as_mark(report: ReportOutcome) -> None:
-    text = render_tests(report.diagnostics.tests)
-    dw = next(line for line in text.split("\n") if line.startswith("Durbin–Watson"))
+    text = render_tests(report.diagnostics, is_ordered=True)
+    dw = next(line for line in text.split("\n") if line.strip().startswith("Durbin–Watson"))
     assert dw.count(NA) == 2  # no df, no p
     bp = report.diagnostics.tests["breusch_pagan"]
     assert format_number(bp.statistic) in text
+
+
+def test_views_durbin_watson_only_when_rows_are_ordered(report: ReportOutcome) -> None:
+    assert "Durbin–Watson" not in render_tests(report.diagnostics)
+    assert "Durbin–Watson" in render_tests(report.diagnostics, is_ordered=True)
+
+
+def test_views_tests_are_grouped_by_question_with_excess_kurtosis(report: ReportOutcome) -> None:
+    lines = render_tests(report.diagnostics, is_ordered=True).split("\n")
+    questions = [line for line in lines[3:] if not line.startswith(" ")]
+    assert questions == [
+        "does the spread change with the inputs?",
+        "is there curvature the terms miss?",
+        "are the tails like a normal's?",
+        "are neighbouring rows related? (2: not at all)",
+    ]
+    excess = next(line for line in lines if "excess kurtosis" in line)
+    # excess kurtosis is the moment kurtosis less 3 (0 for a normal distribution)
+    assert format_number(report.diagnostics.resid_kurtosis - 3.0, digits=3) in excess
+
+
+def test_views_fit_quality_groups_and_counts_parameters(report: ReportOutcome) -> None:
+    fit = report.outcome.fit
+    text = render_fit_quality(fit, target="y", width=80)
+    order = [
+        "how much of the target the model explains",
+        "how big the errors are, in the units of y",
+        "whether the terms earn their place",
+        "whether the numbers can be trusted",
+    ]
+    assert [line for line in text.split("\n")[1:] if line in order] == order
+    # statsmodels' OLS counts the coefficients (intercept included) in AIC and BIC, and so
+    # do we; the help and this line say so.
+    assert f"({fit.df_model + 1} coefficients counted)" in text
+    assert "condition no., scaled design" in text
+    assert " df " not in text.split("whether the terms")[0]
+    assert max(len(line) for line in text.split("\n")) <= 80

@@ -2,9 +2,38 @@
 
 from __future__ import annotations
 
+_ESCAPES = {"\n": "\\n", "\r": "\\r", "\t": "\\t"}
+
+
+def one_line(text: str) -> str:
+    r"""Return `text` with newlines and other control characters escaped, so it shows on one line.
+
+    Text a user typed (a term, a filter, a path) is echoed in messages; a newline or an
+    escape sequence in it must not break the one-line message or drive the terminal.
+
+    Examples
+    --------
+    >>> one_line("log(x)\n+ y\x1b[2J")
+    'log(x)\\n+ y\\x1b[2J'
+    """
+    if text.isprintable():
+        return text
+    return "".join(
+        _ESCAPES.get(c, f"\\x{ord(c):02x}" if ord(c) < 0x100 else f"\\u{ord(c):04x}")
+        if not c.isprintable()
+        else c
+        for c in text
+    )
+
 
 class TriageError(Exception):
-    """Root of every error triage reports to the user without a traceback."""
+    """Root of every error triage reports to the user without a traceback.
+
+    Its text is always one line: control characters in echoed user text are escaped.
+    """
+
+    def __str__(self) -> str:
+        return one_line(super().__str__())
 
 
 class SpecError(TriageError, ValueError):
@@ -17,6 +46,10 @@ class DataError(TriageError, ValueError):
 
 class SourceError(TriageError, OSError):
     """A data source cannot be opened or read."""
+
+
+class SourceChanged(SourceError):
+    """A file of the source changed (size, time, identity or row count) while it was read."""
 
 
 class ExportError(TriageError, OSError):

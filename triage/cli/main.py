@@ -6,8 +6,9 @@ import argparse
 import importlib
 import os
 import sys
+import warnings
 from collections.abc import Sequence
-from typing import NoReturn
+from typing import Any, NoReturn
 
 # One BLAS thread: the passes decode data in a read-ahead thread that keeps about 1.9 of
 # 2 cores busy, and a second BLAS thread competing with it was always slower (DESIGN.md,
@@ -15,18 +16,35 @@ from typing import NoReturn
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 from triage import __version__
-from triage.errors import TriageError
+from triage.errors import TriageError, one_line
 
 COMMANDS: tuple[str, ...] = ("fit", "report", "export", "compare", "sample", "open")
 """Subcommands, each a module in `triage.cli.commands` with `register(subparsers)`."""
 
 
 class _Parser(argparse.ArgumentParser):
-    """An argument parser that reports a usage error in one line (exit 2), not a usage block."""
+    """An argument parser that reports a usage error in one line (exit 2), not a usage block.
+
+    Options must be spelled out: with abbreviations, `export --by` would be read as
+    `--by-criterion`, an option of another meaning.
+    """
+
+    def __init__(self, *args: Any, **kwargs: Any) -> None:
+        kwargs.setdefault("allow_abbrev", False)
+        super().__init__(*args, **kwargs)
 
     def error(self, message: str) -> NoReturn:
         """Print `message` with a pointer to `--help` and exit with code 2."""
-        self.exit(2, f"{self.prog}: {message}; see `{self.prog} --help`\n")
+        self.exit(2, f"{self.prog}: {one_line(message)}; see `{self.prog} --help`\n")
+
+
+def numeric_warning_message(warning: Warning) -> str:
+    """One line for a floating-point warning that no check of ours turned into a clear error."""
+    return (
+        "a computation went outside the range of floating-point numbers "
+        f"({one_line(str(warning))}); look for values near the float limit (about 1e308) "
+        "in the columns used and rescale them"
+    )
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -58,10 +76,26 @@ def main(argv: Sequence[str] | None = None) -> int:
         from triage.engine.workers import set_pass_workers  # standard library only
 
         set_pass_workers(args.workers)
+    from triage.cli.signals import StopRequested, received, stop_on_signals
+
     try:
-        return int(args.handler(args))
+        with stop_on_signals(), warnings.catch_warnings():
+            # numpy reports overflow and invalid values as RuntimeWarnings; none may reach
+            # the terminal as a warning: each becomes an error, reported below in one line.
+            warnings.simplefilter("error", RuntimeWarning)
+            return int(args.handler(args))
+    except StopRequested as stop:
+        print(f"triage: {stop.message}", file=sys.stderr)
+        return stop.exit_code
     except TriageError as error:
+        signalled = received()  # a pass that saw the signal's cancel event first
+        if signalled is not None:
+            print(f"triage: {signalled.message}", file=sys.stderr)
+            return signalled.exit_code
         print(f"triage: {error}", file=sys.stderr)
+        return 2
+    except RuntimeWarning as warning:
+        print(f"triage: {numeric_warning_message(warning)}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print("triage: stopped", file=sys.stderr)

@@ -9,6 +9,8 @@ import os
 from collections.abc import Callable, Iterator
 from typing import TYPE_CHECKING
 
+from triage._typing import ALL_ROWS, RowsToRead
+
 if TYPE_CHECKING:
     from triage.core.holdout import HoldoutRule
     from triage.core.spec import ModelSpec
@@ -43,10 +45,10 @@ def integer_option(name: str, *, minimum: int) -> Callable[[str], int]:
     return parse
 
 
-def parse_rows(text: str) -> int | None:
-    """Parse `--rows`: a positive integer, or `all` (returned as None)."""
+def parse_rows(text: str) -> RowsToRead:
+    """Parse `--rows`: a positive integer, or `all` (returned as `ALL_ROWS`)."""
     if text.strip().lower() == "all":
-        return None
+        return ALL_ROWS
     try:
         return integer_option("--rows", minimum=1)(text)
     except argparse.ArgumentTypeError:
@@ -117,21 +119,29 @@ def add_model_options(parser: argparse.ArgumentParser, *, terms_repeatable: bool
         help="cap on levels of a category (default 50)",
     )
     group.add_argument(
+        "--max-memory",
+        type=parse_memory,
+        default=None,
+        metavar="SIZE",
+        help="most memory a model's design may take, e.g. 4G (default: half the machine's)",
+    )
+    group.add_argument(
         "--drop-invalid",
         action="store_true",
         help="leave out rows outside a transform's domain (e.g. log of 0) instead of stopping",
     )
 
 
-def add_row_options(parser: argparse.ArgumentParser) -> None:
-    """Add the options that choose which rows a pass reads."""
+def add_row_options(parser: argparse.ArgumentParser, *, every_row: bool = False) -> None:
+    """Add the options that choose which rows a pass reads; `every_row` makes `all` the default."""
     group = parser.add_argument_group("rows")
+    default = "all" if every_row else f"{DEFAULT_SAMPLE_ROWS:,}"
     group.add_argument(
         "--rows",
         type=parse_rows,
-        default=DEFAULT_SAMPLE_ROWS,
+        default=ALL_ROWS if every_row else DEFAULT_SAMPLE_ROWS,
         metavar="N|all",
-        help=f"sample about N rows (default {DEFAULT_SAMPLE_ROWS:,}) or stream `all` rows",
+        help=f"sample about N rows or stream `all` rows (default {default})",
     )
     group.add_argument(
         "--seed",
@@ -197,7 +207,10 @@ def spec_from_args(
     args: argparse.Namespace, source: Source, *, terms: str | None = None
 ) -> ModelSpec:
     """Build and validate the model spec from parsed options against the source's schema."""
+    import functools
+
     from triage.core.spec import build_spec
+    from triage.data.text_columns import text_column_facts
 
     return build_spec(
         source.schema(),
@@ -209,8 +222,27 @@ def spec_from_args(
         categorical=categorical_columns(args),
         reference=parse_reference(args.reference),
         max_levels=args.max_levels,
+        max_memory=args.max_memory,
         drop_invalid=args.drop_invalid,
+        check_text=functools.partial(text_column_facts, source),
     )
+
+
+_SIZE_UNITS = {"": 1, "K": 1 << 10, "M": 1 << 20, "G": 1 << 30, "T": 1 << 40}
+
+
+def parse_memory(text: str) -> int:
+    """Parse `--max-memory`: bytes, or a number with K, M, G or T (powers of 1,024)."""
+    cleaned = text.strip().upper().removesuffix("IB").removesuffix("B")
+    unit = cleaned[-1:] if cleaned[-1:] in _SIZE_UNITS else ""
+    try:
+        value = float(cleaned.removesuffix(unit)) * _SIZE_UNITS[unit]
+    except ValueError:
+        value = 0.0
+    if not value >= 1:
+        msg = f"`--max-memory` must be a size such as 4G, 500M or 2000000000, got `{text}`"
+        raise argparse.ArgumentTypeError(msg)
+    return int(value)
 
 
 def _fraction(text: str) -> float:

@@ -7,7 +7,7 @@ import time
 from typing import TYPE_CHECKING, TextIO
 
 if TYPE_CHECKING:
-    from triage.engine.progress import PassProgress
+    from triage.results.progress import PassProgress
 
 
 class StderrProgress:
@@ -24,8 +24,10 @@ class StderrProgress:
         if time.perf_counter() - self._start < self.delay_s:
             return
         done = f"{progress.rows_done:,} rows"
-        if progress.fraction is not None:
-            done = f"{100 * progress.fraction:5.1f}%  {done}"
+        if progress.rows_total:
+            done = f"{progress.rows_done:,} of {progress.rows_total:,} rows"
+        if progress.stage:
+            done = f"{progress.stage}: {done}"
         eta = f", about {progress.eta_s:,.0f} s left" if progress.eta_s is not None else ""
         line = f"triage: {done}  {progress.rows_per_s:,.0f} rows/s{eta}"
         self.stream.write("\r" + line.ljust(78)[:120])

@@ -6,7 +6,8 @@
   to look at the worst rows, not a verdict that the ordinary fit is wrong.
 - **Curvature check.** For each numeric predictor, the plain linear term is replaced by a
   cubic B-spline basis of the predictor (scikit-learn's `SplineTransformer`) and the
-  K-fold RMSE is compared with the model's own. A clear gain suggests the predictor's
+  held-out errors of K folds are compared with the model's own, by RMSE and by median
+  absolute error (robust to a few gross errors). A clear gain suggests the predictor's
   effect is curved and a transform may help.
 """
 
@@ -15,14 +16,15 @@ from __future__ import annotations
 import math
 import warnings
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
 from typing import TYPE_CHECKING, Final
 
 import numpy as np
 
-from triage.core.holdout import kfold_rmse
+from triage.core.holdout import kfold_errors
 from triage.core.lsq import fit_arrays
 from triage.errors import DataError
+from triage.results.checks import CoefficientShift, CurvatureCheck, PredictorCurvature, RobustCheck
+from triage.results.holdout import KFoldErrors
 
 if TYPE_CHECKING:
     from numpy.typing import ArrayLike, NDArray
@@ -30,10 +32,6 @@ if TYPE_CHECKING:
 __all__ = [
     "CURVATURE_GAIN_THRESHOLD",
     "ROBUST_SHIFT_THRESHOLD",
-    "CoefficientShift",
-    "CurvatureCheck",
-    "PredictorCurvature",
-    "RobustCheck",
     "curvature_check",
     "huber_refit",
 ]
@@ -58,51 +56,6 @@ chance on a large sample.
 
 SPLINE_KNOTS: Final = 5
 """Knots of the cubic spline basis (at quantiles of the predictor): 6 basis columns."""
-
-
-@dataclass(frozen=True)
-class CoefficientShift:
-    """One coefficient under the ordinary and the robust fit."""
-
-    name: str
-    """Design column name."""
-    ordinary: float
-    """Least-squares estimate on the sample."""
-    robust: float
-    """Huber estimate on the same rows."""
-    std_error: float
-    """Ordinary standard error."""
-    shift_se: float | None
-    """``(robust - ordinary) / std_error``; None when the standard error is not defined."""
-    is_flagged: bool
-    """Whether ``|shift_se|`` reaches the threshold."""
-
-
-@dataclass(frozen=True)
-class RobustCheck:
-    """The Huber refit beside the ordinary fit of the same sample rows."""
-
-    n: int
-    """Rows refitted."""
-    epsilon: float
-    """Huber's tuning constant used."""
-    scale: float
-    """Huber's estimate of the residual scale."""
-    n_downweighted: int
-    """Rows whose scaled residual exceeds `epsilon` (scikit-learn's ``outliers_``)."""
-    coefficients: tuple[CoefficientShift, ...]
-    """One entry per estimable design column, in design order."""
-    threshold: float
-    """Shift, in standard errors, at which a coefficient is flagged."""
-    converged: bool
-    """False when the optimizer stopped at its iteration cap (the figures are then rough)."""
-    notes: tuple[str, ...]
-    """Plain-language remarks."""
-
-    @property
-    def flagged(self) -> tuple[str, ...]:
-        """Names of the flagged coefficients."""
-        return tuple(c.name for c in self.coefficients if c.is_flagged)
 
 
 def huber_refit(
@@ -217,45 +170,6 @@ def huber_refit(
     )
 
 
-@dataclass(frozen=True)
-class PredictorCurvature:
-    """The curvature check of one predictor."""
-
-    predictor: str
-    """Source column."""
-    spline_rmse: float
-    """K-fold RMSE with the spline basis in place of the plain term."""
-    gain: float
-    """Model's K-fold RMSE minus `spline_rmse` (positive: the spline predicts better)."""
-    relative_gain: float
-    """`gain` as a share of the model's K-fold RMSE."""
-    relative_gain_given_top: float | None
-    """Relative gain of this spline added to the top predictor's spline; None for the top."""
-    is_flagged: bool
-    """Whether the relative gain reaches the threshold (given the top spline, for the others)."""
-
-
-@dataclass(frozen=True)
-class CurvatureCheck:
-    """Curvature check of every numeric predictor of a model, on the sample."""
-
-    n: int
-    """Rows used."""
-    folds: int
-    """Folds of the cross-validation."""
-    base_rmse: float
-    """K-fold RMSE of the model as written."""
-    predictors: tuple[PredictorCurvature, ...]
-    """One entry per predictor, largest gain first."""
-    threshold: float
-    """Relative gain at which a predictor is flagged."""
-
-    @property
-    def flagged(self) -> tuple[str, ...]:
-        """Predictors whose effect may be curved, largest gain first."""
-        return tuple(p.predictor for p in self.predictors if p.is_flagged)
-
-
 def spline_basis(values: ArrayLike, *, n_knots: int = SPLINE_KNOTS) -> NDArray[np.float64]:
     """Return a cubic B-spline basis of one predictor, without the constant.
 
@@ -294,12 +208,17 @@ def curvature_check(
     seed: int = 0,
     threshold: float = CURVATURE_GAIN_THRESHOLD,
 ) -> CurvatureCheck:
-    """Compare the model's K-fold RMSE with refits that give each predictor a spline.
+    """Compare the model's held-out errors with refits that give each predictor a spline.
+
+    Every refit is scored on the same K held-out folds twice: by RMSE, and by the median
+    absolute error, which a few gross errors (a duration typed in seconds, say) barely
+    move while they can swamp the RMSE and hide a curve. Predictors are ranked by the
+    median absolute error, and flagged when either score drops by the threshold.
 
     Correlated predictors can each pick up part of one predictor's curve, so the check
     runs in two steps: every predictor's spline alone, then each other predictor's spline
     added to the spline of the one with the largest gain. The top predictor is flagged on
-    its own gain, the others on their gain given the top spline.
+    its own gains, the others on their gains given the top spline.
 
     Parameters
     ----------
@@ -334,36 +253,54 @@ def curvature_check(
     """
     xa = np.asarray(x, dtype=np.float64)
 
-    def rmse_with(splines: Sequence[str]) -> float:
+    def errors_with(splines: Sequence[str]) -> KFoldErrors:
         drop = [j for name in splines for j in linear_columns.get(name, ())]
         bases = [spline_basis(predictors[name]) for name in splines]
         design = np.hstack([np.delete(xa, drop, axis=1), *bases])
-        result = kfold_rmse(design, y, weights, has_intercept=has_intercept, folds=folds, seed=seed)
+        result = kfold_errors(
+            design, y, weights, has_intercept=has_intercept, folds=folds, seed=seed
+        )
         if result is None:
             msg = (
                 f"the curvature check needs at least {folds} rows for {folds} folds, "
                 f"got {xa.shape[0]}; use more rows or fewer `--folds`"
             )
             raise DataError(msg)
-        return result.rmse
+        return result
 
-    base = rmse_with(())
+    def drop(before: float, after: float) -> float:
+        return (before - after) / before if before > 0 else 0.0
+
+    base = errors_with(())
     # A cubic piece needs at least 4 distinct values.
     usable = [n for n, v in predictors.items() if np.unique(np.asarray(v)).size >= 4]
-    alone = {name: rmse_with((name,)) for name in usable}
-    ranked = sorted(usable, key=lambda name: alone[name])
+    alone = {name: errors_with((name,)) for name in usable}
+    ranked = sorted(usable, key=lambda name: (alone[name].median_abs_error, alone[name].rmse))
     results = []
     for rank, name in enumerate(ranked):
-        relative = (base - alone[name]) / base if base > 0 else 0.0
-        given_top = None
+        own = alone[name]
+        given_top = robust_given_top = None
         if rank > 0:
-            top_rmse = alone[ranked[0]]
-            both = rmse_with((ranked[0], name))
-            given_top = (top_rmse - both) / top_rmse if top_rmse > 0 else 0.0
-        decisive = relative if given_top is None else given_top
+            top = alone[ranked[0]]
+            both = errors_with((ranked[0], name))
+            given_top = drop(top.rmse, both.rmse)
+            robust_given_top = drop(top.median_abs_error, both.median_abs_error)
+        relative = drop(base.rmse, own.rmse)
+        robust = drop(base.median_abs_error, own.median_abs_error)
+        decisive = (relative, robust) if given_top is None else (given_top, robust_given_top or 0.0)
         results.append(
             PredictorCurvature(
-                name, alone[name], base - alone[name], relative, given_top, decisive >= threshold
+                predictor=name,
+                spline_rmse=own.rmse,
+                gain=base.rmse - own.rmse,
+                relative_gain=relative,
+                relative_gain_given_top=given_top,
+                spline_median_abs_error=own.median_abs_error,
+                robust_gain=robust,
+                robust_gain_given_top=robust_given_top,
+                is_flagged=max(decisive) >= threshold,
             )
         )
-    return CurvatureCheck(xa.shape[0], folds, base, tuple(results), threshold)
+    return CurvatureCheck(
+        xa.shape[0], folds, base.rmse, base.median_abs_error, tuple(results), threshold
+    )

@@ -10,21 +10,17 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
-from typing import TYPE_CHECKING, Final, Literal, TypeAlias
+from typing import TYPE_CHECKING, Final, Literal
 
 from triage.core.distributions import f_sf
+from triage.results.compare import Comparison, Criterion, ModelScore, NestedFTest, RefitShift
 
 if TYPE_CHECKING:
-    from triage.core.holdout import HoldoutScore
     from triage.core.lsq import LinearFit
+    from triage.results.holdout import HoldoutScore
 
 __all__ = [
     "CRITERIA",
-    "Comparison",
-    "ModelScore",
-    "NestedFTest",
-    "RefitShift",
     "best_marks",
     "compare_fits",
     "is_nested",
@@ -32,9 +28,6 @@ __all__ = [
     "refit_shifts",
     "score_fit",
 ]
-
-Criterion: TypeAlias = Literal["adj_r2", "aic", "bic", "holdout_r2", "holdout_rmse", "cv_rmse"]
-"""A model-choice criterion that can be marked best."""
 
 CRITERIA: Final[Mapping[Criterion, Literal["max", "min"]]] = {
     "adj_r2": "max",
@@ -58,49 +51,6 @@ def _finite(value: float | None) -> float | None:
     if value is None or not math.isfinite(value):
         return None
     return float(value)
-
-
-@dataclass(frozen=True)
-class ModelScore:
-    """One model's line in a comparison; None marks a value that is not defined."""
-
-    label: str
-    """The terms as the user wrote them."""
-    names: tuple[str, ...]
-    """Design column names."""
-    n: int
-    """Rows the model was fitted on (not counting held-out rows)."""
-    n_params: int
-    """Estimated parameters (rank of the design, intercept included)."""
-    df_resid: int
-    """Rows minus parameters."""
-    rss: float
-    """Residual sum of squares of the fit."""
-    r2: float | None
-    """In-sample R² (never marked best: it cannot fall when a term is added)."""
-    adj_r2: float | None
-    """Adjusted R²."""
-    aic: float | None
-    """Akaike's criterion (Gaussian likelihood, statsmodels' definition)."""
-    bic: float | None
-    """Schwarz's Bayesian criterion."""
-    holdout_n: int | None
-    """Held-out rows scored, or None without a held-out rule."""
-    holdout_r2: float | None
-    """R² on the held-out rows, about their own mean (can be negative)."""
-    holdout_rmse: float | None
-    """Root mean squared prediction error on the held-out rows."""
-    cv_rmse: float | None
-    """Mean over K folds of the held-out-fold RMSE, on the in-memory sample."""
-    aliased: tuple[str, ...]
-    """Design columns that got no estimate."""
-    notes: tuple[str, ...]
-    """Plain-language remarks, e.g. that no degrees of freedom are left."""
-
-    def value(self, criterion: Criterion) -> float | None:
-        """Return the value of `criterion` for this model."""
-        number: float | None = getattr(self, criterion)
-        return number
 
 
 def score_fit(
@@ -150,24 +100,6 @@ def score_fit(
         aliased=tuple(fit.aliased),
         notes=notes,
     )
-
-
-@dataclass(frozen=True)
-class NestedFTest:
-    """F test of a smaller model against a larger one that contains it."""
-
-    smaller: int
-    """Index of the smaller model in the comparison."""
-    larger: int
-    """Index of the larger model."""
-    f: float | None
-    """``((RSS_s - RSS_l) / df1) / (RSS_l / df2)``; None when not defined."""
-    df1: int
-    """Difference in residual degrees of freedom (parameters added)."""
-    df2: int
-    """Residual degrees of freedom of the larger model."""
-    p: float | None
-    """Upper-tail probability of `f` under F(df1, df2)."""
 
 
 def is_nested(smaller: Sequence[str], larger: Sequence[str]) -> bool:
@@ -228,18 +160,6 @@ def best_marks(scores: Sequence[ModelScore]) -> dict[Criterion, int]:
     return marks
 
 
-@dataclass(frozen=True)
-class Comparison:
-    """Several models on the same rows: their figures, nested F tests and best marks."""
-
-    models: tuple[ModelScore, ...]
-    """One line per model, in the order given."""
-    nested_f: tuple[NestedFTest, ...]
-    """One test per pair where one model's columns are a subset of the other's."""
-    best: Mapping[Criterion, int]
-    """Index of the best model per criterion (only when two or more models have a value)."""
-
-
 def compare_fits(
     labels: Sequence[str],
     fits: Sequence[LinearFit],
@@ -280,20 +200,6 @@ def compare_fits(
         if i != j and fits[i].n == fits[j].n and is_nested(fits[i].names, fits[j].names)
     )
     return Comparison(scores, tests, best_marks(scores))
-
-
-@dataclass(frozen=True)
-class RefitShift:
-    """How one coefficient moved between a fit and its refit on other rows (a what-if)."""
-
-    name: str
-    """Design column name."""
-    before: float
-    """Estimate in the fit with every row (NaN when absent or aliased)."""
-    after: float
-    """Estimate in the refit without the marked rows (NaN when absent or aliased)."""
-    change_in_se: float
-    """`(after - before)` in units of the first fit's standard error (NaN when unknown)."""
 
 
 def refit_shifts(before: LinearFit, after: LinearFit) -> list[RefitShift]:

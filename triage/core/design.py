@@ -34,6 +34,15 @@ ROW_INDEX: Final = "__row"
 INTERCEPT: Final = "intercept"
 """Name of the column of ones, and of its term."""
 
+STATUS_USED: Final = "used"
+"""`DesignBuilder.row_status` of a row the design keeps."""
+STATUS_MISSING: Final = "missing value"
+"""A row with a null, NaN or infinite value in a model column."""
+STATUS_UNSEEN: Final = "level not in the fit"
+"""A row whose categorical level the fit did not learn (only after a sample fit)."""
+STATUS_DOMAIN: Final = "outside a transform's domain"
+"""A row outside a transform's domain, with weight <= 0, or too large for float64."""
+
 _Y: Final = "__y"
 _W: Final = "__w"
 _PRESENT: Final = "__present"
@@ -334,6 +343,19 @@ class DesignBudget:
     batch_rows: int
     n_workers: int
 
+    def max_columns(self) -> int:
+        """Most design columns that fit within the limit."""
+        low, high = 0, 1
+        while design_memory_bytes(high, self.batch_rows, self.n_workers) <= self.limit_bytes:
+            low, high = high, 2 * high
+        while high - low > 1:
+            middle = (low + high) // 2
+            if design_memory_bytes(middle, self.batch_rows, self.n_workers) <= self.limit_bytes:
+                low = middle
+            else:
+                high = middle
+        return low
+
     def check(self, spec: ModelSpec, tables: Mapping[str, LevelTable]) -> None:
         """Raise `DataError` in one line when the design would need more than the limit."""
         width = design_width(spec, tables)
@@ -342,12 +364,15 @@ class DesignBudget:
             return
         widest = max(tables.values(), key=lambda t: len(t.levels), default=None)
         culprit = (
-            f"`{widest.column}` has {len(widest.levels):,} levels"
+            f"`{widest.column}` has {_level_count(widest)}"
             if widest is not None
             else f"{len(spec.terms)} terms"
         )
+        partial = any(t.is_partial for t in tables.values())
+        at_least = "at least " if partial else ""
         msg = (
-            f"the design would have {width:,} columns ({culprit}) and need about "
+            f"the design would have {at_least}{width:,} columns ({culprit}) and need "
+            f"{at_least or 'about '}"
             f"{memory_text(need)} of memory, more than the limit of "
             f"{memory_text(self.limit_bytes)}; leave the column out or group its levels "
             "(`--where` can keep fewer), or raise the limit with `--max-memory`"
@@ -668,6 +693,36 @@ class DesignBuilder:
         *predictors, y = (series.to_numpy() for series in design.get_columns())
         return DesignColumns(predictors=predictors, y=y)
 
+    def row_status(self, frame: pl.DataFrame) -> pl.Series:
+        """Say for each row whether `build` keeps it, or the first reason it leaves it out.
+
+        The reasons and their order are those `build` counts: ``missing value``,
+        ``level not in the fit``, ``outside a transform's domain``; a kept row is ``used``.
+        A row whose design values overflow float64 is found only by `build`.
+
+        Parameters
+        ----------
+        frame : polars.DataFrame
+            Rows holding the spec's source columns.
+
+        Returns
+        -------
+        polars.Series
+            Text, one value per row of `frame`, named ``status``.
+        """
+        masks = frame.select(self._masks)
+        bad = _any([pl.col(check.name) for check in self._checks])
+        status = (
+            pl.when(~pl.col(_PRESENT))
+            .then(pl.lit(STATUS_MISSING))
+            .when(~pl.col(_IN_LEVELS))
+            .then(pl.lit(STATUS_UNSEEN))
+            .when(bad)
+            .then(pl.lit(STATUS_DOMAIN))
+            .otherwise(pl.lit(STATUS_USED))
+        )
+        return masks.select(status.alias("status")).to_series()
+
     def _drop_rows(self, frame: pl.DataFrame) -> tuple[pl.DataFrame, int, int, int]:
         """Drop unusable rows and count them (missing, unseen level, domain), or raise."""
         masks = frame.select(self._masks)
@@ -720,12 +775,18 @@ def reference_level(spec: ModelSpec, table: LevelTable) -> str:
     return spec.reference.get(table.column) or table.most_frequent()
 
 
+def _level_count(table: LevelTable) -> str:
+    """Write a level count: `12 levels`, or `at least 16,384 levels` when counting stopped."""
+    at_least = "at least " if table.is_partial else ""
+    return f"{at_least}{len(table.levels):,} levels"
+
+
 def _check_levels(spec: ModelSpec, table: LevelTable, basis: str) -> LevelTable:
     """Check a categorical's level count and named reference; return the table."""
     column, found = table.column, table.levels
     if len(found) > spec.max_levels:
         msg = (
-            f"categorical column `{column}` has {len(found):,} levels in {basis}, more than "
+            f"categorical column `{column}` has {_level_count(table)} in {basis}, more than "
             f"the limit of {spec.max_levels}; raise the limit with `--max-levels` or filter "
             "the rows with `--where`"
         )

@@ -22,7 +22,7 @@ from __future__ import annotations
 import itertools
 import math
 from collections.abc import Collection, Mapping
-from dataclasses import dataclass, field, fields, replace
+from dataclasses import dataclass, field, replace
 from typing import TYPE_CHECKING, Final
 
 import numpy as np
@@ -41,29 +41,30 @@ from triage.core.residual_tests import (
     BreuschPaganAccumulator,
     DurbinWatsonAccumulator,
     ResetAccumulator,
-    ResidualTest,
     jarque_bera,
 )
 from triage.core.worst_rows import TopRows
 from triage.errors import SpecError
+from triage.results.diagnostics import (
+    Diagnostics,
+    Flag,
+    ResidualBin,
+    ResidualHistogram,
+    ResidualTest,
+    RobustStdErrors,
+    RowDiagnostics,
+    SegmentLevel,
+    ThresholdCounts,
+    WorstRow,
+)
 
 if TYPE_CHECKING:
     from triage.core.design import DesignBatch
     from triage.core.lsq import LinearFit
 
 __all__ = [
-    "Diagnostics",
     "DiagnosticsAccumulator",
     "DiagnosticsConfig",
-    "Flag",
-    "ResidualBin",
-    "ResidualHistogram",
-    "ResidualTest",
-    "RobustStdErrors",
-    "RowDiagnostics",
-    "SegmentLevel",
-    "ThresholdCounts",
-    "WorstRow",
     "default_config",
     "row_diagnostics",
 ]
@@ -113,62 +114,6 @@ _BIN_QUANTILES: Final = (0.1, 0.5, 0.9)
 
 
 # --------------------------------------------------------------------------- per-row values
-
-
-@dataclass(frozen=True, eq=False)
-class RowDiagnostics:
-    """Per-row diagnostics of design rows under a fit.
-
-    Attributes
-    ----------
-    rows : ndarray of shape (n,)
-        Row positions in the source.
-    fitted : ndarray of shape (n,)
-        Fitted values.
-    resid : ndarray of shape (n,)
-        ``y - fitted``.
-    weighted_resid : ndarray of shape (n,)
-        ``√w·(y - fitted)``; the same array as `resid` for an unweighted fit.
-    leverage : ndarray of shape (n,)
-        Hat values of the (whitened) design.
-    student_internal : ndarray of shape (n,)
-        ``weighted_resid / (s √(1 - h))`` with ``s`` the fit's residual SD.
-    studentized : ndarray of shape (n,)
-        Externally studentized: as above with the leave-one-out SD
-        ``s_(i)² = (RSS - e_i²/(1 - h_i)) / (df_resid - 1)``.
-    cooks : ndarray of shape (n,)
-        Cook's distance ``student_internal² h / (p (1 - h))``, ``p`` the rank of the design.
-    in_fit : ndarray of bool, shape (n,)
-        True where the row was one of the rows the fit was computed on.
-
-    Notes
-    -----
-    Studentized values and Cook's distance are NaN where ``h`` is 1 (see
-    `LEVERAGE_ONE_TOLERANCE`), where the fit has no residual spread, and (external only) where
-    fewer than 2 residual degrees of freedom are left.
-
-    A row outside the fit (filtered out, left out by a mark, not in the sample) is scored as
-    a new observation: `leverage` is ``h0 = x0ᵀ(XᵀX)⁻¹x0`` (times its weight), computed as
-    ``‖R⁻ᵀx0‖²`` like the hat values, and both studentized columns hold the standardised
-    prediction residual ``√w·e0 / (s √(1 + h0))``, whose variance under the model is
-    ``σ²(1 + h0)`` since the row did not pull the fit. Cook's distance measures how a row
-    moves the fit it is part of, so it is NaN there.
-    """
-
-    rows: IntArray
-    fitted: FloatArray
-    resid: FloatArray
-    weighted_resid: FloatArray
-    leverage: FloatArray
-    student_internal: FloatArray
-    studentized: FloatArray
-    cooks: FloatArray
-    in_fit: NDArray[np.bool_]
-
-    def take(self, indices: ArrayLike) -> RowDiagnostics:
-        """Return the diagnostics of the rows at `indices` (indices into these arrays)."""
-        picked = np.asarray(indices, dtype=np.intp)
-        return RowDiagnostics(**{f.name: getattr(self, f.name)[picked] for f in fields(self)})
 
 
 def _rank(fit: LinearFit) -> int:
@@ -448,148 +393,6 @@ def default_config(
 
 
 # --------------------------------------------------------------------------- results
-
-
-@dataclass(frozen=True, eq=False)
-class ResidualHistogram:
-    """Counts of weighted residuals on `edges`, tails, extremes and quantiles."""
-
-    edges: FloatArray
-    """Bin edges; bin k is ``[edges[k], edges[k + 1])``, the last one closed."""
-    counts: IntArray
-    """Residuals per bin."""
-    below: int
-    """Residuals below the first edge."""
-    above: int
-    """Residuals above the last edge."""
-    minimum: float
-    """Smallest residual (NaN when empty)."""
-    maximum: float
-    """Largest residual (NaN when empty)."""
-    quantiles: dict[float, float]
-    """Probability -> quantile from the fine grid, within one fine bin of the exact value
-    inside ±8 SD (rough beyond: see `triage.core.binning`)."""
-
-
-@dataclass(frozen=True)
-class ResidualBin:
-    """Residuals of the rows whose binned variable falls in ``[lo, hi)``."""
-
-    lo: float
-    """Lower edge (the smallest value seen, if below the first edge, for the first bin)."""
-    hi: float
-    """Upper edge (the largest value seen, if above the last edge, for the last bin)."""
-    n: int
-    """Rows in the bin."""
-    x_mean: float
-    """Mean of the binned variable in the bin (NaN when empty)."""
-    mean_resid: float
-    """Mean weighted residual (NaN when empty)."""
-    q10: float
-    """10% quantile of the weighted residuals, from the fine grid."""
-    q50: float
-    """Median."""
-    q90: float
-    """90% quantile."""
-
-
-@dataclass(frozen=True)
-class WorstRow:
-    """One row of a worst-rows list."""
-
-    row: int
-    """Position in the source."""
-    fitted: float
-    resid: float
-    """``y - fitted``."""
-    weighted_resid: float
-    """``√w·(y - fitted)``; the ranking value of ``abs_resid`` (equal to `resid` unweighted)."""
-    studentized: float
-    """Externally studentized residual."""
-    leverage: float
-    cooks: float
-    """Cook's distance."""
-
-
-@dataclass(frozen=True)
-class SegmentLevel:
-    """Weighted residuals of one level (or bin) of a segment column."""
-
-    level: str
-    """The level as text, ``"(missing)"`` for nulls, ``"(other)"`` for pooled levels, or an
-    interval such as ``"[2.5, 4)"`` for a numeric column."""
-    n: int
-    mean_resid: float
-    rmse: float
-    """Root mean square residual in the level."""
-    t: float
-    """``mean / (sd / √n)``: the mean residual in standard-error units (NaN below 2 rows)."""
-
-
-@dataclass(frozen=True)
-class RobustStdErrors:
-    """Heteroscedasticity-consistent standard errors of one coefficient (NaN if aliased)."""
-
-    hc0: float
-    hc1: float
-    """HC0 scaled by ``n / (n - p)``."""
-    hc2: float
-    """Squared residuals divided by ``1 - h``."""
-    hc3: float
-    """Squared residuals divided by ``(1 - h)²``."""
-
-
-@dataclass(frozen=True)
-class ThresholdCounts:
-    """Rows beyond the common-practice thresholds used by the flags (exact counts)."""
-
-    studentized: int
-    """Rows with ``|studentized| > 3``."""
-    leverage: int
-    """Rows with leverage above `leverage_threshold`."""
-    leverage_threshold: float
-    """``2 p / n`` with ``p`` the rank and ``n`` the rows of the fit."""
-    cooks: int
-    """Rows with Cook's distance above `cooks_threshold`."""
-    cooks_threshold: float
-    """``4 / n``."""
-
-
-@dataclass(frozen=True)
-class Flag:
-    """A plain-word hint that something may deserve a look; never a verdict."""
-
-    code: str
-    """Stable identifier, e.g. ``"spread-changes"``."""
-    message: str
-    """One or two sentences naming the rule behind the hint."""
-
-
-@dataclass(frozen=True, eq=False)
-class Diagnostics:
-    """Everything pass 2 found; plain values ready for text, JSON or a screen."""
-
-    n: int
-    """Rows seen in pass 2."""
-    histogram: ResidualHistogram
-    binned: dict[str, tuple[ResidualBin, ...]]
-    """``"fitted"`` and each numeric predictor -> bins in ascending order."""
-    worst: dict[Criterion, tuple[WorstRow, ...]]
-    """Criterion -> rows, worst first (ties: lower row position first)."""
-    segments: dict[str, tuple[SegmentLevel, ...]]
-    """Segment column -> levels by ``|t|`` descending (NaN last); empty levels left out."""
-    segments_capped: tuple[str, ...]
-    """Segment columns that had more levels than `max_segment_levels`."""
-    tests: dict[str, ResidualTest]
-    """``breusch_pagan``, ``reset``, ``jarque_bera``, ``durbin_watson``."""
-    robust_se: dict[str, RobustStdErrors]
-    """Coefficient name -> HC0–HC3 standard errors."""
-    counts: ThresholdCounts
-    resid_skewness: float
-    """Moment skewness of the weighted residuals."""
-    resid_kurtosis: float
-    """Moment kurtosis of the weighted residuals (3 for a normal)."""
-    flags: tuple[Flag, ...]
 
 
 # --------------------------------------------------------------------------- accumulator parts

@@ -34,6 +34,7 @@ import polars as pl
 
 from triage.core.lsq import QRAccumulator, fit_arrays
 from triage.errors import DataError, SpecError
+from triage.results.holdout import HoldoutScore, KFoldErrors, KFoldResult
 
 if TYPE_CHECKING:
     from numpy.typing import ArrayLike, NDArray
@@ -41,8 +42,6 @@ if TYPE_CHECKING:
 __all__ = [
     "HoldoutAccumulator",
     "HoldoutRule",
-    "HoldoutScore",
-    "KFoldResult",
     "cut_holdout_mask",
     "kfold_rmse",
     "random_holdout_mask",
@@ -158,22 +157,6 @@ def _cast_cut(values: pl.Series, cut: object) -> pl.Series:
             f"{error}; give a value of that type to `--cut`"
         )
         raise SpecError(msg) from error
-
-
-@dataclass(frozen=True)
-class HoldoutScore:
-    """How well one coefficient vector predicts the held-out rows."""
-
-    n: int
-    """Held-out rows scored."""
-    sse: float
-    """Sum of (weighted) squared prediction errors."""
-    sst: float
-    """Sum of (weighted) squares of the target about its held-out mean."""
-    r2: float
-    """``1 - sse / sst``; NaN when the held-out target is constant or no rows were held out."""
-    rmse: float
-    """``sqrt(sse / sum(w))``; NaN when no rows were held out."""
 
 
 class HoldoutAccumulator:
@@ -292,19 +275,61 @@ class HoldoutAccumulator:
         return HoldoutScore(self.n_rows, sse, sst, r2, math.sqrt(sse / sum_w))
 
 
-@dataclass(frozen=True)
-class KFoldResult:
-    """Cross-validated prediction error of one design on an in-memory sample."""
+def _held_out_residuals(
+    x: ArrayLike,
+    y: ArrayLike,
+    weights: ArrayLike | None,
+    *,
+    has_intercept: bool,
+    folds: int,
+    seed: int,
+) -> list[tuple[NDArray[np.float64], NDArray[np.float64]]] | None:
+    """Each fold's held-out residuals and weights (ones without weights); None if too few rows."""
+    # Deferred: scikit-learn takes about 1 to 4 s to import on these machines.
+    from sklearn.model_selection import KFold
 
-    folds: int
-    """Number of folds."""
-    fold_rmse: tuple[float, ...]
-    """RMSE on each held-out fold, from a fit on the other folds."""
+    if folds < 2:
+        msg = f"`--folds` must be an integer of at least 2, got `{folds}`"
+        raise SpecError(msg)
+    xa = np.asarray(x, dtype=np.float64)
+    ya = np.asarray(y, dtype=np.float64)
+    wa = None if weights is None else np.asarray(weights, dtype=np.float64)
+    if xa.shape[0] < folds:
+        return None
+    names = [f"c{j}" for j in range(xa.shape[1])]
+    out = []
+    for train, test in KFold(folds, shuffle=True, random_state=seed).split(xa):
+        w_train = None if wa is None else wa[train]
+        fit = fit_arrays(xa[train], ya[train], names, has_intercept=has_intercept, weights=w_train)
+        resid = ya[test] - fit.predict(xa[test])
+        out.append((resid, np.ones(test.size) if wa is None else wa[test]))
+    return out
 
-    @property
-    def rmse(self) -> float:
-        """Mean of the per-fold RMSEs (scikit-learn's ``cross_val_score`` convention)."""
-        return float(np.mean(self.fold_rmse))
+
+def kfold_errors(
+    x: ArrayLike,
+    y: ArrayLike,
+    weights: ArrayLike | None = None,
+    *,
+    has_intercept: bool,
+    folds: int = 5,
+    seed: int = 0,
+) -> KFoldErrors | None:
+    """Score a design on held-out folds by RMSE and by median absolute error.
+
+    Parameters are those of `kfold_rmse`; the folds are the same.
+
+    Returns
+    -------
+    KFoldErrors or None
+        None when there are fewer rows than folds.
+    """
+    parts = _held_out_residuals(x, y, weights, has_intercept=has_intercept, folds=folds, seed=seed)
+    if parts is None:
+        return None
+    rmse = [math.sqrt(float(np.sum(w * e**2) / np.sum(w))) for e, w in parts]
+    scaled = np.concatenate([np.sqrt(w) * np.abs(e) for e, w in parts])
+    return KFoldErrors(folds, float(np.mean(rmse)), float(np.median(scaled)))
 
 
 def kfold_rmse(
@@ -344,23 +369,9 @@ def kfold_rmse(
     SpecError
         If `folds` is below 2.
     """
-    # Deferred: scikit-learn takes about 1 to 4 s to import on these machines.
-    from sklearn.model_selection import KFold
-
-    if folds < 2:
-        msg = f"`--folds` must be an integer of at least 2, got `{folds}`"
-        raise SpecError(msg)
-    xa = np.asarray(x, dtype=np.float64)
-    ya = np.asarray(y, dtype=np.float64)
-    wa = None if weights is None else np.asarray(weights, dtype=np.float64)
-    if xa.shape[0] < folds:
+    parts = _held_out_residuals(x, y, weights, has_intercept=has_intercept, folds=folds, seed=seed)
+    if parts is None:
         return None
-    names = [f"c{j}" for j in range(xa.shape[1])]
-    errors = []
-    for train, test in KFold(folds, shuffle=True, random_state=seed).split(xa):
-        w_train = None if wa is None else wa[train]
-        fit = fit_arrays(xa[train], ya[train], names, has_intercept=has_intercept, weights=w_train)
-        resid = ya[test] - fit.predict(xa[test])
-        w_test = np.ones(test.size) if wa is None else wa[test]
-        errors.append(math.sqrt(float(np.sum(w_test * resid**2) / np.sum(w_test))))
-    return KFoldResult(folds, tuple(errors))
+    return KFoldResult(
+        folds, tuple(math.sqrt(float(np.sum(w * e**2) / np.sum(w))) for e, w in parts)
+    )

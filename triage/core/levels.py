@@ -55,11 +55,15 @@ class LevelTable:
         Level names (the values as text), in natural order.
     counts : tuple of int
         Rows counted for each level.
+    is_partial : bool, default=False
+        True when counting stopped past the counter's cap: the column has more levels
+        than these, and the counts are those of the rows read until then.
     """
 
     column: str
     levels: tuple[str, ...]
     counts: tuple[int, ...]
+    is_partial: bool = False
 
     @property
     def n_rows(self) -> int:
@@ -83,15 +87,27 @@ class LevelCounter:
         Types of the columns to count (they decide the natural order).
     columns : sequence of str
         The categorical columns.
+    cap : int or None, default=None
+        Stop counting a column once it has more levels than this (a column past the cap
+        is refused anyway, and a million distinct values would cost memory to count).
     """
 
-    def __init__(self, schema: SchemaLike, columns: Sequence[str]) -> None:
+    def __init__(
+        self, schema: SchemaLike, columns: Sequence[str], *, cap: int | None = None
+    ) -> None:
         self._dtypes = {c: schema[c] for c in columns}
         self._tables: dict[str, pl.DataFrame | None] = dict.fromkeys(columns)
+        self._cap = cap
+
+    def _is_full(self, column: str) -> bool:
+        table = self._tables[column]
+        return self._cap is not None and table is not None and table.height > self._cap
 
     def update(self, frame: pl.DataFrame) -> None:
         """Count the levels of one batch."""
         for column, dtype in self._dtypes.items():
+            if self._is_full(column):
+                continue
             counted = (
                 frame.lazy()
                 .filter(present_value(column, dtype))
@@ -104,7 +120,7 @@ class LevelCounter:
     def merge(self, other: LevelCounter) -> LevelCounter:
         """Add another counter's counts into this one; return this one."""
         for column, table in other._tables.items():
-            if table is not None:
+            if table is not None and not self._is_full(column):
                 self._tables[column] = _add(self._tables[column], table, column)
         return self
 
@@ -118,7 +134,9 @@ class LevelCounter:
             ordered = table.sort(column, nulls_last=True)
             names = ordered.select(level_text(column)).to_series().to_list()
             counts = ordered.get_column(_COUNT).to_list()
-            result[column] = LevelTable(column, tuple(names), tuple(int(n) for n in counts))
+            result[column] = LevelTable(
+                column, tuple(names), tuple(int(n) for n in counts), self._is_full(column)
+            )
         return result
 
 

@@ -922,6 +922,9 @@ class QRAccumulator:
             resid_sd = math.sqrt(scale)
             cov_k = scale * (v.T @ v)
             se_k = np.sqrt(scale * np.einsum("ij,ij->j", v, v))
+            # A standard error that is not a finite number leaves t, p and the interval
+            # unknown too, never a finite t and p beside it.
+            se_k = np.where(np.isfinite(se_k), se_k, nan)
             with np.errstate(divide="ignore", invalid="ignore"):
                 t_k = reported / se_k
             p_k = 2.0 * t_sf(np.abs(t_k), df_resid)

@@ -22,31 +22,12 @@ from numpy.typing import NDArray
 
 from triage.core.distributions import chi2_sf, f_sf
 from triage.core.lsq import QRAccumulator
+from triage.results.diagnostics import ResidualTest
 
 if TYPE_CHECKING:
     from triage.core.moments import StreamMoments
 
 FloatArray = NDArray[np.float64]
-
-
-@dataclass(frozen=True)
-class ResidualTest:
-    """Result of one test on the residuals.
-
-    Attributes
-    ----------
-    statistic : float
-        The test statistic (NaN when the data cannot support the test).
-    df : tuple of float
-        Degrees of freedom of its reference distribution (one for chi-squared, two for F,
-        none for Durbin–Watson).
-    p_value : float
-        Upper-tail probability; NaN for Durbin–Watson, which has no simple reference law.
-    """
-
-    statistic: float
-    df: tuple[float, ...]
-    p_value: float
 
 
 _NAN_TEST_CHI2_2 = ResidualTest(math.nan, (2.0,), math.nan)

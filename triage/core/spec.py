@@ -19,7 +19,7 @@ from triage.core.filter import closest_names_hint, filter_columns, parse_filter
 from triage.errors import SpecError
 
 if TYPE_CHECKING:
-    from collections.abc import Mapping, Sequence
+    from collections.abc import Callable, Mapping, Sequence
 
     from triage._typing import TermKind
 
@@ -540,7 +540,88 @@ def _check_column(name: str, schema: SchemaLike, where: str) -> None:
         raise SpecError(msg)
 
 
-def _resolve(term: Term, schema: SchemaLike, categorical: frozenset[str], target: str) -> Term:
+@dataclass(frozen=True)
+class TextColumnFacts:
+    """What a read of a text column found: whether its values are numbers written as text.
+
+    Attributes
+    ----------
+    column : str
+        The column.
+    n_rows : int
+        Rows read.
+    n_values : int
+        Rows with a value (not missing).
+    n_not_numbers : int
+        Values that do not read as numbers.
+    first_row : int or None
+        0-based position of the first value that is not a number.
+    first_text : str or None
+        That value.
+    """
+
+    column: str
+    n_rows: int
+    n_values: int
+    n_not_numbers: int
+    first_row: int | None = None
+    first_text: str | None = None
+
+    def problem(self, role: Literal["target", "term", "weights"]) -> str | None:
+        """Say why the column cannot serve as a number, or None when it is plainly text.
+
+        A column with no rows, with no value, or whose values are mostly numbers (at
+        least half) but not all gets a one-line message with what to do. Text that is all
+        numbers (codes such as ``01234`` stored as text) stays a category.
+        """
+        name = quote_name(self.column)
+        if self.n_rows == 0:
+            return (
+                f"the data has no rows (only a header line?), so the {role} `{self.column}` "
+                "has no values; check the file, or its `--separator` and `--no-header`"
+            )
+        if self.n_values == 0:
+            return (
+                f"every value of the {role} `{self.column}` is missing ({self.n_rows:,} rows); "
+                "choose another column or check the file (`--null-value` sets the texts "
+                "read as missing)"
+            )
+        if self.n_not_numbers == 0 or 2 * self.n_not_numbers > self.n_values:
+            return None  # codes stored as text (`01234`), or plain text: a category
+        cat_hint = f", or use `cat({name})` to treat it as a category" if role == "term" else ""
+        return (
+            f"column `{self.column}` is text because {self.n_not_numbers:,} of "
+            f"{self.n_values:,} values {'is' if self.n_not_numbers == 1 else 'are'} not a "
+            f"number (first at row {self.first_row:,}: `{self.first_text}`); mark it missing "
+            f"with `--null-value {self.first_text}`{cat_hint}"
+        )
+
+
+TextColumnCheck: TypeAlias = "Callable[[str], TextColumnFacts]"
+"""Reads a text column and reports whether its values are numbers (the data layer's)."""
+
+
+def _check_text(
+    column: str,
+    schema: SchemaLike,
+    check: TextColumnCheck | None,
+    role: Literal["target", "term", "weights"],
+) -> None:
+    """Raise `SpecError` when a text column holds numbers, no value, or no rows at all."""
+    if check is None or schema[column] != pl.String:
+        return
+    problem = check(column).problem(role)
+    if problem is not None:
+        raise SpecError(problem)
+
+
+def _resolve(
+    term: Term,
+    schema: SchemaLike,
+    categorical: frozenset[str],
+    target: str,
+    check: TextColumnCheck | None = None,
+) -> Term:
     """Check one term's columns and types, and settle whether a bare name is categorical."""
     for name in term.columns:
         _check_column(name, schema, f"term `{term.label}`")
@@ -551,7 +632,7 @@ def _resolve(term: Term, schema: SchemaLike, categorical: frozenset[str], target
             )
             raise SpecError(msg)
     if term.kind == "interaction":
-        factors = tuple(_resolve(f, schema, categorical, target) for f in term.factors)
+        factors = tuple(_resolve(f, schema, categorical, target, check) for f in term.factors)
         for factor in factors:
             if factor.kind == "categorical":
                 msg = (
@@ -567,6 +648,8 @@ def _resolve(term: Term, schema: SchemaLike, categorical: frozenset[str], target
     if term.kind == "categorical" or (
         term.kind == "numeric" and (forced or is_categorical_dtype(dtype))
     ):
+        if term.kind == "numeric" and not forced:
+            _check_text(column, schema, check, "term")
         return replace(term, kind="categorical", label=quote_name(column))
     if forced:
         msg = (
@@ -603,6 +686,7 @@ def build_spec(
     max_levels: int = 50,
     max_memory: int | None = None,
     drop_invalid: bool = False,
+    check_text: TextColumnCheck | None = None,
 ) -> ModelSpec:
     """Check a model description against the columns of a source and build its spec.
 
@@ -630,6 +714,10 @@ def build_spec(
         Most bytes a pass's design may take; None for the engine's default.
     drop_invalid : bool, default=False
         Leave out rows outside a transform's domain or with weight <= 0 instead of failing.
+    check_text : callable, optional
+        Reads a text column (the data layer's `text_column_facts`), so that a target,
+        weights or bare term that is text because of a stray value, or has no value or
+        no rows, is refused with what to do (``cat(x)`` still makes a category).
 
     Returns
     -------
@@ -662,6 +750,7 @@ def build_spec(
     if target not in schema:
         msg = f"unknown target column `{target}`{closest_names_hint(target, schema)}"
         raise SpecError(msg)
+    _check_text(target, schema, check_text, "target")
     if not _is_numeric(schema[target]):
         msg = f"the target `{target}` has type {schema[target]}; the target must be numeric"
         raise SpecError(msg)
@@ -671,12 +760,14 @@ def build_spec(
     for column in categorical:
         _check_column(column, schema, "the categorical columns")
     forced = frozenset(categorical)
-    resolved = tuple(_resolve(t, schema, forced, target) for t in parsed)
+    resolved = tuple(_resolve(t, schema, forced, target, check_text) for t in parsed)
     _check_duplicates([(t, t.label) for t in resolved])
     if not resolved and not intercept:
         msg = "the model has no terms and no intercept; add a term or keep the intercept"
         raise SpecError(msg)
     if weights is not None:
+        _check_column(weights, schema, "weights column")
+        _check_text(weights, schema, check_text, "weights")
         _check_numeric_column(weights, schema, "weights column")
     categorical_terms = {t.column for t in resolved if t.kind == "categorical"}
     reference = dict(reference or {})

@@ -21,10 +21,12 @@ import pyarrow as pa
 
 from triage.core.design import ROW_INDEX
 from triage.core.filter import closest_names_hint
-from triage.errors import SourceError, SpecError, TriageError
+from triage.data import hooks
+from triage.data.snapshot import SourceSnapshot
+from triage.errors import SourceChanged, SourceError, SpecError, TriageError
 
 if TYPE_CHECKING:
-    from triage._typing import SampleDesign
+    from triage._typing import Sampling
 
 
 _GOLDEN: Final[int] = 0x9E3779B97F4A7C15
@@ -116,7 +118,7 @@ class Source(Protocol):
         *,
         n_rows: int,
         seed: int,
-        design: SampleDesign = "groups",
+        sampling: Sampling = "groups",
         where: pl.Expr | None = None,
     ) -> Sample:
         """Read a sample of about `n_rows` rows into memory."""
@@ -348,11 +350,15 @@ def apply_filter(frame: pl.DataFrame, where: pl.Expr | None, extra: Sequence[str
 
 
 def filter_frames(
-    frames: Iterable[pl.DataFrame], where: pl.Expr | None, extra: Sequence[str]
+    frames: Iterable[pl.DataFrame], where: pl.Expr | None, extra: Sequence[str], *, path: Path
 ) -> Iterator[Batch]:
-    """Filter raw frames (dropping the filter's own columns), counting the rows read."""
+    """Filter raw frames (dropping the filter's own columns), counting the rows read.
+
+    Each frame is announced to `hooks.batch_read` with `path` (the file or source read).
+    """
     rows_read = 0
     for frame in frames:
+        hooks.batch_read(path)
         rows_read += frame.height
         yield Batch(apply_filter(frame, where, extra), rows_read)
 
@@ -379,10 +385,10 @@ def group_runs(sizes: Sequence[int], part_rows: int) -> list[tuple[int, int]]:
     return runs
 
 
-def _check_sample_args(n_rows: int, design: str) -> None:
+def _check_sample_args(n_rows: int, sampling: str) -> None:
     check_count("n_rows", n_rows)
-    if design not in ("groups", "uniform"):
-        msg = f"`design` must be `groups` or `uniform`, got `{design!r}`"
+    if sampling not in ("groups", "uniform"):
+        msg = f"`sampling` must be `groups` or `uniform`, got `{sampling!r}`"
         raise SpecError(msg)
 
 
@@ -408,6 +414,29 @@ class BlockSource(abc.ABC):
     def __init__(self, path: Path) -> None:
         self._path = path
         self._schema: dict[str, pl.DataType] | None = None
+        self._snapshot = SourceSnapshot(self.files)
+        """The files as they were when the source was opened (checked on every read)."""
+
+    @property
+    def snapshot(self) -> SourceSnapshot:
+        """The files' sizes, times and identities as they were when the source was opened."""
+        return self._snapshot
+
+    @contextlib.contextmanager
+    def _unchanged(self, files: Sequence[Path]) -> Iterator[None]:
+        """Check `files` against the snapshot before and after the block.
+
+        A read that fails inside the block is reported as the file's change when one of
+        `files` changed (a truncated file fails to decode), else as it was.
+        """
+        self._snapshot.check_files(files)
+        try:
+            yield
+        except SourceError as error:
+            if not isinstance(error, SourceChanged):
+                self._snapshot.check_files(files)
+            raise
+        self._snapshot.check_files(files)
 
     @property
     def path(self) -> Path:
@@ -501,7 +530,14 @@ class BlockSource(abc.ABC):
         names = self._check_columns(columns)
         check_count("batch_rows", batch_rows)
         extra = self._filter_only_columns(names, where)
-        yield from filter_frames(self._scan_raw(names + extra, batch_rows), where, extra)
+        rows_read = 0
+        frames = self._scan_raw(names + extra, batch_rows)
+        with self._unchanged(self.files):
+            for batch in filter_frames(frames, where, extra, path=self._path):
+                rows_read = batch.rows_read
+                yield batch
+        # A file cut short ends pyarrow's read early without an error: count the rows.
+        self._snapshot.check_rows(rows_read, self.row_count(), self.files)
 
     def scan_parts(
         self,
@@ -546,7 +582,7 @@ class BlockSource(abc.ABC):
         *,
         n_rows: int,
         seed: int,
-        design: SampleDesign = "groups",
+        sampling: Sampling = "groups",
         where: pl.Expr | None = None,
     ) -> Sample:
         """Read a sample of about `n_rows` rows into memory, deterministically for `seed`.
@@ -556,12 +592,12 @@ class BlockSource(abc.ABC):
         columns : sequence of str
             Columns to read; `ROW_INDEX` is added in front.
         n_rows : int
-            Rows wanted. With ``design="groups"`` whole blocks are added at random until they
+            Rows wanted. With ``sampling="groups"`` whole blocks are added at random until they
             hold at least `n_rows` rows (counted before `where`); with ``"uniform"`` exactly
             `n_rows` rows are drawn from those that pass `where`.
         seed : int
             Seed of the random choice.
-        design : {"groups", "uniform"}, default="groups"
+        sampling : {"groups", "uniform"}, default="groups"
             Whole row groups (record batches, CSV blocks) at random, cheap; or an exact
             uniform sample of rows, which reads the whole source.
         where : Expr, optional
@@ -574,13 +610,14 @@ class BlockSource(abc.ABC):
             every row is read and ``is_whole`` is True.
         """
         names = self._check_columns(columns)
-        _check_sample_args(n_rows, design)
-        total = self.row_count()
-        if total is not None and total <= n_rows:
-            return self._read_whole(names, total, where)
-        if design == "uniform":
-            return self._read_uniform(names, n_rows, seed, where)
-        return self._read_groups(names, n_rows, seed, where)
+        _check_sample_args(n_rows, sampling)
+        with self._unchanged(self.files):
+            total = self.row_count()
+            if total is not None and total <= n_rows:
+                return self._read_whole(names, total, where)
+            if sampling == "uniform":
+                return self._read_uniform(names, n_rows, seed, where)
+            return self._read_groups(names, n_rows, seed, where)
 
     def read_rows(self, positions: Sequence[int] | np.ndarray) -> pl.DataFrame:
         """Read every column of the rows at `positions`, in the order given.
@@ -610,7 +647,8 @@ class BlockSource(abc.ABC):
         unique = np.unique(wanted)
         total = self.row_count()
         in_range = (unique >= 0) if total is None else (unique >= 0) & (unique < total)
-        found = self._read_positions(names, unique[in_range]) if in_range.all() else None
+        with self._unchanged(self.files):
+            found = self._read_positions(names, unique[in_range]) if in_range.all() else None
         if found is None or found.height < unique.size:
             got = found[ROW_INDEX].to_numpy() if found is not None else unique[in_range]
             bad = int(np.setdiff1d(unique, got)[0])
@@ -767,7 +805,7 @@ class BlockSource(abc.ABC):
             else (f"{rows_read:,} rows")
         )
         if n_passing <= n_rows:
-            text = f"all {population} (uniform design; read the whole source)"
+            text = f"all {population} (uniform sampling; read the whole source)"
             return Sample(frame, text, is_whole=True, warning=None, rows_read=rows_read)
         text = (
             f"{frame.height:,} rows drawn uniformly at random (seed {seed}) from {population}; "

@@ -81,6 +81,7 @@ class CsvSource(BlockSource):
 
     def _lazy(self) -> pl.LazyFrame:
         options = self._options
+        self.snapshot.check_file(self._path)
         return pl.scan_csv(
             self._path,
             separator=self._separator,
@@ -104,7 +105,7 @@ class CsvSource(BlockSource):
 
     @functools.cached_property
     def _exact_count(self) -> int:
-        with reading(self._path, self._kind):
+        with self._unchanged(self.files), reading(self._path, self._kind):
             return int(self._lazy().select(pl.len()).collect().item())
 
     def _count_by_scan(self) -> int:

@@ -6,6 +6,7 @@ the input files of the session are never overwritten.
 
 from __future__ import annotations
 
+import fnmatch
 import os
 import tempfile
 from collections.abc import Iterable
@@ -53,11 +54,42 @@ def _format_of(path: Path) -> ExportFormat:
     return fmt
 
 
+_GLOB_CHARS: Final = "*?["
+
+
+def _matches_glob(path: Path, pattern: Path) -> bool:
+    """Whether the glob `pattern` (``*``, ``?``, ``[...]``, ``**`` for any folders) matches `path`.
+
+    Both are made absolute first; a pattern's fixed folders are resolved like the path's.
+    """
+    parts = pattern.expanduser().parts
+    n_fixed = next((i for i, part in enumerate(parts) if any(c in part for c in _GLOB_CHARS)), 0)
+    base = Path(*parts[:n_fixed]).resolve() if n_fixed else Path.cwd().resolve()
+    resolved = path.resolve()
+    if base != resolved and base not in resolved.parents:
+        return False
+    return _match_parts(resolved.relative_to(base).parts, parts[n_fixed:])
+
+
+def _match_parts(names: tuple[str, ...], patterns: tuple[str, ...]) -> bool:
+    if not patterns:
+        return not names
+    head, rest = patterns[0], patterns[1:]
+    if head == "**":  # any number of folders, none included
+        return any(_match_parts(names[i:], rest) for i in range(len(names) + 1))
+    return bool(names) and fnmatch.fnmatchcase(names[0], head) and _match_parts(names[1:], rest)
+
+
 def _is_protected(path: Path, protected: Iterable[str | os.PathLike[str]]) -> Path | None:
-    """Return the protected path that `path` is, or lies inside, else None."""
+    """Return the protected path (or glob) that `path` is, lies inside, or matches, else None."""
     resolved = path.resolve()
     for item in protected:
-        guard = Path(item).expanduser().resolve()
+        given = Path(item).expanduser()
+        if any(c in str(given) for c in _GLOB_CHARS) and not given.exists():
+            if _matches_glob(path, given):
+                return given
+            continue
+        guard = given.resolve()
         if resolved == guard or guard in resolved.parents:
             return guard
         if path.exists() and guard.exists() and os.path.samefile(path, guard):
@@ -74,8 +106,8 @@ def _check_target(
     guard = _is_protected(target, protected)
     if guard is not None:
         msg = (
-            f"refusing to write `{target}`: it is (or lies inside) the input `{guard}`; "
-            "choose another path"
+            f"refusing to write `{target}`: it is, lies inside or matches the input `{guard}`, "
+            "so the next read of the input would take it in; choose another path"
         )
         raise ExportError(msg)
     folder = target.parent
@@ -302,17 +334,26 @@ class StreamingExport:
             return  # never entered
         self._handle = None
         try:
+            self._finish(handle, temporary, failed=exc_type is not None)
+        except BaseException:  # a signal or an error while finishing: leave no partial file
+            handle.close()
+            temporary.unlink(missing_ok=True)
+            raise
+
+    def _finish(self, handle: IO[bytes], temporary: Path, *, failed: bool) -> None:
+        """Close the file and move it into place, or remove it when the block `failed`."""
+        try:
             if self._writer is not None:
                 self._writer.close()  # writes the Parquet footer
             handle.close()
         except (OSError, pa.ArrowException) as close_error:
             handle.close()
             temporary.unlink(missing_ok=True)
-            if exc_type is None:
+            if not failed:
                 msg = f"cannot finish `{self._target.name}`: {close_error}"
                 raise ExportError(msg) from close_error
             return
-        if exc_type is not None:
+        if failed:
             temporary.unlink(missing_ok=True)
             return
         if self._schema is None:

@@ -56,6 +56,7 @@ class IpcSource(BlockSource):
     def _batches(self, blocks: list[int] | None, columns: list[str]) -> Iterator[pa.RecordBatch]:
         # pa.OSFile rather than a memory map: the batches own their memory, so frames built
         # from them stay valid after the file is closed.
+        self.snapshot.check_file(self._path)
         with reading(self._path, self._kind), pa.OSFile(str(self._path), "rb") as file:
             reader = ipc.open_file(file)
             for i in range(reader.num_record_batches) if blocks is None else blocks:

@@ -28,6 +28,8 @@ from triage.data.base import (
     reading,
     with_positions,
 )
+from triage.data.snapshot import FileStamp, changed_message
+from triage.errors import SourceChanged, SourceError
 
 PART_ROWS: Final = 500_000
 """Rows, at least, in a part of a split scan (`scan_parts`): whole row groups, so each part
@@ -92,6 +94,11 @@ class ParquetPart:
     batch_rows: int = 65_536
     constants: tuple[tuple[str, str | None], ...] = ()
     """Columns taken from the file's partition folders (``key=value``), with their values."""
+    stamp: tuple[int, int] | None = None
+    """The file's size and modification time (ns) when the source was opened; None: unchecked.
+
+    Not its device and inode, which differ between machines that mount the same storage.
+    """
 
     @property
     def rows(self) -> int:
@@ -99,8 +106,39 @@ class ParquetPart:
         return sum(self.sizes)
 
     def __call__(self) -> Iterator[Batch]:
-        """Read the part: filtered batches with `ROW_INDEX`, ``rows_read`` from its start."""
-        return filter_frames(self._frames(), self.where, self.extra)
+        """Read the part: filtered batches with `ROW_INDEX`, ``rows_read`` from its start.
+
+        Raises
+        ------
+        SourceChanged
+            When the file differs from its stamp before, during or after the read, or the
+            read ends with other than the part's rows (a file cut short).
+        SourceError
+            When the file cannot be read.
+        """
+        path = Path(self.path)
+        self._check_unchanged(path)
+        rows_read = 0
+        try:
+            for batch in filter_frames(self._frames(), self.where, self.extra, path=path):
+                rows_read = batch.rows_read
+                yield batch
+        except SourceError as error:
+            if not isinstance(error, SourceChanged):
+                self._check_unchanged(path)  # a file cut short fails to decode: say so
+            raise
+        self._check_unchanged(path)
+        if rows_read != self.rows:
+            raise SourceChanged(changed_message(path))
+
+    def _check_unchanged(self, path: Path) -> None:
+        if self.stamp is None:
+            return
+        now = FileStamp.of(path)
+        if now is None or (now.size, now.mtime_ns) != self.stamp:
+            raise SourceChanged(
+                changed_message(path, how="was removed" if now is None else "changed")
+            )
 
     def _frames(self) -> Iterator[pl.DataFrame]:
         # One thread per part: pyarrow's own threads cost 1.4-1.6 CPU-s against 1.3 alone
@@ -143,6 +181,7 @@ def file_parts(
     batch_rows: int,
     part_rows: int | None,
     constants: tuple[tuple[str, str | None], ...] = (),
+    stamp: FileStamp | None = None,
 ) -> list[ParquetPart]:
     """Cut one file of row groups of `sizes` rows, its first row at `start`, into parts.
 
@@ -161,6 +200,7 @@ def file_parts(
             extra=tuple(extra),
             batch_rows=batch_rows,
             constants=constants,
+            stamp=None if stamp is None else (stamp.size, stamp.mtime_ns),
         )
         for first, stop in group_runs(sizes, PART_ROWS if part_rows is None else part_rows)
     ]
@@ -209,6 +249,8 @@ class ParquetFileSource(BlockSource):
 
     def _open(self) -> pq.ParquetFile:
         # A fresh reader per operation: a read-ahead thread and a drill-down can overlap.
+        # The footer read at opening is reused, so the file must still be the one it describes.
+        self.snapshot.check_file(self._path)
         return open_parquet(self._path, metadata=self._metadata)
 
     def _scan_raw(self, columns: list[str], batch_rows: int) -> Iterator[pl.DataFrame]:
@@ -229,6 +271,7 @@ class ParquetFileSource(BlockSource):
         return file_parts(
             self._path, sizes, int(self._offsets[0]), columns, self.schema(),
             where=where, extra=extra, batch_rows=batch_rows, part_rows=part_rows,
+            stamp=self.snapshot.stamp(self._path),
         )  # fmt: skip
 
     def _block_offsets(self, n_rows: int | None) -> np.ndarray:
@@ -262,9 +305,9 @@ class ParquetDatasetSource(BlockSource):
     _block_unit = "row groups"
 
     def __init__(self, path: Path, files: list[Path], base: Path) -> None:
-        super().__init__(path)
         self._files = tuple(files)
         self._base = base
+        super().__init__(path)
         self.schema()
 
     @property
@@ -295,18 +338,18 @@ class ParquetDatasetSource(BlockSource):
         return dict(self._lazy().collect_schema())
 
     @functools.cached_property
-    def _file_group_sizes(self) -> list[list[int]]:
-        """Rows of each row group of each file, from the files' footers."""
-        sizes: list[list[int]] = []
+    def _footer_rows(self) -> list[list[int]]:
+        """Rows of each row group of each file, from the footers."""
+        rows: list[list[int]] = []
         for file in self._files:
             with reading(file, self._kind):
                 metadata = pq.read_metadata(file)
-            sizes.append([metadata.row_group(i).num_rows for i in range(metadata.num_row_groups)])
-        return sizes
+            rows.append([metadata.row_group(i).num_rows for i in range(metadata.num_row_groups)])
+        return rows
 
     @functools.cached_property
     def _offsets(self) -> np.ndarray:
-        return offsets_from_sizes([n for sizes in self._file_group_sizes for n in sizes])
+        return offsets_from_sizes([n for groups in self._footer_rows for n in groups])
 
     def _parts(
         self,
@@ -319,11 +362,12 @@ class ParquetDatasetSource(BlockSource):
         """One part per file at least, each knowing its offset in the source."""
         parts: list[ParquetPart] = []
         start = 0
-        for file, sizes in zip(self._files, self._file_group_sizes, strict=True):
+        for file, sizes in zip(self._files, self._footer_rows, strict=True):
             parts += file_parts(
                 file, sizes, start, columns, self.schema(),
                 where=where, extra=extra, batch_rows=batch_rows, part_rows=part_rows,
                 constants=partition_values(file, self._base),
+                stamp=self.snapshot.stamp(file),
             )  # fmt: skip
             start += sum(sizes)
         return parts
@@ -334,8 +378,17 @@ class ParquetDatasetSource(BlockSource):
             .with_row_index(ROW_INDEX)
             .select(pl.col(ROW_INDEX).cast(pl.Int64), *columns)
         )
+        # Each file is checked against the snapshot as the scan reaches its rows.
+        file_starts = offsets_from_sizes([sum(groups) for groups in self._footer_rows])[:-1]
+        n_checked = 0
         with reading(self._path, self._kind):
-            yield from collect_batches(query, batch_rows=batch_rows)
+            for frame in collect_batches(query, batch_rows=batch_rows):
+                if frame.height:
+                    last = int(frame[ROW_INDEX][-1])
+                    n_reached = int(np.searchsorted(file_starts, last, side="right"))
+                    self.snapshot.check_files(self._files[n_checked:n_reached])
+                    n_checked = max(n_checked, n_reached)
+                yield frame
 
     def _block_offsets(self, n_rows: int | None) -> np.ndarray:
         return self._offsets

@@ -17,41 +17,41 @@ from typing import TYPE_CHECKING, Final
 import numpy as np
 import polars as pl
 
-from triage.core.checks import CurvatureCheck, RobustCheck, curvature_check, huber_refit
-from triage.core.compare import Comparison, compare_fits
+from triage.core.checks import curvature_check, huber_refit
+from triage.core.compare import compare_fits
 from triage.core.design import DesignBatch, DesignBuilder
 from triage.core.holdout import (
     HoldoutAccumulator,
     HoldoutRule,
-    HoldoutScore,
-    KFoldResult,
     cut_holdout_mask,
     kfold_rmse,
     random_holdout_mask,
 )
+from triage.core.limits import check_factor_scale
 from triage.core.lsq import QRAccumulator
 from triage.data.base import random_keys
 from triage.data.source import ROW_INDEX
 from triage.engine.passes import (
     DEFAULT_SAMPLE_ROWS,
-    DataSummary,
-    FitOutcome,
     PassPlan,
     RowCounts,
     check_rows_left,
+    naming_values_too_large,
 )
 from triage.engine.progress import ProgressCallback, ProgressTracker
 from triage.errors import SpecError
+from triage.results.checks import CurvatureCheck, RobustCheck
+from triage.results.compare import ComparedModel, ComparisonOutcome
+from triage.results.fit import FitOutcome
+from triage.results.holdout import KFoldResult
 
 if TYPE_CHECKING:
-    from triage._typing import SampleDesign
+    from triage._typing import RowsToRead, Sampling
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
     from triage.engine.cluster import ClusterEngine
 
 __all__ = [
-    "ComparedModel",
-    "ComparisonOutcome",
     "compare_models",
     "curvature_check_outcome",
     "robust_check_outcome",
@@ -64,41 +64,6 @@ A uniform sample keeps the rows with the smallest `random_keys` under the user's
 with the same keys the sample would be exactly the held-out rows. (The constant is the
 fractional part of sqrt(2) in hex, a number with no structure of its own.)
 """
-
-
-@dataclass(frozen=True)
-class ComparedModel:
-    """One model of a comparison: its fit on the rows not held out, and its held-out scores."""
-
-    label: str
-    """The terms as written."""
-    outcome: FitOutcome
-    """The fit, its builder and the rows it used; `sample` holds the sample rows every model
-    could use (the rows the K-fold RMSE, robust refit and curvature check run on)."""
-    holdout: HoldoutScore | None
-    """Score on the held-out rows, or None without a held-out rule."""
-    cv: KFoldResult | None
-    """K-fold RMSE on the sample's rows not held out, or None with too few rows."""
-
-
-@dataclass(frozen=True)
-class ComparisonOutcome:
-    """Several models fitted to the same rows, compared."""
-
-    models: tuple[ComparedModel, ...]
-    """In the order given."""
-    comparison: Comparison
-    """Criteria, nested F tests and best marks."""
-    data: DataSummary
-    """The rows every model could use; `rows_used` counts the rows fitted (not held out)."""
-    holdout_rule: HoldoutRule | None
-    """How rows were held out, if they were."""
-    rows_held_out: int
-    """Rows scored but not fitted."""
-    rows_without_cut: int
-    """Rows left out of both parts because the held-out-by column was missing."""
-    folds: int
-    """Folds of the K-fold RMSE."""
 
 
 def _check_same_rows_spec(specs: Sequence[ModelSpec]) -> None:
@@ -167,9 +132,9 @@ def compare_models(
     specs: Sequence[ModelSpec],
     labels: Sequence[str],
     *,
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
-    design: SampleDesign = "groups",
+    sampling: Sampling = "groups",
     holdout: HoldoutRule | None = None,
     folds: int = 5,
     exclude_rows: Collection[int] = (),
@@ -187,11 +152,11 @@ def compare_models(
         The models; they must share target, weights and filter.
     labels : sequence of str
         Each model's terms as written, for the table.
-    rows : int or None, default=200_000
-        Sample size; None streams every row.
+    rows : int or ALL_ROWS, default=200_000
+        Sample size; `ALL_ROWS` streams every row.
     seed : int, default=0
         Seed of the sample, of the held-out split and of the fold assignment.
-    design : {"groups", "uniform"}, default="groups"
+    sampling : {"groups", "uniform"}, default="groups"
         How the sample is drawn.
     holdout : HoldoutRule, optional
         Rows to hold out of every fit and score afterwards; with it, in-sample figures
@@ -233,7 +198,7 @@ def compare_models(
         specs[0],
         rows=rows,
         seed=seed,
-        design=design,
+        sampling=sampling,
         exclude_rows=exclude_rows,
         extra_columns=list(dict.fromkeys(extra)),
         engine=engine,
@@ -259,6 +224,7 @@ def compare_models(
     for label, builder, accumulator, scorer, cv in zip(
         labels, builders, accumulators, scorers, cvs, strict=True
     ):
+        check_factor_scale(accumulator.factor, builder.column_names, builder.spec.target)
         fit = accumulator.finalize(builder.column_names)
         outcome = FitOutcome(builder.spec, builder, fit, summary, common_sample)
         score = scorer.score(fit.coef) if holdout is not None else None
@@ -302,8 +268,11 @@ class _ComparePart:
         is_held = np.isin(batches[0].rows, held_positions)
         self.n_held += int(is_held.sum())
         self.counts.used += int((~is_held).sum())
-        for batch, accumulator, scorer in zip(batches, self.fits, self.scorers, strict=True):
-            _split_update(batch, is_held, accumulator, scorer)
+        for builder, batch, accumulator, scorer in zip(
+            builders, batches, self.fits, self.scorers, strict=True
+        ):
+            with naming_values_too_large(builder, frame):
+                _split_update(batch, is_held, accumulator, scorer)
 
     def merge(self, other: _ComparePart) -> _ComparePart:
         """Add what another part gathered (its rows come later in the source)."""

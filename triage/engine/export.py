@@ -3,30 +3,34 @@
 from __future__ import annotations
 
 import threading
-from collections.abc import Collection, Sequence
+from collections.abc import Collection, Iterator, Sequence
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Final
 
+import numpy as np
 import polars as pl
 
+from triage._typing import ALL_ROWS
+from triage.core.design import STATUS_DOMAIN, STATUS_USED
+from triage.core.filter import parse_filter
 from triage.data.export import StreamingExport, write_frame
 from triage.data.source import ROW_INDEX
 from triage.engine.passes import (
-    DEFAULT_SAMPLE_ROWS,
-    FitOutcome,
+    batch_rows_for,
     diagnose_rows,
     fit_model,
-    iter_row_diagnostics,
     run_report,
 )
+from triage.engine.progress import ProgressTracker
+from triage.results.fit import DataSummary, FitOutcome
 
 if TYPE_CHECKING:
-    from triage._typing import Criterion, SampleDesign
-    from triage.core.diagnostics import RowDiagnostics
+    from triage._typing import Criterion, RowsToRead, Sampling
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
     from triage.engine.cluster import ClusterEngine
     from triage.engine.progress import ProgressCallback
+    from triage.results.diagnostics import RowDiagnostics
 
 DIAGNOSTIC_COLUMNS: tuple[str, ...] = (
     "row",
@@ -109,30 +113,85 @@ def export_worst_rows(
     *,
     k: int,
     criterion: Criterion = "cooks",
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = ALL_ROWS,
     seed: int = 0,
-    design: SampleDesign = "groups",
-    by: Sequence[str] = (),
+    sampling: Sampling = "groups",
     force: bool = False,
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
     engine: ClusterEngine | None = None,
-) -> tuple[Path, int]:
-    """Fit, rank rows by `criterion`, and write the `k` worst; return the path and row count."""
+) -> tuple[Path, int, DataSummary]:
+    """Fit, rank rows by `criterion`, and write the `k` worst.
+
+    Every row is ranked by default (`rows=ALL_ROWS`); a list handed on should not depend on a
+    sample. Returns the path, the number of rows written and the rows ranked.
+    """
     report = run_report(
         source,
         spec,
         rows=rows,
         seed=seed,
-        design=design,
+        sampling=sampling,
         top_k=k,
-        by=by,
         on_progress=on_progress,
         cancel=cancel,
         engine=engine,
     )
     positions = [entry.row for entry in report.diagnostics.worst[criterion]]
-    return export_rows(source, report.outcome, positions, out, force=force), len(positions)
+    written = export_rows(source, report.outcome, positions, out, force=force)
+    return written, len(positions), report.outcome.data
+
+
+STATUS_FILTERED: Final = "removed by the filter"
+"""Status of a row the model's `--where` filter leaves out."""
+STATUS_MARKED: Final = "left out by a mark"
+"""Status of a row the user marked to leave out of the fit."""
+STATUS_NOT_SAMPLED: Final = "not in the sample"
+"""Status of a usable row outside the sample a sample fit used (scored, not fitted)."""
+
+
+def _status_frames(
+    source: Source,
+    outcome: FitOutcome,
+    *,
+    exclude_rows: Collection[int] = (),
+    on_progress: ProgressCallback | None = None,
+    cancel: threading.Event | None = None,
+) -> Iterator[pl.DataFrame]:
+    """Yield every row of the source, in order, with its status and, where scored, diagnostics.
+
+    The status is the first reason that applies, in the order the fit counts them: removed
+    by the filter, left out by a mark, a missing value, a level not in the fit, outside a
+    transform's domain; else ``used`` (or, after a sample fit, ``not in the sample``).
+    """
+    from triage.core.diagnostics import row_diagnostics
+
+    spec, builder = outcome.spec, outcome.builder
+    columns = list(spec.source_columns())
+    where = parse_filter(spec.where, source.schema()) if spec.where else None
+    marked = np.fromiter(sorted(set(exclude_rows)), dtype=np.int64)
+    sampled = None if outcome.data.is_full_pass else outcome.sample[ROW_INDEX].to_numpy()
+    tracker = ProgressTracker(source.row_count(), on_progress=on_progress, cancel=cancel)
+    for batch in source.scan_batches(columns, batch_rows=batch_rows_for(len(columns))):
+        tracker.advance(batch.rows_read)
+        frame = batch.frame
+        rows = frame.get_column(ROW_INDEX).to_numpy()
+        status = builder.row_status(frame).to_numpy().astype(object)
+        if sampled is not None:
+            status[(status == STATUS_USED) & ~np.isin(rows, sampled)] = STATUS_NOT_SAMPLED
+        status[np.isin(rows, marked)] = STATUS_MARKED
+        if where is not None:
+            kept = frame.select(where.fill_null(value=False)).to_series().to_numpy()
+            status[~kept] = STATUS_FILTERED
+        scored = (status == STATUS_USED) | (status == STATUS_NOT_SAMPLED)
+        design = builder.build(frame.filter(pl.Series(scored)))
+        diagnostics = row_diagnostics(
+            outcome.fit, design, np.isin(design.rows, rows[status == STATUS_USED])
+        )
+        # a row `build` left out after all (design values too large for float64)
+        status[scored & ~np.isin(rows, design.rows)] = STATUS_DOMAIN
+        labels = pl.DataFrame({"row": rows, "status": pl.Series(status, dtype=pl.String)})
+        yield labels.join(diagnostics_frame(diagnostics), on="row", how="left")
 
 
 def export_all_rows(
@@ -140,35 +199,37 @@ def export_all_rows(
     spec: ModelSpec,
     out: str | Path,
     *,
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = ALL_ROWS,
     seed: int = 0,
-    design: SampleDesign = "groups",
+    sampling: Sampling = "groups",
     force: bool = False,
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
     engine: ClusterEngine | None = None,
-) -> tuple[Path, int]:
-    """Fit (on a sample or every row), then stream every row's diagnostics to `out`.
+) -> tuple[Path, dict[str, int]]:
+    """Fit (on every row by default, or a sample), then write one line per source row to `out`.
 
-    Memory stays bounded: one batch of diagnostics is held at a time. With a cluster
-    `engine`, the fit over every row runs on the cluster and only the fit comes back; the
-    rows are then read and written here, next to the output, so no row crosses the network.
+    Each line holds the row's position, its `status` (``used`` or why the fit left it out)
+    and, where the model scored it, the `DIAGNOSTIC_COLUMNS`. Memory stays bounded: one
+    batch is held at a time. Returns the path and the number of rows of each status.
+    With a cluster `engine`, the fit over every row runs on the cluster and only the fit
+    comes back; the rows are then read and written here, next to the output, so no row
+    crosses the network.
     """
     outcome = fit_model(
         source,
         spec,
         rows=rows,
         seed=seed,
-        design=design,
+        sampling=sampling,
         on_progress=on_progress,
         cancel=cancel,
         engine=engine,
     )
-    n_rows = 0
+    counts: dict[str, int] = {}
     with StreamingExport(out, force=force, protected=(*source.files, source.path)) as sink:
-        for diagnostics in iter_row_diagnostics(
-            source, outcome, on_progress=on_progress, cancel=cancel
-        ):
-            sink.write(diagnostics_frame(diagnostics))
-            n_rows += len(diagnostics.rows)
-    return sink.path, n_rows
+        for frame in _status_frames(source, outcome, on_progress=on_progress, cancel=cancel):
+            sink.write(frame)
+            for status, n in frame.get_column("status").value_counts().iter_rows():
+                counts[status] = counts.get(status, 0) + int(n)
+    return sink.path, counts

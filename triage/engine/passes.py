@@ -17,25 +17,29 @@ from typing import TYPE_CHECKING, TypeVar
 import numpy as np
 import polars as pl
 
+from triage._typing import ALL_ROWS
 from triage.core.design import DesignBatch, DesignBudget, DesignBuilder
 from triage.core.filter import parse_filter
 from triage.core.levels import LevelCounter
-from triage.core.lsq import LinearFit, QRAccumulator
+from triage.core.limits import check_column_values, check_factor_scale
+from triage.core.lsq import QRAccumulator
 from triage.data.source import ROW_INDEX
 from triage.engine.allocator import keep_batch_memory
-from triage.engine.progress import PassProgress, ProgressCallback, ProgressTracker, ReadAhead
+from triage.engine.progress import ProgressCallback, ProgressTracker, ReadAhead
 from triage.engine.workers import fold_in_order, pass_workers
-from triage.errors import DataError
+from triage.errors import DataError, TriageError
+from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
+from triage.results.progress import PassProgress
 
 if TYPE_CHECKING:
     from numpy.typing import NDArray
 
-    from triage._typing import SampleDesign
-    from triage.core.diagnostics import Diagnostics, RowDiagnostics
+    from triage._typing import RowsToRead, Sampling
     from triage.core.levels import LevelTable
     from triage.core.spec import ModelSpec
     from triage.data.source import Batch, Sample, Source
     from triage.engine.cluster import ClusterEngine
+    from triage.results.diagnostics import Diagnostics, RowDiagnostics
 
 S = TypeVar("S")
 
@@ -72,14 +76,15 @@ MEMORY_SHARE = 0.5
 def default_memory_limit() -> int:
     """Bytes a design may take by default: `MEMORY_SHARE` of the machine's memory.
 
-    A lower address-space limit on the process (``ulimit -v``) counts instead.
+    A lower address-space or data limit on the process (``ulimit -v``, ``-d``) counts instead.
     """
     import resource
 
     total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
-    soft, _ = resource.getrlimit(resource.RLIMIT_AS)
-    if soft != resource.RLIM_INFINITY:
-        total = min(total, soft)
+    for kind in (resource.RLIMIT_AS, resource.RLIMIT_DATA):
+        soft, _ = resource.getrlimit(kind)
+        if soft != resource.RLIM_INFINITY:
+            total = min(total, soft)
     return int(total * MEMORY_SHARE)
 
 
@@ -87,53 +92,6 @@ def batch_rows_for(n_columns: int, values: int = BATCH_VALUES) -> int:
     """Rows per batch when reading `n_columns` columns: a power of two, 4,096 to `BATCH_ROWS`."""
     rows = max(values // max(n_columns, 1), 4_096)
     return min(BATCH_ROWS, 1 << (rows.bit_length() - 1))
-
-
-@dataclass(frozen=True)
-class DataSummary:
-    """Which rows a result was computed on, and why the others were left out."""
-
-    source: str
-    rows_in_source: int | None
-    rows_read: int
-    rows_filtered_out: int
-    rows_dropped_missing: int
-    rows_dropped_domain: int
-    rows_dropped_unseen_level: int
-    rows_excluded: int
-    rows_used: int
-    sample: str | None
-    """None when every row was read, else how the sample was drawn."""
-    sample_warning: str | None
-    is_full_pass: bool
-
-    @property
-    def rows_dropped(self) -> int:
-        """Rows left out for missing values, domain errors or unseen levels."""
-        return self.rows_dropped_missing + self.rows_dropped_domain + self.rows_dropped_unseen_level
-
-
-@dataclass(frozen=True)
-class FitOutcome:
-    """A fitted model together with what it was fitted on."""
-
-    spec: ModelSpec
-    builder: DesignBuilder
-    fit: LinearFit
-    data: DataSummary
-    sample: pl.DataFrame
-    """The in-memory sample the builder learned from (and the quick fit used).
-
-    Empty after `fit_model` streamed every row of a model with nothing to learn.
-    """
-
-
-@dataclass(frozen=True)
-class ReportOutcome:
-    """A fit and its residual diagnostics, computed on the same rows."""
-
-    outcome: FitOutcome
-    diagnostics: Diagnostics
 
 
 @dataclass
@@ -240,9 +198,9 @@ class PassPlan:
         source: Source,
         spec: ModelSpec,
         *,
-        rows: int | None,
+        rows: RowsToRead,
         seed: int,
-        design: SampleDesign,
+        sampling: Sampling,
         exclude_rows: Collection[int],
         extra_columns: Sequence[str] = (),
         engine: ClusterEngine | None = None,
@@ -253,12 +211,12 @@ class PassPlan:
         """
         sample = source.read_sample(
             _pass_columns(spec, extra_columns),
-            n_rows=rows if rows is not None else LEARNING_SAMPLE_ROWS,
+            n_rows=LEARNING_SAMPLE_ROWS if rows is ALL_ROWS else rows,
             seed=seed,
-            design=design,
+            sampling=sampling,
             where=_parse_where(source, spec),
         )
-        streams = rows is None and not sample.is_whole
+        streams = rows is ALL_ROWS and not sample.is_whole
         return cls(
             source,
             spec,
@@ -414,12 +372,13 @@ class PassPlan:
             is_full_pass=self.is_full_pass,
         )
 
-    def count_levels(self, tracker: ProgressTracker) -> dict[str, LevelTable] | None:
+    def count_levels(self, tracker: ProgressTracker, cap: int) -> dict[str, LevelTable] | None:
         """Count every level of the model's categoricals over every row, or None for a sample.
 
         A full pass reads only the categorical columns first (the filter's columns too),
         so its design has every level present and never drops a row as unseen. Rows the
-        user marked are counted: the coding is that of the rows under the filter.
+        user marked are counted: the coding is that of the rows under the filter. A column
+        stops being counted past `cap` levels (it is refused then, whatever its count).
         """
         columns = [t.column for t in self.spec.terms if t.kind == "categorical" and t.column]
         if self.sample is not None or not columns:
@@ -430,7 +389,7 @@ class PassPlan:
             counter.update(frame)
 
         return self.fold_frames(
-            lambda: LevelCounter(schema, columns),
+            lambda: LevelCounter(schema, columns, cap=cap),
             fold,
             LevelCounter.merge,
             RowCounts(),
@@ -449,11 +408,12 @@ class PassPlan:
             batch_rows=batch_rows_for(len(self.columns), FIT_BATCH_VALUES),
             n_workers=pass_workers(),
         )
+        cap = min(spec.max_levels, budget.max_columns())
         return DesignBuilder.learn(
             spec,
             self.source.schema(),
             self.learning_frame,
-            level_tables=self.count_levels(tracker),
+            level_tables=self.count_levels(tracker, cap),
             budget=budget,
         )
 
@@ -471,6 +431,35 @@ def _parse_where(source: Source, spec: ModelSpec) -> pl.Expr | None:
 def _pass_columns(spec: ModelSpec, extra_columns: Sequence[str]) -> list[str]:
     columns = list(spec.source_columns())
     return columns + [c for c in extra_columns if c not in columns]
+
+
+@contextlib.contextmanager
+def naming_values_too_large(builder: DesignBuilder, frame: pl.DataFrame) -> Iterator[None]:
+    """Turn a failure of the fit on a batch into an error naming a column too large to fit.
+
+    Values near the float limit overflow the fit's sums of squares, which shows up as a
+    floating-point warning or an error about non-finite values; the batch is then built
+    again, quietly, to find the column (or target) responsible. Other failures pass as
+    they were.
+    """
+    try:
+        yield
+    except (DataError, ArithmeticError, RuntimeWarning):
+        columns = _design_quietly(builder, frame)
+        if columns is not None:
+            check_column_values(columns)
+        raise
+
+
+def _design_quietly(builder: DesignBuilder, frame: pl.DataFrame) -> dict[str, np.ndarray] | None:
+    """Build `frame`'s design columns and target by label, or None if that fails too."""
+    try:
+        with np.errstate(all="ignore"):  # numpy's error state is per thread: safe in a worker
+            batch = builder.build(frame)
+    except (TriageError, ArithmeticError, RuntimeWarning):
+        return None
+    design = dict(zip(builder.column_names, batch.x.T, strict=True))
+    return {**design, builder.spec.target: batch.y}
 
 
 def check_rows_left(counts: RowCounts, spec: ModelSpec) -> None:
@@ -495,9 +484,9 @@ def fit_model(
     source: Source,
     spec: ModelSpec,
     *,
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
-    design: SampleDesign = "groups",
+    sampling: Sampling = "groups",
     exclude_rows: Collection[int] = (),
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
@@ -511,11 +500,11 @@ def fit_model(
         Where the rows come from.
     spec : ModelSpec
         The model, already validated against the source's schema.
-    rows : int or None, default=200_000
-        Sample size; None streams every row in bounded memory.
+    rows : int or ALL_ROWS, default=200_000
+        Sample size; `ALL_ROWS` streams every row in bounded memory.
     seed : int, default=0
         Seed of the sample.
-    design : {"groups", "uniform"}, default="groups"
+    sampling : {"groups", "uniform"}, default="groups"
         How the sample is drawn (see `Source.read_sample`).
     exclude_rows : collection of int
         Source positions to leave out (a what-if refit; the file is never changed).
@@ -535,7 +524,7 @@ def fit_model(
     DataError
         When no rows are left or the data cannot support the fit.
     """
-    if rows is None and not DesignBuilder.learns_from_sample(spec):
+    if rows is ALL_ROWS and not DesignBuilder.learns_from_sample(spec):
         # Nothing to learn: a full pass skips the sample (0.3 s on a 20-million-row file).
         schema = source.schema()
         columns = {c: schema[c] for c in _pass_columns(spec, ())}
@@ -554,7 +543,7 @@ def fit_model(
             spec,
             rows=rows,
             seed=seed,
-            design=design,
+            sampling=sampling,
             exclude_rows=exclude_rows,
             engine=engine,
         )
@@ -574,15 +563,16 @@ def _fit(
         return QRAccumulator(len(builder.column_names), has_intercept=spec.intercept), RowCounts()
 
     def fold(part: tuple[QRAccumulator, RowCounts], frame: pl.DataFrame) -> None:
-        accumulator, part_counts = part
-        columns = builder.build_columns(frame)
-        if columns is not None and accumulator.update_columns(columns.predictors, columns.y):
-            part_counts.used += columns.n_rows
-            return
-        # Rows to drop (nulls, NaN, levels, domain) or weights: the batch's full build.
-        batch = builder.build(frame)
-        part_counts.add(batch)
-        accumulator.update(batch.x, batch.y, batch.weights)
+        with naming_values_too_large(builder, frame):
+            accumulator, part_counts = part
+            columns = builder.build_columns(frame)
+            if columns is not None and accumulator.update_columns(columns.predictors, columns.y):
+                part_counts.used += columns.n_rows
+                return
+            # Rows to drop (nulls, NaN, levels, domain) or weights: the batch's full build.
+            batch = builder.build(frame)
+            part_counts.add(batch)
+            accumulator.update(batch.x, batch.y, batch.weights)
 
     def merge(
         part: tuple[QRAccumulator, RowCounts], other: tuple[QRAccumulator, RowCounts]
@@ -605,6 +595,7 @@ def _fit(
             "drop terms, loosen `--where`, or use more rows (`--rows`)"
         )
         raise DataError(msg)
+    check_factor_scale(accumulator.factor, builder.column_names, spec.target)
     fit = accumulator.finalize(builder.column_names)
     if not fit.tss > 0:
         msg = (
@@ -619,9 +610,9 @@ def run_report(
     source: Source,
     spec: ModelSpec,
     *,
-    rows: int | None = DEFAULT_SAMPLE_ROWS,
+    rows: RowsToRead = DEFAULT_SAMPLE_ROWS,
     seed: int = 0,
-    design: SampleDesign = "groups",
+    sampling: Sampling = "groups",
     exclude_rows: Collection[int] = (),
     top_k: int = 20,
     by: Sequence[str] = (),
@@ -635,10 +626,10 @@ def run_report(
 
     Parameters are those of `fit_model`, plus `top_k` (rows kept per worst-row list), `by`
     (columns to break residuals down by) and `is_ordered` (rows are in a meaningful order,
-    so serial-correlation flags apply). Progress runs from 0 to 1 over both passes when every
-    row is streamed. `on_fit`, if given, receives the fit as soon as pass 1 ends, so a screen
-    can show it while pass 2 runs. With a cluster `engine`, pass 2 ships the fit (a few
-    kilobytes) to the workers, never the rows.
+    so serial-correlation flags apply). Progress counts each row once per pass and says which
+    pass it is ("pass 2 of 2"); its time left covers both passes. `on_fit`, if given,
+    receives the fit as soon as pass 1 ends, so a screen can show it while pass 2 runs. With
+    a cluster `engine`, pass 2 ships the fit (a few kilobytes) to the workers, never rows.
     """
     _check_segment_columns(source, spec, by)
     plan = PassPlan.read(
@@ -646,28 +637,26 @@ def run_report(
         spec,
         rows=rows,
         seed=seed,
-        design=design,
+        sampling=sampling,
         exclude_rows=exclude_rows,
         extra_columns=by,
         engine=engine,
     )
-    total = plan.rows_total()
-
     started = time.perf_counter()
 
-    def as_part_of_both(offset: int) -> ProgressCallback | None:
-        """Report one pass's progress as part of both passes (rows done out of twice the rows)."""
+    def as_pass_of_two(number: int) -> ProgressCallback | None:
+        """Report one pass's progress as pass `number` of 2, with the time left for both."""
         if on_progress is None:
             return None
         callback = on_progress
 
         def report(progress: PassProgress) -> None:
             elapsed = time.perf_counter() - started
-            callback(_two_pass_progress(progress, offset, total, elapsed))
+            callback(_pass_of_two(progress, number, elapsed))
 
         return report
 
-    outcome = _fit(plan, on_progress=as_part_of_both(0), cancel=cancel)
+    outcome = _fit(plan, on_progress=as_pass_of_two(1), cancel=cancel)
     if on_fit is not None:
         on_fit(outcome)
     diagnostics = _diagnose(
@@ -676,26 +665,30 @@ def run_report(
         top_k=top_k,
         by=by,
         is_ordered=is_ordered,
-        on_progress=as_part_of_both(total or 0),
+        on_progress=as_pass_of_two(2),
         cancel=cancel,
     )
     return ReportOutcome(outcome, diagnostics)
 
 
-def _two_pass_progress(
-    progress: PassProgress, offset: int, total: int | None, elapsed_s: float
-) -> PassProgress:
-    """Shift one pass's progress by `offset` rows, out of `2 * total` rows for both passes.
+def _pass_of_two(progress: PassProgress, number: int, elapsed_s: float) -> PassProgress:
+    """Label one pass's progress as pass `number` of two; the time left covers both passes.
 
-    `elapsed_s` counts from the start of the first pass, so the speed and time left cover
-    both passes.
+    Rows are counted once per pass, at this pass's speed; before pass 2 starts its rows are
+    assumed to go as fast as pass 1's. `elapsed_s` counts from the start of the first pass.
     """
-    if total is None:
-        return progress
-    done = offset + progress.rows_done
-    speed = done / elapsed_s if elapsed_s > 0 else 0.0
-    eta = (2 * total - done) / speed if speed > 0 else None
-    return PassProgress(done, 2 * total, elapsed_s, speed, eta)
+    eta = progress.eta_s
+    if eta is not None and number == 1 and progress.rows_per_s > 0 and progress.rows_total:
+        eta += progress.rows_total / progress.rows_per_s
+    return PassProgress(
+        progress.rows_done,
+        progress.rows_total,
+        elapsed_s,
+        progress.rows_per_s,
+        eta,
+        pass_number=number,
+        n_passes=2,
+    )
 
 
 def _check_segment_columns(source: Source, spec: ModelSpec, by: Sequence[str]) -> None:
@@ -790,25 +783,3 @@ def rows_in_fit(
     if not outcome.data.is_full_pass:
         inside &= np.isin(rows, outcome.sample[ROW_INDEX].to_numpy())
     return inside
-
-
-def iter_row_diagnostics(
-    source: Source,
-    outcome: FitOutcome,
-    *,
-    on_progress: ProgressCallback | None = None,
-    cancel: threading.Event | None = None,
-) -> Iterator[RowDiagnostics]:
-    """Stream every row of `source` (under the model's filter) and yield per-row diagnostics.
-
-    The fit is `outcome`'s, whether it came from a sample or from every row.
-    """
-    from triage.core.diagnostics import row_diagnostics
-
-    plan = PassPlan(source, outcome.spec, sample=None, learning_frame=outcome.sample)
-    tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
-    counts = RowCounts()
-    for frame in plan.frames(counts, tracker):
-        batch = outcome.builder.build(frame)
-        if batch.x.shape[0]:
-            yield row_diagnostics(outcome.fit, batch)

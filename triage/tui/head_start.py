@@ -25,7 +25,7 @@ if TYPE_CHECKING:
 
     from triage.core.spec import ModelSpec
     from triage.data.source import CsvOptions, Source
-    from triage.engine.passes import FitOutcome, ReportOutcome
+    from triage.results.fit import FitOutcome, ReportOutcome
     from triage.tui.settings import Settings
 
 PROFILE_ROWS: Final = 20_000
@@ -77,7 +77,7 @@ def open_and_profile(path: str, *, csv: CsvOptions | None, seed: int) -> OpenedD
 
     source = open_source(path, csv=csv or CsvOptions())
     schema = source.schema()
-    sample = source.read_sample(list(schema), n_rows=PROFILE_ROWS, seed=seed, design="groups")
+    sample = source.read_sample(list(schema), n_rows=PROFILE_ROWS, seed=seed, sampling="groups")
     return OpenedData(source, profile_columns(schema, sample.frame))
 
 
@@ -176,9 +176,10 @@ class HeadStart:
                 self._planned.spec,
                 rows=settings.sample_rows,
                 seed=settings.seed,
-                design=settings.sample_design,
+                sampling=settings.sampling,
                 top_k=settings.top_k,
                 by=self._planned.by,
+                is_ordered=settings.is_ordered,
                 cancel=self._cancel,
                 on_fit=self._fit.set_result,
             )

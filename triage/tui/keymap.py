@@ -21,6 +21,9 @@ from triage.tui.locations import shipped_keymaps, user_keymap_path
 DEFAULT_KEYSET = "default"
 """Name of the shipped keymap every other one is laid over."""
 
+RENAMED_IDS = {"pane-predictors": "pane-inputs", "pane-segments": "pane-groups"}
+"""Binding ids of earlier versions -> today's, so an older keymap file keeps working."""
+
 
 @dataclass(frozen=True)
 class KeymapLayer:
@@ -65,7 +68,8 @@ def parse_keymap(text: str, *, label: str) -> KeymapLayer:
     Parameters
     ----------
     text : str
-        TOML: a flat table of `binding-id = "key"` (several keys: `"a,b"`).
+        TOML: a flat table of `binding-id = "key"` (several keys: `"a,b"`); an id of an
+        earlier version (`RENAMED_IDS`) is read as today's.
     label : str
         How to name the file in messages.
 
@@ -97,7 +101,7 @@ def parse_keymap(text: str, *, label: str) -> KeymapLayer:
         except InvalidBinding as error:
             msg = f"keymap `{label}` maps `{binding_id}` to {value!r}, which holds an empty key"
             raise KeymapError(msg) from error
-        keys[binding_id] = value.strip()
+        keys[RENAMED_IDS.get(binding_id, binding_id)] = value.strip()
     return KeymapLayer(label=label, keys=keys)
 
 

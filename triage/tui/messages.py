@@ -10,9 +10,9 @@ from textual.message import Message
 if TYPE_CHECKING:
     import polars as pl
 
-    from triage.core.diagnostics import RowDiagnostics
-    from triage.engine.passes import FitOutcome, ReportOutcome
-    from triage.engine.progress import PassProgress
+    from triage.results.diagnostics import RowDiagnostics
+    from triage.results.fit import FitOutcome, ReportOutcome
+    from triage.results.progress import PassProgress
 
 
 @dataclass

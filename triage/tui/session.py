@@ -9,9 +9,9 @@ from typing import TYPE_CHECKING, Final
 if TYPE_CHECKING:
     import polars as pl
 
-    from triage.core.compare import Comparison
     from triage.core.spec import ModelSpec, Term
-    from triage.engine.passes import ReportOutcome
+    from triage.results.compare import Comparison
+    from triage.results.fit import ReportOutcome
     from triage.tui.settings import Settings
 
 TRANSFORM_CYCLE: Final[tuple[str | None, ...]] = (None, "log", "log1p", "sqrt", "square", "std")

@@ -7,7 +7,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from triage._typing import SampleDesign
+from triage._typing import Sampling
 
 if TYPE_CHECKING:
     from triage.data.source import CsvOptions
@@ -48,7 +48,7 @@ class Settings:
     """Start a pass over every row as soon as the model is fitted on the sample."""
     seed: int = 0
     """Seed of the sample, so a session can be repeated."""
-    sample_design: SampleDesign = "groups"
+    sampling: Sampling = "groups"
     """How the sample is drawn: `groups` (whole row groups at random) or `uniform`."""
     keyset: str | None = None
     """A shipped alternative keymap laid over the default, e.g. `fkeys`."""
@@ -58,5 +58,7 @@ class Settings:
     """The user's keymap file; None means `keymap.toml` in the configuration directory."""
     top_k: int = 50
     """Rows kept per worst-row list."""
+    is_ordered: bool = False
+    """Row order means something (time order): judge serial correlation and trends."""
     is_colorless: bool = field(default_factory=lambda: bool(os.environ.get("NO_COLOR")))
     """Draw without colour (set when the `NO_COLOR` environment variable is non-empty)."""

@@ -10,12 +10,18 @@ import textwrap
 from typing import TYPE_CHECKING, Any, Final
 
 from triage.views.format import NA, format_count, format_number, format_p
-from triage.views.text import Align, join_sections, render_data_summary, rule, table
+from triage.views.text import (
+    Align,
+    criterion_text,
+    join_sections,
+    render_data_summary,
+    rule,
+    table,
+)
 
 if TYPE_CHECKING:
-    from triage.core.checks import CurvatureCheck, RobustCheck
-    from triage.core.compare import Comparison, Criterion
-    from triage.engine.compare import ComparisonOutcome
+    from triage.results.checks import CurvatureCheck, RobustCheck
+    from triage.results.compare import Comparison, ComparisonOutcome, Criterion
 
 BEST_MARK: Final = "◆"
 """Put after the best value of a criterion in the comparison table."""
@@ -42,10 +48,6 @@ def _title(title: str, label: str) -> str:
     return f"{title}: {label}" if label else title
 
 
-def _digits(field: str) -> int:
-    return 7 if field in ("aic", "bic") else 4
-
-
 def render_comparison_table(comparison: Comparison, *, width: int = 100) -> str:
     """Lay out one line per model with the best value of each criterion marked.
 
@@ -66,7 +68,9 @@ def render_comparison_table(comparison: Comparison, *, width: int = 100) -> str:
     for i, model in enumerate(comparison.models):
         cells = [f"#{i + 1}", format_count(model.n)]
         for _, field, criterion in _COLUMNS:
-            text = format_number(getattr(model, field), digits=_digits(field))
+            value = getattr(model, field)
+            whole = field in ("aic", "bic")
+            text = criterion_text(value) if whole else format_number(value)
             if criterion is not None and comparison.best.get(criterion) == i:
                 text += f" {BEST_MARK}"
             elif text != NA:
@@ -181,8 +185,13 @@ def render_robust_check(check: RobustCheck, *, label: str = "", width: int = 100
     return "\n".join(lines)
 
 
+def _percent(value: float | None) -> str:
+    """Format a relative gain in percent with two decimals (``15.49``, ``-0.01``)."""
+    return NA if value is None else f"{100 * value:.2f}"
+
+
 def render_curvature_check(check: CurvatureCheck, *, label: str = "", width: int = 100) -> str:
-    """Show, per numeric predictor, how much a spline lowers the K-fold RMSE.
+    """Show, per numeric predictor, how much a spline lowers the held-out errors.
 
     Parameters
     ----------
@@ -196,18 +205,17 @@ def render_curvature_check(check: CurvatureCheck, *, label: str = "", width: int
     Returns
     -------
     str
-        The ``curvature check`` section with a plain-language suggestion.
+        The ``curvature check`` section: each predictor's gain in K-fold RMSE and in
+        median absolute held-out error (MedAE), with a plain-language suggestion.
     """
-    headers = ["predictor", "RMSE with spline", "gain", "gain %", "gain % beside top", ""]
+    headers = ["predictor", "RMSE gain %", "beside top", "MedAE gain %", "beside top", ""]
     rows = [
         [
             p.predictor,
-            format_number(p.spline_rmse),
-            format_number(p.gain, digits=3),
-            format_number(100 * p.relative_gain, digits=3),
-            NA
-            if p.relative_gain_given_top is None
-            else format_number(100 * p.relative_gain_given_top, digits=3),
+            _percent(p.relative_gain),
+            _percent(p.relative_gain_given_top),
+            _percent(p.robust_gain),
+            _percent(p.robust_gain_given_top),
             "may be curved" if p.is_flagged else "",
         ]
         for p in check.predictors
@@ -215,8 +223,15 @@ def render_curvature_check(check: CurvatureCheck, *, label: str = "", width: int
     align: list[Align] = ["<", ">", ">", ">", ">", "<"]
     lines = [
         rule(_title(f"curvature check ({check.folds}-fold, on the sample)", label), width),
-        f"K-fold RMSE of the model as written: {format_number(check.base_rmse)}",
-        table(headers, rows, align=align, width=width),
+        _wrap(
+            "held-out error of the model as written: RMSE "
+            f"{format_number(check.base_rmse)}, median absolute error (MedAE) "
+            f"{format_number(check.base_median_abs_error)}. MedAE barely moves for a few "
+            "gross errors, which can swamp the RMSE; 'beside top' is the gain added to the "
+            "first predictor's spline.",
+            width,
+        ),
+        table(headers, rows, align=align, width=width, shrink=5),
     ]
     if check.flagged:
         names = ", ".join(f"`{name}`" for name in check.flagged)
@@ -226,9 +241,8 @@ def render_curvature_check(check: CurvatureCheck, *, label: str = "", width: int
         )
     elif check.predictors:
         advice = (
-            f"no spline lowers the K-fold RMSE by {check.threshold:.0%} or more; the largest "
-            f"gain is for `{check.predictors[0].predictor}`. Very large residuals can hide a "
-            "curve: see the robust refit and the worst rows."
+            f"no spline lowers the RMSE or the MedAE by {check.threshold:.0%} or more; the "
+            f"largest gain is for `{check.predictors[0].predictor}`."
         )
     else:
         advice = "no numeric predictor with enough distinct values to check."
@@ -289,6 +303,16 @@ def render_holdout_summary(outcome: ComparisonOutcome, *, width: int = 100) -> s
                 f"`{outcome.holdout_rule.column}` and were left out of both parts"
             )
     body = "\n".join(_wrap(line, width) for line in split)
+    if len(outcome.comparison.models) == 1:
+        # One model has nothing to be compared with: its held-out figures, no table.
+        model = outcome.comparison.models[0]
+        figures = [
+            ("held-out R²", format_number(model.holdout_r2)),
+            ("held-out RMSE", format_number(model.holdout_rmse)),
+            (f"{outcome.folds}-fold RMSE", format_number(model.cv_rmse)),
+        ]
+        shown = [f"{label:<15}{value}" for label, value in figures if value != NA]
+        return f"{rule('rows held out of the fit', width)}\n{body}\n" + "\n".join(shown)
     table_text = render_comparison_table(outcome.comparison, width=width)
     return f"{rule('rows held out of the fit', width)}\n{body}\n\n{table_text}"
 
@@ -405,14 +429,16 @@ def curvature_to_json(check: CurvatureCheck) -> dict[str, Any]:
     Returns
     -------
     dict
-        ``n``, ``folds``, ``base_rmse``, ``threshold`` and ``predictors`` (largest gain
-        first: ``predictor``, ``spline_rmse``, ``gain``, ``relative_gain``,
-        ``relative_gain_given_top``, ``flagged``).
+        ``n``, ``folds``, ``base_rmse``, ``base_median_abs_error``, ``threshold`` and
+        ``predictors`` (largest robust gain first: ``predictor``, ``spline_rmse``, ``gain``,
+        ``relative_gain``, ``relative_gain_given_top``, ``spline_median_abs_error``,
+        ``robust_gain``, ``robust_gain_given_top``, ``flagged``).
     """
     return {
         "n": check.n,
         "folds": check.folds,
         "base_rmse": check.base_rmse,
+        "base_median_abs_error": check.base_median_abs_error,
         "threshold": check.threshold,
         "predictors": [
             {
@@ -421,6 +447,9 @@ def curvature_to_json(check: CurvatureCheck) -> dict[str, Any]:
                 "gain": p.gain,
                 "relative_gain": p.relative_gain,
                 "relative_gain_given_top": p.relative_gain_given_top,
+                "spline_median_abs_error": p.spline_median_abs_error,
+                "robust_gain": p.robust_gain,
+                "robust_gain_given_top": p.robust_gain_given_top,
                 "flagged": bool(p.is_flagged),
             }
             for p in check.predictors

@@ -15,12 +15,13 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from triage.views.format import format_number
-from triage.views.text import model_formula
+from triage.views.text import CODING_RULE, model_formula
 
 if TYPE_CHECKING:
-    from triage.core.diagnostics import Diagnostics, ResidualBin, WorstRow
-    from triage.core.residual_tests import ResidualTest
-    from triage.engine.passes import DataSummary, FitOutcome, ReportOutcome
+    from triage.core.design import DesignBuilder
+    from triage.core.spec import Term
+    from triage.results.diagnostics import Diagnostics, ResidualBin, ResidualTest, WorstRow
+    from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
 
 
 def json_safe(value: Any) -> Any:
@@ -75,6 +76,41 @@ def _data_to_json(data: DataSummary) -> dict[str, Any]:
     }
 
 
+def _term_to_json(term: Term, builder: DesignBuilder) -> dict[str, Any]:
+    """Describe one term so that its design columns can be rebuilt from the source.
+
+    Every term gives its kind, column, transform, power, factors and design columns; a
+    ``std()`` term the mean and SD it uses; a categorical its levels in natural order with
+    the rows counted for each (the rows it was learned from), its reference level and
+    whether ``--reference`` named it.
+    """
+    entry: dict[str, Any] = {
+        "term": term.label,
+        "kind": term.kind,
+        "column": term.column,
+        "transform": term.transform,
+        "arg": term.arg,
+        "factors": [_term_to_json(f, builder) for f in term.factors],
+        "design_columns": [
+            name
+            for name, owner in zip(builder.column_names, builder.term_of_column, strict=True)
+            if owner == term.label
+        ],
+    }
+    if term.label in builder.scaling:
+        mean, sd = builder.scaling[term.label]
+        entry["mean"], entry["sd"] = mean, sd
+    column = term.column
+    if term.kind == "categorical" and column is not None and column in builder.level_tables:
+        table = builder.level_tables[column]
+        entry["levels"] = [
+            {"level": level, "rows": n} for level, n in zip(table.levels, table.counts, strict=True)
+        ]
+        entry["reference"] = builder.reference_levels[column]
+        entry["reference_given"] = column in builder.spec.reference
+    return entry
+
+
 def fit_to_json(outcome: FitOutcome) -> dict[str, Any]:
     """Return a fit as a JSON-safe dictionary.
 
@@ -115,6 +151,11 @@ def fit_to_json(outcome: FitOutcome) -> dict[str, Any]:
             "weights": spec.weights,
             "where": spec.where,
             "formula": model_formula(spec),
+            "categorical": list(spec.categorical),
+            "max_levels": spec.max_levels,
+            "drop_invalid": spec.drop_invalid,
+            "term_coding": [_term_to_json(term, outcome.builder) for term in spec.terms],
+            "reference_rule": CODING_RULE,
         },
         "coefficients": coefficients,
         "aliased": list(fit.aliased),

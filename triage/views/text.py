@@ -7,20 +7,29 @@ characters a line (long names are cut with an ellipsis), with numbers formatted 
 
 from __future__ import annotations
 
+import math
 import textwrap
 from collections.abc import Mapping, Sequence
 from typing import TYPE_CHECKING, Any, Final, Literal
 
 from triage._typing import CRITERIA
 from triage.core.spec import quote_name
-from triage.views.format import NA, format_count, format_number, format_p, truncate
+from triage.views.format import (
+    NA,
+    as_float,
+    format_count,
+    format_number,
+    format_p,
+    truncate,
+)
 
 if TYPE_CHECKING:
     from triage._typing import Criterion
-    from triage.core.diagnostics import Diagnostics
+    from triage.core.design import DesignBuilder
     from triage.core.lsq import LinearFit
     from triage.core.spec import ModelSpec
-    from triage.engine.passes import DataSummary, FitOutcome, ReportOutcome
+    from triage.results.diagnostics import Diagnostics
+    from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
 
 Align = Literal["<", ">"]
 
@@ -63,12 +72,14 @@ def rule(title: str, width: int = 100) -> str:
     return head + "─" * max(width - len(head), 2)
 
 
-def _pairs(pairs: Sequence[tuple[str, str]], width: int) -> str:
+def _pairs(pairs: Sequence[tuple[str, str]], width: int, label_width: int | None = None) -> str:
     """Lay out label/value pairs one a line, labels padded to a common column.
 
     A value too long for its line wraps onto following lines under the value column.
+    `label_width` fixes the label column (several blocks then line up).
     """
-    label_width = min(_LABEL_WIDTH, max((len(label) for label, _ in pairs), default=0))
+    if label_width is None:
+        label_width = min(_LABEL_WIDTH, max((len(label) for label, _ in pairs), default=0))
     indent = " " * (label_width + len(_GAP))
     lines = []
     for label, value in pairs:
@@ -89,8 +100,11 @@ def table(
 ) -> str:
     """Lay out already formatted cells in aligned columns under a header line.
 
-    When the table would be wider than ``width``, the column ``shrink`` gives up room
-    (its cells are cut with an ellipsis); the other columns keep their full width.
+    When the table would be wider than ``width`` and ``shrink`` is a free-text column
+    (not the first), that column gives up room (its cells are cut with an ellipsis).
+    The first column names the rows and is never cut while the table has other columns
+    to move: the columns that do not fit go to a second block below, again headed by
+    the names, so every row stays told apart from the others.
 
     Parameters
     ----------
@@ -103,14 +117,31 @@ def table(
     width : int, default=100
         Line width.
     shrink : int, default=0
-        Index of the column to narrow when space runs out (names, or free text).
+        Index of the column to narrow when space runs out (free text); 0 (the row
+        names) moves columns to a second block instead.
 
     Returns
     -------
     str
-        The header, a thin rule and the rows.
+        The header, a thin rule and the rows (and any further blocks after a blank line).
     """
     widths = [max([len(h)] + [len(r[i]) for r in rows]) for i, h in enumerate(headers)]
+    total = sum(widths) + len(_GAP) * (len(widths) - 1)
+    if shrink == 0 and total > width and len(widths) > 2:
+        used = widths[0] + len(_GAP) + widths[1]
+        keep = 2
+        while keep < len(widths) and used + len(_GAP) + widths[keep] <= width:
+            used += len(_GAP) + widths[keep]
+            keep += 1
+        rest = [0, *range(keep, len(widths))]
+        first = table(headers[:keep], [r[:keep] for r in rows], align=align[:keep], width=width)
+        second = table(
+            [headers[i] for i in rest],
+            [[r[i] for i in rest] for r in rows],
+            align=[align[i] for i in rest],
+            width=width,
+        )
+        return f"{first}\n\n{second}"
     others = sum(widths) - widths[shrink] + len(_GAP) * (len(widths) - 1)
     widths[shrink] = max(min(widths[shrink], width - others), min(len(headers[shrink]), 8))
 
@@ -205,44 +236,165 @@ def render_model(spec: ModelSpec, *, width: int = 100) -> str:
     return rule("model", width) + "\n" + _pairs(pairs, width)
 
 
-def render_fit_quality(fit: LinearFit, *, width: int = 100) -> str:
-    """Show how well the model fits overall, with a reminder of what that cannot tell.
+CODING_RULE: Final = (
+    "each indicator's coefficient is its level's difference from the reference level; "
+    "the reference is the level with the most rows (ties: the first in natural order) "
+    "unless `--reference COL=LEVEL` names one"
+)
+"""The reference rule, said under the coding section."""
+
+
+def coding_lines(builder: DesignBuilder) -> list[tuple[str, str]]:
+    """Describe each categorical's coding: its level count and reference, and why that one.
 
     Parameters
     ----------
-    fit : LinearFit
-        The fit.
+    builder : DesignBuilder
+        The fitted model's design.
+
+    Returns
+    -------
+    list of (str, str)
+        (column, e.g. ``12 levels, reference R00 (most rows: 151,234 of 970,479)``).
+    """
+    lines = []
+    for column, table in builder.level_tables.items():
+        reference = builder.reference_levels[column]
+        if column in builder.spec.reference:
+            why = "named with --reference"
+        else:
+            n_reference = table.counts[table.levels.index(reference)]
+            why = f"most rows: {n_reference:,} of {table.n_rows:,}"
+        lines.append((column, f"{len(table.levels):,} levels, reference {reference} ({why})"))
+    return lines
+
+
+def render_coding(builder: DesignBuilder, *, width: int = 100) -> str:
+    """Show the reference level of each categorical term and the rule that chose it.
+
+    Parameters
+    ----------
+    builder : DesignBuilder
+        The fitted model's design.
     width : int, default=100
         Line width.
 
     Returns
     -------
     str
-        The ``fit quality`` section: R² (marked uncentered without an intercept),
-        adjusted R², residual SD, F with its df and p, log-likelihood, AIC, BIC,
-        condition number and n.
+        The ``categorical coding`` section, or "" for a model without categoricals.
     """
-    centred = "" if fit.has_intercept else " (uncentered: no intercept)"
-    f_label = (
-        f"F on {format_count(fit.df_model)} and {format_count(fit.df_resid)} df"
-        f"{'' if fit.has_intercept else ' (uncentered)'}"
-    )
-    pairs = [
-        (f"R²{centred}", format_number(fit.r2)),
-        ("adjusted R²", format_number(fit.adj_r2)),
-        ("spread of residuals (SD)", format_number(fit.resid_sd)),
-        (f_label, f"{format_number(fit.f)}   p {format_p(fit.f_p)}"),
-        ("log-likelihood", format_number(fit.loglik, digits=6)),
-        ("AIC", format_number(fit.aic, digits=6)),
-        ("BIC", format_number(fit.bic, digits=6)),
-        ("condition number", format_number(fit.condition_number, digits=3)),
-        ("rows (n)", format_count(fit.n)),
+    lines = coding_lines(builder)
+    if not lines:
+        return ""
+    note = textwrap.fill(CODING_RULE, width=width)
+    return f"{rule('categorical coding', width)}\n{_pairs(lines, width)}\n{note}"
+
+
+def _grouped(groups: Sequence[tuple[str, Sequence[tuple[str, str]]]], width: int) -> str:
+    """Lay out label/value pairs under question headings; labels share one column."""
+    indent = "  "
+    labels = [label for _, pairs in groups for label, _ in pairs]
+    label_width = min(_LABEL_WIDTH, max(map(len, labels), default=0))
+    lines = []
+    for question, pairs in groups:
+        if not pairs:
+            continue
+        lines.append(truncate(question, width))
+        block = _pairs(list(pairs), width - len(indent), label_width)
+        lines += [indent + line for line in block.split("\n")]
+    return "\n".join(lines)
+
+
+def criterion_text(value: object) -> str:
+    """Format an AIC or BIC whole to one decimal (``1,182,597.8``), the same on every screen.
+
+    Models are compared by differences of a few units, so these are never rounded to
+    significant digits.
+    """
+    number = as_float(value)
+    if number is None or not math.isfinite(number):
+        return format_number(number)
+    return f"{number:,.1f}"
+
+
+def parameters_counted(fit: LinearFit) -> int:
+    """How many parameters AIC and BIC count: the estimated coefficients, intercept included.
+
+    The error variance is not counted (the convention the reference libraries use).
+    """
+    return fit.df_model + int(fit.has_intercept)
+
+
+def render_fit_quality(fit: LinearFit, *, target: str | None = None, width: int = 100) -> str:
+    """Show how well the model fits, grouped by the question each figure answers.
+
+    Parameters
+    ----------
+    fit : LinearFit
+        The fit.
+    target : str, optional
+        The target's name, to say in whose units the errors are measured.
+    width : int, default=100
+        Line width.
+
+    Returns
+    -------
+    str
+        The ``fit quality`` section in four groups: how much the model explains (R²,
+        adjusted R²), how big its errors are in the target's units (residual SD),
+        whether its terms earn their place (the joint F test, AIC, BIC and how many
+        parameters they count), and whether the numbers can be trusted (rows used, the
+        condition number of the scaled design, weights).
+    """
+    uncentered = "" if fit.has_intercept else " (uncentered: no intercept)"
+    baseline = "intercept only" if fit.has_intercept else "none"
+    parameters = parameters_counted(fit)
+    counted = f"{parameters} coefficient{'' if parameters == 1 else 's'} counted"
+    units = f"in the units of {quote_name(target)}" if target else "in the target's units"
+    groups: list[tuple[str, list[tuple[str, str]]]] = [
+        (
+            "how much of the target the model explains",
+            [
+                (f"R²{uncentered}", format_number(fit.r2)),
+                ("adjusted R²", format_number(fit.adj_r2)),
+            ],
+        ),
+        (
+            f"how big the errors are, {units}",
+            [("typical error (residual SD)", format_number(fit.resid_sd))],
+        ),
+        (
+            "whether the terms earn their place",
+            [
+                (
+                    f"all terms vs {baseline}",
+                    f"F {format_number(fit.f)}, p {format_p(fit.f_p)}  "
+                    f"(df {format_count(fit.df_model)} and {format_count(fit.df_resid)})",
+                ),
+                ("AIC (lower is better)", f"{criterion_text(fit.aic)}  ({counted})"),
+                ("BIC (lower is better)", f"{criterion_text(fit.bic)}  ({counted})"),
+            ],
+        ),
+        (
+            "whether the numbers can be trusted",
+            [
+                ("rows used", format_count(fit.n)),
+                (
+                    "condition no., scaled design",
+                    format_number(fit.condition_number, digits=3)
+                    + "  (common practice: over 30 means collinear)",
+                ),
+                *(
+                    [("weights", "yes: R², SD and tests use weighted residuals")]
+                    if fit.is_weighted
+                    else []
+                ),
+            ],
+        ),
     ]
-    if fit.is_weighted:
-        pairs.append(("weighted", "yes: R², SD and tests use weighted residuals"))
-    body = _pairs(pairs, width)
     reminder = "\n".join(textwrap.wrap(R2_REMINDER, width=max(width, 20)))
-    return f"{rule('fit quality', width)}\n{body}\n{reminder}"
+    return f"{rule('fit quality', width)}\n{_grouped(groups, width)}\n{reminder}"
 
 
 def render_coefficients(
@@ -270,22 +422,21 @@ def render_coefficients(
     str
         The ``coefficients`` section; aliased columns show the not-available mark.
     """
-    headers = ["term", "estimate", "std error", "t", "p", "95% low", "95% high"]
+    headers = ["term", "estimate", "std error"]
     if robust_se is not None:
         headers.append(f"{robust_label} SE")
+    headers += ["t", "p", "95% low", "95% high"]
     rows = []
     for i, name in enumerate(fit.names):
-        row = [
-            name,
-            format_number(fit.coef[i]),
-            format_number(fit.std_error[i]),
+        row = [name, format_number(fit.coef[i]), format_number(fit.std_error[i])]
+        if robust_se is not None:
+            row.append(format_number(robust_se.get(name)))
+        row += [
             format_number(fit.t[i], digits=3),
             format_p(fit.p[i]),
             format_number(fit.ci_low[i]),
             format_number(fit.ci_high[i]),
         ]
-        if robust_se is not None:
-            row.append(format_number(robust_se.get(name)))
         rows.append(row)
     align: list[Align] = [">"] * len(headers)
     align[0] = "<"
@@ -321,54 +472,86 @@ def render_aliased(fit: LinearFit, *, width: int = 100) -> str:
     return "\n".join(lines)
 
 
-TEST_ROWS: Final[tuple[tuple[str, str, str], ...]] = (
-    ("breusch_pagan", "Breusch–Pagan (Koenker)", "changing spread"),
-    ("reset", "RESET (fitted², fitted³)", "missed curvature"),
-    ("jarque_bera", "Jarque–Bera", "non-normal residuals"),
-    ("durbin_watson", "Durbin–Watson", "order effect; 2 means none"),
-)
-"""Test key, display name, and what a small p (or a DW far from 2) may point to."""
-
-
 def _df_text(df: Sequence[float]) -> str:
     """Degrees of freedom as ``5`` or ``2, 492``; the not-available mark when there are none."""
     return ", ".join(format_number(d, digits=6, trim=True) for d in df) if len(df) else NA
 
 
-def render_tests(tests: Mapping[str, Any], *, width: int = 100) -> str:
-    """Show the residual tests with statistic, degrees of freedom and p.
+def _test_row(test: Any, name: str) -> list[str]:
+    return [name, format_number(test.statistic), _df_text(test.df), format_p(test.p_value)]
+
+
+def render_tests(diagnostics: Diagnostics, *, is_ordered: bool = False, width: int = 100) -> str:
+    """Ask the residuals four questions, each answered by its test and figures.
 
     Parameters
     ----------
-    tests : mapping of str to ResidualTest
-        ``breusch_pagan``, ``reset``, ``jarque_bera``, ``durbin_watson`` (missing keys
-        are skipped).
+    diagnostics : Diagnostics
+        From pass 2: its tests and the shape of the residuals.
+    is_ordered : bool, default=False
+        The user said row order means something (time order): only then is the
+        Durbin–Watson statistic shown, under its own question.
     width : int, default=100
         Line width.
 
     Returns
     -------
     str
-        The ``residual tests`` section; a p-value is a hint to look closer, not a verdict.
+        The ``questions for the residuals`` section: whether the spread changes
+        (Breusch–Pagan), whether curvature is left (RESET), whether the tails are a
+        normal's (Jarque–Bera, skewness, excess kurtosis) and, for ordered rows, whether
+        neighbours are related (Durbin–Watson). A small p is a hint to look, not a verdict.
     """
-    rows = [
+    tests = diagnostics.tests
+    groups: list[tuple[str, list[list[str]]]] = []
+    if "breusch_pagan" in tests:
+        groups.append(
+            (
+                "does the spread change with the inputs?",
+                [_test_row(tests["breusch_pagan"], "Breusch–Pagan (Koenker)")],
+            )
+        )
+    if "reset" in tests:
+        groups.append(
+            (
+                "is there curvature the terms miss?",
+                [_test_row(tests["reset"], "RESET (fitted², fitted³)")],
+            )
+        )
+    tails = [_test_row(tests["jarque_bera"], "Jarque–Bera")] if "jarque_bera" in tests else []
+    tails += [
+        ["skewness (normal: 0)", format_number(diagnostics.resid_skewness, digits=3), "", ""],
         [
-            name,
-            format_number(tests[key].statistic),
-            _df_text(tests[key].df),
-            format_p(tests[key].p_value),
-            hint,
-        ]
-        for key, name, hint in TEST_ROWS
-        if key in tests
+            "excess kurtosis (normal: 0)",
+            format_number(diagnostics.resid_kurtosis - 3.0, digits=3),
+            "",
+            "",
+        ],
     ]
-    headers = ["test", "statistic", "df", "p", "a small p may point to"]
-    body = table(headers, rows, align=["<", ">", ">", ">", "<"], width=width, shrink=4)
-    return f"{rule('residual tests', width)}\n{body}"
+    groups.append(("are the tails like a normal's?", tails))
+    if is_ordered and "durbin_watson" in tests:
+        groups.append(
+            (
+                "are neighbouring rows related? (2: not at all)",
+                [_test_row(tests["durbin_watson"], "Durbin–Watson")],
+            )
+        )
+    headers = ["", "statistic", "df", "p"]
+    rows = [row for _, group in groups for row in group]
+    body = table(headers, rows, align=["<", ">", ">", ">"], width=width - 2).split("\n")
+    lines = [rule("questions for the residuals", width), body[0], body[1]]
+    at = 2
+    for question, group in groups:
+        lines.append(truncate(question, width))
+        lines += ["  " + line for line in body[at : at + len(group)]]
+        at += len(group)
+    lines[1] = "  " + lines[1]
+    lines[2] = "  " + lines[2]
+    return "\n".join(line.rstrip() for line in lines)
 
 
 def render_residual_summary(diagnostics: Diagnostics, *, width: int = 100) -> str:
-    """Show the spread and shape of the residuals: extremes, quantiles, skewness, kurtosis.
+    """Show where the residuals lie: the extremes and quantiles.
 
     Parameters
     ----------
@@ -390,17 +573,10 @@ def render_residual_summary(diagnostics: Diagnostics, *, width: int = 100) -> st
     ]
     points.append(("largest", hist.maximum))
     headers = [label for label, _ in points]
-    cells = [format_number(v) for _, v in points]
+    cells = [format_number(v, digits=5) for _, v in points]
     quantiles = table(headers, [cells], align=[">"] * len(headers), width=width)
-    shape = _pairs(
-        [
-            ("rows", format_count(diagnostics.n)),
-            ("skewness (0 if symmetric)", format_number(diagnostics.resid_skewness, digits=3)),
-            ("kurtosis (3 for a normal)", format_number(diagnostics.resid_kurtosis, digits=3)),
-        ],
-        width,
-    )
-    return f"{rule('residuals', width)}\n{shape}\n{quantiles}"
+    title = f"residuals: {format_count(diagnostics.n)} rows"
+    return f"{rule(title, width)}\n{quantiles}"
 
 
 def render_worst_rows(rows: Sequence[Any], *, criterion: Criterion, width: int = 100) -> str:
@@ -559,8 +735,9 @@ def render_fit_report(outcome: FitOutcome, *, width: int = 100) -> str:
         [
             render_data_summary(outcome.data, width=width),
             render_model(outcome.spec, width=width),
-            render_fit_quality(outcome.fit, width=width),
+            render_fit_quality(outcome.fit, target=outcome.spec.target, width=width),
             render_coefficients(outcome.fit, width=width),
+            render_coding(outcome.builder, width=width),
             render_aliased(outcome.fit, width=width),
         ]
     )
@@ -572,7 +749,12 @@ def _chart_height(width: int) -> int:
 
 
 def render_full_report(
-    report: ReportOutcome, *, width: int = 100, charts: bool = True, color: bool = False
+    report: ReportOutcome,
+    *,
+    width: int = 100,
+    charts: bool = True,
+    color: bool = False,
+    is_ordered: bool = False,
 ) -> str:
     """Compose the report of ``triage report``: the fit, hints, tests, charts and tables.
 
@@ -586,6 +768,8 @@ def render_full_report(
         Include the residual histogram and the binned residual charts.
     color : bool, default=False
         Colour the charts with ANSI codes; the tables are always plain.
+    is_ordered : bool, default=False
+        Row order means something: show the Durbin–Watson statistic.
 
     Returns
     -------
@@ -601,11 +785,12 @@ def render_full_report(
     sections = [
         render_data_summary(outcome.data, width=width),
         render_model(outcome.spec, width=width),
-        render_fit_quality(outcome.fit, width=width),
+        render_fit_quality(outcome.fit, target=outcome.spec.target, width=width),
         render_flags(diagnostics.flags, width=width),
         render_coefficients(outcome.fit, robust_se=hc3, robust_label="HC3", width=width),
+        render_coding(outcome.builder, width=width),
         render_aliased(outcome.fit, width=width),
-        render_tests(diagnostics.tests, width=width),
+        render_tests(diagnostics, is_ordered=is_ordered, width=width),
         render_residual_summary(diagnostics, width=width),
     ]
     if charts:

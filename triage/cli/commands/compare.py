@@ -62,6 +62,7 @@ def run(args: argparse.Namespace) -> int:
         spec_from_args,
     )
     from triage.cli.progress import StderrProgress
+    from triage.cli.signals import stop_event
     from triage.engine.compare import (
         compare_models,
         curvature_check_outcome,
@@ -82,10 +83,11 @@ def run(args: argparse.Namespace) -> int:
                 labels,
                 rows=args.rows,
                 seed=args.seed,
-                design=args.sample,
+                sampling=args.sample,
                 holdout=rule,
                 folds=args.folds,
                 on_progress=progress,
+                cancel=stop_event,
                 engine=engine,
             )
     finally:

@@ -4,9 +4,8 @@ from __future__ import annotations
 
 import argparse
 import sys
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-from triage.cli.commands.report import add_diagnostics_options, segment_columns
 from triage.cli.options import (
     add_engine_options,
     add_model_options,
@@ -14,6 +13,9 @@ from triage.cli.options import (
     add_source_options,
     integer_option,
 )
+
+if TYPE_CHECKING:
+    from triage.results.fit import DataSummary
 
 
 def register(subparsers: Any) -> None:
@@ -23,15 +25,16 @@ def register(subparsers: Any) -> None:
         help="write the worst rows, or every row's diagnostics, to Parquet or CSV",
         description=(
             "Write the worst rows with all their original columns plus diagnostic columns, "
-            "or (--all) every row's position, fitted value, residual, studentized residual, "
-            "leverage and Cook's distance. The input is never changed."
+            "or (--all) one line per row of the source: its position, its status (used, or "
+            "why the fit left it out) and, where the model scored it, fitted value, residual, "
+            "studentized residual, leverage and Cook's distance. Rows are ranked and fitted "
+            "on every row unless --rows N asks for a sample. The input is never changed."
         ),
     )
     add_source_options(parser)
     add_model_options(parser)
-    add_row_options(parser)
+    add_row_options(parser, every_row=True)
     add_engine_options(parser)
-    add_diagnostics_options(parser)
     what = parser.add_mutually_exclusive_group(required=True)
     what.add_argument(
         "--worst",
@@ -39,7 +42,9 @@ def register(subparsers: Any) -> None:
         metavar="K",
         help="export the K worst rows",
     )
-    what.add_argument("--all", action="store_true", help="export diagnostics for every row")
+    what.add_argument(
+        "--all", action="store_true", help="one line per source row: status and diagnostics"
+    )
     parser.add_argument(
         "--by-criterion",
         choices=("cooks", "studentized", "leverage", "abs_resid"),
@@ -55,6 +60,7 @@ def run(args: argparse.Namespace) -> int:
     """Run `triage export`."""
     from triage.cli.options import open_source_from_args, pass_engine, spec_from_args
     from triage.cli.progress import StderrProgress
+    from triage.cli.signals import stop_event
     from triage.data.export import PERSONAL_DATA_NOTICE, check_output_path
     from triage.engine.export import export_all_rows, export_worst_rows
 
@@ -65,19 +71,20 @@ def run(args: argparse.Namespace) -> int:
     try:
         with pass_engine(args) as engine:
             if args.all:
-                written, n_rows = export_all_rows(
+                written, statuses = export_all_rows(
                     source,
                     spec,
                     args.out,
                     rows=args.rows,
                     seed=args.seed,
-                    design=args.sample,
+                    sampling=args.sample,
                     force=args.force,
                     on_progress=progress,
+                    cancel=stop_event,
                     engine=engine,
                 )
             else:
-                written, n_rows = export_worst_rows(
+                written, n_rows, data = export_worst_rows(
                     source,
                     spec,
                     args.out,
@@ -85,14 +92,45 @@ def run(args: argparse.Namespace) -> int:
                     criterion=args.by_criterion,
                     rows=args.rows,
                     seed=args.seed,
-                    design=args.sample,
-                    by=segment_columns(args),
+                    sampling=args.sample,
                     force=args.force,
                     on_progress=progress,
+                    cancel=stop_event,
                     engine=engine,
                 )
     finally:
         progress.finish()
-    print(f"wrote {n_rows:,} rows to {written}")
+    if args.all:
+        print(
+            f"wrote {sum(statuses.values()):,} rows to {written}, one per source row: "
+            + (
+                ", ".join(
+                    f"{n:,} {status}" for status, n in sorted(statuses.items(), key=_by_count)
+                )
+            )
+        )
+    else:
+        print(f"wrote {n_rows:,} rows to {written}, {ranked_basis(data, args.by_criterion)}")
     print(f"note: {PERSONAL_DATA_NOTICE}", file=sys.stderr)
     return 0
+
+
+def _by_count(item: tuple[str, int]) -> tuple[int, str]:
+    """Order statuses with the most rows first (`used` usually)."""
+    return -item[1], item[0]
+
+
+def ranked_basis(data: DataSummary, criterion: str) -> str:
+    """Say what the worst rows were ranked among: every row, or a sample and how to widen it."""
+    by = {
+        "cooks": "Cook's distance",
+        "studentized": "studentized residual",
+        "leverage": "leverage",
+        "abs_resid": "absolute residual",
+    }[criterion]
+    if data.is_full_pass:
+        return f"ranked by {by} among every row ({data.rows_used:,} used in the fit)"
+    return (
+        f"ranked by {by} among a SAMPLE of {data.rows_used:,} rows only ({data.sample}); "
+        "`--rows all` ranks every row"
+    )

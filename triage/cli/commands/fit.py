@@ -41,6 +41,7 @@ def run(args: argparse.Namespace) -> int:
         spec_from_args,
     )
     from triage.cli.progress import StderrProgress
+    from triage.cli.signals import stop_event
     from triage.views.json import fit_to_json
     from triage.views.text import render_fit_report
 
@@ -58,8 +59,9 @@ def run(args: argparse.Namespace) -> int:
                     spec,
                     rows=args.rows,
                     seed=args.seed,
-                    design=args.sample,
+                    sampling=args.sample,
                     on_progress=progress,
+                    cancel=stop_event,
                     engine=engine,
                 )
                 comparison = None
@@ -72,9 +74,10 @@ def run(args: argparse.Namespace) -> int:
                     [args.terms],
                     rows=args.rows,
                     seed=args.seed,
-                    design=args.sample,
+                    sampling=args.sample,
                     holdout=rule,
                     on_progress=progress,
+                    cancel=stop_event,
                     engine=engine,
                 )
                 outcome = comparison.models[0].outcome

@@ -6,6 +6,7 @@ import argparse
 from pathlib import Path
 from typing import Any
 
+from triage._typing import ALL_ROWS
 from triage.cli.options import (
     add_model_options,
     add_row_options,
@@ -43,11 +44,16 @@ def register(subparsers: Any) -> None:
         help="a TOML file of binding-id = key, applied after the user's keymap",
     )
     parser.add_argument(
-        "--top-k",
-        type=integer_option("--top-k", minimum=1),
+        "--top",
+        type=integer_option("--top", minimum=1),
         default=50,
         metavar="K",
         help="rows kept in each worst-rows list (default 50)",
+    )
+    parser.add_argument(
+        "--ordered",
+        action="store_true",
+        help="rows are in a meaningful order (time): judge serial correlation and trends",
     )
     parser.set_defaults(handler=run)
 
@@ -74,13 +80,14 @@ def settings_from_args(args: argparse.Namespace) -> Any:
         max_levels=args.max_levels,
         drop_invalid=args.drop_invalid,
         csv=csv_options_from_args(args),
-        sample_rows=DEFAULT_SAMPLE_ROWS if args.rows is None else args.rows,
-        is_full_at_start=args.rows is None,
+        sample_rows=DEFAULT_SAMPLE_ROWS if args.rows is ALL_ROWS else args.rows,
+        is_full_at_start=args.rows is ALL_ROWS,
         seed=args.seed,
-        sample_design=args.sample,
+        sampling=args.sample,
         keyset=args.keyset,
         keymap_file=args.keymap,
-        top_k=args.top_k,
+        top_k=args.top,
+        is_ordered=args.ordered,
     )
 
 

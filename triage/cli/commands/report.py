@@ -67,6 +67,7 @@ def run(args: argparse.Namespace) -> int:
     """Run `triage report`."""
     from triage.cli.options import open_source_from_args, pass_engine, spec_from_args
     from triage.cli.progress import StderrProgress
+    from triage.cli.signals import stop_event
     from triage.engine.passes import run_report
 
     source = open_source_from_args(args)
@@ -79,11 +80,12 @@ def run(args: argparse.Namespace) -> int:
                 spec,
                 rows=args.rows,
                 seed=args.seed,
-                design=args.sample,
+                sampling=args.sample,
                 top_k=args.top,
                 by=segment_columns(args),
                 is_ordered=args.ordered,
                 on_progress=progress,
+                cancel=stop_event,
                 engine=engine,
             )
     finally:
@@ -97,6 +99,8 @@ def run(args: argparse.Namespace) -> int:
     from triage.views.text import render_full_report
 
     width = args.width or min(shutil.get_terminal_size((100, 40)).columns, 120)
-    text = render_full_report(report, width=width, charts=not args.no_charts, color=False)
+    text = render_full_report(
+        report, width=width, charts=not args.no_charts, color=False, is_ordered=args.ordered
+    )
     sys.stdout.write(text + "\n")
     return 0

@@ -58,11 +58,12 @@ def register(subparsers: Any) -> None:
 def run(args: argparse.Namespace) -> int:
     """Write the scenario file, drawing progress on stderr for long runs, and report it."""
     from triage.cli.progress import StderrProgress
+    from triage.cli.signals import stop_event
     from triage.data.scenario import scenario_format, write_scenario
     from triage.engine.progress import ProgressTracker
 
     progress = StderrProgress()
-    tracker = ProgressTracker(args.rows, on_progress=progress)
+    tracker = ProgressTracker(args.rows, on_progress=progress, cancel=stop_event)
     try:
         path = write_scenario(
             args.out,

@@ -15,7 +15,7 @@ from textual.screen import Screen
 from textual.widgets import DataTable
 from textual.worker import Worker, WorkerState, get_current_worker
 
-from triage._typing import CRITERIA
+from triage._typing import ALL_ROWS, CRITERIA, RowsToRead
 from triage.errors import PassCancelled, TriageError
 from triage.tui.head_start import HeadStart, collect_again, open_and_profile, segment_columns
 from triage.tui.messages import (
@@ -39,12 +39,12 @@ from triage.tui.widgets.panes import (
     FitPane,
     FitsPane,
     FlagsPane,
+    GroupsPane,
+    InputsPane,
     Pane,
     PaneId,
-    PredictorsPane,
     RowPane,
     RowView,
-    SegmentsPane,
     SpreadPane,
     TrendPane,
     WorstPane,
@@ -55,8 +55,8 @@ if TYPE_CHECKING:
     from triage._typing import Criterion
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
-    from triage.engine.passes import DataSummary, FitOutcome
-    from triage.engine.progress import PassProgress
+    from triage.results.fit import DataSummary, FitOutcome
+    from triage.results.progress import PassProgress
     from triage.tui.settings import Settings
 
 TILE_MIN_WIDTH: Final = 110
@@ -386,8 +386,8 @@ class MainScreen(Screen[None]):
             yield FitsPane(PANE_BY_ID["fits"])
             yield SpreadPane(PANE_BY_ID["spread"])
             yield TrendPane(PANE_BY_ID["trend"])
-            yield PredictorsPane(PANE_BY_ID["predictors"])
-            yield SegmentsPane(PANE_BY_ID["segments"])
+            yield InputsPane(PANE_BY_ID["inputs"])
+            yield GroupsPane(PANE_BY_ID["groups"])
             yield WorstPane(PANE_BY_ID["worst"])
             yield RowPane(PANE_BY_ID["row"])
         yield PassLine(id="pass-line")
@@ -397,6 +397,7 @@ class MainScreen(Screen[None]):
         """Lay out for the terminal's size, then open the data in the background."""
         for pane in self.query(Pane):
             pane.is_colorless = self.settings.is_colorless
+            pane.is_ordered = self.settings.is_ordered
         self._apply_layout()
         self._update_model_line()
         if self.opened is not None:
@@ -752,7 +753,7 @@ class MainScreen(Screen[None]):
             self.run_sample_fit(job)
         self.refresh_bindings()
 
-    def _report(self, job: PassJob, *, rows: int | None) -> None:
+    def _report(self, job: PassJob, *, rows: RowsToRead) -> None:
         """Run one pass of `job` in the current worker and post how it ended.
 
         A sample fit the head start already made (or is making) of the same model is taken
@@ -769,7 +770,7 @@ class MainScreen(Screen[None]):
         def report_fit(outcome: FitOutcome) -> None:
             self.post_message(FitComputed(job.pass_id, outcome))
 
-        head_start = self.head_start if rows is not None and not job.excluded else None
+        head_start = self.head_start if rows is not ALL_ROWS and not job.excluded else None
         try:
             early = (
                 None
@@ -786,13 +787,14 @@ class MainScreen(Screen[None]):
                 job.spec,
                 rows=rows,
                 seed=self.settings.seed,
-                design=self.settings.sample_design,
+                sampling=self.settings.sampling,
                 exclude_rows=job.excluded,
                 top_k=self.settings.top_k,
                 by=self.segment_columns,
-                on_progress=None if rows is not None else report_progress,
+                is_ordered=self.settings.is_ordered,
+                on_progress=None if rows is not ALL_ROWS else report_progress,
                 cancel=worker.cancelled_event,
-                on_fit=None if rows is None else report_fit,
+                on_fit=None if rows is ALL_ROWS else report_fit,
             )
         except PassCancelled:
             self.post_message(PassStopped(job.pass_id))
@@ -809,7 +811,7 @@ class MainScreen(Screen[None]):
     @work(thread=True, exclusive=True, group="full-pass", exit_on_error=False)
     def run_full_pass(self, job: PassJob) -> None:
         """Fit and diagnose on every row (thread worker; the cancel key stops it)."""
-        self._report(job, rows=None)
+        self._report(job, rows=ALL_ROWS)
 
     def action_cancel_pass(self) -> None:
         """Stop the running full pass; the results on screen stay."""
@@ -897,14 +899,14 @@ class MainScreen(Screen[None]):
         )
         self.query_one(SpreadPane).shown = fit
         self.query_one(TrendPane).shown = fit
-        predictors_pane = self.query_one(PredictorsPane)
+        predictors_pane = self.query_one(InputsPane)
         predictors_pane.predictor = predictors[self.predictor_index] if predictors else None
         predictors_pane.shown = fit
         self.query_one(FlagsPane).shown = fit
         worst = self.query_one(WorstPane)
         worst.marked = frozenset(self.marked)
         worst.show(fit, self._criterion())
-        segments = self.query_one(SegmentsPane)
+        segments = self.query_one(GroupsPane)
         columns = self.segment_columns
         segments.column = columns[self.segment_index % len(columns)] if columns else None
         segments.shown = fit

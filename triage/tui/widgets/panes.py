@@ -8,7 +8,6 @@ does not wait for them.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Final, Literal
@@ -27,12 +26,12 @@ if TYPE_CHECKING:
     import polars as pl
     from rich.console import RenderableType
 
-    from triage.core.compare import Comparison, Criterion
-    from triage.core.diagnostics import RowDiagnostics, WorstRow
-    from triage.engine.passes import FitOutcome, ReportOutcome
+    from triage.results.compare import Comparison, Criterion
+    from triage.results.diagnostics import RowDiagnostics, WorstRow
+    from triage.results.fit import FitOutcome, ReportOutcome
 
 PaneId = Literal[
-    "columns", "fit", "spread", "trend", "predictors", "flags", "worst", "segments", "row", "fits"
+    "columns", "fit", "spread", "trend", "inputs", "flags", "worst", "groups", "row", "fits"
 ]
 Page = Literal["model", "residuals", "rows"]
 
@@ -56,10 +55,10 @@ PANES: Final[tuple[PaneInfo, ...]] = (
     PaneInfo("fit", "Fit", "model", "no fit yet: pick a target and terms in Columns"),
     PaneInfo("spread", "Spread", "residuals", "residual histogram: no fit yet"),
     PaneInfo("trend", "Trend", "residuals", "residual by fitted value: no fit yet"),
-    PaneInfo("predictors", "Inputs", "residuals", "residual by each numeric input: no fit yet"),
+    PaneInfo("inputs", "Inputs", "residuals", "residual by each numeric input: no fit yet"),
     PaneInfo("flags", "Flags", "model", "flags: no fit yet"),
     PaneInfo("worst", "Worst", "rows", "worst rows: no fit yet"),
-    PaneInfo("segments", "Groups", "residuals", "residuals by group: no fit yet"),
+    PaneInfo("groups", "Groups", "residuals", "residuals by group: no fit yet"),
     PaneInfo("row", "Row", "rows", "no row chosen: pick one in Worst"),
     PaneInfo("fits", "Fits", "model", "fits of this session: none yet"),
 )
@@ -79,6 +78,8 @@ class Pane(Vertical):
         self.border_title = info.title
         self.is_colorless = False
         """Draw without colour (the `NO_COLOR` convention)."""
+        self.is_ordered = False
+        """Row order means something (the user said so): show order statistics."""
 
     def focus_target(self) -> Widget:
         """Return the child that takes the keyboard when the pane comes to the front.
@@ -257,6 +258,7 @@ def _fit_sections(
     """Header, data summary, fit quality, coefficients and aliased terms of one fit."""
     from triage.views.text import (
         render_aliased,
+        render_coding,
         render_coefficients,
         render_data_summary,
         render_fit_quality,
@@ -265,8 +267,9 @@ def _fit_sections(
     return [
         header,
         render_data_summary(outcome.data, width=width),
-        render_fit_quality(outcome.fit, width=width),
+        render_fit_quality(outcome.fit, target=outcome.spec.target, width=width),
         render_coefficients(outcome.fit, robust_se=robust, width=width),
+        render_coding(outcome.builder, width=width),
         render_aliased(outcome.fit, width=width),
     ]
 
@@ -360,7 +363,7 @@ class FitsPane(Pane):
         if not self.is_mounted:
             return
         from triage.views.format import format_count, format_number
-        from triage.views.text import model_formula
+        from triage.views.text import criterion_text, model_formula
 
         table = _table(self, "fits-table")
         table.clear()
@@ -368,9 +371,8 @@ class FitsPane(Pane):
         best = {} if comparison is None else comparison.best
 
         def cell(fit: SessionFit, criterion: Criterion, value: float) -> str:
-            # AIC and BIC are compared by differences of a few units: print them whole.
-            whole = criterion in ("aic", "bic") and math.isfinite(value)
-            text = f"{value:,.1f}" if whole else format_number(value)
+            whole = criterion in ("aic", "bic")
+            text = criterion_text(value) if whole else format_number(value)
             if fit.number in compared and best.get(criterion) == compared.index(fit.number):
                 text += " ◆"
             return text
@@ -593,7 +595,7 @@ class TrendPane(ChartPane):
         )
 
 
-class PredictorsPane(ChartPane):
+class InputsPane(ChartPane):
     """Mean residual and its band in bins of one predictor; a key steps to the next."""
 
     predictor: reactive[str | None] = reactive(None)
@@ -650,7 +652,7 @@ class FlagsPane(TextPane):
         return join_sections(
             [
                 render_flags(diagnostics.flags, width=width),
-                render_tests(diagnostics.tests, width=width),
+                render_tests(diagnostics, is_ordered=self.is_ordered, width=width),
                 render_residual_summary(diagnostics, width=width),
             ]
         )
@@ -739,7 +741,7 @@ class WorstPane(Pane):
             _table(self, "worst-table").move_cursor(row=positions.index(position), animate=False)
 
 
-class SegmentsPane(TextPane):
+class GroupsPane(TextPane):
     """Residuals broken down by the levels of one column; a key steps to the next column."""
 
     shown: reactive[SessionFit | None] = reactive(None, always_update=True)

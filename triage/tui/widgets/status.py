@@ -13,7 +13,7 @@ if TYPE_CHECKING:
     from rich.console import RenderableType
     from textual.screen import Screen
 
-    from triage.engine.progress import PassProgress
+    from triage.results.progress import PassProgress
 
 
 class PaneStrip(Widget):
@@ -72,7 +72,7 @@ class ModelLine(Widget):
 
 
 def progress_text(progress: PassProgress, width: int) -> str:
-    """Describe a running pass: bar, share done, rows done, rows per second, time left.
+    """Describe a running pass: which pass, bar, share done, rows done, rows per second, time left.
 
     Parameters
     ----------
@@ -97,12 +97,13 @@ def progress_text(progress: PassProgress, width: int) -> str:
         done = f"{done} rows"
     left = "time left unknown" if progress.eta_s is None else f"{progress.eta_s:,.0f} s left"
     tail = f"{done}  {speed}  {left}"
+    head = f"every row, {progress.stage}" if progress.stage else "every row"
     if fraction is None:
-        return f"every row: {tail}"
-    bar_width = max(4, min(30, width - len(tail) - 20))
+        return f"{head}: {tail}"
+    bar_width = max(4, min(30, width - len(tail) - len(head) - 12))
     filled = round(fraction * bar_width)
     bar = "#" * filled + "." * (bar_width - filled)
-    return f"every row: [{bar}] {fraction:4.0%}  {tail}"
+    return f"{head}: [{bar}] {fraction:4.0%}  {tail}"
 
 
 class PassLine(Widget):
