@@ -32,6 +32,7 @@ import polars as pl
 import pytest
 from distributed import LocalCluster
 
+from triage._typing import ALL_ROWS
 from triage.core.spec import build_spec
 from triage.data import parquet as parquet_module
 from triage.data.scenario import iter_scenario
@@ -128,9 +129,9 @@ def _spec(folder: Path) -> Any:
 
 def test_cluster_fit_equals_local_engine(folder: Path, engine: ClusterEngine, lre: Lre) -> None:
     source, spec = _spec(folder)
-    local = passes.fit_model(source, spec, rows=None)
+    local = passes.fit_model(source, spec, rows=ALL_ROWS)
     seen: list[PassProgress] = []
-    remote = passes.fit_model(source, spec, rows=None, engine=engine, on_progress=seen.append)
+    remote = passes.fit_model(source, spec, rows=ALL_ROWS, engine=engine, on_progress=seen.append)
     assert engine.is_connected
     assert remote.data == local.data  # every count identical
     assert remote.data.rows_read == N_FILES * FILE_ROWS and remote.data.is_full_pass
@@ -145,7 +146,7 @@ def test_cluster_fit_equals_local_engine(folder: Path, engine: ClusterEngine, lr
 
 def test_cluster_report_equals_local_engine(folder: Path, engine: ClusterEngine, lre: Lre) -> None:
     source, spec = _spec(folder)
-    options: dict[str, Any] = {"rows": None, "by": ("depot", "vehicle"), "top_k": 25}
+    options: dict[str, Any] = {"rows": ALL_ROWS, "by": ("depot", "vehicle"), "top_k": 25}
     local = passes.run_report(source, spec, **options)
     remote = passes.run_report(source, spec, engine=engine, **options)
     assert_same(report_to_json(local), report_to_json(remote), lre)
@@ -160,20 +161,23 @@ def test_cluster_export_all_equals_local_engine(
     folder: Path, engine: ClusterEngine, tmp_path: Path, lre: Lre
 ) -> None:
     source, spec = _spec(folder)
-    local_path, local_rows = export_all_rows(source, spec, tmp_path / "local.parquet", rows=None)
-    remote_path, remote_rows = export_all_rows(
-        source, spec, tmp_path / "cluster.parquet", rows=None, engine=engine
+    options: dict[str, Any] = {"rows": ALL_ROWS}
+    local_path, local_statuses = export_all_rows(source, spec, tmp_path / "here.parquet", **options)
+    remote_path, remote_statuses = export_all_rows(
+        source, spec, tmp_path / "cluster.parquet", engine=engine, **options
     )
-    assert local_rows == remote_rows > 0
+    assert local_statuses == remote_statuses
+    assert sum(local_statuses.values()) == N_FILES * FILE_ROWS
     local, remote = pl.read_parquet(local_path), pl.read_parquet(remote_path)
     assert local.columns == remote.columns and local.height == remote.height
     assert local["row"].to_list() == remote["row"].to_list()  # the same rows in the same order
-    assert local.equals(remote)
-    for column in local.columns[1:]:
-        a, b = local[column].to_numpy(), remote[column].to_numpy()
+    assert local["status"].to_list() == remote["status"].to_list()
+    for column in local.select(pl.selectors.float()).columns:
+        a, b = local[column].drop_nulls().to_numpy(), remote[column].drop_nulls().to_numpy()
         big = np.abs(a) >= 1e-9
         assert float(np.min(lre(b[big], a[big]))) >= 12, column
         assert float(np.max(np.abs(a[~big] - b[~big]), initial=0.0)) < 1e-12, column
+    assert local.equals(remote)  # the same parts in the same tree: the same bits
 
 
 def test_cluster_compare_equals_local_engine(folder: Path, engine: ClusterEngine, lre: Lre) -> None:
@@ -183,7 +187,7 @@ def test_cluster_compare_equals_local_engine(folder: Path, engine: ClusterEngine
     source = open_source(folder)
     terms = ["distance_km, stops, weight_kg, depot", TERMS]
     specs = [build_spec(source.schema(), target="minutes", terms=t) for t in terms]
-    options: dict[str, Any] = {"rows": None, "holdout": HoldoutRule(fraction=0.2, seed=1)}
+    options: dict[str, Any] = {"rows": ALL_ROWS, "holdout": HoldoutRule(fraction=0.2, seed=1)}
     local = compare_models(source, specs, terms, **options)
     remote = compare_models(source, specs, terms, engine=engine, **options)
     assert remote.rows_held_out == local.rows_held_out > 0
@@ -195,7 +199,7 @@ def test_cluster_worker_killed_mid_pass_gives_the_same_result(
     folder: Path, cluster: LocalCluster, engine: ClusterEngine, lre: Lre
 ) -> None:
     source, spec = _spec(folder)
-    undisturbed = passes.run_report(source, spec, rows=None, engine=engine)
+    undisturbed = passes.run_report(source, spec, rows=ALL_ROWS, engine=engine)
     killed: list[int] = []
 
     def kill_one_worker(progress: PassProgress) -> None:
@@ -206,12 +210,14 @@ def test_cluster_worker_killed_mid_pass_gives_the_same_result(
             os.kill(pid, signal.SIGKILL)
             killed.append(pid)
 
-    report = passes.run_report(source, spec, rows=None, engine=engine, on_progress=kill_one_worker)
+    report = passes.run_report(
+        source, spec, rows=ALL_ROWS, engine=engine, on_progress=kill_one_worker
+    )
     assert killed, "no worker was killed while the pass ran"
     # Dask ran the lost tasks again: the same parts merged in the same tree, bit for bit
     assert report_to_json(report) == report_to_json(undisturbed)
     assert_same(
-        report_to_json(passes.run_report(source, spec, rows=None)), report_to_json(report), lre
+        report_to_json(passes.run_report(source, spec, rows=ALL_ROWS)), report_to_json(report), lre
     )
     cluster.wait_for_workers(2, timeout=60)  # the nanny restarted it, for the tests after
 
@@ -226,7 +232,12 @@ def test_cluster_cancel_releases_every_task(folder: Path, engine: ClusterEngine)
 
     with pytest.raises(PassCancelled):
         passes.run_report(
-            source, spec, rows=None, engine=engine, on_progress=stop_after_first_task, cancel=cancel
+            source,
+            spec,
+            rows=ALL_ROWS,
+            engine=engine,
+            on_progress=stop_after_first_task,
+            cancel=cancel,
         )
     client = engine.client()
     deadline = time.monotonic() + 10
@@ -376,3 +387,15 @@ def test_cli_scheduler_without_dask_engine_is_refused(folder: Path) -> None:
     result = _cli(["fit", str(folder), "--terms", TERMS, "--scheduler", "tcp://127.0.0.1:8786"])
     assert result.returncode == 2
     assert "--engine dask" in result.stderr
+
+
+def test_cli_dask_engine_without_dask_says_how_to_install(
+    folder: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from triage.cli.main import main
+
+    monkeypatch.setitem(sys.modules, "distributed", None)  # import distributed now fails
+    code = main(["fit", str(folder), "--terms", TERMS, "--rows", "all", "--engine", "dask"])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert "pip install 'triage[cluster]'" in err and len(err.strip().splitlines()) == 1

@@ -326,7 +326,7 @@ def scheduler_address(engine: str, scheduler: str | None) -> str | None:
         return None
     from triage.engine.cluster import INSTALL_HINT, SCHEDULER_VARIABLE
 
-    if importlib.util.find_spec("distributed") is None:
+    if not _is_installed("distributed"):
         msg = f"`--engine dask` needs Dask distributed, which is not installed; {INSTALL_HINT}"
         raise SpecError(msg)
     return scheduler if scheduler is not None else os.environ.get(SCHEDULER_VARIABLE, "")
@@ -346,3 +346,11 @@ def pass_engine(args: argparse.Namespace) -> Iterator[ClusterEngine | None]:
 
     with ClusterEngine(address) as engine:
         yield engine
+
+
+def _is_installed(module: str) -> bool:
+    """Return True when `module` can be imported (without importing it)."""
+    try:
+        return importlib.util.find_spec(module) is not None
+    except (ImportError, ValueError):  # a module blocked in sys.modules has no spec
+        return False
