@@ -23,14 +23,12 @@ from statsmodels.stats.stattools import durbin_watson, jarque_bera
 from triage._typing import CRITERIA
 from triage.core.binning import quantile_edges
 from triage.core.design import DesignBatch
-from triage.core.diagnostics import (
-    DiagnosticsAccumulator,
-    DiagnosticsConfig,
-    default_config,
-    row_diagnostics,
-)
+from triage.core.diagnostics import DiagnosticsAccumulator
+from triage.core.diagnostics_config import DiagnosticsConfig, default_config
+from triage.core.flag_rules import poisson_at_least
 from triage.core.lsq import LinearFit, QRAccumulator
 from triage.core.moments import StreamMoments
+from triage.core.row_values import row_diagnostics
 from triage.core.worst_rows import TopRows
 from triage.errors import SpecError
 from triage.results.diagnostics import Diagnostics
@@ -504,10 +502,47 @@ def test_diagnostics_flags_follow_the_tests(case) -> None:
     ).resid_studentized_external
     n_big = int(np.sum(np.abs(infl_ext) > 3.0))  # common practice threshold
     assert diag.counts.studentized == n_big
-    assert ("large-studentized" in codes) == (n_big > 0)
+    # Bonferroni bound from scipy's t quantile; the flag fires on a row beyond it, or on
+    # more rows beyond ±3 than chance gives (Poisson upper tail from scipy, below 0.01).
+    n, df = len(infl_ext), fit.df_resid - 1
+    bound = stats.t.ppf(1 - 0.05 / (2 * n), df)
+    assert diag.counts.extreme_threshold == pytest.approx(bound, rel=1e-9)
+    n_extreme = int(np.sum(np.abs(infl_ext) > bound))
+    assert diag.counts.extreme == n_extreme
+    expected = n * 2 * stats.norm.sf(3.0)
+    excess = stats.poisson.sf(n_big - 1, expected) < 0.01
+    assert ("large-studentized" in codes) == (n_extreme > 0 or excess)
     assert "serial-correlation" not in codes  # rows not declared ordered
     for flag in diag.flags:
         assert flag.message and ("may" in flag.message)
+
+
+@pytest.mark.parametrize(("count", "mean"), [(0, 3.0), (1, 0.2), (40, 267.4), (300, 267.4)])
+def test_poisson_upper_tail_matches_scipy(count: int, mean: float) -> None:
+    # scipy.stats.poisson.sf(k - 1, mu) = P(X >= k) as oracle
+    expected = 1.0 if count == 0 else stats.poisson.sf(count - 1, mean)
+    assert poisson_at_least(count, mean) == pytest.approx(expected, rel=1e-9, abs=1e-300)
+
+
+def test_large_studentized_flag_is_silent_below_chance_and_counts_in_words(rng) -> None:
+    """Normal errors: nothing unusual, no flag. One gross error: "1 row", not "1 rows"."""
+    n = 3_000
+    a, b = rng.uniform(0, 10, n), rng.normal(10.0, 2.0, n)
+    y = 1.0 + 0.5 * a - 0.2 * b + rng.normal(0, 1, n)
+    data = {"y": y, "a": a, "b": b, "g": rng.choice(np.array(["x", "z"]), n), "u": a}
+    x = design(data)
+    clean = fit_of(x, y, None)
+    diag = run(clean, config_for(clean, data, x), [batch_of(data, x, None, 0, n)]).finalize()
+    beyond_3 = diag.counts.studentized  # chance alone gives about 8 of 3,000 beyond ±3
+    assert diag.counts.extreme == 0
+    assert "large-studentized" not in {f.code for f in diag.flags}, beyond_3
+    y = y.copy()
+    y[17] += 40.0
+    data["y"] = y
+    gross = fit_of(x, y, None)
+    diag = run(gross, config_for(gross, data, x), [batch_of(data, x, None, 0, n)]).finalize()
+    message = next(f.message for f in diag.flags if f.code == "large-studentized")
+    assert "1 row beyond" in message and "1 rows" not in message
 
 
 def test_default_config_edges_follow_sample_quantiles(rng) -> None:

@@ -16,6 +16,7 @@ import numpy as np
 import polars as pl
 import pytest
 
+from tests.tables import administrative_table
 from triage._typing import ALL_ROWS
 from triage.core.spec import build_spec
 from triage.data import parquet as parquet_module
@@ -173,30 +174,6 @@ def test_engine_keeps_batch_memory_in_the_heap_under_glibc() -> None:
     assert keep_batch_memory() is expected
 
 
-def _administrative_table(rng: np.random.Generator, n_rows: int) -> pl.DataFrame:
-    """A table shaped like an administrative extract: sorted by a region code, skewed levels,
-    a few missing values, case weights."""
-    region = np.sort(rng.choice(12, size=n_rows, p=np.arange(12, 0, -1) / 78.0))
-    channel = rng.choice(["post", "phone", "web", "desk"], size=n_rows, p=[0.6, 0.25, 0.1, 0.05])
-    age = rng.gamma(4.0, 10.0, size=n_rows)
-    income = rng.lognormal(10.0, 0.6, size=n_rows)
-    y = 3.0 + 0.02 * age + 0.4 * np.log(income) + 0.3 * region + rng.standard_t(5, size=n_rows)
-    frame = pl.DataFrame(
-        {
-            "region": [f"R{r:02d}" for r in region],
-            "channel": channel,
-            "age": age,
-            "income": income,
-            "weight": rng.uniform(0.5, 2.0, size=n_rows),
-            "y": y,
-        }
-    )
-    missing = rng.random(n_rows) < 0.02
-    return frame.with_columns(
-        pl.when(pl.Series(missing)).then(None).otherwise(pl.col("age")).alias("age")
-    )
-
-
 @pytest.mark.parametrize("split", ["parts", "read-ahead"])
 def test_engine_report_is_the_same_for_1_2_and_8_workers(
     tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch, split: str
@@ -206,7 +183,7 @@ def test_engine_report_is_the_same_for_1_2_and_8_workers(
     from triage.engine.workers import set_pass_workers
     from triage.views.json import report_to_json
 
-    table = _administrative_table(rng, N_ROWS)
+    table = administrative_table(rng, N_ROWS)
     if split == "parts":
         monkeypatch.setattr(parquet_module, "PART_ROWS", 2_500)
         path = tmp_path / "admin.parquet"

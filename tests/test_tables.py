@@ -418,3 +418,28 @@ def test_export_worst_ranks_every_row_by_default_and_names_a_sample(
     assert main([*args, "--rows", "2000", "--out", str(tmp_path / "b.csv")]) == 0
     printed = capsys.readouterr().out
     assert "among a SAMPLE" in printed and "`--rows all` ranks every row" in printed
+
+
+def test_segments_of_a_model_term_say_their_zero_is_by_construction(tmp_path: Path) -> None:
+    from triage.engine.passes import run_report
+    from triage.views.json import report_to_json
+    from triage.views.text import render_full_report
+
+    path = tmp_path / "claims.parquet"
+    frame = _claims_table(4_000)
+    frame.write_parquet(path)
+    source = open_source(path)
+    spec = build_spec(source.schema(), target=None, terms="cost ~ age + region")
+    report = run_report(source, spec, rows=ALL_ROWS, by=("region", "office"))
+    # statsmodels' residuals average 0 within each region: the property the note states
+    import statsmodels.formula.api as smf
+
+    data = frame.drop_nulls("age").to_pandas()
+    residuals = smf.ols("cost ~ age + C(region)", data=data).fit().resid
+    assert residuals.groupby(data["region"]).mean().abs().max() < 1e-9
+    text = render_full_report(report, charts=False)
+    assert "`region` is a term of the model, so its mean residuals are 0 by construction" in (
+        " ".join(text.split())
+    )
+    assert "`office` is a term" not in text
+    assert report_to_json(report)["segments_zero_by_construction"] == ["region"]

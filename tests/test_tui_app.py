@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import gc
 import threading
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
@@ -16,10 +16,11 @@ import numpy as np
 import polars as pl
 import pytest
 import statsmodels.api as sm
+from textual.command import CommandList, CommandPalette
 from textual.widgets import Static
 
 from tests import tui_support
-from tests.tui_support import build_app, key_for, press_id, settle
+from tests.tui_support import build_app, key_for, notifications, press_id, settle, wait_until
 from triage._typing import CRITERIA
 from triage.tui.screens.dialogs import ErrorScreen, PromptScreen, TextScreen
 from triage.tui.screens.export import ExportScreen
@@ -97,7 +98,10 @@ def gated(monkeypatch: pytest.MonkeyPatch) -> list[GatedSource]:
     """Make the app open gated sources; the list receives each one opened."""
     import triage.data.source as source_module
     import triage.engine.passes as passes_module
+    import triage.engine.progress as progress_module
 
+    # every batch reports its progress (the app's default is at most four reports a second)
+    monkeypatch.setattr(progress_module, "PROGRESS_INTERVAL_S", 0.0)
     # a full pass streams only when the learning sample is not the whole file
     monkeypatch.setattr(passes_module, "LEARNING_SAMPLE_ROWS", 1_000)
     monkeypatch.setattr(passes_module, "BATCH_ROWS", 500)  # twelve batches per pass
@@ -233,14 +237,6 @@ async def test_tui_command_line_model_fits_at_once_on_a_sample(
 # full pass: progress, responsiveness, cancel
 
 
-async def _wait_for(pilot: Any, condition: Any, *, tries: int = 200) -> None:
-    for _ in range(tries):
-        if condition():
-            return
-        await pilot.pause(0.05)
-    raise AssertionError("condition not met in time")
-
-
 async def test_tui_full_pass_reports_progress_stays_responsive_and_finishes(
     config_home: Path, demo_file: Path, gated: list[GatedSource]
 ) -> None:
@@ -257,11 +253,11 @@ async def test_tui_full_pass_reports_progress_stays_responsive_and_finishes(
         pass_line = app.screen.query_one(PassLine)
         seen: list[int] = []
         for _ in range(3):
-            await pilot.pause(0.3)  # the engine reports progress at most four times a second
             source.gate.release()
-            await _wait_for(
+            await wait_until(
                 pilot,
                 lambda: pass_line.progress is not None and pass_line.progress.rows_done not in seen,
+                "the progress of the next batch",
             )
             assert pass_line.progress is not None
             seen.append(pass_line.progress.rows_done)
@@ -278,7 +274,7 @@ async def test_tui_full_pass_reports_progress_stays_responsive_and_finishes(
         assert "SAMPLE" in pass_line.basis
         for _ in range(60):  # two passes (fit, diagnostics) of twelve batches
             source.gate.release()
-        await _wait_for(pilot, lambda: screen.running_pass is None)
+        await wait_until(pilot, lambda: screen.running_pass is None, "the full pass to end")
         await settle(pilot)
         assert screen.current is not None and screen.current.is_full_pass
         assert "EVERY ROW" in pass_line.basis
@@ -299,17 +295,20 @@ async def test_tui_full_pass_cancel_keeps_sample_results(
         sample_fit = screen.current
         await press_id(pilot, "start-full-pass")
         gated[0].gate.release()
-        await _wait_for(pilot, lambda: app.screen.query_one(PassLine).progress is not None)
+        await wait_until(
+            pilot,
+            lambda: app.screen.query_one(PassLine).progress is not None,
+            "the first progress report",
+        )
         await press_id(pilot, "cancel-pass")
         for _ in range(60):
             gated[0].gate.release()
-        await _wait_for(pilot, lambda: screen.running_pass is None)
+        await wait_until(pilot, lambda: screen.running_pass is None, "the full pass to end")
         await settle(pilot)
         assert screen.current is sample_fit
         assert len(screen.fits) == 1
         assert app.screen.query_one(PassLine).progress is None
-        messages = [n.message for n in app._notifications]
-        assert any("stopped" in m for m in messages)
+        assert any("stopped" in m for m in notifications(app))
 
 
 # ------------------------------------------------------------------------------------------
@@ -513,7 +512,7 @@ async def test_tui_export_marked_and_worst_rows(
         assert written["row"].to_list() == [worst.positions()[4]]
         original = pl.read_parquet(demo_file).row(worst.positions()[4], named=True)
         assert {k: written.row(0, named=True)[k] for k in original} == original
-        assert any("data-protection" in n.message for n in app._notifications)
+        assert any("data-protection" in m for m in notifications(app))
         # the worst K rows
         await press_id(pilot, "export-rows")
         app.screen.query_one("#export-worst").value = True
@@ -689,7 +688,15 @@ async def test_tui_command_palette_runs_a_screen_action(config_home: Path, demo_
         await press_id(pilot, "open-palette")
         for char in "every row":
             await pilot.press(char if char != " " else "space")
-        await pilot.pause(0.5)
+        palette = app.screen
+        assert isinstance(palette, CommandPalette)
+        found = palette.query_one(CommandList)
+
+        def offers_every_row() -> bool:
+            option = found.highlighted_option
+            return option is not None and "every row" in str(option.prompt).lower()
+
+        await wait_until(pilot, offers_every_row, "the palette to offer the full pass")
         await pilot.press("enter")
         await settle(pilot)
         screen = main_screen(app)
@@ -788,7 +795,7 @@ async def test_tui_full_pass_is_not_repeated_when_the_sample_was_every_row(
         await press_id(pilot, "start-full-pass")
         await settle(pilot)
         assert len(screen.fits) == 1 and screen.running_pass is None
-        assert any("already uses every row" in n.message for n in app._notifications)
+        assert any("already uses every row" in m for m in notifications(app))
 
 
 # ------------------------------------------------------------------------------------------
@@ -841,19 +848,35 @@ async def test_tui_checks_key_shows_huber_and_spline_results(
 # starting quickly: the head start, light imports, the keymap Textual applies, row steps
 
 
-def _head_start_app(demo_file: Path, **fields: Any) -> tuple[Any, Any]:
-    """Build the app as `triage open` does: a head start begun before the app is made."""
-    from triage.tui.app import make_app
+@pytest.fixture
+def head_started() -> Iterator[Callable[..., tuple[Any, Any]]]:
+    """Build apps as `triage open` does, a head start begun first; stops each one afterwards.
+
+    The head start pauses the garbage collector while it works: once stopped, the collector
+    must be as the test found it.
+    """
     from triage.tui.head_start import HeadStart
     from triage.tui.settings import Settings
 
-    settings = Settings(data=str(demo_file), **fields)
-    head_start = HeadStart(settings).start()
-    return make_app(settings, head_start=head_start), head_start
+    started: list[HeadStart] = []
+
+    def build(data: Path, **fields: Any) -> tuple[Any, Any]:
+        head_start = HeadStart(Settings(data=str(data), **fields)).start()
+        started.append(head_start)
+        return build_app(data, head_start=head_start, **fields), head_start
+
+    collecting = gc.isenabled()
+    yield build
+    for head_start in started:
+        head_start.stop()
+    assert gc.isenabled() == collecting
 
 
 async def test_tui_head_start_fit_is_taken_over_not_repeated(
-    config_home: Path, demo_file: Path, monkeypatch: pytest.MonkeyPatch
+    config_home: Path,
+    demo_file: Path,
+    monkeypatch: pytest.MonkeyPatch,
+    head_started: Callable[..., tuple[Any, Any]],
 ) -> None:
     import triage.engine.passes as passes_module
 
@@ -865,7 +888,7 @@ async def test_tui_head_start_fit_is_taken_over_not_repeated(
         return real_run_report(*args, **kwargs)
 
     monkeypatch.setattr(passes_module, "run_report", counted)
-    app, head_start = _head_start_app(
+    app, head_start = head_started(
         demo_file, target="minutes", terms="distance_km, stops", sample_rows=SAMPLE_ROWS
     )
     async with app.run_test(size=SMALL) as pilot:
@@ -887,14 +910,12 @@ async def test_tui_head_start_fit_is_taken_over_not_repeated(
         await press_id(pilot, "quick-fit")
         await settle(pilot)
         assert len(runs) == 2 and screen.current is not None and screen.current.number == 2
-    head_start.stop()
-    assert gc.isenabled()  # the collector paused for the start only
 
 
 async def test_tui_head_start_bad_terms_are_reported_by_the_screen(
-    config_home: Path, demo_file: Path
+    config_home: Path, demo_file: Path, head_started: Callable[..., tuple[Any, Any]]
 ) -> None:
-    app, _ = _head_start_app(demo_file, target="minutes", terms="distance_km, log(dpeot)")
+    app, _ = head_started(demo_file, target="minutes", terms="distance_km, log(dpeot)")
     async with app.run_test(size=SMALL) as pilot:
         await settle(pilot)
         assert isinstance(app.screen, ErrorScreen)
@@ -904,18 +925,65 @@ async def test_tui_head_start_bad_terms_are_reported_by_the_screen(
 
 
 async def test_tui_head_start_unreadable_file_is_reported_by_the_screen(
-    config_home: Path, tmp_path: Path
+    config_home: Path, tmp_path: Path, head_started: Callable[..., tuple[Any, Any]]
 ) -> None:
     broken = tmp_path / "broken.parquet"
     broken.write_bytes(b"not a parquet file")
-    app, head_start = _head_start_app(broken, target="minutes", terms="distance_km")
+    app, _ = head_started(broken, target="minutes", terms="distance_km")
     async with app.run_test(size=SMALL) as pilot:
         await settle(pilot)
         assert isinstance(app.screen, ErrorScreen)
         assert app.screen.title_text == "cannot open the data"
         assert app.is_running
-    head_start.stop()
-    assert gc.isenabled()
+
+
+async def test_tui_head_start_unexpected_planning_error_is_one_line_and_the_app_goes_on(
+    config_home: Path,
+    demo_file: Path,
+    monkeypatch: pytest.MonkeyPatch,
+    head_started: Callable[..., tuple[Any, Any]],
+) -> None:
+    import triage.tui.head_start as head_start_module
+
+    def broken(*args: Any) -> tuple[str, ...]:
+        raise RuntimeError("planning broke\nsecond line")
+
+    # only the head start's own planning breaks; the screen keeps its working copy
+    monkeypatch.setattr(head_start_module, "segment_columns", broken)
+    app, head_start = head_started(
+        demo_file, target="minutes", terms="distance_km", sample_rows=SAMPLE_ROWS
+    )
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        line = "could not fit ahead: RuntimeError: planning broke"
+        assert head_start.plan_failure == line
+        assert notifications(app) == [line]
+        screen = main_screen(app)
+        assert screen.source is not None
+        assert screen.current is not None and screen.current.number == 1  # fitted by the screen
+        await press_id(pilot, "quit")
+        assert not app.is_running
+
+
+async def test_tui_head_start_any_failure_reaches_the_screen_instead_of_a_wait(
+    config_home: Path,
+    demo_file: Path,
+    monkeypatch: pytest.MonkeyPatch,
+    head_started: Callable[..., tuple[Any, Any]],
+) -> None:
+    from triage.tui.head_start import HeadStart
+
+    def broken(self: HeadStart, opened: Any) -> None:
+        raise RuntimeError("the head start broke")
+
+    monkeypatch.setattr(HeadStart, "_plan", broken)
+    app, _ = head_started(demo_file, target="minutes", terms="distance_km")
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)  # fails (naming the open worker) if the screen waits for ever
+        assert isinstance(app.screen, ErrorScreen)
+        assert "RuntimeError: the head start broke" in app.screen.message
+        await press_id(pilot, "close-dialog")
+        assert isinstance(app.screen, MainScreen) and app.is_running
 
 
 def test_tui_app_module_loads_no_data_or_statistics_library() -> None:
@@ -1011,13 +1079,39 @@ async def test_tui_footer_follows_the_active_keys_and_rebuilds_only_on_change(
         await pilot.pause()
         assert footer_keys() == before
         await press_id(pilot, "start-full-pass")  # the stop key becomes active
-        await _wait_for(pilot, matches_textual)
+        await wait_until(pilot, matches_textual, "the footer to show the keys of a running pass")
         assert footer_keys() != before
         assert any(
             key.action == "cancel_pass" and not key.has_class("-disabled") for key in footer_keys()
         )
         for _ in range(60):
             gated[0].gate.release()
-        await _wait_for(pilot, lambda: main_screen(app).running_pass is None)
+        await wait_until(pilot, lambda: main_screen(app).running_pass is None, "the pass to end")
         await settle(pilot)
         assert matches_textual()
+
+
+async def test_tui_keys_that_cannot_act_say_why(config_home: Path, demo_file: Path) -> None:
+    app = build_app(demo_file, target="minutes", terms="distance_km, stops")
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        screen = main_screen(app)
+        await press_id(pilot, "cancel-pass")  # no pass over every row is running
+        await press_id(pilot, "pane-fit")
+        await press_id(pilot, "toggle-mark")  # marks belong to Worst and Row
+        messages = [n.message for n in app._notifications]
+        assert any("no pass over every row is running" in m for m in messages)
+        assert any("rows are marked in Worst or Row" in m for m in messages)
+        assert screen.marked == set()
+
+
+async def test_tui_weights_equal_to_the_target_get_a_message(
+    config_home: Path, demo_file: Path
+) -> None:
+    app = build_app(demo_file, target="minutes", terms="distance_km", weights="minutes")
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        shown = [n.message for n in app._notifications]
+        if isinstance(app.screen, ErrorScreen):
+            shown.append(str(app.screen.message))
+        assert any("is also the target" in m for m in shown), shown

@@ -1,4 +1,9 @@
-"""Helpers for the app tests: a small demo file, plain-text screen capture, snapshot comparison.
+"""Helpers for the app tests: a small demo file, waits on the app's state, notifications as
+posted, plain-text screen capture, snapshot comparison.
+
+Waits follow the app's own state (no worker pending or running, every posted message handled,
+a condition on the screen met), never a fixed number of event-loop rounds or a time budget;
+`HANG_S` only turns a hang into a failure that names what was awaited.
 
 Snapshots are the screen as plain text (one line per terminal row), stored under
 `tests/snapshots/`. Regenerate them only after reading the diff, with
@@ -7,10 +12,14 @@ Snapshots are the screen as plain text (one line per terminal row), stored under
 
 from __future__ import annotations
 
+import asyncio
 import difflib
 import os
+import time
+import weakref
+from collections.abc import Callable
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import pytest
 
@@ -19,6 +28,9 @@ from triage.tui.settings import Settings
 
 if TYPE_CHECKING:
     from textual.pilot import Pilot
+    from textual.worker import Worker
+
+    from triage.tui.head_start import HeadStart
 
 SNAPSHOT_DIR = Path(__file__).parent / "snapshots"
 """Where the text snapshots live."""
@@ -54,10 +66,41 @@ def demo_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return write_demo(tmp_path_factory.mktemp("demo"))
 
 
-def build_app(data: Path | None = None, **fields: object) -> TriageApp:
-    """Build the app through the same factory the command line uses."""
+HANG_S = 120.0
+"""A wait that lasts this long is a hang: it fails, naming what it waited for (a fail-safe
+against a stuck test on a loaded machine, not a time budget any passing run comes near)."""
+
+_POSTED: weakref.WeakKeyDictionary[TriageApp, list[str]] = weakref.WeakKeyDictionary()
+
+
+def build_app(
+    data: Path | None = None, *, head_start: HeadStart | None = None, **fields: object
+) -> TriageApp:
+    """Build the app through the same factory the command line uses, recording notifications.
+
+    Pass `head_start` (made from settings equal to these) to build it as `triage open` does.
+    """
     settings = Settings(data=None if data is None else str(data), **fields)  # type: ignore[arg-type]
-    return make_app(settings)
+    app = make_app(settings, head_start=head_start)
+    posted: list[str] = []
+    notify = app.notify
+
+    def record(message: str, **options: Any) -> None:
+        posted.append(message)
+        notify(message, **options)
+
+    app.notify = record  # type: ignore[method-assign]
+    _POSTED[app] = posted
+    return app
+
+
+def notifications(app: TriageApp) -> list[str]:
+    """Return every notification message the app was asked to show, in order.
+
+    Recorded when posted, so a message is still here after the app's toast expires (the
+    framework drops shown notifications after their timeout).
+    """
+    return _POSTED[app]
 
 
 def key_for(app: TriageApp, binding_id: str) -> str:
@@ -73,10 +116,48 @@ async def press_id(pilot: Pilot[None], binding_id: str) -> None:
     await pilot.pause()
 
 
+def _busy_workers(app: TriageApp) -> list[Worker[Any]]:
+    return [worker for worker in app.workers if not worker.is_finished]
+
+
 async def settle(pilot: Pilot[None]) -> None:
-    """Wait for every worker and the messages they posted."""
-    for _ in range(3):
-        await pilot.app.workers.wait_for_complete()
+    """Wait until the app is quiet: no worker pending or running, every message handled, and
+    the screen drawn the same after one more round of the event loop.
+
+    A handled message may start another worker (the data opens, then the fit starts), and a
+    new result may take another layout (a scroll bar follows the text it scrolls), so this
+    repeats until a round changes nothing.
+    """
+    app = pilot.app
+    assert isinstance(app, TriageApp)
+    deadline = time.monotonic() + HANG_S
+    drawn = None
+    while True:
+        try:
+            # a worker that fails is the app's to report (tests check what it shows)
+            await asyncio.wait_for(
+                asyncio.gather(*(w.wait() for w in _busy_workers(app)), return_exceptions=True),
+                timeout=max(deadline - time.monotonic(), 0.0),
+            )
+        except TimeoutError:
+            busy = [worker.name for worker in _busy_workers(app)]
+            msg = f"the app did not settle in {HANG_S:.0f} s; still busy: {busy}"
+            raise AssertionError(msg) from None
+        await pilot.pause()  # handle what the finished workers posted
+        if _busy_workers(app):
+            continue
+        before, drawn = drawn, screen_text(app)
+        if drawn == before:
+            return
+
+
+async def wait_until(pilot: Pilot[None], condition: Callable[[], bool], what: str) -> None:
+    """Let the app run until `condition()` holds; `what` names it if it never does."""
+    deadline = time.monotonic() + HANG_S
+    while not condition():
+        if time.monotonic() > deadline:
+            msg = f"still waiting after {HANG_S:.0f} s for {what}"
+            raise AssertionError(msg)
         await pilot.pause()
 
 

@@ -76,7 +76,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         from triage.engine.workers import set_pass_workers  # standard library only
 
         set_pass_workers(args.workers)
-    from triage.cli.signals import StopRequested, received, stop_on_signals
+    from triage.data.bus_guard import install_bus_guard
+    from triage.engine.signals import StopRequested, received, stop_on_signals
+
+    install_bus_guard()  # a file cut short under a memory-mapped read: one line, exit 2
 
     try:
         with stop_on_signals(), warnings.catch_warnings():

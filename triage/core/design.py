@@ -17,6 +17,7 @@ from typing import TYPE_CHECKING, Final
 import numpy as np
 import polars as pl
 
+from triage.core.indicators import CodedDesign, IndicatorCodes
 from triage.core.levels import LevelTable, count_levels, level_text, present_value
 from triage.core.spec import is_categorical_dtype, quote_name
 from triage.errors import DataError, SpecError
@@ -165,6 +166,28 @@ class DesignBatch:
     def n_rows(self) -> int:
         """Number of rows kept."""
         return int(self.x.shape[0])
+
+
+@dataclass(frozen=True)
+class CodedBatch:
+    """One batch with its categoricals as level codes, not indicator columns (`build_coded`).
+
+    Attributes as for `DesignBatch`, with `design` (a `CodedDesign`) in place of ``x``.
+    """
+
+    design: CodedDesign
+    y: NDArray[np.float64]
+    weights: NDArray[np.float64] | None
+    rows: NDArray[np.int64]
+    frame: pl.DataFrame
+    n_dropped_missing: int
+    n_dropped_domain: int
+    n_dropped_unseen_level: int
+
+    @property
+    def n_rows(self) -> int:
+        """Number of rows kept."""
+        return int(self.y.shape[0])
 
 
 @dataclass(frozen=True)
@@ -429,6 +452,10 @@ class DesignBuilder:
     _masks: tuple[pl.Expr, ...] = field(repr=False, compare=False)
     _checks: tuple[_DomainCheck, ...] = field(repr=False, compare=False)
     _may_overflow: tuple[int, ...] = field(repr=False, compare=False)
+    _coded: tuple[pl.Expr, ...] = field(repr=False, compare=False)
+    """Dense design columns (no intercept, no indicators), level codes, target, weights."""
+    _dense_positions: NDArray[np.intp] = field(repr=False, compare=False)
+    _level_positions: tuple[NDArray[np.intp], ...] = field(repr=False, compare=False)
 
     @staticmethod
     def learns_from_sample(spec: ModelSpec) -> bool:
@@ -590,6 +617,36 @@ class DesignBuilder:
             for part in _single_columns(term)
             if part.column is not None
         ]
+        index = {name: i for i, name in enumerate(names)}
+        categorical_columns = list(levels)
+        indicator_at = {
+            index[indicator_name(c, level)]
+            for c in categorical_columns
+            for level in levels[c]
+            if level != references[c]
+        }
+        dense_positions = [
+            i for i in range(int(spec.intercept), len(names)) if i not in indicator_at
+        ]
+        level_positions = tuple(
+            np.array(
+                [
+                    -1 if level == references[c] else index[indicator_name(c, level)]
+                    for level in levels[c]
+                ],
+                dtype=np.intp,
+            )
+            for c in categorical_columns
+        )
+        codes = [
+            level_text(c).cast(pl.Enum(list(levels[c]))).to_physical().alias(f"__code_{k}")
+            for k, c in enumerate(categorical_columns)
+        ]
+        coded = (
+            *[design[i] for i in dense_positions],
+            *codes,
+            *design[len(names) :],  # target and weights
+        )
         return cls(
             spec=spec,
             column_names=tuple(names),
@@ -608,6 +665,9 @@ class DesignBuilder:
             ),
             _checks=tuple(checks),
             _may_overflow=tuple(may_overflow),
+            _coded=coded,
+            _dense_positions=np.array(dense_positions, dtype=np.intp),
+            _level_positions=level_positions,
         )
 
     def build(self, frame: pl.DataFrame) -> DesignBatch:
@@ -660,6 +720,84 @@ class DesignBuilder:
             x=values[:, :p],
             y=values[:, p],
             weights=values[:, p + 1] if self.spec.weights is not None else None,
+            rows=frame.get_column(ROW_INDEX).cast(pl.Int64).to_numpy(),
+            frame=frame,
+            n_dropped_missing=n_missing,
+            n_dropped_domain=n_domain,
+            n_dropped_unseen_level=n_unseen,
+        )
+
+    @property
+    def indicator_positions(self) -> tuple[int, ...]:
+        """Design columns that are indicators of a categorical's levels."""
+        return tuple(int(i) for p in self._level_positions for i in p if i >= 0)
+
+    def build_coded(self, frame: pl.DataFrame) -> CodedBatch | None:
+        """Turn one batch into dense columns and level codes, dropping rows as `build` does.
+
+        The indicators of a categorical are never written out: each row keeps one small
+        integer, its level (`triage.core.indicators`). None for a design without a
+        categorical, or when a value overflowed float64 (`build` then drops or reports it).
+
+        Parameters
+        ----------
+        frame : polars.DataFrame
+            A batch holding the spec's source columns and `ROW_INDEX`.
+
+        Returns
+        -------
+        CodedBatch or None
+
+        Raises
+        ------
+        DataError
+            As `build`.
+        """
+        if not self.levels:
+            return None
+        q, c = self._dense_positions.size, len(self._level_positions)
+        n_values = q + c + 1 + int(self.spec.weights is not None)
+        # One select gives the values and the masks; a level not among the learned ones
+        # reads as a null code, so no per-level comparison is needed.
+        selected = frame.select(*self._coded, *self._masks[:1], *self._masks[2:])
+        columns = selected.get_columns()
+        present = columns[n_values].to_numpy()
+        known = np.ones(frame.height, dtype=np.bool_)
+        for series in columns[q : q + c]:
+            if series.has_nulls():
+                known &= series.is_not_null().to_numpy()
+        bad = np.zeros(frame.height, dtype=np.bool_)
+        for series in columns[n_values + 1 :]:
+            bad |= series.to_numpy()
+        usable = present & known
+        n_missing = n_unseen = n_domain = 0
+        if not (usable.all() and not bad.any()):
+            if not self.spec.drop_invalid and (usable & bad).any():
+                self._drop_rows(frame)  # raises, saying which check failed and how often
+            keep = usable & ~bad
+            n_missing = int(np.count_nonzero(~present))
+            n_unseen = int(np.count_nonzero(present & ~known))
+            n_domain = int(np.count_nonzero(usable & bad))
+            kept = pl.Series(keep)
+            frame, selected = frame.filter(kept), selected.filter(kept)
+            columns = selected.get_columns()
+        dense = [series.to_numpy() for series in columns[:q]]
+        if self._may_overflow and not all(np.isfinite(column).all() for column in dense):
+            return None
+        design = CodedDesign(
+            dense=dense,
+            dense_positions=self._dense_positions,
+            factors=[
+                IndicatorCodes(codes=series.to_numpy(), positions=positions)
+                for series, positions in zip(columns[q : q + c], self._level_positions, strict=True)
+            ],
+            n_cols=len(self.column_names),
+            has_intercept=self.spec.intercept,
+        )
+        return CodedBatch(
+            design=design,
+            y=columns[q + c].to_numpy(),
+            weights=columns[q + c + 1].to_numpy() if self.spec.weights is not None else None,
             rows=frame.get_column(ROW_INDEX).cast(pl.Int64).to_numpy(),
             frame=frame,
             n_dropped_missing=n_missing,

@@ -16,9 +16,6 @@ if TYPE_CHECKING:
 _MAX_SHOWN = 3
 """How many close column names a hint lists."""
 
-_POLARS_MESSAGE_CHARS = 200
-"""Polars error texts can carry whole query plans; the user sees this many characters."""
-
 _FORBIDDEN_WORDS = frozenset({"select"})
 """SQL keywords that start a subquery; polars 2.1 accepts `x IN (SELECT ...)` in an expression."""
 
@@ -96,14 +93,24 @@ def _parse_sql(text: str) -> pl.Expr:
     try:
         return pl.sql_expr(text)
     except pl.exceptions.PolarsError as exc:
-        detail = (
-            str(exc).splitlines()[0][:_POLARS_MESSAGE_CHARS] if str(exc) else type(exc).__name__
-        )
+        # The parser's own wording ("unable to parse ... as Expr") names its internals, not
+        # what the user wrote wrong: say what a condition looks like instead.
         msg = (
-            f"cannot read the filter `{text}`: {detail}; write an SQL condition such as "
+            f"the filter `{text}` is not a complete condition; write one such as "
             "`minutes > 0 AND depot = 'north'` (text values in single quotes)"
         )
         raise SpecError(msg) from exc
+
+
+def _kind_of(dtype: pl.DataType | type[pl.DataType]) -> str:
+    """Name a column type as a user thinks of it: number, text, true/false or date/time."""
+    if dtype.is_numeric():
+        return "a number"
+    if dtype == pl.Boolean:
+        return "true/false"
+    if dtype.is_temporal():
+        return "a date or time"
+    return "text"
 
 
 def filter_columns(expr: pl.Expr | str) -> tuple[str, ...]:
@@ -165,13 +172,19 @@ def parse_filter(text: str, schema: Mapping[str, pl.DataType | type[pl.DataType]
             msg = f"unknown column `{name}` in filter `{text}`{closest_names_hint(name, schema)}"
             if f'"{name}"' in text:
                 msg += "; in SQL double quotes name a column, so put text values in single quotes"
+            else:
+                msg += f"; if `{name}` is a value, put it in single quotes: '{name}'"
             raise SpecError(msg)
     empty = pl.DataFrame(schema=dict(schema))
     try:
         dtype = empty.select(expr.alias("__keep")).schema["__keep"]
     except pl.exceptions.PolarsError as exc:
-        detail = str(exc).splitlines()[0][:_POLARS_MESSAGE_CHARS]
-        msg = f"the filter `{text}` does not fit the column types: {detail}"
+        kinds = ", ".join(f"`{name}` is {_kind_of(schema[name])}" for name in filter_columns(expr))
+        msg = (
+            f"the filter `{text}` compares values of different kinds ({kinds}); compare "
+            "numbers with numbers (`minutes > 30`) and text with text in single quotes "
+            "(`depot = 'north'`)"
+        )
         raise SpecError(msg) from exc
     if dtype != pl.Boolean:
         msg = (

@@ -34,6 +34,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from triage.core.distributions import f_sf, t_ppf, t_sf
+from triage.core.indicators import CodedDesign, coded_gram
 from triage.errors import DataError, SpecError
 
 __all__ = [
@@ -42,6 +43,7 @@ __all__ = [
     "AccumulatedFactor",
     "LinearFit",
     "QRAccumulator",
+    "UncertifiedGram",
     "fit_arrays",
 ]
 
@@ -219,6 +221,26 @@ def _gram_factor(gram: FloatArray) -> FloatArray | None:
     return found[0]
 
 
+def _certified_gram_factor(gram: FloatArray) -> FloatArray | None:
+    """Return the Cholesky factor of a Gram matrix that certifies it (`_gram_factor`), or None.
+
+    Columns that are zero throughout (a level no row has) get zero rows and columns in the
+    factor, which keeps ``R'R = gram``; the fit then reports them as aliased.
+    """
+    diagonal = np.diagonal(gram)
+    if not np.all(np.isfinite(diagonal)):
+        return None
+    nonzero = diagonal > 0.0
+    if np.all(nonzero):
+        return _gram_factor(gram)
+    r_nonzero = _gram_factor(gram[np.ix_(nonzero, nonzero)]) if np.any(nonzero) else None
+    if r_nonzero is None:
+        return None
+    r = np.zeros(gram.shape)
+    r[np.ix_(nonzero, nonzero)] = r_nonzero
+    return r
+
+
 def _fill_block(
     z: FloatArray,
     columns: Sequence[FloatArray],
@@ -280,6 +302,10 @@ def _solve_upper(r: FloatArray, b: FloatArray, *, transposed: bool = False) -> F
     for i in range(r.shape[0]):
         v[i] = (b[i] - r[:i, i] @ v[:i]) / r[i, i]
     return v
+
+
+class UncertifiedGram(DataError):
+    """Rows added as codes cannot be factored from their Gram matrix (`update_coded`)."""
 
 
 class _NonFiniteBatch(DataError):
@@ -648,13 +674,16 @@ class QRAccumulator:
     [1.0, 2.0]
     """
 
-    def __init__(self, n_cols: int, *, has_intercept: bool) -> None:
+    def __init__(self, n_cols: int, *, has_intercept: bool, unshifted: Sequence[int] = ()) -> None:
         if n_cols < 1:
             msg = f"`n_cols` must be a positive integer, got `{n_cols}`"
             raise SpecError(msg)
         self._p = n_cols
         self._has_intercept = has_intercept
+        self._unshifted = np.asarray(unshifted, dtype=np.intp)
         self._r: FloatArray | None = None
+        self._pending: FloatArray | None = None
+        """Gram matrix, in this accumulator's shift, of coded rows not yet in ``R``."""
         self._x_shift = np.zeros(n_cols)
         self._y_shift = 0.0
         self._n = 0
@@ -673,6 +702,7 @@ class QRAccumulator:
         For callers that need more of the rows than a fit, such as the held-out error of
         any coefficient vector (`triage.core.holdout.HoldoutAccumulator`).
         """
+        self._flush()
         if self._r is None:
             return None
         return AccumulatedFactor(self._r.copy(), self._x_shift.copy(), self._y_shift)
@@ -710,7 +740,7 @@ class QRAccumulator:
         first = 1 if self._has_intercept else 0
         # One reduction over the matrix; the shift it gives is the same up to rounding, on
         # which NIST Filip's digits hang (8.1 with these means, 7.2 with column-wise ones).
-        starts = self._r is None and self._has_intercept and n_rows > 0
+        starts = not self._has_shift and self._has_intercept and n_rows > 0
         means = xb[:, first:].mean(axis=0) if starts else None
         self._add([xb[:, j] for j in range(first, self._p)], yb, weights, means=means)
 
@@ -783,11 +813,12 @@ class QRAccumulator:
         # factoring; `_factor_block` reports it as a DataError, so the warnings are not wanted.
         with np.errstate(invalid="ignore", over="ignore"):
             x_shift, y_shift = self._x_shift, self._y_shift
-            if self._r is None and self._has_intercept:
+            if not self._has_shift and self._has_intercept:
                 # Any shift near the data works (the ones column stays in the factor);
                 # the first batch's means keep shifted values small.
                 found = [np.mean(c) for c in predictors] if means is None else means
                 x_shift = np.append(0.0, found)
+                x_shift[self._unshifted] = 0.0
                 y_shift = float(np.mean(y))
             columns, shifts = [*predictors, y], np.append(x_shift[first:], y_shift)
             intercept = self._has_intercept
@@ -804,6 +835,69 @@ class QRAccumulator:
             self._sum_log_w += float(np.log(w).sum())
             self._is_weighted = True
         self._absorb(r_batch, n_rows)
+
+    @property
+    def _has_shift(self) -> bool:
+        """Whether rows have come in, so the shift is fixed."""
+        return self._r is not None or self._pending is not None
+
+    def update_coded(
+        self, design: CodedDesign, y: FloatArray, weights: ArrayLike | None = None
+    ) -> bool:
+        """Add a batch whose categoricals come as level codes (`triage.core.indicators`).
+
+        Its Gram matrix is formed from the dense columns and from counts and per-level sums,
+        never from indicator columns, and added to a Gram matrix pending for the rows not yet
+        factored. Indicator columns are not shifted (pass their positions as `unshifted`).
+        The pending rows are factored when the fit or the factor is asked for: by Cholesky
+        when the equilibrated condition number certifies it (`GRAM_MAX_CONDITION`), else
+        `UncertifiedGram` is raised and the caller passes the rows again as dense batches.
+
+        Returns
+        -------
+        bool
+            False when a value is NaN or infinite: nothing was added.
+        """
+        n_rows = len(y)
+        if n_rows == 0:
+            return True
+        w = None if weights is None else _check_weights(weights, n_rows)
+        root_w = None if w is None else np.sqrt(w)
+        intercept = self._has_intercept
+        with np.errstate(invalid="ignore", over="ignore"):
+            x_shift, y_shift = self._x_shift, self._y_shift
+            if not self._has_shift and intercept:
+                x_shift = np.zeros(self._p)
+                x_shift[design.dense_positions] = [np.mean(c) for c in design.dense]
+                y_shift = float(np.mean(y))
+            columns = [*design.dense, y]
+            shifts = np.append(x_shift[design.dense_positions], y_shift)
+            dense_gram = _shifted_gram(columns, shifts, root_w, intercept=intercept)
+            shifted = [c - m for c, m in zip(columns, shifts, strict=True)]
+            gram = coded_gram(design, shifted, dense_gram, w)
+        if not np.all(np.isfinite(np.diagonal(gram))):
+            return False
+        self._x_shift, self._y_shift = x_shift, y_shift
+        if w is not None:
+            self._sum_log_w += float(np.log(w).sum())
+            self._is_weighted = True
+        self._pending = gram if self._pending is None else self._pending + gram
+        self._n += n_rows
+        return True
+
+    def _flush(self) -> None:
+        """Factor the pending Gram matrix into ``R``, or raise `UncertifiedGram`."""
+        if self._pending is None:
+            return
+        r = _certified_gram_factor(self._pending)
+        if r is None:
+            msg = (
+                "the design is too ill-conditioned to be factored from its counts and sums; "
+                "its rows must be passed again with the indicator columns written out"
+            )
+            raise UncertifiedGram(msg)
+        self._pending = None
+        self._absorb(r, 0)
 
     def _absorb(self, r_other: FloatArray, n_rows: int) -> None:
         """Stack a factor (in this accumulator's shift) onto ours and refactor."""
@@ -842,17 +936,31 @@ class QRAccumulator:
                 f"(intercept: {self._has_intercept}); both must come from the same design"
             )
             raise SpecError(msg)
-        if other._r is None:
+        if not other._has_shift:
             return self
-        r_other = other._r.copy()
-        if self._r is None:
+        delta = np.zeros(self._p + 1)
+        if not self._has_shift:
             self._x_shift = other._x_shift.copy()
             self._y_shift = other._y_shift
         elif self._has_intercept:
             delta = np.append(other._x_shift - self._x_shift, other._y_shift - self._y_shift)
             delta[0] = 0.0
+        if other._pending is not None:
+            # Moving to our shift adds delta times the (weighted) ones column: Z' = Z T with
+            # T = I + e0 delta', so Z'Z' = G + g0 delta' + delta g0' + G00 delta delta'.
+            g0 = other._pending[:, 0]
+            pending = (
+                other._pending
+                + np.outer(g0, delta)
+                + np.outer(delta, g0)
+                + other._pending[0, 0] * np.outer(delta, delta)
+            )
+            self._pending = pending if self._pending is None else self._pending + pending
+        if other._r is not None:
+            r_other = other._r.copy()
             r_other[0] += r_other[0, 0] * delta
-        self._absorb(r_other, other._n)
+            self._absorb(r_other, 0)
+        self._n += other._n
         self._sum_log_w += other._sum_log_w
         self._is_weighted = self._is_weighted or other._is_weighted
         return self
@@ -881,6 +989,7 @@ class QRAccumulator:
         if len(names) != self._p:
             msg = f"`names` must hold {self._p} design column names, got {len(names)}"
             raise SpecError(msg)
+        self._flush()
         if self._r is None:
             msg = (
                 "no rows reached the fit; check the filter and the rows dropped for missing values"

@@ -729,9 +729,10 @@ def build_spec(
     ------
     SpecError
         For unknown columns (with up to three closest names), a missing or non-numeric
-        target, a target used as a term, non-numeric weights, a categorical inside an
-        interaction or transform, duplicate terms, no terms and no intercept, a reference
-        for a column that is not a categorical term, or an invalid filter.
+        target, a target used as a term, non-numeric weights or weights that are the
+        target, a categorical inside an interaction or transform, duplicate terms, no
+        terms and no intercept, a reference for a column that is not a categorical term,
+        or an invalid filter.
     """
     if isinstance(terms, str):
         written_target, parsed = parse_terms(terms)
@@ -769,6 +770,12 @@ def build_spec(
         _check_column(weights, schema, "weights column")
         _check_text(weights, schema, check_text, "weights")
         _check_numeric_column(weights, schema, "weights column")
+        if weights == target:
+            msg = (
+                f"the weights column `{weights}` is also the target; weights say how much "
+                "each row counts, so choose another column or fit without weights"
+            )
+            raise SpecError(msg)
     categorical_terms = {t.column for t in resolved if t.kind == "categorical"}
     reference = dict(reference or {})
     for column in reference:

@@ -22,7 +22,7 @@ import pyarrow as pa
 from triage.core.design import ROW_INDEX
 from triage.core.filter import closest_names_hint
 from triage.data import hooks
-from triage.data.snapshot import SourceSnapshot
+from triage.data.snapshot import SourceSnapshot, being_read
 from triage.errors import SourceChanged, SourceError, SpecError, TriageError
 
 if TYPE_CHECKING:
@@ -431,7 +431,8 @@ class BlockSource(abc.ABC):
         """
         self._snapshot.check_files(files)
         try:
-            yield
+            with being_read(self._snapshot, files):
+                yield
         except SourceError as error:
             if not isinstance(error, SourceChanged):
                 self._snapshot.check_files(files)

@@ -32,6 +32,9 @@ NOTE_KEY: Final[str] = "triage.fit"
 NOTE_SUFFIX: Final[str] = ".fit.txt"
 """Added to a CSV or TSV export's file name for its sidecar note."""
 
+TEMPORARIES: Final[set[Path]] = set()
+"""Temporary files of the exports being written now; the bus-error guard removes them."""
+
 ExportFormat = Literal["parquet", "csv", "tsv"]
 
 _FORMATS: Final[dict[str, ExportFormat]] = {
@@ -278,6 +281,7 @@ class StreamingExport:
 
     def __enter__(self) -> StreamingExport:
         self._handle, self._temporary = _temporary(self._target)
+        TEMPORARIES.add(self._temporary)
         return self
 
     def write(self, frame: pl.DataFrame) -> None:
@@ -339,6 +343,8 @@ class StreamingExport:
             handle.close()
             temporary.unlink(missing_ok=True)
             raise
+        finally:
+            TEMPORARIES.discard(temporary)
 
     def _finish(self, handle: IO[bytes], temporary: Path, *, failed: bool) -> None:
         """Close the file and move it into place, or remove it when the block `failed`."""

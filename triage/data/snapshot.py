@@ -9,8 +9,10 @@ ends, together with the row count its metadata promised. A change raises `Source
 
 from __future__ import annotations
 
+import contextlib
 import os
-from collections.abc import Iterable, Sequence
+import threading
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -69,6 +71,10 @@ class SourceSnapshot:
         """Return the stamp of `path` taken at opening (None if it was not recorded or missing)."""
         return self._stamps.get(path)
 
+    def is_unchanged(self, path: Path) -> bool:
+        """Whether `path` still matches its stamp (a file not recorded counts as unchanged)."""
+        return path not in self._stamps or FileStamp.of(path) == self._stamps[path]
+
     def check_file(self, path: Path) -> None:
         """Raise `SourceChanged` if `path` differs from its stamp (a file not recorded passes).
 
@@ -77,12 +83,9 @@ class SourceSnapshot:
         SourceChanged
             Naming the file: changed, or removed.
         """
-        if path not in self._stamps:
+        if self.is_unchanged(path):
             return
-        now = FileStamp.of(path)
-        if now == self._stamps[path]:
-            return
-        how = "was removed" if now is None else "changed"
+        how = "was removed" if not path.exists() else "changed"
         raise SourceChanged(changed_message(path, how=how))
 
     def check_files(self, paths: Iterable[Path]) -> None:
@@ -114,3 +117,43 @@ class SourceSnapshot:
         if rows_expected is None or rows_read == rows_expected or not files:
             return
         raise SourceChanged(changed_message(files[0]))
+
+
+_reading_lock = threading.Lock()
+_reading: dict[tuple[int, Path], int] = {}
+"""(snapshot id, file) -> reads of it under way (`changed_file_being_read` reads it unlocked)."""
+_snapshots: dict[int, SourceSnapshot] = {}
+
+
+@contextlib.contextmanager
+def being_read(snapshot: SourceSnapshot, files: Sequence[Path]) -> Iterator[None]:
+    """Record that `files` of `snapshot` are being read during the block (see `bus_guard`)."""
+    keys = [(id(snapshot), path) for path in files]
+    with _reading_lock:
+        _snapshots[id(snapshot)] = snapshot
+        for key in keys:
+            _reading[key] = _reading.get(key, 0) + 1
+    try:
+        yield
+    finally:
+        with _reading_lock:
+            for key in keys:
+                _reading[key] -= 1
+                if not _reading[key]:
+                    del _reading[key]
+            if not any(k[0] == id(snapshot) for k in _reading):
+                _snapshots.pop(id(snapshot), None)
+
+
+def changed_file_being_read() -> Path | None:
+    """Return a file being read now that changed since it was opened, else any file being read.
+
+    Called from the bus-error guard, where a lock could be held by the thread that faulted:
+    it reads a copy of the registry without locking.
+    """
+    reading = list(_reading)
+    for snapshot_id, path in reading:
+        snapshot = _snapshots.get(snapshot_id)
+        if snapshot is not None and not snapshot.is_unchanged(path):
+            return path
+    return reading[0][1] if reading else None

@@ -164,7 +164,7 @@ def _status_frames(
     by the filter, left out by a mark, a missing value, a level not in the fit, outside a
     transform's domain; else ``used`` (or, after a sample fit, ``not in the sample``).
     """
-    from triage.core.diagnostics import row_diagnostics
+    from triage.core.row_values import row_diagnostics
 
     spec, builder = outcome.spec, outcome.builder
     columns = list(spec.source_columns())

@@ -18,11 +18,11 @@ import numpy as np
 import polars as pl
 
 from triage._typing import ALL_ROWS
-from triage.core.design import DesignBatch, DesignBudget, DesignBuilder
+from triage.core.design import CodedBatch, DesignBatch, DesignBudget, DesignBuilder
 from triage.core.filter import parse_filter
 from triage.core.levels import LevelCounter
 from triage.core.limits import check_column_values, check_factor_scale
-from triage.core.lsq import QRAccumulator
+from triage.core.lsq import QRAccumulator, UncertifiedGram
 from triage.data.source import ROW_INDEX
 from triage.engine.allocator import keep_batch_memory
 from triage.engine.progress import ProgressCallback, ProgressTracker, ReadAhead
@@ -36,6 +36,7 @@ if TYPE_CHECKING:
 
     from triage._typing import RowsToRead, Sampling
     from triage.core.levels import LevelTable
+    from triage.core.lsq import LinearFit
     from triage.core.spec import ModelSpec
     from triage.data.source import Batch, Sample, Source
     from triage.engine.cluster import ClusterEngine
@@ -106,12 +107,12 @@ class RowCounts:
     excluded: int = 0
     used: int = 0
 
-    def add(self, batch: DesignBatch) -> None:
+    def add(self, batch: DesignBatch | CodedBatch) -> None:
         """Count the rows a design batch kept and dropped."""
         self.missing += batch.n_dropped_missing
         self.domain += batch.n_dropped_domain
         self.unseen += batch.n_dropped_unseen_level
-        self.used += batch.x.shape[0]
+        self.used += batch.n_rows
 
     def absorb(self, part: RowCounts) -> None:
         """Add the counts gathered by one part of a split pass."""
@@ -558,9 +559,33 @@ def _fit(
 ) -> FitOutcome:
     spec = plan.spec
     builder = plan.learn(ProgressTracker(None, cancel=cancel))
+    tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
+    try:
+        counts, accumulator = _fit_pass(plan, builder, tracker, use_codes=True)
+        fit_or_none: LinearFit | None = _finalize_fit(plan, builder, counts, accumulator)
+    except UncertifiedGram:
+        # Rare: a design the counts and sums cannot factor to full accuracy (say a rare
+        # reference level). The pass runs again with the indicators written out.
+        fit_or_none = None
+    if fit_or_none is None:
+        tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
+        counts, accumulator = _fit_pass(plan, builder, tracker, use_codes=False)
+        fit_or_none = _finalize_fit(plan, builder, counts, accumulator)
+    return FitOutcome(spec, builder, fit_or_none, plan.summary(counts), plan.learning_frame)
+
+
+def _fit_pass(
+    plan: PassPlan, builder: DesignBuilder, tracker: ProgressTracker, *, use_codes: bool
+) -> tuple[RowCounts, QRAccumulator]:
+    """Fold every batch of pass 1 into one accumulator; categoricals as codes if `use_codes`."""
+    spec = plan.spec
+    unshifted = builder.indicator_positions if use_codes else ()
 
     def new_part() -> tuple[QRAccumulator, RowCounts]:
-        return QRAccumulator(len(builder.column_names), has_intercept=spec.intercept), RowCounts()
+        accumulator = QRAccumulator(
+            len(builder.column_names), has_intercept=spec.intercept, unshifted=unshifted
+        )
+        return accumulator, RowCounts()
 
     def fold(part: tuple[QRAccumulator, RowCounts], frame: pl.DataFrame) -> None:
         with naming_values_too_large(builder, frame):
@@ -568,6 +593,10 @@ def _fit(
             columns = builder.build_columns(frame)
             if columns is not None and accumulator.update_columns(columns.predictors, columns.y):
                 part_counts.used += columns.n_rows
+                return
+            coded = builder.build_coded(frame) if use_codes else None
+            if coded is not None and accumulator.update_coded(coded.design, coded.y, coded.weights):
+                part_counts.add(coded)
                 return
             # Rows to drop (nulls, NaN, levels, domain) or weights: the batch's full build.
             batch = builder.build(frame)
@@ -582,11 +611,18 @@ def _fit(
         return part
 
     counts = RowCounts()
-    tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
     accumulator, design_counts = plan.fold_frames(
         new_part, fold, merge, counts, tracker, batch_values=FIT_BATCH_VALUES
     )
     counts.absorb(design_counts)
+    return counts, accumulator
+
+
+def _finalize_fit(
+    plan: PassPlan, builder: DesignBuilder, counts: RowCounts, accumulator: QRAccumulator
+) -> LinearFit:
+    """Check the rows left and solve; raises `UncertifiedGram` when codes cannot be factored."""
+    spec = plan.spec
     check_rows_left(counts, spec)
     n_coefficients = len(builder.column_names)
     if counts.used < n_coefficients:
@@ -603,7 +639,7 @@ def _fit(
             "so there is nothing to explain; check the column or the filter"
         )
         raise DataError(msg)
-    return FitOutcome(spec, builder, fit, plan.summary(counts), plan.learning_frame)
+    return fit
 
 
 def run_report(
@@ -712,7 +748,8 @@ def _diagnose(
     on_progress: ProgressCallback | None,
     cancel: threading.Event | None,
 ) -> Diagnostics:
-    from triage.core.diagnostics import DiagnosticsAccumulator, default_config
+    from triage.core.diagnostics import DiagnosticsAccumulator
+    from triage.core.diagnostics_config import default_config
 
     builder, fit = outcome.builder, outcome.fit
     sample_batch = builder.build(plan.learning_frame)
@@ -755,7 +792,7 @@ def diagnose_rows(
     (outside its filter, among `exclude_rows`, or outside the sample of a sample fit) is
     scored as a new observation: see `RowDiagnostics.in_fit`.
     """
-    from triage.core.diagnostics import row_diagnostics
+    from triage.core.row_values import row_diagnostics
 
     frame = source.read_rows(list(positions))
     batch = outcome.builder.build(frame.select([*outcome.spec.source_columns(), ROW_INDEX]))

@@ -180,6 +180,14 @@ class ThresholdCounts:
 
     studentized: int
     """Rows with ``|studentized| > 3``."""
+    extreme: int
+    """Rows with ``|studentized|`` above `extreme_threshold`."""
+    extreme_threshold: float
+    """The Bonferroni bound: the t quantile (``df_resid - 1`` df) at ``1 - 0.05 / (2 n)``.
+
+    Normal errors put any of the ``n`` externally studentized residuals beyond it in
+    fewer than 1 fit in 20.
+    """
     leverage: int
     """Rows with leverage above `leverage_threshold`."""
     leverage_threshold: float

@@ -2,11 +2,15 @@
 
 from __future__ import annotations
 
+import asyncio
+import signal
+import threading
 from typing import TYPE_CHECKING, ClassVar, Final
 
 from textual.app import App
 from textual.binding import Binding, BindingType
 
+from triage.engine.signals import HANDLED_SIGNALS
 from triage.tui.commands import TriageCommands
 from triage.tui.keymap import binding_ids, keymap_overrides, load_keymap
 from triage.tui.screens.dialogs import ErrorScreen, PromptScreen
@@ -69,9 +73,34 @@ class TriageApp(App[None]):
         self.animation_level = "none"
 
     def on_mount(self) -> None:
-        """Apply the keymap and open the main screen."""
+        """Apply the keymap, stop cleanly on signals, and open the main screen."""
         self.set_keymap(keymap_overrides(self.keymap, declared_keys()))
+        if threading.current_thread() is threading.main_thread():
+            loop = asyncio.get_running_loop()
+            for signum in HANDLED_SIGNALS:
+                loop.add_signal_handler(signum, self.stop_on_signal, signum)
         self.push_screen(MainScreen(self.settings, head_start=self.head_start))
+
+    def on_unmount(self) -> None:
+        """Give the signals back to whoever handled them before the app."""
+        if threading.current_thread() is threading.main_thread():
+            loop = asyncio.get_running_loop()
+            for signum in HANDLED_SIGNALS:
+                loop.remove_signal_handler(signum)
+
+    def stop_on_signal(self, signum: int) -> None:
+        """Stop every pass (each within one batch) and close the app, restoring the terminal.
+
+        SIGINT (`kill -INT`; ctrl+c is a key here), SIGTERM and SIGHUP (a closed SSH session)
+        end the app with exit code 128 plus the signal's number and one line on stderr. An
+        export being written finishes before the process ends; a pass is dropped.
+        """
+        self.workers.cancel_all()
+        name = signal.Signals(signum).name
+        self.exit(
+            return_code=128 + signum,
+            message=f"triage: stopped by {name}; the app closed and left no partial file",
+        )
 
     def action_show_help(self) -> None:
         """Show every key the screen in front answers to, then the keys of the dialogs."""

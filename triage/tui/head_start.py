@@ -124,14 +124,19 @@ class HeadStart:
         self._taken: set[str] = set()
         self._cancel = threading.Event()
         self._thread = threading.Thread(target=self._run, name="triage-head-start", daemon=True)
+        self._collecting = gc.isenabled()
+        self.plan_failure: str | None = None
+        """One line saying why the command line's model could not be fitted ahead, if so."""
 
     def start(self) -> HeadStart:
         """Start the thread; returns self.
 
         The garbage collector pauses until the thread's work is done (its sweeps took about
-        0.1 s of the launch): the start allocates much and frees little.
+        0.1 s of the launch): the start allocates much and frees little. It is turned back on
+        afterwards only if it was on when the thread started.
         """
         if self.settings.data is not None:
+            self._collecting = gc.isenabled()
             gc.disable()
             self._thread.start()
         return self
@@ -145,8 +150,13 @@ class HeadStart:
     def _run(self) -> None:
         try:
             self._work()
+        except Exception as error:  # nobody waits forever: each waiter receives the error
+            for future in (self._opened, self._fit, self._report):
+                if not future.done():
+                    future.set_exception(error)
         finally:
-            collect_again()
+            if self._collecting:
+                collect_again()
 
     def _take(self, what: str) -> bool:
         """Claim a result once: True the first time `what` is asked for."""
@@ -191,18 +201,30 @@ class HeadStart:
             self._report.set_result(report)
 
     def _plan(self, opened: OpenedData) -> _SampleFit | None:
-        """Return the sample fit the screen will ask for, or None when it cannot start one."""
+        """Return the sample fit the screen will ask for, or None when it cannot start one.
+
+        A failure other than a `TriageError` (which the screen shows when it checks the model)
+        is kept in `plan_failure` as one line: the data opened all the same, and the screen
+        goes on without the head start's fit.
+        """
+        try:
+            return self._sample_fit(opened)
+        except TriageError:
+            return None
+        except Exception as error:
+            first_line = next(iter(str(error).splitlines()), "")
+            self.plan_failure = f"could not fit ahead: {type(error).__name__}: {first_line}"
+            return None
+
+    def _sample_fit(self, opened: OpenedData) -> _SampleFit | None:
         from triage.tui.session import draft_from_settings
 
         draft = draft_from_settings(self.settings)
         if draft.target is None:
             return None
         schema = opened.source.schema()
-        try:
-            draft = draft.with_terms_text(self.settings.terms) if self.settings.terms else draft
-            spec = draft.to_spec(schema, self.settings)
-        except TriageError:
-            return None  # the screen shows the same error when it checks the model
+        draft = draft.with_terms_text(self.settings.terms) if self.settings.terms else draft
+        spec = draft.to_spec(schema, self.settings)
         return _SampleFit(spec, segment_columns(schema, opened.profile))
 
     def take_opened(self, path: str) -> OpenedData | None:

@@ -15,7 +15,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from triage.views.format import format_number
-from triage.views.text import CODING_RULE, model_formula
+from triage.views.text import CODING_RULE, model_formula, zero_by_construction
 
 if TYPE_CHECKING:
     from triage.core.design import DesignBuilder
@@ -262,9 +262,12 @@ def _diagnostics_to_json(d: Diagnostics) -> dict[str, Any]:
             "n": d.n,
             "skewness": d.resid_skewness,
             "kurtosis": d.resid_kurtosis,
+            "excess_kurtosis": d.resid_kurtosis - 3.0,
         },
         "threshold_counts": {
             "studentized": d.counts.studentized,
+            "extreme": d.counts.extreme,
+            "extreme_threshold": d.counts.extreme_threshold,
             "leverage": d.counts.leverage,
             "leverage_threshold": d.counts.leverage_threshold,
             "cooks": d.counts.cooks,
@@ -288,8 +291,10 @@ def report_to_json(report: ReportOutcome) -> dict[str, Any]:
         The keys of `fit_to_json` plus ``robust_se`` (``HC0``..``HC3``: term -> SE),
         ``tests`` (each with ``stat``, ``df`` or ``df1``/``df2``, and ``p`` where one
         exists), ``worst`` (criterion -> rows), ``segments`` (column -> levels),
-        ``segments_capped``, ``histogram``, ``binned`` (``fitted`` and each numeric
-        predictor -> bins), ``residuals``, ``threshold_counts`` and ``flags``.
+        ``segments_capped``, ``segments_zero_by_construction`` (segment columns that are
+        categorical terms, whose mean residuals are 0 by construction), ``histogram``,
+        ``binned`` (``fitted`` and each numeric predictor -> bins), ``residuals``,
+        ``threshold_counts`` and ``flags``.
 
     See Also
     --------
@@ -297,4 +302,9 @@ def report_to_json(report: ReportOutcome) -> dict[str, Any]:
     """
     result = fit_to_json(report.outcome)
     result.update(json_safe(_diagnostics_to_json(report.diagnostics)))
+    spec = report.outcome.spec
+    # segment columns whose mean residuals least squares makes 0 (a categorical term)
+    result["segments_zero_by_construction"] = [
+        column for column in report.diagnostics.segments if zero_by_construction(spec, column)
+    ]
     return result

@@ -624,11 +624,25 @@ def _zero_if_noise(value: float, scale: float) -> float:
     return 0.0 if abs(value) <= 1e-9 * abs(scale) else value
 
 
+def zero_by_construction(spec: ModelSpec, column: str) -> bool:
+    """Whether least squares makes every level's mean residual 0 for a segment column.
+
+    True for a categorical term of an unweighted model with an intercept: the residuals
+    are orthogonal to each level's indicator, so they sum to 0 within every level.
+    """
+    return (
+        spec.intercept
+        and spec.weights is None
+        and any(t.kind == "categorical" and t.column == column for t in spec.terms)
+    )
+
+
 def render_segments(
     column: str,
     levels: Sequence[Any],
     *,
     is_capped: bool = False,
+    in_model: bool = False,
     width: int = 100,
 ) -> str:
     """Show the residuals of each level of one segment column, most biased first.
@@ -641,6 +655,9 @@ def render_segments(
         Levels in display order.
     is_capped : bool, default=False
         The column had more levels than the cap; the rarest were pooled.
+    in_model : bool, default=False
+        The column is a categorical term of the model (`zero_by_construction`): a line
+        says why every mean residual is 0.
     width : int, default=100
         Line width.
 
@@ -664,6 +681,13 @@ def render_segments(
     lines = [rule(f"residuals by {column}", width), body]
     if is_capped:
         lines.append(truncate("too many levels: the rarest are pooled as (other)", width))
+    if in_model:
+        note = (
+            f"`{column}` is a term of the model, so its mean residuals are 0 by construction "
+            "(least squares fits each level's mean); group by a column not in the model to "
+            "look for bias"
+        )
+        lines.append(textwrap.fill(note, width=width))
     return "\n".join(lines)
 
 
@@ -811,7 +835,11 @@ def render_full_report(
     ]
     sections += [
         render_segments(
-            column, levels, is_capped=column in diagnostics.segments_capped, width=width
+            column,
+            levels,
+            is_capped=column in diagnostics.segments_capped,
+            in_model=zero_by_construction(outcome.spec, column),
+            width=width,
         )
         for column, levels in diagnostics.segments.items()
     ]

@@ -62,12 +62,12 @@ def run(args: argparse.Namespace) -> int:
         spec_from_args,
     )
     from triage.cli.progress import StderrProgress
-    from triage.cli.signals import stop_event
     from triage.engine.compare import (
         compare_models,
         curvature_check_outcome,
         robust_check_outcome,
     )
+    from triage.engine.signals import stop_event
     from triage.views import compare as views
 
     rule = holdout_rule_from_args(args)

@@ -60,9 +60,9 @@ def run(args: argparse.Namespace) -> int:
     """Run `triage export`."""
     from triage.cli.options import open_source_from_args, pass_engine, spec_from_args
     from triage.cli.progress import StderrProgress
-    from triage.cli.signals import stop_event
     from triage.data.export import PERSONAL_DATA_NOTICE, check_output_path
     from triage.engine.export import export_all_rows, export_worst_rows
+    from triage.engine.signals import stop_event
 
     source = open_source_from_args(args)
     spec = spec_from_args(args, source)

@@ -41,7 +41,7 @@ def run(args: argparse.Namespace) -> int:
         spec_from_args,
     )
     from triage.cli.progress import StderrProgress
-    from triage.cli.signals import stop_event
+    from triage.engine.signals import stop_event
     from triage.views.json import fit_to_json
     from triage.views.text import render_fit_report
 

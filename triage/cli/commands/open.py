@@ -92,7 +92,7 @@ def settings_from_args(args: argparse.Namespace) -> Any:
 
 
 def run(args: argparse.Namespace) -> int:
-    """Run the app until the user quits; returns 0.
+    """Run the app until the user quits (0) or a signal stops it (128 plus its number).
 
     The data starts opening (and the given model fitting) before Textual loads, so the file
     is read while the interface starts.
@@ -104,7 +104,8 @@ def run(args: argparse.Namespace) -> int:
     try:
         from triage.tui.app import make_app
 
-        make_app(settings, head_start=head_start).run()
+        app = make_app(settings, head_start=head_start)
+        app.run()
     finally:
         head_start.stop()
-    return 0
+    return app.return_code or 0

@@ -67,8 +67,8 @@ def run(args: argparse.Namespace) -> int:
     """Run `triage report`."""
     from triage.cli.options import open_source_from_args, pass_engine, spec_from_args
     from triage.cli.progress import StderrProgress
-    from triage.cli.signals import stop_event
     from triage.engine.passes import run_report
+    from triage.engine.signals import stop_event
 
     source = open_source_from_args(args)
     spec = spec_from_args(args, source)

@@ -58,9 +58,9 @@ def register(subparsers: Any) -> None:
 def run(args: argparse.Namespace) -> int:
     """Write the scenario file, drawing progress on stderr for long runs, and report it."""
     from triage.cli.progress import StderrProgress
-    from triage.cli.signals import stop_event
     from triage.data.scenario import scenario_format, write_scenario
     from triage.engine.progress import ProgressTracker
+    from triage.engine.signals import stop_event
 
     progress = StderrProgress()
     tracker = ProgressTracker(args.rows, on_progress=progress, cancel=stop_event)

@@ -7,7 +7,7 @@ from dataclasses import dataclass, replace
 from itertools import count
 from typing import TYPE_CHECKING, ClassVar, Final, cast
 
-from textual import on, work
+from textual import events, on, work
 from textual.app import ComposeResult
 from textual.binding import Binding, BindingType
 from textual.containers import Container
@@ -486,10 +486,10 @@ class MainScreen(Screen[None]):
         """Grey out keys that need the Columns pane in front, data, or a fit."""
         if action in COLUMN_ACTIONS:
             return None if self.source is None or self.front != "columns" else True
-        if action in {"edit_filter", "edit_terms", "quick_fit", "start_full_pass"}:
-            return None if self.source is None else True
         if action == "cancel_pass":
             return None if self.running_pass is None else True
+        if action in {"edit_filter", "edit_terms", "quick_fit", "start_full_pass"}:
+            return None if self.source is None else True
         if action in FIT_ACTIONS:
             return None if self.current is None else True
         return True
@@ -524,6 +524,8 @@ class MainScreen(Screen[None]):
             opened = None if self.head_start is None else self.head_start.take_opened(path)
             if opened is None:
                 opened = open_and_profile(path, csv=settings.csv, seed=settings.seed)
+            elif self.head_start is not None and self.head_start.plan_failure:
+                self.notify(self.head_start.plan_failure, severity="warning")
         except TriageError as error:
             self.post_message(PassFailed(0, str(error), "cannot open the data"))
             return
@@ -818,6 +820,14 @@ class MainScreen(Screen[None]):
         if self.full_pass_worker is not None:
             self.full_pass_worker.cancel()
 
+    def on_key(self, event: events.Key) -> None:
+        """Say why a greyed-out key does nothing, where a word helps."""
+        active = self.app.active_bindings.get(event.key)
+        if active is None or active.enabled:
+            return
+        if active.binding.action == "cancel_pass":
+            self.notify("no pass over every row is running; nothing to stop")
+
     def on_pass_progressed(self, message: PassProgressed) -> None:
         """Show the progress of the running full pass."""
         if message.pass_id == self.running_pass:
@@ -1101,7 +1111,10 @@ class MainScreen(Screen[None]):
         return self.query_one(WorstPane).cursor_position()
 
     def action_toggle_mark(self) -> None:
-        """Mark or unmark the row under the cursor (or the open row)."""
+        """Mark or unmark the row under the cursor in Worst, or the row open in Row."""
+        if self.front not in ("worst", "row"):
+            self.notify("rows are marked in Worst or Row: bring one of them to the front first")
+            return
         position = self._focused_position()
         if position is None:
             return

@@ -767,13 +767,14 @@ class GroupsPane(TextPane):
         if self.column is None or self.column not in diagnostics.segments:
             return "no column to break residuals down by (text columns or few-valued numbers)"
         from triage.views.format import truncate
-        from triage.views.text import render_segments
+        from triage.views.text import render_segments, zero_by_construction
 
         position = f"column {names.index(self.column) + 1} of {len(names)}"
         body = render_segments(
             self.column,
             diagnostics.segments[self.column],
             is_capped=self.column in diagnostics.segments_capped,
+            in_model=zero_by_construction(self.shown.report.outcome.spec, self.column),
             width=width,
         )
         note = truncate(
