@@ -49,7 +49,7 @@ if TYPE_CHECKING:
     from triage._typing import RowsToRead, Sampling
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
-    from triage.engine.cluster import ClusterEngine
+    from triage.engine.passes import PassEngine
 
 __all__ = [
     "compare_models",
@@ -140,7 +140,7 @@ def compare_models(
     exclude_rows: Collection[int] = (),
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
-    engine: ClusterEngine | None = None,
+    engine: PassEngine | None = None,
 ) -> ComparisonOutcome:
     """Fit several models to the same rows in one pass and compare them.
 
@@ -167,7 +167,7 @@ def compare_models(
         Source positions to leave out (the file is never changed).
     on_progress, cancel
         Progress callback and cancel event; see `ProgressTracker`.
-    engine : ClusterEngine, optional
+    engine : PassEngine, optional
         Runs a pass over every row on a cluster; a sample is always read here.
 
     Returns

@@ -28,7 +28,7 @@ if TYPE_CHECKING:
     from triage._typing import Criterion, RowsToRead, Sampling
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
-    from triage.engine.cluster import ClusterEngine
+    from triage.engine.passes import PassEngine
     from triage.engine.progress import ProgressCallback
     from triage.results.diagnostics import RowDiagnostics
 
@@ -119,7 +119,7 @@ def export_worst_rows(
     force: bool = False,
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
-    engine: ClusterEngine | None = None,
+    engine: PassEngine | None = None,
 ) -> tuple[Path, int, DataSummary]:
     """Fit, rank rows by `criterion`, and write the `k` worst.
 
@@ -205,7 +205,7 @@ def export_all_rows(
     force: bool = False,
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
-    engine: ClusterEngine | None = None,
+    engine: PassEngine | None = None,
 ) -> tuple[Path, dict[str, int]]:
     """Fit (on every row by default, or a sample), then write one line per source row to `out`.
 

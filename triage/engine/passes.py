@@ -12,7 +12,7 @@ import threading
 import time
 from collections.abc import Callable, Collection, Generator, Iterator, Sequence
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, TypeVar
+from typing import TYPE_CHECKING, Protocol, TypeVar
 
 import numpy as np
 import polars as pl
@@ -39,7 +39,6 @@ if TYPE_CHECKING:
     from triage.core.lsq import LinearFit
     from triage.core.spec import ModelSpec
     from triage.data.source import Batch, Sample, Source
-    from triage.engine.cluster import ClusterEngine
     from triage.results.diagnostics import Diagnostics, RowDiagnostics
 
 S = TypeVar("S")
@@ -125,6 +124,29 @@ class RowCounts:
         self.used += part.used
 
 
+class PassEngine(Protocol):
+    """Runs the parts of a full pass somewhere else (a cluster): a part in, accumulators out.
+
+    `triage.engine.cluster.ClusterEngine` is the one there is.
+    """
+
+    part_rows: int | None
+    """Least rows in a part, or None for the source's own default."""
+
+    def fold_parts(
+        self,
+        parts: Sequence[Callable[[], Iterator[Batch]]],
+        new_part: Callable[[], S],
+        fold: Callable[[S, pl.DataFrame], None],
+        merge: Callable[[S, S], S],
+        *,
+        marked: NDArray[np.int64] | None,
+        tracker: ProgressTracker,
+    ) -> tuple[S, RowCounts]:
+        """Fold every part with `fold_part` and merge them as `fold_in_order` would."""
+        ...
+
+
 def drop_marked_rows(
     frame: pl.DataFrame, marked: NDArray[np.int64], counts: RowCounts
 ) -> pl.DataFrame:
@@ -180,7 +202,7 @@ class PassPlan:
         learning_frame: pl.DataFrame,
         exclude_rows: Collection[int] = (),
         extra_columns: Sequence[str] = (),
-        engine: ClusterEngine | None = None,
+        engine: PassEngine | None = None,
     ) -> None:
         keep_batch_memory()
         self.engine = engine
@@ -204,7 +226,7 @@ class PassPlan:
         sampling: Sampling,
         exclude_rows: Collection[int],
         extra_columns: Sequence[str] = (),
-        engine: ClusterEngine | None = None,
+        engine: PassEngine | None = None,
     ) -> PassPlan:
         """Draw the sample (a quick fit's rows, or a full pass's learning rows); plan the pass.
 
@@ -491,7 +513,7 @@ def fit_model(
     exclude_rows: Collection[int] = (),
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
-    engine: ClusterEngine | None = None,
+    engine: PassEngine | None = None,
 ) -> FitOutcome:
     """Fit `spec` by least squares on a sample of about `rows` rows, or on every row.
 
@@ -511,7 +533,7 @@ def fit_model(
         Source positions to leave out (a what-if refit; the file is never changed).
     on_progress, cancel
         Progress callback and cancel event; see `ProgressTracker`.
-    engine : ClusterEngine, optional
+    engine : PassEngine, optional
         Runs a pass over every row on a cluster; a sample is always fitted here.
 
     Returns
@@ -656,7 +678,7 @@ def run_report(
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
     on_fit: Callable[[FitOutcome], None] | None = None,
-    engine: ClusterEngine | None = None,
+    engine: PassEngine | None = None,
 ) -> ReportOutcome:
     """Fit `spec` (pass 1), then compute residual diagnostics on the same rows (pass 2).
 
