@@ -114,7 +114,11 @@ def test_spec_empty_terms_parse() -> None:
         ("poly(x, 1)", r"`poly\(x, 1\)` must be an integer >= 2"),
         ("pow(x)", r"expected `,` and an integer .* in term `pow\(x\)`, got `\)`"),
         ("a, log(x", r"expected `\)` in term `log\(x`, got the end of the text"),
-        ("log(y) ~ x", r"target left of `~` must be one column name, got `log\(y\)`"),
+        (
+            "square(y) ~ x",
+            r"target left of `~` must be one column name or `log`, `log1p` or `sqrt` of one, "
+            r"got `square\(y\)`",
+        ),
         ("a:b:c", r"an interaction joins two terms"),
         ("a*b*c", r"`\*` joins two terms"),
         ("a:b*c", r"not the interaction `a:b`"),

@@ -443,3 +443,96 @@ def test_segments_of_a_model_term_say_their_zero_is_by_construction(tmp_path: Pa
     )
     assert "`office` is a term" not in text
     assert report_to_json(report)["segments_zero_by_construction"] == ["region"]
+
+
+# ── a transformed target ─────────────────────────────────────────────────────────────
+
+
+@pytest.mark.parametrize("transform", ["log", "log1p", "sqrt"])
+def test_transformed_target_matches_statsmodels_on_that_scale(
+    tmp_path: Path, transform: str
+) -> None:
+    import statsmodels.api as sm
+
+    from triage.views.json import fit_to_json
+    from triage.views.text import render_fit_report
+
+    frame = _claims_table(5_000)
+    path = tmp_path / "claims.parquet"
+    frame.write_parquet(path)
+    source = open_source(path)
+    spec = build_spec(source.schema(), target=None, terms=f"{transform}(cost) ~ age + month")
+    assert spec.target == "cost" and spec.target_label == f"{transform}(cost)"
+    outcome = fit_model(source, spec, rows=ALL_ROWS)
+    data = frame.drop_nulls().to_pandas()
+    scale = {"log": np.log, "log1p": np.log1p, "sqrt": np.sqrt}[transform]
+    oracle = sm.OLS(scale(data["cost"]), sm.add_constant(data[["age", "month"]])).fit()
+    np.testing.assert_allclose(outcome.fit.coef, oracle.params.to_numpy(), rtol=1e-9)
+    np.testing.assert_allclose(outcome.fit.resid_sd, np.sqrt(oracle.scale), rtol=1e-9)
+    document = fit_to_json(outcome)
+    assert document["model"]["target_transform"] == transform
+    assert document["model"]["formula"].startswith(f"{transform}(cost) ~ ")
+    text = " ".join(render_fit_report(outcome).split())
+    assert f"the model fits {transform}(cost): residuals, fitted values" in text
+
+
+def test_log_target_outside_its_domain_says_so(tmp_path: Path) -> None:
+    from triage.errors import DataError
+
+    frame = _claims_table(2_000).with_columns(
+        pl.when(pl.int_range(pl.len()) == 7).then(0.0).otherwise(pl.col("cost")).alias("cost")
+    )
+    path = tmp_path / "claims.parquet"
+    frame.write_parquet(path)
+    source = open_source(path)
+    spec = build_spec(source.schema(), target=None, terms="log(cost) ~ age")
+    with pytest.raises(DataError, match=r"log of a value <= 0 in `log\(cost\)` for 1 row"):
+        fit_model(source, spec, rows=ALL_ROWS)
+    kept = build_spec(source.schema(), target=None, terms="log(cost) ~ age", drop_invalid=True)
+    assert fit_model(source, kept, rows=ALL_ROWS).data.rows_dropped_domain == 1
+
+
+def test_compare_over_every_row_uses_every_level(
+    tmp_path: Path, small_learning_sample: None
+) -> None:
+    from triage.engine.compare import compare_models
+
+    frame = _claims_table()
+    path = tmp_path / "claims.parquet"
+    frame.write_parquet(path, row_group_size=GROUP_ROWS)
+    source = open_source(path)
+    specs = [
+        build_spec(source.schema(), target=None, terms=terms)
+        for terms in ("cost ~ age + region", "cost ~ age + region + office")
+    ]
+    comparison = compare_models(source, specs, ["a", "b"], rows=ALL_ROWS)
+    assert comparison.data.rows_dropped_unseen_level == 0
+    assert comparison.data.rows_used == frame.drop_nulls().height
+    single = _fit(path).builder  # same table, one model: the same levels and reference
+    builder = comparison.models[1].outcome.builder
+    assert builder.levels["office"] == single.levels["office"]
+    assert builder.reference_levels["region"] == single.reference_levels["region"]
+
+
+def test_export_all_after_a_sample_fit_counts_rows_of_levels_the_sample_lacked(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from triage.cli.main import main
+
+    frame = _claims_table()
+    path = tmp_path / "claims.parquet"
+    frame.write_parquet(path, row_group_size=GROUP_ROWS)
+    out = tmp_path / "all.parquet"
+    args = ["export", str(path), "--terms", "cost ~ age + region", "--all", "--rows", "1000"]
+    assert main([*args, "--out", str(out)]) == 0
+    printed = capsys.readouterr().out
+    written = pl.read_parquet(out)
+    assert written.height == N_ROWS
+    statuses = dict(written.group_by("status").len().iter_rows())
+    # a few row groups of a file sorted by region hold few regions: count those rows
+    sampled = written.filter(pl.col("status") == "used").get_column("row").to_list()
+    seen = set(frame[sampled].get_column("region").to_list())
+    lacked = frame.filter(~pl.col("region").is_in(list(seen)) & pl.col("age").is_not_null())
+    assert statuses["level not in the fit"] == lacked.height > 0
+    assert f"{lacked.height:,} rows have a level the sample did not have" in printed
+    assert "`--rows all` learns every level" in printed

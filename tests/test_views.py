@@ -10,7 +10,7 @@ import json
 import math
 import re
 from pathlib import Path
-from typing import Any
+from typing import Any, get_args
 
 import numpy as np
 import polars as pl
@@ -23,8 +23,10 @@ from triage._typing import ALL_ROWS
 from triage.core.spec import build_spec
 from triage.data.source import open_source
 from triage.engine.passes import fit_model, run_report
+from triage.results.diagnostics import Flag, FlagCode
 from triage.results.fit import FitOutcome, ReportOutcome
 from triage.views.charts import render_binned, render_histogram
+from triage.views.flags import flag_message
 from triage.views.format import NA, format_count, format_number, format_p, truncate
 from triage.views.json import fit_to_json, json_safe, report_to_json
 from triage.views.text import (
@@ -568,3 +570,48 @@ def test_views_fit_quality_groups_and_counts_parameters(report: ReportOutcome) -
     assert "condition no., scaled design" in text
     assert " df " not in text.split("whether the terms")[0]
     assert max(len(line) for line in text.split("\n")) <= 80
+
+
+def _one_flag_of_each_rule() -> list[Flag]:
+    return [
+        Flag("large-studentized", 1, cutoff=4.2, rows=5_000, beyond_limit=40, expected=13.5),
+        Flag("high-leverage", 2, cutoff=0.004),
+        Flag("influential-rows", 1, cutoff=0.0008),
+        Flag("spread-changes", 1e-5),
+        Flag("curvature", 0.003),
+        Flag("tails", 1e-9, skewness=0.8, excess_kurtosis=2.5),
+        Flag("serial-correlation", 1.1),
+        Flag("shared-trend", 0.97),
+        Flag("many-terms", 12, rows=80),
+    ]
+
+
+def test_views_every_flag_rule_has_words_that_hedge() -> None:
+    flags = _one_flag_of_each_rule()
+    assert {f.code for f in flags} == set(get_args(FlagCode))
+    for flag in flags:
+        assert "may" in flag_message(flag), flag.code
+    assert "1 row beyond ±4.2" in flag_message(flags[0])
+    assert "2 rows have leverage above 2p/n = 0.004" in flag_message(flags[1])
+    assert "1 row has Cook's distance above 4/n" in flag_message(flags[2])
+
+
+def test_views_flag_words_quote_the_rules_limits(monkeypatch: pytest.MonkeyPatch) -> None:
+    # The numbers in the sentences come from triage.core.flag_rules: change a limit there
+    # and the words follow.
+    flags = {f.code: f for f in _one_flag_of_each_rule()}
+    assert "< 0.01" in flag_message(flags["spread-changes"])
+    assert "outside 1.5–2.5" in flag_message(flags["serial-correlation"])
+    monkeypatch.setattr("triage.views.flags.FLAG_P_VALUE", 0.05)
+    monkeypatch.setattr("triage.views.flags.DURBIN_WATSON_RANGE", (1.2, 2.8))
+    monkeypatch.setattr("triage.views.flags.STUDENTIZED_LIMIT", 2.5)
+    monkeypatch.setattr("triage.views.flags.TREND_R2", 0.9)
+    monkeypatch.setattr("triage.views.flags.ROWS_PER_TERM", 20)
+    monkeypatch.setattr("triage.views.flags.BONFERRONI_LEVEL", 0.1)
+    assert "< 0.05" in flag_message(flags["spread-changes"])
+    assert "< 0.05" in flag_message(flags["tails"])
+    assert "outside 1.2–2.8" in flag_message(flags["serial-correlation"])
+    assert "40 rows beyond ±2.5" in flag_message(flags["large-studentized"])
+    assert "in 9 fits of 10" in flag_message(flags["large-studentized"])
+    assert "above 0.9," in flag_message(flags["shared-trend"])
+    assert "fewer than 20 rows per coefficient" in flag_message(flags["many-terms"])

@@ -13,14 +13,14 @@ from collections.abc import Mapping, Sequence
 from typing import TYPE_CHECKING, Final, Literal
 
 from triage.core.distributions import f_sf
-from triage.results.compare import Comparison, Criterion, ModelScore, NestedFTest, RefitShift
+from triage.results.compare import Comparison, ModelCriterion, ModelScore, NestedFTest, RefitShift
 
 if TYPE_CHECKING:
     from triage.core.lsq import LinearFit
     from triage.results.holdout import HoldoutScore
 
 __all__ = [
-    "CRITERIA",
+    "MODEL_CRITERIA",
     "best_marks",
     "compare_fits",
     "is_nested",
@@ -29,7 +29,7 @@ __all__ = [
     "score_fit",
 ]
 
-CRITERIA: Final[Mapping[Criterion, Literal["max", "min"]]] = {
+MODEL_CRITERIA: Final[Mapping[ModelCriterion, Literal["max", "min"]]] = {
     "adj_r2": "max",
     "aic": "min",
     "bic": "min",
@@ -142,15 +142,15 @@ def nested_f_test(
     return NestedFTest(indices[0], indices[1], f, df1, df2, p)
 
 
-def best_marks(scores: Sequence[ModelScore]) -> dict[Criterion, int]:
+def best_marks(scores: Sequence[ModelScore]) -> dict[ModelCriterion, int]:
     """Return, per criterion, the index of the model with the best value.
 
     Models whose value is not defined are skipped; a criterion no model has is left out.
     On a tie the first model given wins. R² is not a criterion here: it always favours
     the largest model.
     """
-    marks: dict[Criterion, int] = {}
-    for criterion, direction in CRITERIA.items():
+    marks: dict[ModelCriterion, int] = {}
+    for criterion, direction in MODEL_CRITERIA.items():
         candidates = [(s.value(criterion), i) for i, s in enumerate(scores)]
         defined = [(v, i) for v, i in candidates if v is not None]
         if len(defined) < 2:

@@ -19,7 +19,7 @@ import polars as pl
 
 from triage.core.indicators import CodedDesign, IndicatorCodes
 from triage.core.levels import LevelTable, count_levels, level_text, present_value
-from triage.core.spec import is_categorical_dtype, quote_name
+from triage.core.spec import Term, is_categorical_dtype, quote_name
 from triage.errors import DataError, SpecError
 
 if TYPE_CHECKING:
@@ -27,7 +27,8 @@ if TYPE_CHECKING:
 
     from numpy.typing import NDArray
 
-    from triage.core.spec import ModelSpec, SchemaLike, Term
+    from triage._typing import TermKind
+    from triage.core.spec import ModelSpec, SchemaLike
 
 ROW_INDEX: Final = "__row"
 """Column holding each row's 0-based position in the source (`triage.data.source` uses it)."""
@@ -249,15 +250,21 @@ def _any(exprs: list[pl.Expr]) -> pl.Expr:
     return pl.any_horizontal(exprs) if exprs else pl.lit(value=False)
 
 
+def target_term(spec: ModelSpec) -> Term:
+    """Return the target as a term: its column, or a transform of it (``log(cost) ~ ...``)."""
+    kind: TermKind = "numeric" if spec.target_transform is None else "transform"
+    return Term(spec.target_label, kind, spec.target, spec.target_transform)
+
+
 def _single_columns(term: Term) -> list[Term]:
     """List the one-column terms inside a term (itself, or an interaction's factors)."""
     return list(term.factors) if term.kind == "interaction" else [term]
 
 
 def _domain_checks(spec: ModelSpec) -> list[_DomainCheck]:
-    """One check per distinct log, log1p or sqrt term (also inside interactions), and weights."""
+    """One check per distinct log, log1p or sqrt term (in interactions, the target), and weights."""
     checks: dict[str, _DomainCheck] = {}
-    for term in spec.terms:
+    for term in (*spec.terms, target_term(spec)):
         for part in _single_columns(term):
             if part.label in checks or part.column is None:
                 continue
@@ -607,7 +614,7 @@ class DesignBuilder:
                 raise SpecError(msg)
             seen.add(name)
 
-        design.append(_as_float(spec.target).alias(_Y))
+        design.append(single(target_term(spec)).alias(_Y))
         if spec.weights is not None:
             design.append(_as_float(spec.weights).alias(_W))
         predictors = [
@@ -931,9 +938,10 @@ def _check_levels(spec: ModelSpec, table: LevelTable, basis: str) -> LevelTable:
         raise SpecError(msg)
     if len(found) < 2:
         got = f"only the level `{found[0]}`" if found else "no values"
+        kept = f" kept by the filter `{spec.where}`" if spec.where else ""
         msg = (
-            f"categorical term `{quote_name(column)}` has {got} in {basis}; it needs at least "
-            "two levels: remove the term or widen the rows"
+            f"categorical term `{quote_name(column)}` has {got} in {basis}{kept}; it needs "
+            "at least two levels: remove the term or widen the rows"
         )
         raise DataError(msg)
     reference = spec.reference.get(column)

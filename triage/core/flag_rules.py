@@ -1,6 +1,7 @@
-"""The rules behind the flags: thresholds (common practice) and which flags a result raises.
+"""The rules behind the flags: their limits and which flags a pass-2 result raises.
 
-Flags are aids to judgement: each names its rule, and none is proof of an error.
+A flag records which rule fired and the figures it judged; `triage.views.flags` words it
+from the same limits. Flags are aids to judgement: none is proof of an error.
 """
 
 from __future__ import annotations
@@ -19,8 +20,11 @@ if TYPE_CHECKING:
     from triage.results.diagnostics import ResidualTest, ThresholdCounts
 
 __all__ = [
+    "BONFERRONI_LEVEL",
+    "COOKS_NUMERATOR",
     "DURBIN_WATSON_RANGE",
     "FLAG_P_VALUE",
+    "LEVERAGE_FACTOR",
     "ROWS_PER_TERM",
     "STUDENTIZED_LIMIT",
     "TREND_R2",
@@ -32,33 +36,29 @@ __all__ = [
 STUDENTIZED_LIMIT: Final = 3.0
 """Rows with an externally studentized residual beyond ± this are counted (common practice)."""
 
+BONFERRONI_LEVEL: Final = 0.05
+"""Share of fits in which normal errors put some residual beyond the Bonferroni bound."""
+
+LEVERAGE_FACTOR: Final = 2.0
+"""Rows with leverage above ``LEVERAGE_FACTOR · p / n`` are counted (common practice)."""
+
+COOKS_NUMERATOR: Final = 4.0
+"""Rows with Cook's distance above ``COOKS_NUMERATOR / n`` are counted (common practice)."""
 
 FLAG_P_VALUE: Final = 0.01
 """Tests with a p-value below this raise a flag."""
 
-
 DURBIN_WATSON_RANGE: Final = (1.5, 2.5)
 """Durbin–Watson values outside this range raise a flag for ordered rows (common practice)."""
 
-
 TREND_R2: Final = 0.95
 """R² above this on ordered rows raises a shared-trend flag (common practice)."""
-
 
 ROWS_PER_TERM: Final = 10
 """Fewer rows than this per coefficient raises an overfitting flag (common practice)."""
 
 
-def _rows(count: int) -> str:
-    """``1 row``, ``2 rows``, ``4,149 rows``."""
-    return f"{count:,} row{'' if count == 1 else 's'}"
-
-
-def _have(count: int) -> str:
-    return "has" if count == 1 else "have"
-
-
-def bonferroni_bound(n: int, df_resid: int, level: float = 0.05) -> float:
+def bonferroni_bound(n: int, df_resid: int, level: float = BONFERRONI_LEVEL) -> float:
     """Return the size of studentized residual that chance passes in under `level` of fits.
 
     The Bonferroni outlier bound: the t quantile at ``1 - level / (2 n)`` with
@@ -88,49 +88,26 @@ def raise_flags(
     tests: dict[str, ResidualTest],
     moments: StreamMoments,
 ) -> tuple[Flag, ...]:
-    """Plain-word hints, each naming its rule; aids to judgement, not verdicts."""
+    """Return the flags the rules raise on a pass-2 result, in display order."""
     flags: list[Flag] = []
-    # Two-sided normal tail beyond 3: what chance alone would give with normal errors.
+    # Two-sided normal tail beyond the limit: what chance alone gives with normal errors.
     expected = n * 2.0 * norm_sf(STUDENTIZED_LIMIT)
-    many_beyond_3 = poisson_at_least(counts.studentized, expected) < FLAG_P_VALUE
-    if counts.extreme or many_beyond_3:
-        found = []
-        if counts.extreme:
-            found.append(
-                f"{_rows(counts.extreme)} beyond ±{counts.extreme_threshold:.3g}, further out "
-                f"than normal errors would put any of {n:,} rows in 19 fits of 20 (Bonferroni "
-                "bound)"
-            )
-        if many_beyond_3:
-            found.append(
-                f"{_rows(counts.studentized)} beyond ±3 where chance would put about "
-                f"{expected:,.0f} (common practice threshold)"
-            )
+    many_beyond = poisson_at_least(counts.studentized, expected) < FLAG_P_VALUE
+    if counts.extreme or many_beyond:
         flags.append(
             Flag(
                 "large-studentized",
-                f"studentized residuals: {'; '.join(found)}. Worth a look: they may be data "
-                "errors or cases the model does not cover, though this is no proof of error.",
+                counts.extreme,
+                cutoff=counts.extreme_threshold,
+                rows=n,
+                beyond_limit=counts.studentized if many_beyond else 0,
+                expected=expected,
             )
         )
     if counts.leverage:
-        flags.append(
-            Flag(
-                "high-leverage",
-                f"{_rows(counts.leverage)} {_have(counts.leverage)} leverage above 2p/n = "
-                f"{counts.leverage_threshold:.3g} (common practice): their predictor values "
-                "are unusual and may pull the fit towards them. Worth a look.",
-            )
-        )
+        flags.append(Flag("high-leverage", counts.leverage, cutoff=counts.leverage_threshold))
     if counts.cooks:
-        flags.append(
-            Flag(
-                "influential-rows",
-                f"{_rows(counts.cooks)} {_have(counts.cooks)} Cook's distance above 4/n = "
-                f"{counts.cooks_threshold:.3g} (common practice): leaving one out may move "
-                "the coefficients noticeably. Worth a look, no proof of error.",
-            )
-        )
+        flags.append(Flag("influential-rows", counts.cooks, cutoff=counts.cooks_threshold))
     bp, reset, jb, dw = (
         tests["breusch_pagan"],
         tests["reset"],
@@ -138,60 +115,24 @@ def raise_flags(
         tests["durbin_watson"],
     )
     if bp.p_value < FLAG_P_VALUE:
-        flags.append(
-            Flag(
-                "spread-changes",
-                f"Breusch–Pagan (Koenker) p = {bp.p_value:.2g} < 0.01: the spread of the "
-                "residuals may change with the predictors, so the usual standard errors may "
-                "mislead; consider the robust (HC3) ones.",
-            )
-        )
+        flags.append(Flag("spread-changes", bp.p_value))
     if reset.p_value < FLAG_P_VALUE:
-        flags.append(
-            Flag(
-                "curvature",
-                f"RESET p = {reset.p_value:.2g} < 0.01: powers of the fitted values still "
-                "explain the target, so the model may miss curvature or a term (a transform "
-                "or an interaction may help).",
-            )
-        )
+        flags.append(Flag("curvature", reset.p_value))
     if jb.p_value < FLAG_P_VALUE:
         flags.append(
             Flag(
                 "tails",
-                f"Jarque–Bera p = {jb.p_value:.2g} < 0.01 (skewness "
-                f"{moments.skewness():.2f}, excess kurtosis {moments.kurtosis() - 3.0:.2f}; "
-                "both 0 for a normal): the residuals may have heavy tails or skew, so "
-                "intervals that assume normal errors may be off. With many rows this reacts "
-                "to small departures.",
+                jb.p_value,
+                skewness=moments.skewness(),
+                excess_kurtosis=moments.kurtosis() - 3.0,
             )
         )
     low, high = DURBIN_WATSON_RANGE
     if config.is_ordered and not (low <= dw.statistic <= high) and math.isfinite(dw.statistic):
-        flags.append(
-            Flag(
-                "serial-correlation",
-                f"Durbin–Watson = {dw.statistic:.2f}, outside 1.5–2.5 (common practice) on "
-                "ordered rows: neighbouring residuals may be correlated, which makes the "
-                "standard errors look smaller than they are.",
-            )
-        )
+        flags.append(Flag("serial-correlation", dw.statistic))
     if config.is_ordered and fit.r2 > TREND_R2:
-        flags.append(
-            Flag(
-                "shared-trend",
-                f"R² = {fit.r2:.3f} on rows in time order (above 0.95, common practice): a "
-                "trend shared by the target and the predictors may inflate the fit; worth "
-                "checking with differences or a time term.",
-            )
-        )
+        flags.append(Flag("shared-trend", fit.r2))
     rank = fit_rank(fit)
     if rank * ROWS_PER_TERM > fit.n:
-        flags.append(
-            Flag(
-                "many-terms",
-                f"{rank} coefficients for {fit.n:,} rows (fewer than 10 rows per coefficient, "
-                "common practice): the model may be overfitting; compare with fewer terms.",
-            )
-        )
+        flags.append(Flag("many-terms", rank, rows=fit.n))
     return tuple(flags)

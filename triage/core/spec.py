@@ -35,6 +35,10 @@ ONE_ARG_TRANSFORMS: Final = frozenset({"log", "log1p", "sqrt", "square", "std"})
 POWER_TRANSFORMS: Final = frozenset({"pow", "poly"})
 """Transforms written `f(x, k)` with an integer `k` >= 2."""
 
+TARGET_TRANSFORMS: Final = frozenset({"log", "log1p", "sqrt"})
+"""Transforms a target may take (``log(cost) ~ ...``)."""
+
+_TARGET_CALL = re.compile(r"(log1p|log|sqrt)\(\s*(`[^`]+`|[^()`]+?)\s*\)\Z")
 _CAT: Final = "cat"
 _KNOWN_FUNCTIONS: Final = "log, log1p, sqrt, square, pow, poly, std, cat"
 _PLAIN_NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_.]*\Z")
@@ -109,6 +113,9 @@ class ModelSpec:
         engine's default, a share of the machine's memory.
     drop_invalid : bool, default=False
         Leave out rows outside a transform's domain or with weight <= 0 instead of failing.
+    target_transform : {"log", "log1p", "sqrt"} or None, default=None
+        A transform of the target (``log(cost) ~ ...``): the model fits the transformed
+        values, so residuals, fitted values and worst rows are on that scale.
     """
 
     target: str
@@ -121,6 +128,13 @@ class ModelSpec:
     max_levels: int = 50
     max_memory: int | None = None
     drop_invalid: bool = False
+    target_transform: Transform | None = None
+
+    @property
+    def target_label(self) -> str:
+        """The target as the model fits it: ``minutes``, or ``log(minutes)``."""
+        name = quote_name(self.target)
+        return f"{self.target_transform}({name})" if self.target_transform else name
 
     def model_columns(self) -> tuple[str, ...]:
         """Columns whose values enter the fit: target, term columns, weights, in that order."""
@@ -282,20 +296,34 @@ class _Parser:
         msg = f"expected {expected} in term `{context}`, got {got}"
         raise SpecError(msg)
 
+    def target(self) -> str:
+        """Read the target left of `~`: a column name, or `log`, `log1p` or `sqrt` of one."""
+        kinds = "".join(
+            t.text if t.kind == "punct" else "n" for t in self.tokens[self.index : self.index + 5]
+        )
+        if kinds.startswith("n~"):
+            target = self.advance().text
+        elif kinds == "n(n)~" and self.token.text in TARGET_TRANSFORMS:
+            function = self.advance().text
+            self.advance()
+            target = f"{function}({quote_name(self.advance().text)})"
+            self.advance()
+        else:
+            lhs = self.text[: self.text.index("~")].strip()
+            msg = (
+                "the target left of `~` must be one column name or `log`, `log1p` or `sqrt` "
+                f"of one, got `{lhs}`"
+            )
+            raise SpecError(msg)
+        self.advance()  # "~"
+        return target
+
     def parse(self) -> tuple[str | None, list[tuple[Term, int, str]]]:
         """Parse the whole text into (target, [(term, start offset, written source)])."""
         target: str | None = None
         has_tilde = any(t.kind == "punct" and t.text == "~" for t in self.tokens)
         if has_tilde:
-            if self.token.kind != "name" or not (
-                self.tokens[self.index + 1].kind == "punct"
-                and self.tokens[self.index + 1].text == "~"
-            ):
-                lhs = self.text[: self.text.index("~")].strip()
-                msg = f"the target left of `~` must be one column name, got `{lhs}`"
-                raise SpecError(msg)
-            target = self.advance().text
-            self.advance()  # "~"
+            target = self.target()
         separator = "+" if has_tilde else ","
         items: list[tuple[Term, int, str]] = []
         if self.at_end():
@@ -673,6 +701,18 @@ def _check_numeric_column(name: str, schema: SchemaLike, role: str) -> None:
         raise SpecError(msg)
 
 
+def split_target(text: str, schema: SchemaLike) -> tuple[str, Transform | None]:
+    """Read a target as written: a column name, or ``log``, ``log1p`` or ``sqrt`` of one.
+
+    A column whose name looks like a call (``log(x)`` in the data) is taken as that column.
+    """
+    match = _TARGET_CALL.match(text.strip())
+    if text in schema or match is None:
+        return text, None
+    function, column = match.groups()
+    return column.strip("`"), cast("Transform", function)
+
+
 def build_spec(
     schema: SchemaLike,
     *,
@@ -748,6 +788,7 @@ def build_spec(
     if target is None:
         msg = "no target column; give one, or write the terms as `target ~ a + b`"
         raise SpecError(msg)
+    target, target_transform = split_target(target, schema)
     if target not in schema:
         msg = f"unknown target column `{target}`{closest_names_hint(target, schema)}"
         raise SpecError(msg)
@@ -798,4 +839,5 @@ def build_spec(
         max_levels=max_levels,
         max_memory=max_memory,
         drop_invalid=drop_invalid,
+        target_transform=target_transform,
     )

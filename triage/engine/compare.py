@@ -10,7 +10,7 @@ and the curvature check run on the in-memory sample.
 from __future__ import annotations
 
 import threading
-from collections.abc import Collection, Sequence
+from collections.abc import Collection, Mapping, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Final
 
@@ -19,7 +19,7 @@ import polars as pl
 
 from triage.core.checks import curvature_check, huber_refit
 from triage.core.compare import compare_fits
-from triage.core.design import DesignBatch, DesignBuilder
+from triage.core.design import DesignBatch, DesignBudget, DesignBuilder
 from triage.core.holdout import (
     HoldoutAccumulator,
     HoldoutRule,
@@ -47,6 +47,7 @@ from triage.results.holdout import KFoldResult
 
 if TYPE_CHECKING:
     from triage._typing import RowsToRead, Sampling
+    from triage.core.levels import LevelTable
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
     from triage.engine.passes import PassEngine
@@ -70,7 +71,7 @@ def _check_same_rows_spec(specs: Sequence[ModelSpec]) -> None:
     first = specs[0]
     for spec in specs[1:]:
         for field, a, b in (
-            ("target", first.target, spec.target),
+            ("target", first.target_label, spec.target_label),
             ("weights", first.weights, spec.weights),
             ("filter", first.where, spec.where),
         ):
@@ -114,17 +115,27 @@ def _common_batches(
 
 
 def _learn_builders(
-    specs: Sequence[ModelSpec], source: Source, frame: pl.DataFrame
+    specs: Sequence[ModelSpec],
+    source: Source,
+    frame: pl.DataFrame,
+    *,
+    level_tables: Mapping[str, LevelTable] | None = None,
+    budget: DesignBudget | None = None,
 ) -> tuple[list[DesignBuilder], pl.DataFrame]:
     """Learn each model's coding on the sample rows every model can use; return those rows too.
 
     Learning on the same rows gives every model the same levels and `std()` scaling, so
-    rebuilding a model's rows later reproduces what was fitted.
+    rebuilding a model's rows later reproduces what was fitted. A full pass gives the
+    levels it counted over every row (`level_tables`) and its memory `budget`.
     """
     schema = source.schema()
-    provisional = [DesignBuilder.learn(spec, schema, frame) for spec in specs]
+
+    def learn(spec: ModelSpec, rows: pl.DataFrame) -> DesignBuilder:
+        return DesignBuilder.learn(spec, schema, rows, level_tables=level_tables, budget=budget)
+
+    provisional = [learn(spec, frame) for spec in specs]
     common = _common_batches(provisional, frame, None)[0].frame
-    return [DesignBuilder.learn(spec, schema, common) for spec in specs], common
+    return [learn(spec, common) for spec in specs], common
 
 
 def compare_models(
@@ -203,7 +214,15 @@ def compare_models(
         extra_columns=list(dict.fromkeys(extra)),
         engine=engine,
     )
-    builders, common_sample = _learn_builders(specs, source, plan.learning_frame)
+    budget = plan.budget()
+    tables = plan.count_levels(
+        ProgressTracker(None, cancel=cancel),
+        min(min(s.max_levels for s in specs), budget.max_columns()),
+        specs,
+    )
+    builders, common_sample = _learn_builders(
+        specs, source, plan.learning_frame, level_tables=tables, budget=budget
+    )
 
     def new_part() -> _ComparePart:
         return _ComparePart.empty(builders)
@@ -219,12 +238,13 @@ def compare_models(
     n_held, n_unknown = folded.n_held, folded.n_unknown
     check_rows_left(counts, specs[0])
     summary = plan.summary(counts)
+    for builder, accumulator in zip(builders, accumulators, strict=True):
+        check_factor_scale(accumulator.factor, builder.column_names, builder.spec.target_label)
     cvs = _sample_kfold(builders, common_sample, holdout, exclude_rows, folds, seed)
     models = []
     for label, builder, accumulator, scorer, cv in zip(
         labels, builders, accumulators, scorers, cvs, strict=True
     ):
-        check_factor_scale(accumulator.factor, builder.column_names, builder.spec.target)
         fit = accumulator.finalize(builder.column_names)
         outcome = FitOutcome(builder.spec, builder, fit, summary, common_sample)
         score = scorer.score(fit.coef) if holdout is not None else None

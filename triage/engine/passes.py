@@ -395,15 +395,25 @@ class PassPlan:
             is_full_pass=self.is_full_pass,
         )
 
-    def count_levels(self, tracker: ProgressTracker, cap: int) -> dict[str, LevelTable] | None:
-        """Count every level of the model's categoricals over every row, or None for a sample.
+    def count_levels(
+        self, tracker: ProgressTracker, cap: int, specs: Sequence[ModelSpec] = ()
+    ) -> dict[str, LevelTable] | None:
+        """Count every level of the models' categoricals over every row, or None for a sample.
 
         A full pass reads only the categorical columns first (the filter's columns too),
         so its design has every level present and never drops a row as unseen. Rows the
         user marked are counted: the coding is that of the rows under the filter. A column
         stops being counted past `cap` levels (it is refused then, whatever its count).
+        `specs` are the models of the pass (default: the plan's).
         """
-        columns = [t.column for t in self.spec.terms if t.kind == "categorical" and t.column]
+        columns = list(
+            dict.fromkeys(
+                t.column
+                for spec in (specs or (self.spec,))
+                for t in spec.terms
+                if t.kind == "categorical" and t.column
+            )
+        )
         if self.sample is not None or not columns:
             return None
         schema = self.source.schema()
@@ -422,18 +432,21 @@ class PassPlan:
             drop_marked=False,
         ).finalize()
 
-    def learn(self, tracker: ProgressTracker) -> DesignBuilder:
-        """Learn the design: levels over every row of a full pass, within the memory limit."""
-        spec = self.spec
-        limit = spec.max_memory if spec.max_memory is not None else default_memory_limit()
-        budget = DesignBudget(
-            limit_bytes=limit,
+    def budget(self) -> DesignBudget:
+        """Return this pass's design memory budget (the spec's `max_memory` or the default)."""
+        limit = self.spec.max_memory
+        return DesignBudget(
+            limit_bytes=limit if limit is not None else default_memory_limit(),
             batch_rows=batch_rows_for(len(self.columns), FIT_BATCH_VALUES),
             n_workers=pass_workers(),
         )
-        cap = min(spec.max_levels, budget.max_columns())
+
+    def learn(self, tracker: ProgressTracker) -> DesignBuilder:
+        """Learn the design: levels over every row of a full pass, within the memory limit."""
+        budget = self.budget()
+        cap = min(self.spec.max_levels, budget.max_columns())
         return DesignBuilder.learn(
-            spec,
+            self.spec,
             self.source.schema(),
             self.learning_frame,
             level_tables=self.count_levels(tracker, cap),
@@ -482,7 +495,7 @@ def _design_quietly(builder: DesignBuilder, frame: pl.DataFrame) -> dict[str, np
     except (TriageError, ArithmeticError, RuntimeWarning):
         return None
     design = dict(zip(builder.column_names, batch.x.T, strict=True))
-    return {**design, builder.spec.target: batch.y}
+    return {**design, builder.spec.target_label: batch.y}
 
 
 def check_rows_left(counts: RowCounts, spec: ModelSpec) -> None:
@@ -499,7 +512,9 @@ def check_rows_left(counts: RowCounts, spec: ModelSpec) -> None:
     if counts.excluded:
         reasons.append(f"{counts.excluded:,} marked by you")
     why = "; ".join(reasons) if reasons else "the source has no rows"
-    msg = f"no rows left to fit `{spec.target}` ({why}); loosen `--where` or check the columns"
+    msg = (
+        f"no rows left to fit `{spec.target_label}` ({why}); loosen `--where` or check the columns"
+    )
     raise DataError(msg)
 
 
@@ -653,11 +668,11 @@ def _finalize_fit(
             "drop terms, loosen `--where`, or use more rows (`--rows`)"
         )
         raise DataError(msg)
-    check_factor_scale(accumulator.factor, builder.column_names, spec.target)
+    check_factor_scale(accumulator.factor, builder.column_names, spec.target_label)
     fit = accumulator.finalize(builder.column_names)
     if not fit.tss > 0:
         msg = (
-            f"the target `{spec.target}` does not vary over the {counts.used:,} rows used, "
+            f"the target `{spec.target_label}` does not vary over the {counts.used:,} rows used, "
             "so there is nothing to explain; check the column or the filter"
         )
         raise DataError(msg)
@@ -774,10 +789,12 @@ def _diagnose(
     from triage.core.diagnostics_config import default_config
 
     builder, fit = outcome.builder, outcome.fit
-    sample_batch = builder.build(plan.learning_frame)
+    # Coded batches keep the indicators as level codes; they need an intercept.
+    codes = builder.indicator_positions if fit.has_intercept else ()
+    sample_batch = build_for_diagnostics(builder, plan.learning_frame, use_codes=bool(codes))
     config = default_config(
         fit,
-        sample_fitted=fit.predict(sample_batch.x),
+        sample_fitted=predict_batch(fit, sample_batch),
         sample_predictors={c: sample_batch.frame[c].to_numpy() for c in builder.numeric_predictors},
         segment_columns=tuple(by),
         sample_segments={c: sample_batch.frame[c] for c in by},
@@ -785,19 +802,42 @@ def _diagnose(
         is_ordered=is_ordered,
     )
 
-    def fold(accumulator: DiagnosticsAccumulator, frame: pl.DataFrame) -> None:
-        batch = builder.build(frame)
-        if batch.x.shape[0]:
-            accumulator.update(batch)
+    def run(indicators: Sequence[int]) -> Diagnostics:
+        def fold(accumulator: DiagnosticsAccumulator, frame: pl.DataFrame) -> None:
+            batch = build_for_diagnostics(builder, frame, use_codes=bool(indicators))
+            if batch.n_rows:
+                accumulator.update(batch)
 
-    counts = RowCounts()
-    tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
+        def new_part() -> DiagnosticsAccumulator:
+            return DiagnosticsAccumulator(fit, config, indicators=indicators)
 
-    def new_part() -> DiagnosticsAccumulator:
-        return DiagnosticsAccumulator(fit, config)
+        tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
+        merged = plan.fold_frames(
+            new_part, fold, DiagnosticsAccumulator.merge, RowCounts(), tracker
+        )
+        return merged.finalize()
 
-    accumulator = plan.fold_frames(new_part, fold, DiagnosticsAccumulator.merge, counts, tracker)
-    return accumulator.finalize()
+    try:
+        return run(codes)
+    except UncertifiedGram:
+        # An auxiliary test's design (the fit's plus e², or plus ŷ² and ŷ³) that its counts
+        # and sums cannot factor to full accuracy: pass 2 runs again, indicators written out.
+        return run(())
+
+
+def build_for_diagnostics(
+    builder: DesignBuilder, frame: pl.DataFrame, *, use_codes: bool
+) -> DesignBatch | CodedBatch:
+    """Build a batch for pass 2: categoricals as level codes when asked and possible."""
+    coded = builder.build_coded(frame) if use_codes else None
+    return coded if coded is not None else builder.build(frame)
+
+
+def predict_batch(fit: LinearFit, batch: DesignBatch | CodedBatch) -> NDArray[np.float64]:
+    """Fitted values of a batch, written out or coded."""
+    if isinstance(batch, CodedBatch):
+        return fit.predict_coded(batch.design)
+    return fit.predict(batch.x)
 
 
 def diagnose_rows(

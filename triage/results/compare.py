@@ -15,13 +15,13 @@ __all__ = [
     "ComparedModel",
     "Comparison",
     "ComparisonOutcome",
-    "Criterion",
+    "ModelCriterion",
     "ModelScore",
     "NestedFTest",
     "RefitShift",
 ]
 
-Criterion: TypeAlias = Literal["adj_r2", "aic", "bic", "holdout_r2", "holdout_rmse", "cv_rmse"]
+ModelCriterion: TypeAlias = Literal["adj_r2", "aic", "bic", "holdout_r2", "holdout_rmse", "cv_rmse"]
 """A model-choice criterion that can be marked best."""
 
 
@@ -62,7 +62,7 @@ class ModelScore:
     notes: tuple[str, ...]
     """Plain-language remarks, e.g. that no degrees of freedom are left."""
 
-    def value(self, criterion: Criterion) -> float | None:
+    def value(self, criterion: ModelCriterion) -> float | None:
         """Return the value of `criterion` for this model."""
         number: float | None = getattr(self, criterion)
         return number
@@ -94,7 +94,7 @@ class Comparison:
     """One line per model, in the order given."""
     nested_f: tuple[NestedFTest, ...]
     """One test per pair where one model's columns are a subset of the other's."""
-    best: Mapping[Criterion, int]
+    best: Mapping[ModelCriterion, int]
     """Index of the best model per criterion (only when two or more models have a value)."""
 
 

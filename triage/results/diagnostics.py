@@ -5,7 +5,9 @@
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, fields
+from typing import Literal, TypeAlias
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -15,6 +17,7 @@ from triage._typing import Criterion
 __all__ = [
     "Diagnostics",
     "Flag",
+    "FlagCode",
     "ResidualBin",
     "ResidualHistogram",
     "ResidualTest",
@@ -198,14 +201,50 @@ class ThresholdCounts:
     """``4 / n``."""
 
 
+FlagCode: TypeAlias = Literal[
+    "large-studentized",
+    "high-leverage",
+    "influential-rows",
+    "spread-changes",
+    "curvature",
+    "tails",
+    "serial-correlation",
+    "shared-trend",
+    "many-terms",
+]
+"""Which rule raised a flag (the rules and their limits: `triage.core.flag_rules`)."""
+
+
 @dataclass(frozen=True)
 class Flag:
-    """A plain-word hint that something may deserve a look; never a verdict."""
+    """A rule that fired, with the figures it judged: a hint worth a look, never a verdict.
 
-    code: str
-    """Stable identifier, e.g. ``"spread-changes"``."""
-    message: str
-    """One or two sentences naming the rule behind the hint."""
+    `triage.views.flags` puts a flag into words, from these figures and the limits of
+    `triage.core.flag_rules`. Fields a rule does not use hold 0 or NaN.
+    """
+
+    code: FlagCode
+    """Which rule fired; stable across versions."""
+    value: float
+    """The figure the rule judged: rows beyond a cut-off (``large-studentized``: beyond the
+    Bonferroni bound, 0 when none; ``high-leverage``; ``influential-rows``), a p-value
+    (``spread-changes``, ``curvature``, ``tails``), the Durbin–Watson statistic
+    (``serial-correlation``), R² (``shared-trend``) or estimated coefficients
+    (``many-terms``)."""
+    cutoff: float = math.nan
+    """A cut-off that depends on the fit: the Bonferroni bound, ``2p/n`` or ``4/n``."""
+    rows: int = 0
+    """Rows of the fit (``large-studentized``, ``many-terms``)."""
+    beyond_limit: int = 0
+    """``large-studentized``: rows beyond ± `STUDENTIZED_LIMIT` when chance alone would
+    rarely give that many, else 0."""
+    expected: float = math.nan
+    """``large-studentized``: rows chance puts beyond ± `STUDENTIZED_LIMIT` with normal
+    errors."""
+    skewness: float = math.nan
+    """``tails``: skewness of the weighted residuals (0 for a normal)."""
+    excess_kurtosis: float = math.nan
+    """``tails``: kurtosis minus 3 (0 for a normal)."""
 
 
 @dataclass(frozen=True, eq=False)

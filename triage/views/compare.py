@@ -21,12 +21,12 @@ from triage.views.text import (
 
 if TYPE_CHECKING:
     from triage.results.checks import CurvatureCheck, RobustCheck
-    from triage.results.compare import Comparison, ComparisonOutcome, Criterion
+    from triage.results.compare import Comparison, ComparisonOutcome, ModelCriterion
 
 BEST_MARK: Final = "◆"
 """Put after the best value of a criterion in the comparison table."""
 
-_COLUMNS: Final[tuple[tuple[str, str, Criterion | None], ...]] = (
+_COLUMNS: Final[tuple[tuple[str, str, ModelCriterion | None], ...]] = (
     ("R²", "r2", None),
     ("adj. R²", "adj_r2", "adj_r2"),
     ("AIC", "aic", "aic"),

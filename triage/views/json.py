@@ -146,6 +146,8 @@ def fit_to_json(outcome: FitOutcome) -> dict[str, Any]:
         "data": _data_to_json(outcome.data),
         "model": {
             "target": spec.target,
+            "target_transform": spec.target_transform,
+            "target_label": spec.target_label,
             "terms": [term.label for term in spec.terms],
             "intercept": spec.intercept,
             "weights": spec.weights,
@@ -223,6 +225,8 @@ def _worst_to_json(r: WorstRow) -> dict[str, Any]:
 
 def _diagnostics_to_json(d: Diagnostics) -> dict[str, Any]:
     """Write everything pass 2 found, under the keys that `report_to_json` documents."""
+    from triage.views.flags import flag_message  # the flag rules load with a report only
+
     hist = d.histogram
     robust = {
         label: {name: getattr(se, attr) for name, se in d.robust_se.items()}
@@ -273,7 +277,7 @@ def _diagnostics_to_json(d: Diagnostics) -> dict[str, Any]:
             "cooks": d.counts.cooks,
             "cooks_threshold": d.counts.cooks_threshold,
         },
-        "flags": [{"code": f.code, "message": f.message} for f in d.flags],
+        "flags": [{"code": f.code, "message": flag_message(f)} for f in d.flags],
     }
 
 

@@ -13,7 +13,6 @@ from collections.abc import Mapping, Sequence
 from typing import TYPE_CHECKING, Any, Final, Literal
 
 from triage._typing import CRITERIA
-from triage.core.spec import quote_name
 from triage.views.format import (
     NA,
     as_float,
@@ -28,7 +27,7 @@ if TYPE_CHECKING:
     from triage.core.design import DesignBuilder
     from triage.core.lsq import LinearFit
     from triage.core.spec import ModelSpec
-    from triage.results.diagnostics import Diagnostics
+    from triage.results.diagnostics import Diagnostics, Flag
     from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
 
 Align = Literal["<", ">"]
@@ -207,10 +206,18 @@ def model_formula(spec: ModelSpec) -> str:
         E.g. ``minutes ~ distance_km + log(weight_kg)  (no intercept)``.
     """
     labels = [term.label for term in spec.terms]
-    formula = f"{quote_name(spec.target)} ~ {' + '.join(labels)}".rstrip()
+    formula = f"{spec.target_label} ~ {' + '.join(labels)}".rstrip()
     if not labels:
         return f"{formula}  (intercept only)"
     return formula if spec.intercept else f"{formula}  (no intercept)"
+
+
+def target_scale_note(spec: ModelSpec) -> str:
+    """Say on which scale residuals and fitted values are, for a transformed target."""
+    return (
+        f"the model fits {spec.target_label}: residuals, fitted values, charts and worst rows "
+        f"are on that scale, not in units of `{spec.target}`"
+    )
 
 
 def render_model(spec: ModelSpec, *, width: int = 100) -> str:
@@ -229,6 +236,8 @@ def render_model(spec: ModelSpec, *, width: int = 100) -> str:
         The ``model`` section.
     """
     pairs = [("formula", model_formula(spec))]
+    if spec.target_transform is not None:
+        pairs.append(("scale", target_scale_note(spec)))
     if spec.weights:
         pairs.append(("weights", spec.weights))
     if spec.where:
@@ -269,13 +278,15 @@ def coding_lines(builder: DesignBuilder) -> list[tuple[str, str]]:
     return lines
 
 
-def render_coding(builder: DesignBuilder, *, width: int = 100) -> str:
+def render_coding(builder: DesignBuilder, *, from_sample: bool = False, width: int = 100) -> str:
     """Show the reference level of each categorical term and the rule that chose it.
 
     Parameters
     ----------
     builder : DesignBuilder
         The fitted model's design.
+    from_sample : bool, default=False
+        The levels were learned from a sample: a line says what that leaves out.
     width : int, default=100
         Line width.
 
@@ -287,7 +298,13 @@ def render_coding(builder: DesignBuilder, *, width: int = 100) -> str:
     lines = coding_lines(builder)
     if not lines:
         return ""
-    note = textwrap.fill(CODING_RULE, width=width)
+    rule_text = CODING_RULE
+    if from_sample:
+        rule_text += (
+            "; the levels come from the sample: a level it lacks is not in the model, and "
+            "`--rows all` learns every level"
+        )
+    note = textwrap.fill(rule_text, width=width)
     return f"{rule('categorical coding', width)}\n{_pairs(lines, width)}\n{note}"
 
 
@@ -334,7 +351,8 @@ def render_fit_quality(fit: LinearFit, *, target: str | None = None, width: int 
     fit : LinearFit
         The fit.
     target : str, optional
-        The target's name, to say in whose units the errors are measured.
+        The target as the model fits it (`ModelSpec.target_label`), to say in whose units
+        the errors are measured.
     width : int, default=100
         Line width.
 
@@ -351,7 +369,7 @@ def render_fit_quality(fit: LinearFit, *, target: str | None = None, width: int 
     baseline = "intercept only" if fit.has_intercept else "none"
     parameters = parameters_counted(fit)
     counted = f"{parameters} coefficient{'' if parameters == 1 else 's'} counted"
-    units = f"in the units of {quote_name(target)}" if target else "in the target's units"
+    units = f"in the units of {target}" if target else "in the target's units"
     groups: list[tuple[str, list[tuple[str, str]]]] = [
         (
             "how much of the target the model explains",
@@ -691,13 +709,13 @@ def render_segments(
     return "\n".join(lines)
 
 
-def render_flags(flags: Sequence[Any], *, width: int = 100) -> str:
+def render_flags(flags: Sequence[Flag], *, width: int = 100) -> str:
     """List the hints the checks raised; each names the rule behind it.
 
     Parameters
     ----------
     flags : sequence of Flag
-        Hints with ``code`` and ``message``.
+        The flags of a pass-2 result, worded by `triage.views.flags`.
     width : int, default=100
         Line width.
 
@@ -706,6 +724,8 @@ def render_flags(flags: Sequence[Any], *, width: int = 100) -> str:
     str
         The ``worth a look`` section, messages wrapped to ``width``.
     """
+    from triage.views.flags import flag_message  # the flag rules load with a report only
+
     lines = [rule("worth a look", width)]
     if not flags:
         lines.append("none of the checks raised a hint (which does not prove the model right).")
@@ -713,7 +733,7 @@ def render_flags(flags: Sequence[Any], *, width: int = 100) -> str:
     lines.append("hints to aid judgement, not verdicts:")
     for flag in flags:
         lines += textwrap.wrap(
-            f"[{flag.code}] {flag.message}",
+            f"[{flag.code}] {flag_message(flag)}",
             width=max(width, 20),
             initial_indent="• ",
             subsequent_indent="  ",
@@ -759,9 +779,9 @@ def render_fit_report(outcome: FitOutcome, *, width: int = 100) -> str:
         [
             render_data_summary(outcome.data, width=width),
             render_model(outcome.spec, width=width),
-            render_fit_quality(outcome.fit, target=outcome.spec.target, width=width),
+            render_fit_quality(outcome.fit, target=outcome.spec.target_label, width=width),
             render_coefficients(outcome.fit, width=width),
-            render_coding(outcome.builder, width=width),
+            render_coding(outcome.builder, from_sample=not outcome.data.is_full_pass, width=width),
             render_aliased(outcome.fit, width=width),
         ]
     )
@@ -809,10 +829,10 @@ def render_full_report(
     sections = [
         render_data_summary(outcome.data, width=width),
         render_model(outcome.spec, width=width),
-        render_fit_quality(outcome.fit, target=outcome.spec.target, width=width),
+        render_fit_quality(outcome.fit, target=outcome.spec.target_label, width=width),
         render_flags(diagnostics.flags, width=width),
         render_coefficients(outcome.fit, robust_se=hc3, robust_label="HC3", width=width),
-        render_coding(outcome.builder, width=width),
+        render_coding(outcome.builder, from_sample=not outcome.data.is_full_pass, width=width),
         render_aliased(outcome.fit, width=width),
         render_tests(diagnostics, is_ordered=is_ordered, width=width),
         render_residual_summary(diagnostics, width=width),

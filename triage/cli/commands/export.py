@@ -60,6 +60,7 @@ def run(args: argparse.Namespace) -> int:
     """Run `triage export`."""
     from triage.cli.options import open_source_from_args, pass_engine, spec_from_args
     from triage.cli.progress import StderrProgress
+    from triage.core.design import STATUS_UNSEEN
     from triage.data.export import PERSONAL_DATA_NOTICE, check_output_path
     from triage.engine.export import export_all_rows, export_worst_rows
     from triage.engine.signals import stop_event
@@ -111,6 +112,15 @@ def run(args: argparse.Namespace) -> int:
         )
     else:
         print(f"wrote {n_rows:,} rows to {written}, {ranked_basis(data, args.by_criterion)}")
+    if args.all and statuses.get(STATUS_UNSEEN):
+        print(
+            f"note: {statuses[STATUS_UNSEEN]:,} rows have a level the sample did not have, so "
+            "the model cannot score them; `--rows all` learns every level"
+        )
+    if spec.target_transform is not None:
+        from triage.views.text import target_scale_note
+
+        print(f"note: {target_scale_note(spec)}")
     print(f"note: {PERSONAL_DATA_NOTICE}", file=sys.stderr)
     return 0
 

@@ -26,7 +26,7 @@ if TYPE_CHECKING:
     import polars as pl
     from rich.console import RenderableType
 
-    from triage.results.compare import Comparison, Criterion
+    from triage.results.compare import Comparison, ModelCriterion
     from triage.results.diagnostics import RowDiagnostics, WorstRow
     from triage.results.fit import FitOutcome, ReportOutcome
 
@@ -262,14 +262,17 @@ def _fit_sections(
         render_coefficients,
         render_data_summary,
         render_fit_quality,
+        target_scale_note,
     )
 
+    if outcome.spec.target_transform is not None:
+        header = f"{header}\n{target_scale_note(outcome.spec)}"
     return [
         header,
         render_data_summary(outcome.data, width=width),
-        render_fit_quality(outcome.fit, target=outcome.spec.target, width=width),
+        render_fit_quality(outcome.fit, target=outcome.spec.target_label, width=width),
         render_coefficients(outcome.fit, robust_se=robust, width=width),
-        render_coding(outcome.builder, width=width),
+        render_coding(outcome.builder, from_sample=not outcome.data.is_full_pass, width=width),
         render_aliased(outcome.fit, width=width),
     ]
 
@@ -370,7 +373,7 @@ class FitsPane(Pane):
         compared, comparison = self.comparison or ((), None)
         best = {} if comparison is None else comparison.best
 
-        def cell(fit: SessionFit, criterion: Criterion, value: float) -> str:
+        def cell(fit: SessionFit, criterion: ModelCriterion, value: float) -> str:
             whole = criterion in ("aic", "bic")
             text = criterion_text(value) if whole else format_number(value)
             if fit.number in compared and best.get(criterion) == compared.index(fit.number):
