@@ -193,7 +193,10 @@ def parse_reference(pairs: list[str]) -> dict[str, str]:
     for pair in pairs:
         parts = split_indicator_name(pair)
         if parts is None:
-            msg = f"`--reference` takes COL=LEVEL, got `{pair}`"
+            msg = (
+                f"`--reference` takes COL=LEVEL, got `{pair}`; "
+                "for example `--reference depot=north`"
+            )
             raise SpecError(msg)
         reference[parts[0]] = parts[1]
     return reference
@@ -277,7 +280,10 @@ def holdout_rule_from_args(args: argparse.Namespace) -> HoldoutRule | None:
     from triage.errors import SpecError
 
     if args.cut is not None and args.holdout_by is None:
-        msg = f"`--cut {args.cut}` needs `--holdout-by COL` to say which column it cuts"
+        msg = (
+            f"`--cut {args.cut}` needs `--holdout-by COL` to say which column it cuts; "
+            "add it, or leave out `--cut`"
+        )
         raise SpecError(msg)
     if args.holdout is None and args.holdout_by is None:
         return None

@@ -938,9 +938,10 @@ def _check_levels(spec: ModelSpec, table: LevelTable, basis: str) -> LevelTable:
         raise SpecError(msg)
     if len(found) < 2:
         got = f"only the level `{found[0]}`" if found else "no values"
+        kept = f" kept by the filter `{spec.where}`" if spec.where else ""
         msg = (
-            f"categorical term `{quote_name(column)}` has {got} in {basis}; it needs at least "
-            "two levels: remove the term or widen the rows"
+            f"categorical term `{quote_name(column)}` has {got} in {basis}{kept}; it needs "
+            "at least two levels: remove the term or widen the rows"
         )
         raise DataError(msg)
     reference = spec.reference.get(column)

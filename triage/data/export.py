@@ -242,9 +242,13 @@ class StreamingExport:
 
     Examples
     --------
-    >>> with StreamingExport("worst.parquet") as export:  # doctest: +SKIP
-    ...     for frame in source.scan_batches(columns):
-    ...         export.write(frame)
+    >>> from triage.data.source import open_source
+    >>> source = open_source("deliveries.parquet")
+    >>> with StreamingExport("some_rows.parquet") as export:
+    ...     for batch in source.scan_batches(["minutes", "depot"], batch_rows=1_000):
+    ...         export.write(batch.frame.head(3))
+    >>> pl.read_parquet("some_rows.parquet").height
+    6
     """
 
     def __init__(
@@ -323,7 +327,10 @@ class StreamingExport:
                 frame.write_csv(self._handle, include_header=is_first, separator=separator)
         except (pl.exceptions.PolarsError, pa.ArrowException, OSError) as exc:
             first_line = (str(exc).strip().splitlines() or [type(exc).__name__])[0]
-            msg = f"cannot write to `{self._target.name}`: {first_line}"
+            msg = (
+                f"cannot write to `{self._target.name}`: {first_line}; check the free space "
+                "and the folder's permissions, or choose another folder"
+            )
             raise ExportError(msg) from exc
         self.rows_written += frame.height
 

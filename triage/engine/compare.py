@@ -238,12 +238,13 @@ def compare_models(
                 _split_update(batch, is_held, accumulator, scorer)
     check_rows_left(counts, specs[0])
     summary = plan.summary(counts)
+    for builder, accumulator in zip(builders, accumulators, strict=True):
+        check_factor_scale(accumulator.factor, builder.column_names, builder.spec.target_label)
     cvs = _sample_kfold(builders, common_sample, holdout, exclude_rows, folds, seed)
     models = []
     for label, builder, accumulator, scorer, cv in zip(
         labels, builders, accumulators, scorers, cvs, strict=True
     ):
-        check_factor_scale(accumulator.factor, builder.column_names, builder.spec.target_label)
         fit = accumulator.finalize(builder.column_names)
         outcome = FitOutcome(builder.spec, builder, fit, summary, common_sample)
         score = scorer.score(fit.coef) if holdout is not None else None

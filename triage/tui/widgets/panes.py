@@ -421,6 +421,8 @@ class RowView:
     """Its diagnostics under the fit on screen; None while being read."""
     is_marked: bool
     """True when the user marked the row."""
+    fit_number: int
+    """The fit the diagnostics belong to."""
 
 
 class RowPane(Pane):
@@ -450,10 +452,13 @@ class RowPane(Pane):
             return
         mark = "  [marked]" if view.is_marked else ""
         if view.frame is None:
-            self._set_note(f"row {view.position:,}: reading…{mark}")
+            self._set_note(f"row {view.position:,} under fit #{view.fit_number}: reading…{mark}")
             self._set_cells([])
             return
-        self._set_note(f"row {view.position:,} of the source (0-based){mark}")
+        diag = view.diagnostics
+        outside = diag is not None and len(diag.rows) > 0 and not diag.in_fit[0]
+        basis = "not in" if outside else "under"
+        self._set_note(f"row {view.position:,} (0-based) {basis} fit #{view.fit_number}{mark}")
         self._set_cells([*_diagnostic_cells(view), *_record_cells(view.frame)])
 
     def _set_note(self, text: str) -> None:
@@ -503,6 +508,17 @@ def _diagnostic_cells(view: RowView) -> list[tuple[str, str]]:
     diag = view.diagnostics
     if diag is None or len(diag.rows) == 0:
         return [("fitted", "not used by the model (missing value or unseen level)")]
+    if not diag.in_fit[0]:
+        # scored as a new row: leverage x0ᵀ(XᵀX)⁻¹x0 and the standardised prediction residual
+        return [
+            ("in the fit", "no: outside its rows, scored as a new row"),
+            ("fitted", format_number(diag.fitted[0])),
+            ("residual", format_number(diag.resid[0])),
+            ("leverage as a new row", format_number(diag.leverage[0])),
+            ("standardised residual", format_number(diag.studentized[0], digits=3)),
+            ("Cook's distance", "only for rows in the fit"),
+            ("─" * 8, "─" * 8),
+        ]
     return [
         ("fitted", format_number(diag.fitted[0])),
         ("residual", format_number(diag.resid[0])),
@@ -698,6 +714,14 @@ class WorstPane(Pane):
         self.query_one(".pane--note", Static).update(
             f"{len(self.rows)} rows, {title}, from {basis} of fit #{fit.number}; "
             "a flagged row deserves a look, it is not shown to be wrong"
+        )
+
+    def show_pending(self, number: int) -> None:
+        """Empty the list while the diagnostics of fit `number` are computed."""
+        self.rows = ()
+        self._fill()
+        self.query_one(".pane--note", Static).update(
+            f"worst rows of fit #{number}: residual diagnostics running…"
         )
 
     def watch_marked(self) -> None:
