@@ -102,9 +102,13 @@ def _numpy_fit(path: Path, terms: list[str], where: str) -> np.ndarray | None:
     columns = {name: frame[name].fill_null(np.nan).to_numpy() for name in "yabc"}
     with np.errstate(all="ignore"):
         design = np.column_stack([np.ones(frame.height), *(TERMS[t](columns) for t in terms)])
+    # Huge finite inputs (or their squares overflowing) are refused, not fitted
+    raw = np.column_stack([columns[c] for c in "yabc" if c == "y" or any(c in t for t in terms)])
+    if np.any(np.abs(raw[np.isfinite(raw)]) > 1e30):
+        return None
     used = np.all(np.isfinite(design), axis=1) & np.isfinite(columns["y"])
     x, y = design[used], columns["y"][used]
-    if x.shape[0] <= x.shape[1] or np.abs(x).max() > 1e30 or np.abs(y).max() > 1e30:
+    if x.shape[0] <= x.shape[1]:
         return None
     if np.linalg.matrix_rank(x) < x.shape[1] or np.linalg.cond(x) > 1e8 or np.ptp(y) == 0:
         return None
