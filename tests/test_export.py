@@ -78,7 +78,7 @@ def test_export_bad_targets(tmp_path: Path) -> None:
     assert _leftovers(tmp_path) == []
 
 
-@pytest.mark.skipif(hasattr(os, "geteuid") and os.geteuid() == 0, reason="root ignores modes")
+@pytest.mark.skipif(hasattr(os, "geteuid") and os.geteuid() == 0, reason="running as root")
 def test_export_unwritable_folder(tmp_path: Path) -> None:
     folder = tmp_path / "locked"
     folder.mkdir()

@@ -8,8 +8,10 @@ missing values, weights, sorted by a code).
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Any
 
 import numpy as np
+import polars as pl
 import pytest
 import statsmodels.api as sm
 
@@ -134,6 +136,33 @@ def test_coded_fit_refuses_an_uncertified_gram(rng: np.random.Generator) -> None
         accumulator.finalize([f"c{j}" for j in range(18)])
 
 
+def _statsmodels_wls(table: pl.DataFrame, references: dict[str, str]) -> tuple[Any, list[str]]:
+    """statsmodels WLS of the test model on the usable rows, and our name of each parameter."""
+    used = table.drop_nulls().to_pandas()
+    exog = used[["age"]].assign(**{"log(income)": np.log(used["income"])})
+    for column in ("region", "channel"):
+        dummies = used[column].str.get_dummies().drop(columns=references[column])
+        exog = exog.join(dummies.add_prefix(f"{column}="))
+    exog["age:income"] = used["age"] * used["income"]
+    exog = sm.add_constant(exog).rename(columns={"const": "intercept"})
+    result = sm.WLS(used["y"], exog, weights=used["weight"]).fit()
+    return result, list(exog.columns)
+
+
+def _full_pass_source(
+    tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch, shares: tuple
+) -> tuple[pl.DataFrame, Any]:
+    monkeypatch.setattr(passes, "LEARNING_SAMPLE_ROWS", 5_000)
+    monkeypatch.setattr(parquet_module, "PART_ROWS", 5_000)
+    table = administrative_table(rng, 30_000, channel_shares=shares)
+    path = tmp_path / "admin.parquet"
+    table.write_parquet(path, row_group_size=2_500)
+    return table, open_source(path)
+
+
+TERMS = "age, log(income), region, channel, age:income"
+
+
 @pytest.mark.parametrize("rare_reference", [False, True])
 def test_full_pass_with_codes_matches_statsmodels(
     tmp_path: Path,
@@ -144,38 +173,73 @@ def test_full_pass_with_codes_matches_statsmodels(
     # Oracle: statsmodels WLS on the usable rows with pandas-made dummies. With a rare
     # reference level (named by the user) the counts cannot certify the factor and the
     # pass runs again with the indicators written out: the answer must not change.
-    n_rows = 30_000
-    monkeypatch.setattr(passes, "LEARNING_SAMPLE_ROWS", 5_000)
-    monkeypatch.setattr(parquet_module, "PART_ROWS", 5_000)
     shares = (0.6, 0.3, 0.0997, 0.0003) if rare_reference else (0.55, 0.25, 0.12, 0.08)
-    table = administrative_table(rng, n_rows, channel_shares=shares)
-    path = tmp_path / "admin.parquet"
-    table.write_parquet(path, row_group_size=2_500)
-    source = open_source(path)
+    table, source = _full_pass_source(tmp_path, rng, monkeypatch, shares)
     reference = {"channel": "desk"} if rare_reference else {}
     spec = build_spec(
-        source.schema(),
-        target="y",
-        terms="age, log(income), region, channel, age:income",
-        weights="weight",
-        reference=reference,
+        source.schema(), target="y", terms=TERMS, weights="weight", reference=reference
     )
     outcome = passes.fit_model(source, spec, rows=ALL_ROWS)
-    used = table.drop_nulls().to_pandas()
-    exog = used[["age"]].assign(log_income=np.log(used["income"]))
-    for column, ref in (("region", outcome.builder.reference_levels["region"]),):
-        dummies = used[column].str.get_dummies().drop(columns=ref)
-        exog = exog.join(dummies.add_prefix(f"{column}="))
-    channel_ref = outcome.builder.reference_levels["channel"]
-    exog = exog.join(used["channel"].str.get_dummies().drop(columns=channel_ref).add_prefix("c="))
-    exog["age:income"] = used["age"] * used["income"]
-    result = sm.WLS(used["y"], sm.add_constant(exog), weights=used["weight"]).fit()
-    ours = dict(zip(outcome.fit.names, outcome.fit.coef, strict=True))
-    ours_se = dict(zip(outcome.fit.names, outcome.fit.std_error, strict=True))
-    for name, value in result.params.items():
-        key = {"const": "intercept", "log_income": "log(income)"}.get(name, name)
-        key = key.replace("c=", "channel=") if key.startswith("c=") else key
-        assert ours[key] == pytest.approx(value, rel=RTOL, abs=1e-12)
-        assert ours_se[key] == pytest.approx(result.bse[name], rel=RTOL)
-    assert outcome.data.rows_used == len(used)
+    result, names = _statsmodels_wls(table, dict(outcome.builder.reference_levels))
+    assert list(outcome.fit.names) == names
+    # Coefficients: numpy's Householder QR of the whitened design with columns scaled to
+    # unit norm. statsmodels' pinv of the unscaled design is 1e-7 off on age:income (about
+    # -7e-9, beside columns near 1), so it is the oracle of everything else.
+    whitened = result.model.wexog
+    scale = np.linalg.norm(whitened, axis=0)
+    q, r = np.linalg.qr(whitened / scale)
+    oracle = np.linalg.solve(r, q.T @ result.model.wendog) / scale
+    np.testing.assert_allclose(outcome.fit.coef, oracle, rtol=1e-10)
+    np.testing.assert_allclose(outcome.fit.coef[:-1], result.params.iloc[:-1], rtol=RTOL)
+    np.testing.assert_allclose(outcome.fit.std_error, result.bse, rtol=RTOL)
+    assert outcome.data.rows_used == result.nobs
     assert outcome.fit.r2 == pytest.approx(result.rsquared, rel=RTOL)
+
+
+def test_report_with_codes_matches_statsmodels(
+    tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Oracle: statsmodels WLS results (HC0-HC3 standard errors; Breusch-Pagan in Koenker's
+    # form on the weighted residuals and unweighted design; RESET as the Wald F of a WLS refit
+    # with the squared and cubed fitted values; hat values and Cook's distances of the
+    # whitened regression, OLSInfluence) on the same usable rows.
+    from statsmodels.stats.diagnostic import het_breuschpagan
+    from statsmodels.stats.outliers_influence import OLSInfluence
+
+    table, source = _full_pass_source(tmp_path, rng, monkeypatch, (0.55, 0.25, 0.12, 0.08))
+    spec = build_spec(source.schema(), target="y", terms=TERMS, weights="weight")
+    report = passes.run_report(source, spec, rows=ALL_ROWS, by=("region",), top_k=5)
+    diagnostics = report.diagnostics
+    result, names = _statsmodels_wls(table, dict(report.outcome.builder.reference_levels))
+    for kind in ("hc0", "hc1", "hc2", "hc3"):
+        ours = [getattr(diagnostics.robust_se[name], kind) for name in names]
+        np.testing.assert_allclose(ours, getattr(result, kind.upper() + "_se"), rtol=RTOL)
+    lm, _, _, _ = het_breuschpagan(result.wresid, result.model.exog, robust=True)
+    assert diagnostics.tests["breusch_pagan"].statistic == pytest.approx(lm, rel=RTOL)
+    exog = result.model.exog
+    augmented = np.column_stack([exog, result.fittedvalues**2, result.fittedvalues**3])
+    n_exog = exog.shape[1]
+    reset = (
+        sm.WLS(result.model.endog, augmented, weights=result.model.weights)
+        .fit()
+        .wald_test(np.eye(2, n_exog + 2, k=n_exog), use_f=True, scalar=True)
+    )
+    assert diagnostics.tests["reset"].statistic == pytest.approx(float(reset.fvalue), rel=1e-7)
+    # Hat values from statsmodels' OLSInfluence of the whitened regression; residuals from
+    # the equilibrated Householder QR (as in the fit test: statsmodels' own are 1e-7 off on
+    # rows with small residuals); Cook's distance e² h / (k s² (1 - h)²) from those.
+    whitened, wendog = result.model.wexog, result.model.wendog
+    hat = OLSInfluence(sm.OLS(wendog, whitened).fit()).hat_matrix_diag
+    scale = np.linalg.norm(whitened, axis=0)
+    q, r = np.linalg.qr(whitened / scale)
+    resid = wendog - whitened @ (np.linalg.solve(r, q.T @ wendog) / scale)
+    k = whitened.shape[1]
+    s2 = resid @ resid / (resid.size - k)
+    cooks = resid**2 * hat / (k * s2 * (1.0 - hat) ** 2)
+    positions = table.with_row_index("row").drop_nulls()["row"].to_numpy()
+    by_row = dict(zip(positions, range(positions.size), strict=True))
+    for row in diagnostics.worst["leverage"] + diagnostics.worst["cooks"]:
+        i = by_row[row.row]
+        assert row.leverage == pytest.approx(hat[i], rel=RTOL)
+        assert row.cooks == pytest.approx(cooks[i], rel=RTOL)
+        assert row.weighted_resid == pytest.approx(resid[i], rel=RTOL)

@@ -31,6 +31,7 @@ from triage.core.binning import (
     BinLookup,
     quantiles_from_counts,
 )
+from triage.core.design import CodedBatch, DesignBatch
 from triage.core.flag_rules import (
     COOKS_NUMERATOR,
     LEVERAGE_FACTOR,
@@ -38,6 +39,8 @@ from triage.core.flag_rules import (
     bonferroni_bound,
     raise_flags,
 )
+from triage.core.indicators import coded_gram
+from triage.core.lsq import shifted_gram
 from triage.core.moments import StreamMoments
 from triage.core.residual_breakdown import BinnedResiduals, SegmentResiduals
 from triage.core.residual_tests import (
@@ -46,7 +49,12 @@ from triage.core.residual_tests import (
     ResetAccumulator,
     jarque_bera,
 )
-from triage.core.row_values import LEVERAGE_ONE_TOLERANCE, fit_rank, row_values
+from triage.core.row_values import (
+    LEVERAGE_ONE_TOLERANCE,
+    fit_rank,
+    fitted_and_leverage,
+    row_values,
+)
 from triage.core.worst_rows import TopRows
 from triage.errors import SpecError
 from triage.results.diagnostics import (
@@ -59,8 +67,10 @@ from triage.results.diagnostics import (
 )
 
 if TYPE_CHECKING:
-    from triage.core.design import DesignBatch
+    from collections.abc import Sequence
+
     from triage.core.diagnostics_config import DiagnosticsConfig
+    from triage.core.indicators import CodedDesign
     from triage.core.lsq import LinearFit
 
 __all__ = ["DiagnosticsAccumulator"]
@@ -72,6 +82,20 @@ RESID_QUANTILES: Final = (0.01, 0.05, 0.25, 0.5, 0.75, 0.95, 0.99)
 """Probabilities of the reported residual quantiles."""
 
 _WORST_FIELDS: Final = ("fitted", "resid", "weighted_resid", "studentized", "leverage", "cooks")
+
+
+def _meat_roots(
+    weights: FloatArray | None, rd: RowDiagnostics
+) -> tuple[FloatArray, FloatArray, FloatArray]:
+    """Row factors ``|e| sqrt(w ω)`` of the HC0, HC2 and HC3 meats (0 where h is 1)."""
+    root = np.abs(rd.weighted_resid)
+    if weights is not None:
+        root *= np.sqrt(weights)
+    one_minus_h = 1.0 - rd.leverage
+    ok = one_minus_h > LEVERAGE_ONE_TOLERANCE
+    root_hc3 = np.divide(root, one_minus_h, out=np.zeros_like(root), where=ok)
+    root_hc2 = np.sqrt(root * root_hc3)  # |e| / sqrt(1 - h), 0 where h is 1
+    return root, root_hc2, root_hc3
 
 
 class DiagnosticsAccumulator:
@@ -93,15 +117,38 @@ class DiagnosticsAccumulator:
 
     Examples
     --------
-    >>> acc = DiagnosticsAccumulator(fit, config)  # doctest: +SKIP
-    >>> for batch in batches:  # doctest: +SKIP
+    Eight rows in two batches; the last lies far off the line of the others.
+
+    >>> import polars as pl
+    >>> from triage.core.design import ROW_INDEX, DesignBuilder
+    >>> from triage.core.diagnostics_config import default_config
+    >>> from triage.core.lsq import QRAccumulator
+    >>> from triage.core.spec import build_spec
+    >>> frame = pl.DataFrame(
+    ...     {"minutes": [12.0, 15, 21, 24, 30, 33, 41, 90], "km": [1.0, 2, 3, 4, 5, 6, 7, 8]}
+    ... ).with_row_index(ROW_INDEX)
+    >>> spec = build_spec(frame.schema, target="minutes", terms="km")
+    >>> builder = DesignBuilder.learn(spec, frame.schema, frame)
+    >>> batches = [builder.build(frame[:4]), builder.build(frame[4:])]
+    >>> qr = QRAccumulator(2, has_intercept=True)
+    >>> for batch in batches:
+    ...     qr.update(batch.x, batch.y)
+    >>> fit = qr.finalize(builder.column_names)
+    >>> config = default_config(fit, fit.predict(builder.build(frame).x), {})
+    >>> acc = DiagnosticsAccumulator(fit, config)
+    >>> for batch in batches:
     ...     acc.update(batch)
-    >>> diagnostics = acc.finalize()  # doctest: +SKIP
+    >>> diagnostics = acc.finalize()
+    >>> [(row.row, round(row.resid, 2)) for row in diagnostics.worst["abs_resid"][:2]]
+    [(7, 26.83), (6, -13.62)]
     """
 
-    def __init__(self, fit: LinearFit, config: DiagnosticsConfig) -> None:
+    def __init__(
+        self, fit: LinearFit, config: DiagnosticsConfig, *, indicators: Sequence[int] = ()
+    ) -> None:
         self.fit = fit
         self.config = config
+        self._indicators = tuple(indicators)
         p = len(fit.names)
         rank = fit_rank(fit)
         self._n = 0
@@ -122,12 +169,15 @@ class DiagnosticsAccumulator:
             col: SegmentResiduals(col, config.segment_cuts.get(col), config.max_segment_levels)
             for col in config.segment_columns
         }
-        self._bp = BreuschPaganAccumulator(p, has_intercept=fit.has_intercept)
+        self._bp = BreuschPaganAccumulator(
+            p, has_intercept=fit.has_intercept, unshifted=self._indicators
+        )
         self._reset = ResetAccumulator(
             p,
             has_intercept=fit.has_intercept,
             center=config.fitted_center,
             scale=config.fitted_scale,
+            unshifted=self._indicators,
         )
         self._meat = np.zeros((3, rank, rank))
         self._leverage_threshold = LEVERAGE_FACTOR * rank / fit.n
@@ -138,7 +188,7 @@ class DiagnosticsAccumulator:
         self._n_leverage = 0
         self._n_cooks = 0
 
-    def _check_frame(self, batch: DesignBatch) -> None:
+    def _check_frame(self, batch: DesignBatch | CodedBatch) -> None:
         """Raise `SpecError` if a binned predictor or segment column is not in the frame."""
         wanted = [c for c in self._binned if c != "fitted"] + list(self._segments)
         missing = [c for c in wanted if c not in batch.frame.columns]
@@ -150,7 +200,7 @@ class DiagnosticsAccumulator:
             )
             raise SpecError(msg)
 
-    def update(self, batch: DesignBatch) -> None:
+    def update(self, batch: DesignBatch | CodedBatch) -> None:
         """Add the next batch of design rows (in file order).
 
         Raises
@@ -158,11 +208,11 @@ class DiagnosticsAccumulator:
         SpecError
             If a binned predictor or segment column is missing from ``batch.frame``.
         """
-        if batch.x.shape[0] == 0:
+        if batch.n_rows == 0:
             return
         self._check_frame(batch)
-        shifted = self.fit.to_shifted(batch.x)
-        rd = row_values(self.fit, shifted, batch.y, batch.weights, batch.rows)
+        shifted, fitted, h = fitted_and_leverage(self.fit, batch)
+        rd = row_values(self.fit, fitted, h, batch)
         e = rd.weighted_resid
         self._n += e.size
         self._moments.update(e)
@@ -188,9 +238,16 @@ class DiagnosticsAccumulator:
             top.update(scores[criterion], rd.rows, payload)
         for col, seg in self._segments.items():
             seg.update(batch.frame[col], e)
-        self._bp.update(batch.x, e)
-        self._reset.update(batch.x, batch.y, rd.fitted, batch.weights)
-        self._update_meat(shifted, batch.weights, rd)
+        if shifted is None:
+            assert isinstance(batch, CodedBatch)  # only coded batches have no shifted rows
+            self._bp.update_coded(batch.design, e)
+            self._reset.update_coded(batch.design, batch.y, rd.fitted, batch.weights)
+            self._update_meat_coded(batch.design, batch.weights, rd)
+        else:
+            assert isinstance(batch, DesignBatch)
+            self._bp.update(batch.x, e)
+            self._reset.update(batch.x, batch.y, rd.fitted, batch.weights)
+            self._update_meat(shifted, batch.weights, rd)
         with np.errstate(invalid="ignore"):
             self._n_studentized += int(np.sum(np.abs(rd.studentized) > STUDENTIZED_LIMIT))
             self._n_extreme += int(np.sum(np.abs(rd.studentized) > self._extreme_threshold))
@@ -205,17 +262,31 @@ class DiagnosticsAccumulator:
         Each as ``B'B`` with ``B = x~ |e| sqrt(ω)``, which numpy hands to a symmetric
         rank-k update: half the work of the general product.
         """
-        root = np.abs(rd.weighted_resid)
-        if weights is not None:
-            root *= np.sqrt(weights)
-        one_minus_h = 1.0 - rd.leverage
-        ok = one_minus_h > LEVERAGE_ONE_TOLERANCE
-        root_hc3 = np.divide(root, one_minus_h, out=np.zeros_like(root), where=ok)
-        root_hc2 = np.sqrt(root * root_hc3)  # |e| / sqrt(1 - h), 0 where h is 1
         block = np.empty_like(shifted)
-        for j, u in enumerate((root, root_hc2, root_hc3)):
+        for j, u in enumerate(_meat_roots(weights, rd)):
             np.multiply(shifted, u[:, np.newaxis], out=block)
             self._meat[j] += block.T @ block
+
+    def _update_meat_coded(
+        self, design: CodedDesign, weights: FloatArray | None, rd: RowDiagnostics
+    ) -> None:
+        """Add the same sums as `_update_meat` for coded rows: Gram matrices of counts and sums.
+
+        The Gram matrix of the coded rows (indicators unshifted) moves to the fit's shift,
+        which subtracts each indicator's shift times the ones column, by a rank-2 update.
+        """
+        kept, x_shift = self.fit.kept_columns, self.fit.column_shift
+        indicators = list(self._indicators)
+        delta = np.zeros(x_shift.size)
+        delta[indicators] = -x_shift[indicators]
+        dense = [c - x_shift[j] for c, j in zip(design.dense, design.dense_positions, strict=True)]
+        for j, u in enumerate(_meat_roots(weights, rd)):
+            dense_gram = shifted_gram(dense, np.zeros(len(dense)), u, intercept=True)
+            gram = coded_gram(design, dense, dense_gram, u * u)
+            if delta.any():
+                g0 = gram[:, 0].copy()
+                gram += np.outer(g0, delta) + np.outer(delta, g0) + g0[0] * np.outer(delta, delta)
+            self._meat[j] += gram[np.ix_(kept, kept)]
 
     def merge(self, other: DiagnosticsAccumulator) -> DiagnosticsAccumulator:
         """Fold in an accumulator over other rows of the same fit and config; returns self.

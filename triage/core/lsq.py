@@ -34,7 +34,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from triage.core.distributions import f_sf, t_ppf, t_sf
-from triage.core.indicators import CodedDesign, coded_gram
+from triage.core.indicators import CodedDesign, IntArray, coded_gram
 from triage.errors import DataError, SpecError
 
 __all__ = [
@@ -263,7 +263,7 @@ def _fill_block(
         z *= root_w[rows, np.newaxis]
 
 
-def _shifted_gram(
+def shifted_gram(
     columns: Sequence[FloatArray], shifts: FloatArray, root_w: FloatArray | None, *, intercept: bool
 ) -> FloatArray:
     """Return the Gram matrix of the block `_fill_block` writes, `GRAM_CHUNK_ROWS` at a time."""
@@ -505,6 +505,16 @@ class LinearFit:
     _factor: _ShiftedFactor = field(repr=False)
     """Triangular factor and shift, for predictions, hat values and robust covariances."""
 
+    @property
+    def kept_columns(self) -> NDArray[np.intp]:
+        """Positions of the design columns that are not aliased (the rows of `to_shifted`)."""
+        return self._factor.kept
+
+    @property
+    def column_shift(self) -> FloatArray:
+        """The shift `to_shifted` subtracts from each design column (0 for the intercept)."""
+        return self._factor.x_shift
+
     def _shifted(self, x: ArrayLike, where: str) -> FloatArray:
         """Check ``x`` (`where` names the public method in errors); shift its kept columns."""
         return self._factor.to_shifted(_as_float_matrix(x, len(self.names), where))
@@ -588,6 +598,91 @@ class LinearFit:
         """
         v = shifted @ self._factor.r_inverse
         h: FloatArray = np.einsum("ij,ij->i", v, v)
+        if weights is not None:
+            h *= np.asarray(weights, dtype=np.float64)
+        return h
+
+    @functools.cached_property
+    def _coded_parts(self) -> tuple[FloatArray, FloatArray]:
+        """Shifted coefficients and ``M = R^-1 R^-T`` over every design column, padded.
+
+        One extra zero entry (index p) stands for a reference level, which has no column.
+        Aliased columns get zeros.
+        """
+        f, p = self._factor, len(self.names)
+        coef = np.zeros(p + 1)
+        coef[f.kept] = f.shifted_coef
+        m = np.zeros((p + 1, p + 1))
+        m[np.ix_(f.kept, f.kept)] = f.r_inverse @ f.r_inverse.T
+        return coef, m
+
+    def _coded_columns(self, design: CodedDesign) -> tuple[FloatArray, FloatArray, list[IntArray]]:
+        """Split shifted coded rows into what varies and what does not.
+
+        Returns the dense columns minus their shift as an (n, q) matrix; ``c0``, the part of
+        every shifted row that does not depend on its values (1 for the intercept, minus
+        the shift of each indicator column, padded); and each factor's padded positions.
+        """
+        p = len(self.names)
+        shifts = self._factor.x_shift[design.dense_positions]
+        a = np.empty((design.n_rows, len(design.dense)), order="F")
+        for j, (column, shift) in enumerate(zip(design.dense, shifts, strict=True)):
+            np.subtract(column, shift, out=a[:, j])
+        c0 = np.zeros(p + 1)
+        c0[:p] = -self._factor.x_shift
+        c0[design.dense_positions] = 0.0
+        if self.has_intercept:
+            c0[0] = 1.0
+        padded = [np.where(f.positions >= 0, f.positions, p) for f in design.factors]
+        return a, c0, padded
+
+    def _check_coded(self, design: CodedDesign, where: str) -> None:
+        if design.n_cols != len(self.names) or design.has_intercept != self.has_intercept:
+            msg = (
+                f"the coded design passed to `{where}` has {design.n_cols} columns "
+                f"(intercept: {design.has_intercept}); the fit has {len(self.names)} "
+                f"(intercept: {self.has_intercept}): build it with the fit's design"
+            )
+            raise DataError(msg)
+
+    def predict_coded(self, design: CodedDesign) -> FloatArray:
+        """Return fitted values of rows whose categoricals come as level codes.
+
+        The same numbers as `predict` on the written-out rows (up to rounding), at the
+        cost of the dense columns plus one table look-up per categorical.
+        """
+        self._check_coded(design, "predict_coded")
+        coef, _ = self._coded_parts
+        a, c0, padded = self._coded_columns(design)
+        fitted: FloatArray = a @ coef[design.dense_positions]
+        fitted += float(c0 @ coef) + self._factor.y_shift
+        for factor, positions in zip(design.factors, padded, strict=True):
+            fitted += coef[positions][factor.codes]
+        return fitted
+
+    def leverage_coded(self, design: CodedDesign, weights: ArrayLike | None = None) -> FloatArray:
+        """Return hat values of rows whose categoricals come as level codes.
+
+        ``h = w x~' M x~`` with ``M = R^-1 R^-T``, summed from its dense block, one row
+        of look-ups per categorical and one per pair of categoricals: O(q^2 + q c + c^2)
+        per row for q dense columns and c categoricals, instead of O(p^2).
+        """
+        self._check_coded(design, "leverage_coded")
+        _, m = self._coded_parts
+        a, c0, padded = self._coded_columns(design)
+        dense = design.dense_positions
+        m_c0 = m @ c0
+        h: FloatArray = np.einsum("ij,ij->i", a @ m[np.ix_(dense, dense)], a)
+        h += 2.0 * (a @ m_c0[dense]) + float(c0 @ m_c0)
+        for i, (factor, positions) in enumerate(zip(design.factors, padded, strict=True)):
+            codes = factor.codes
+            h += 2.0 * m_c0[positions][codes]
+            h += 2.0 * np.einsum("ij,ij->i", m[np.ix_(positions, dense)][codes], a)
+            h += m[positions, positions][codes]
+            for other, other_positions in zip(
+                design.factors[i + 1 :], padded[i + 1 :], strict=True
+            ):
+                h += 2.0 * m[np.ix_(positions, other_positions)][codes, other.codes]
         if weights is not None:
             h *= np.asarray(weights, dtype=np.float64)
         return h
@@ -824,7 +919,7 @@ class QRAccumulator:
             intercept = self._has_intercept
             r_batch = None
             if n_rows > self._p:
-                r_batch = _gram_factor(_shifted_gram(columns, shifts, root_w, intercept=intercept))
+                r_batch = _gram_factor(shifted_gram(columns, shifts, root_w, intercept=intercept))
             if r_batch is None:  # the block itself is needed (and its Gram formed again)
                 z = np.empty((n_rows, self._p + 1), order="F")
                 _fill_block(z, columns, shifts, root_w, slice(None), intercept=intercept)
@@ -872,7 +967,7 @@ class QRAccumulator:
                 y_shift = float(np.mean(y))
             columns = [*design.dense, y]
             shifts = np.append(x_shift[design.dense_positions], y_shift)
-            dense_gram = _shifted_gram(columns, shifts, root_w, intercept=intercept)
+            dense_gram = shifted_gram(columns, shifts, root_w, intercept=intercept)
             shifted = [c - m for c, m in zip(columns, shifts, strict=True)]
             gram = coded_gram(design, shifted, dense_gram, w)
         if not np.all(np.isfinite(np.diagonal(gram))):

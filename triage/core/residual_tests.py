@@ -21,10 +21,13 @@ import numpy as np
 from numpy.typing import NDArray
 
 from triage.core.distributions import chi2_sf, f_sf
+from triage.core.indicators import CodedDesign
 from triage.core.lsq import QRAccumulator
 from triage.results.diagnostics import ResidualTest
 
 if TYPE_CHECKING:
+    from collections.abc import Sequence
+
     from triage.core.moments import StreamMoments
 
 FloatArray = NDArray[np.float64]
@@ -45,16 +48,22 @@ class BreuschPaganAccumulator:
         put in front of the auxiliary design (the test needs one).
     """
 
-    def __init__(self, n_cols: int, *, has_intercept: bool) -> None:
+    def __init__(self, n_cols: int, *, has_intercept: bool, unshifted: Sequence[int] = ()) -> None:
         self._prepend_ones = not has_intercept
         self._n_cols = n_cols + int(self._prepend_ones)
-        self._acc = QRAccumulator(self._n_cols, has_intercept=True)
+        self._acc = QRAccumulator(
+            self._n_cols, has_intercept=True, unshifted=[] if self._prepend_ones else unshifted
+        )
 
     def update(self, x: FloatArray, resid: FloatArray) -> None:
         """Add design rows and their (weighted) residuals."""
         if self._prepend_ones:
             x = np.column_stack((np.ones(x.shape[0]), x))
         self._acc.update(x, resid * resid)
+
+    def update_coded(self, design: CodedDesign, resid: FloatArray) -> None:
+        """Add coded rows (of a design with an intercept) and their (weighted) residuals."""
+        self._acc.update_coded(design, resid * resid)
 
     def merge(self, other: BreuschPaganAccumulator) -> None:
         """Fold another accumulator over the same design into this one."""
@@ -90,11 +99,19 @@ class ResetAccumulator:
         Standardisation of the fitted values.
     """
 
-    def __init__(self, n_cols: int, *, has_intercept: bool, center: float, scale: float) -> None:
+    def __init__(
+        self,
+        n_cols: int,
+        *,
+        has_intercept: bool,
+        center: float,
+        scale: float,
+        unshifted: Sequence[int] = (),
+    ) -> None:
         self._n_cols = n_cols + 2
         self._center = center
         self._scale = scale
-        self._acc = QRAccumulator(self._n_cols, has_intercept=has_intercept)
+        self._acc = QRAccumulator(self._n_cols, has_intercept=has_intercept, unshifted=unshifted)
 
     def update(
         self, x: FloatArray, y: FloatArray, fitted: FloatArray, weights: FloatArray | None
@@ -108,6 +125,22 @@ class ResetAccumulator:
         np.multiply(z, z, out=augmented[:, n_design])
         np.multiply(augmented[:, n_design], z, out=augmented[:, n_design + 1])
         self._acc.update(augmented, y, weights)
+
+    def update_coded(
+        self, design: CodedDesign, y: FloatArray, fitted: FloatArray, weights: FloatArray | None
+    ) -> None:
+        """Add coded rows: ``z²`` and ``z³`` join the dense columns, after every design column."""
+        z = (fitted - self._center) / self._scale
+        z2 = z * z
+        p = design.n_cols
+        augmented = CodedDesign(
+            dense=[*design.dense, z2, z2 * z],
+            dense_positions=np.append(design.dense_positions, [p, p + 1]),
+            factors=design.factors,
+            n_cols=p + 2,
+            has_intercept=design.has_intercept,
+        )
+        self._acc.update_coded(augmented, y, weights)
 
     def merge(self, other: ResetAccumulator) -> None:
         """Fold another accumulator over the same design into this one."""

@@ -9,6 +9,7 @@ from typing import TYPE_CHECKING, Final
 import numpy as np
 from numpy.typing import NDArray
 
+from triage.core.design import CodedBatch
 from triage.results.diagnostics import RowDiagnostics
 
 if TYPE_CHECKING:
@@ -33,18 +34,24 @@ def fit_rank(fit: LinearFit) -> int:
     return len(fit.names) - len(fit.aliased)
 
 
+def fitted_and_leverage(
+    fit: LinearFit, batch: DesignBatch | CodedBatch
+) -> tuple[FloatArray | None, FloatArray, FloatArray]:
+    """Fitted values and hat values of a batch, and its shifted rows when written out."""
+    if isinstance(batch, CodedBatch):
+        design = batch.design
+        return None, fit.predict_coded(design), fit.leverage_coded(design, batch.weights)
+    shifted = fit.to_shifted(batch.x)
+    return shifted, fit.predict_shifted(shifted), fit.leverage_shifted(shifted, batch.weights)
+
+
 def row_values(
-    fit: LinearFit,
-    shifted: FloatArray,
-    y: FloatArray,
-    weights: FloatArray | None,
-    rows: IntArray,
+    fit: LinearFit, fitted: FloatArray, h: FloatArray, batch: DesignBatch | CodedBatch
 ) -> RowDiagnostics:
-    """Per-row diagnostics from design rows passed through `LinearFit.to_shifted`."""
-    fitted = fit.predict_shifted(shifted)
+    """Per-row diagnostics from a batch's fitted values and hat values."""
+    y, weights, rows = batch.y, batch.weights, batch.rows
     resid = y - fitted
     weighted = resid if weights is None else np.sqrt(weights) * resid
-    h = fit.leverage_shifted(shifted, weights)
     one_minus_h = 1.0 - h
     s = fit.resid_sd
     df = fit.df_resid
@@ -75,7 +82,7 @@ def row_values(
 
 
 def row_diagnostics(
-    fit: LinearFit, batch: DesignBatch, in_fit: NDArray[np.bool_] | None = None
+    fit: LinearFit, batch: DesignBatch | CodedBatch, in_fit: NDArray[np.bool_] | None = None
 ) -> RowDiagnostics:
     """Compute fitted values, residuals, leverage, studentized residuals and Cook's distance.
 
@@ -83,8 +90,8 @@ def row_diagnostics(
     ----------
     fit : LinearFit
         The fit of pass 1.
-    batch : DesignBatch
-        Design rows built by the same builder as the fit's.
+    batch : DesignBatch or CodedBatch
+        Design rows built by the same builder as the fit's (written out or coded).
     in_fit : ndarray of bool, optional
         Per row of the batch, True when the row was among the fit's rows; rows outside are
         scored as new observations (see `RowDiagnostics`). By default every row is in.
@@ -98,7 +105,8 @@ def row_diagnostics(
     --------
     DiagnosticsAccumulator : the same values summarised over a whole pass.
     """
-    values = row_values(fit, fit.to_shifted(batch.x), batch.y, batch.weights, batch.rows)
+    _, fitted, h = fitted_and_leverage(fit, batch)
+    values = row_values(fit, fitted, h, batch)
     if in_fit is None or bool(np.all(in_fit)):
         return values
     outside = ~np.asarray(in_fit, dtype=np.bool_)

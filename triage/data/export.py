@@ -242,9 +242,13 @@ class StreamingExport:
 
     Examples
     --------
-    >>> with StreamingExport("worst.parquet") as export:  # doctest: +SKIP
-    ...     for frame in source.scan_batches(columns):
-    ...         export.write(frame)
+    >>> from triage.data.source import open_source
+    >>> source = open_source("deliveries.parquet")
+    >>> with StreamingExport("some_rows.parquet") as export:
+    ...     for batch in source.scan_batches(["minutes", "depot"], batch_rows=1_000):
+    ...         export.write(batch.frame.head(3))
+    >>> pl.read_parquet("some_rows.parquet").height
+    6
     """
 
     def __init__(

@@ -6,9 +6,11 @@ pass can always be fetched again with `Source.read_rows`.
 
 Examples
 --------
->>> source = open_source("deliveries.parquet")  # doctest: +SKIP
->>> for batch in source.scan_batches(["minutes", "distance_km"]):  # doctest: +SKIP
+>>> source = open_source("deliveries.parquet")
+>>> for batch in source.scan_batches(["minutes", "distance_km"], batch_rows=1_000):
 ...     print(batch.frame.height, batch.rows_read)
+1000 1000
+1000 2000
 """
 
 from __future__ import annotations

@@ -17,6 +17,7 @@ from triage.data.export import StreamingExport, write_frame
 from triage.data.source import ROW_INDEX
 from triage.engine.passes import (
     batch_rows_for,
+    build_for_diagnostics,
     diagnose_rows,
     fit_model,
     run_report,
@@ -181,7 +182,9 @@ def _status_frames(
             kept = frame.select(where.fill_null(value=False)).to_series().to_numpy()
             status[~kept] = STATUS_FILTERED
         scored = (status == STATUS_USED) | (status == STATUS_NOT_SAMPLED)
-        design = builder.build(frame.filter(pl.Series(scored)))
+        design = build_for_diagnostics(
+            builder, frame.filter(pl.Series(scored)), use_codes=outcome.fit.has_intercept
+        )
         diagnostics = row_diagnostics(
             outcome.fit, design, np.isin(design.rows, rows[status == STATUS_USED])
         )

@@ -694,10 +694,12 @@ def _diagnose(
     from triage.core.diagnostics_config import default_config
 
     builder, fit = outcome.builder, outcome.fit
-    sample_batch = builder.build(plan.learning_frame)
+    # Coded batches keep the indicators as level codes; they need an intercept.
+    codes = builder.indicator_positions if fit.has_intercept else ()
+    sample_batch = build_for_diagnostics(builder, plan.learning_frame, use_codes=bool(codes))
     config = default_config(
         fit,
-        sample_fitted=fit.predict(sample_batch.x),
+        sample_fitted=predict_batch(fit, sample_batch),
         sample_predictors={c: sample_batch.frame[c].to_numpy() for c in builder.numeric_predictors},
         segment_columns=tuple(by),
         sample_segments={c: sample_batch.frame[c] for c in by},
@@ -705,19 +707,42 @@ def _diagnose(
         is_ordered=is_ordered,
     )
 
-    def fold(accumulator: DiagnosticsAccumulator, frame: pl.DataFrame) -> None:
-        batch = builder.build(frame)
-        if batch.x.shape[0]:
-            accumulator.update(batch)
+    def run(indicators: Sequence[int]) -> Diagnostics:
+        def fold(accumulator: DiagnosticsAccumulator, frame: pl.DataFrame) -> None:
+            batch = build_for_diagnostics(builder, frame, use_codes=bool(indicators))
+            if batch.n_rows:
+                accumulator.update(batch)
 
-    counts = RowCounts()
-    tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
+        def new_part() -> DiagnosticsAccumulator:
+            return DiagnosticsAccumulator(fit, config, indicators=indicators)
 
-    def new_part() -> DiagnosticsAccumulator:
-        return DiagnosticsAccumulator(fit, config)
+        tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
+        merged = plan.fold_frames(
+            new_part, fold, DiagnosticsAccumulator.merge, RowCounts(), tracker
+        )
+        return merged.finalize()
 
-    accumulator = plan.fold_frames(new_part, fold, DiagnosticsAccumulator.merge, counts, tracker)
-    return accumulator.finalize()
+    try:
+        return run(codes)
+    except UncertifiedGram:
+        # An auxiliary test's design (the fit's plus e², or plus ŷ² and ŷ³) that its counts
+        # and sums cannot factor to full accuracy: pass 2 runs again, indicators written out.
+        return run(())
+
+
+def build_for_diagnostics(
+    builder: DesignBuilder, frame: pl.DataFrame, *, use_codes: bool
+) -> DesignBatch | CodedBatch:
+    """Build a batch for pass 2: categoricals as level codes when asked and possible."""
+    coded = builder.build_coded(frame) if use_codes else None
+    return coded if coded is not None else builder.build(frame)
+
+
+def predict_batch(fit: LinearFit, batch: DesignBatch | CodedBatch) -> NDArray[np.float64]:
+    """Fitted values of a batch, written out or coded."""
+    if isinstance(batch, CodedBatch):
+        return fit.predict_coded(batch.design)
+    return fit.predict(batch.x)
 
 
 def diagnose_rows(
