@@ -397,8 +397,9 @@ class FitsPane(Pane):
                 model_formula(fit.report.outcome.spec),
                 key=str(fit.number),
             )
-        if self.current is not None and self.fits:
-            table.move_cursor(row=self.current - 1, animate=False)
+        numbers = [fit.number for fit in self.fits]
+        if self.current in numbers:
+            table.move_cursor(row=numbers.index(self.current), animate=False)
         plural = "" if len(self.fits) == 1 else "s"
         note = f"{len(self.fits)} fit{plural} this session; enter shows one again"
         if len(compared) > 1:
