@@ -95,7 +95,9 @@ def ols(frame: pl.DataFrame, predictors: list[str]) -> Any:
 
 async def type_into_prompt(pilot: Any, text: str) -> None:
     for char in text:
-        await pilot.press({" ": "space", "<": "less_than_sign"}.get(char, char))
+        await pilot.press(
+            {" ": "space", "<": "less_than_sign", ">": "greater_than_sign"}.get(char, char)
+        )
 
 
 async def export_from_screen(pilot: Any, path: Path, *, worst_k: int | None = None) -> None:
@@ -398,3 +400,42 @@ async def test_a_check_finishing_while_the_user_types_does_not_take_the_keys(
         await press_id(pilot, "show-checks")
         assert isinstance(app.screen, MainScreen)
         assert any("fit #2 has not been checked yet" in m for m in posted)
+
+
+async def test_a_failure_in_the_background_while_the_user_types_is_a_notification(
+    config_home: Path, demo_file: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    import threading
+
+    import triage.engine.export as export_module
+    from triage.errors import ExportError
+
+    release = threading.Event()
+
+    def failing_export(*args: Any, **kwargs: Any) -> Path:
+        release.wait(timeout=60)  # fails only once the user is typing in the filter prompt
+        msg = "cannot write in folder `nowhere`"
+        raise ExportError(msg)
+
+    monkeypatch.setattr(export_module, "export_rows", failing_export)
+    app = build_app(demo_file, target="minutes", terms="distance_km, stops")
+    posted = notifications(app)
+    async with app.run_test(size=SMALL) as pilot:
+        screen = main_screen(app)
+        await wait_until(pilot, lambda: settled(screen), "the first fit")
+        await press_id(pilot, "export-rows")
+        await wait_until(pilot, lambda: isinstance(app.screen, ExportScreen), "the dialog")
+        app.screen.query_one("#export-worst").value = True
+        app.screen.query_one("#export-path", Input).value = str(tmp_path / "rows.csv")
+        app.screen.query_one("#export-path", Input).focus()
+        await pilot.press("enter")
+        await wait_until(pilot, lambda: app.screen is screen, "the main screen back")
+        await press_id(pilot, "edit-filter")
+        await wait_until(pilot, lambda: isinstance(app.screen, PromptScreen), "the prompt")
+        prompt = app.screen
+        await type_into_prompt(pilot, "hour")
+        release.set()
+        await wait_until(pilot, lambda: any("export failed" in m for m in posted), "the failure")
+        await type_into_prompt(pilot, " > 8")
+        assert app.screen is prompt
+        assert prompt.query_one("#prompt-input", Input).value == "hour > 8"
