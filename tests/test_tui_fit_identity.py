@@ -42,7 +42,6 @@ from triage.tui.widgets.panes import (
     WorstPane,
 )
 from triage.tui.widgets.status import ModelLine, PassLine
-from triage.views.format import format_number
 from triage.views.text import model_formula
 
 config_home = tui_support.config_home
@@ -120,6 +119,39 @@ def row_shown(screen: MainScreen, position: int) -> bool:
     """True when the Row pane shows the row at `position` with its diagnostics."""
     row = screen.query_one(RowPane).row
     return row is not None and row.position == position and row.diagnostics is not None
+
+
+def shows(text: str, value: float) -> bool:
+    """True when `text` is `value` written to the precision it shows (e.g. `41.6`, `1.2e-05`)."""
+    number = float(text.replace(",", ""))
+    if "e" in text:
+        return bool(number == pytest.approx(value, rel=5e-3))
+    decimals = len(text.split(".")[1]) if "." in text else 0
+    return abs(number - value) <= 0.5 * 10.0**-decimals * (1 + 1e-9)
+
+
+def assert_row_pane_shows(
+    screen: MainScreen, record: dict[str, Any], leverage: str, studentized: str
+) -> None:
+    """The Row pane holds the file's numbers for the row, and writes them to its precision."""
+    row = screen.query_one(RowPane).row
+    assert row is not None and row.diagnostics is not None and row.position == record["row"]
+    diag = row.diagnostics
+    for name, value in (
+        ("fitted", diag.fitted[0]),
+        ("resid", diag.resid[0]),
+        ("leverage", diag.leverage[0]),
+        ("studentized", diag.studentized[0]),
+    ):
+        assert record[name] == pytest.approx(float(value), rel=1e-12), name
+    shown = row_pane_values(screen)
+    for label, column in (
+        ("fitted", "fitted"),
+        ("residual", "resid"),
+        (leverage, "leverage"),
+        (studentized, "studentized"),
+    ):
+        assert shows(shown[label], record[column]), (label, shown[label], record[column])
 
 
 def row_pane_values(screen: MainScreen) -> dict[str, str]:
@@ -318,11 +350,7 @@ async def test_exported_rows_outside_the_fit_match_the_screen_and_say_so(
                 pilot, lambda shown=record["row"]: row_shown(screen, shown), "the row read"
             )
             assert row_pane_values(screen)["in the fit"].startswith("no")
-            shown = row_pane_values(screen)
-            assert shown["fitted"] == format_number(record["fitted"])
-            assert shown["residual"] == format_number(record["resid"])
-            assert shown["standardised residual"] == format_number(record["studentized"], digits=3)
-            assert shown["leverage as a new row"] == format_number(record["leverage"])
+            assert_row_pane_shows(screen, record, "leverage as a new row", "standardised residual")
             assert f"not in fit #{filtered.number}" in str(
                 screen.query_one(RowPane).query_one(".pane--note").content
             )
@@ -367,8 +395,7 @@ async def test_exported_rows_outside_the_fit_match_the_screen_and_say_so(
         await wait_until(pilot, lambda: row_shown(screen, left_out[0]), "the left-out row read")
         shown = row_pane_values(screen)
         assert shown["in the fit"].startswith("no")
-        assert shown["standardised residual"] == format_number(record["studentized"], digits=3)
-        assert shown["fitted"] == format_number(record["fitted"])
+        assert_row_pane_shows(screen, record, "leverage as a new row", "standardised residual")
 
 
 async def test_a_check_finishing_while_the_user_types_does_not_take_the_keys(
