@@ -532,6 +532,8 @@ async def test_tui_fits_list_switches_back_to_an_earlier_fit(
     async with app.run_test(size=SMALL) as pilot:
         await settle(pilot)
         screen = main_screen(app)
+        assert screen.front == "fit"  # the command line named a model
+        await press_id(pilot, "pane-columns")
         await move_to_column(pilot, "stops")
         await press_id(pilot, "toggle-term")
         await settle(pilot)
@@ -649,6 +651,8 @@ async def test_tui_stacks_at_80x24_and_tiles_at_120x40(config_home: Path, demo_f
         def shown() -> set[str]:
             return {p.info.pane_id for p in app.screen.query(Pane) if p.has_class("-shown")}
 
+        assert shown() == {"fit"}  # the command line named a model: its fit comes forward
+        await press_id(pilot, "pane-columns")
         assert shown() == {"columns"}
         await pilot.resize_terminal(*LARGE)
         await pilot.pause()
@@ -837,7 +841,12 @@ async def test_tui_checks_key_shows_huber_and_spline_results(
         await settle(pilot)
         await press_id(pilot, "run-checks")
         await settle(pilot)
+        # the finished checks wait for their key: no window opens by itself
+        assert isinstance(app.screen, MainScreen)
+        assert main_screen(app).checks.keys() == {1}
+        await press_id(pilot, "show-checks")
         assert isinstance(app.screen, TextScreen)
+        assert app.screen.title_text == "checks of fit #1"
         text = str(app.screen.query_one("#text-body", Static).content)
         assert "Huber" in text and "distance_km" in text and "spline" in text
         await press_id(pilot, "close-dialog")

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import shlex
 import shutil
 import subprocess
@@ -75,7 +76,7 @@ def test_tui_smoke_in_tmux_at_80x24(demo_file: Path, tmp_path: Path) -> None:
         _tmux("send-keys", "-t", session, "7")
         _wait_for(session, "largest residuals")
         _tmux("send-keys", "-t", session, "d")
-        _wait_for(session, "of the source (0-based)")
+        _wait_for(session, "(0-based) under fit #2")
         _tmux("send-keys", "-t", session, "?")
         _wait_for(session, "Bring the Columns pane to the front")
         _tmux("send-keys", "-t", session, "Escape")
@@ -83,3 +84,75 @@ def test_tui_smoke_in_tmux_at_80x24(demo_file: Path, tmp_path: Path) -> None:
         _wait_for(session, "triage-exited-0")
     finally:
         subprocess.run(["tmux", "kill-session", "-t", session], check=False, capture_output=True)
+
+
+def test_tui_terms_edited_during_a_full_pass_in_tmux_at_80x24(tmp_path: Path) -> None:
+    """A full pass over millions of rows ends after the terms changed: the screen keeps the
+    new model's fit, and the coefficients shown belong to the terms in the heading."""
+    repo = Path(__file__).parents[1]
+    data = tmp_path / "deliveries-5m.parquet"
+    subprocess.run(
+        [sys.executable, "-m", "triage", "sample", "--rows", "5000000", "--out", str(data)],
+        check=True,
+        capture_output=True,
+        cwd=repo,
+        env={**os.environ, "PYTHONPATH": str(repo)},
+    )
+    socket = f"triage-test-{uuid.uuid4().hex[:8]}"
+    argv = [
+        sys.executable,
+        "-m",
+        "triage",
+        str(data),
+        "--target",
+        "minutes",
+        "--terms",
+        "distance_km, stops, weight_kg, hour, vehicle, depot",
+    ]
+    shell = (
+        f"cd {shlex.quote(str(repo))} && PYTHONPATH={shlex.quote(str(repo))} "
+        f"TRIAGE_CONFIG_DIR={shlex.quote(str(tmp_path / 'config'))} {shlex.join(argv)}; "
+        "sleep 30"
+    )
+
+    def tmux(*args: str) -> str:
+        return _tmux("-L", socket, *args)
+
+    def wait_for(text: str, timeout: float = 120.0) -> str:
+        deadline = time.monotonic() + timeout
+        screen = ""
+        while time.monotonic() < deadline:
+            screen = tmux("capture-pane", "-p", "-t", "app")
+            if text in screen:
+                return screen
+            time.sleep(0.2)
+        raise AssertionError(f"{text!r} did not appear; the screen was:\n{screen}")
+
+    tmux("new-session", "-d", "-s", "app", "-x", "80", "-y", "24", shell)
+    try:
+        wait_for("rows used  [0 marked]")  # fit #1 with its diagnostics
+        tmux("send-keys", "-t", "app", "a")
+        wait_for("rows/s")  # the pass over every row is under way
+        tmux("send-keys", "-t", "app", "e")
+        wait_for("terms (comma list")
+        # the model's terms are selected in the field: typing replaces them
+        tmux("send-keys", "-t", "app", "-l", "distance_km, stops")
+        wait_for("distance_km, stops ")
+        tmux("send-keys", "-t", "app", "Enter")
+        # the edit landed while the pass ran: the pass is now bound for the Fits list
+        wait_for("every row (to Fits)")
+        wait_for("joined Fits")
+        tmux("send-keys", "-t", "app", "2")
+        tmux("send-keys", "-t", "app", "End")
+        screen = wait_for("── coefficients")
+        heading = screen.splitlines()[1]
+        assert "fit #2 SAMPLE: minutes ~ distance_km + stops" in heading
+        body = screen.split("── coefficients", 1)[1].splitlines()[3:]
+        terms = [line.strip("│ ").split("  ")[0] for line in body if line.startswith("│ ")]
+        assert [t for t in terms if t] == ["intercept", "distance_km", "stops"], screen
+        assert "fit #2 from a SAMPLE" in screen.splitlines()[-2]
+        tmux("send-keys", "-t", "app", "0")
+        screen = wait_for("fits this session")
+        assert "3 fits this session" in screen
+    finally:
+        subprocess.run(["tmux", "-L", socket, "kill-server"], check=False, capture_output=True)

@@ -97,6 +97,8 @@ class PassFailed(Message):
 class RowsFetched(Message):
     """Original rows and their diagnostics arrived for the drill-down pane."""
 
+    fit_number: int
+    """The fit the diagnostics belong to (dropped unless that fit is on screen)."""
     position: int
     """Source position of the row asked for."""
     frame: pl.DataFrame
@@ -109,6 +111,8 @@ class RowsFetched(Message):
 class ExportWritten(Message):
     """An export of rows finished."""
 
+    fit_number: int
+    """The fit whose diagnostics the rows carry."""
     path: str
     """Where the rows were written."""
     n_rows: int

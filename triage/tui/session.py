@@ -11,7 +11,7 @@ if TYPE_CHECKING:
 
     from triage.core.spec import ModelSpec, Term
     from triage.results.compare import Comparison
-    from triage.results.fit import ReportOutcome
+    from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
     from triage.tui.settings import Settings
 
 TRANSFORM_CYCLE: Final[tuple[str | None, ...]] = (None, "log", "log1p", "sqrt", "square", "std")
@@ -50,9 +50,9 @@ class ModelDraft:
 
     def formula(self) -> str:
         """Return `target ~ terms` for the model line (`?` stands for a target not yet chosen)."""
-        from triage.core.spec import quote_name
+        from triage.core.spec import target_text
 
-        target = "?" if self.target is None else quote_name(self.target)
+        target = "?" if self.target is None else target_text(self.target)
         right = " + ".join(term.label for term in self.terms) or "1"
         return f"{target} ~ {right}"
 
@@ -151,6 +151,71 @@ def draft_from_settings(settings: Settings) -> ModelDraft:
     )
 
 
+def draft_from_spec(spec: ModelSpec) -> ModelDraft:
+    """Return the model of a fit as a draft, so editing starts from that fit's model."""
+    from triage.core.spec import parse_terms
+
+    text = ", ".join(term.label for term in spec.terms)
+    return ModelDraft(
+        target=spec.target,
+        terms=parse_terms(text)[1] if text else (),
+        weights=spec.weights,
+        where=spec.where,
+        categorical=spec.categorical,
+        intercept=spec.intercept,
+    )
+
+
+@dataclass(frozen=True)
+class FitLabel:
+    """What names a fit wherever its results appear: number, model, filter, marks and basis."""
+
+    number: int
+    """1-based number in the session's list."""
+    formula: str
+    """The model in the `target ~ a + b` form."""
+    details: tuple[str, ...]
+    """Filter, weights, categorical columns and marked rows left out, each as a short phrase."""
+    basis: str
+    """`EVERY ROW` or `SAMPLE`."""
+    rows_used: int
+    """Rows the fit was computed on."""
+
+    @classmethod
+    def of(cls, number: int, outcome: FitOutcome, excluded: int) -> FitLabel:
+        """Label the fit `number` of `outcome`, with `excluded` marked rows left out."""
+        from triage.views.text import model_formula
+
+        spec, data = outcome.spec, outcome.data
+        details = []
+        if spec.where:
+            details.append(f"where {spec.where}")
+        if spec.weights:
+            details.append(f"weights {spec.weights}")
+        if spec.categorical:
+            details.append("categorical " + ", ".join(spec.categorical))
+        if excluded:
+            details.append(f"{excluded:,} marked left out")
+        return cls(
+            number=number,
+            formula=model_formula(spec),
+            details=tuple(details),
+            basis=basis_word(data),
+            rows_used=data.rows_used,
+        )
+
+    def one_line(self) -> str:
+        """Describe the fit in one line, e.g. for an export's note."""
+        parts = [f"fit #{self.number}: {self.formula}", *self.details]
+        parts.append(f"computed on {self.basis}, {self.rows_used:,} rows used")
+        return " | ".join(parts)
+
+
+def basis_word(data: DataSummary) -> str:
+    """Return `EVERY ROW` or `SAMPLE`: the rows a result was computed on."""
+    return "EVERY ROW" if data.is_full_pass else "SAMPLE"
+
+
 @dataclass(frozen=True, eq=False)
 class SessionFit:
     """One fit of the session, kept so the user can switch back to it."""
@@ -168,6 +233,11 @@ class SessionFit:
     def is_full_pass(self) -> bool:
         """True when every row of the source was read."""
         return self.report.outcome.data.is_full_pass
+
+    @property
+    def label(self) -> FitLabel:
+        """The fit's number, model, filter, marks and basis."""
+        return FitLabel.of(self.number, self.report.outcome, len(self.excluded))
 
 
 def compare_session_fits(

@@ -33,8 +33,10 @@ class ExportScreen(ModalScreen[ExportRequest | None]):
 
     BINDINGS: ClassVar[list[BindingType]] = [CLOSE_DIALOG]
 
-    def __init__(self, *, n_marked: int, criterion: str, top_k: int) -> None:
+    def __init__(self, *, n_marked: int, criterion: str, top_k: int, basis: str) -> None:
         super().__init__()
+        self.basis = basis
+        """Which fit scores the rows (written into the file's note too)."""
         self.n_marked = n_marked
         """Rows marked now."""
         self.criterion = criterion
@@ -54,6 +56,7 @@ class ExportScreen(ModalScreen[ExportRequest | None]):
                 classes="dialog--title",
                 markup=False,
             )
+            yield Static(f"scored by {self.basis}", id="export-basis", markup=False)
             with RadioSet(id="export-what"):
                 yield RadioButton(
                     f"marked rows ({self.n_marked:,})", value=self.n_marked > 0, id="export-marked"

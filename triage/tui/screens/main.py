@@ -31,7 +31,14 @@ from triage.tui.messages import (
 )
 from triage.tui.screens.dialogs import ErrorScreen, PromptScreen, TextScreen
 from triage.tui.screens.export import ExportRequest, ExportScreen
-from triage.tui.session import ModelDraft, SessionFit, compare_session_fits, draft_from_settings
+from triage.tui.session import (
+    FitLabel,
+    ModelDraft,
+    SessionFit,
+    compare_session_fits,
+    draft_from_settings,
+    draft_from_spec,
+)
 from triage.tui.widgets.panes import (
     PANE_BY_ID,
     PANES,
@@ -85,6 +92,7 @@ FIT_ACTIONS: Final = frozenset(
         "refit_without_marked",
         "clear_marks",
         "export_rows",
+        "show_checks",
     }
 )
 """Actions that need a fit on screen."""
@@ -102,6 +110,8 @@ class PassJob:
     """Source positions left out (a what-if refit)."""
     baseline: int | None
     """Number of the fit a what-if refit is compared with."""
+    is_full: bool
+    """Reads every row (in the background) rather than the sample."""
 
 
 def _pane_binding(index: int, pane_id: str, title: str) -> Binding:
@@ -308,7 +318,15 @@ class MainScreen(Screen[None]):
             show=False,
             id="run-checks",
             tooltip="Refit the fit on screen robustly (Huber) and with a spline per numeric "
-            "input, on the sample, and show which coefficients move and which inputs curve.",
+            "input, on the sample; a notification says when they are ready to read.",
+        ),
+        Binding(
+            "K",
+            "show_checks",
+            "read checks",
+            show=False,
+            id="show-checks",
+            tooltip="Read the finished robust and curvature checks of the fit on screen.",
         ),
         Binding(
             "E",
@@ -365,12 +383,31 @@ class MainScreen(Screen[None]):
         self.row_cache: OrderedDict[int, RowView] = OrderedDict()
         """Recently fetched rows, newest last."""
         self._pass_ids = count(1)
+        self._next_number = 1
+        self.reserved: dict[int, int] = {}
+        """Fit number given to a pass (by id) whose fit is on screen before it finished."""
         self.running_pass: int | None = None
         """Id of the running full pass, or None."""
-        self.sample_pass: int | None = None
-        """Id of the latest sample fit not yet finished, or None."""
+        self.running_job: PassJob | None = None
+        """What the running full pass fits, or None."""
+        self.screen_passes: set[int] = set()
+        """Ids of the passes whose results take the screen: the latest one asked for (with the
+        sample fit of the same model while a full pass of it runs), none once a fit was chosen
+        from the list. Any other pass's result never replaces the fit on screen: a full pass
+        joins the Fits list, a sample fit is dropped."""
+        self.sample_job: PassJob | None = None
+        """The latest sample fit asked for, until it ends."""
+        self.pending: tuple[int, FitLabel] | None = None
+        """(pass id, label) of a sample fit on screen whose diagnostics are still running."""
         self.full_pass_worker: Worker[None] | None = None
         """Worker of the running full pass, kept so one key can cancel it."""
+        self.checks: dict[int, str] = {}
+        """Finished robust and curvature checks, as text, by fit number."""
+        self.checking: int | None = None
+        """Number of the fit whose checks are running, or None."""
+        self.is_opening_on_fit = settings.target is not None
+        """Bring the Fit pane forward when the first fit shows (the command line named a
+        model), unless the user has left the Columns pane by then."""
 
     # ----------------------------------------------------------------------------------------
     # layout
@@ -490,8 +527,8 @@ class MainScreen(Screen[None]):
             return None if self.running_pass is None else True
         if action in {"edit_filter", "edit_terms", "quick_fit", "start_full_pass"}:
             return None if self.source is None else True
-        if action in FIT_ACTIONS:
-            return None if self.current is None else True
+        if action in FIT_ACTIONS:  # not while a fit shows without its diagnostics
+            return None if self.current is None or self.pending is not None else True
         return True
 
     # ----------------------------------------------------------------------------------------
@@ -501,6 +538,16 @@ class MainScreen(Screen[None]):
         """Show a message the user must dismiss; the app stays open."""
         self.app.push_screen(ErrorScreen(message, title=title))
 
+    def report_error(self, message: str, *, title: str, is_background: bool) -> None:
+        """Show an error; one from background work is a notification while a dialog is open.
+
+        A window opening over a dialog would take the keys the user is typing into it.
+        """
+        if is_background and self.app.screen is not self:
+            self.notify(f"{title}: {message}", severity="error", timeout=20)
+        else:
+            self.show_error(message, title=title)
+
     def on_worker_state_changed(self, event: Worker.StateChanged) -> None:
         """Report a worker that failed with an unexpected error, without closing the app."""
         if event.state is WorkerState.ERROR and event.worker.error is not None:
@@ -508,9 +555,10 @@ class MainScreen(Screen[None]):
                 self._end_full_pass(self.running_pass)
             error = event.worker.error
             self.log.error(f"worker {event.worker.name} failed: {error!r}")
-            self.show_error(
+            self.report_error(
                 f"{type(error).__name__}: {error}\n\nThis is a bug in triage; the app stays open.",
                 title="unexpected error",
+                is_background=True,
             )
 
     # ----------------------------------------------------------------------------------------
@@ -607,8 +655,14 @@ class MainScreen(Screen[None]):
             self.start_pass(is_full=False)
 
     def _update_model_line(self) -> None:
+        """Name the fit on screen in the heading; before the first fit, the model being built."""
+        line = self.query_one(ModelLine)
+        if self.pending is not None:
+            line.label = self.pending[1]
+        else:
+            line.label = None if self.current is None else self.current.label
         if self.draft.target is None and not self.draft.terms:
-            self.query_one(ModelLine).text = "no model yet: choose a target column in Columns"
+            line.text = "no model yet: choose a target column in Columns"
             return
         parts = [self.draft.formula()]
         if self.draft.weights:
@@ -744,16 +798,49 @@ class MainScreen(Screen[None]):
             self.notify(f"fit #{current.number} already uses every row")
             return
         pass_id = next(self._pass_ids)
-        job = PassJob(pass_id, spec, excluded, baseline)
+        job = PassJob(pass_id, spec, excluded, baseline, is_full)
+        sample = self.sample_job
+        if (
+            is_full
+            and sample is not None
+            and sample.pass_id in self.screen_passes
+            and (sample.spec, sample.excluded) == (spec, excluded)
+        ):
+            self.screen_passes = {sample.pass_id, pass_id}  # the sample fit shows first
+        else:
+            self.screen_passes = {pass_id}
         if is_full:
             self.running_pass = pass_id
+            self.running_job = job
             self.full_pass_worker = self.run_full_pass(job)
             self.query_one(PassLine).set_class(True, "-running")
             self.notify("reading every row in the background; the sample results stay until done")
         else:
-            self.sample_pass = pass_id
+            self.sample_job = job
             self.run_sample_fit(job)
+            self._running_pass_gives_way()
         self.refresh_bindings()
+
+    def _running_pass_gives_way(self) -> None:
+        """Say that a running full pass no longer takes the screen when it ends.
+
+        The model, filter, weights or marks changed (or another fit was chosen) while it ran:
+        it goes on, and its fit joins the Fits list as a fit of its own.
+        """
+        job = self.running_job
+        if job is None or job.pass_id in self.screen_passes:
+            return
+        pass_line = self.query_one(PassLine)
+        if pass_line.pass_label != "every row":
+            return
+        from triage.views.text import model_formula
+
+        pass_line.pass_label = "every row (to Fits)"
+        self.notify(
+            f"the pass over every row of {model_formula(job.spec)} goes on; its fit will join "
+            "Fits (0) without replacing the one on screen (x stops it)",
+            timeout=8,
+        )
 
     def _report(self, job: PassJob, *, rows: RowsToRead) -> None:
         """Run one pass of `job` in the current worker and post how it ended.
@@ -770,7 +857,8 @@ class MainScreen(Screen[None]):
             self.post_message(PassProgressed(job.pass_id, progress))
 
         def report_fit(outcome: FitOutcome) -> None:
-            self.post_message(FitComputed(job.pass_id, outcome))
+            if not worker.is_cancelled:
+                self.post_message(FitComputed(job.pass_id, outcome))
 
         head_start = self.head_start if rows is not ALL_ROWS and not job.excluded else None
         try:
@@ -803,7 +891,10 @@ class MainScreen(Screen[None]):
         except TriageError as error:
             self.post_message(PassFailed(job.pass_id, str(error), "the fit failed"))
         else:
-            self.post_message(PassFinished(job.pass_id, report, job.excluded, job.baseline))
+            if worker.is_cancelled:  # a newer request replaced this one while it finished
+                self.post_message(PassStopped(job.pass_id))
+            else:
+                self.post_message(PassFinished(job.pass_id, report, job.excluded, job.baseline))
 
     @work(thread=True, exclusive=True, group="sample-fit", exit_on_error=False)
     def run_sample_fit(self, job: PassJob) -> None:
@@ -837,13 +928,34 @@ class MainScreen(Screen[None]):
         if pass_id != self.running_pass:
             return False
         self.running_pass = None
+        self.running_job = None
         self.full_pass_worker = None
-        self.query_one(PassLine).progress = None
+        pass_line = self.query_one(PassLine)
+        pass_line.progress = None
+        pass_line.pass_label = "every row"
         self.refresh_bindings()
         return True
 
+    def _end_pass(self, pass_id: int) -> None:
+        """Forget a pass that ended without a fit: its number, and its fit shown early."""
+        number = self.reserved.pop(pass_id, None)
+        if number is not None and number == self._next_number - 1:
+            self._next_number = number  # nobody took a later number: no gap in the list
+        if self.pending is not None and self.pending[0] == pass_id:
+            self.pending = None
+            self.query_one(FitPane).drop_provisional()
+            if self.current is not None:
+                self.show_fit(self.current)
+            else:
+                self._show_basis()
+                self._update_model_line()
+        self.screen_passes.discard(pass_id)
+        if self.sample_job is not None and self.sample_job.pass_id == pass_id:
+            self.sample_job = None
+
     def on_pass_stopped(self, message: PassStopped) -> None:
         """Say that the full pass stopped and what stays on screen."""
+        self._end_pass(message.pass_id)
         if self._end_full_pass(message.pass_id):
             self.notify(
                 "the pass over every row was stopped; the results on screen are unchanged",
@@ -852,11 +964,9 @@ class MainScreen(Screen[None]):
 
     def on_pass_failed(self, message: PassFailed) -> None:
         """Show why a pass (or opening the data) failed."""
+        self._end_pass(message.pass_id)
         self._end_full_pass(message.pass_id)
-        if message.pass_id == self.sample_pass:
-            self.query_one(FitPane).drop_provisional()
-            self._show_basis()
-        self.show_error(message.message, title=message.title)
+        self.report_error(message.message, title=message.title, is_background=message.pass_id != 0)
 
     def _show_basis(self) -> None:
         """Say on the pass line which rows the fit on screen comes from."""
@@ -867,46 +977,105 @@ class MainScreen(Screen[None]):
             else basis_text(fit.number, fit.report.outcome.data, excluded=bool(fit.excluded))
         )
 
+    def _take_number(self) -> int:
+        number = self._next_number
+        self._next_number += 1
+        return number
+
     def on_fit_computed(self, message: FitComputed) -> None:
-        """Show a sample fit at once, while its residual diagnostics are still computed."""
-        if message.pass_id != self.sample_pass:
+        """Show a sample fit at once, while its residual diagnostics are still computed.
+
+        The fit takes its number now, and the heading names it; the panes that need the
+        diagnostics show nothing of the previous fit meanwhile.
+        """
+        if message.pass_id not in self.screen_passes:
             return
-        number = len(self.fits) + 1
-        self.query_one(FitPane).show_provisional(message.outcome, number)
-        data = message.outcome.data
-        basis = basis_text(number, data, excluded=bool(data.rows_excluded))
+        number = self._take_number()
+        self.reserved[message.pass_id] = number
+        outcome = message.outcome
+        excluded = outcome.data.rows_excluded
+        self.pending = (message.pass_id, FitLabel.of(number, outcome, excluded))
+        self.query_one(FitPane).show_provisional(outcome, number)
+        self.query_one(SpreadPane).shown = None
+        self.query_one(TrendPane).shown = None
+        self.query_one(InputsPane).shown = None
+        self.query_one(FlagsPane).shown = None
+        self.query_one(GroupsPane).shown = None
+        self.query_one(WorstPane).show_pending(number)
+        if self.row_position is not None:
+            self.query_one(RowPane).row = RowView(
+                self.row_position,
+                None,
+                None,
+                is_marked=self.row_position in self.marked,
+                fit_number=number,
+            )
+        basis = basis_text(number, outcome.data, excluded=bool(excluded))
         self.query_one(PassLine).basis = f"{basis}; residual diagnostics running"
+        self._update_model_line()
+        self._open_on_fit()
+        self.refresh_bindings()
 
     def on_pass_finished(self, message: PassFinished) -> None:
-        """Add the fit to the session's list and show it; drop late results of older passes."""
+        """Add the fit to the session's list; show it when it is the one the screen awaits.
+
+        A full pass whose model was changed while it ran joins the list without taking the
+        screen; a late sample fit of an older request is dropped.
+        """
         is_full = self._end_full_pass(message.pass_id)
-        if not is_full:
-            if message.pass_id != self.sample_pass:
-                return
-            self.sample_pass = None
+        takes_screen = message.pass_id in self.screen_passes
+        if not is_full and not takes_screen:
+            self._end_pass(message.pass_id)
+            return
+        number = self.reserved.pop(message.pass_id, None) or self._take_number()
         fit = SessionFit(
-            number=len(self.fits) + 1,
+            number=number,
             report=message.report,
             excluded=message.excluded,
             baseline=message.baseline,
         )
         self.fits.append(fit)
-        self.query_one(FitsPane).fits = tuple(self.fits)
-        self.show_fit(fit)
-        if fit.number == 1:
+        fits_pane = self.query_one(FitsPane)
+        fits_pane.fits = tuple(self.fits)
+        if takes_screen:
+            # a full pass ends every claim on the screen; a sample fit only its own
+            self.screen_passes = set() if is_full else self.screen_passes - {message.pass_id}
+            if self.sample_job is not None and self.sample_job.pass_id == message.pass_id:
+                self.sample_job = None
+            self.show_fit(fit)
+            if is_full:
+                self.notify(f"fit #{fit.number} now uses every row")
+        else:
+            shown = "" if self.current is None else f"; fit #{self.current.number} stays on screen"
+            self.notify(
+                f"fit #{fit.number} ({fit.label.formula}, every row) joined Fits (0){shown}",
+                timeout=10,
+            )
+            if self.current is not None:
+                fits_pane.comparison = compare_session_fits(self.fits, self.current)
+        if len(self.fits) == 1:
             collect_again()
-        if is_full:
-            self.notify(f"fit #{fit.number} now uses every row")
+
+    def fit_numbered(self, number: int) -> SessionFit | None:
+        """Return the session's fit with that number, if there is one."""
+        return next((fit for fit in self.fits if fit.number == number), None)
+
+    def _open_on_fit(self) -> None:
+        """Bring the Fit pane forward for the first fit of a model the command line named."""
+        if self.is_opening_on_fit:
+            self.is_opening_on_fit = False
+            if self.front == "columns":
+                self.action_show_pane("fit")
 
     def show_fit(self, fit: SessionFit) -> None:
-        """Push one fit of the session down to every pane."""
+        """Push one fit of the session down to every pane, and name it in the heading."""
         self.current = fit
+        self.pending = None
         outcome = fit.report.outcome
         predictors = outcome.builder.numeric_predictors
         self.predictor_index %= max(len(predictors), 1)
-        self.query_one(FitPane).set_fit(
-            fit, self.fits[fit.baseline - 1] if fit.baseline else None, robust=self.is_robust
-        )
+        baseline = None if fit.baseline is None else self.fit_numbered(fit.baseline)
+        self.query_one(FitPane).set_fit(fit, baseline, robust=self.is_robust)
         self.query_one(SpreadPane).shown = fit
         self.query_one(TrendPane).shown = fit
         predictors_pane = self.query_one(InputsPane)
@@ -916,6 +1085,7 @@ class MainScreen(Screen[None]):
         worst = self.query_one(WorstPane)
         worst.marked = frozenset(self.marked)
         worst.show(fit, self._criterion())
+        self.query_one(RowPane).decimals = worst.decimals
         segments = self.query_one(GroupsPane)
         columns = self.segment_columns
         segments.column = columns[self.segment_index % len(columns)] if columns else None
@@ -923,20 +1093,37 @@ class MainScreen(Screen[None]):
         fits_pane = self.query_one(FitsPane)
         fits_pane.current = fit.number
         fits_pane.comparison = compare_session_fits(self.fits, fit)
-        self.row_cache.clear()
+        if self.row_cache and next(iter(self.row_cache.values())).fit_number != fit.number:
+            self.row_cache.clear()
         self.prefetch_rows(self._worst_positions(), fit)
+        if self.row_position is not None:
+            self.show_row(self.row_position)
         self._show_basis()
+        self._update_model_line()
         # on the pass line itself: a class on the screen would restyle every widget
         pass_line = self.query_one(PassLine)
         pass_line.set_class(fit.is_full_pass, "-every-row")
         pass_line.set_class(not fit.is_full_pass, "-from-sample")
+        self._open_on_fit()
         self.refresh_bindings()
 
     @on(DataTable.RowSelected, "#fits-table")
     def _fit_chosen(self, event: DataTable.RowSelected) -> None:
-        """Enter on a fit of the list shows it again."""
-        number = int(str(event.row_key.value))
-        self.show_fit(self.fits[number - 1])
+        """Enter on a fit of the list shows it again, whole, and editing starts from its model.
+
+        A sample fit still running for another model is stopped; a full pass goes on and
+        joins the list when it ends.
+        """
+        fit = self.fit_numbered(int(str(event.row_key.value)))
+        if fit is None:
+            return
+        self.workers.cancel_group(self, "sample-fit")
+        self.screen_passes = set()
+        self.draft = draft_from_spec(fit.report.outcome.spec)
+        self.typed_terms = None
+        self.query_one(ColumnsPane).draft = self.draft
+        self.show_fit(fit)
+        self._running_pass_gives_way()
 
     # ----------------------------------------------------------------------------------------
     # pane options
@@ -999,21 +1186,26 @@ class MainScreen(Screen[None]):
         self.open_row(positions[index])
 
     def open_row(self, position: int) -> None:
-        """Show a row at once from the cache, or a placeholder while it is read."""
-        self.row_position = position
-        row_pane = self.query_one(RowPane)
-        cached = self.row_cache.get(position)
-        if cached is not None:
-            self.row_cache.move_to_end(position)
-            row_pane.row = RowView(
-                position, cached.frame, cached.diagnostics, is_marked=position in self.marked
-            )
-        else:
-            row_pane.row = RowView(position, None, None, is_marked=position in self.marked)
-            if self.current is not None:
-                self.fetch_row(position, self.current)
+        """Show a row in the Row pane and bring the pane forward."""
+        self.show_row(position)
         if self.front != "row" and (not self.is_tiled or PANE_BY_ID[self.front].page != "rows"):
             self.action_show_pane("row")
+
+    def show_row(self, position: int) -> None:
+        """Show a row under the fit on screen, at once from the cache or read in the background."""
+        self.row_position = position
+        fit = self.current
+        if fit is None:
+            return
+        row_pane = self.query_one(RowPane)
+        is_marked = position in self.marked
+        cached = self.row_cache.get(position)
+        if cached is not None and cached.fit_number == fit.number:
+            self.row_cache.move_to_end(position)
+            row_pane.row = replace(cached, is_marked=is_marked)
+        else:
+            row_pane.row = RowView(position, None, None, is_marked, fit.number)
+            self.fetch_row(position, fit)
 
     @work(thread=True, exclusive=True, group="row-fetch", exit_on_error=False)
     def fetch_row(self, position: int, fit: SessionFit) -> None:
@@ -1022,12 +1214,14 @@ class MainScreen(Screen[None]):
 
         assert self.source is not None
         try:
-            frame, diagnostics = diagnose_rows(self.source, fit.report.outcome, [position])
+            frame, diagnostics = diagnose_rows(
+                self.source, fit.report.outcome, [position], exclude_rows=fit.excluded
+            )
         except TriageError as error:
             self.post_message(PassFailed(-1, str(error), "cannot read the row"))
             return
         if not get_current_worker().is_cancelled:
-            self.post_message(RowsFetched(position, frame, diagnostics))
+            self.post_message(RowsFetched(fit.number, position, frame, diagnostics))
 
     def action_run_checks(self) -> None:
         """Run the robust refit and the curvature check on the fit on screen."""
@@ -1035,6 +1229,7 @@ class MainScreen(Screen[None]):
             self.notify("no fit yet: fit a model first")
             return
         self.notify(f"checking fit #{self.current.number} on the sample…")
+        self.checking = self.current.number
         self.run_checks(self.current)
 
     @work(thread=True, exclusive=True, group="checks", exit_on_error=False)
@@ -1063,8 +1258,26 @@ class MainScreen(Screen[None]):
             self.post_message(ChecksFinished(fit.number, text))
 
     def on_checks_finished(self, message: ChecksFinished) -> None:
-        """Show the checks' results on a page of their own."""
-        self.app.push_screen(TextScreen(message.text, title=f"checks of fit #{message.number}"))
+        """Keep the checks' results and say they are ready; they open only when asked."""
+        self.checks[message.number] = message.text
+        if self.checking == message.number:
+            self.checking = None
+        key = self.key_displays().get("show-checks", "")
+        self.notify(f"the checks of fit #{message.number} are ready: {key} shows them", timeout=10)
+
+    def action_show_checks(self) -> None:
+        """Show the finished checks of the fit on screen on a page of their own."""
+        if self.current is None:
+            return
+        number = self.current.number
+        text = self.checks.get(number)
+        if text is not None:
+            self.app.push_screen(TextScreen(text, title=f"checks of fit #{number}"))
+        elif self.checking == number:
+            self.notify(f"the checks of fit #{number} are still running")
+        else:
+            key = self.key_displays().get("run-checks", "")
+            self.notify(f"fit #{number} has not been checked yet: {key} runs the checks")
 
     @work(thread=True, exclusive=True, group="row-prefetch", exit_on_error=False)
     def prefetch_rows(self, positions: list[int], fit: SessionFit) -> None:
@@ -1080,7 +1293,9 @@ class MainScreen(Screen[None]):
         if self.source is None or not wanted:
             return
         try:
-            frame, diagnostics = diagnose_rows(self.source, fit.report.outcome, wanted)
+            frame, diagnostics = diagnose_rows(
+                self.source, fit.report.outcome, wanted, exclude_rows=fit.excluded
+            )
         except TriageError:
             return  # stepping reads each row on its own and reports the error there
         worker = get_current_worker()
@@ -1089,15 +1304,22 @@ class MainScreen(Screen[None]):
                 return
             row = frame.filter(frame[ROW_INDEX] == position).head(1)
             picked = (diagnostics.rows == position).nonzero()[0][:1]
-            self.post_message(RowsFetched(position, row, diagnostics.take(picked)))
+            self.post_message(RowsFetched(fit.number, position, row, diagnostics.take(picked)))
 
     def on_rows_fetched(self, message: RowsFetched) -> None:
-        """Fill the Row pane when the row it waits for arrives; cache it."""
+        """Fill the Row pane when the row it waits for arrives; cache it.
+
+        Rows diagnosed under a fit that is no longer on screen are dropped.
+        """
+        fit = self.current
+        if fit is None or self.pending is not None or message.fit_number != fit.number:
+            return
         view = RowView(
             message.position,
             message.frame,
             message.diagnostics,
             is_marked=message.position in self.marked,
+            fit_number=fit.number,
         )
         self.row_cache[message.position] = view
         while len(self.row_cache) > ROW_CACHE_SIZE:
@@ -1131,9 +1353,7 @@ class MainScreen(Screen[None]):
         row_pane = self.query_one(RowPane)
         if row_pane.row is not None:
             view = row_pane.row
-            row_pane.row = RowView(
-                view.position, view.frame, view.diagnostics, is_marked=view.position in self.marked
-            )
+            row_pane.row = replace(view, is_marked=view.position in self.marked)
         self.query_one(PassLine).marks = len(self.marked)
 
     def action_refit_without_marked(self) -> None:
@@ -1150,29 +1370,36 @@ class MainScreen(Screen[None]):
         )
 
     def action_export_rows(self) -> None:
-        """Ask what to export and where, then write it in the background."""
-        if self.current is None:
+        """Ask what to export and where, then write it in the background.
+
+        The rows are scored by the fit on screen when the key is pressed, whatever shows
+        by the time the dialog closes.
+        """
+        fit = self.current
+        if fit is None:
             return
+        worst = self.query_one(WorstPane).positions()
+
+        def chosen(request: ExportRequest | None) -> None:
+            if request is None:
+                return
+            positions = sorted(self.marked) if request.what == "marked" else worst[: request.k]
+            if not positions:
+                self.show_error(
+                    "there are no rows to export: mark rows first", title="nothing to export"
+                )
+                return
+            self.write_export(fit, positions, request)
+
         self.app.push_screen(
             ExportScreen(
-                n_marked=len(self.marked), criterion=self._criterion(), top_k=self.settings.top_k
+                n_marked=len(self.marked),
+                criterion=self._criterion(),
+                top_k=self.settings.top_k,
+                basis=fit.label.one_line(),
             ),
-            self._export_chosen,
+            chosen,
         )
-
-    def _export_chosen(self, request: ExportRequest | None) -> None:
-        if request is None or self.current is None:
-            return
-        if request.what == "marked":
-            positions = sorted(self.marked)
-        else:
-            positions = self.query_one(WorstPane).positions()[: request.k]
-        if not positions:
-            self.show_error(
-                "there are no rows to export: mark rows first", title="nothing to export"
-            )
-            return
-        self.write_export(self.current, positions, request)
 
     @work(thread=True, exclusive=True, group="export", exit_on_error=False)
     def write_export(self, fit: SessionFit, positions: list[int], request: ExportRequest) -> None:
@@ -1186,19 +1413,27 @@ class MainScreen(Screen[None]):
         assert self.source is not None
         try:
             written = export_rows(
-                self.source, fit.report.outcome, positions, request.path, force=request.is_replacing
+                self.source,
+                fit.report.outcome,
+                positions,
+                request.path,
+                force=request.is_replacing,
+                exclude_rows=fit.excluded,
+                fit_number=fit.number,
+                note=fit.label.one_line(),
             )
         except TriageError as error:
             self.post_message(PassFailed(-1, str(error), "the export failed"))
             return
-        self.post_message(ExportWritten(str(written), len(positions)))
+        self.post_message(ExportWritten(fit.number, str(written), len(positions)))
 
     def on_export_written(self, message: ExportWritten) -> None:
         """Say where the rows went, with the reminder about personal records."""
         from triage.data.export import PERSONAL_DATA_NOTICE
 
         self.notify(
-            f"wrote {message.n_rows:,} rows to {message.path}\n{PERSONAL_DATA_NOTICE}",
+            f"wrote {message.n_rows:,} rows scored by fit #{message.fit_number} to "
+            f"{message.path}\n{PERSONAL_DATA_NOTICE}",
             timeout=12,
         )
 

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING
 
+from rich.cells import cell_len
 from rich.text import Text
 from textual.reactive import reactive
 from textual.widget import Widget
@@ -14,6 +15,7 @@ if TYPE_CHECKING:
     from textual.screen import Screen
 
     from triage.results.progress import PassProgress
+    from triage.tui.session import FitLabel
 
 
 class PaneStrip(Widget):
@@ -57,22 +59,42 @@ class PaneStrip(Widget):
 
 
 class ModelLine(Widget):
-    """The model being built or shown, in the term syntax, with filter and weights."""
+    """The heading: the fit on screen (number, basis, model, filter, marks), or the draft.
+
+    Every pane shows results of the fit named here. When the line is too short, the
+    formula is shortened first, so the fit's number, basis and filter stay in view.
+    """
 
     DEFAULT_CSS = """
     ModelLine { height: 1; }
     """
 
     text: reactive[str] = reactive("no model yet")
-    """What to show."""
+    """What to show while no fit is on screen (the model being built)."""
+    label: reactive[FitLabel | None] = reactive(None)
+    """The fit on screen, or None."""
 
     def render(self) -> RenderableType:
-        """Draw the model text on one line."""
-        return Text(self.text, no_wrap=True, overflow="ellipsis")
+        """Draw the heading on one line."""
+        label = self.label
+        if label is None:
+            return Text(self.text, no_wrap=True, overflow="ellipsis")
+        head = f"fit #{label.number} {label.basis}: "
+        tail = "".join(f"  |  {detail}" for detail in label.details)
+        room = self.size.width - cell_len(head) - cell_len(tail)
+        formula = label.formula
+        if cell_len(formula) > room:
+            formula = formula[: max(room - 1, 8)] + "…"
+        text = Text(head, style="bold", no_wrap=True, overflow="ellipsis")
+        text.append(formula + tail)
+        return text
 
 
-def progress_text(progress: PassProgress, width: int) -> str:
+def progress_text(progress: PassProgress, width: int, *, label: str = "every row") -> str:
     """Describe a running pass: which pass, bar, share done, rows done, rows per second, time left.
+
+    When the line is too short, the bar goes first, then the total rows, then where a later
+    pass reads from: the pass, the share done, the speed and the time left stay.
 
     Parameters
     ----------
@@ -80,6 +102,8 @@ def progress_text(progress: PassProgress, width: int) -> str:
         The latest report from the engine.
     width : int
         Room for the whole line, in cells.
+    label : str, default="every row"
+        What the pass is, said first.
 
     Returns
     -------
@@ -91,19 +115,24 @@ def progress_text(progress: PassProgress, width: int) -> str:
     fraction = progress.fraction
     speed = f"{format_count(round(progress.rows_per_s))} rows/s"
     done = format_count(progress.rows_done)
-    if progress.rows_total:
-        done = f"{done}/{format_count(progress.rows_total)} rows"
-    else:
-        done = f"{done} rows"
     left = "time left unknown" if progress.eta_s is None else f"{progress.eta_s:,.0f} s left"
-    tail = f"{done}  {speed}  {left}"
-    head = f"every row, {progress.stage}" if progress.stage else "every row"
-    if fraction is None:
-        return f"{head}: {tail}"
-    bar_width = max(4, min(30, width - len(tail) - len(head) - 12))
-    filled = round(fraction * bar_width)
-    bar = "#" * filled + "." * (bar_width - filled)
-    return f"{head}: [{bar}] {fraction:4.0%}  {tail}"
+    stage = f"pass {progress.pass_number} of {progress.n_passes}" if progress.stage else ""
+    total = f"/{format_count(progress.rows_total)}" if progress.rows_total else ""
+    share = "" if fraction is None else f"{fraction:4.0%}  "
+    line = ""
+    for full_stage, with_total in ((progress.stage, True), (progress.stage, False), (stage, False)):
+        head = f"{label}, {full_stage}" if full_stage else label
+        rows = f"{done}{total if with_total else ''} rows"
+        line = f"{head}: {share}{rows}  {speed}  {left}"
+        room = width - len(line) - 3
+        if fraction is not None and room >= 4:
+            bar_width = min(30, room)
+            filled = round(fraction * bar_width)
+            bar = "#" * filled + "." * (bar_width - filled)
+            return f"{head}: [{bar}] {share}{rows}  {speed}  {left}"
+        if len(line) <= width:
+            return line
+    return line
 
 
 class PassLine(Widget):
@@ -119,7 +148,9 @@ class PassLine(Widget):
     progress: reactive[PassProgress | None] = reactive(None)
     """Latest report of the running full pass, None when no pass runs."""
     marks: reactive[int] = reactive(0)
-    """Rows the user marked."""
+    """Rows the user marked (always shown)."""
+    pass_label: reactive[str] = reactive("every row")
+    """What the running pass is: one that will take the screen, or one bound for Fits."""
 
     def watch_progress(self, progress: PassProgress | None) -> None:
         """Grow to two lines while a pass runs."""
@@ -127,12 +158,15 @@ class PassLine(Widget):
 
     def render(self) -> RenderableType:
         """Draw the basis, and the progress of the running pass on a second line."""
-        text = Text(self.basis, no_wrap=True, overflow="ellipsis")
-        if self.marks:
-            text.append(f"  [{self.marks:,} marked]", style="bold")
+        marks = f"  [{self.marks:,} marked]"
+        room = max(self.size.width - cell_len(marks), 10)
+        basis = self.basis if cell_len(self.basis) <= room else self.basis[: room - 1] + "…"
+        text = Text(basis, no_wrap=True, overflow="ellipsis")
+        text.append(marks, style="bold" if self.marks else "")
         if self.progress is not None:
             text.append("\n")
-            text.append(progress_text(self.progress, self.size.width), style="bold")
+            progress = progress_text(self.progress, self.size.width, label=self.pass_label)
+            text.append(progress, style="bold")
         return text
 
 
