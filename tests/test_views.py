@@ -31,9 +31,11 @@ from triage.views.charts import render_binned, render_histogram
 from triage.views.flags import flag_message
 from triage.views.format import (
     NA,
+    amount_decimals,
     cell_width,
     fit_cell,
     format_count,
+    format_fixed,
     format_number,
     format_p,
     truncate,
@@ -637,6 +639,27 @@ def test_views_fit_quality_groups_and_counts_parameters(report: ReportOutcome) -
     assert "condition no., scaled design" in text
     assert " df " not in text.split("whether the terms")[0]
     assert max(len(line) for line in text.split("\n")) <= 80
+
+
+@pytest.mark.parametrize(
+    ("scale", "decimals"), [(94.7, 1), (42.84, 1), (0.0123, 4), (15_000.0, 0), (0.0, 1)]
+)
+def test_amount_decimals_show_the_residual_sd_to_three_digits(scale: float, decimals: int) -> None:
+    assert amount_decimals(scale) == decimals
+    assert format_fixed(10_260.0, 1) == "10,260.0"
+
+
+def test_views_worst_rows_check_by_eye(report: ReportOutcome) -> None:
+    """Observed, fitted and residual share one format: observed - fitted = residual, to the
+    last printed digit (numbers re-read from the text; no value is rounded twice)."""
+    text = render_full_report(report, width=80, charts=False)
+    block = text.split("largest residuals (absolute)")[1].split("\n\n")[0]
+    rows = [line.split() for line in block.strip().split("\n")[3:]]
+    assert rows
+    decimals = amount_decimals(report.outcome.fit.resid_sd)
+    for cells in rows:
+        observed, fitted, resid = (float(c.replace(",", "")) for c in cells[1:4])
+        assert abs(observed - fitted - resid) <= 1.0001 * 10.0**-decimals
 
 
 def _one_flag_of_each_rule() -> list[Flag]:

@@ -29,6 +29,7 @@ if TYPE_CHECKING:
     from triage._typing import Criterion, RowsToRead, Sampling
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
+    from triage.engine.passes import PassEngine
     from triage.engine.progress import ProgressCallback
     from triage.results.diagnostics import RowDiagnostics
 
@@ -119,6 +120,7 @@ def export_worst_rows(
     force: bool = False,
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
+    engine: PassEngine | None = None,
 ) -> tuple[Path, int, DataSummary]:
     """Fit, rank rows by `criterion`, and write the `k` worst.
 
@@ -134,6 +136,7 @@ def export_worst_rows(
         top_k=k,
         on_progress=on_progress,
         cancel=cancel,
+        engine=engine,
     )
     positions = [entry.row for entry in report.diagnostics.worst[criterion]]
     written = export_rows(source, report.outcome, positions, out, force=force)
@@ -205,12 +208,16 @@ def export_all_rows(
     force: bool = False,
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
+    engine: PassEngine | None = None,
 ) -> tuple[Path, dict[str, int]]:
     """Fit (on every row by default, or a sample), then write one line per source row to `out`.
 
     Each line holds the row's position, its `status` (``used`` or why the fit left it out)
     and, where the model scored it, the `DIAGNOSTIC_COLUMNS`. Memory stays bounded: one
     batch is held at a time. Returns the path and the number of rows of each status.
+    With a cluster `engine`, the fit over every row runs on the cluster and only the fit
+    comes back; the rows are then read and written here, next to the output, so no row
+    crosses the network.
     """
     outcome = fit_model(
         source,
@@ -220,6 +227,7 @@ def export_all_rows(
         sampling=sampling,
         on_progress=on_progress,
         cancel=cancel,
+        engine=engine,
     )
     counts: dict[str, int] = {}
     with StreamingExport(out, force=force, protected=(*source.files, source.path)) as sink:

@@ -210,3 +210,50 @@ def fit_cell(text: str, width: int, align: Align = "<") -> str:
     cut = truncate(text, width)
     padding = " " * (width - cell_len(cut))
     return cut + padding if align == "<" else padding + cut
+
+
+def amount_decimals(scale: object, *, significant: int = 3) -> int:
+    """Return the decimals of the figures in a target's units under one fit.
+
+    Observed, fitted and residual values are printed with the same decimals on every
+    screen, so ``residual = observed - fitted`` checks by eye: enough to show the fit's
+    residual SD (`scale`) to `significant` digits.
+
+    Parameters
+    ----------
+    scale : number
+        The residual SD of the fit.
+    significant : int, default=3
+        Significant digits of `scale`.
+
+    Returns
+    -------
+    int
+        Between 0 and 6; 1 when `scale` is missing, zero or infinite.
+    """
+    size = as_float(scale)
+    if size is None or not math.isfinite(size) or size == 0.0:
+        return 1
+    return min(6, max(0, significant - 1 - math.floor(math.log10(abs(size)))))
+
+
+def format_fixed(value: object, decimals: int) -> str:
+    """Format a number with thousands separators and fixed `decimals` (``2,619.8``).
+
+    Parameters
+    ----------
+    value : object
+        The number; None and NaN print as :data:`NA`.
+    decimals : int
+        Digits after the point, e.g. from `amount_decimals`.
+
+    Returns
+    -------
+    str
+    """
+    number = as_float(value)
+    if number is None:
+        return NA
+    if math.isinf(number):
+        return "inf" if number > 0 else "-inf"
+    return f"{number:,.{decimals}f}"

@@ -16,10 +16,12 @@ from triage._typing import CRITERIA
 from triage.views.format import (
     NA,
     Align,
+    amount_decimals,
     as_float,
     cell_width,
     fit_cell,
     format_count,
+    format_fixed,
     format_number,
     format_p,
     truncate,
@@ -600,8 +602,15 @@ def render_residual_summary(diagnostics: Diagnostics, *, width: int = 100) -> st
     return f"{rule(title, width)}\n{quantiles}"
 
 
-def render_worst_rows(rows: Sequence[Any], *, criterion: Criterion, width: int = 100) -> str:
-    """Show one worst-rows list: source row position, fitted value and diagnostics.
+def render_worst_rows(
+    rows: Sequence[Any],
+    *,
+    criterion: Criterion,
+    target: str = "observed",
+    decimals: int = 1,
+    width: int = 100,
+) -> str:
+    """Show one worst-rows list: source row position, observed and fitted value, diagnostics.
 
     Parameters
     ----------
@@ -609,23 +618,29 @@ def render_worst_rows(rows: Sequence[Any], *, criterion: Criterion, width: int =
         Rows worst first.
     criterion : {"abs_resid", "studentized", "leverage", "cooks"}
         What the list is ranked by; sets the title.
+    target : str, default="observed"
+        Heading of the observed-value column (the target's name).
+    decimals : int, default=1
+        Decimals of observed, fitted and residual (`amount_decimals` of the fit).
     width : int, default=100
         Line width.
 
     Returns
     -------
     str
-        The section; row numbers are 0-based positions in the source.
+        The section; row numbers are 0-based positions in the source. Observed, fitted
+        and residual share one format, so residual = observed - fitted checks by eye.
     """
     title = CRITERION_TITLES[criterion]
     if not rows:
         return f"{rule(title, width)}\nno rows"
-    headers = ["row", "fitted", "residual", "studentized", "leverage", "Cook's distance"]
+    headers = ["row", target, "fitted", "residual", "studentized", "leverage", "Cook's distance"]
     cells = [
         [
-            str(int(r.row)),
-            format_number(r.fitted),
-            format_number(r.resid),
+            f"{int(r.row):,}",
+            format_fixed(r.fitted + r.resid, decimals),
+            format_fixed(r.fitted, decimals),
+            format_fixed(r.resid, decimals),
             format_number(r.studentized, digits=3),
             format_number(r.leverage, digits=3),
             format_number(r.cooks, digits=3),
@@ -852,7 +867,13 @@ def render_full_report(
                 render_binned(bins, width, height, title=title, x_label=name, color=color)
             )
     sections += [
-        render_worst_rows(diagnostics.worst[c], criterion=c, width=width)
+        render_worst_rows(
+            diagnostics.worst[c],
+            criterion=c,
+            target=outcome.spec.target_label,
+            decimals=amount_decimals(outcome.fit.resid_sd),
+            width=width,
+        )
         for c in CRITERIA
         if c in diagnostics.worst
     ]

@@ -1085,6 +1085,7 @@ class MainScreen(Screen[None]):
         worst = self.query_one(WorstPane)
         worst.marked = frozenset(self.marked)
         worst.show(fit, self._criterion())
+        self.query_one(RowPane).decimals = worst.decimals
         segments = self.query_one(GroupsPane)
         columns = self.segment_columns
         segments.column = columns[self.segment_index % len(columns)] if columns else None

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Final, Literal
+from typing import TYPE_CHECKING, Any, Final, Literal
 
 from rich.cells import cell_len
 from rich.text import Text
@@ -26,6 +26,7 @@ if TYPE_CHECKING:
     import polars as pl
     from rich.console import RenderableType
 
+    from triage.core.spec import ModelSpec
     from triage.results.compare import Comparison, ModelCriterion
     from triage.results.diagnostics import RowDiagnostics, WorstRow
     from triage.results.fit import FitOutcome, ReportOutcome
@@ -115,7 +116,12 @@ class TextPane(Pane):
         self.refresh_text()
 
 
-def _table(pane: Pane, table_id: str) -> DataTable[str]:
+def _right(text: str) -> Text:
+    """Return a right-aligned cell: numbers line up on their last digit."""
+    return Text(text, justify="right")
+
+
+def _table(pane: Pane, table_id: str) -> DataTable[Any]:
     return pane.query_one(f"#{table_id}", DataTable)
 
 
@@ -313,17 +319,53 @@ def _what_if_text(before: SessionFit, after: SessionFit, width: int) -> str:
 
 
 FITS_COLUMNS: Final[tuple[tuple[str, int | None], ...]] = (
-    ("", 1),
-    ("#", 2),
-    ("rows", 11),
-    ("n", 10),
-    ("R²", 6),
+    ("#", 4),
+    ("rows", 12),
     ("adj. R²", 8),
     ("AIC", 13),
     ("BIC", 13),
-    ("model", None),
+    ("model (change)", None),
 )
-"""Columns of the Fits table and their widths in cells (None: as wide as the model text)."""
+"""Columns of the Fits table and their widths in cells (None: as wide as the model text).
+
+Every figure that tells fits apart fits in 80 columns; the model column names only what
+changed from the fit before, and the note above the table spells out the whole model of
+the fit under the cursor.
+"""
+
+
+def model_change(before: ModelSpec | None, after: ModelSpec) -> str:
+    """Say how a model differs from the one before it: ``+ depot  - hour``, or all of it.
+
+    Parameters
+    ----------
+    before : ModelSpec or None
+        The model of the previous fit (None for the first).
+    after : ModelSpec
+        The model described.
+
+    Returns
+    -------
+    str
+        The whole formula when there is no previous model or the target changed; otherwise
+        the terms added (``+``) and dropped (``-``), and a changed filter, weights or
+        intercept; ``same model`` when nothing changed.
+    """
+    from triage.views.text import model_formula
+
+    if before is None or before.target != after.target:
+        return model_formula(after)
+    old = [t.label for t in before.terms]
+    new = [t.label for t in after.terms]
+    parts = [f"+ {label}" for label in new if label not in old]
+    parts += [f"- {label}" for label in old if label not in new]
+    if before.intercept != after.intercept:
+        parts.append("with intercept" if after.intercept else "no intercept")
+    if before.weights != after.weights:
+        parts.append(f"weights {after.weights}" if after.weights else "no weights")
+    if before.where != after.where:
+        parts.append(f"where {after.where}" if after.where else "every row kept")
+    return "  ".join(parts) or "same model"
 
 
 class FitsPane(Pane):
@@ -339,7 +381,7 @@ class FitsPane(Pane):
     def compose(self) -> ComposeResult:
         """Add the list of fits."""
         yield Static(self.info.hint, classes="pane--note", markup=False)
-        table: DataTable[str] = DataTable(id="fits-table", cursor_type="row")
+        table: DataTable[str | Text] = DataTable(id="fits-table", cursor_type="row")
         yield table
 
     def on_mount(self) -> None:
@@ -347,8 +389,9 @@ class FitsPane(Pane):
         table = _table(self, "fits-table")
         # fixed widths: the table is refilled on every fit, and widths grown from content
         # were seen to lag one refill behind
-        for label, width in FITS_COLUMNS:
-            table.add_column(label, width=width)
+        for index, (label, width) in enumerate(FITS_COLUMNS):
+            heading: str | Text = label if index == len(FITS_COLUMNS) - 1 else _right(label)
+            table.add_column(heading, width=width)
 
     def watch_comparison(self) -> None:
         """Refill the list when the comparison changes."""
@@ -366,47 +409,58 @@ class FitsPane(Pane):
         if not self.is_mounted:
             return
         from triage.views.format import format_count, format_number
-        from triage.views.text import criterion_text, model_formula
+        from triage.views.text import criterion_text
 
         table = _table(self, "fits-table")
         table.clear()
         compared, comparison = self.comparison or ((), None)
         best = {} if comparison is None else comparison.best
 
-        def cell(fit: SessionFit, criterion: ModelCriterion, value: float) -> str:
+        def cell(fit: SessionFit, criterion: ModelCriterion, value: float) -> Text:
             whole = criterion in ("aic", "bic")
             text = criterion_text(value) if whole else format_number(value)
-            if fit.number in compared and best.get(criterion) == compared.index(fit.number):
-                text += " ◆"
-            return text
+            is_best = fit.number in compared and best.get(criterion) == compared.index(fit.number)
+            return _right(text + (" ◆" if is_best else "  "))
 
+        before: ModelSpec | None = None
         for fit in self.fits:
             lsq = fit.report.outcome.fit
-            rows = "every row" if fit.is_full_pass else "sample"
-            if fit.excluded:
-                rows += f" -{len(fit.excluded)}"
+            spec = fit.report.outcome.spec
+            rows = f"{'all' if fit.is_full_pass else 'smpl'} {format_count(lsq.n)}"
             table.add_row(
-                ">" if fit.number == self.current else "",
-                str(fit.number),
-                rows,
-                format_count(lsq.n),
-                format_number(lsq.r2),
+                _right((">" if fit.number == self.current else "") + str(fit.number)),
+                _right(rows),
                 cell(fit, "adj_r2", lsq.adj_r2),
                 cell(fit, "aic", lsq.aic),
                 cell(fit, "bic", lsq.bic),
-                model_formula(fit.report.outcome.spec),
+                model_change(before, spec)
+                + (f"  ({len(fit.excluded):,} marked rows left out)" if fit.excluded else ""),
                 key=str(fit.number),
             )
+            before = spec
         if self.current is not None and self.fits:
             table.move_cursor(row=self.current - 1, animate=False)
+        self._note(table.cursor_row)
+
+    def _note(self, cursor: int) -> None:
+        from triage.views.text import model_formula
+
         plural = "" if len(self.fits) == 1 else "s"
         note = f"{len(self.fits)} fit{plural} this session; enter shows one again"
+        compared = (self.comparison or ((), None))[0]
         if len(compared) > 1:
             note += (
                 f"; ◆ best of fits {', '.join(f'#{n}' for n in compared)} (same rows as the "
                 "one on screen; R² is never marked: it rises with every term)"
             )
+        if 0 <= cursor < len(self.fits):
+            fit = self.fits[cursor]
+            note += f"\n#{fit.number}: {model_formula(fit.report.outcome.spec)}"
         self.query_one(".pane--note", Static).update(note)
+
+    def on_data_table_row_highlighted(self, event: DataTable.RowHighlighted) -> None:
+        """Spell out the whole model of the fit under the cursor."""
+        self._note(event.cursor_row)
 
 
 @dataclass(frozen=True, eq=False)
@@ -435,6 +489,8 @@ class RowPane(Pane):
         super().__init__(info)
         self.cells: list[tuple[str, str]] = []
         """The (field, value) rows the table shows."""
+        self.decimals = 1
+        """Decimals of observed, fitted and residual (as in Worst, for the fit shown)."""
 
     def compose(self) -> ComposeResult:
         """Add the heading and the row table."""
@@ -459,7 +515,7 @@ class RowPane(Pane):
         outside = diag is not None and len(diag.rows) > 0 and not diag.in_fit[0]
         basis = "not in" if outside else "under"
         self._set_note(f"row {view.position:,} (0-based) {basis} fit #{view.fit_number}{mark}")
-        self._set_cells([*_diagnostic_cells(view), *_record_cells(view.frame)])
+        self._set_cells([*_diagnostic_cells(view, self.decimals), *_record_cells(view.frame)])
 
     def _set_note(self, text: str) -> None:
         """Show `text` above the table; a note that stays on one line needs no new layout."""
@@ -501,28 +557,31 @@ def _record_cells(frame: pl.DataFrame) -> list[tuple[str, str]]:
     ]
 
 
-def _diagnostic_cells(view: RowView) -> list[tuple[str, str]]:
+def _diagnostic_cells(view: RowView, decimals: int) -> list[tuple[str, str]]:
     """Name and format the diagnostics of one row (or say why there are none)."""
-    from triage.views.format import format_number
+    from triage.views.format import format_fixed, format_number
 
     diag = view.diagnostics
     if diag is None or len(diag.rows) == 0:
         return [("fitted", "not used by the model (missing value or unseen level)")]
+    fitted, resid = float(diag.fitted[0]), float(diag.resid[0])
     if not diag.in_fit[0]:
         # scored as a new row: leverage x0ᵀ(XᵀX)⁻¹x0 and the standardised prediction residual
         return [
             ("in the fit", "no: outside its rows, scored as a new row"),
-            ("fitted", format_number(diag.fitted[0])),
-            ("residual", format_number(diag.resid[0])),
-            ("leverage as a new row", format_number(diag.leverage[0])),
+            ("observed", format_fixed(fitted + resid, decimals)),
+            ("fitted", format_fixed(fitted, decimals)),
+            ("residual", format_fixed(resid, decimals)),
+            ("leverage as a new row", format_number(diag.leverage[0], digits=3)),
             ("standardised residual", format_number(diag.studentized[0], digits=3)),
             ("Cook's distance", "only for rows in the fit"),
             ("─" * 8, "─" * 8),
         ]
     return [
-        ("fitted", format_number(diag.fitted[0])),
-        ("residual", format_number(diag.resid[0])),
-        ("leverage", format_number(diag.leverage[0])),
+        ("observed", format_fixed(fitted + resid, decimals)),
+        ("fitted", format_fixed(fitted, decimals)),
+        ("residual", format_fixed(resid, decimals)),
+        ("leverage", format_number(diag.leverage[0], digits=3)),
         ("studentized residual", format_number(diag.studentized[0], digits=3)),
         ("Cook's distance", format_number(diag.cooks[0], digits=3)),
         ("─" * 8, "─" * 8),
@@ -677,6 +736,27 @@ class FlagsPane(TextPane):
         )
 
 
+WORST_FIGURES: Final[tuple[tuple[str, str], ...]] = (
+    ("fitted", "fitted"),
+    ("resid", "residual"),
+    ("studentized", "stud. resid"),
+    ("leverage", "leverage"),
+    ("cooks", "Cook's D"),
+)
+"""`WorstRow` field and column heading of each figure in the Worst table."""
+
+RANKED_BY: Final[dict[str, str]] = {
+    "abs_resid": "resid",
+    "studentized": "studentized",
+    "leverage": "leverage",
+    "cooks": "cooks",
+}
+"""The `WorstRow` field each ranking sorts by (its heading gets a ▼)."""
+
+CURSOR_MARK: Final = "▸"
+"""Shown beside the row under the cursor, so it stands out without colour."""
+
+
 class WorstPane(Pane):
     """The worst rows by one criterion; a key switches the criterion, enter opens a row."""
 
@@ -689,25 +769,41 @@ class WorstPane(Pane):
         """The rows listed, worst first."""
         self.criterion: str = "abs_resid"
         """The ranking shown."""
+        self.target = "observed"
+        """Heading of the observed-target column (the target's name)."""
+        self.decimals = 1
+        """Decimals of observed, fitted and residual under the fit shown."""
 
     def compose(self) -> ComposeResult:
         """Add the heading and the table."""
         yield Static(self.info.hint, classes="pane--note", markup=False)
-        table: DataTable[str] = DataTable(id="worst-table", cursor_type="row")
+        table: DataTable[str | Text] = DataTable(id="worst-table", cursor_type="row")
         yield table
 
     def on_mount(self) -> None:
         """Name the table's columns."""
-        _table(self, "worst-table").add_columns(
-            "", "row", "fitted", "residual", "studentized", "leverage", "Cook's"
-        )
+        self._set_columns()
+
+    def _set_columns(self) -> None:
+        table = _table(self, "worst-table")
+        table.clear(columns=True)
+        ranked = RANKED_BY.get(self.criterion)
+        table.add_column("", key="mark")
+        table.add_column(_right("row"), key="row")
+        table.add_column(_right(self.target), key="observed")
+        for field, title in WORST_FIGURES:
+            table.add_column(_right(f"{title} ▼" if field == ranked else title), key=field)
 
     def show(self, fit: SessionFit, criterion: str) -> None:
         """List the worst rows of `fit` by `criterion`."""
+        from triage.views.format import amount_decimals, truncate
         from triage.views.text import CRITERION_TITLES
 
         self.rows = fit.report.diagnostics.worst.get(criterion, ())  # type: ignore[call-overload]
+        self.decimals = amount_decimals(fit.report.outcome.fit.resid_sd)
         self.criterion = criterion
+        self.target = truncate(fit.report.outcome.spec.target_label, 14)
+        self._set_columns()
         self._fill()
         title = CRITERION_TITLES.get(criterion, criterion)
         basis = "every row" if fit.is_full_pass else "the sample"
@@ -728,27 +824,43 @@ class WorstPane(Pane):
         """Refresh the marks."""
         self._fill()
 
+    def _mark(self, index: int, cursor: int) -> str:
+        entry = self.rows[index]
+        return (CURSOR_MARK if index == cursor else " ") + ("*" if entry.row in self.marked else "")
+
     def _fill(self) -> None:
         if not self.is_mounted:
             return
-        from triage.views.format import format_number
+        from triage.views.format import format_fixed, format_number
 
         table = _table(self, "worst-table")
-        row = table.cursor_row
+        row = min(max(table.cursor_row, 0), max(len(self.rows) - 1, 0))
         table.clear()
-        for entry in self.rows:
+        # observed, fitted and residual share one format, so residual = observed - fitted
+        # can be checked by eye
+        decimals = self.decimals
+        for index, entry in enumerate(self.rows):
             table.add_row(
-                "*" if entry.row in self.marked else "",
-                f"{entry.row:,}",
-                format_number(entry.fitted),
-                format_number(entry.resid),
-                format_number(entry.studentized, digits=3),
-                format_number(entry.leverage, digits=3),
-                format_number(entry.cooks, digits=3),
+                self._mark(index, row),
+                _right(f"{entry.row:,}"),
+                _right(format_fixed(entry.fitted + entry.resid, decimals)),
+                _right(format_fixed(entry.fitted, decimals)),
+                _right(format_fixed(entry.resid, decimals)),
+                _right(format_number(entry.studentized, digits=3)),
+                _right(format_number(entry.leverage, digits=3)),
+                _right(format_number(entry.cooks, digits=3)),
                 key=str(entry.row),
             )
         if self.rows:
-            table.move_cursor(row=min(max(row, 0), len(self.rows) - 1), animate=False)
+            table.move_cursor(row=row, animate=False)
+
+    def on_data_table_row_highlighted(self, event: DataTable.RowHighlighted) -> None:
+        """Move the cursor mark with the cursor (it shows where it is without colour)."""
+        table = _table(self, "worst-table")
+        for index, entry in enumerate(self.rows):
+            mark = self._mark(index, event.cursor_row)
+            if str(table.get_cell(str(entry.row), "mark")) != mark:
+                table.update_cell(str(entry.row), "mark", mark)
 
     def positions(self) -> list[int]:
         """Return the source positions listed, worst first."""
