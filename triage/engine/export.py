@@ -173,7 +173,9 @@ def _status_frames(
     marked = np.fromiter(sorted(set(exclude_rows)), dtype=np.int64)
     sampled = None if outcome.data.is_full_pass else outcome.sample[ROW_INDEX].to_numpy()
     tracker = ProgressTracker(source.row_count(), on_progress=on_progress, cancel=cancel)
-    for batch in source.scan_batches(columns, batch_rows=batch_rows_for(len(columns))):
+    # a batch is built dense (one column per indicator): size it by the design's width
+    step = batch_rows_for(max(len(columns), len(builder.column_names)))
+    for batch in source.scan_batches(columns, batch_rows=step):
         tracker.advance(batch.rows_read)
         frame = batch.frame
         rows = frame.get_column(ROW_INDEX).to_numpy()

@@ -1035,6 +1035,7 @@ class MainScreen(Screen[None]):
             baseline=message.baseline,
         )
         self.fits.append(fit)
+        self.fits.sort(key=lambda kept: kept.number)  # a pass bound for Fits may end first
         fits_pane = self.query_one(FitsPane)
         fits_pane.fits = tuple(self.fits)
         if takes_screen:
