@@ -45,14 +45,18 @@ DIAGNOSTIC_COLUMNS: tuple[str, ...] = (
 
 
 def diagnostics_frame(diagnostics: RowDiagnostics, *, prefix: str = "") -> pl.DataFrame:
-    """Turn per-row diagnostics into a frame with the `DIAGNOSTIC_COLUMNS` (optionally prefixed)."""
+    """Turn per-row diagnostics into a frame with the `DIAGNOSTIC_COLUMNS` (optionally prefixed).
+
+    Cook's distance is left empty (null) for a row outside the fit: it measures the pull of
+    a row on a fit it is part of, so it has no value there.
+    """
     values = {
         "row": diagnostics.rows,
         "fitted": diagnostics.fitted,
         "resid": diagnostics.resid,
         "studentized": diagnostics.studentized,
         "leverage": diagnostics.leverage,
-        "cooks": diagnostics.cooks,
+        "cooks": pl.Series(diagnostics.cooks).scatter(np.flatnonzero(~diagnostics.in_fit), None),
     }
     return pl.DataFrame({prefix + name: values[name] for name in DIAGNOSTIC_COLUMNS})
 
@@ -173,7 +177,9 @@ def _status_frames(
     marked = np.fromiter(sorted(set(exclude_rows)), dtype=np.int64)
     sampled = None if outcome.data.is_full_pass else outcome.sample[ROW_INDEX].to_numpy()
     tracker = ProgressTracker(source.row_count(), on_progress=on_progress, cancel=cancel)
-    for batch in source.scan_batches(columns, batch_rows=batch_rows_for(len(columns))):
+    # a batch is built dense (one column per indicator): size it by the design's width
+    step = batch_rows_for(max(len(columns), len(builder.column_names)))
+    for batch in source.scan_batches(columns, batch_rows=step):
         tracker.advance(batch.rows_read)
         frame = batch.frame
         rows = frame.get_column(ROW_INDEX).to_numpy()
