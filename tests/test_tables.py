@@ -551,3 +551,21 @@ def test_an_identifier_column_is_named_as_such_past_the_level_limit() -> None:
     codes = frame.with_columns((pl.col("__row") % 60).cast(pl.String).alias("id"))
     with pytest.raises(SpecError, match=r"has 60 levels .* raise the limit with `--max-levels`"):
         DesignBuilder.learn(spec, codes.schema, codes)
+
+
+def test_max_memory_option_sets_the_guard(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from triage.cli.main import main
+
+    path = tmp_path / "claims.parquet"
+    _claims_table(2_000).write_parquet(path)
+    args = ["fit", str(path), "--terms", "cost ~ age + office"]
+    assert main([*args, "--max-memory", "64K"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.startswith("triage: the design would have 31 columns (`office` has 30 levels)")
+    assert "more than the limit of 64.0 KiB" in err and "--max-memory" in err
+    assert main([*args, "--max-memory", "4G"]) == 0
+    with pytest.raises(SystemExit, match="2"):
+        main([*args, "--max-memory", "lots"])
+    assert "`--max-memory` must be a size such as 4G" in capsys.readouterr().err

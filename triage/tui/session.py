@@ -136,6 +136,7 @@ class ModelDraft:
             categorical=self.categorical,
             reference=settings.reference,
             max_levels=settings.max_levels,
+            max_memory=settings.max_memory,
             drop_invalid=settings.drop_invalid,
         )
 

@@ -38,6 +38,8 @@ class Settings:
     """Reference level per categorical column (default: the most frequent level)."""
     max_levels: int = 50
     """Cap on the levels of a categorical column."""
+    max_memory: int | None = None
+    """Most bytes a design may take; None for the default share of the machine's memory."""
     drop_invalid: bool = False
     """Leave out rows outside a transform's domain instead of stopping."""
     csv: CsvOptions | None = None

@@ -81,6 +81,7 @@ def settings_from_args(args: argparse.Namespace) -> Any:
         intercept=not args.no_intercept,
         reference=parse_reference(args.reference),
         max_levels=args.max_levels,
+        max_memory=args.max_memory,
         drop_invalid=args.drop_invalid,
         csv=csv_options_from_args(args),
         sample_rows=DEFAULT_SAMPLE_ROWS if args.rows is ALL_ROWS else args.rows,
