@@ -14,6 +14,7 @@ added (text, a constant, values near the float limit, zeros under a log).
 from __future__ import annotations
 
 import hashlib
+import json
 import os
 import shutil
 import signal
@@ -766,3 +767,118 @@ def test_faults_signal_mid_pass(
     _check_stderr(err, code, (signum.name, "no file was written"))
     assert list(out.iterdir()) == []
     assert _hashes(inputs) == before
+
+
+# -- the pieces under the catalogue --------------------------------------------------------------
+
+
+def test_faults_bus_error_is_one_line_and_exit_2(tmp_path: Path) -> None:
+    """A read of a memory-mapped file past its new end (SIGBUS) ends the process cleanly.
+
+    polars maps files into memory, but when it touches a page past a truncated end is up to
+    its threads' timing; the child here maps the file itself, inside a source's read and an
+    export under way, so the bus error happens at a known point.
+    """
+    data = tmp_path / "runs.csv"
+    data.write_text("minutes,stops\n" + "12.5,3\n" * 200_000)
+    script = f"""
+import mmap, os
+import polars as pl
+from triage.data.bus_guard import install_bus_guard
+from triage.data.export import StreamingExport
+from triage.data.source import open_source
+install_bus_guard()
+source = open_source({str(data)!r})
+with StreamingExport({str(tmp_path / "out.parquet")!r}) as export:
+    export.write(pl.DataFrame({{"row": [0]}}))
+    for batch in source.scan_batches(["minutes"]):
+        mapped = mmap.mmap(os.open({str(data)!r}, os.O_RDONLY), 0, access=mmap.ACCESS_READ)
+        os.truncate({str(data)!r}, 10)
+        print(mapped[1_000_000])
+"""
+    done = subprocess.run(
+        [sys.executable, "-c", script],
+        env={**os.environ, "PYTHONPATH": str(ROOT)},
+        capture_output=True,
+        text=True,
+        timeout=60,
+        check=False,
+    )
+    assert done.returncode == 2, done.stderr
+    _check_stderr(done.stderr, 2, ("runs.csv", "cut short"))
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["runs.csv"]  # no export, no temporary
+
+
+def test_faults_one_line_escapes_control_characters() -> None:
+    from triage.errors import SpecError
+
+    message = str(SpecError("unknown term `a\nb\tc\x1b[31m\u2028`; check it"))
+    assert message == "unknown term `a\\nb\\tc\\x1b[31m\\u2028`; check it"
+    assert message.isprintable()
+
+
+@pytest.mark.parametrize(
+    ("out", "pattern", "is_refused"),
+    [
+        ("data/new.parquet", "data/*.parquet", True),
+        ("data/new.csv", "data/*.parquet", False),
+        ("data/2024/x.parquet", "data/**/*.parquet", True),
+        ("data/x.parquet", "data/**/*.parquet", True),  # ** matches no folder too
+        ("data/2024/x.parquet", "data/*.parquet", False),
+        ("elsewhere/x.parquet", "data/*.parquet", False),
+        ("data/p-7.pq", "data/p-?.pq", True),
+        ("data/q.parquet", "data/[pq].parquet", True),
+    ],
+)
+def test_faults_export_refuses_paths_an_input_glob_matches(
+    out: str, pattern: str, is_refused: bool, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from triage.data.export import check_output_path
+    from triage.errors import ExportError
+
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / out).parent.mkdir(parents=True, exist_ok=True)
+    if is_refused:
+        with pytest.raises(ExportError, match="matches the input"):
+            check_output_path(out, protected=[pattern])
+    else:
+        assert check_output_path(out, protected=[pattern]) == Path(out)
+
+
+def test_faults_values_below_the_limit_fit_like_numpy_and_above_it_are_refused(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """At 1e60 a report agrees with numpy's lstsq (oracle) and warns of nothing; 1e90 is refused."""
+    rng = np.random.default_rng(5)
+    n = 2_000
+    distance = rng.gamma(2.0, 6.0, size=n)
+    minutes = 6 + 0.9 * distance + rng.normal(size=n)
+    for scale, code in ((1e60, 0), (1e90, 2)):
+        path = tmp_path / f"scaled-{scale:.0e}.parquet"
+        pl.DataFrame({"distance": distance * scale, "minutes": minutes * scale}).write_parquet(path)
+        args = ["report", str(path), "-y", "minutes", "-x", "distance", "--json", "--rows", "all"]
+        got, out, err = _run_in_process(args, capsys)
+        assert got == code, err
+        assert "Warning" not in err
+        if code == 0:
+            estimates = {c["term"]: c["estimate"] for c in json.loads(out)["coefficients"]}
+            x = np.column_stack([np.ones(n), distance])
+            expected, *_ = np.linalg.lstsq(x, minutes, rcond=None)
+            assert estimates["distance"] == pytest.approx(expected[1], rel=1e-9)
+            assert estimates["intercept"] / scale == pytest.approx(expected[0], rel=1e-9)
+        else:
+            _check_stderr(err, code, ("`distance`", "1e+70"))
+
+
+def test_faults_nonfinite_standard_error_leaves_t_and_p_unknown() -> None:
+    """A standard error that overflows never stands beside a finite t and p."""
+    from triage.core.lsq import fit_arrays
+
+    rng = np.random.default_rng(9)
+    x = np.column_stack([np.ones(50), rng.normal(size=50)])
+    y = (1.0 + x[:, 1] + rng.normal(size=50)) * 1e160  # the residual sum of squares overflows
+    with np.errstate(all="ignore"):
+        fit = fit_arrays(x, y, ["intercept", "x"], has_intercept=True)
+    assert not np.isfinite(fit.std_error).any()
+    assert np.isnan(fit.t).all() and np.isnan(fit.p).all()
+    assert np.isnan(fit.ci_low).all() and np.isnan(fit.ci_high).all()

@@ -231,6 +231,49 @@ def test_source_parts_together_equal_one_scan(
     assert_frame_equal(pl.concat(frames), oracle)
 
 
+@pytest.mark.parametrize("part_rows", [1, 10_000])
+def test_source_folder_parts_keep_positions_and_partition_columns(
+    tmp_path: Path, part_rows: int
+) -> None:
+    # Oracle: polars scanning the folder itself (hive columns from the folder names, rows
+    # numbered across files in sorted order). Parts are per file, never across files.
+    root = tmp_path / "by_region"
+    frame = _frame(600, seed=4).with_columns(
+        region=pl.Series(np.repeat(["north east", "south", "west"], 200)),
+        year=pl.Series(np.tile(np.repeat([2023, 2024], 100), 3)),
+    )
+    for (region, year), part in frame.partition_by("region", "year", as_dict=True).items():
+        folder = root / f"region={region.replace(' ', '%20')}" / f"year={year}"
+        folder.mkdir(parents=True)
+        table = part.drop("region", "year").to_arrow()
+        pq.write_table(table, folder / "a.parquet", row_group_size=40)
+    source = open_source(root)
+    where = pl.col("x") > 0.0
+    parts = source.scan_parts(
+        ["year", "x", "region"], where=where, batch_rows=30, part_rows=part_rows
+    )
+    assert len(parts) == {1: 18, 10_000: 6}[part_rows]  # 6 files of 3 row groups (40, 40, 20)
+    oracle = _indexed(pl.scan_parquet(root, hive_partitioning=True).collect())
+    oracle = oracle.filter(where).select(ROW_INDEX, "year", "x", "region")
+    got = pl.concat(b.frame for part in parts for b in part())
+    assert_frame_equal(got, oracle)
+    assert got["region"].unique().sort().to_list() == ["north east", "south", "west"]
+
+
+def test_source_parts_pickle_without_the_source(parquet_file: Path) -> None:
+    # A part crosses to a cluster worker: it must pickle small and read the same rows there.
+    import pickle
+
+    parts = open_source(parquet_file).scan_parts(["x"], batch_rows=50, part_rows=300)
+    blobs = [pickle.dumps(part) for part in parts]
+    assert max(len(b) for b in blobs) < 2_000
+    again = [pickle.loads(b) for b in blobs]
+    assert_frame_equal(
+        pl.concat(b.frame for part in again for b in part()),
+        pl.concat(b.frame for part in parts for b in part()),
+    )
+
+
 def test_source_parts_split_row_groups_into_equal_batches(
     parquet_file: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:

@@ -536,3 +536,36 @@ def test_export_all_after_a_sample_fit_counts_rows_of_levels_the_sample_lacked(
     assert statuses["level not in the fit"] == lacked.height > 0
     assert f"{lacked.height:,} rows have a level the sample did not have" in printed
     assert "`--rows all` learns every level" in printed
+
+
+def test_an_identifier_column_is_named_as_such_past_the_level_limit() -> None:
+    from triage.core.design import DesignBuilder
+    from triage.errors import SpecError
+
+    frame = pl.DataFrame(
+        {"__row": np.arange(300), "y": np.arange(300.0), "id": [f"p{i}" for i in range(300)]}
+    )
+    spec = build_spec(frame.schema, target="y", terms="id")
+    with pytest.raises(SpecError, match=r"`id` has 300 levels in the sample.*like an identifier"):
+        DesignBuilder.learn(spec, frame.schema, frame)
+    codes = frame.with_columns((pl.col("__row") % 60).cast(pl.String).alias("id"))
+    with pytest.raises(SpecError, match=r"has 60 levels .* raise the limit with `--max-levels`"):
+        DesignBuilder.learn(spec, codes.schema, codes)
+
+
+def test_max_memory_option_sets_the_guard(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from triage.cli.main import main
+
+    path = tmp_path / "claims.parquet"
+    _claims_table(2_000).write_parquet(path)
+    args = ["fit", str(path), "--terms", "cost ~ age + office"]
+    assert main([*args, "--max-memory", "64K"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.startswith("triage: the design would have 31 columns (`office` has 30 levels)")
+    assert "more than the limit of 64.0 KiB" in err and "--max-memory" in err
+    assert main([*args, "--max-memory", "4G"]) == 0
+    with pytest.raises(SystemExit, match="2"):
+        main([*args, "--max-memory", "lots"])
+    assert "`--max-memory` must be a size such as 4G" in capsys.readouterr().err

@@ -42,7 +42,6 @@ from triage.tui.widgets.panes import (
     WorstPane,
 )
 from triage.tui.widgets.status import ModelLine, PassLine
-from triage.views.format import format_number
 from triage.views.text import model_formula
 
 config_home = tui_support.config_home
@@ -95,7 +94,9 @@ def ols(frame: pl.DataFrame, predictors: list[str]) -> Any:
 
 async def type_into_prompt(pilot: Any, text: str) -> None:
     for char in text:
-        await pilot.press({" ": "space", "<": "less_than_sign"}.get(char, char))
+        await pilot.press(
+            {" ": "space", "<": "less_than_sign", ">": "greater_than_sign"}.get(char, char)
+        )
 
 
 async def export_from_screen(pilot: Any, path: Path, *, worst_k: int | None = None) -> None:
@@ -118,6 +119,39 @@ def row_shown(screen: MainScreen, position: int) -> bool:
     """True when the Row pane shows the row at `position` with its diagnostics."""
     row = screen.query_one(RowPane).row
     return row is not None and row.position == position and row.diagnostics is not None
+
+
+def shows(text: str, value: float) -> bool:
+    """True when `text` is `value` written to the precision it shows (e.g. `41.6`, `1.2e-05`)."""
+    number = float(text.replace(",", ""))
+    if "e" in text:
+        return bool(number == pytest.approx(value, rel=5e-3))
+    decimals = len(text.split(".")[1]) if "." in text else 0
+    return abs(number - value) <= 0.5 * 10.0**-decimals * (1 + 1e-9)
+
+
+def assert_row_pane_shows(
+    screen: MainScreen, record: dict[str, Any], leverage: str, studentized: str
+) -> None:
+    """The Row pane holds the file's numbers for the row, and writes them to its precision."""
+    row = screen.query_one(RowPane).row
+    assert row is not None and row.diagnostics is not None and row.position == record["row"]
+    diag = row.diagnostics
+    for name, value in (
+        ("fitted", diag.fitted[0]),
+        ("resid", diag.resid[0]),
+        ("leverage", diag.leverage[0]),
+        ("studentized", diag.studentized[0]),
+    ):
+        assert record[name] == pytest.approx(float(value), rel=1e-12), name
+    shown = row_pane_values(screen)
+    for label, column in (
+        ("fitted", "fitted"),
+        ("residual", "resid"),
+        (leverage, "leverage"),
+        (studentized, "studentized"),
+    ):
+        assert shows(shown[label], record[column]), (label, shown[label], record[column])
 
 
 def row_pane_values(screen: MainScreen) -> dict[str, str]:
@@ -293,7 +327,7 @@ async def test_exported_rows_outside_the_fit_match_the_screen_and_say_so(
         assert written["row"].to_list() == sorted(big)
         assert written["fit"].to_list() == [2, 2]
         assert not written["in_fit"].any()
-        assert written["cooks"].is_null().all() or written["cooks"].is_nan().all()
+        assert written["cooks"].is_null().all()  # no Cook's distance outside the fit
         note = (tmp_path / "outside.csv.fit.txt").read_text(encoding="utf-8").strip()
         assert note == filtered.label.one_line() and "where minutes < 1000" in note
         kept = frame.filter(pl.col("minutes") < 1000)
@@ -316,11 +350,7 @@ async def test_exported_rows_outside_the_fit_match_the_screen_and_say_so(
                 pilot, lambda shown=record["row"]: row_shown(screen, shown), "the row read"
             )
             assert row_pane_values(screen)["in the fit"].startswith("no")
-            shown = row_pane_values(screen)
-            assert shown["fitted"] == format_number(record["fitted"])
-            assert shown["residual"] == format_number(record["resid"])
-            assert shown["standardised residual"] == format_number(record["studentized"], digits=3)
-            assert shown["leverage as a new row"] == format_number(record["leverage"])
+            assert_row_pane_shows(screen, record, "leverage as a new row", "standardised residual")
             assert f"not in fit #{filtered.number}" in str(
                 screen.query_one(RowPane).query_one(".pane--note").content
             )
@@ -345,7 +375,7 @@ async def test_exported_rows_outside_the_fit_match_the_screen_and_say_so(
         written = pl.read_parquet(out).sort("row")
         assert written["fit"].to_list() == [3, 3]
         assert not written["in_fit"].any()
-        assert written["cooks"].is_nan().all()
+        assert written["cooks"].is_null().all()
         note = pq.read_schema(out).metadata[NOTE_KEY.encode()].decode()
         assert "fit #3" in note and "2 marked left out" in note and "minutes < 1000" in note
         rest = kept.filter(~pl.col("__row").is_in(left_out))
@@ -365,8 +395,7 @@ async def test_exported_rows_outside_the_fit_match_the_screen_and_say_so(
         await wait_until(pilot, lambda: row_shown(screen, left_out[0]), "the left-out row read")
         shown = row_pane_values(screen)
         assert shown["in the fit"].startswith("no")
-        assert shown["standardised residual"] == format_number(record["studentized"], digits=3)
-        assert shown["fitted"] == format_number(record["fitted"])
+        assert_row_pane_shows(screen, record, "leverage as a new row", "standardised residual")
 
 
 async def test_a_check_finishing_while_the_user_types_does_not_take_the_keys(
@@ -398,3 +427,42 @@ async def test_a_check_finishing_while_the_user_types_does_not_take_the_keys(
         await press_id(pilot, "show-checks")
         assert isinstance(app.screen, MainScreen)
         assert any("fit #2 has not been checked yet" in m for m in posted)
+
+
+async def test_a_failure_in_the_background_while_the_user_types_is_a_notification(
+    config_home: Path, demo_file: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    import threading
+
+    import triage.engine.export as export_module
+    from triage.errors import ExportError
+
+    release = threading.Event()
+
+    def failing_export(*args: Any, **kwargs: Any) -> Path:
+        release.wait(timeout=60)  # fails only once the user is typing in the filter prompt
+        msg = "cannot write in folder `nowhere`"
+        raise ExportError(msg)
+
+    monkeypatch.setattr(export_module, "export_rows", failing_export)
+    app = build_app(demo_file, target="minutes", terms="distance_km, stops")
+    posted = notifications(app)
+    async with app.run_test(size=SMALL) as pilot:
+        screen = main_screen(app)
+        await wait_until(pilot, lambda: settled(screen), "the first fit")
+        await press_id(pilot, "export-rows")
+        await wait_until(pilot, lambda: isinstance(app.screen, ExportScreen), "the dialog")
+        app.screen.query_one("#export-worst").value = True
+        app.screen.query_one("#export-path", Input).value = str(tmp_path / "rows.csv")
+        app.screen.query_one("#export-path", Input).focus()
+        await pilot.press("enter")
+        await wait_until(pilot, lambda: app.screen is screen, "the main screen back")
+        await press_id(pilot, "edit-filter")
+        await wait_until(pilot, lambda: isinstance(app.screen, PromptScreen), "the prompt")
+        prompt = app.screen
+        await type_into_prompt(pilot, "hour")
+        release.set()
+        await wait_until(pilot, lambda: any("export failed" in m for m in posted), "the failure")
+        await type_into_prompt(pilot, " > 8")
+        assert app.screen is prompt
+        assert prompt.query_one("#prompt-input", Input).value == "hour > 8"

@@ -62,3 +62,7 @@ class KeymapError(TriageError, ValueError):
 
 class PassCancelled(TriageError):
     """A pass over the data was stopped by the user."""
+
+
+class ClusterError(TriageError):
+    """A cluster cannot be reached, or a pass on it cannot finish."""

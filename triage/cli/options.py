@@ -3,7 +3,10 @@
 from __future__ import annotations
 
 import argparse
-from collections.abc import Callable
+import contextlib
+import importlib.util
+import os
+from collections.abc import Callable, Iterator
 from typing import TYPE_CHECKING
 
 from triage._typing import ALL_ROWS, RowsToRead
@@ -13,6 +16,7 @@ if TYPE_CHECKING:
     from triage.core.spec import ModelSpec
     from triage.data.delimited import CsvOptions
     from triage.data.source import Source
+    from triage.engine.cluster import ClusterEngine
 
 DEFAULT_SAMPLE_ROWS = 200_000
 """Rows in the default sample; `--rows all` streams every row instead."""
@@ -292,3 +296,67 @@ def holdout_rule_from_args(args: argparse.Namespace) -> HoldoutRule | None:
     if args.holdout is not None:
         return HoldoutRule(fraction=args.holdout, seed=args.seed)
     return HoldoutRule(column=args.holdout_by, cut=args.cut, seed=args.seed)
+
+
+def add_engine_options(parser: argparse.ArgumentParser) -> None:
+    """Add `--engine local|dask` and `--scheduler ADDRESS` (where full passes run)."""
+    group = parser.add_argument_group("where full passes run")
+    group.add_argument(
+        "--engine",
+        choices=("local", "dask"),
+        default="local",
+        help="local: this process (default); dask: the Dask cluster at `--scheduler`",
+    )
+    group.add_argument(
+        "--scheduler",
+        metavar="ADDRESS",
+        default=None,
+        help="the Dask scheduler, e.g. tcp://10.0.0.5:8786 (default: $TRIAGE_SCHEDULER)",
+    )
+
+
+def scheduler_address(engine: str, scheduler: str | None) -> str | None:
+    """Return the scheduler a `--engine dask` pass uses, or None for the local engine.
+
+    Raises
+    ------
+    SpecError
+        When `--scheduler` is given to the local engine, or Dask is not installed.
+    """
+    from triage.errors import SpecError
+
+    if engine == "local":
+        if scheduler is not None:
+            msg = "`--scheduler` is used only with `--engine dask`; add `--engine dask`"
+            raise SpecError(msg)
+        return None
+    from triage.engine.cluster import INSTALL_HINT, SCHEDULER_VARIABLE
+
+    if not _is_installed("distributed"):
+        msg = f"`--engine dask` needs Dask distributed, which is not installed; {INSTALL_HINT}"
+        raise SpecError(msg)
+    return scheduler if scheduler is not None else os.environ.get(SCHEDULER_VARIABLE, "")
+
+
+@contextlib.contextmanager
+def pass_engine(args: argparse.Namespace) -> Iterator[ClusterEngine | None]:
+    """Give the engine the options name (None: this process); close its connection after.
+
+    The cluster is contacted only when a full pass first needs it, never for a sample.
+    """
+    address = scheduler_address(args.engine, args.scheduler)
+    if address is None:
+        yield None
+        return
+    from triage.engine.cluster import ClusterEngine
+
+    with ClusterEngine(address) as engine:
+        yield engine
+
+
+def _is_installed(module: str) -> bool:
+    """Return True when `module` can be imported (without importing it)."""
+    try:
+        return importlib.util.find_spec(module) is not None
+    except (ImportError, ValueError):  # a module blocked in sys.modules has no spec
+        return False

@@ -930,10 +930,16 @@ def _check_levels(spec: ModelSpec, table: LevelTable, basis: str) -> LevelTable:
     """Check a categorical's level count and named reference; return the table."""
     column, found = table.column, table.levels
     if len(found) > spec.max_levels:
+        if 2 * len(found) > table.n_rows:
+            hint = (
+                "it has nearly one level per row, like an identifier: leave it out of the "
+                "model (a limit raised with `--max-levels` would not make it a useful term)"
+            )
+        else:
+            hint = "raise the limit with `--max-levels` or filter the rows with `--where`"
         msg = (
             f"categorical column `{column}` has {_level_count(table)} in {basis}, more than "
-            f"the limit of {spec.max_levels}; raise the limit with `--max-levels` or filter "
-            "the rows with `--where`"
+            f"the limit of {spec.max_levels}; {hint}"
         )
         raise SpecError(msg)
     if len(found) < 2:

@@ -701,6 +701,15 @@ def _check_numeric_column(name: str, schema: SchemaLike, role: str) -> None:
         raise SpecError(msg)
 
 
+def target_text(written: str) -> str:
+    """Write a target as a formula shows it: ``cost``, `` `unit cost` `` or ``log(cost)``."""
+    match = _TARGET_CALL.match(written.strip())
+    if match is None:
+        return quote_name(written)
+    function, column = match.groups()
+    return f"{function}({quote_name(column.strip('`'))})"
+
+
 def split_target(text: str, schema: SchemaLike) -> tuple[str, Transform | None]:
     """Read a target as written: a column name, or ``log``, ``log1p`` or ``sqrt`` of one.
 

@@ -102,9 +102,14 @@ class Source(Protocol):
         ...
 
     def scan_parts(
-        self, columns: Sequence[str], *, where: pl.Expr | None = None, batch_rows: int = 65_536
+        self,
+        columns: Sequence[str],
+        *,
+        where: pl.Expr | None = None,
+        batch_rows: int = 65_536,
+        part_rows: int | None = None,
     ) -> list[Callable[[], Iterator[Batch]]]:
-        """Split the scan into parts that can be read at the same time, in source order."""
+        """Split the scan into parts that can be read at the same time (or elsewhere), in order."""
         ...
 
     def read_sample(
@@ -337,6 +342,49 @@ def number_record_batches(
         start += n
 
 
+def apply_filter(frame: pl.DataFrame, where: pl.Expr | None, extra: Sequence[str]) -> pl.DataFrame:
+    """Keep the rows of `frame` that match `where`, then drop the filter's own columns `extra`."""
+    if where is None:
+        return frame
+    return frame.filter(where).drop(extra)
+
+
+def filter_frames(
+    frames: Iterable[pl.DataFrame], where: pl.Expr | None, extra: Sequence[str], *, path: Path
+) -> Iterator[Batch]:
+    """Filter raw frames (dropping the filter's own columns), counting the rows read.
+
+    Each frame is announced to `hooks.batch_read` with `path` (the file or source read).
+    """
+    rows_read = 0
+    for frame in frames:
+        hooks.batch_read(path)
+        rows_read += frame.height
+        yield Batch(apply_filter(frame, where, extra), rows_read)
+
+
+def group_runs(sizes: Sequence[int], part_rows: int) -> list[tuple[int, int]]:
+    """Split blocks of `sizes` rows into runs ``[first, stop)`` of `part_rows` rows or more.
+
+    The last run may hold fewer.
+
+    Examples
+    --------
+    >>> group_runs([2, 2, 2], 3)
+    [(0, 2), (2, 3)]
+    """
+    runs: list[tuple[int, int]] = []
+    first, rows = 0, 0
+    for block, size in enumerate(sizes):
+        rows += size
+        if rows >= part_rows:
+            runs.append((first, block + 1))
+            first, rows = block + 1, 0
+    if first < len(sizes):
+        runs.append((first, len(sizes)))
+    return runs
+
+
 def _check_sample_args(n_rows: int, sampling: str) -> None:
     check_count("n_rows", n_rows)
     if sampling not in ("groups", "uniform"):
@@ -484,26 +532,37 @@ class BlockSource(abc.ABC):
         check_count("batch_rows", batch_rows)
         extra = self._filter_only_columns(names, where)
         rows_read = 0
+        frames = self._scan_raw(names + extra, batch_rows)
         with self._unchanged(self.files):
-            for batch in self._filtered(self._scan_raw(names + extra, batch_rows), where, extra):
+            for batch in filter_frames(frames, where, extra, path=self._path):
                 rows_read = batch.rows_read
                 yield batch
         # A file cut short ends pyarrow's read early without an error: count the rows.
         self._snapshot.check_rows(rows_read, self.row_count(), self.files)
 
     def scan_parts(
-        self, columns: Sequence[str], *, where: pl.Expr | None = None, batch_rows: int = 65_536
+        self,
+        columns: Sequence[str],
+        *,
+        where: pl.Expr | None = None,
+        batch_rows: int = 65_536,
+        part_rows: int | None = None,
     ) -> list[Callable[[], Iterator[Batch]]]:
         """Split the scan into parts that can be read at the same time, in source order.
 
         Each part, called, yields what `scan_batches` would for its rows, with
         ``rows_read`` counted from the part's start. A source that reads as one stream
-        (or is too small to split) gives one part.
+        (or is too small to split) gives one part. Every part pickles, so another process
+        (a cluster worker) can read it; a split part holds only its file, row groups,
+        positions and columns, not the source.
 
         Parameters
         ----------
         columns, where, batch_rows
             As for `scan_batches`.
+        part_rows : int, optional
+            Least rows in a part (whole row groups; never across files); the source's own
+            default when not given.
 
         Returns
         -------
@@ -513,40 +572,10 @@ class BlockSource(abc.ABC):
         names = self._check_columns(columns)
         check_count("batch_rows", batch_rows)
         extra = self._filter_only_columns(names, where)
-        spans = self._part_spans()
-        if len(spans) < 2:
+        parts = self._parts(names + extra, where, extra, batch_rows, part_rows)
+        if len(parts) < 2:
             return [functools.partial(self.scan_batches, names, where=where, batch_rows=batch_rows)]
-        return [
-            functools.partial(self._scan_part, names + extra, where, extra, batch_rows, span)
-            for span in spans
-        ]
-
-    def _scan_part(
-        self,
-        columns: list[str],
-        where: pl.Expr | None,
-        extra: list[str],
-        batch_rows: int,
-        span: tuple[int, int],
-    ) -> Iterator[Batch]:
-        rows_read = 0
-        with self._unchanged(self.files):
-            for batch in self._filtered(self._scan_span(columns, batch_rows, span), where, extra):
-                rows_read = batch.rows_read
-                yield batch
-        offsets = self._block_offsets(None)
-        expected = None if offsets is None else int(offsets[span[1]] - offsets[span[0]])
-        self._snapshot.check_rows(rows_read, expected, self.files)
-
-    def _filtered(
-        self, frames: Iterable[pl.DataFrame], where: pl.Expr | None, extra: list[str]
-    ) -> Iterator[Batch]:
-        """Filter raw frames (dropping the filter's own columns), counting the rows read."""
-        rows_read = 0
-        for frame in frames:
-            hooks.batch_read(self._path)
-            rows_read += frame.height
-            yield Batch(self._apply_filter(frame, where, extra), rows_read)
+        return list(parts)
 
     def read_sample(
         self,
@@ -656,15 +685,16 @@ class BlockSource(abc.ABC):
     ) -> pl.DataFrame:
         """Read the sorted `blocks` (numbers into `offsets`) with `ROW_INDEX`, in order."""
 
-    def _part_spans(self) -> list[tuple[int, int]]:
-        """Return runs of blocks ``[first, stop)`` that `_scan_span` reads alone; none here."""
-        return []
-
-    def _scan_span(
-        self, columns: list[str], batch_rows: int, span: tuple[int, int]
-    ) -> Iterator[pl.DataFrame]:
-        """Yield the unfiltered batches of the blocks in `span`, with `ROW_INDEX`."""
-        raise NotImplementedError  # called only for the spans `_part_spans` returns
+    def _parts(
+        self,
+        columns: list[str],
+        where: pl.Expr | None,
+        extra: list[str],
+        batch_rows: int,
+        part_rows: int | None,
+    ) -> Sequence[Callable[[], Iterator[Batch]]]:
+        """Return self-contained parts of a split scan of `columns`; none here (one stream)."""
+        return ()
 
     def _count_by_scan(self) -> int:
         return sum(frame.height for frame in self._scan_raw([], 65_536))
@@ -703,12 +733,6 @@ class BlockSource(abc.ABC):
         needed = [c for c in where.meta.root_names() if c not in columns and c != ROW_INDEX]
         return self._check_columns(needed)
 
-    @staticmethod
-    def _apply_filter(frame: pl.DataFrame, where: pl.Expr | None, extra: list[str]) -> pl.DataFrame:
-        if where is None:
-            return frame
-        return frame.filter(where).drop(extra)
-
     def _empty(self, columns: list[str]) -> pl.DataFrame:
         schema = self.schema()
         return pl.DataFrame(schema={ROW_INDEX: pl.Int64, **{c: schema[c] for c in columns}})
@@ -742,7 +766,7 @@ class BlockSource(abc.ABC):
         extra = self._filter_only_columns(columns, where)
         frame = self._read_blocks(columns + extra, picked, offsets)
         rows_read = frame.height
-        frame = self._apply_filter(frame, where, extra)
+        frame = apply_filter(frame, where, extra)
         text = self._describe_groups(picked.size, sizes, seed, rows_read)
         if where is not None:
             text += f", {frame.height:,} of them kept by the filter"

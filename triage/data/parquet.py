@@ -3,9 +3,12 @@
 from __future__ import annotations
 
 import functools
-from collections.abc import Iterator
+import os
+from collections.abc import Iterator, Sequence
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Final
+from urllib.parse import unquote
 
 import numpy as np
 import polars as pl
@@ -13,19 +16,27 @@ import pyarrow.parquet as pq
 
 from triage.core.design import ROW_INDEX
 from triage.data.base import (
+    Batch,
     BlockSource,
     block_positions,
     collect_batches,
     conform,
+    filter_frames,
+    group_runs,
     number_record_batches,
     offsets_from_sizes,
     reading,
     with_positions,
 )
+from triage.data.snapshot import FileStamp, changed_message
+from triage.errors import SourceChanged, SourceError
 
 PART_ROWS: Final = 500_000
 """Rows, at least, in a part of a split scan (`scan_parts`): whole row groups, so each part
 folds in one thread while others read theirs."""
+
+HIVE_NULL: Final = "__HIVE_DEFAULT_PARTITION__"
+"""A partition folder's value that stands for a missing value (as polars reads it)."""
 
 READ_BUFFER_BYTES: Final = 1 << 20
 """Bytes pyarrow reads at a time from a column chunk.
@@ -46,6 +57,160 @@ def even_batch_rows(group_rows: int, batch_rows: int) -> int:
     """
     n_batches = -(-group_rows // max(batch_rows, 1))
     return max(1, -(-group_rows // max(n_batches, 1)))
+
+
+def open_parquet(path: str | os.PathLike[str], **options: object) -> pq.ParquetFile:
+    """Open a Parquet file for reading in bounded memory.
+
+    `pre_buffer=False`: the default buffered about the whole file (4.7 GB measured);
+    `buffer_size`: read column chunks in pieces instead of whole (see `READ_BUFFER_BYTES`).
+    """
+    return pq.ParquetFile(path, pre_buffer=False, buffer_size=READ_BUFFER_BYTES, **options)
+
+
+@dataclass(frozen=True, eq=False)
+class ParquetPart:
+    """A run of whole row groups of one Parquet file that any thread or process reads alone.
+
+    It holds what the read needs and nothing of the source (a few hundred bytes pickled),
+    so a cluster ships it to the worker that reads the part; rows keep their positions in
+    the whole source. Called, it yields the part's `Batch` es as `Source.scan_parts` says.
+    """
+
+    path: str
+    """The file, as an absolute path (a worker's working folder may differ)."""
+    groups: tuple[int, int]
+    """Row groups ``[first, stop)`` of the file."""
+    sizes: tuple[int, ...]
+    """Rows of each of those row groups."""
+    start: int
+    """Position in the source of the part's first row."""
+    columns: tuple[str, ...]
+    """Columns to return (then dropped: the filter's own `extra`), in order."""
+    schema: dict[str, pl.DataType]
+    """The source's polars types of `columns` (pyarrow reads are cast to them)."""
+    where: pl.Expr | None = None
+    extra: tuple[str, ...] = ()
+    batch_rows: int = 65_536
+    constants: tuple[tuple[str, str | None], ...] = ()
+    """Columns taken from the file's partition folders (``key=value``), with their values."""
+    stamp: tuple[int, int] | None = None
+    """The file's size and modification time (ns) when the source was opened; None: unchecked.
+
+    Not its device and inode, which differ between machines that mount the same storage.
+    """
+
+    @property
+    def rows(self) -> int:
+        """Rows the part reads, before filtering."""
+        return sum(self.sizes)
+
+    def __call__(self) -> Iterator[Batch]:
+        """Read the part: filtered batches with `ROW_INDEX`, ``rows_read`` from its start.
+
+        Raises
+        ------
+        SourceChanged
+            When the file differs from its stamp before, during or after the read, or the
+            read ends with other than the part's rows (a file cut short).
+        SourceError
+            When the file cannot be read.
+        """
+        path = Path(self.path)
+        self._check_unchanged(path)
+        rows_read = 0
+        try:
+            for batch in filter_frames(self._frames(), self.where, self.extra, path=path):
+                rows_read = batch.rows_read
+                yield batch
+        except SourceError as error:
+            if not isinstance(error, SourceChanged):
+                self._check_unchanged(path)  # a file cut short fails to decode: say so
+            raise
+        self._check_unchanged(path)
+        if rows_read != self.rows:
+            raise SourceChanged(changed_message(path))
+
+    def _check_unchanged(self, path: Path) -> None:
+        if self.stamp is None:
+            return
+        now = FileStamp.of(path)
+        if now is None or (now.size, now.mtime_ns) != self.stamp:
+            raise SourceChanged(
+                changed_message(path, how="was removed" if now is None else "changed")
+            )
+
+    def _frames(self) -> Iterator[pl.DataFrame]:
+        # One thread per part: pyarrow's own threads cost 1.4-1.6 CPU-s against 1.3 alone
+        # for 20 million rows of 9 columns (measured here), and the parts keep both cores busy.
+        path = Path(self.path)
+        constant = dict(self.constants)
+        in_file = [c for c in self.columns if c not in constant]
+        literals = [
+            pl.lit(value, dtype=pl.String).cast(self.schema[name]).alias(name)
+            for name, value in self.constants
+            if name in self.columns
+        ]
+        with reading(path, "Parquet"):
+            reader = open_parquet(path)
+        start = self.start
+        for group, size in zip(range(*self.groups), self.sizes, strict=True):
+            with reading(path, "Parquet"):
+                record_batches = reader.iter_batches(
+                    batch_size=even_batch_rows(size, self.batch_rows),
+                    row_groups=[group],
+                    columns=in_file,
+                    use_threads=False,
+                )
+                for frame in number_record_batches(record_batches, self.schema, start=start):
+                    if literals:
+                        frame = frame.with_columns(literals).select(ROW_INDEX, *self.columns)
+                    yield frame
+            start += size
+
+
+def file_parts(
+    path: Path,
+    sizes: Sequence[int],
+    start: int,
+    columns: list[str],
+    schema: dict[str, pl.DataType],
+    *,
+    where: pl.Expr | None,
+    extra: list[str],
+    batch_rows: int,
+    part_rows: int | None,
+    constants: tuple[tuple[str, str | None], ...] = (),
+    stamp: FileStamp | None = None,
+) -> list[ParquetPart]:
+    """Cut one file of row groups of `sizes` rows, its first row at `start`, into parts.
+
+    Each part holds `part_rows` rows or more (`PART_ROWS` when not given), the last maybe fewer.
+    """
+    offsets = offsets_from_sizes(sizes) + start
+    return [
+        ParquetPart(
+            path=os.path.abspath(path),
+            groups=(first, stop),
+            sizes=tuple(int(n) for n in sizes[first:stop]),
+            start=int(offsets[first]),
+            columns=tuple(columns),
+            schema={c: schema[c] for c in columns},
+            where=where,
+            extra=tuple(extra),
+            batch_rows=batch_rows,
+            constants=constants,
+            stamp=None if stamp is None else (stamp.size, stamp.mtime_ns),
+        )
+        for first, stop in group_runs(sizes, PART_ROWS if part_rows is None else part_rows)
+    ]
+
+
+def partition_values(file: Path, base: Path) -> tuple[tuple[str, str | None], ...]:
+    """Return the ``key=value`` folders between `base` and `file` (URL-decoded, as polars does)."""
+    folders = file.resolve().relative_to(base.resolve()).parts[:-1]
+    pairs = (unquote(folder).split("=", 1) for folder in folders if "=" in folder)
+    return tuple((key, None if value == HIVE_NULL else value) for key, value in pairs)
 
 
 class ParquetFileSource(BlockSource):
@@ -84,13 +249,9 @@ class ParquetFileSource(BlockSource):
 
     def _open(self) -> pq.ParquetFile:
         # A fresh reader per operation: a read-ahead thread and a drill-down can overlap.
-        # pre_buffer=False: the default buffered about the whole file (4.7 GB measured).
-        # buffer_size: read column chunks in pieces instead of whole (see READ_BUFFER_BYTES).
         # The footer read at opening is reused, so the file must still be the one it describes.
         self.snapshot.check_file(self._path)
-        return pq.ParquetFile(
-            self._path, metadata=self._metadata, pre_buffer=False, buffer_size=READ_BUFFER_BYTES
-        )
+        return open_parquet(self._path, metadata=self._metadata)
 
     def _scan_raw(self, columns: list[str], batch_rows: int) -> Iterator[pl.DataFrame]:
         schema = self.schema()
@@ -98,35 +259,20 @@ class ParquetFileSource(BlockSource):
             record_batches = self._open().iter_batches(batch_size=batch_rows, columns=columns)
             yield from number_record_batches(record_batches, schema)
 
-    def _part_spans(self) -> list[tuple[int, int]]:
-        """Return runs of whole row groups of `PART_ROWS` rows or more (the last may be fewer)."""
-        spans: list[tuple[int, int]] = []
-        first = 0
-        for group in range(1, len(self._offsets)):
-            if self._offsets[group] - self._offsets[first] >= PART_ROWS:
-                spans.append((first, group))
-                first = group
-        if first < len(self._offsets) - 1:
-            spans.append((first, len(self._offsets) - 1))
-        return spans
-
-    def _scan_span(
-        self, columns: list[str], batch_rows: int, span: tuple[int, int]
-    ) -> Iterator[pl.DataFrame]:
-        # One thread per part: pyarrow's own threads cost 1.4-1.6 CPU-s against 1.3 alone
-        # for 20 million rows of 9 columns (measured here), and the parts keep both cores busy.
-        first, stop = span
-        reader = self._open()
-        for group in range(first, stop):
-            start, end = int(self._offsets[group]), int(self._offsets[group + 1])
-            with reading(self._path, self._kind):
-                record_batches = reader.iter_batches(
-                    batch_size=even_batch_rows(end - start, batch_rows),
-                    row_groups=[group],
-                    columns=columns,
-                    use_threads=False,
-                )
-                yield from number_record_batches(record_batches, self.schema(), start=start)
+    def _parts(
+        self,
+        columns: list[str],
+        where: pl.Expr | None,
+        extra: list[str],
+        batch_rows: int,
+        part_rows: int | None,
+    ) -> list[ParquetPart]:
+        sizes = np.diff(self._offsets).tolist()
+        return file_parts(
+            self._path, sizes, int(self._offsets[0]), columns, self.schema(),
+            where=where, extra=extra, batch_rows=batch_rows, part_rows=part_rows,
+            stamp=self.snapshot.stamp(self._path),
+        )  # fmt: skip
 
     def _block_offsets(self, n_rows: int | None) -> np.ndarray:
         return self._offsets
@@ -204,6 +350,27 @@ class ParquetDatasetSource(BlockSource):
     @functools.cached_property
     def _offsets(self) -> np.ndarray:
         return offsets_from_sizes([n for groups in self._footer_rows for n in groups])
+
+    def _parts(
+        self,
+        columns: list[str],
+        where: pl.Expr | None,
+        extra: list[str],
+        batch_rows: int,
+        part_rows: int | None,
+    ) -> list[ParquetPart]:
+        """One part per file at least, each knowing its offset in the source."""
+        parts: list[ParquetPart] = []
+        start = 0
+        for file, sizes in zip(self._files, self._footer_rows, strict=True):
+            parts += file_parts(
+                file, sizes, start, columns, self.schema(),
+                where=where, extra=extra, batch_rows=batch_rows, part_rows=part_rows,
+                constants=partition_values(file, self._base),
+                stamp=self.snapshot.stamp(file),
+            )  # fmt: skip
+            start += sum(sizes)
+        return parts
 
     def _scan_raw(self, columns: list[str], batch_rows: int) -> Iterator[pl.DataFrame]:
         query = (

@@ -67,6 +67,10 @@ class SourceSnapshot:
         """The files recorded, in source order."""
         return tuple(self._stamps)
 
+    def stamp(self, path: Path) -> FileStamp | None:
+        """Return the stamp of `path` taken at opening (None if it was not recorded or missing)."""
+        return self._stamps.get(path)
+
     def is_unchanged(self, path: Path) -> bool:
         """Whether `path` still matches its stamp (a file not recorded counts as unchanged)."""
         return path not in self._stamps or FileStamp.of(path) == self._stamps[path]

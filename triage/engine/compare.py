@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import threading
 from collections.abc import Collection, Mapping, Sequence
+from dataclasses import dataclass
 from typing import TYPE_CHECKING, Final
 
 import numpy as np
@@ -49,6 +50,7 @@ if TYPE_CHECKING:
     from triage.core.levels import LevelTable
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
+    from triage.engine.passes import PassEngine
 
 __all__ = [
     "compare_models",
@@ -149,6 +151,7 @@ def compare_models(
     exclude_rows: Collection[int] = (),
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
+    engine: PassEngine | None = None,
 ) -> ComparisonOutcome:
     """Fit several models to the same rows in one pass and compare them.
 
@@ -175,6 +178,8 @@ def compare_models(
         Source positions to leave out (the file is never changed).
     on_progress, cancel
         Progress callback and cancel event; see `ProgressTracker`.
+    engine : PassEngine, optional
+        Runs a pass over every row on a cluster; a sample is always read here.
 
     Returns
     -------
@@ -207,6 +212,7 @@ def compare_models(
         sampling=sampling,
         exclude_rows=exclude_rows,
         extra_columns=list(dict.fromkeys(extra)),
+        engine=engine,
     )
     budget = plan.budget()
     tables = plan.count_levels(
@@ -217,25 +223,19 @@ def compare_models(
     builders, common_sample = _learn_builders(
         specs, source, plan.learning_frame, level_tables=tables, budget=budget
     )
-    accumulators = [
-        QRAccumulator(len(b.column_names), has_intercept=b.spec.intercept) for b in builders
-    ]
-    scorers = [HoldoutAccumulator(len(b.column_names)) for b in builders]
+
+    def new_part() -> _ComparePart:
+        return _ComparePart.empty(builders)
+
+    def fold(part: _ComparePart, frame: pl.DataFrame) -> None:
+        part.update(builders, frame, holdout)
+
     counts = RowCounts()
-    n_held = n_unknown = 0
     tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
-    for frame in plan.frames(counts, tracker):
-        held_positions, frame, unknown = _holdout_positions(frame, holdout)
-        n_unknown += unknown
-        batches = _common_batches(builders, frame, counts)
-        is_held = np.isin(batches[0].rows, held_positions)
-        n_held += int(is_held.sum())
-        counts.used += int((~is_held).sum())
-        for builder, batch, accumulator, scorer in zip(
-            builders, batches, accumulators, scorers, strict=True
-        ):
-            with naming_values_too_large(builder, frame):
-                _split_update(batch, is_held, accumulator, scorer)
+    folded = plan.fold_frames(new_part, fold, _ComparePart.merge, counts, tracker)
+    counts.absorb(folded.counts)
+    accumulators, scorers = folded.fits, folded.scorers
+    n_held, n_unknown = folded.n_held, folded.n_unknown
     check_rows_left(counts, specs[0])
     summary = plan.summary(counts)
     for builder, accumulator in zip(builders, accumulators, strict=True):
@@ -256,6 +256,55 @@ def compare_models(
         cv_rmse=[None if m.cv is None else m.cv.rmse for m in models],
     )
     return ComparisonOutcome(tuple(models), comparison, summary, holdout, n_held, n_unknown, folds)
+
+
+@dataclass
+class _ComparePart:
+    """What one part of a comparison pass gathers: each model's fit and held-out scorer."""
+
+    fits: list[QRAccumulator]
+    scorers: list[HoldoutAccumulator]
+    counts: RowCounts
+    """Rows dropped by the models (missing, domain, unseen levels) and rows fitted."""
+    n_held: int = 0
+    n_unknown: int = 0
+
+    @classmethod
+    def empty(cls, builders: Sequence[DesignBuilder]) -> _ComparePart:
+        """Start a part with nothing gathered."""
+        return cls(
+            [QRAccumulator(len(b.column_names), has_intercept=b.spec.intercept) for b in builders],
+            [HoldoutAccumulator(len(b.column_names)) for b in builders],
+            RowCounts(),
+        )
+
+    def update(
+        self, builders: Sequence[DesignBuilder], frame: pl.DataFrame, holdout: HoldoutRule | None
+    ) -> None:
+        """Add a frame: rows every model can use go to the fits, held-out rows to the scorers."""
+        held_positions, frame, unknown = _holdout_positions(frame, holdout)
+        self.n_unknown += unknown
+        batches = _common_batches(builders, frame, self.counts)
+        is_held = np.isin(batches[0].rows, held_positions)
+        self.n_held += int(is_held.sum())
+        self.counts.used += int((~is_held).sum())
+        for builder, batch, accumulator, scorer in zip(
+            builders, batches, self.fits, self.scorers, strict=True
+        ):
+            with naming_values_too_large(builder, frame):
+                _split_update(batch, is_held, accumulator, scorer)
+
+    def merge(self, other: _ComparePart) -> _ComparePart:
+        """Add what another part gathered (its rows come later in the source)."""
+        for fit, scorer, other_fit, other_scorer in zip(
+            self.fits, self.scorers, other.fits, other.scorers, strict=True
+        ):
+            fit.merge(other_fit)
+            scorer.merge(other_scorer)
+        self.counts.absorb(other.counts)
+        self.n_held += other.n_held
+        self.n_unknown += other.n_unknown
+        return self
 
 
 def _split_update(

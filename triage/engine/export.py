@@ -29,6 +29,7 @@ if TYPE_CHECKING:
     from triage._typing import Criterion, RowsToRead, Sampling
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
+    from triage.engine.passes import PassEngine
     from triage.engine.progress import ProgressCallback
     from triage.results.diagnostics import RowDiagnostics
 
@@ -44,14 +45,18 @@ DIAGNOSTIC_COLUMNS: tuple[str, ...] = (
 
 
 def diagnostics_frame(diagnostics: RowDiagnostics, *, prefix: str = "") -> pl.DataFrame:
-    """Turn per-row diagnostics into a frame with the `DIAGNOSTIC_COLUMNS` (optionally prefixed)."""
+    """Turn per-row diagnostics into a frame with the `DIAGNOSTIC_COLUMNS` (optionally prefixed).
+
+    Cook's distance is left empty (null) for a row outside the fit: it measures the pull of
+    a row on a fit it is part of, so it has no value there.
+    """
     values = {
         "row": diagnostics.rows,
         "fitted": diagnostics.fitted,
         "resid": diagnostics.resid,
         "studentized": diagnostics.studentized,
         "leverage": diagnostics.leverage,
-        "cooks": diagnostics.cooks,
+        "cooks": pl.Series(diagnostics.cooks).scatter(np.flatnonzero(~diagnostics.in_fit), None),
     }
     return pl.DataFrame({prefix + name: values[name] for name in DIAGNOSTIC_COLUMNS})
 
@@ -119,6 +124,7 @@ def export_worst_rows(
     force: bool = False,
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
+    engine: PassEngine | None = None,
 ) -> tuple[Path, int, DataSummary]:
     """Fit, rank rows by `criterion`, and write the `k` worst.
 
@@ -134,6 +140,7 @@ def export_worst_rows(
         top_k=k,
         on_progress=on_progress,
         cancel=cancel,
+        engine=engine,
     )
     positions = [entry.row for entry in report.diagnostics.worst[criterion]]
     written = export_rows(source, report.outcome, positions, out, force=force)
@@ -170,7 +177,9 @@ def _status_frames(
     marked = np.fromiter(sorted(set(exclude_rows)), dtype=np.int64)
     sampled = None if outcome.data.is_full_pass else outcome.sample[ROW_INDEX].to_numpy()
     tracker = ProgressTracker(source.row_count(), on_progress=on_progress, cancel=cancel)
-    for batch in source.scan_batches(columns, batch_rows=batch_rows_for(len(columns))):
+    # a batch is built dense (one column per indicator): size it by the design's width
+    step = batch_rows_for(max(len(columns), len(builder.column_names)))
+    for batch in source.scan_batches(columns, batch_rows=step):
         tracker.advance(batch.rows_read)
         frame = batch.frame
         rows = frame.get_column(ROW_INDEX).to_numpy()
@@ -205,12 +214,16 @@ def export_all_rows(
     force: bool = False,
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
+    engine: PassEngine | None = None,
 ) -> tuple[Path, dict[str, int]]:
     """Fit (on every row by default, or a sample), then write one line per source row to `out`.
 
     Each line holds the row's position, its `status` (``used`` or why the fit left it out)
     and, where the model scored it, the `DIAGNOSTIC_COLUMNS`. Memory stays bounded: one
     batch is held at a time. Returns the path and the number of rows of each status.
+    With a cluster `engine`, the fit over every row runs on the cluster and only the fit
+    comes back; the rows are then read and written here, next to the output, so no row
+    crosses the network.
     """
     outcome = fit_model(
         source,
@@ -220,6 +233,7 @@ def export_all_rows(
         sampling=sampling,
         on_progress=on_progress,
         cancel=cancel,
+        engine=engine,
     )
     counts: dict[str, int] = {}
     with StreamingExport(out, force=force, protected=(*source.files, source.path)) as sink:

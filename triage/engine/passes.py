@@ -7,12 +7,13 @@ cancel, checks the event between batches, and raises `PassCancelled` within one 
 from __future__ import annotations
 
 import contextlib
+import functools
 import os
 import threading
 import time
 from collections.abc import Callable, Collection, Generator, Iterator, Sequence
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, TypeVar
+from typing import TYPE_CHECKING, Protocol, TypeVar
 
 import numpy as np
 import polars as pl
@@ -124,10 +125,119 @@ class RowCounts:
         self.used += part.used
 
 
+KEEP_FRAMES_BYTES = 256 * 1024 * 1024
+"""Bytes of pass 1's decoded frames a report keeps in memory for pass 2 (never on disk).
+
+Up to this, pass 2 folds the frames pass 1 decoded instead of reading the file again; past
+it they are let go as soon as the budget is reached and pass 2 reads again. About 2 million
+rows of 6 numeric and 3 text columns fit.
+"""
+
+
+class KeptFrames:
+    """Pass 1's frames, kept by unit for pass 2 while they fit in `budget_bytes`.
+
+    Frames are added from worker threads; once the budget is passed, everything kept is let
+    go and the pass that follows reads the source again.
+    """
+
+    def __init__(self, budget_bytes: int) -> None:
+        self.budget_bytes = budget_bytes
+        self.is_recording = True
+        self.is_complete = True
+        self._units: dict[int, list[pl.DataFrame]] = {}
+        self._bytes = 0
+        self._lock = threading.Lock()
+
+    def add(self, unit: int, frame: pl.DataFrame) -> None:
+        """Keep `frame` as the next frame of `unit`, unless the budget is passed."""
+        size = int(frame.estimated_size())
+        with self._lock:
+            if not self.is_complete:
+                return
+            if self._bytes + size > self.budget_bytes:
+                self.is_complete = False
+                self._units.clear()
+                return
+            self._units.setdefault(unit, []).append(frame)
+            self._bytes += size
+
+    def units(self) -> list[list[pl.DataFrame]]:
+        """Return the kept frames of each unit, in unit order."""
+        return [self._units[k] for k in sorted(self._units)]
+
+
+class PassEngine(Protocol):
+    """Runs the parts of a full pass somewhere else (a cluster): a part in, accumulators out.
+
+    `triage.engine.cluster.ClusterEngine` is the one there is.
+    """
+
+    part_rows: int | None
+    """Least rows in a part, or None for the source's own default."""
+
+    def fold_parts(
+        self,
+        parts: Sequence[Callable[[], Iterator[Batch]]],
+        new_part: Callable[[], S],
+        fold: Callable[[S, pl.DataFrame], None],
+        merge: Callable[[S, S], S],
+        *,
+        marked: NDArray[np.int64] | None,
+        tracker: ProgressTracker,
+    ) -> tuple[S, RowCounts]:
+        """Fold every part with `fold_part` and merge them as `fold_in_order` would."""
+        ...
+
+
+def drop_marked_rows(
+    frame: pl.DataFrame, marked: NDArray[np.int64], counts: RowCounts
+) -> pl.DataFrame:
+    """Leave out the rows at the sorted source positions `marked`, counting them."""
+    if marked.size == 0:
+        return frame
+    keep = ~np.isin(frame[ROW_INDEX].to_numpy(), marked)
+    counts.excluded += int(frame.height - keep.sum())
+    return frame.filter(pl.Series(keep))
+
+
+def fold_part(
+    read_part: Callable[[], Iterator[Batch]],
+    state: S,
+    fold: Callable[[S, pl.DataFrame], None],
+    counts: RowCounts,
+    *,
+    marked: NDArray[np.int64] | None,
+    check: Callable[[], None] = lambda: None,
+    stopping: threading.Event | None = None,
+    keep: Callable[[pl.DataFrame], None] | None = None,
+) -> S:
+    """Read one part of a source and fold its frames into `state`, counting its rows.
+
+    This is the whole of a part's work, on a worker thread or on a cluster worker: a part
+    in, an accumulator out. `marked` rows are left out (None keeps them); `check` runs
+    before each batch (a cancel); a set `stopping` ends the part early; `keep`, if given,
+    receives each folded frame (a report keeps them for pass 2, `KeptFrames`).
+    """
+    for batch in read_part():
+        if stopping is not None and stopping.is_set():
+            break
+        check()
+        counts.read = batch.rows_read
+        counts.kept_by_filter += batch.frame.height
+        frame = batch.frame if marked is None else drop_marked_rows(batch.frame, marked, counts)
+        fold(state, frame)
+        if keep is not None:
+            keep(frame)
+    return state
+
+
 class PassPlan:
     """What a pass reads: columns, filter, excluded rows, and where the rows come from.
 
     With `sample=None` the pass streams every row; otherwise it reads only the sample.
+    `engine` runs full passes over split sources on a cluster; None (the default) runs
+    them in this process.
     """
 
     def __init__(
@@ -139,8 +249,10 @@ class PassPlan:
         learning_frame: pl.DataFrame,
         exclude_rows: Collection[int] = (),
         extra_columns: Sequence[str] = (),
+        engine: PassEngine | None = None,
     ) -> None:
         keep_batch_memory()
+        self.engine = engine
         self.source = source
         self.spec = spec
         self.where = _parse_where(source, spec)
@@ -149,6 +261,7 @@ class PassPlan:
         self.sample = sample
         self.learning_frame = learning_frame
         self.rows_in_source = source.row_count()
+        self._kept: KeptFrames | None = None
 
     @classmethod
     def read(
@@ -161,8 +274,12 @@ class PassPlan:
         sampling: Sampling,
         exclude_rows: Collection[int],
         extra_columns: Sequence[str] = (),
+        engine: PassEngine | None = None,
     ) -> PassPlan:
-        """Draw the sample (a quick fit's rows, or a full pass's learning rows); plan the pass."""
+        """Draw the sample (a quick fit's rows, or a full pass's learning rows); plan the pass.
+
+        The sample is read here, in this process, whatever the `engine`.
+        """
         sample = source.read_sample(
             _pass_columns(spec, extra_columns),
             n_rows=LEARNING_SAMPLE_ROWS if rows is ALL_ROWS else rows,
@@ -178,6 +295,7 @@ class PassPlan:
             learning_frame=sample.frame,
             exclude_rows=exclude_rows,
             extra_columns=extra_columns,
+            engine=engine,
         )
 
     @property
@@ -186,11 +304,7 @@ class PassPlan:
         return self.sample is None or self.sample.is_whole
 
     def _drop_excluded(self, frame: pl.DataFrame, counts: RowCounts) -> pl.DataFrame:
-        if self.exclude.size == 0:
-            return frame
-        keep = ~np.isin(frame[ROW_INDEX].to_numpy(), self.exclude)
-        counts.excluded += int(frame.height - keep.sum())
-        return frame.filter(pl.Series(keep))
+        return drop_marked_rows(frame, self.exclude, counts)
 
     def frames(
         self,
@@ -225,6 +339,51 @@ class PassPlan:
             yield frame.slice(start, step)
         tracker.advance(self.sample.rows_read, force=True)
 
+    def keep_frames(self, budget_bytes: int | None = None) -> None:
+        """Keep the next full pass's frames in memory for later passes, up to `budget_bytes`.
+
+        The budget is `KEEP_FRAMES_BYTES` when not given.
+        """
+        if self.sample is None:
+            self._kept = KeptFrames(KEEP_FRAMES_BYTES if budget_bytes is None else budget_bytes)
+
+    @property
+    def pass_source(self) -> str:
+        """Where a later pass takes its rows from, in words ("" when nothing was kept)."""
+        if self._kept is None or self._kept.is_recording:
+            return ""
+        return "from memory" if self._kept.is_complete else "reading again"
+
+    def _fold_kept(
+        self,
+        kept: list[list[pl.DataFrame]],
+        new_part: Callable[[], S],
+        fold: Callable[[S, pl.DataFrame], None],
+        merge: Callable[[S, S], S],
+        tracker: ProgressTracker,
+    ) -> S:
+        """Fold the frames an earlier pass kept, unit by unit, as that pass folded them."""
+        kept_rows = sum(frame.height for frames in kept for frame in frames)
+        total = self.rows_total() or kept_rows
+        done = [0]
+
+        def fold_unit(k: int, stopping: threading.Event) -> S:
+            state = new_part()
+            for frame in kept[k]:
+                if stopping.is_set():
+                    break
+                tracker.check()
+                fold(state, frame)
+                done[0] += frame.height
+            return state
+
+        def report() -> None:
+            tracker.advance(total * done[0] // max(kept_rows, 1))
+
+        merged = fold_in_order(range(len(kept)), fold_unit, merge, wait=report)
+        tracker.advance(total, force=True)
+        return new_part() if merged is None else merged
+
     def fold_frames(
         self,
         new_part: Callable[[], S],
@@ -244,19 +403,64 @@ class PassPlan:
         (`fold_in_order`). Otherwise the frames are read ahead on one thread and each is
         folded by the next free worker into a part of its own; the parts merge in frame
         order. Either way the result depends neither on timing nor on the number of workers.
-        `columns` and `drop_marked` are as for `frames`.
+        With a cluster `engine`, a full pass's parts are folded on its workers instead
+        (`ClusterEngine.fold_parts`). `columns` and `drop_marked` are as for `frames`.
+        """
+        kept = self._kept if columns is None and drop_marked else None
+        if kept is not None and not kept.is_recording and kept.is_complete:
+            return self._fold_kept(kept.units(), new_part, fold, merge, tracker)
+        keep = kept.add if kept is not None and kept.is_recording else None
+        try:
+            return self._fold_read(
+                new_part, fold, merge, counts, tracker, batch_values, columns, drop_marked, keep
+            )
+        finally:
+            if kept is not None:
+                kept.is_recording = False
+
+    def _fold_read(
+        self,
+        new_part: Callable[[], S],
+        fold: Callable[[S, pl.DataFrame], None],
+        merge: Callable[[S, S], S],
+        counts: RowCounts,
+        tracker: ProgressTracker,
+        batch_values: int,
+        columns: Sequence[str] | None,
+        drop_marked: bool,
+        keep: Callable[[int, pl.DataFrame], None] | None,
+    ) -> S:
+        """Read and fold the pass's frames (see `fold_frames`), handing each to `keep`.
+
+        A cluster keeps nothing: its parts are folded on other machines.
         """
         columns = self.columns if columns is None else list(columns)
         parts: Sequence[Callable[[], Iterator[Batch]]] = ()
+        marked = self.exclude if drop_marked else None
         if self.sample is None:
             parts = self.source.scan_parts(
-                columns, where=self.where, batch_rows=batch_rows_for(len(columns), batch_values)
+                columns,
+                where=self.where,
+                batch_rows=batch_rows_for(len(columns), batch_values),
+                part_rows=None if self.engine is None else self.engine.part_rows,
             )
+            if self.engine is not None:
+                if self._kept is not None:
+                    self._kept.is_complete = False
+                folded, cluster_counts = self.engine.fold_parts(
+                    parts, new_part, fold, merge, marked=marked, tracker=tracker
+                )
+                counts.absorb(cluster_counts)
+                tracker.advance(counts.read, force=True)
+                return folded
         if len(parts) < 2:
 
-            def fold_frame(frame: pl.DataFrame, stopping: threading.Event) -> S:
+            def fold_frame(unit: tuple[int, pl.DataFrame], stopping: threading.Event) -> S:
+                k, frame = unit
                 state = new_part()
                 fold(state, frame)
+                if keep is not None:
+                    keep(k, frame)
                 return state
 
             with contextlib.closing(
@@ -268,26 +472,27 @@ class PassPlan:
                     drop_marked=drop_marked,
                 )
             ) as frames:
-                merged = fold_in_order(frames, fold_frame, merge, wait=tracker.check)
+                merged = fold_in_order(enumerate(frames), fold_frame, merge, wait=tracker.check)
             return new_part() if merged is None else merged
         part_counts = [RowCounts() for _ in parts]
 
-        def fold_part(k: int, stopping: threading.Event) -> S:
-            state, k_counts = new_part(), part_counts[k]
-            for batch in parts[k]():
-                if stopping.is_set():
-                    break
-                tracker.check()  # a cancel stops each worker within one batch
-                k_counts.read = batch.rows_read
-                k_counts.kept_by_filter += batch.frame.height
-                frame = batch.frame
-                fold(state, self._drop_excluded(frame, k_counts) if drop_marked else frame)
-            return state
+        def fold_unit(k: int, stopping: threading.Event) -> S:
+            # a cancel (tracker.check) stops each worker within one batch
+            return fold_part(
+                parts[k],
+                new_part(),
+                fold,
+                part_counts[k],
+                marked=marked,
+                check=tracker.check,
+                stopping=stopping,
+                keep=None if keep is None else functools.partial(keep, k),
+            )
 
         def report() -> None:
             tracker.advance(sum(c.read for c in part_counts))
 
-        merged = fold_in_order(range(len(parts)), fold_part, merge, wait=report)
+        merged = fold_in_order(range(len(parts)), fold_unit, merge, wait=report)
         assert merged is not None  # there are at least two parts
         for k_counts in part_counts:
             counts.absorb(k_counts)
@@ -450,6 +655,7 @@ def fit_model(
     exclude_rows: Collection[int] = (),
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
+    engine: PassEngine | None = None,
 ) -> FitOutcome:
     """Fit `spec` by least squares on a sample of about `rows` rows, or on every row.
 
@@ -469,6 +675,8 @@ def fit_model(
         Source positions to leave out (a what-if refit; the file is never changed).
     on_progress, cancel
         Progress callback and cancel event; see `ProgressTracker`.
+    engine : PassEngine, optional
+        Runs a pass over every row on a cluster; a sample is always fitted here.
 
     Returns
     -------
@@ -487,11 +695,22 @@ def fit_model(
         columns = {c: schema[c] for c in _pass_columns(spec, ())}
         nothing = pl.DataFrame(schema={ROW_INDEX: pl.Int64, **columns})
         plan = PassPlan(
-            source, spec, sample=None, learning_frame=nothing, exclude_rows=exclude_rows
+            source,
+            spec,
+            sample=None,
+            learning_frame=nothing,
+            exclude_rows=exclude_rows,
+            engine=engine,
         )
     else:
         plan = PassPlan.read(
-            source, spec, rows=rows, seed=seed, sampling=sampling, exclude_rows=exclude_rows
+            source,
+            spec,
+            rows=rows,
+            seed=seed,
+            sampling=sampling,
+            exclude_rows=exclude_rows,
+            engine=engine,
         )
     return _fit(plan, on_progress=on_progress, cancel=cancel)
 
@@ -601,6 +820,7 @@ def run_report(
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
     on_fit: Callable[[FitOutcome], None] | None = None,
+    engine: PassEngine | None = None,
 ) -> ReportOutcome:
     """Fit `spec` (pass 1), then compute residual diagnostics on the same rows (pass 2).
 
@@ -608,7 +828,8 @@ def run_report(
     (columns to break residuals down by) and `is_ordered` (rows are in a meaningful order,
     so serial-correlation flags apply). Progress counts each row once per pass and says which
     pass it is ("pass 2 of 2"); its time left covers both passes. `on_fit`, if given,
-    receives the fit as soon as pass 1 ends, so a screen can show it while pass 2 runs.
+    receives the fit as soon as pass 1 ends, so a screen can show it while pass 2 runs. With
+    a cluster `engine`, pass 2 ships the fit (a few kilobytes) to the workers, never rows.
     """
     _check_segment_columns(source, spec, by)
     plan = PassPlan.read(
@@ -619,6 +840,7 @@ def run_report(
         sampling=sampling,
         exclude_rows=exclude_rows,
         extra_columns=by,
+        engine=engine,
     )
     started = time.perf_counter()
 
@@ -630,10 +852,11 @@ def run_report(
 
         def report(progress: PassProgress) -> None:
             elapsed = time.perf_counter() - started
-            callback(_pass_of_two(progress, number, elapsed))
+            callback(_pass_of_two(progress, number, elapsed, plan.pass_source))
 
         return report
 
+    plan.keep_frames()
     outcome = _fit(plan, on_progress=as_pass_of_two(1), cancel=cancel)
     if on_fit is not None:
         on_fit(outcome)
@@ -649,7 +872,9 @@ def run_report(
     return ReportOutcome(outcome, diagnostics)
 
 
-def _pass_of_two(progress: PassProgress, number: int, elapsed_s: float) -> PassProgress:
+def _pass_of_two(
+    progress: PassProgress, number: int, elapsed_s: float, pass_source: str = ""
+) -> PassProgress:
     """Label one pass's progress as pass `number` of two; the time left covers both passes.
 
     Rows are counted once per pass, at this pass's speed; before pass 2 starts its rows are
@@ -666,6 +891,7 @@ def _pass_of_two(progress: PassProgress, number: int, elapsed_s: float) -> PassP
         eta,
         pass_number=number,
         n_passes=2,
+        pass_source=pass_source if number > 1 else "",
     )
 
 

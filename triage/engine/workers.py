@@ -55,12 +55,15 @@ def fold_in_order(
     n_workers: int | None = None,
     wait_s: float = 0.05,
 ) -> S | None:
-    """Fold every unit on worker threads and merge the results in unit order.
+    """Fold every unit on worker threads and merge the results in unit order, pairwise.
 
     A worker takes the next unit as soon as it is free, so the load balances itself; the
     results are merged in unit order whichever thread made them, so the outcome does not
-    depend on timing or on the number of workers. `units` is read under a lock, one unit
-    at a time, so it may be a generator (say, frames read ahead on another thread).
+    depend on timing or on the number of workers. Merges pair neighbours (units 0 and 1,
+    2 and 3, then those pairs, ...: the tree `triage.engine.cluster` builds on a cluster),
+    so a pass over the same parts gives the same bits on either engine. `units` is read
+    under a lock, one unit at a time, so it may be a generator (say, frames read ahead on
+    another thread).
 
     Parameters
     ----------
@@ -70,7 +73,7 @@ def fold_in_order(
         ``fold_unit(unit, stopping)`` returns the unit's result; it runs in a worker thread
         and should return early once the event `stopping` is set (its result is then dropped).
     merge : callable
-        ``merge(a, b)``: the result of the units up to one and the next unit's combined.
+        ``merge(a, b)``: the results of two neighbouring runs of units combined (`a` first).
     wait : callable
         Runs on the calling thread every `wait_s` seconds while the workers run (progress,
         cancel); an error it raises stops the workers and is raised here.
@@ -94,7 +97,9 @@ def fold_in_order(
     taking, lock = threading.Lock(), threading.Lock()
     numbered = enumerate(units)
     finished: dict[int, S] = {}
-    merged: list[S] = []  # the merge of units 0 .. n_merged - 1, once there is one
+    # Merged runs of units 0 .. n_merged - 1, longest first: (units in the run, its result).
+    # Like a binary counter, two runs of equal length merge as soon as both exist.
+    runs: list[tuple[int, S]] = []
     n_merged = 0
     errors: list[BaseException] = []
     n_threads = max(1, n_workers if n_workers is not None else pass_workers())
@@ -113,9 +118,11 @@ def fold_in_order(
             with lock:
                 finished[k] = result
                 while n_merged in finished:
-                    part = finished.pop(n_merged)
-                    merged[:] = [merge(merged[0], part) if merged else part]
+                    runs.append((1, finished.pop(n_merged)))
                     n_merged += 1
+                    while len(runs) > 1 and runs[-1][0] == runs[-2][0]:
+                        (size, left), (_, right) = runs[-2], runs[-1]
+                        runs[-2:] = [(2 * size, merge(left, right))]
 
     def work() -> None:
         nonlocal running
@@ -147,4 +154,7 @@ def fold_in_order(
             thread.join()
     if errors:
         raise errors[0]
-    return merged[0] if merged else None
+    while len(runs) > 1:  # the shorter runs at the end join from the right
+        (size, left), (_, right) = runs[-2], runs[-1]
+        runs[-2:] = [(size, merge(left, right))]
+    return runs[0][1] if runs else None

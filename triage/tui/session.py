@@ -50,9 +50,9 @@ class ModelDraft:
 
     def formula(self) -> str:
         """Return `target ~ terms` for the model line (`?` stands for a target not yet chosen)."""
-        from triage.core.spec import quote_name
+        from triage.core.spec import target_text
 
-        target = "?" if self.target is None else quote_name(self.target)
+        target = "?" if self.target is None else target_text(self.target)
         right = " + ".join(term.label for term in self.terms) or "1"
         return f"{target} ~ {right}"
 
@@ -136,6 +136,7 @@ class ModelDraft:
             categorical=self.categorical,
             reference=settings.reference,
             max_levels=settings.max_levels,
+            max_memory=settings.max_memory,
             drop_invalid=settings.drop_invalid,
         )
 

@@ -8,6 +8,7 @@ import sys
 from typing import Any
 
 from triage.cli.options import (
+    add_engine_options,
     add_holdout_options,
     add_model_options,
     add_row_options,
@@ -29,6 +30,7 @@ def register(subparsers: Any) -> None:
     add_source_options(parser)
     add_model_options(parser, terms_repeatable=True)
     add_row_options(parser)
+    add_engine_options(parser)
     group = add_holdout_options(parser)
     group.add_argument(
         "--folds",
@@ -53,7 +55,12 @@ def register(subparsers: Any) -> None:
 
 def run(args: argparse.Namespace) -> int:
     """Run `triage compare`."""
-    from triage.cli.options import holdout_rule_from_args, open_source_from_args, spec_from_args
+    from triage.cli.options import (
+        holdout_rule_from_args,
+        open_source_from_args,
+        pass_engine,
+        spec_from_args,
+    )
     from triage.cli.progress import StderrProgress
     from triage.engine.compare import (
         compare_models,
@@ -69,18 +76,20 @@ def run(args: argparse.Namespace) -> int:
     specs = [spec_from_args(args, source, terms=t) for t in labels]
     progress = StderrProgress()
     try:
-        outcome = compare_models(
-            source,
-            specs,
-            labels,
-            rows=args.rows,
-            seed=args.seed,
-            sampling=args.sample,
-            holdout=rule,
-            folds=args.folds,
-            on_progress=progress,
-            cancel=stop_event,
-        )
+        with pass_engine(args) as engine:
+            outcome = compare_models(
+                source,
+                specs,
+                labels,
+                rows=args.rows,
+                seed=args.seed,
+                sampling=args.sample,
+                holdout=rule,
+                folds=args.folds,
+                on_progress=progress,
+                cancel=stop_event,
+                engine=engine,
+            )
     finally:
         progress.finish()
     robust = (

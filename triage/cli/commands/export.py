@@ -7,6 +7,7 @@ import sys
 from typing import TYPE_CHECKING, Any
 
 from triage.cli.options import (
+    add_engine_options,
     add_model_options,
     add_row_options,
     add_source_options,
@@ -33,6 +34,7 @@ def register(subparsers: Any) -> None:
     add_source_options(parser)
     add_model_options(parser)
     add_row_options(parser, every_row=True)
+    add_engine_options(parser)
     what = parser.add_mutually_exclusive_group(required=True)
     what.add_argument(
         "--worst",
@@ -56,7 +58,7 @@ def register(subparsers: Any) -> None:
 
 def run(args: argparse.Namespace) -> int:
     """Run `triage export`."""
-    from triage.cli.options import open_source_from_args, spec_from_args
+    from triage.cli.options import open_source_from_args, pass_engine, spec_from_args
     from triage.cli.progress import StderrProgress
     from triage.core.design import STATUS_UNSEEN
     from triage.data.export import PERSONAL_DATA_NOTICE, check_output_path
@@ -68,32 +70,35 @@ def run(args: argparse.Namespace) -> int:
     check_output_path(args.out, force=args.force, protected=(*source.files, source.path))
     progress = StderrProgress()
     try:
-        if args.all:
-            written, statuses = export_all_rows(
-                source,
-                spec,
-                args.out,
-                rows=args.rows,
-                seed=args.seed,
-                sampling=args.sample,
-                force=args.force,
-                on_progress=progress,
-                cancel=stop_event,
-            )
-        else:
-            written, n_rows, data = export_worst_rows(
-                source,
-                spec,
-                args.out,
-                k=args.worst,
-                criterion=args.by_criterion,
-                rows=args.rows,
-                seed=args.seed,
-                sampling=args.sample,
-                force=args.force,
-                on_progress=progress,
-                cancel=stop_event,
-            )
+        with pass_engine(args) as engine:
+            if args.all:
+                written, statuses = export_all_rows(
+                    source,
+                    spec,
+                    args.out,
+                    rows=args.rows,
+                    seed=args.seed,
+                    sampling=args.sample,
+                    force=args.force,
+                    on_progress=progress,
+                    cancel=stop_event,
+                    engine=engine,
+                )
+            else:
+                written, n_rows, data = export_worst_rows(
+                    source,
+                    spec,
+                    args.out,
+                    k=args.worst,
+                    criterion=args.by_criterion,
+                    rows=args.rows,
+                    seed=args.seed,
+                    sampling=args.sample,
+                    force=args.force,
+                    on_progress=progress,
+                    cancel=stop_event,
+                    engine=engine,
+                )
     finally:
         progress.finish()
     if args.all:

@@ -8,6 +8,7 @@ import sys
 from typing import Any
 
 from triage.cli.options import (
+    add_engine_options,
     add_holdout_options,
     add_model_options,
     add_row_options,
@@ -25,6 +26,7 @@ def register(subparsers: Any) -> None:
     add_source_options(parser)
     add_model_options(parser)
     add_row_options(parser)
+    add_engine_options(parser)
     add_holdout_options(parser)
     parser.add_argument("--json", action="store_true", help="print one JSON object")
     parser.set_defaults(handler=run)
@@ -32,7 +34,12 @@ def register(subparsers: Any) -> None:
 
 def run(args: argparse.Namespace) -> int:
     """Run `triage fit`."""
-    from triage.cli.options import holdout_rule_from_args, open_source_from_args, spec_from_args
+    from triage.cli.options import (
+        holdout_rule_from_args,
+        open_source_from_args,
+        pass_engine,
+        spec_from_args,
+    )
     from triage.cli.progress import StderrProgress
     from triage.engine.signals import stop_event
     from triage.views.json import fit_to_json
@@ -43,34 +50,37 @@ def run(args: argparse.Namespace) -> int:
     spec = spec_from_args(args, source)
     progress = StderrProgress()
     try:
-        if rule is None:
-            from triage.engine.passes import fit_model
+        with pass_engine(args) as engine:
+            if rule is None:
+                from triage.engine.passes import fit_model
 
-            outcome = fit_model(
-                source,
-                spec,
-                rows=args.rows,
-                seed=args.seed,
-                sampling=args.sample,
-                on_progress=progress,
-                cancel=stop_event,
-            )
-            comparison = None
-        else:
-            from triage.engine.compare import compare_models
+                outcome = fit_model(
+                    source,
+                    spec,
+                    rows=args.rows,
+                    seed=args.seed,
+                    sampling=args.sample,
+                    on_progress=progress,
+                    cancel=stop_event,
+                    engine=engine,
+                )
+                comparison = None
+            else:
+                from triage.engine.compare import compare_models
 
-            comparison = compare_models(
-                source,
-                [spec],
-                [args.terms],
-                rows=args.rows,
-                seed=args.seed,
-                sampling=args.sample,
-                holdout=rule,
-                on_progress=progress,
-                cancel=stop_event,
-            )
-            outcome = comparison.models[0].outcome
+                comparison = compare_models(
+                    source,
+                    [spec],
+                    [args.terms],
+                    rows=args.rows,
+                    seed=args.seed,
+                    sampling=args.sample,
+                    holdout=rule,
+                    on_progress=progress,
+                    cancel=stop_event,
+                    engine=engine,
+                )
+                outcome = comparison.models[0].outcome
     finally:
         progress.finish()
     if args.json:

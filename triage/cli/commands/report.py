@@ -9,6 +9,7 @@ import sys
 from typing import Any
 
 from triage.cli.options import (
+    add_engine_options,
     add_model_options,
     add_row_options,
     add_source_options,
@@ -54,6 +55,7 @@ def register(subparsers: Any) -> None:
     add_source_options(parser)
     add_model_options(parser)
     add_row_options(parser)
+    add_engine_options(parser)
     add_diagnostics_options(parser)
     parser.add_argument("--json", action="store_true", help="print one JSON object")
     parser.add_argument("--no-charts", action="store_true", help="leave out the text charts")
@@ -63,7 +65,7 @@ def register(subparsers: Any) -> None:
 
 def run(args: argparse.Namespace) -> int:
     """Run `triage report`."""
-    from triage.cli.options import open_source_from_args, spec_from_args
+    from triage.cli.options import open_source_from_args, pass_engine, spec_from_args
     from triage.cli.progress import StderrProgress
     from triage.engine.passes import run_report
     from triage.engine.signals import stop_event
@@ -72,18 +74,20 @@ def run(args: argparse.Namespace) -> int:
     spec = spec_from_args(args, source)
     progress = StderrProgress()
     try:
-        report = run_report(
-            source,
-            spec,
-            rows=args.rows,
-            seed=args.seed,
-            sampling=args.sample,
-            top_k=args.top,
-            by=segment_columns(args),
-            is_ordered=args.ordered,
-            on_progress=progress,
-            cancel=stop_event,
-        )
+        with pass_engine(args) as engine:
+            report = run_report(
+                source,
+                spec,
+                rows=args.rows,
+                seed=args.seed,
+                sampling=args.sample,
+                top_k=args.top,
+                by=segment_columns(args),
+                is_ordered=args.ordered,
+                on_progress=progress,
+                cancel=stop_event,
+                engine=engine,
+            )
     finally:
         progress.finish()
     if args.json:

@@ -438,8 +438,9 @@ class FitsPane(Pane):
                 key=str(fit.number),
             )
             before = spec
-        if self.current is not None and self.fits:
-            table.move_cursor(row=self.current - 1, animate=False)
+        numbers = [fit.number for fit in self.fits]
+        if self.current in numbers:
+            table.move_cursor(row=numbers.index(self.current), animate=False)
         self._note(table.cursor_row)
 
     def _note(self, cursor: int) -> None:

@@ -1,0 +1,450 @@
+"""Full passes on a Dask cluster against the local engine, on one LocalCluster for the module.
+
+The oracle is the local engine (itself checked against statsmodels, numpy and NIST StRD in
+the other test files): the cluster must give the same fit, diagnostics, worst rows, segments
+and exported rows. Every number must agree to an LRE (log relative error, McCullough's
+measure of digits of agreement) of 12 or better, and counts, row positions and tables as
+printed must be identical. Both engines cut the source into the same parts and merge them
+in the same pairwise tree, and BLAS runs one thread on both sides, so the tests also find
+the results identical bit for bit.
+
+The cluster runs 2 worker processes, listening on loopback only (`host="127.0.0.1"`, and the
+scheduler's web page on a free loopback port).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import signal
+import socket
+import subprocess
+import sys
+import threading
+import time
+from collections.abc import Callable, Iterator
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import polars as pl
+import pytest
+from distributed import LocalCluster
+from threadpoolctl import threadpool_limits
+
+from tests import tui_support
+from tests.tui_support import build_app, press_id, settle, wait_until
+from triage._typing import ALL_ROWS
+from triage.core.spec import build_spec
+from triage.data import parquet as parquet_module
+from triage.data.scenario import iter_scenario
+from triage.data.source import open_source
+from triage.engine import passes
+from triage.engine import progress as progress_module
+from triage.engine.cluster import ClusterEngine, tree_levels
+from triage.engine.compare import compare_models
+from triage.engine.export import export_all_rows
+from triage.engine.progress import PassProgress
+from triage.errors import PassCancelled
+from triage.tui.screens.main import MainScreen
+from triage.views.json import fit_to_json, report_to_json
+from triage.views.text import render_full_report
+
+config_home = tui_support.config_home
+
+REPO = Path(__file__).resolve().parent.parent
+TERMS = "minutes ~ distance_km + square(distance_km) + stops + weight_kg + hour + depot + vehicle"
+N_FILES, FILE_ROWS, GROUP_ROWS = 4, 60_000, 15_000
+PART_ROWS = 30_000
+"""Parts of two row groups: 8 tasks, 3 levels of merges."""
+
+Lre = Callable[[Any, Any], Any]
+
+
+@pytest.fixture(scope="module")
+def cluster() -> Iterator[LocalCluster]:
+    with LocalCluster(
+        n_workers=2,
+        threads_per_worker=1,
+        processes=True,
+        host="127.0.0.1",
+        # None would mean the default port 8787 (taken by any other cluster on the machine)
+        dashboard_address="127.0.0.1:0",
+    ) as local_cluster:
+        yield local_cluster
+
+
+@pytest.fixture(scope="module")
+def folder(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The demo scenario (sorted by delivery id, skewed depots, missing values) in 4 files."""
+    root = tmp_path_factory.mktemp("deliveries")
+    frame = pl.concat(iter_scenario(N_FILES * FILE_ROWS, seed=3))
+    for k in range(N_FILES):
+        part = frame.slice(k * FILE_ROWS, FILE_ROWS)
+        part.write_parquet(root / f"part-{k:02d}.parquet", row_group_size=GROUP_ROWS)
+    return root
+
+
+@pytest.fixture
+def engine(cluster: LocalCluster) -> Iterator[ClusterEngine]:
+    with ClusterEngine(cluster.scheduler_address) as cluster_engine:
+        yield cluster_engine
+
+
+@pytest.fixture(autouse=True)
+def one_blas_thread() -> Iterator[None]:
+    # As the command line runs (OPENBLAS_NUM_THREADS=1) and as Dask's workers run: a BLAS
+    # kernel split over threads may round the last bit differently.
+    with threadpool_limits(limits=1, user_api="blas"):
+        yield
+
+
+@pytest.fixture(autouse=True)
+def small_learning_sample(monkeypatch: pytest.MonkeyPatch) -> None:
+    # A table smaller than the learning sample is computed from that sample in memory;
+    # 20,000 rows make the 240,000-row table a full pass, as a big one would be.
+    monkeypatch.setattr(passes, "LEARNING_SAMPLE_ROWS", 20_000)
+    # Both engines cut the files into the same parts (the cluster's are cut here too).
+    monkeypatch.setattr(parquet_module, "PART_ROWS", PART_ROWS)
+    monkeypatch.setattr(progress_module, "PROGRESS_INTERVAL_S", 0.0)
+
+
+def assert_same(local: Any, cluster: Any, lre: Lre, where: str = "") -> None:
+    """Walk two JSON documents: numbers to LRE 12 or better, everything else identical.
+
+    A value of magnitude under 1e-9 (a mean residual that is zero but for rounding) is
+    compared by its absolute difference instead, which must be under 1e-12.
+    """
+    if isinstance(local, dict):
+        assert isinstance(cluster, dict) and local.keys() == cluster.keys(), where
+        for key in local:
+            assert_same(local[key], cluster[key], lre, f"{where}.{key}")
+    elif isinstance(local, list):
+        assert isinstance(cluster, list) and len(local) == len(cluster), where
+        for k, (a, b) in enumerate(zip(local, cluster, strict=True)):
+            assert_same(a, b, lre, f"{where}[{k}]")
+    elif isinstance(local, float) and not isinstance(cluster, bool):
+        assert isinstance(cluster, (float, int)), where
+        if math.isnan(local) or math.isinf(local):
+            assert local == cluster or (math.isnan(local) and math.isnan(cluster)), where
+        elif abs(local) < 1e-9:
+            assert abs(local - cluster) < 1e-12, where
+        else:
+            assert lre(cluster, local) >= 12, (where, local, cluster)
+    else:
+        assert local == cluster, (where, local, cluster)
+
+
+def _spec(folder: Path) -> Any:
+    source = open_source(folder)
+    return source, build_spec(source.schema(), target=None, terms=TERMS)
+
+
+def test_cluster_fit_equals_local_engine(folder: Path, engine: ClusterEngine, lre: Lre) -> None:
+    source, spec = _spec(folder)
+    local = passes.fit_model(source, spec, rows=ALL_ROWS)
+    seen: list[PassProgress] = []
+    remote = passes.fit_model(source, spec, rows=ALL_ROWS, engine=engine, on_progress=seen.append)
+    assert engine.is_connected
+    assert remote.data == local.data  # every count identical
+    assert remote.data.rows_read == N_FILES * FILE_ROWS and remote.data.is_full_pass
+    assert_same(fit_to_json(local), fit_to_json(remote), lre)
+    assert fit_to_json(remote) == fit_to_json(local)  # the same parts in the same tree: same bits
+    assert float(np.min(lre(remote.fit.coef, local.fit.coef))) >= 12
+    assert float(np.min(lre(remote.fit.cov, local.fit.cov))) >= 12
+    # progress comes from finished tasks, only grows, and ends at every row
+    done = [p.rows_done for p in seen]
+    assert done == sorted(done) and done[-1] == N_FILES * FILE_ROWS
+
+
+def test_cluster_report_equals_local_engine(folder: Path, engine: ClusterEngine, lre: Lre) -> None:
+    source, spec = _spec(folder)
+    options: dict[str, Any] = {"rows": ALL_ROWS, "by": ("depot", "vehicle"), "top_k": 25}
+    local = passes.run_report(source, spec, **options)
+    remote = passes.run_report(source, spec, engine=engine, **options)
+    assert_same(report_to_json(local), report_to_json(remote), lre)
+    assert report_to_json(remote) == report_to_json(local)
+    for criterion, rows in local.diagnostics.worst.items():
+        assert [r.row for r in remote.diagnostics.worst[criterion]] == [r.row for r in rows]
+    # the report as printed (worst rows, segments, tests, charts, flags) is the same text
+    assert render_full_report(remote) == render_full_report(local)
+
+
+def test_cluster_export_all_equals_local_engine(
+    folder: Path, engine: ClusterEngine, tmp_path: Path, lre: Lre
+) -> None:
+    source, spec = _spec(folder)
+    options: dict[str, Any] = {"rows": ALL_ROWS}
+    local_path, local_statuses = export_all_rows(source, spec, tmp_path / "here.parquet", **options)
+    remote_path, remote_statuses = export_all_rows(
+        source, spec, tmp_path / "cluster.parquet", engine=engine, **options
+    )
+    assert local_statuses == remote_statuses
+    assert sum(local_statuses.values()) == N_FILES * FILE_ROWS
+    local, remote = pl.read_parquet(local_path), pl.read_parquet(remote_path)
+    assert local.columns == remote.columns and local.height == remote.height
+    assert local["row"].to_list() == remote["row"].to_list()  # the same rows in the same order
+    assert local["status"].to_list() == remote["status"].to_list()
+    for column in local.select(pl.selectors.float()).columns:
+        a, b = local[column].drop_nulls().to_numpy(), remote[column].drop_nulls().to_numpy()
+        big = np.abs(a) >= 1e-9
+        assert float(np.min(lre(b[big], a[big]))) >= 12, column
+        assert float(np.max(np.abs(a[~big] - b[~big]), initial=0.0)) < 1e-12, column
+    assert local.equals(remote)  # the same parts in the same tree: the same bits
+
+
+def test_cluster_compare_equals_local_engine(folder: Path, engine: ClusterEngine, lre: Lre) -> None:
+    from triage.core.holdout import HoldoutRule
+    from triage.views.compare import comparison_to_json
+
+    source = open_source(folder)
+    terms = ["distance_km, stops, weight_kg, depot", TERMS]
+    specs = [build_spec(source.schema(), target="minutes", terms=t) for t in terms]
+    options: dict[str, Any] = {"rows": ALL_ROWS, "holdout": HoldoutRule(fraction=0.2, seed=1)}
+    local = compare_models(source, specs, terms, **options)
+    remote = compare_models(source, specs, terms, engine=engine, **options)
+    assert remote.rows_held_out == local.rows_held_out > 0
+    assert_same(comparison_to_json(local), comparison_to_json(remote), lre)
+    assert comparison_to_json(remote) == comparison_to_json(local)
+
+
+def test_cluster_worker_killed_mid_pass_gives_the_same_result(
+    folder: Path, cluster: LocalCluster, engine: ClusterEngine, lre: Lre
+) -> None:
+    source, spec = _spec(folder)
+    undisturbed = passes.run_report(source, spec, rows=ALL_ROWS, engine=engine)
+    killed: list[int] = []
+
+    def kill_one_worker(progress: PassProgress) -> None:
+        # the first report after a task finished: the pass is under way, not done
+        if not killed and 0 < progress.rows_done < progress.rows_total:  # type: ignore[operator]
+            nanny = next(iter(cluster.workers.values()))
+            pid = nanny.process.pid
+            os.kill(pid, signal.SIGKILL)
+            killed.append(pid)
+
+    report = passes.run_report(
+        source, spec, rows=ALL_ROWS, engine=engine, on_progress=kill_one_worker
+    )
+    assert killed, "no worker was killed while the pass ran"
+    # Dask ran the lost tasks again: the same parts merged in the same tree, bit for bit
+    assert report_to_json(report) == report_to_json(undisturbed)
+    assert_same(
+        report_to_json(passes.run_report(source, spec, rows=ALL_ROWS)), report_to_json(report), lre
+    )
+    cluster.wait_for_workers(2, timeout=60)  # the nanny restarted it, for the tests after
+
+
+def test_cluster_cancel_releases_every_task(folder: Path, engine: ClusterEngine) -> None:
+    source, spec = _spec(folder)
+    cancel = threading.Event()
+
+    def stop_after_first_task(progress: PassProgress) -> None:
+        if progress.rows_done > 0:
+            cancel.set()
+
+    with pytest.raises(PassCancelled):
+        passes.run_report(
+            source,
+            spec,
+            rows=ALL_ROWS,
+            engine=engine,
+            on_progress=stop_after_first_task,
+            cancel=cancel,
+        )
+    client = engine.client()
+    deadline = time.monotonic() + 10
+    while (left := client.run_on_scheduler(_tasks_on_scheduler)) and time.monotonic() < deadline:
+        time.sleep(0.1)
+    assert left == 0  # nothing of the pass stays on the cluster
+
+
+def _tasks_on_scheduler(dask_scheduler: Any) -> int:
+    return len(dask_scheduler.tasks)
+
+
+def test_cluster_sample_fit_never_connects(folder: Path, cluster: LocalCluster) -> None:
+    source, spec = _spec(folder)
+    with ClusterEngine(cluster.scheduler_address) as engine:
+        outcome = passes.fit_model(source, spec, rows=5_000, engine=engine)
+        assert outcome.data.sample is not None
+        assert not engine.is_connected
+
+
+def test_cluster_tree_levels() -> None:
+    # Hand-worked: pairwise merges of n results take ceil(log2 n) levels.
+    assert [tree_levels(n) for n in (1, 2, 3, 4, 5, 8, 9, 5_000)] == [0, 1, 2, 2, 3, 3, 4, 13]
+
+
+# -- the command line ---------------------------------------------------------------------
+
+
+def _cli(args: list[str], *, cwd: Path = REPO, **env: str) -> subprocess.CompletedProcess[str]:
+    environment = {
+        **os.environ,
+        "PYTHONPATH": str(REPO),
+        "DASK_DISTRIBUTED__COMM__TIMEOUTS__CONNECT": "3s",
+        **env,
+    }
+    return subprocess.run(
+        [sys.executable, "-m", "triage", *args],
+        cwd=cwd,
+        env=environment,
+        capture_output=True,
+        text=True,
+        timeout=120,
+        check=False,
+    )
+
+
+class _Listener:
+    """A TCP port that accepts connections and says nothing, counting who connected."""
+
+    def __init__(self) -> None:
+        self.server = socket.create_server(("127.0.0.1", 0))
+        self.port = self.server.getsockname()[1]
+        self.accepted = 0
+        self.server.settimeout(0.2)
+        self.running = True
+        self.thread = threading.Thread(target=self._serve, daemon=True)
+        self.thread.start()
+
+    def _serve(self) -> None:
+        held = []
+        while self.running:
+            try:
+                connection, _ = self.server.accept()
+            except TimeoutError:
+                continue
+            self.accepted += 1
+            held.append(connection)
+        for connection in held:
+            connection.close()
+
+    def close(self) -> None:
+        self.running = False
+        self.thread.join()
+        self.server.close()
+
+
+def test_cli_sample_fit_never_contacts_the_scheduler(folder: Path) -> None:
+    listener = _Listener()
+    try:
+        address = f"tcp://127.0.0.1:{listener.port}"
+        model = ["--terms", TERMS, "--engine", "dask", "--scheduler", address]
+        sample = _cli(["fit", str(folder), *model, "--rows", "5000"])
+        assert sample.returncode == 0, sample.stderr
+        assert listener.accepted == 0
+        # the same listener does see a full pass knock (and answers nothing: exit 2)
+        full = _cli(["fit", str(folder), *model, "--rows", "all"])
+        assert full.returncode == 2
+        assert listener.accepted >= 1
+        assert "no Dask scheduler answered" in full.stderr
+    finally:
+        listener.close()
+
+
+def test_cli_report_on_the_cluster_equals_local(
+    tmp_path: Path, cluster: LocalCluster, lre: Lre
+) -> None:
+    # More rows than the learning sample (200,000), so the command streams every row.
+    root = tmp_path / "big"
+    root.mkdir()
+    for k, frame in enumerate(iter_scenario(260_000, seed=5, block_rows=65_000)):
+        frame.write_parquet(root / f"part-{k}.parquet", row_group_size=65_000)
+    model = ["--terms", TERMS, "--rows", "all", "--by", "depot", "--json"]
+    local = _cli(["report", str(root), *model])
+    remote = _cli(["report", str(root), *model, "--engine", "dask"],
+                  TRIAGE_SCHEDULER=cluster.scheduler_address)  # fmt: skip
+    assert local.returncode == 0 and remote.returncode == 0, remote.stderr
+    assert_same(json.loads(local.stdout), json.loads(remote.stdout), lre)
+
+
+@pytest.mark.parametrize(
+    ("address", "says"),
+    [
+        ("not an address", "is not a scheduler address"),
+        ("foo://10.0.0.1:8786", "is not a scheduler address"),
+        ("tcp://127.0.0.1:{closed}", "no Dask scheduler answered"),
+    ],
+)
+def test_cli_bad_or_unreachable_scheduler_exits_2_with_one_line(
+    folder: Path, address: str, says: str
+) -> None:
+    with socket.create_server(("127.0.0.1", 0)) as probe:
+        closed = probe.getsockname()[1]  # closed again below: nothing listens there
+    args = ["fit", str(folder), "--terms", TERMS, "--rows", "all", "--engine", "dask"]
+    result = _cli([*args, "--scheduler", address.format(closed=closed)])
+    assert result.returncode == 2
+    assert says in result.stderr
+    assert len(result.stderr.strip().splitlines()) == 1, result.stderr
+
+
+def test_cli_source_the_workers_cannot_see_exits_2_with_one_line(
+    folder: Path, cluster: LocalCluster
+) -> None:
+    # /proc/self/cwd is each process's own working folder: the command runs in the data's
+    # parent folder and sees the files; the workers run elsewhere and do not.
+    path = f"/proc/self/cwd/{folder.name}"
+    args = ["fit", path, "--terms", "minutes ~ distance_km + stops", "--rows", "all"]
+    result = _cli(
+        [*args, "--engine", "dask", "--scheduler", cluster.scheduler_address], cwd=folder.parent
+    )
+    assert result.returncode == 2
+    assert "cannot see" in result.stderr and folder.name in result.stderr
+    assert len(result.stderr.strip().splitlines()) == 1, result.stderr
+    assert _cli(args, cwd=folder.parent).returncode == 0  # the command itself sees them
+
+
+def test_cli_scheduler_without_dask_engine_is_refused(folder: Path) -> None:
+    result = _cli(["fit", str(folder), "--terms", TERMS, "--scheduler", "tcp://127.0.0.1:8786"])
+    assert result.returncode == 2
+    assert "--engine dask" in result.stderr
+
+
+def test_cli_dask_engine_without_dask_says_how_to_install(
+    folder: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from triage.cli.main import main
+
+    monkeypatch.setitem(sys.modules, "distributed", None)  # import distributed now fails
+    code = main(["fit", str(folder), "--terms", TERMS, "--rows", "all", "--engine", "dask"])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert "pip install 'triage[cluster]'" in err and len(err.strip().splitlines()) == 1
+
+
+# -- the app ------------------------------------------------------------------------------
+
+
+async def test_tui_full_pass_runs_on_the_cluster_and_the_sample_fit_here(
+    folder: Path, cluster: LocalCluster, config_home: Path, lre: Lre
+) -> None:
+    terms = "distance_km, stops, weight_kg, depot"
+    app = build_app(
+        folder,
+        target="minutes",
+        terms=terms,
+        sample_rows=5_000,
+        scheduler=cluster.scheduler_address,
+    )
+    async with app.run_test(size=(80, 24)) as pilot:
+        await settle(pilot)
+        screen = app.screen
+        assert isinstance(screen, MainScreen)
+        assert screen.current is not None and not screen.current.is_full_pass
+        assert screen.cluster is None  # the sample fit never touched the cluster
+        await press_id(pilot, "start-full-pass")
+        await wait_until(pilot, lambda: screen.running_pass is None, "the full pass to end")
+        await settle(pilot)
+        assert screen.current is not None and screen.current.is_full_pass
+        assert screen.cluster is not None and screen.cluster.is_connected
+        remote = screen.current.report
+    source = open_source(folder)
+    spec = build_spec(source.schema(), target="minutes", terms=terms)
+    local = passes.fit_model(source, spec, rows=ALL_ROWS).fit
+    fit = remote.outcome.fit
+    assert fit.names == local.names
+    assert float(np.min(lre(fit.coef, local.coef))) >= 12
+    assert remote.outcome.data.rows_read == N_FILES * FILE_ROWS
