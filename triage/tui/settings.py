@@ -62,5 +62,8 @@ class Settings:
     """Rows kept per worst-row list."""
     is_ordered: bool = False
     """Row order means something (time order): judge serial correlation and trends."""
+    scheduler: str | None = None
+    """Address of the Dask scheduler that runs passes over every row (`--engine dask`); None
+    runs them in this process. Sample fits always run here."""
     is_colorless: bool = field(default_factory=lambda: bool(os.environ.get("NO_COLOR")))
     """Draw without colour (set when the `NO_COLOR` environment variable is non-empty)."""

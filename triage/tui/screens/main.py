@@ -62,6 +62,7 @@ if TYPE_CHECKING:
     from triage._typing import Criterion
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
+    from triage.engine.cluster import ClusterEngine
     from triage.results.fit import DataSummary, FitOutcome
     from triage.results.progress import PassProgress
     from triage.tui.settings import Settings
@@ -352,6 +353,8 @@ class MainScreen(Screen[None]):
         """A source already opened (when another file replaces the session's), else None."""
         self.head_start = head_start
         """Work begun before the app started (the data opened, the given model fitted)."""
+        self.cluster: ClusterEngine | None = None
+        """The Dask cluster that runs passes over every row, once one has (`Settings.scheduler`)."""
         self.source: Source | None = None
         """The open data source."""
         self.draft = draft_from_settings(settings)
@@ -875,6 +878,7 @@ class MainScreen(Screen[None]):
             report = early or run_report(
                 self.source,
                 job.spec,
+                engine=self._cluster_engine() if rows is ALL_ROWS else None,
                 rows=rows,
                 seed=self.settings.seed,
                 sampling=self.settings.sampling,
@@ -895,6 +899,21 @@ class MainScreen(Screen[None]):
                 self.post_message(PassStopped(job.pass_id))
             else:
                 self.post_message(PassFinished(job.pass_id, report, job.excluded, job.baseline))
+
+    def _cluster_engine(self) -> ClusterEngine | None:
+        """Return the cluster engine of `Settings.scheduler` (it connects on its first pass)."""
+        if self.settings.scheduler is None:
+            return None
+        if self.cluster is None:
+            from triage.engine.cluster import ClusterEngine
+
+            self.cluster = ClusterEngine(self.settings.scheduler)
+        return self.cluster
+
+    def on_unmount(self) -> None:
+        """Close the connection to the cluster, if a pass opened one (the cluster runs on)."""
+        if self.cluster is not None:
+            self.cluster.close()
 
     @work(thread=True, exclusive=True, group="sample-fit", exit_on_error=False)
     def run_sample_fit(self, job: PassJob) -> None:
