@@ -60,7 +60,7 @@ from triage.tui.widgets.status import KeyFooter, ModelLine, PaneStrip, PassLine
 
 if TYPE_CHECKING:
     from triage._typing import Criterion
-    from triage.core.spec import ModelSpec
+    from triage.core.spec import ModelSpec, TextColumnFacts
     from triage.data.source import Source
     from triage.engine.cluster import ClusterEngine
     from triage.results.fit import DataSummary, FitOutcome
@@ -357,6 +357,8 @@ class MainScreen(Screen[None]):
         """The Dask cluster that runs passes over every row, once one has (`Settings.scheduler`)."""
         self.source: Source | None = None
         """The open data source."""
+        self._text_facts: dict[str, TextColumnFacts] = {}
+        """What a read of each text column used as a number found (read once per source)."""
         self.draft = draft_from_settings(settings)
         """The model as being built."""
         self.fits: list[SessionFit] = []
@@ -618,6 +620,7 @@ class MainScreen(Screen[None]):
             self.app.switch_screen(MainScreen(fresh, opened=message))
             return
         self.source = message.source
+        self._text_facts = {}
         self.segment_columns = segment_columns(message.source.schema(), message.profile)
         columns = self.query_one(ColumnsPane)
         columns.profile = message.profile
@@ -755,12 +758,23 @@ class MainScreen(Screen[None]):
     # ----------------------------------------------------------------------------------------
     # passes
 
+    def _text_column_facts(self, column: str) -> TextColumnFacts:
+        """Read a text column of the source once, to tell numbers with a stray value from text."""
+        from triage.data.text_columns import text_column_facts
+
+        assert self.source is not None  # asked only while a source is open
+        if column not in self._text_facts:
+            self._text_facts[column] = text_column_facts(self.source, column)
+        return self._text_facts[column]
+
     def _spec(self, draft: ModelDraft | None = None) -> ModelSpec | None:
         """Check a draft (the current one by default) against the data; say what is wrong."""
         if self.source is None:
             return None
         try:
-            return (draft or self.draft).to_spec(self.source.schema(), self.settings)
+            return (draft or self.draft).to_spec(
+                self.source.schema(), self.settings, self._text_column_facts
+            )
         except TriageError as error:
             self.show_error(str(error), title="the model cannot be fitted")
             return None
