@@ -30,6 +30,8 @@ from __future__ import annotations
 import argparse
 import json
 import statistics
+import subprocess
+import sys
 import tempfile
 import time
 from pathlib import Path
@@ -142,19 +144,34 @@ def case_commands(case: str, path: Path, out: Path) -> tuple[list[str], dict[str
 
 
 def case_file(case: str, n_rows: int) -> Path:
-    """Generate (once) and return the file of a case."""
+    """Return the file of a case, generated once in a child process.
+
+    Not here: Linux carries a process's peak resident memory over into the children it
+    starts, so a parent that had held a generated table would inflate every measurement.
+    """
+    if case.startswith("numeric"):
+        path = DATA / f"bench_{n_rows}_{int(case.removeprefix('numeric'))}.parquet"
+    elif case == "admin":
+        path = DATA / f"admin_{n_rows}.parquet"
+    else:
+        path = DATA / f"admin_{n_rows}_by_{SORTED_BY}.parquet"
+    if not path.exists():
+        subprocess.run(
+            [sys.executable, __file__, "--make", case, "--rows", str(n_rows)], check=True
+        )
+    return path
+
+
+def make_case_file(case: str, n_rows: int) -> None:
+    """Generate the file of a case (and, for the sorted copy, the file it sorts)."""
     if case.startswith("numeric"):
         p = int(case.removeprefix("numeric"))
-        path = DATA / f"bench_{n_rows}_{p}.parquet"
-        make_file(path, n_rows, p)
-        return path
+        make_file(DATA / f"bench_{n_rows}_{p}.parquet", n_rows, p)
+        return
     admin = DATA / f"admin_{n_rows}.parquet"
     make_admin_file(admin, n_rows)
-    if case == "admin":
-        return admin
-    path = DATA / f"admin_{n_rows}_by_{SORTED_BY}.parquet"
-    make_sorted_copy(admin, path)
-    return path
+    if case != "admin":
+        make_sorted_copy(admin, DATA / f"admin_{n_rows}_by_{SORTED_BY}.parquet")
 
 
 def run_case(case: str, n_rows: int, repeat: int, extra: list[str]) -> dict[str, object]:
@@ -191,7 +208,11 @@ def main() -> None:
     )
     parser.add_argument("--repeat", type=int, default=3, help="runs of each contender, in turn")
     parser.add_argument("--workers", type=int, default=None, help="pass `--workers N` to triage")
+    parser.add_argument("--make", metavar="CASE", help=argparse.SUPPRESS)  # in a child process
     args = parser.parse_args()
+    if args.make:
+        make_case_file(args.make, int(args.rows))
+        return
     extra = [] if args.workers is None else ["--workers", str(args.workers)]
     compile_once()
     rows = [

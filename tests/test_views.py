@@ -6,9 +6,11 @@ checks compare against numpy, statsmodels and Python's own float parsing.
 
 from __future__ import annotations
 
+import itertools
 import json
 import math
 import re
+import unicodedata
 from pathlib import Path
 from typing import Any, get_args
 
@@ -30,6 +32,8 @@ from triage.views.flags import flag_message
 from triage.views.format import (
     NA,
     amount_decimals,
+    cell_width,
+    fit_cell,
     format_count,
     format_fixed,
     format_number,
@@ -112,14 +116,71 @@ def test_format_count_separators() -> None:
 @given(st.text(min_size=0, max_size=40), st.integers(min_value=0, max_value=50))
 def test_truncate_fits_and_marks_cuts(text: str, width: int) -> None:
     out = truncate(text, width)
-    assert len(out) <= width
-    if len(text) <= width:
+    assert cell_width(out) <= width
+    if cell_width(text) <= width:
         assert out == text
     elif width == 0:
         assert out == ""
     else:
         assert out.endswith("…")
         assert text.startswith(out[:-1])
+
+
+def east_asian_cells(text: str) -> int:
+    """Terminal cells by Unicode's East Asian Width property (UAX #11, Python's unicodedata):
+    wide (W) and full-width (F) characters take two cells, the rest one (no control or
+    combining characters in these tests)."""
+    return sum(2 if unicodedata.east_asian_width(char) in "WF" else 1 for char in text)
+
+
+def cell_slice(line: str, start: int, end: int) -> str:
+    """The characters of `line` lying wholly in terminal cells [start, end) (East Asian Width)."""
+    kept, at = [], 0
+    for char in line:
+        size = east_asian_cells(char)
+        if at >= start and at + size <= end:
+            kept.append(char)
+        at += size
+    return "".join(kept)
+
+
+def test_table_aligns_japanese_names_and_emoji_by_terminal_cells() -> None:
+    # Oracle: Unicode East Asian Width (unicodedata), independent of rich's width table.
+    headers = ["列名", "estimate", "note"]
+    rows = [["配達時間", "1.5", "🚚 late"], ["distance_km", "-2.25", "ok"], ["北倉庫", "10", "-"]]
+    lines = table(headers, rows, align=["<", ">", "<"], width=80).splitlines()
+    spans = [(m.start(), m.end()) for m in re.finditer("╌+", lines[1])]  # one cell per ╌
+    assert len(spans) == len(headers) and len(lines) == 2 + len(rows)
+    for line, cells in zip([lines[0], *lines[2:]], [headers, *rows], strict=True):
+        for (start, end), cell in zip(spans, cells, strict=True):
+            assert cell_slice(line, start, end).strip() == cell
+        for (_, end), (start, _) in itertools.pairwise(spans):
+            assert cell_slice(line, end, start) == " " * (start - end)  # the gap stays blank
+    right = [cell_slice(line, *spans[1]) for line in lines[2:]]
+    assert [cell[-1] for cell in right] == ["5", "5", "0"]  # right-aligned by cells
+
+
+def test_table_cuts_a_wide_name_at_a_cell_boundary() -> None:
+    # A free-text column narrowed to fit: a double-width character never straddles the cut,
+    # and every line keeps the width of the rule (oracle: Unicode East Asian Width).
+    rows = [["a", "配達時間の記録は長い"], ["b", "🚚" * 8], ["c", "plain text is long too"]]
+    lines = table(["k", "note"], rows, align=["<", "<"], width=14, shrink=1).splitlines()
+    rule_cells = east_asian_cells(lines[1])
+    assert rule_cells <= 14
+    for line in lines[2:]:
+        assert line.endswith("…")
+        assert rule_cells - 1 <= east_asian_cells(line) <= rule_cells
+
+
+def test_padding_and_cutting_count_cells() -> None:
+    # Oracle: Unicode East Asian Width (unicodedata).
+    for text in ["配達時間", "🚚 mobile", "distance_km", "北倉庫 depot"]:
+        for width in range(1, 14):
+            for align in ("<", ">"):
+                cell = fit_cell(text, width, align)
+                assert east_asian_cells(cell) == width
+                assert cell.strip(" ") == truncate(text, width)
+        assert cell_width(text) == east_asian_cells(text)
 
 
 # ── results built by the real engine on small invented data ────────────────────────
