@@ -251,3 +251,55 @@ def test_readme_names_every_command() -> None:
 
     named = {argv[1] for argv in USAGE}
     assert set(COMMANDS) <= named
+
+
+# ── legibility at 80 columns ─────────────────────────────────────────────────────────────
+
+
+def _tables(text: str) -> list[list[str]]:
+    """Each table of a text report (a heading line over a ╌ rule) as its row labels."""
+    lines = text.split("\n")
+    found = []
+    for i, line in enumerate(lines):
+        if i and line.lstrip().startswith("╌"):
+            start = len(line) - len(line.lstrip())
+            width = len(line.lstrip().split("  ")[0])
+            gaps = [k for k, char in enumerate(line) if k >= start and char == " "]
+            rows = []
+            for row in lines[i + 1 :]:
+                if all(k >= len(row) or row[k] == " " for k in gaps) and row.strip():
+                    rows.append(row[start : start + width].strip())
+                elif start and row.strip():
+                    continue  # a question heading between groups of rows
+                else:
+                    break  # a blank line or a note under the table
+            found.append(rows)
+    return found
+
+
+def test_no_two_rows_of_a_table_at_80_columns_share_a_label() -> None:
+    """Long indicator, transform and interaction names stay whole and told apart."""
+    from triage.engine.compare import compare_models
+    from triage.views.compare import render_comparison
+    from triage.views.text import render_full_report
+
+    source = open_source(DEMO)
+    terms = (
+        "poly(distance_km, 3), log(weight_kg), distance_km:weight_kg, stops, hour, vehicle, depot"
+    )
+    spec = build_spec(source.schema(), target="minutes", terms=terms)
+    report = run_report(source, spec, rows=20_000, top_k=5, by=("depot", "vehicle"))
+    texts = [render_full_report(report, width=80, charts=False, is_ordered=True)]
+    plain = build_spec(source.schema(), target="minutes", terms=TOUR_TERMS)
+    comparison = compare_models(source, [plain, spec], [TOUR_TERMS, terms], rows=20_000)
+    texts.append(render_comparison(comparison, width=80))
+    tables = [labels for text in texts for labels in _tables(text)]
+    assert len(tables) >= 10
+    for text in texts:
+        assert max(len(line) for line in text.split("\n")) <= 80
+    for labels in tables:
+        assert len(labels) == len(set(labels)), labels
+        assert not any(label.endswith("…") for label in labels), labels
+    names = report.outcome.fit.names
+    coefficient_tables = [t for t in tables if set(t) == set(names)]
+    assert coefficient_tables  # every design column, whole, e.g. `vehicle=cargo_bike`
