@@ -569,3 +569,20 @@ def test_max_memory_option_sets_the_guard(
     with pytest.raises(SystemExit, match="2"):
         main([*args, "--max-memory", "lots"])
     assert "`--max-memory` must be a size such as 4G" in capsys.readouterr().err
+
+
+def test_parquet_with_no_rows_or_an_empty_target_says_so(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from triage.cli.main import main
+
+    empty = tmp_path / "empty.parquet"
+    pl.DataFrame({"y": [], "x": []}, schema={"y": pl.Float64, "x": pl.Float64}).write_parquet(empty)
+    no_target = tmp_path / "no_target.parquet"
+    pl.DataFrame(
+        {"y": [None] * 40, "x": np.arange(40.0)}, schema={"y": pl.Float64, "x": pl.Float64}
+    ).write_parquet(no_target)
+    assert main(["fit", str(empty), "--terms", "y ~ x", "--rows", "all"]) == 2
+    assert "the data has no rows" in capsys.readouterr().err
+    assert main(["fit", str(no_target), "--terms", "y ~ x"]) == 2
+    assert "every value of `y` is missing (40 rows)" in capsys.readouterr().err

@@ -177,10 +177,10 @@ def truncate(text: str, width: int) -> str:
     >>> truncate("配達時間", 6), truncate("distance_km", 6)
     ('配達…', 'dista…')
     """
+    if cell_len(text) <= width:
+        return text  # also text of zero-width characters only, at width 0
     if width <= 0:
         return ""
-    if cell_len(text) <= width:
-        return text
     kept, used = [], 0
     for char in text:
         used += cell_len(char)

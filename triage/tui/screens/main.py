@@ -60,7 +60,7 @@ from triage.tui.widgets.status import KeyFooter, ModelLine, PaneStrip, PassLine
 
 if TYPE_CHECKING:
     from triage._typing import Criterion
-    from triage.core.spec import ModelSpec
+    from triage.core.spec import ModelSpec, TextColumnFacts
     from triage.data.source import Source
     from triage.engine.cluster import ClusterEngine
     from triage.results.fit import DataSummary, FitOutcome
@@ -357,6 +357,8 @@ class MainScreen(Screen[None]):
         """The Dask cluster that runs passes over every row, once one has (`Settings.scheduler`)."""
         self.source: Source | None = None
         """The open data source."""
+        self._text_facts: dict[str, TextColumnFacts] = {}
+        """What a read of each text column used as a number found (read once per source)."""
         self.draft = draft_from_settings(settings)
         """The model as being built."""
         self.fits: list[SessionFit] = []
@@ -618,6 +620,7 @@ class MainScreen(Screen[None]):
             self.app.switch_screen(MainScreen(fresh, opened=message))
             return
         self.source = message.source
+        self._text_facts = {}
         self.segment_columns = segment_columns(message.source.schema(), message.profile)
         columns = self.query_one(ColumnsPane)
         columns.profile = message.profile
@@ -650,6 +653,7 @@ class MainScreen(Screen[None]):
         """
         if draft.target is not None and self._spec(draft) is None:
             return
+        self.is_opening_on_fit = False  # the user builds the model: the Columns pane stays
         self.draft = draft
         self.typed_terms = None
         self.query_one(ColumnsPane).draft = draft
@@ -755,12 +759,23 @@ class MainScreen(Screen[None]):
     # ----------------------------------------------------------------------------------------
     # passes
 
+    def _text_column_facts(self, column: str) -> TextColumnFacts:
+        """Read a text column of the source once, to tell numbers with a stray value from text."""
+        from triage.data.text_columns import text_column_facts
+
+        assert self.source is not None  # asked only while a source is open
+        if column not in self._text_facts:
+            self._text_facts[column] = text_column_facts(self.source, column)
+        return self._text_facts[column]
+
     def _spec(self, draft: ModelDraft | None = None) -> ModelSpec | None:
         """Check a draft (the current one by default) against the data; say what is wrong."""
         if self.source is None:
             return None
         try:
-            return (draft or self.draft).to_spec(self.source.schema(), self.settings)
+            return (draft or self.draft).to_spec(
+                self.source.schema(), self.settings, self._text_column_facts
+            )
         except TriageError as error:
             self.show_error(str(error), title="the model cannot be fitted")
             return None
@@ -802,21 +817,32 @@ class MainScreen(Screen[None]):
             return
         pass_id = next(self._pass_ids)
         job = PassJob(pass_id, spec, excluded, baseline, is_full)
-        sample = self.sample_job
+        # a sample fit and a full pass of one model both take the screen: the sample first
+        other = self.sample_job if is_full else self.running_job
         if (
-            is_full
-            and sample is not None
-            and sample.pass_id in self.screen_passes
-            and (sample.spec, sample.excluded) == (spec, excluded)
+            other is not None
+            and other.pass_id in self.screen_passes
+            and (other.spec, other.excluded) == (spec, excluded)
         ):
-            self.screen_passes = {sample.pass_id, pass_id}  # the sample fit shows first
+            self.screen_passes = {other.pass_id, pass_id}
         else:
             self.screen_passes = {pass_id}
         if is_full:
+            replaced = self.running_job
+            if replaced is not None:
+                from triage.views.text import model_formula
+
+                self.notify(
+                    f"the pass over every row of {model_formula(replaced.spec)} was stopped: "
+                    "a new pass over every row started",
+                    severity="warning",
+                )
             self.running_pass = pass_id
             self.running_job = job
             self.full_pass_worker = self.run_full_pass(job)
-            self.query_one(PassLine).set_class(True, "-running")
+            pass_line = self.query_one(PassLine)
+            pass_line.pass_label = "every row"
+            pass_line.set_class(True, "-running")
             self.notify("reading every row in the background; the sample results stay until done")
         else:
             self.sample_job = job
@@ -983,6 +1009,7 @@ class MainScreen(Screen[None]):
 
     def on_pass_failed(self, message: PassFailed) -> None:
         """Show why a pass (or opening the data) failed."""
+        self.is_opening_on_fit = False
         self._end_pass(message.pass_id)
         self._end_full_pass(message.pass_id)
         self.report_error(message.message, title=message.title, is_background=message.pass_id != 0)
