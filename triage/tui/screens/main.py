@@ -653,6 +653,7 @@ class MainScreen(Screen[None]):
         """
         if draft.target is not None and self._spec(draft) is None:
             return
+        self.is_opening_on_fit = False  # the user builds the model: the Columns pane stays
         self.draft = draft
         self.typed_terms = None
         self.query_one(ColumnsPane).draft = draft
@@ -997,6 +998,7 @@ class MainScreen(Screen[None]):
 
     def on_pass_failed(self, message: PassFailed) -> None:
         """Show why a pass (or opening the data) failed."""
+        self.is_opening_on_fit = False
         self._end_pass(message.pass_id)
         self._end_full_pass(message.pass_id)
         self.report_error(message.message, title=message.title, is_background=message.pass_id != 0)
