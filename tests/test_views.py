@@ -27,7 +27,7 @@ from triage.data.source import open_source
 from triage.engine.passes import fit_model, run_report
 from triage.results.diagnostics import Flag, FlagCode
 from triage.results.fit import FitOutcome, ReportOutcome
-from triage.views.charts import render_binned, render_histogram
+from triage.views.charts import histogram_view, render_binned, render_histogram
 from triage.views.flags import flag_message
 from triage.views.format import (
     NA,
@@ -438,19 +438,24 @@ def test_views_histogram_tallest_bar_where_numpy_puts_it(
 def test_views_histogram_differs_with_the_data(report: ReportOutcome) -> None:
     d = report.diagnostics
     hist = d.histogram
+    # the mirror image of the same residuals (every residual negated)
     flipped = type(hist)(
-        edges=hist.edges,
+        edges=-hist.edges[::-1],
         counts=hist.counts[::-1].copy(),
         below=hist.above,
         above=hist.below,
         minimum=-hist.maximum,
         maximum=-hist.minimum,
-        quantiles=hist.quantiles,
+        quantiles={1.0 - p: -v for p, v in hist.quantiles.items()},
+        fine_edges=-hist.fine_edges[::-1],
+        fine_counts=hist.fine_counts[::-1].copy(),
     )
     one = render_histogram(hist, 76, 14, color=False)
     two = render_histogram(flipped, 76, 14, color=False)
     assert one != two
-    assert _tallest_bar_fraction(one) < 0.5 < _tallest_bar_fraction(two)
+    view, mirror = histogram_view(hist, 34), histogram_view(flipped, 34)
+    assert (view.below, view.above) == (mirror.above, mirror.below)
+    np.testing.assert_array_equal(view.counts, mirror.counts[::-1])
 
 
 def test_views_binned_chart_shows_missed_curve(tmp_path: Path) -> None:
@@ -717,3 +722,35 @@ def test_views_flag_words_quote_the_rules_limits(monkeypatch: pytest.MonkeyPatch
     assert "in 9 fits of 10" in flag_message(flags["large-studentized"])
     assert "above 0.9," in flag_message(flags["shared-trend"])
     assert "fewer than 20 rows per coefficient" in flag_message(flags["many-terms"])
+
+
+def test_histogram_view_spans_the_body_on_a_robust_scale() -> None:
+    """Oracle: numpy counts of the same residuals beyond the drawn edges."""
+    from types import SimpleNamespace
+
+    rng = np.random.default_rng(11)
+    resid = np.concatenate([rng.normal(0, 10, 20_000), np.full(40, 5_000.0)])  # 40 gross
+    sd = resid.std(ddof=1)
+    fine_edges = np.linspace(-8 * sd, 8 * sd, 401)
+    cells = np.searchsorted(fine_edges, resid, side="right")  # 0: below, 401: above
+    fine = np.bincount(cells, minlength=402)
+    q = {p: float(np.quantile(resid, p)) for p in (0.25, 0.5, 0.75)}
+    hist = SimpleNamespace(
+        edges=np.linspace(-4 * sd, 4 * sd, 41),
+        counts=np.histogram(resid, np.linspace(-4 * sd, 4 * sd, 41))[0],
+        below=0,
+        above=40,
+        quantiles=q,
+        fine_edges=fine_edges,
+        fine_counts=fine,
+    )
+    view = histogram_view(hist, bars=36)
+    assert view.is_robust and view.counts.size <= 36
+    assert view.below == int(np.sum(resid < view.edges[0]))
+    assert view.above == int(np.sum(resid >= view.edges[-1]))
+    assert view.counts.sum() + view.below + view.above == resid.size
+    # the body: the window is about ±4 robust SDs (IQR/1.349 is about 10 here), not ±4 SD
+    robust_sd = (q[0.75] - q[0.25]) / 1.349
+    fine_bin = fine_edges[1] - fine_edges[0]  # edges fall on the fine grid
+    assert view.edges[-1] - view.edges[0] == pytest.approx(8 * robust_sd, abs=2 * fine_bin)
+    assert view.edges[-1] - view.edges[0] < 0.5 * 8 * sd
