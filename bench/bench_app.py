@@ -28,7 +28,7 @@ HERE = Path(__file__).resolve().parent
 DATA = HERE / "data"
 TERMS = "distance_km, stops, weight_kg, hour, depot, vehicle"
 SESSION = "triage-bench"
-ROW_LINE = re.compile(r"row ([\d,]+) of the source")
+ROW_LINE = re.compile(r"row ([\d,]+) \(0-based\)")
 ROW_NUMBER = re.compile(r"^│\s+[\d,]{5,}\s", re.MULTILINE)  # a row of the Worst table
 
 

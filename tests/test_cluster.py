@@ -33,6 +33,8 @@ import pytest
 from distributed import LocalCluster
 from threadpoolctl import threadpool_limits
 
+from tests import tui_support
+from tests.tui_support import build_app, press_id, settle, wait_until
 from triage._typing import ALL_ROWS
 from triage.core.spec import build_spec
 from triage.data import parquet as parquet_module
@@ -45,8 +47,11 @@ from triage.engine.compare import compare_models
 from triage.engine.export import export_all_rows
 from triage.engine.progress import PassProgress
 from triage.errors import PassCancelled
+from triage.tui.screens.main import MainScreen
 from triage.views.json import fit_to_json, report_to_json
 from triage.views.text import render_full_report
+
+config_home = tui_support.config_home
 
 REPO = Path(__file__).resolve().parent.parent
 TERMS = "minutes ~ distance_km + square(distance_km) + stops + weight_kg + hour + depot + vehicle"
@@ -408,3 +413,38 @@ def test_cli_dask_engine_without_dask_says_how_to_install(
     err = capsys.readouterr().err
     assert code == 2
     assert "pip install 'triage[cluster]'" in err and len(err.strip().splitlines()) == 1
+
+
+# -- the app ------------------------------------------------------------------------------
+
+
+async def test_tui_full_pass_runs_on_the_cluster_and_the_sample_fit_here(
+    folder: Path, cluster: LocalCluster, config_home: Path, lre: Lre
+) -> None:
+    terms = "distance_km, stops, weight_kg, depot"
+    app = build_app(
+        folder,
+        target="minutes",
+        terms=terms,
+        sample_rows=5_000,
+        scheduler=cluster.scheduler_address,
+    )
+    async with app.run_test(size=(80, 24)) as pilot:
+        await settle(pilot)
+        screen = app.screen
+        assert isinstance(screen, MainScreen)
+        assert screen.current is not None and not screen.current.is_full_pass
+        assert screen.cluster is None  # the sample fit never touched the cluster
+        await press_id(pilot, "start-full-pass")
+        await wait_until(pilot, lambda: screen.running_pass is None, "the full pass to end")
+        await settle(pilot)
+        assert screen.current is not None and screen.current.is_full_pass
+        assert screen.cluster is not None and screen.cluster.is_connected
+        remote = screen.current.report
+    source = open_source(folder)
+    spec = build_spec(source.schema(), target="minutes", terms=terms)
+    local = passes.fit_model(source, spec, rows=ALL_ROWS).fit
+    fit = remote.outcome.fit
+    assert fit.names == local.names
+    assert float(np.min(lre(fit.coef, local.coef))) >= 12
+    assert remote.outcome.data.rows_read == N_FILES * FILE_ROWS

@@ -13,6 +13,7 @@ from triage.core.holdout import (
     HoldoutRule,
     cut_holdout_mask,
     kfold_rmse,
+    kfold_test_rows,
     random_holdout_mask,
 )
 from triage.data.base import random_keys
@@ -172,6 +173,35 @@ def test_holdout_kfold_rmse_equals_sklearn_cross_val_score(rng):
     )
     np.testing.assert_allclose(result.fold_rmse, expected, rtol=1e-10)
     assert result.rmse == pytest.approx(expected.mean(), rel=1e-10)
+
+
+@pytest.mark.parametrize("n_rows", [5, 7, 10, 601])
+@pytest.mark.parametrize("folds", [2, 3, 5])
+@pytest.mark.parametrize("seed", [0, 3, 2**32 - 1])
+def test_holdout_kfold_folds_equal_sklearn_kfold(n_rows: int, folds: int, seed: int) -> None:
+    from sklearn.model_selection import KFold
+
+    # Oracle: scikit-learn's KFold with the same shuffle seed, its held-out rows per fold.
+    expected = [
+        test.tolist()
+        for _, test in KFold(folds, shuffle=True, random_state=seed).split(np.zeros(n_rows))
+    ]
+    assert [fold.tolist() for fold in kfold_test_rows(n_rows, folds, seed)] == expected
+
+
+def test_holdout_kfold_imports_no_scikit_learn() -> None:
+    import subprocess
+    import sys
+
+    code = (
+        "import sys, numpy as np; from triage.core.holdout import kfold_rmse; "
+        "x = np.column_stack([np.ones(50), np.arange(50.0)]); "
+        "kfold_rmse(x, np.arange(50.0) % 7, has_intercept=True); print('sklearn' in sys.modules)"
+    )
+    loaded = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, check=True
+    )
+    assert loaded.stdout.strip() == "False"
 
 
 def test_holdout_kfold_with_too_few_rows_is_none(rng):

@@ -551,3 +551,38 @@ def test_an_identifier_column_is_named_as_such_past_the_level_limit() -> None:
     codes = frame.with_columns((pl.col("__row") % 60).cast(pl.String).alias("id"))
     with pytest.raises(SpecError, match=r"has 60 levels .* raise the limit with `--max-levels`"):
         DesignBuilder.learn(spec, codes.schema, codes)
+
+
+def test_max_memory_option_sets_the_guard(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from triage.cli.main import main
+
+    path = tmp_path / "claims.parquet"
+    _claims_table(2_000).write_parquet(path)
+    args = ["fit", str(path), "--terms", "cost ~ age + office"]
+    assert main([*args, "--max-memory", "64K"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.startswith("triage: the design would have 31 columns (`office` has 30 levels)")
+    assert "more than the limit of 64.0 KiB" in err and "--max-memory" in err
+    assert main([*args, "--max-memory", "4G"]) == 0
+    with pytest.raises(SystemExit, match="2"):
+        main([*args, "--max-memory", "lots"])
+    assert "`--max-memory` must be a size such as 4G" in capsys.readouterr().err
+
+
+def test_parquet_with_no_rows_or_an_empty_target_says_so(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from triage.cli.main import main
+
+    empty = tmp_path / "empty.parquet"
+    pl.DataFrame({"y": [], "x": []}, schema={"y": pl.Float64, "x": pl.Float64}).write_parquet(empty)
+    no_target = tmp_path / "no_target.parquet"
+    pl.DataFrame(
+        {"y": [None] * 40, "x": np.arange(40.0)}, schema={"y": pl.Float64, "x": pl.Float64}
+    ).write_parquet(no_target)
+    assert main(["fit", str(empty), "--terms", "y ~ x", "--rows", "all"]) == 2
+    assert "the data has no rows" in capsys.readouterr().err
+    assert main(["fit", str(no_target), "--terms", "y ~ x"]) == 2
+    assert "every value of `y` is missing (40 rows)" in capsys.readouterr().err

@@ -570,6 +570,11 @@ async def test_tui_help_lists_every_key_of_the_active_keymap(
         for binding in [*ErrorScreen.BINDINGS, *ExportScreen.BINDINGS]:
             key = app.get_key_display(binding.with_key(key_for(app, binding.id)))
             assert key in described[f"{binding.description} (in dialogs)"].split(" / ")
+        # our words only: no framework entries under the framework's Title Case names
+        assert not {"Focus Next", "Focus Previous", "Copy selected text"} & set(described)
+        assert "move" in described and "next / previous box" in described
+        shown = str(app.screen.query_one("#help-table", Static).render())
+        assert "AIC and BIC count the estimated coefficients" in " ".join(shown.split())
         await press_id(pilot, "close-dialog")
         assert isinstance(app.screen, MainScreen)
 

@@ -1,9 +1,10 @@
 """Text snapshots of the main panes at 80x24 and 120x40.
 
 The screen is captured as plain text (see `tests/tui_support.py`) and compared with the files
-in `tests/snapshots/`; `TRIAGE_UPDATE_SNAPSHOTS=1` rewrites them after a human has read the
-diff. Notifications are cleared before capture (they carry timeouts), the data are the demo
-scenario with a fixed seed, and NO_COLOR is unset by the `config_home` fixture.
+in `tests/snapshots/`; `TRIAGE_UPDATE_SNAPSHOTS=1` rewrites those that changed and fails with
+the difference, so an update is read, never passed silently. Notifications are cleared before
+capture (they carry timeouts), the data are the demo scenario with a fixed seed, and NO_COLOR
+is unset by the `config_home` fixture.
 """
 
 from __future__ import annotations
@@ -84,3 +85,22 @@ async def test_tui_snapshot_help_and_error_80x24(config_home: Path, demo_file: P
         app.screen.query_one("#prompt-input").value = "log(dpeot)"
         await pilot.press("enter")
         await _capture(pilot, "error_80x24")
+
+
+def test_snapshot_update_writes_and_shows_the_difference_instead_of_passing(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setattr(tui_support, "SNAPSHOT_DIR", tmp_path)
+    monkeypatch.setenv(tui_support.UPDATE_ENV, "1")
+    with pytest.raises(pytest.fail.Exception, match="written"):
+        assert_snapshot("first\nscreen", "demo")  # a new snapshot is shown, not passed
+    assert (tmp_path / "demo.txt").read_text(encoding="utf-8") == "first\nscreen\n"
+    assert_snapshot("first\nscreen", "demo")  # unchanged: passes
+    with pytest.raises(pytest.fail.Exception, match=r"(?s)rewritten.*-screen\n\+changed"):
+        assert_snapshot("first\nchanged", "demo")
+    assert (tmp_path / "demo.txt").read_text(encoding="utf-8") == "first\nchanged\n"
+    monkeypatch.delenv(tui_support.UPDATE_ENV)
+    assert_snapshot("first\nchanged", "demo")  # the next run compares and passes
+    with pytest.raises(pytest.fail.Exception, match="differs"):
+        assert_snapshot("first\nagain", "demo")
+    assert (tmp_path / "demo.txt").read_text(encoding="utf-8") == "first\nchanged\n"

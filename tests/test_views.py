@@ -6,9 +6,11 @@ checks compare against numpy, statsmodels and Python's own float parsing.
 
 from __future__ import annotations
 
+import itertools
 import json
 import math
 import re
+import unicodedata
 from pathlib import Path
 from typing import Any, get_args
 
@@ -25,11 +27,13 @@ from triage.data.source import open_source
 from triage.engine.passes import fit_model, run_report
 from triage.results.diagnostics import Flag, FlagCode
 from triage.results.fit import FitOutcome, ReportOutcome
-from triage.views.charts import render_binned, render_histogram
+from triage.views.charts import histogram_view, render_binned, render_histogram
 from triage.views.flags import flag_message
 from triage.views.format import (
     NA,
     amount_decimals,
+    cell_width,
+    fit_cell,
     format_count,
     format_fixed,
     format_number,
@@ -112,14 +116,71 @@ def test_format_count_separators() -> None:
 @given(st.text(min_size=0, max_size=40), st.integers(min_value=0, max_value=50))
 def test_truncate_fits_and_marks_cuts(text: str, width: int) -> None:
     out = truncate(text, width)
-    assert len(out) <= width
-    if len(text) <= width:
+    assert cell_width(out) <= width
+    if cell_width(text) <= width:
         assert out == text
     elif width == 0:
         assert out == ""
     else:
         assert out.endswith("…")
         assert text.startswith(out[:-1])
+
+
+def east_asian_cells(text: str) -> int:
+    """Terminal cells by Unicode's East Asian Width property (UAX #11, Python's unicodedata):
+    wide (W) and full-width (F) characters take two cells, the rest one (no control or
+    combining characters in these tests)."""
+    return sum(2 if unicodedata.east_asian_width(char) in "WF" else 1 for char in text)
+
+
+def cell_slice(line: str, start: int, end: int) -> str:
+    """The characters of `line` lying wholly in terminal cells [start, end) (East Asian Width)."""
+    kept, at = [], 0
+    for char in line:
+        size = east_asian_cells(char)
+        if at >= start and at + size <= end:
+            kept.append(char)
+        at += size
+    return "".join(kept)
+
+
+def test_table_aligns_japanese_names_and_emoji_by_terminal_cells() -> None:
+    # Oracle: Unicode East Asian Width (unicodedata), independent of rich's width table.
+    headers = ["列名", "estimate", "note"]
+    rows = [["配達時間", "1.5", "🚚 late"], ["distance_km", "-2.25", "ok"], ["北倉庫", "10", "-"]]
+    lines = table(headers, rows, align=["<", ">", "<"], width=80).splitlines()
+    spans = [(m.start(), m.end()) for m in re.finditer("╌+", lines[1])]  # one cell per ╌
+    assert len(spans) == len(headers) and len(lines) == 2 + len(rows)
+    for line, cells in zip([lines[0], *lines[2:]], [headers, *rows], strict=True):
+        for (start, end), cell in zip(spans, cells, strict=True):
+            assert cell_slice(line, start, end).strip() == cell
+        for (_, end), (start, _) in itertools.pairwise(spans):
+            assert cell_slice(line, end, start) == " " * (start - end)  # the gap stays blank
+    right = [cell_slice(line, *spans[1]) for line in lines[2:]]
+    assert [cell[-1] for cell in right] == ["5", "5", "0"]  # right-aligned by cells
+
+
+def test_table_cuts_a_wide_name_at_a_cell_boundary() -> None:
+    # A free-text column narrowed to fit: a double-width character never straddles the cut,
+    # and every line keeps the width of the rule (oracle: Unicode East Asian Width).
+    rows = [["a", "配達時間の記録は長い"], ["b", "🚚" * 8], ["c", "plain text is long too"]]
+    lines = table(["k", "note"], rows, align=["<", "<"], width=14, shrink=1).splitlines()
+    rule_cells = east_asian_cells(lines[1])
+    assert rule_cells <= 14
+    for line in lines[2:]:
+        assert line.endswith("…")
+        assert rule_cells - 1 <= east_asian_cells(line) <= rule_cells
+
+
+def test_padding_and_cutting_count_cells() -> None:
+    # Oracle: Unicode East Asian Width (unicodedata).
+    for text in ["配達時間", "🚚 mobile", "distance_km", "北倉庫 depot"]:
+        for width in range(1, 14):
+            for align in ("<", ">"):
+                cell = fit_cell(text, width, align)
+                assert east_asian_cells(cell) == width
+                assert cell.strip(" ") == truncate(text, width)
+        assert cell_width(text) == east_asian_cells(text)
 
 
 # ── results built by the real engine on small invented data ────────────────────────
@@ -365,19 +426,24 @@ def test_views_histogram_tallest_bar_where_numpy_puts_it(
 def test_views_histogram_differs_with_the_data(report: ReportOutcome) -> None:
     d = report.diagnostics
     hist = d.histogram
+    # the mirror image of the same residuals (every residual negated)
     flipped = type(hist)(
-        edges=hist.edges,
+        edges=-hist.edges[::-1],
         counts=hist.counts[::-1].copy(),
         below=hist.above,
         above=hist.below,
         minimum=-hist.maximum,
         maximum=-hist.minimum,
-        quantiles=hist.quantiles,
+        quantiles={1.0 - p: -v for p, v in hist.quantiles.items()},
+        fine_edges=-hist.fine_edges[::-1],
+        fine_counts=hist.fine_counts[::-1].copy(),
     )
     one = render_histogram(hist, 76, 14, color=False)
     two = render_histogram(flipped, 76, 14, color=False)
     assert one != two
-    assert _tallest_bar_fraction(one) < 0.5 < _tallest_bar_fraction(two)
+    view, mirror = histogram_view(hist, 34), histogram_view(flipped, 34)
+    assert (view.below, view.above) == (mirror.above, mirror.below)
+    np.testing.assert_array_equal(view.counts, mirror.counts[::-1])
 
 
 def test_views_binned_chart_shows_missed_curve(tmp_path: Path) -> None:
@@ -644,3 +710,35 @@ def test_views_flag_words_quote_the_rules_limits(monkeypatch: pytest.MonkeyPatch
     assert "in 9 fits of 10" in flag_message(flags["large-studentized"])
     assert "above 0.9," in flag_message(flags["shared-trend"])
     assert "fewer than 20 rows per coefficient" in flag_message(flags["many-terms"])
+
+
+def test_histogram_view_spans_the_body_on_a_robust_scale() -> None:
+    """Oracle: numpy counts of the same residuals beyond the drawn edges."""
+    from types import SimpleNamespace
+
+    rng = np.random.default_rng(11)
+    resid = np.concatenate([rng.normal(0, 10, 20_000), np.full(40, 5_000.0)])  # 40 gross
+    sd = resid.std(ddof=1)
+    fine_edges = np.linspace(-8 * sd, 8 * sd, 401)
+    cells = np.searchsorted(fine_edges, resid, side="right")  # 0: below, 401: above
+    fine = np.bincount(cells, minlength=402)
+    q = {p: float(np.quantile(resid, p)) for p in (0.25, 0.5, 0.75)}
+    hist = SimpleNamespace(
+        edges=np.linspace(-4 * sd, 4 * sd, 41),
+        counts=np.histogram(resid, np.linspace(-4 * sd, 4 * sd, 41))[0],
+        below=0,
+        above=40,
+        quantiles=q,
+        fine_edges=fine_edges,
+        fine_counts=fine,
+    )
+    view = histogram_view(hist, bars=36)
+    assert view.is_robust and view.counts.size <= 36
+    assert view.below == int(np.sum(resid < view.edges[0]))
+    assert view.above == int(np.sum(resid >= view.edges[-1]))
+    assert view.counts.sum() + view.below + view.above == resid.size
+    # the body: the window is about ±4 robust SDs (IQR/1.349 is about 10 here), not ±4 SD
+    robust_sd = (q[0.75] - q[0.25]) / 1.349
+    fine_bin = fine_edges[1] - fine_edges[0]  # edges fall on the fine grid
+    assert view.edges[-1] - view.edges[0] == pytest.approx(8 * robust_sd, abs=2 * fine_bin)
+    assert view.edges[-1] - view.edges[0] < 0.5 * 8 * sd

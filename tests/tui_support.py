@@ -6,8 +6,8 @@ a condition on the screen met), never a fixed number of event-loop rounds or a t
 `HANG_S` only turns a hang into a failure that names what was awaited.
 
 Snapshots are the screen as plain text (one line per terminal row), stored under
-`tests/snapshots/`. Regenerate them only after reading the diff, with
-`TRIAGE_UPDATE_SNAPSHOTS=1 pytest tests/test_tui_snapshots.py`.
+`tests/snapshots/`. `TRIAGE_UPDATE_SNAPSHOTS=1 pytest tests/test_tui_snapshots.py` rewrites
+each one that changed and fails showing the difference; read it, rerun, and commit saying why.
 """
 
 from __future__ import annotations
@@ -174,19 +174,26 @@ def screen_text(app: TriageApp, *, replace: dict[str, str] | None = None) -> str
 
 
 def assert_snapshot(text: str, name: str) -> None:
-    """Compare `text` with the stored snapshot `name`, or store it when asked to update."""
+    """Compare `text` with the stored snapshot `name`; with `UPDATE_ENV` set, also rewrite it.
+
+    An update is never a silent pass: a snapshot that changes (or is new) is written and the
+    test fails with the difference, so the change is read before it is committed; the next
+    run, updating or not, passes.
+    """
     path = SNAPSHOT_DIR / f"{name}.txt"
-    if os.environ.get(UPDATE_ENV) == "1":
+    updating = os.environ.get(UPDATE_ENV) == "1"
+    expected = path.read_text(encoding="utf-8").removesuffix("\n") if path.exists() else None
+    if text == expected:
+        return
+    if updating:
         SNAPSHOT_DIR.mkdir(parents=True, exist_ok=True)
         path.write_text(text + "\n", encoding="utf-8")
-        return
-    if not path.exists():
-        pytest.fail(f"no snapshot {path.name}; run with {UPDATE_ENV}=1 after checking the screen")
-    expected = path.read_text(encoding="utf-8").removesuffix("\n")
-    if text != expected:
-        diff = "\n".join(
-            difflib.unified_diff(
-                expected.splitlines(), text.splitlines(), "stored", "now", lineterm=""
-            )
-        )
-        pytest.fail(f"screen differs from snapshot {path.name}:\n{diff}")
+    if expected is None:
+        done = "written" if updating else f"missing; run with {UPDATE_ENV}=1 to write it"
+        pytest.fail(f"snapshot {path.name} {done}; the screen:\n{text}")
+    diff = "\n".join(
+        difflib.unified_diff(expected.splitlines(), text.splitlines(), "stored", "now", lineterm="")
+    )
+    done = "rewritten; read the difference and" if updating else "differs; if intended, rerun with"
+    hint = "commit it saying why" if updating else f"{UPDATE_ENV}=1 and read the difference"
+    pytest.fail(f"snapshot {path.name} {done} {hint}:\n{diff}")

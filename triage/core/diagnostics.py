@@ -356,6 +356,8 @@ class DiagnosticsAccumulator:
                     strict=True,
                 )
             ),
+            fine_edges=self.config.fine_edges,
+            fine_counts=self._fine.copy(),
         )
 
     def _robust_se(self) -> dict[str, RobustStdErrors]:

@@ -1,7 +1,9 @@
 """Tail probabilities and quantiles of the reference distributions, in numpy and `math`.
 
-scipy would give the same numbers, but even `scipy.special` took about 0.5 s to import on
-these machines, a third of the start-up budget. The published methods used here:
+scipy would give the same numbers, but importing `scipy.special` costs about 0.17 s of CPU
+on top of numpy and polars (process time, 0.16-0.18 s over five runs with numpy 2.4.6,
+polars and scipy 1.17.1 already on disk; wall time was several times that on a loaded
+machine), and a command needs only a few tail probabilities. The published methods used here:
 
 - Regularized incomplete beta I_x(a, b) (t and F tails): the continued fraction
   (Numerical Recipes 6.4) evaluated by the modified Lentz method, on the side of the mean

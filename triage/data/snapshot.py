@@ -2,7 +2,7 @@
 
 A file replaced, truncated, appended to or rewritten while a pass reads it would mix old and
 new rows, or end a pass early without a word (pyarrow stops at a truncated row group). Every
-source records each file's size, modification time and identity (device and inode) when it
+source records each file's size, modification time and identity (inode) when it
 is opened, and checks a file again as it opens it for reading and once more when a scan
 ends, together with the row count its metadata promised. A change raises `SourceChanged`.
 """
@@ -21,11 +21,14 @@ from triage.errors import SourceChanged
 
 @dataclass(frozen=True)
 class FileStamp:
-    """What one file looked like: size, modification time and identity."""
+    """What one file looked like: size, modification time and identity (inode).
+
+    The device number is left out: a cluster worker sees a shared file system under a
+    device number of its own, while size, time and inode come from the file itself.
+    """
 
     size: int
     mtime_ns: int
-    device: int
     inode: int
 
     @classmethod
@@ -35,7 +38,7 @@ class FileStamp:
             info = os.stat(path)
         except FileNotFoundError:
             return None
-        return cls(info.st_size, info.st_mtime_ns, info.st_dev, info.st_ino)
+        return cls(info.st_size, info.st_mtime_ns, info.st_ino)
 
 
 def changed_message(path: Path, *, how: str = "changed") -> str:

@@ -45,14 +45,18 @@ DIAGNOSTIC_COLUMNS: tuple[str, ...] = (
 
 
 def diagnostics_frame(diagnostics: RowDiagnostics, *, prefix: str = "") -> pl.DataFrame:
-    """Turn per-row diagnostics into a frame with the `DIAGNOSTIC_COLUMNS` (optionally prefixed)."""
+    """Turn per-row diagnostics into a frame with the `DIAGNOSTIC_COLUMNS` (optionally prefixed).
+
+    Cook's distance is left empty (null) for a row outside the fit: it measures the pull of
+    a row on a fit it is part of, so it has no value there.
+    """
     values = {
         "row": diagnostics.rows,
         "fitted": diagnostics.fitted,
         "resid": diagnostics.resid,
         "studentized": diagnostics.studentized,
         "leverage": diagnostics.leverage,
-        "cooks": diagnostics.cooks,
+        "cooks": pl.Series(diagnostics.cooks).scatter(np.flatnonzero(~diagnostics.in_fit), None),
     }
     return pl.DataFrame({prefix + name: values[name] for name in DIAGNOSTIC_COLUMNS})
 

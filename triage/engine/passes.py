@@ -627,10 +627,39 @@ def _design_quietly(builder: DesignBuilder, frame: pl.DataFrame) -> dict[str, np
     return {**design, builder.spec.target_label: batch.y}
 
 
-def check_rows_left(counts: RowCounts, spec: ModelSpec) -> None:
-    """Raise `DataError`, saying why, when a pass left no rows to fit."""
+def check_rows_left(
+    counts: RowCounts, spec: ModelSpec, rows_read: pl.DataFrame | None = None
+) -> None:
+    """Raise `DataError`, saying why, when a pass left no rows to fit.
+
+    `rows_read` (the sample, when there is one) lets the message name a model column
+    that has no value in any of those rows.
+    """
     if counts.used > 0:
         return
+    if counts.read == 0:
+        msg = (
+            f"the data has no rows, so there is nothing to fit `{spec.target_label}` on; "
+            "check the file (or the folder's files)"
+        )
+        raise DataError(msg)
+    looked_at = rows_read if rows_read is not None else pl.DataFrame()
+    empty = []
+    if counts.missing and looked_at.height:
+        empty = [c for c in spec.model_columns() if looked_at[c].null_count() == looked_at.height]
+    if empty and counts.missing == counts.kept_by_filter - counts.excluded:
+        named = ", ".join(f"`{c}`" for c in empty)
+        where = (
+            f"is missing ({counts.read:,} rows)"
+            if looked_at.height >= counts.kept_by_filter
+            else f"is missing in the {looked_at.height:,} rows sampled, and every row read "
+            "lacks a model value"
+        )
+        msg = (
+            f"every value of {named} {where}; choose another column or check the file "
+            "(`--null-value` sets the texts read as missing)"
+        )
+        raise DataError(msg)
     reasons = []
     if counts.read > counts.kept_by_filter:
         reasons.append(f"{counts.read - counts.kept_by_filter:,} by the filter `{spec.where}`")
@@ -789,7 +818,7 @@ def _finalize_fit(
 ) -> LinearFit:
     """Check the rows left and solve; raises `UncertifiedGram` when codes cannot be factored."""
     spec = plan.spec
-    check_rows_left(counts, spec)
+    check_rows_left(counts, spec, plan.learning_frame)
     n_coefficients = len(builder.column_names)
     if counts.used < n_coefficients:
         msg = (

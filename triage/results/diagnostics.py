@@ -107,6 +107,11 @@ class ResidualHistogram:
     quantiles: dict[float, float]
     """Probability -> quantile from the fine grid, within one fine bin of the exact value
     inside ±8 SD (rough beyond: see `triage.core.binning`)."""
+    fine_edges: FloatArray
+    """Edges of the fine grid (±8 SD in 400 bins)."""
+    fine_counts: IntArray
+    """Residuals per fine bin, with the rows below and above the grid first and last
+    (``fine_edges.size + 1`` cells); a chart re-bins them on a robust scale."""
 
 
 @dataclass(frozen=True)

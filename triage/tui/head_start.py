@@ -11,6 +11,7 @@ load inside the head start's thread.
 
 from __future__ import annotations
 
+import functools
 import gc
 import threading
 from collections.abc import Callable, Mapping, Sequence
@@ -224,7 +225,10 @@ class HeadStart:
             return None
         schema = opened.source.schema()
         draft = draft.with_terms_text(self.settings.terms) if self.settings.terms else draft
-        spec = draft.to_spec(schema, self.settings)
+        from triage.data.text_columns import text_column_facts
+
+        check = functools.partial(text_column_facts, opened.source)
+        spec = draft.to_spec(schema, self.settings, check)
         return _SampleFit(spec, segment_columns(schema, opened.profile))
 
     def take_opened(self, path: str) -> OpenedData | None:

@@ -9,7 +9,7 @@ from typing import TYPE_CHECKING, Final
 if TYPE_CHECKING:
     import polars as pl
 
-    from triage.core.spec import ModelSpec, Term
+    from triage.core.spec import ModelSpec, Term, TextColumnCheck
     from triage.results.compare import Comparison
     from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
     from triage.tui.settings import Settings
@@ -116,8 +116,16 @@ class ModelDraft:
         target, terms = parse_terms(text)
         return replace(self, target=self.target if target is None else target, terms=terms)
 
-    def to_spec(self, schema: Mapping[str, pl.DataType], settings: Settings) -> ModelSpec:
+    def to_spec(
+        self,
+        schema: Mapping[str, pl.DataType],
+        settings: Settings,
+        check_text: TextColumnCheck | None = None,
+    ) -> ModelSpec:
         """Check the draft against the columns, with the session's reference levels and limits.
+
+        `check_text` reads a text column to tell numbers with a stray value from real text
+        (see `build_spec`).
 
         Raises
         ------
@@ -136,7 +144,9 @@ class ModelDraft:
             categorical=self.categorical,
             reference=settings.reference,
             max_levels=settings.max_levels,
+            max_memory=settings.max_memory,
             drop_invalid=settings.drop_invalid,
+            check_text=check_text,
         )
 
 

@@ -38,6 +38,8 @@ class Settings:
     """Reference level per categorical column (default: the most frequent level)."""
     max_levels: int = 50
     """Cap on the levels of a categorical column."""
+    max_memory: int | None = None
+    """Most bytes a design may take; None for the default share of the machine's memory."""
     drop_invalid: bool = False
     """Leave out rows outside a transform's domain instead of stopping."""
     csv: CsvOptions | None = None
@@ -60,5 +62,8 @@ class Settings:
     """Rows kept per worst-row list."""
     is_ordered: bool = False
     """Row order means something (time order): judge serial correlation and trends."""
+    scheduler: str | None = None
+    """Address of the Dask scheduler that runs passes over every row (`--engine dask`); None
+    runs them in this process. Sample fits always run here."""
     is_colorless: bool = field(default_factory=lambda: bool(os.environ.get("NO_COLOR")))
     """Draw without colour (set when the `NO_COLOR` environment variable is non-empty)."""

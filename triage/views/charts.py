@@ -12,6 +12,7 @@ from __future__ import annotations
 import math
 import threading
 from collections.abc import Callable, Sequence
+from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Final
 
 import numpy as np
@@ -103,14 +104,84 @@ def _tick_count(width: int) -> int:
     return max(2, min(9, width // 14))
 
 
+ROBUST_HALF_WIDTH: Final = 4.0
+"""The residual histogram spans the median ± this many robust SDs (IQR / 1.349)."""
+
+_NORMAL_IQR: Final = 1.349
+"""Interquartile range of a standard normal: IQR / 1.349 estimates the SD of normal errors."""
+
+
+@dataclass(frozen=True)
+class HistogramView:
+    """The bars a residual histogram draws and the rows beyond them."""
+
+    edges: NDArray[np.float64]
+    """Bar edges (k + 1 increasing values)."""
+    counts: NDArray[np.float64]
+    """Rows per bar (k)."""
+    below: int
+    """Rows below the first edge."""
+    above: int
+    """Rows above the last edge."""
+    is_robust: bool
+    """True when the bars span the median ± `ROBUST_HALF_WIDTH` robust SDs."""
+
+
+def histogram_view(histogram: Any, bars: int) -> HistogramView:
+    """Choose what the residual histogram shows: the body of the residuals on a robust scale.
+
+    A few huge residuals inflate the SD, so bars spanning ±4 SD squeeze the body of the
+    residuals into a few columns. The bars span the median ± 4 × IQR / 1.349 instead (the
+    IQR-based SD of normal errors), re-binned from the diagnostics pass's fine grid, and
+    the rows beyond are counted. When the fine grid is too coarse for that window (fewer
+    than 8 of its bins inside), the pass's own ±4 SD bins are shown.
+
+    Parameters
+    ----------
+    histogram : ResidualHistogram
+        From the diagnostics pass (quantiles, fine grid and counts).
+    bars : int
+        The most bars wanted (about half the chart width).
+
+    Returns
+    -------
+    HistogramView
+    """
+    coarse = HistogramView(
+        np.asarray(histogram.edges, dtype=np.float64),
+        np.asarray(histogram.counts, dtype=np.float64),
+        int(histogram.below),
+        int(histogram.above),
+        is_robust=False,
+    )
+    fine_edges = np.asarray(histogram.fine_edges, dtype=np.float64)
+    fine = np.asarray(histogram.fine_counts, dtype=np.float64)
+    q25, q50, q75 = (histogram.quantiles.get(q, math.nan) for q in (0.25, 0.5, 0.75))
+    scale = (q75 - q25) / _NORMAL_IQR
+    if fine_edges.size < 2 or not (math.isfinite(scale) and scale > 0 and math.isfinite(q50)):
+        return coarse
+    centers = (fine_edges[:-1] + fine_edges[1:]) / 2.0
+    lo, hi = q50 - ROBUST_HALF_WIDTH * scale, q50 + ROBUST_HALF_WIDTH * scale
+    inside = np.flatnonzero((centers >= lo) & (centers <= hi))
+    if inside.size < 8:
+        return coarse
+    cells = fine[1:-1]
+    group = max(1, math.ceil(inside.size / max(bars, 1)))
+    starts = inside[::group]
+    counts = np.add.reduceat(cells[inside[0] : inside[-1] + 1], starts - inside[0])
+    edges = np.append(fine_edges[starts], fine_edges[inside[-1] + 1])
+    below = int(fine[0] + cells[: inside[0]].sum())
+    above = int(fine[-1] + cells[inside[-1] + 1 :].sum())
+    return HistogramView(edges, counts.astype(np.float64), below, above, is_robust=True)
+
+
 def render_histogram(histogram: Any, width: int, height: int, *, color: bool) -> str:
-    """Draw the residual histogram with the counts beyond its outer edges noted below.
+    """Draw the residual histogram on a robust scale, with the rows beyond it counted below.
 
     Parameters
     ----------
     histogram : object
-        A residual histogram from the diagnostics pass with ``edges`` (k + 1 increasing
-        values), ``counts`` (k), ``below`` and ``above`` (rows outside the edges).
+        A residual histogram from the diagnostics pass (see `histogram_view`).
     width, height : int
         Size of the chart in terminal cells (about 76x14 in an 80x24 terminal).
     color : bool
@@ -125,20 +196,20 @@ def render_histogram(histogram: Any, width: int, height: int, *, color: bool) ->
     --------
     render_binned : mean residual per bin of fitted value or predictor.
     """
-    edges = np.asarray(histogram.edges, dtype=np.float64)
-    counts = np.asarray(histogram.counts, dtype=np.float64)
-    below = int(histogram.below)
-    above = int(histogram.above)
     if width < _MIN_WIDTH or height < _MIN_HEIGHT:
         return _note("residual histogram: enlarge to see", width, height)
+    view = histogram_view(histogram, max(10, (width - 8) // 2))
+    edges, counts, below, above = view.edges, view.counts, view.below, view.above
     if counts.size == 0 or (counts.sum() == 0 and below + above == 0):
         return _note("no residuals to draw", width, height)
     centers = (edges[:-1] + edges[1:]) / 2.0
     tail_note = (
-        f"{format_count(below)} rows below {format_number(edges[0], digits=3, trim=True)}, "
-        f"{format_count(above)} above {format_number(edges[-1], digits=3, trim=True)}"
+        f"{_rows(below)} below {format_number(edges[0], digits=3, trim=True)}, "
+        f"{_rows(above)} above {format_number(edges[-1], digits=3, trim=True)}"
     )
     total = int(counts.sum()) + below + above
+    scale = "median ± 4 robust SD (IQR/1.349)" if view.is_robust else "± 4 SD"
+    bar_width = float(edges[1] - edges[0]) if edges.size > 1 else 1.0
 
     def steps() -> None:
         plt.bar(
@@ -148,8 +219,8 @@ def render_histogram(histogram: Any, width: int, height: int, *, color: bool) ->
             marker="sd",
             color=_BAR_COLOR if color else None,
         )
-        plt.title(f"residuals: {format_count(total)} rows by size of residual")
-        plt.xlabel(tail_note)
+        plt.title(f"residuals of {format_count(total)} rows, {scale}")
+        plt.xlabel(f"{tail_note}; bars {format_number(bar_width, digits=2, trim=True)} wide")
         ticks, labels = _ticks(float(edges[0]), float(edges[-1]), _tick_count(width))
         plt.xticks(ticks, labels)
         top = float(counts.max())
@@ -157,6 +228,11 @@ def render_histogram(histogram: Any, width: int, height: int, *, color: bool) ->
         plt.yticks(y_ticks, [format_count(y) for y in y_ticks] if top >= 10 else y_labels)
 
     return _draw(steps, width, height, color=color)
+
+
+def _rows(count: int) -> str:
+    """``1 row``, ``2 rows``."""
+    return f"{format_count(count)} row{'' if count == 1 else 's'}"
 
 
 def _position(x_mean: float, lo: float, hi: float) -> float:

@@ -9,9 +9,8 @@ from __future__ import annotations
 import textwrap
 from typing import TYPE_CHECKING, Any, Final
 
-from triage.views.format import NA, format_count, format_number, format_p
+from triage.views.format import NA, Align, format_count, format_number, format_p
 from triage.views.text import (
-    Align,
     criterion_text,
     join_sections,
     render_data_summary,

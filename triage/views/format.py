@@ -7,15 +7,19 @@ agree on how a value looks and on the mark for "not available".
 from __future__ import annotations
 
 import math
-from typing import Final
+from typing import Final, Literal
 
 import numpy as np
+from rich.cells import cell_len
 
 NA: Final = "—"
 """Shown in place of a value that is not available (None, NaN)."""
 
 ELLIPSIS: Final = "…"
 """Marks a name cut to fit its column."""
+
+Align = Literal["<", ">"]
+"""Left or right alignment of a column."""
 
 P_FLOOR: Final = 1e-300
 """p-values below this (including an exact 0 from underflow) print as ``<1e-300``."""
@@ -138,26 +142,74 @@ def format_p(value: object) -> str:
     return format_number(number, digits=2)
 
 
+def cell_width(text: str) -> int:
+    """Return the terminal cells ``text`` takes: 2 for a CJK character or most emoji, 1 for most.
+
+    Widths are rich's (`rich.cells.cell_len`, the table Textual draws with), so text laid out
+    here lines up with what the app draws.
+
+    Examples
+    --------
+    >>> cell_width("minutes"), cell_width("配達時間"), cell_width("🚚")
+    (7, 8, 2)
+    """
+    return cell_len(text)
+
+
 def truncate(text: str, width: int) -> str:
-    """Cut ``text`` to at most ``width`` characters, ending in an ellipsis when cut.
+    """Cut ``text`` to at most ``width`` terminal cells, ending in an ellipsis when cut.
 
     Parameters
     ----------
     text : str
         A name or label.
     width : int
-        The room available; 0 or less gives an empty string.
+        The room available, in cells; 0 or less gives an empty string.
 
     Returns
     -------
     str
-        ``text`` unchanged if it fits, else its start followed by :data:`ELLIPSIS`.
+        ``text`` unchanged if it fits, else its start followed by :data:`ELLIPSIS`; one cell
+        short of ``width`` when a wide character would have straddled the cut.
+
+    Examples
+    --------
+    >>> truncate("配達時間", 6), truncate("distance_km", 6)
+    ('配達…', 'dista…')
     """
+    if cell_len(text) <= width:
+        return text  # also text of zero-width characters only, at width 0
     if width <= 0:
         return ""
-    if len(text) <= width:
-        return text
-    return text[: width - 1] + ELLIPSIS
+    kept, used = [], 0
+    for char in text:
+        used += cell_len(char)
+        if used > width - 1:
+            break
+        kept.append(char)
+    return "".join(kept) + ELLIPSIS
+
+
+def fit_cell(text: str, width: int, align: Align = "<") -> str:
+    """Cut ``text`` to ``width`` terminal cells and pad it with spaces to exactly that many.
+
+    Parameters
+    ----------
+    text : str
+        A cell's text.
+    width : int
+        The column's width in cells.
+    align : {"<", ">"}, default="<"
+        Left (pad on the right) or right alignment.
+
+    Examples
+    --------
+    >>> fit_cell("配達", 6) + "|", fit_cell("7", 3, ">") + "|"
+    ('配達  |', '  7|')
+    """
+    cut = truncate(text, width)
+    padding = " " * (width - cell_len(cut))
+    return cut + padding if align == "<" else padding + cut
 
 
 def amount_decimals(scale: object, *, significant: int = 3) -> int:

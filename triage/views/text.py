@@ -10,13 +10,16 @@ from __future__ import annotations
 import math
 import textwrap
 from collections.abc import Mapping, Sequence
-from typing import TYPE_CHECKING, Any, Final, Literal
+from typing import TYPE_CHECKING, Any, Final
 
 from triage._typing import CRITERIA
 from triage.views.format import (
     NA,
+    Align,
     amount_decimals,
     as_float,
+    cell_width,
+    fit_cell,
     format_count,
     format_fixed,
     format_number,
@@ -31,8 +34,6 @@ if TYPE_CHECKING:
     from triage.core.spec import ModelSpec
     from triage.results.diagnostics import Diagnostics, Flag
     from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
-
-Align = Literal["<", ">"]
 
 _LABEL_WIDTH: Final = 28
 """Width of the label column in label/value blocks."""
@@ -70,7 +71,7 @@ def rule(title: str, width: int = 100) -> str:
         The rule.
     """
     head = f"── {truncate(title, max(width - 4, 1))} "
-    return head + "─" * max(width - len(head), 2)
+    return head + "─" * max(width - cell_width(head), 2)
 
 
 def _pairs(pairs: Sequence[tuple[str, str]], width: int, label_width: int | None = None) -> str:
@@ -80,11 +81,11 @@ def _pairs(pairs: Sequence[tuple[str, str]], width: int, label_width: int | None
     `label_width` fixes the label column (several blocks then line up).
     """
     if label_width is None:
-        label_width = min(_LABEL_WIDTH, max((len(label) for label, _ in pairs), default=0))
+        label_width = min(_LABEL_WIDTH, max((cell_width(label) for label, _ in pairs), default=0))
     indent = " " * (label_width + len(_GAP))
     lines = []
     for label, value in pairs:
-        head = f"{truncate(label, label_width):<{label_width}}{_GAP}"
+        head = fit_cell(label, label_width) + _GAP
         wrapped = textwrap.wrap(value, width=max(width - len(indent), 10)) or [""]
         lines.append(truncate(head + wrapped[0], width))
         lines += [truncate(indent + more, width) for more in wrapped[1:]]
@@ -126,7 +127,9 @@ def table(
     str
         The header, a thin rule and the rows (and any further blocks after a blank line).
     """
-    widths = [max([len(h)] + [len(r[i]) for r in rows]) for i, h in enumerate(headers)]
+    widths = [
+        max([cell_width(h)] + [cell_width(r[i]) for r in rows]) for i, h in enumerate(headers)
+    ]
     total = sum(widths) + len(_GAP) * (len(widths) - 1)
     if shrink == 0 and total > width and len(widths) > 2:
         used = widths[0] + len(_GAP) + widths[1]
@@ -144,10 +147,10 @@ def table(
         )
         return f"{first}\n\n{second}"
     others = sum(widths) - widths[shrink] + len(_GAP) * (len(widths) - 1)
-    widths[shrink] = max(min(widths[shrink], width - others), min(len(headers[shrink]), 8))
+    widths[shrink] = max(min(widths[shrink], width - others), min(cell_width(headers[shrink]), 8))
 
     def line(cells: Sequence[str]) -> str:
-        parts = [f"{truncate(c, w):{a}{w}}" for c, w, a in zip(cells, widths, align, strict=True)]
+        parts = [fit_cell(c, w, a) for c, w, a in zip(cells, widths, align, strict=True)]
         return _GAP.join(parts).rstrip()
 
     out = [line(headers), _GAP.join("╌" * w for w in widths)]

@@ -8,6 +8,7 @@ from typing import Any
 
 from triage._typing import ALL_ROWS
 from triage.cli.options import (
+    add_engine_options,
     add_model_options,
     add_row_options,
     add_source_options,
@@ -29,6 +30,7 @@ def register(subparsers: Any) -> None:
     add_source_options(parser)
     add_model_options(parser)
     add_row_options(parser)
+    add_engine_options(parser)
     keys = parser.add_argument_group("keys")
     keys.add_argument(
         "--keyset",
@@ -65,6 +67,7 @@ def settings_from_args(args: argparse.Namespace) -> Any:
         categorical_columns,
         csv_options_from_args,
         parse_reference,
+        scheduler_address,
     )
     from triage.tui.settings import Settings
 
@@ -78,6 +81,7 @@ def settings_from_args(args: argparse.Namespace) -> Any:
         intercept=not args.no_intercept,
         reference=parse_reference(args.reference),
         max_levels=args.max_levels,
+        max_memory=args.max_memory,
         drop_invalid=args.drop_invalid,
         csv=csv_options_from_args(args),
         sample_rows=DEFAULT_SAMPLE_ROWS if args.rows is ALL_ROWS else args.rows,
@@ -88,6 +92,7 @@ def settings_from_args(args: argparse.Namespace) -> Any:
         keymap_file=args.keymap,
         top_k=args.top,
         is_ordered=args.ordered,
+        scheduler=scheduler_address(args.engine, args.scheduler),
     )
 
 

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING, Any, ClassVar
+from typing import TYPE_CHECKING, Any, ClassVar, Final
 
 from rich.text import Text
 from textual.app import ComposeResult
@@ -31,20 +31,28 @@ def help_rows(app: App[Any], bindings: dict[str, ActiveBinding]) -> list[tuple[s
     Returns
     -------
     list of tuple of str
-        One row per action, keys joined with ` / `: the app's keys, then the screen's, then
-        those of the focused widget (table cursor keys and the like).
+        One row per action, keys joined with ` / `: the app's keys, then the screen's, in
+        triage's words; the framework's own entries (focus, copy, the table cursor keys)
+        are described once in `MOVING`, not listed under the framework's names.
     """
+    from textual.app import App
+    from textual.binding import Binding
     from textual.screen import Screen
 
+    framework = {
+        (b.action, b.description) for b in Binding.make_bindings([*App.BINDINGS, *Screen.BINDINGS])
+    }
+
     def rank(active: ActiveBinding) -> int:
-        node = active.node
-        return 0 if node is app else 1 if isinstance(node, Screen) else 2
+        return 0 if active.node is app else 1
 
     rows: dict[tuple[str, str], list[str]] = {}
     tips: dict[tuple[str, str], str] = {}
-    for active in sorted(bindings.values(), key=rank):
+    ours = [a for a in bindings.values() if a.node is app or isinstance(a.node, Screen)]
+    for active in sorted(ours, key=rank):
         binding = active.binding
-        if not binding.description or binding.system:
+        framework_entry = (binding.action, binding.description) in framework
+        if not binding.description or binding.system or framework_entry:
             continue
         key = (binding.action, binding.description)
         rows.setdefault(key, [])
@@ -52,7 +60,26 @@ def help_rows(app: App[Any], bindings: dict[str, ActiveBinding]) -> list[tuple[s
         if shown not in rows[key]:
             rows[key].append(shown)
         tips[key] = binding.tooltip
-    return [(" / ".join(keys), desc, tips[(action, desc)]) for (action, desc), keys in rows.items()]
+    listed = [
+        (" / ".join(keys), desc, tips[(action, desc)]) for (action, desc), keys in rows.items()
+    ]
+    return [*listed, *MOVING]
+
+
+MOVING: Final[tuple[tuple[str, str, str], ...]] = (
+    ("arrows", "move", "Move the cursor in a table, or scroll a pane's text."),
+    ("pgup / pgdn", "page", "Move or scroll a page at a time; home and end go to the ends."),
+    ("tab / ⇧tab", "next / previous box", "Move between the panes shown together."),
+    ("enter", "choose", "Open the row or fit under the cursor."),
+)
+"""Keys the framework handles for us, in our words (they are not in the keymap)."""
+
+FIGURES: Final = (
+    "AIC and BIC count the estimated coefficients, the intercept included (not the error "
+    "variance); compare them only between fits on the same rows. R² never falls when a "
+    "term is added, so it marks no best fit."
+)
+"""A note on the figures, shown under the keys."""
 
 
 class HelpScreen(ModalScreen[None]):
@@ -82,6 +109,7 @@ class HelpScreen(ModalScreen[None]):
             if tooltip:
                 text.append(f"  {tooltip}", style="dim")
             text.append("\n")
+        text.append("\n" + FIGURES, style="dim")
         return text
 
     def on_mount(self) -> None:

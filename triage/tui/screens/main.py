@@ -60,8 +60,9 @@ from triage.tui.widgets.status import KeyFooter, ModelLine, PaneStrip, PassLine
 
 if TYPE_CHECKING:
     from triage._typing import Criterion
-    from triage.core.spec import ModelSpec
+    from triage.core.spec import ModelSpec, TextColumnFacts
     from triage.data.source import Source
+    from triage.engine.cluster import ClusterEngine
     from triage.results.fit import DataSummary, FitOutcome
     from triage.results.progress import PassProgress
     from triage.tui.settings import Settings
@@ -352,8 +353,12 @@ class MainScreen(Screen[None]):
         """A source already opened (when another file replaces the session's), else None."""
         self.head_start = head_start
         """Work begun before the app started (the data opened, the given model fitted)."""
+        self.cluster: ClusterEngine | None = None
+        """The Dask cluster that runs passes over every row, once one has (`Settings.scheduler`)."""
         self.source: Source | None = None
         """The open data source."""
+        self._text_facts: dict[str, TextColumnFacts] = {}
+        """What a read of each text column used as a number found (read once per source)."""
         self.draft = draft_from_settings(settings)
         """The model as being built."""
         self.fits: list[SessionFit] = []
@@ -615,6 +620,7 @@ class MainScreen(Screen[None]):
             self.app.switch_screen(MainScreen(fresh, opened=message))
             return
         self.source = message.source
+        self._text_facts = {}
         self.segment_columns = segment_columns(message.source.schema(), message.profile)
         columns = self.query_one(ColumnsPane)
         columns.profile = message.profile
@@ -647,6 +653,7 @@ class MainScreen(Screen[None]):
         """
         if draft.target is not None and self._spec(draft) is None:
             return
+        self.is_opening_on_fit = False  # the user builds the model: the Columns pane stays
         self.draft = draft
         self.typed_terms = None
         self.query_one(ColumnsPane).draft = draft
@@ -752,12 +759,23 @@ class MainScreen(Screen[None]):
     # ----------------------------------------------------------------------------------------
     # passes
 
+    def _text_column_facts(self, column: str) -> TextColumnFacts:
+        """Read a text column of the source once, to tell numbers with a stray value from text."""
+        from triage.data.text_columns import text_column_facts
+
+        assert self.source is not None  # asked only while a source is open
+        if column not in self._text_facts:
+            self._text_facts[column] = text_column_facts(self.source, column)
+        return self._text_facts[column]
+
     def _spec(self, draft: ModelDraft | None = None) -> ModelSpec | None:
         """Check a draft (the current one by default) against the data; say what is wrong."""
         if self.source is None:
             return None
         try:
-            return (draft or self.draft).to_spec(self.source.schema(), self.settings)
+            return (draft or self.draft).to_spec(
+                self.source.schema(), self.settings, self._text_column_facts
+            )
         except TriageError as error:
             self.show_error(str(error), title="the model cannot be fitted")
             return None
@@ -875,6 +893,7 @@ class MainScreen(Screen[None]):
             report = early or run_report(
                 self.source,
                 job.spec,
+                engine=self._cluster_engine() if rows is ALL_ROWS else None,
                 rows=rows,
                 seed=self.settings.seed,
                 sampling=self.settings.sampling,
@@ -895,6 +914,21 @@ class MainScreen(Screen[None]):
                 self.post_message(PassStopped(job.pass_id))
             else:
                 self.post_message(PassFinished(job.pass_id, report, job.excluded, job.baseline))
+
+    def _cluster_engine(self) -> ClusterEngine | None:
+        """Return the cluster engine of `Settings.scheduler` (it connects on its first pass)."""
+        if self.settings.scheduler is None:
+            return None
+        if self.cluster is None:
+            from triage.engine.cluster import ClusterEngine
+
+            self.cluster = ClusterEngine(self.settings.scheduler)
+        return self.cluster
+
+    def on_unmount(self) -> None:
+        """Close the connection to the cluster, if a pass opened one (the cluster runs on)."""
+        if self.cluster is not None:
+            self.cluster.close()
 
     @work(thread=True, exclusive=True, group="sample-fit", exit_on_error=False)
     def run_sample_fit(self, job: PassJob) -> None:
@@ -964,6 +998,7 @@ class MainScreen(Screen[None]):
 
     def on_pass_failed(self, message: PassFailed) -> None:
         """Show why a pass (or opening the data) failed."""
+        self.is_opening_on_fit = False
         self._end_pass(message.pass_id)
         self._end_full_pass(message.pass_id)
         self.report_error(message.message, title=message.title, is_background=message.pass_id != 0)

@@ -84,7 +84,9 @@ class ModelLine(Widget):
         room = self.size.width - cell_len(head) - cell_len(tail)
         formula = label.formula
         if cell_len(formula) > room:
-            formula = formula[: max(room - 1, 8)] + "…"
+            from triage.views.format import truncate
+
+            formula = truncate(formula, max(room, 9))
         text = Text(head, style="bold", no_wrap=True, overflow="ellipsis")
         text.append(formula + tail)
         return text
@@ -160,7 +162,11 @@ class PassLine(Widget):
         """Draw the basis, and the progress of the running pass on a second line."""
         marks = f"  [{self.marks:,} marked]"
         room = max(self.size.width - cell_len(marks), 10)
-        basis = self.basis if cell_len(self.basis) <= room else self.basis[: room - 1] + "…"
+        basis = self.basis
+        if cell_len(basis) > room:
+            from triage.views.format import truncate
+
+            basis = truncate(basis, room)
         text = Text(basis, no_wrap=True, overflow="ellipsis")
         text.append(marks, style="bold" if self.marks else "")
         if self.progress is not None:
