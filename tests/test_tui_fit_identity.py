@@ -466,3 +466,31 @@ async def test_a_failure_in_the_background_while_the_user_types_is_a_notificatio
         await type_into_prompt(pilot, " > 8")
         assert app.screen is prompt
         assert prompt.query_one("#prompt-input", Input).value == "hour > 8"
+
+
+async def test_a_sample_fit_of_the_same_model_does_not_push_a_full_pass_off_the_screen(
+    config_home: Path, demo_file: Path, gated_source: list[GatedSource]
+) -> None:
+    app = build_app(
+        demo_file, target="minutes", terms="distance_km, stops", sample_rows=SAMPLE_ROWS
+    )
+    async with app.run_test(size=SMALL) as pilot:
+        screen = main_screen(app)
+        await wait_until(pilot, lambda: settled(screen), "the first fit")
+        await press_id(pilot, "start-full-pass")
+        await wait_until(pilot, gated_source[0].batches_started.is_set, "the pass reading")
+        await press_id(pilot, "quick-fit")  # the same model on the sample again
+        await wait_until(
+            pilot,
+            lambda: screen.current is not None and screen.current.number == 2,
+            "the second sample fit",
+        )
+        assert screen.query_one(PassLine).pass_label == "every row"  # still bound for the screen
+        for _ in range(60):
+            gated_source[0].gate.release()
+        await wait_until(pilot, lambda: settled(screen), "the pass's fit on screen")
+        full = screen.current
+        assert full is not None and full.number == 3 and full.is_full_pass
+        assert_screen_names(screen, full)
+        oracle = ols(pl.read_parquet(demo_file), ["distance_km", "stops"])  # statsmodels
+        np.testing.assert_allclose(full.report.outcome.fit.coef, oracle.params, rtol=1e-9)

@@ -172,6 +172,18 @@ def test_table_cuts_a_wide_name_at_a_cell_boundary() -> None:
         assert rule_cells - 1 <= east_asian_cells(line) <= rule_cells
 
 
+def test_chart_note_centres_a_japanese_title_by_cells() -> None:
+    from triage.views.charts import _note
+
+    # Oracle: Unicode East Asian Width (unicodedata); the note sits in the middle line.
+    for width in range(18, 24):
+        lines = _note("配達時間: no rows", width, 3).splitlines()
+        assert [east_asian_cells(line) for line in lines] == [width] * 3
+        left = len(lines[1]) - len(lines[1].lstrip(" "))
+        right = len(lines[1]) - len(lines[1].rstrip(" "))
+        assert lines[1].strip() == "配達時間: no rows" and abs(left - right) <= 1
+
+
 def test_padding_and_cutting_count_cells() -> None:
     # Oracle: Unicode East Asian Width (unicodedata).
     for text in ["配達時間", "🚚 mobile", "distance_km", "北倉庫 depot"]:

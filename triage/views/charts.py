@@ -18,7 +18,7 @@ from typing import TYPE_CHECKING, Any, Final
 import numpy as np
 import plotext as plt
 
-from triage.views.format import format_count, format_number
+from triage.views.format import cell_width, format_count, format_number, truncate
 
 if TYPE_CHECKING:
     from numpy.typing import NDArray
@@ -73,7 +73,10 @@ def _note(message: str, width: int, height: int) -> str:
     width = max(width, 1)
     height = max(height, 1)
     lines = [" " * width] * height
-    lines[(height - 1) // 2] = message[:width].center(width)
+    shown = truncate(message, width)
+    margin = width - cell_width(shown)
+    left = margin // 2 + (margin & width & 1)  # where str.center puts an odd space
+    lines[(height - 1) // 2] = " " * left + shown + " " * (margin - left)
     return "\n".join(lines)
 
 

@@ -817,21 +817,32 @@ class MainScreen(Screen[None]):
             return
         pass_id = next(self._pass_ids)
         job = PassJob(pass_id, spec, excluded, baseline, is_full)
-        sample = self.sample_job
+        # a sample fit and a full pass of one model both take the screen: the sample first
+        other = self.sample_job if is_full else self.running_job
         if (
-            is_full
-            and sample is not None
-            and sample.pass_id in self.screen_passes
-            and (sample.spec, sample.excluded) == (spec, excluded)
+            other is not None
+            and other.pass_id in self.screen_passes
+            and (other.spec, other.excluded) == (spec, excluded)
         ):
-            self.screen_passes = {sample.pass_id, pass_id}  # the sample fit shows first
+            self.screen_passes = {other.pass_id, pass_id}
         else:
             self.screen_passes = {pass_id}
         if is_full:
+            replaced = self.running_job
+            if replaced is not None:
+                from triage.views.text import model_formula
+
+                self.notify(
+                    f"the pass over every row of {model_formula(replaced.spec)} was stopped: "
+                    "a new pass over every row started",
+                    severity="warning",
+                )
             self.running_pass = pass_id
             self.running_job = job
             self.full_pass_worker = self.run_full_pass(job)
-            self.query_one(PassLine).set_class(True, "-running")
+            pass_line = self.query_one(PassLine)
+            pass_line.pass_label = "every row"
+            pass_line.set_class(True, "-running")
             self.notify("reading every row in the background; the sample results stay until done")
         else:
             self.sample_job = job
