@@ -46,7 +46,7 @@ from triage.engine.cluster import ClusterEngine, tree_levels
 from triage.engine.compare import compare_models
 from triage.engine.export import export_all_rows
 from triage.engine.progress import PassProgress
-from triage.errors import PassCancelled
+from triage.errors import ClusterError, PassCancelled
 from triage.tui.screens.main import MainScreen
 from triage.views.json import fit_to_json, report_to_json
 from triage.views.text import render_full_report
@@ -269,6 +269,20 @@ def test_cluster_sample_fit_never_connects(folder: Path, cluster: LocalCluster) 
     with ClusterEngine(cluster.scheduler_address) as engine:
         outcome = passes.fit_model(source, spec, rows=5_000, engine=engine)
         assert outcome.data.sample is not None
+        assert not engine.is_connected
+
+
+def test_cluster_refuses_a_source_that_reads_as_one_stream(
+    folder: Path, tmp_path: Path, cluster: LocalCluster
+) -> None:
+    # A CSV file is one stream: there is nothing to split, and the cluster is not contacted.
+    path = tmp_path / "deliveries.csv"
+    pl.read_parquet(sorted(folder.glob("*.parquet"))[0]).write_csv(path)
+    source = open_source(path)
+    spec = build_spec(source.schema(), target="minutes", terms="distance_km, stops")
+    with ClusterEngine(cluster.scheduler_address) as engine:
+        with pytest.raises(ClusterError, match="splits Parquet files"):
+            passes.fit_model(source, spec, rows=ALL_ROWS, engine=engine)
         assert not engine.is_connected
 
 

@@ -7,6 +7,7 @@ statsmodels OLS (with its HC3 covariance and influence measures) on the same row
 from __future__ import annotations
 
 import gc
+import re
 import threading
 from collections.abc import Callable, Iterator
 from pathlib import Path
@@ -1129,3 +1130,27 @@ async def test_tui_weights_equal_to_the_target_get_a_message(
         if isinstance(app.screen, ErrorScreen):
             shown.append(str(app.screen.message))
         assert any("is also the target" in m for m in shown), shown
+
+
+@pytest.mark.parametrize("keyset", [None, "fkeys"])
+@pytest.mark.parametrize("width", [60, 80])
+async def test_tui_pane_strip_names_each_pane_once_and_footer_keeps_apart(
+    config_home: Path, demo_file: Path, keyset: str | None, width: int
+) -> None:
+    from triage.tui.widgets.panes import PANES
+    from triage.tui.widgets.status import short_key
+
+    app = build_app(demo_file, target="minutes", terms="distance_km", keyset=keyset)
+    async with app.run_test(size=(width, 24)) as pilot:
+        await settle(pilot)
+        strip = tui_support.screen_text(app).split("\n")[0]
+        assert len(strip) <= width
+        keys = [short_key(key_for(app, f"pane-{info.pane_id}")) for info in PANES]
+        pattern = r"\s+".join(rf"{re.escape(k)} (\S+)" for k in keys)
+        found = re.search(pattern, strip)
+        assert found is not None, strip  # every pane's key is on the strip, in order
+        labels = list(found.groups())
+        assert len(labels) == len(set(labels)), labels  # no two keys labelled alike
+        assert all(info.title.startswith(label) for info, label in zip(PANES, labels, strict=True))
+        footer = tui_support.screen_text(app).split("\n")[-1]
+        assert ("commands" in footer) == (width >= 72)

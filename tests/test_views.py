@@ -172,6 +172,18 @@ def test_table_cuts_a_wide_name_at_a_cell_boundary() -> None:
         assert rule_cells - 1 <= east_asian_cells(line) <= rule_cells
 
 
+def test_chart_note_centres_a_japanese_title_by_cells() -> None:
+    from triage.views.charts import _note
+
+    # Oracle: Unicode East Asian Width (unicodedata); the note sits in the middle line.
+    for width in range(18, 24):
+        lines = _note("配達時間: no rows", width, 3).splitlines()
+        assert [east_asian_cells(line) for line in lines] == [width] * 3
+        left = len(lines[1]) - len(lines[1].lstrip(" "))
+        right = len(lines[1]) - len(lines[1].rstrip(" "))
+        assert lines[1].strip() == "配達時間: no rows" and abs(left - right) <= 1
+
+
 def test_padding_and_cutting_count_cells() -> None:
     # Oracle: Unicode East Asian Width (unicodedata).
     for text in ["配達時間", "🚚 mobile", "distance_km", "北倉庫 depot"]:
@@ -742,3 +754,15 @@ def test_histogram_view_spans_the_body_on_a_robust_scale() -> None:
     fine_bin = fine_edges[1] - fine_edges[0]  # edges fall on the fine grid
     assert view.edges[-1] - view.edges[0] == pytest.approx(8 * robust_sd, abs=2 * fine_bin)
     assert view.edges[-1] - view.edges[0] < 0.5 * 8 * sd
+
+
+@pytest.mark.parametrize("width", [40, 60, 76, 80, 120, 200])
+def test_binned_chart_legend_is_never_blank(report: ReportOutcome, width: int) -> None:
+    bins = report.diagnostics.binned["fitted"]
+    text = render_binned(
+        bins, width, 14, title="residual by fitted value", x_label="fitted value", color=False
+    )
+    legend = [line for line in text.split("\n") if "● mean" in line]
+    assert len(legend) == 1 and "10-90%" in legend[0]
+    if width >= 76:  # room to say the bins hold about equal numbers of rows
+        assert "equal" in legend[0]

@@ -9,7 +9,7 @@ sample quantile inside the grid; in a tail cell they interpolate between the tai
 
 from __future__ import annotations
 
-from typing import Final
+from typing import Any, Final
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -108,6 +108,7 @@ class BinLookup:
 
     def __init__(self, edges: FloatArray, *, cells_per_edge: int = 512) -> None:
         self.edges = np.asarray(edges, dtype=np.float64)
+        self.cells_per_edge = cells_per_edge
         cells = min(max(1024, cells_per_edge * self.edges.size), MAX_LOOKUP_CELLS)
         self.low = float(self.edges[0])
         span = float(self.edges[-1]) - self.low
@@ -122,6 +123,14 @@ class BinLookup:
                 table[np.clip(changes + shift, 0, cells - 1)] = _UNCERTAIN
             table[[0, cells - 1]] = _UNCERTAIN  # values clipped into the end cells
             self.table = table
+
+    def __reduce__(self) -> tuple[Any, tuple[FloatArray, int]]:
+        """Pickle the edges only; the table is rebuilt from them.
+
+        A cluster ships accumulators that hold lookups: the tables were 0.7 MB of a report's
+        diagnostics accumulator of 1.4 MB (measured here), their edges a few kilobytes.
+        """
+        return _rebuild_lookup, (self.edges, self.cells_per_edge)
 
     def _edges_at_or_below(self, values: FloatArray) -> tuple[IntArray, IntArray]:
         """Return ``searchsorted(edges, values, "right")`` and where the table was not used."""
@@ -217,3 +226,8 @@ def quantiles_from_counts(
         b = a if upper == lower else _order_statistic(upper, counts, cum, edges, low, high)
         out.append(a + frac * (b - a))
     return tuple(out)
+
+
+def _rebuild_lookup(edges: FloatArray, cells_per_edge: int) -> BinLookup:
+    """Build a `BinLookup` again from what `BinLookup.__reduce__` pickled."""
+    return BinLookup(edges, cells_per_edge=cells_per_edge)

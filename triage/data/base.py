@@ -551,10 +551,10 @@ class BlockSource(abc.ABC):
         """Split the scan into parts that can be read at the same time, in source order.
 
         Each part, called, yields what `scan_batches` would for its rows, with
-        ``rows_read`` counted from the part's start. A source that reads as one stream
-        (or is too small to split) gives one part. Every part pickles, so another process
-        (a cluster worker) can read it; a split part holds only its file, row groups,
-        positions and columns, not the source.
+        ``rows_read`` counted from the part's start. A source that reads as one stream (CSV,
+        Arrow IPC) gives one part that reads through the source; a Parquet source gives
+        self-contained parts (`ParquetPart`: file, row groups, positions and columns, not the
+        source), which another process (a cluster worker) can unpickle and read.
 
         Parameters
         ----------
@@ -573,7 +573,7 @@ class BlockSource(abc.ABC):
         check_count("batch_rows", batch_rows)
         extra = self._filter_only_columns(names, where)
         parts = self._parts(names + extra, where, extra, batch_rows, part_rows)
-        if len(parts) < 2:
+        if not parts:  # one stream, read through the source itself
             return [functools.partial(self.scan_batches, names, where=where, batch_rows=batch_rows)]
         return list(parts)
 

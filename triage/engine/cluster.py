@@ -24,6 +24,7 @@ from dataclasses import dataclass
 from types import TracebackType
 from typing import TYPE_CHECKING, Any, Final, Generic, Self, TypeVar
 
+from triage.data.parquet import ParquetPart
 from triage.engine.passes import RowCounts, fold_part
 from triage.errors import ClusterError, TriageError
 
@@ -184,6 +185,12 @@ class ClusterEngine:
         PassCancelled
             When the tracker's cancel event is set.
         """
+        if not all(isinstance(part, ParquetPart) for part in parts):
+            msg = (
+                "`--engine dask` splits Parquet files (a file, a folder or a glob of them); "
+                "this source reads as one stream: use `--engine local`"
+            )
+            raise ClusterError(msg)
         client = self.client()
         self._check_workers_see(client, parts)
         job = client.submit(pass_job_task, PassJob(new_part, fold, merge, marked), pure=False)
@@ -196,7 +203,7 @@ class ClusterEngine:
         )
         finished = threading.Event()
         root.add_done_callback(lambda _: finished.set())
-        sizes = [getattr(part, "rows", 0) for part in parts]
+        sizes = [part.rows for part in parts if isinstance(part, ParquetPart)]
         rows_done = 0
         try:
             while not finished.wait(POLL_S):
@@ -215,8 +222,7 @@ class ClusterEngine:
         self, client: Any, parts: Sequence[Callable[[], Iterator[Batch]]]
     ) -> None:
         """Raise `ClusterError` when a worker cannot see a file of the parts."""
-        found = (getattr(part, "path", None) for part in parts)
-        paths = sorted({path for path in found if isinstance(path, str)})
+        paths = sorted({part.path for part in parts if isinstance(part, ParquetPart)})
         if not paths:
             return
         answers = client.run(missing_files, paths)

@@ -16,7 +16,7 @@ from textual.widgets import DataTable
 from textual.worker import Worker, WorkerState, get_current_worker
 
 from triage._typing import ALL_ROWS, CRITERIA, RowsToRead
-from triage.errors import PassCancelled, TriageError
+from triage.errors import PassCancelled, TriageError, numeric_warning_message
 from triage.tui.head_start import HeadStart, collect_again, open_and_profile, segment_columns
 from triage.tui.messages import (
     ChecksFinished,
@@ -560,6 +560,13 @@ class MainScreen(Screen[None]):
                 self._end_full_pass(self.running_pass)
             error = event.worker.error
             self.log.error(f"worker {event.worker.name} failed: {error!r}")
+            if isinstance(error, RuntimeWarning):  # numpy's warnings are errors (cli/main.py)
+                self.report_error(
+                    numeric_warning_message(error),
+                    title="the numbers went out of range",
+                    is_background=True,
+                )
+                return
             self.report_error(
                 f"{type(error).__name__}: {error}\n\nThis is a bug in triage; the app stays open.",
                 title="unexpected error",
