@@ -713,6 +713,25 @@ async def test_tui_command_palette_runs_a_screen_action(config_home: Path, demo_
         assert screen.current is not None and screen.current.is_full_pass
 
 
+@pytest.mark.parametrize("word", ["curvature", "spline", "Huber", "robust"])
+async def test_tui_command_palette_finds_the_checks_by_their_names(
+    config_home: Path, demo_file: Path, word: str
+) -> None:
+    app = build_app(demo_file, target="minutes", terms="distance_km", sample_rows=SAMPLE_ROWS)
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        await press_id(pilot, "open-palette")
+        for char in word:
+            await pilot.press(char)
+        found = app.screen.query_one(CommandList)
+
+        def offers_the_checks() -> bool:
+            prompts = [str(found.get_option_at_index(i).prompt) for i in range(found.option_count)]
+            return any("checks" in prompt for prompt in prompts)
+
+        await wait_until(pilot, offers_the_checks, f"the palette to offer the checks for {word}")
+
+
 # ------------------------------------------------------------------------------------------
 # the command line that opens the app
 

@@ -318,8 +318,8 @@ class MainScreen(Screen[None]):
             "checks",
             show=False,
             id="run-checks",
-            tooltip="Refit the fit on screen robustly (Huber) and with a spline per numeric "
-            "input, on the sample; a notification says when they are ready to read.",
+            tooltip="Refit the fit on screen robustly (Huber) and check each numeric input for "
+            "curvature with a spline, on the sample; a notification says when they are ready.",
         ),
         Binding(
             "K",
