@@ -1173,3 +1173,21 @@ async def test_tui_pane_strip_names_each_pane_once_and_footer_keeps_apart(
         assert all(info.title.startswith(label) for info, label in zip(PANES, labels, strict=True))
         footer = tui_support.screen_text(app).split("\n")[-1]
         assert ("commands" in footer) == (width >= 72)
+
+
+async def test_tui_row_pane_follows_the_worst_cursor_when_tiled(
+    config_home: Path, demo_file: Path
+) -> None:
+    app = build_app(demo_file, target="minutes", terms="distance_km, stops")
+    async with app.run_test(size=LARGE) as pilot:
+        await settle(pilot)
+        screen = main_screen(app)
+        await press_id(pilot, "pane-worst")
+        assert screen.is_tiled
+        worst = app.screen.query_one(WorstPane)
+        for index in (1, 2):
+            await pilot.press("down")
+            await settle(pilot)
+            view = app.screen.query_one(RowPane).row
+            assert view is not None and view.position == worst.positions()[index]
+            assert view.frame is not None  # read, not only named
