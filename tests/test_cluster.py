@@ -30,7 +30,8 @@ from typing import Any
 import numpy as np
 import polars as pl
 import pytest
-from distributed import LocalCluster
+from distributed import KilledWorker, LocalCluster
+from distributed.client import FutureCancelledError
 from threadpoolctl import threadpool_limits
 
 from tests import tui_support
@@ -40,13 +41,14 @@ from triage.core.spec import build_spec
 from triage.data import parquet as parquet_module
 from triage.data.scenario import iter_scenario
 from triage.data.source import open_source
+from triage.engine import cluster as cluster_module
 from triage.engine import passes
 from triage.engine import progress as progress_module
 from triage.engine.cluster import ClusterEngine, tree_levels
 from triage.engine.compare import compare_models
 from triage.engine.export import export_all_rows
 from triage.engine.progress import PassProgress
-from triage.errors import ClusterError, PassCancelled
+from triage.errors import ClusterError, PassCancelled, SourceError, TriageError
 from triage.tui.screens.main import MainScreen
 from triage.views.json import fit_to_json, report_to_json
 from triage.views.text import render_full_report
@@ -284,6 +286,25 @@ def test_cluster_refuses_a_source_that_reads_as_one_stream(
         with pytest.raises(ClusterError, match="splits Parquet files"):
             passes.fit_model(source, spec, rows=ALL_ROWS, engine=engine)
         assert not engine.is_connected
+
+
+@pytest.mark.parametrize(
+    ("raised", "says"),
+    [
+        (KilledWorker("fold_part_task-3", None, 3), "workers died in turn"),  # type: ignore[arg-type]
+        (FutureCancelledError("root", "lost"), "lost the cluster"),
+        (RuntimeError("boom\nsecond line"), "a task failed with RuntimeError: boom"),
+        (SourceError("cannot read `x.parquet`"), "cannot read `x.parquet`"),
+    ],
+)
+def test_cluster_pass_that_cannot_finish_says_why_in_one_line(raised: Exception, says: str) -> None:
+    class Root:
+        def result(self) -> None:
+            raise raised
+
+    with pytest.raises(TriageError) as caught:
+        cluster_module._result(Root(), "tcp://127.0.0.1:8786")
+    assert says in str(caught.value) and "\n" not in str(caught.value)
 
 
 def test_cluster_tree_levels() -> None:

@@ -14,6 +14,7 @@ pass first needs the cluster, so a sample fit never contacts the scheduler.
 from __future__ import annotations
 
 import asyncio
+import concurrent.futures
 import contextlib
 import copy
 import logging
@@ -262,23 +263,30 @@ class ClusterEngine:
 
 
 def _result(root: Any, address: str) -> Any:
-    """Return the root task's result, or raise one `TriageError` saying why there is none."""
+    """Return the root task's result, or raise one `TriageError` saying why there is none.
+
+    A worker's own `TriageError` (a file it cannot read, a file that changed) is raised
+    again as it is; anything else that stops the pass becomes a `ClusterError`.
+    """
     from distributed import KilledWorker
-    from distributed.client import FutureCancelledError
 
     try:
         return root.result()
     except TriageError:
-        raise  # a worker's own message (a file it cannot read), raised again here
+        raise
     except KilledWorker as error:
         msg = (
             f"the pass cannot finish: workers died in turn while running one of its tasks "
             f"({error.task}); check the workers' memory and logs"
         )
         raise ClusterError(msg) from None
-    except (FutureCancelledError, OSError) as error:
+    except (concurrent.futures.CancelledError, OSError) as error:
         msg = f"the pass cannot finish: lost the cluster at `{address}` ({_first_line(error)})"
         raise ClusterError(msg) from None
+    except Exception as error:  # a task's unexpected failure, said in one line
+        why = f"{type(error).__name__}: {_first_line(error)}"
+        msg = f"the pass cannot finish: a task failed with {why}"
+        raise ClusterError(msg) from error
 
 
 def _first_line(error: BaseException) -> str:
