@@ -448,6 +448,8 @@ def test_cli_dask_engine_without_dask_says_how_to_install(
     err = capsys.readouterr().err
     assert code == 2
     assert "pip install 'triage[cluster]'" in err and len(err.strip().splitlines()) == 1
+    # the local engine, the default, needs none of it
+    assert main(["fit", str(folder), "--terms", TERMS, "--rows", "all", "--json"]) == 0
 
 
 # -- the app ------------------------------------------------------------------------------
