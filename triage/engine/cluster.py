@@ -129,8 +129,11 @@ class ClusterEngine:
 
     Examples
     --------
-    >>> with ClusterEngine("tcp://10.0.0.5:8786") as engine:  # doctest: +SKIP
-    ...     outcome = fit_model(source, spec, rows=None, engine=engine)
+    Nothing is contacted until a pass over every row needs the cluster:
+
+    >>> engine = ClusterEngine("tcp://10.0.0.5:8786")
+    >>> engine.is_connected
+    False
     """
 
     def __init__(self, address: str, *, part_rows: int | None = None) -> None:
