@@ -16,6 +16,13 @@ import pytest
 
 DOCUMENTED_SKIPS: Final = {
     "running as root": "file modes cannot lock root out of a folder (tests/test_export.py)",
+    "not root, or no mount(8)": (
+        "read-only and full destinations are small tmpfs mounts, which only root can make "
+        "(tests/test_faults.py)"
+    ),
+    "tmpfs mount refused": (
+        "a container without the right to mount cannot make the small tmpfs (tests/test_faults.py)"
+    ),
     "tmux is not installed": (
         "the terminal smoke test drives the real app in tmux (tests/test_tui_smoke.py); "
         ".ci/run installs it"

@@ -75,8 +75,9 @@ try:
 except SystemExit as stop:
     code = stop.code or 0
 elapsed = time.perf_counter() - start
-peak_mib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-print("MEASURE", elapsed, peak_mib, code, file=sys.stderr)
+usage = resource.getrusage(resource.RUSAGE_SELF)
+peak_mib = usage.ru_maxrss / 1024
+print("MEASURE", elapsed, peak_mib, code, usage.ru_utime + usage.ru_stime, file=sys.stderr)
 """
 
 
@@ -118,6 +119,16 @@ def median_of(runs: list[tuple[float, float]]) -> tuple[float, float]:
 
 def measure(script: str, *args: str) -> tuple[float, float]:
     """Run `script` in a fresh interpreter; return (seconds, peak MiB)."""
+    seconds, peak, _ = measure_cpu(script, *args)
+    return seconds, peak
+
+
+def measure_cpu(script: str, *args: str) -> tuple[float, float, float]:
+    """Run `script` in a fresh interpreter; return (seconds, peak MiB, CPU seconds).
+
+    CPU seconds (user and system, every thread) vary less than wall time on a shared
+    machine, so they show the direction of a change while others run.
+    """
     done = subprocess.run(
         [sys.executable, "-c", MEASURE, script, *args],
         capture_output=True,
@@ -128,10 +139,10 @@ def measure(script: str, *args: str) -> tuple[float, float]:
     line = [s for s in done.stderr.splitlines() if s.startswith("MEASURE")]
     if not line:
         raise RuntimeError(done.stderr[-2000:])
-    _, seconds, peak, code = line[-1].split()
+    _, seconds, peak, code, cpu = line[-1].split()
     if code != "0":
         raise RuntimeError(done.stderr[-2000:])
-    return float(seconds), float(peak)
+    return float(seconds), float(peak), float(cpu)
 
 
 def _environ() -> dict[str, str]:

@@ -18,8 +18,9 @@ memory:
 - ``triage report --rows all`` (with ``--by`` the 60-level column in the admin cases);
 - ``triage export --all`` to a Parquet file in a temporary folder (deleted after each run).
 
-It prints the median seconds of each, its ratio to the median floor, and the largest peak
-memory. Usage::
+It prints the median seconds of each, its ratio to the median floor, its median CPU seconds
+(every thread; steadier than wall time while other work shares the machine) and the largest
+peak memory. Usage::
 
     python bench/bench_workload.py                      # 2M and 20M rows, every case, 3 runs
     python bench/bench_workload.py --rows 2000000 --repeat 1 --cases admin,numeric8
@@ -39,7 +40,7 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
-from bench_fit import DATA, compile_once, make_file, measure, warm_cache
+from bench_fit import DATA, compile_once, make_file, measure_cpu, warm_cache
 
 LEVELS = {"region": 12, "district": 60, "office": 400}
 """The admin case's text categoricals and their numbers of levels."""
@@ -180,14 +181,14 @@ def run_case(case: str, n_rows: int, repeat: int, extra: list[str]) -> dict[str,
     path = case_file(case, n_rows)
     print(f"{case} {n_rows:,}: file ready in {time.perf_counter() - started:.1f} s", flush=True)
     warm_cache(path)
-    runs: dict[str, list[tuple[float, float]]] = {}
+    runs: dict[str, list[tuple[float, float, float]]] = {}
     with tempfile.TemporaryDirectory(prefix="triage-bench-") as folder:
         out = Path(folder) / "diagnostics.parquet"
         columns, commands = case_commands(case, path, out)
         for _ in range(repeat):
-            runs.setdefault("floor", []).append(measure(FLOOR, str(path), ",".join(columns)))
+            runs.setdefault("floor", []).append(measure_cpu(FLOOR, str(path), ",".join(columns)))
             for name, command in commands.items():
-                runs.setdefault(name, []).append(measure(TRIAGE, *command, *extra))
+                runs.setdefault(name, []).append(measure_cpu(TRIAGE, *command, *extra))
                 out.unlink(missing_ok=True)
     row: dict[str, object] = {"case": case, "rows": n_rows}
     floor_s = statistics.median(r[0] for r in runs["floor"])
@@ -196,6 +197,7 @@ def run_case(case: str, n_rows: int, repeat: int, extra: list[str]) -> dict[str,
         row[f"{name}_s"] = round(seconds, 3)
         row[f"{name}_vs_floor"] = round(seconds / floor_s, 3)
         row[f"{name}_mib"] = round(max(r[1] for r in measured))
+        row[f"{name}_cpu_s"] = round(statistics.median(r[2] for r in measured), 3)
     print(json.dumps(row), flush=True)
     return row
 
@@ -222,12 +224,14 @@ def main() -> None:
     ]
     names = ["floor", "fit", "report", "export"]
     header = f"{'case':<13} {'rows':>11}" + "".join(
-        f" {n + ' s':>9} {'x':>5} {'MiB':>5}" for n in names
+        f" {n + ' s':>9} {'x':>5} {'cpu s':>6} {'MiB':>5}" for n in names
     )
     print("\n" + header)
     for r in rows:
         cells = "".join(
-            f" {r[f'{n}_s']:9.2f} {r[f'{n}_vs_floor']:5.2f} {r[f'{n}_mib']:5}" for n in names
+            f" {r[f'{n}_s']:9.2f} {r[f'{n}_vs_floor']:5.2f} {r[f'{n}_cpu_s']:6.1f}"
+            f" {r[f'{n}_mib']:5}"
+            for n in names
         )
         print(f"{r['case']:<13} {r['rows']:>11,}{cells}")
 

@@ -125,3 +125,18 @@ def test_locations_follow_xdg_config_home(tmp_path: Path, monkeypatch: pytest.Mo
     monkeypatch.setenv("XDG_CONFIG_HOME", str(tmp_path / "xdg"))
     assert config_dir() == tmp_path / "xdg" / "triage"
     assert user_keymap_path() == tmp_path / "xdg" / "triage" / "keymap.toml"
+
+
+def test_fkeys_keyset_leaves_f10_and_f11_to_the_terminal_and_gives_each_pane_one_key() -> None:
+    """Desktop terminals commonly take F10 (menu) and F11 (full screen): common practice."""
+    import tomllib
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1] / "keymaps"
+    fkeys = tomllib.loads((root / "fkeys.toml").read_text(encoding="utf-8"))
+    keys = [k.strip() for value in fkeys.values() for k in value.split(",")]
+    assert not {"f10", "f11"} & set(keys)
+    assert len(keys) == len(set(keys))  # no key does two things
+    panes = {name: value for name, value in fkeys.items() if name.startswith("pane-")}
+    assert all("," not in value for value in panes.values())  # one key per pane
+    assert len(set(panes.values())) == len(panes)

@@ -7,6 +7,7 @@ statsmodels OLS (with its HC3 covariance and influence measures) on the same row
 from __future__ import annotations
 
 import gc
+import re
 import threading
 from collections.abc import Callable, Iterator
 from pathlib import Path
@@ -712,6 +713,25 @@ async def test_tui_command_palette_runs_a_screen_action(config_home: Path, demo_
         assert screen.current is not None and screen.current.is_full_pass
 
 
+@pytest.mark.parametrize("word", ["curvature", "spline", "Huber", "robust"])
+async def test_tui_command_palette_finds_the_checks_by_their_names(
+    config_home: Path, demo_file: Path, word: str
+) -> None:
+    app = build_app(demo_file, target="minutes", terms="distance_km", sample_rows=SAMPLE_ROWS)
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        await press_id(pilot, "open-palette")
+        for char in word:
+            await pilot.press(char)
+        found = app.screen.query_one(CommandList)
+
+        def offers_the_checks() -> bool:
+            prompts = [str(found.get_option_at_index(i).prompt) for i in range(found.option_count)]
+            return any("checks" in prompt for prompt in prompts)
+
+        await wait_until(pilot, offers_the_checks, f"the palette to offer the checks for {word}")
+
+
 # ------------------------------------------------------------------------------------------
 # the command line that opens the app
 
@@ -1129,3 +1149,45 @@ async def test_tui_weights_equal_to_the_target_get_a_message(
         if isinstance(app.screen, ErrorScreen):
             shown.append(str(app.screen.message))
         assert any("is also the target" in m for m in shown), shown
+
+
+@pytest.mark.parametrize("keyset", [None, "fkeys"])
+@pytest.mark.parametrize("width", [60, 80])
+async def test_tui_pane_strip_names_each_pane_once_and_footer_keeps_apart(
+    config_home: Path, demo_file: Path, keyset: str | None, width: int
+) -> None:
+    from triage.tui.widgets.panes import PANES
+    from triage.tui.widgets.status import short_key
+
+    app = build_app(demo_file, target="minutes", terms="distance_km", keyset=keyset)
+    async with app.run_test(size=(width, 24)) as pilot:
+        await settle(pilot)
+        strip = tui_support.screen_text(app).split("\n")[0]
+        assert len(strip) <= width
+        keys = [short_key(key_for(app, f"pane-{info.pane_id}")) for info in PANES]
+        pattern = r"\s+".join(rf"{re.escape(k)} (\S+)" for k in keys)
+        found = re.search(pattern, strip)
+        assert found is not None, strip  # every pane's key is on the strip, in order
+        labels = list(found.groups())
+        assert len(labels) == len(set(labels)), labels  # no two keys labelled alike
+        assert all(info.title.startswith(label) for info, label in zip(PANES, labels, strict=True))
+        footer = tui_support.screen_text(app).split("\n")[-1]
+        assert ("commands" in footer) == (width >= 72)
+
+
+async def test_tui_row_pane_follows_the_worst_cursor_when_tiled(
+    config_home: Path, demo_file: Path
+) -> None:
+    app = build_app(demo_file, target="minutes", terms="distance_km, stops")
+    async with app.run_test(size=LARGE) as pilot:
+        await settle(pilot)
+        screen = main_screen(app)
+        await press_id(pilot, "pane-worst")
+        assert screen.is_tiled
+        worst = app.screen.query_one(WorstPane)
+        for index in (1, 2):
+            await pilot.press("down")
+            await settle(pilot)
+            view = app.screen.query_one(RowPane).row
+            assert view is not None and view.position == worst.positions()[index]
+            assert view.frame is not None  # read, not only named

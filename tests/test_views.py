@@ -754,3 +754,15 @@ def test_histogram_view_spans_the_body_on_a_robust_scale() -> None:
     fine_bin = fine_edges[1] - fine_edges[0]  # edges fall on the fine grid
     assert view.edges[-1] - view.edges[0] == pytest.approx(8 * robust_sd, abs=2 * fine_bin)
     assert view.edges[-1] - view.edges[0] < 0.5 * 8 * sd
+
+
+@pytest.mark.parametrize("width", [40, 60, 76, 80, 120, 200])
+def test_binned_chart_legend_is_never_blank(report: ReportOutcome, width: int) -> None:
+    bins = report.diagnostics.binned["fitted"]
+    text = render_binned(
+        bins, width, 14, title="residual by fitted value", x_label="fitted value", color=False
+    )
+    legend = [line for line in text.split("\n") if "● mean" in line]
+    assert len(legend) == 1 and "10-90%" in legend[0]
+    if width >= 76:  # room to say the bins hold about equal numbers of rows
+        assert "equal" in legend[0]

@@ -26,6 +26,19 @@ def one_line(text: str) -> str:
     )
 
 
+def numeric_warning_message(warning: Warning) -> str:
+    """Return one line for a floating-point warning that no check of ours made a clear error.
+
+    numpy reports overflow and invalid values as RuntimeWarnings; the command line and the
+    app treat them as errors, so none reaches the terminal as a warning.
+    """
+    return (
+        "a computation went outside the range of floating-point numbers "
+        f"({one_line(str(warning))}); look for values near the float limit (about 1e308) "
+        "in the columns used and rescale them"
+    )
+
+
 class TriageError(Exception):
     """Root of every error triage reports to the user without a traceback.
 

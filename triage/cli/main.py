@@ -16,7 +16,7 @@ from typing import Any, NoReturn
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 from triage import __version__
-from triage.errors import TriageError, one_line
+from triage.errors import TriageError, numeric_warning_message, one_line
 
 COMMANDS: tuple[str, ...] = ("fit", "report", "export", "compare", "sample", "open")
 """Subcommands, each a module in `triage.cli.commands` with `register(subparsers)`."""
@@ -36,15 +36,6 @@ class _Parser(argparse.ArgumentParser):
     def error(self, message: str) -> NoReturn:
         """Print `message` with a pointer to `--help` and exit with code 2."""
         self.exit(2, f"{self.prog}: {one_line(message)}; see `{self.prog} --help`\n")
-
-
-def numeric_warning_message(warning: Warning) -> str:
-    """One line for a floating-point warning that no check of ours turned into a clear error."""
-    return (
-        "a computation went outside the range of floating-point numbers "
-        f"({one_line(str(warning))}); look for values near the float limit (about 1e308) "
-        "in the columns used and rescale them"
-    )
 
 
 def build_parser() -> argparse.ArgumentParser:

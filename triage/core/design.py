@@ -795,7 +795,7 @@ class DesignBuilder:
             dense=dense,
             dense_positions=self._dense_positions,
             factors=[
-                IndicatorCodes(codes=series.to_numpy(), positions=positions)
+                IndicatorCodes(codes=series.to_numpy().astype(np.intp), positions=positions)
                 for series, positions in zip(columns[q : q + c], self._level_positions, strict=True)
             ],
             n_cols=len(self.column_names),

@@ -40,7 +40,7 @@ from triage.core.flag_rules import (
     raise_flags,
 )
 from triage.core.indicators import coded_gram
-from triage.core.lsq import shifted_gram
+from triage.core.lsq import GRAM_CHUNK_ROWS, shifted_gram
 from triage.core.moments import StreamMoments
 from triage.core.residual_breakdown import BinnedResiduals, SegmentResiduals
 from triage.core.residual_tests import (
@@ -260,12 +260,18 @@ class DiagnosticsAccumulator:
         """Add ``Σ x~ x~' e² ω`` for HC0 (ω = 1), HC2 (1/(1-h)) and HC3 (1/(1-h)²).
 
         Each as ``B'B`` with ``B = x~ |e| sqrt(ω)``, which numpy hands to a symmetric
-        rank-k update: half the work of the general product.
+        rank-k update: half the work of the general product. `GRAM_CHUNK_ROWS` rows at a
+        time, so each scaled chunk is still in cache for its product.
         """
-        block = np.empty_like(shifted)
-        for j, u in enumerate(_meat_roots(weights, rd)):
-            np.multiply(shifted, u[:, np.newaxis], out=block)
-            self._meat[j] += block.T @ block
+        roots = _meat_roots(weights, rd)
+        n_rows = shifted.shape[0]
+        block = np.empty((min(n_rows, GRAM_CHUNK_ROWS), shifted.shape[1]), order="F")
+        for start in range(0, n_rows, GRAM_CHUNK_ROWS):
+            rows = slice(start, min(start + GRAM_CHUNK_ROWS, n_rows))
+            chunk = block[: rows.stop - start]
+            for j, u in enumerate(roots):
+                np.multiply(shifted[rows], u[rows, np.newaxis], out=chunk)
+                self._meat[j] += chunk.T @ chunk
 
     def _update_meat_coded(
         self, design: CodedDesign, weights: FloatArray | None, rd: RowDiagnostics

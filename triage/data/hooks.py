@@ -49,6 +49,8 @@ def _pause_from_environment() -> BatchHook | None:
 def batch_read(path: Path) -> None:
     """Count one batch read from `path` and call the hook, if any, on the reading thread."""
     global _hook, _batches, _is_environment_read
+    if _is_environment_read and _hook is None:
+        return  # the usual case, without taking the lock
     with _lock:
         if not _is_environment_read:
             _hook, _is_environment_read = _pause_from_environment(), True

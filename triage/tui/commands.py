@@ -38,10 +38,16 @@ class TriageCommands(Provider):
             yield DiscoveryHit(title, partial(self._run, active), help=help_text)
 
     async def search(self, query: str) -> Hits:
-        """Match typed text against the command titles."""
+        """Match typed text against the command titles, or as words of their descriptions.
+
+        So `curvature`, `spline`, `Huber` or `robust` find the checks by what they do.
+        """
         matcher = self.matcher(query)
+        words = query.strip().lower()
         for title, help_text, active in self._commands():
             score = matcher.match(title)
+            if score <= 0 and words and words in f"{title} {help_text}".lower():
+                score = 0.5  # a whole word of the description: below a match of the title
             if score > 0:
                 yield Hit(
                     score, matcher.highlight(title), partial(self._run, active), help=help_text
@@ -67,6 +73,8 @@ def _group(binding_id: str) -> str:
         "start-full-pass",
         "cancel-pass",
         "toggle-robust",
+        "run-checks",
+        "show-checks",
         "next-predictor",
         "next-segment-column",
     }:

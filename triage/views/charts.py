@@ -238,6 +238,28 @@ def _rows(count: int) -> str:
     return f"{format_count(count)} row{'' if count == 1 else 's'}"
 
 
+def binned_legend(x_label: str, width: int) -> str:
+    """Return the legend under a binned chart: the longest wording that fits `width`.
+
+    It always says what the dots and the dotted band are and that the bins hold about
+    equal numbers of rows; plotext leaves out a label wider than the plot, so a legend
+    that does not fit would leave the line blank.
+    """
+    wordings = (
+        f"{x_label} in bins of about equal rows (● mean residual, dotted: 10-90%)",
+        f"{x_label}, bins of ~equal rows; ● mean residual, dotted 10-90%",
+        "bins of ~equal rows; ● mean residual, dotted 10-90%",
+        "~equal-row bins; ● mean, dotted 10-90%",
+        "● mean, dotted 10-90%",
+    )
+    room = width - _LEGEND_MARGIN
+    return next((w for w in wordings if len(w) <= room), wordings[-1])
+
+
+_LEGEND_MARGIN: Final = 8
+"""Cells a chart's x label must leave free: the y-axis labels and the frame."""
+
+
 def _position(x_mean: float, lo: float, hi: float) -> float:
     """Return where to draw a bin: the mean of its values, else its middle or finite end."""
     if math.isfinite(x_mean):
@@ -332,7 +354,7 @@ def render_binned(
         plt.plot(order.tolist(), mean.tolist(), marker="hd", color=mean_color)
         plt.scatter(order.tolist(), mean.tolist(), marker="●", color=mean_color)
         plt.title(title)
-        plt.xlabel(f"{x_label} in bins of about equal rows (● mean residual, dotted: 10%-90%)")
+        plt.xlabel(binned_legend(x_label, width))
         plt.ylim(y_lo - pad, y_hi + pad)
         plt.xlim(-0.5, x.size - 0.5)
         plt.xticks(tick_at.tolist(), [format_number(x[i], digits=3, trim=True) for i in tick_at])

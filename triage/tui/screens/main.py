@@ -16,7 +16,7 @@ from textual.widgets import DataTable
 from textual.worker import Worker, WorkerState, get_current_worker
 
 from triage._typing import ALL_ROWS, CRITERIA, RowsToRead
-from triage.errors import PassCancelled, TriageError
+from triage.errors import PassCancelled, TriageError, numeric_warning_message
 from triage.tui.head_start import HeadStart, collect_again, open_and_profile, segment_columns
 from triage.tui.messages import (
     ChecksFinished,
@@ -318,8 +318,8 @@ class MainScreen(Screen[None]):
             "checks",
             show=False,
             id="run-checks",
-            tooltip="Refit the fit on screen robustly (Huber) and with a spline per numeric "
-            "input, on the sample; a notification says when they are ready to read.",
+            tooltip="Refit the fit on screen robustly (Huber) and check each numeric input for "
+            "curvature with a spline, on the sample; a notification says when they are ready.",
         ),
         Binding(
             "K",
@@ -560,6 +560,13 @@ class MainScreen(Screen[None]):
                 self._end_full_pass(self.running_pass)
             error = event.worker.error
             self.log.error(f"worker {event.worker.name} failed: {error!r}")
+            if isinstance(error, RuntimeWarning):  # numpy's warnings are errors (cli/main.py)
+                self.report_error(
+                    numeric_warning_message(error),
+                    title="the numbers went out of range",
+                    is_background=True,
+                )
+                return
             self.report_error(
                 f"{type(error).__name__}: {error}\n\nThis is a bug in triage; the app stays open.",
                 title="unexpected error",
@@ -1219,6 +1226,13 @@ class MainScreen(Screen[None]):
     def _worst_chosen(self) -> None:
         """Enter on a worst row opens it."""
         self.action_open_row()
+
+    @on(DataTable.RowHighlighted, "#worst-table")
+    def _worst_moved(self) -> None:
+        """With Worst and Row tiled side by side, the Row pane follows the Worst cursor."""
+        position = self.query_one(WorstPane).cursor_position()
+        if self.is_tiled and self.front == "worst" and position not in (None, self.row_position):
+            self.show_row(position)
 
     def action_step_row(self, step: int) -> None:
         """Open the next (1) or previous (-1) row of the worst-rows list."""

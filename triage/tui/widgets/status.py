@@ -33,18 +33,23 @@ class PaneStrip(Widget):
     """Ids of every pane on screen (several when the terminal is large)."""
 
     def render(self) -> RenderableType:
-        """Draw the strip; panes not in front shrink to their key when the line is too short."""
-        cut = None
-        for room in (None, 4, 3):
-            cut = room
+        """Draw the strip; panes not in front shrink when the line is too short.
+
+        A shortened title keeps as many letters as it needs to differ from every other
+        (``Fit`` and ``Fits``), so no two keys are labelled alike.
+        """
+        titles = [title for _, _, title in self.entries]
+        labels = titles
+        for room in (None, 4, 3, 2, 1):
+            labels = titles if room is None else unique_prefixes(titles, room)
             wanted = sum(
-                len(key) + len(title if pid == self.current else title[:room]) + 2
-                for pid, key, title in self.entries
+                cell_len(short_key(key)) + len(title if pid == self.current else label) + 2
+                for (pid, key, title), label in zip(self.entries, labels, strict=True)
             )
             if wanted <= self.size.width:
                 break
         text = Text(no_wrap=True, overflow="ellipsis")
-        for pane_id, key, title in self.entries:
+        for (pane_id, key, title), label in zip(self.entries, labels, strict=True):
             is_front = pane_id == self.current
             if is_front:
                 style = "reverse bold"
@@ -52,10 +57,33 @@ class PaneStrip(Widget):
                 style = "bold"
             else:
                 style = "dim"
-            text.append(f" {key}", style="bold" if is_front else "")
-            label = title if is_front else title[:cut]
-            text.append(f" {label}", style=style)
+            text.append(f" {short_key(key)}", style="bold" if is_front else "")
+            text.append(f" {title if is_front else label}", style=style)
         return text
+
+
+def short_key(key: str) -> str:
+    """Write a key compactly for the pane strip: ``shift+f8`` as ``⇧f8``, ``ctrl+l`` as ``^l``."""
+    return key.replace("shift+", "⇧").replace("ctrl+", "^")
+
+
+def unique_prefixes(titles: list[str], room: int) -> list[str]:
+    """Cut each title to `room` letters, or to as many more as tell it from the others.
+
+    Examples
+    --------
+    >>> unique_prefixes(["Columns", "Fit", "Fits", "Flags"], 3)
+    ['Col', 'Fit', 'Fits', 'Fla']
+    """
+    out = []
+    for title in titles:
+        length = room
+        while length < len(title) and any(
+            other != title and other[:length] == title[:length] for other in titles
+        ):
+            length += 1
+        out.append(title[:length])
+    return out
 
 
 class ModelLine(Widget):
@@ -96,7 +124,8 @@ def progress_text(progress: PassProgress, width: int, *, label: str = "every row
     """Describe a running pass: which pass, bar, share done, rows done, rows per second, time left.
 
     When the line is too short, the bar goes first, then the total rows, then where a later
-    pass reads from: the pass, the share done, the speed and the time left stay.
+    pass reads from, then the words around the pass number: the pass, the share done, the
+    speed and the time left stay.
 
     Parameters
     ----------
@@ -119,10 +148,12 @@ def progress_text(progress: PassProgress, width: int, *, label: str = "every row
     done = format_count(progress.rows_done)
     left = "time left unknown" if progress.eta_s is None else f"{progress.eta_s:,.0f} s left"
     stage = f"pass {progress.pass_number} of {progress.n_passes}" if progress.stage else ""
+    compact = f"{progress.pass_number}/{progress.n_passes}" if progress.stage else ""
     total = f"/{format_count(progress.rows_total)}" if progress.rows_total else ""
     share = "" if fraction is None else f"{fraction:4.0%}  "
     line = ""
-    for full_stage, with_total in ((progress.stage, True), (progress.stage, False), (stage, False)):
+    tries = ((progress.stage, True), (progress.stage, False), (stage, False), (compact, False))
+    for full_stage, with_total in tries:
         head = f"{label}, {full_stage}" if full_stage else label
         rows = f"{done}{total if with_total else ''} rows"
         line = f"{head}: {share}{rows}  {speed}  {left}"
@@ -176,6 +207,10 @@ class PassLine(Widget):
         return text
 
 
+WIDE_FOOTER = 72
+"""Narrower than this, the footer has no room for the command-list entry beside the keys."""
+
+
 class KeyFooter(Footer):
     """Textual's footer of keys, rebuilt only when the keys it shows change.
 
@@ -188,6 +223,10 @@ class KeyFooter(Footer):
         super().__init__(compact=compact)
         self.shown_keys: tuple[tuple[str, str, bool], ...] | None = None
         """(key, description, enabled) of each key shown at the last rebuild."""
+
+    def on_resize(self) -> None:
+        """Leave out the command-list entry where it would lie over the keys (ctrl+p stays)."""
+        self.show_command_palette = self.size.width >= WIDE_FOOTER
 
     def bindings_changed(self, screen: Screen[object]) -> None:
         """Rebuild when the keys shown, their descriptions or their states changed."""
