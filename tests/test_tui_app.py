@@ -1191,3 +1191,20 @@ async def test_tui_row_pane_follows_the_worst_cursor_when_tiled(
             view = app.screen.query_one(RowPane).row
             assert view is not None and view.position == worst.positions()[index]
             assert view.frame is not None  # read, not only named
+
+
+async def test_tui_export_choices_show_their_state_without_colour(
+    config_home: Path, demo_file: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setenv("NO_COLOR", "1")
+    app = build_app(demo_file, target="minutes", terms="distance_km", is_colorless=True)
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        await press_id(pilot, "export-rows")
+        assert isinstance(app.screen, ExportScreen)
+        screen = tui_support.screen_text(app)
+        assert "▐●▌ worst K rows" in screen and "▐ ▌ marked rows" in screen
+        assert "▐ ▌ replace the file" in screen
+        app.screen.query_one("#export-replace").value = True
+        await pilot.pause()
+        assert "▐X▌ replace the file" in tui_support.screen_text(app)
