@@ -89,8 +89,9 @@ class GatedSource:
     def scan_batches(self, *args: Any, **kwargs: Any) -> Iterator[Any]:
         self.batches_started.set()
         for batch in self._inner.scan_batches(*args, **kwargs):
-            if not self.gate.acquire(timeout=30):
-                return
+            if not self.gate.acquire(timeout=tui_support.HANG_S):  # fail, never a short pass
+                msg = f"the test released no batch in {tui_support.HANG_S:.0f} s"
+                raise AssertionError(msg)
             yield batch
 
 
