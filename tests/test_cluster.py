@@ -44,10 +44,11 @@ from triage.data.source import open_source
 from triage.engine import cluster as cluster_module
 from triage.engine import passes
 from triage.engine import progress as progress_module
-from triage.engine.cluster import ClusterEngine, tree_levels
+from triage.engine.cluster import ClusterEngine, merge_tree, tree_levels
 from triage.engine.compare import compare_models
 from triage.engine.export import export_all_rows
 from triage.engine.progress import PassProgress
+from triage.engine.workers import fold_in_order
 from triage.errors import ClusterError, PassCancelled, SourceError, TriageError
 from triage.tui.screens.main import MainScreen
 from triage.views.json import fit_to_json, report_to_json
@@ -305,6 +306,16 @@ def test_cluster_pass_that_cannot_finish_says_why_in_one_line(raised: Exception,
     with pytest.raises(TriageError) as caught:
         cluster_module._result(Root(), "tcp://127.0.0.1:8786")
     assert says in str(caught.value) and "\n" not in str(caught.value)
+
+
+def test_cluster_merges_in_the_tree_the_local_engine_merges_in() -> None:
+    # The local engine merges parts as they finish, in order; the cluster builds its tree up
+    # front. Both must pair the same neighbours for their results to agree bit for bit.
+    for n_parts in range(1, 70):
+        local = fold_in_order(
+            range(n_parts), lambda k, _: str(k), lambda a, b: f"({a} {b})", wait=lambda: None
+        )
+        assert local == merge_tree([str(k) for k in range(n_parts)], lambda a, b: f"({a} {b})")
 
 
 def test_cluster_tree_levels() -> None:
