@@ -89,8 +89,9 @@ class GatedSource:
     def scan_batches(self, *args: Any, **kwargs: Any) -> Iterator[Any]:
         self.batches_started.set()
         for batch in self._inner.scan_batches(*args, **kwargs):
-            if not self.gate.acquire(timeout=30):
-                return
+            if not self.gate.acquire(timeout=tui_support.HANG_S):  # fail, never a short pass
+                msg = f"the test released no batch in {tui_support.HANG_S:.0f} s"
+                raise AssertionError(msg)
             yield batch
 
 
@@ -1173,3 +1174,38 @@ async def test_tui_pane_strip_names_each_pane_once_and_footer_keeps_apart(
         assert all(info.title.startswith(label) for info, label in zip(PANES, labels, strict=True))
         footer = tui_support.screen_text(app).split("\n")[-1]
         assert ("commands" in footer) == (width >= 72)
+
+
+async def test_tui_row_pane_follows_the_worst_cursor_when_tiled(
+    config_home: Path, demo_file: Path
+) -> None:
+    app = build_app(demo_file, target="minutes", terms="distance_km, stops")
+    async with app.run_test(size=LARGE) as pilot:
+        await settle(pilot)
+        screen = main_screen(app)
+        await press_id(pilot, "pane-worst")
+        assert screen.is_tiled
+        worst = app.screen.query_one(WorstPane)
+        for index in (1, 2):
+            await pilot.press("down")
+            await settle(pilot)
+            view = app.screen.query_one(RowPane).row
+            assert view is not None and view.position == worst.positions()[index]
+            assert view.frame is not None  # read, not only named
+
+
+async def test_tui_export_choices_show_their_state_without_colour(
+    config_home: Path, demo_file: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setenv("NO_COLOR", "1")
+    app = build_app(demo_file, target="minutes", terms="distance_km", is_colorless=True)
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        await press_id(pilot, "export-rows")
+        assert isinstance(app.screen, ExportScreen)
+        screen = tui_support.screen_text(app)
+        assert "▐●▌ worst K rows" in screen and "▐ ▌ marked rows" in screen
+        assert "▐ ▌ replace the file" in screen
+        app.screen.query_one("#export-replace").value = True
+        await pilot.pause()
+        assert "▐X▌ replace the file" in tui_support.screen_text(app)

@@ -494,3 +494,20 @@ async def test_a_sample_fit_of_the_same_model_does_not_push_a_full_pass_off_the_
         assert_screen_names(screen, full)
         oracle = ols(pl.read_parquet(demo_file), ["distance_km", "stops"])  # statsmodels
         np.testing.assert_allclose(full.report.outcome.fit.coef, oracle.params, rtol=1e-9)
+
+
+@pytest.mark.parametrize("label", ["every row", "every row (to Fits)"])
+def test_the_progress_line_keeps_pass_share_speed_and_time_left_at_80_columns(label: str) -> None:
+    from triage.results.progress import PassProgress
+    from triage.tui.widgets.status import progress_text
+
+    progress = PassProgress(
+        2_621_440, 20_000_000, 2.0, 1_569_213.0, 1_234.0, 2, 2, pass_source="reading again"
+    )
+    for width in (78, 100, 118):
+        line = progress_text(progress, width, label=label)
+        assert len(line) <= width, line
+        assert line.startswith(label) and "2" in line.split(":")[0]  # which pass
+        for part in ("13%", "2,621,440", "1,569,213 rows/s", "1,234 s left"):
+            assert part in line, (part, line)
+    assert "[" in progress_text(progress, 140, label=label)  # a bar where there is room

@@ -28,6 +28,32 @@ class ExportRequest:
     """Replace the file if it exists (never an input file of the session)."""
 
 
+class MarkedCheckbox(Checkbox):
+    """A check box whose state shows in characters (X or blank), not in colour alone."""
+
+    def on_mount(self) -> None:
+        """Draw the initial state (without announcing a change)."""
+        self.BUTTON_INNER = "X" if self.value else " "
+
+    def watch_value(self) -> None:
+        """Draw X when on and a blank when off (NO_COLOR leaves no other difference)."""
+        super().watch_value()
+        self.BUTTON_INNER = "X" if self.value else " "
+
+
+class MarkedRadioButton(RadioButton):
+    """A radio button whose state shows in characters (● or blank), not in colour alone."""
+
+    def on_mount(self) -> None:
+        """Draw the initial state (without announcing a change)."""
+        self.BUTTON_INNER = "●" if self.value else " "
+
+    def watch_value(self) -> None:
+        """Draw ● when chosen and a blank otherwise."""
+        super().watch_value()
+        self.BUTTON_INNER = "●" if self.value else " "
+
+
 class ExportScreen(ModalScreen[ExportRequest | None]):
     """Asks which rows to export and where; enter in the file field confirms."""
 
@@ -58,10 +84,10 @@ class ExportScreen(ModalScreen[ExportRequest | None]):
             )
             yield Static(f"scored by {self.basis}", id="export-basis", markup=False)
             with RadioSet(id="export-what"):
-                yield RadioButton(
+                yield MarkedRadioButton(
                     f"marked rows ({self.n_marked:,})", value=self.n_marked > 0, id="export-marked"
                 )
-                yield RadioButton(
+                yield MarkedRadioButton(
                     f"worst K rows: {ranking}", value=self.n_marked == 0, id="export-worst"
                 )
             yield Input(
@@ -71,7 +97,7 @@ class ExportScreen(ModalScreen[ExportRequest | None]):
                 placeholder=f"K, at most {self.top_k}",
             )
             yield Input("", id="export-path", placeholder="rows.parquet or rows.csv")
-            yield Checkbox("replace the file if it exists", value=False, id="export-replace")
+            yield MarkedCheckbox("replace the file if it exists", value=False, id="export-replace")
             yield Static(f"note: {PERSONAL_DATA_NOTICE}", id="export-notice", markup=False)
             yield Static(
                 "tab: next field   enter in the file field: write   escape: close",

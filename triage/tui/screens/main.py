@@ -1227,6 +1227,13 @@ class MainScreen(Screen[None]):
         """Enter on a worst row opens it."""
         self.action_open_row()
 
+    @on(DataTable.RowHighlighted, "#worst-table")
+    def _worst_moved(self) -> None:
+        """With Worst and Row tiled side by side, the Row pane follows the Worst cursor."""
+        position = self.query_one(WorstPane).cursor_position()
+        if self.is_tiled and self.front == "worst" and position not in (None, self.row_position):
+            self.show_row(position)
+
     def action_step_row(self, step: int) -> None:
         """Open the next (1) or previous (-1) row of the worst-rows list."""
         positions = self._worst_positions()

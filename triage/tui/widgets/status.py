@@ -124,7 +124,8 @@ def progress_text(progress: PassProgress, width: int, *, label: str = "every row
     """Describe a running pass: which pass, bar, share done, rows done, rows per second, time left.
 
     When the line is too short, the bar goes first, then the total rows, then where a later
-    pass reads from: the pass, the share done, the speed and the time left stay.
+    pass reads from, then the words around the pass number: the pass, the share done, the
+    speed and the time left stay.
 
     Parameters
     ----------
@@ -147,10 +148,12 @@ def progress_text(progress: PassProgress, width: int, *, label: str = "every row
     done = format_count(progress.rows_done)
     left = "time left unknown" if progress.eta_s is None else f"{progress.eta_s:,.0f} s left"
     stage = f"pass {progress.pass_number} of {progress.n_passes}" if progress.stage else ""
+    compact = f"{progress.pass_number}/{progress.n_passes}" if progress.stage else ""
     total = f"/{format_count(progress.rows_total)}" if progress.rows_total else ""
     share = "" if fraction is None else f"{fraction:4.0%}  "
     line = ""
-    for full_stage, with_total in ((progress.stage, True), (progress.stage, False), (stage, False)):
+    tries = ((progress.stage, True), (progress.stage, False), (stage, False), (compact, False))
+    for full_stage, with_total in tries:
         head = f"{label}, {full_stage}" if full_stage else label
         rows = f"{done}{total if with_total else ''} rows"
         line = f"{head}: {share}{rows}  {speed}  {left}"
