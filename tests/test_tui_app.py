@@ -1005,7 +1005,7 @@ async def test_tui_head_start_unexpected_planning_error_is_one_line_and_the_app_
     )
     async with app.run_test(size=SMALL) as pilot:
         await settle(pilot)
-        line = "could not fit ahead: RuntimeError: planning broke"
+        line = "could not fit ahead: RuntimeError: planning broke\\nsecond line"
         assert head_start.plan_failure == line
         assert notifications(app) == [line]
         screen = main_screen(app)
