@@ -185,8 +185,10 @@ def scaling_note(
     scheduler handles 2 x parts tasks at the measured cost of a task that does nothing.
     """
     rows, workers = 10_000_000_000, 100
+    from triage.engine.cluster import tree_levels
+
     parts = math.ceil(rows / rows_per_part)
-    depth = max(parts - 1, 0).bit_length()
+    depth = tree_levels(parts)
     print(f"\n-- scaling: 10,000,000,000 rows on {workers} workers, parts of {rows_per_part:,}")
     print(f"parts (fold tasks) {parts:,}, merge tasks {parts - 1:,}, tree depth {depth}")
     for label, f in figures.items():

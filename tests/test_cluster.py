@@ -30,7 +30,8 @@ from typing import Any
 import numpy as np
 import polars as pl
 import pytest
-from distributed import LocalCluster
+from distributed import KilledWorker, LocalCluster
+from distributed.client import FutureCancelledError
 from threadpoolctl import threadpool_limits
 
 from tests import tui_support
@@ -40,13 +41,15 @@ from triage.core.spec import build_spec
 from triage.data import parquet as parquet_module
 from triage.data.scenario import iter_scenario
 from triage.data.source import open_source
+from triage.engine import cluster as cluster_module
 from triage.engine import passes
 from triage.engine import progress as progress_module
-from triage.engine.cluster import ClusterEngine, tree_levels
+from triage.engine.cluster import ClusterEngine, merge_tree, tree_levels
 from triage.engine.compare import compare_models
 from triage.engine.export import export_all_rows
 from triage.engine.progress import PassProgress
-from triage.errors import ClusterError, PassCancelled
+from triage.engine.workers import fold_in_order
+from triage.errors import ClusterError, PassCancelled, SourceError, TriageError
 from triage.tui.screens.main import MainScreen
 from triage.views.json import fit_to_json, report_to_json
 from triage.views.text import render_full_report
@@ -286,6 +289,35 @@ def test_cluster_refuses_a_source_that_reads_as_one_stream(
         assert not engine.is_connected
 
 
+@pytest.mark.parametrize(
+    ("raised", "says"),
+    [
+        (KilledWorker("fold_part_task-3", None, 3), "workers died in turn"),  # type: ignore[arg-type]
+        (FutureCancelledError("root", "lost"), "lost the cluster"),
+        (RuntimeError("boom\nsecond line"), "a task failed with RuntimeError: boom"),
+        (SourceError("cannot read `x.parquet`"), "cannot read `x.parquet`"),
+    ],
+)
+def test_cluster_pass_that_cannot_finish_says_why_in_one_line(raised: Exception, says: str) -> None:
+    class Root:
+        def result(self) -> None:
+            raise raised
+
+    with pytest.raises(TriageError) as caught:
+        cluster_module._result(Root(), "tcp://127.0.0.1:8786")
+    assert says in str(caught.value) and "\n" not in str(caught.value)
+
+
+def test_cluster_merges_in_the_tree_the_local_engine_merges_in() -> None:
+    # The local engine merges parts as they finish, in order; the cluster builds its tree up
+    # front. Both must pair the same neighbours for their results to agree bit for bit.
+    for n_parts in range(1, 70):
+        local = fold_in_order(
+            range(n_parts), lambda k, _: str(k), lambda a, b: f"({a} {b})", wait=lambda: None
+        )
+        assert local == merge_tree([str(k) for k in range(n_parts)], lambda a, b: f"({a} {b})")
+
+
 def test_cluster_tree_levels() -> None:
     # Hand-worked: pairwise merges of n results take ceil(log2 n) levels.
     assert [tree_levels(n) for n in (1, 2, 3, 4, 5, 8, 9, 5_000)] == [0, 1, 2, 2, 3, 3, 4, 13]
@@ -427,6 +459,8 @@ def test_cli_dask_engine_without_dask_says_how_to_install(
     err = capsys.readouterr().err
     assert code == 2
     assert "pip install 'triage[cluster]'" in err and len(err.strip().splitlines()) == 1
+    # the local engine, the default, needs none of it
+    assert main(["fit", str(folder), "--terms", TERMS, "--rows", "all", "--json"]) == 0
 
 
 # -- the app ------------------------------------------------------------------------------

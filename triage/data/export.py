@@ -18,6 +18,7 @@ import polars as pl
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from triage.data.bus_guard import TEMPORARIES
 from triage.errors import ExportError
 
 PERSONAL_DATA_NOTICE: Final[str] = (
@@ -31,9 +32,6 @@ NOTE_KEY: Final[str] = "triage.fit"
 
 NOTE_SUFFIX: Final[str] = ".fit.txt"
 """Added to a CSV or TSV export's file name for its sidecar note."""
-
-TEMPORARIES: Final[set[Path]] = set()
-"""Temporary files of the exports being written now; the bus-error guard removes them."""
 
 ExportFormat = Literal["parquet", "csv", "tsv"]
 

@@ -14,6 +14,7 @@ pass first needs the cluster, so a sample fit never contacts the scheduler.
 from __future__ import annotations
 
 import asyncio
+import concurrent.futures
 import contextlib
 import copy
 import logging
@@ -90,8 +91,8 @@ def missing_files(paths: Sequence[str]) -> str | None:
     return next((path for path in paths if not os.path.exists(path)), None)
 
 
-def merge_tree(leaves: Sequence[T], merge_pair: Callable[[T, T], T]) -> tuple[T, list[T]]:
-    """Join `leaves` pairwise, level by level, in order; return the root and every join made.
+def merge_tree(leaves: Sequence[T], merge_pair: Callable[[T, T], T]) -> T:
+    """Join `leaves` pairwise, level by level, in order; return the root.
 
     Level one joins leaves 0 and 1, 2 and 3, ...; an odd last one moves up a level as it
     is. This is the tree `fold_in_order` merges a local pass's parts in, so both engines
@@ -99,15 +100,14 @@ def merge_tree(leaves: Sequence[T], merge_pair: Callable[[T, T], T]) -> tuple[T,
 
     Examples
     --------
-    >>> merge_tree("abcde", lambda a, b: f"({a}{b})")[0]
+    >>> merge_tree("abcde", lambda a, b: f"({a}{b})")
     '(((ab)(cd))e)'
     """
-    level, joins = list(leaves), []
+    level = list(leaves)
     while len(level) > 1:
         pairs = [level[i : i + 2] for i in range(0, len(level), 2)]
         level = [merge_pair(*pair) if len(pair) == 2 else pair[0] for pair in pairs]
-        joins += [node for node, pair in zip(level, pairs, strict=True) if len(pair) == 2]
-    return level[0], joins
+    return level[0]
 
 
 def tree_levels(n_parts: int) -> int:
@@ -128,8 +128,11 @@ class ClusterEngine:
 
     Examples
     --------
-    >>> with ClusterEngine("tcp://10.0.0.5:8786") as engine:  # doctest: +SKIP
-    ...     outcome = fit_model(source, spec, rows=None, engine=engine)
+    Nothing is contacted until a pass over every row needs the cluster:
+
+    >>> engine = ClusterEngine("tcp://10.0.0.5:8786")
+    >>> engine.is_connected
+    False
     """
 
     def __init__(self, address: str, *, part_rows: int | None = None) -> None:
@@ -197,7 +200,7 @@ class ClusterEngine:
         pending = {
             k: client.submit(fold_part_task, part, job, pure=False) for k, part in enumerate(parts)
         }
-        root, _ = merge_tree(
+        root = merge_tree(
             list(pending.values()),
             lambda left, right: client.submit(merge_task, job, left, right, pure=False),
         )
@@ -225,7 +228,11 @@ class ClusterEngine:
         paths = sorted({part.path for part in parts if isinstance(part, ParquetPart)})
         if not paths:
             return
-        answers = client.run(missing_files, paths)
+        try:
+            answers = client.run(missing_files, paths)
+        except Exception as error:  # the scheduler or a worker went away: one line
+            msg = f"the cluster at `{self.address}` did not answer ({_first_line(error)})"
+            raise ClusterError(msg) from None
         if not answers:
             msg = (
                 f"the cluster at `{self.address}` has no workers; "
@@ -262,23 +269,30 @@ class ClusterEngine:
 
 
 def _result(root: Any, address: str) -> Any:
-    """Return the root task's result, or raise one `TriageError` saying why there is none."""
+    """Return the root task's result, or raise one `TriageError` saying why there is none.
+
+    A worker's own `TriageError` (a file it cannot read, a file that changed) is raised
+    again as it is; anything else that stops the pass becomes a `ClusterError`.
+    """
     from distributed import KilledWorker
-    from distributed.client import FutureCancelledError
 
     try:
         return root.result()
     except TriageError:
-        raise  # a worker's own message (a file it cannot read), raised again here
+        raise
     except KilledWorker as error:
         msg = (
             f"the pass cannot finish: workers died in turn while running one of its tasks "
             f"({error.task}); check the workers' memory and logs"
         )
         raise ClusterError(msg) from None
-    except (FutureCancelledError, OSError) as error:
+    except (concurrent.futures.CancelledError, OSError) as error:
         msg = f"the pass cannot finish: lost the cluster at `{address}` ({_first_line(error)})"
         raise ClusterError(msg) from None
+    except Exception as error:  # a task's unexpected failure, said in one line
+        why = f"{type(error).__name__}: {_first_line(error)}"
+        msg = f"the pass cannot finish: a task failed with {why}"
+        raise ClusterError(msg) from error
 
 
 def _first_line(error: BaseException) -> str:
