@@ -164,14 +164,14 @@ def render_robust_check(check: RobustCheck, *, label: str = "", width: int = 100
             format_number(c.ordinary),
             format_number(c.robust),
             format_number(c.shift_se, digits=3),
-            "pulled by some rows?" if c.is_flagged else "",
+            "pulled by rows?" if c.is_flagged else "",
         ]
         for c in check.coefficients
     ]
     align: list[Align] = ["<", ">", ">", ">", "<"]
     lines = [
         rule(_title("robust refit (Huber, on the sample)", label), width),
-        table(headers, rows, align=align, width=width),
+        table(headers, rows, align=align, width=width, shrink=4),
         _wrap(
             f"{format_count(check.n_downweighted)} of {format_count(check.n)} rows were "
             f"down-weighted (scaled residual above {check.epsilon}); coefficients marked moved "
@@ -215,7 +215,7 @@ def render_curvature_check(check: CurvatureCheck, *, label: str = "", width: int
             _percent(p.relative_gain_given_top),
             _percent(p.robust_gain),
             _percent(p.robust_gain_given_top),
-            "may be curved" if p.is_flagged else "",
+            "curved?" if p.is_flagged else "",
         ]
         for p in check.predictors
     ]
