@@ -972,6 +972,21 @@ async def test_tui_head_start_unreadable_file_is_reported_by_the_screen(
         assert app.is_running
 
 
+def test_tui_head_start_leaves_the_collector_as_it_found_it(demo_file: Path) -> None:
+    from triage.tui.head_start import HeadStart
+    from triage.tui.settings import Settings
+
+    for collecting in (True, False):
+        (gc.enable if collecting else gc.disable)()
+        try:
+            head_start = HeadStart(Settings(data=str(demo_file))).start()
+            assert head_start.take_opened(str(demo_file)) is not None
+            head_start.stop()
+            assert gc.isenabled() == collecting
+        finally:
+            gc.enable()
+
+
 async def test_tui_head_start_unexpected_planning_error_is_one_line_and_the_app_goes_on(
     config_home: Path,
     demo_file: Path,
@@ -990,7 +1005,7 @@ async def test_tui_head_start_unexpected_planning_error_is_one_line_and_the_app_
     )
     async with app.run_test(size=SMALL) as pilot:
         await settle(pilot)
-        line = "could not fit ahead: RuntimeError: planning broke"
+        line = "could not fit ahead: RuntimeError: planning broke\\nsecond line"
         assert head_start.plan_failure == line
         assert notifications(app) == [line]
         screen = main_screen(app)

@@ -19,7 +19,7 @@ from concurrent.futures import Future
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Final, TypeVar
 
-from triage.errors import PassCancelled, TriageError
+from triage.errors import PassCancelled, TriageError, one_line
 
 if TYPE_CHECKING:
     import polars as pl
@@ -213,8 +213,8 @@ class HeadStart:
         except TriageError:
             return None
         except Exception as error:
-            first_line = next(iter(str(error).splitlines()), "")
-            self.plan_failure = f"could not fit ahead: {type(error).__name__}: {first_line}"
+            why = one_line(f"{type(error).__name__}: {error}")
+            self.plan_failure = f"could not fit ahead: {why}"
             return None
 
     def _sample_fit(self, opened: OpenedData) -> _SampleFit | None:

@@ -197,7 +197,9 @@ class ColumnsPane(Pane):
             )
         table.move_cursor(row=min(row, table.row_count - 1), animate=False)
         self.query_one(".pane--note", Static).update(
-            f"{self.profile.height} columns, numbers from a sample. On a column: {self.keys_hint}"
+            f"{self.profile.height} columns. missing, low, mean and high come from a sample of "
+            "whole row groups, not every row: the true extremes may lie outside. "
+            f"On a column: {self.keys_hint}"
         )
 
     def cursor_column(self) -> str | None:
