@@ -123,18 +123,24 @@ def measure(script: str, *args: str) -> tuple[float, float]:
     return seconds, peak
 
 
-def measure_cpu(script: str, *args: str) -> tuple[float, float, float]:
+def measure_cpu(
+    script: str, *args: str, pythonpath: str | None = None
+) -> tuple[float, float, float]:
     """Run `script` in a fresh interpreter; return (seconds, peak MiB, CPU seconds).
 
     CPU seconds (user and system, every thread) vary less than wall time on a shared
-    machine, so they show the direction of a change while others run.
+    machine, so they show the direction of a change while others run. `pythonpath`, when
+    given, puts another checkout of triage first (a baseline measured in the same run).
     """
+    env = {"OPENBLAS_NUM_THREADS": "1", **_environ()}
+    if pythonpath is not None:
+        env["PYTHONPATH"] = pythonpath
     done = subprocess.run(
         [sys.executable, "-c", MEASURE, script, *args],
         capture_output=True,
         text=True,
         check=False,
-        env={"OPENBLAS_NUM_THREADS": "1", **_environ()},
+        env=env,
     )
     line = [s for s in done.stderr.splitlines() if s.startswith("MEASURE")]
     if not line:

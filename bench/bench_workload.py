@@ -175,8 +175,15 @@ def make_case_file(case: str, n_rows: int) -> None:
         make_sorted_copy(admin, DATA / f"admin_{n_rows}_by_{SORTED_BY}.parquet")
 
 
-def run_case(case: str, n_rows: int, repeat: int, extra: list[str]) -> dict[str, object]:
-    """Time the floor and every contender on one case, in turn, `repeat` times."""
+def run_case(
+    case: str, n_rows: int, repeat: int, extra: list[str], baseline: str | None
+) -> dict[str, object]:
+    """Time the floor and every contender on one case, in turn, `repeat` times.
+
+    With `baseline` (the folder of another checkout), each triage command also runs from
+    that checkout, in the same turn, as `<name>@base` (without `extra`, which an older
+    checkout may not know).
+    """
     started = time.perf_counter()
     path = case_file(case, n_rows)
     print(f"{case} {n_rows:,}: file ready in {time.perf_counter() - started:.1f} s", flush=True)
@@ -190,6 +197,10 @@ def run_case(case: str, n_rows: int, repeat: int, extra: list[str]) -> dict[str,
             for name, command in commands.items():
                 runs.setdefault(name, []).append(measure_cpu(TRIAGE, *command, *extra))
                 out.unlink(missing_ok=True)
+                if baseline is not None:
+                    measured = measure_cpu(TRIAGE, *command, pythonpath=baseline)
+                    runs.setdefault(f"{name}@base", []).append(measured)
+                    out.unlink(missing_ok=True)
     row: dict[str, object] = {"case": case, "rows": n_rows}
     floor_s = statistics.median(r[0] for r in runs["floor"])
     for name, measured in runs.items():
@@ -210,6 +221,12 @@ def main() -> None:
     )
     parser.add_argument("--repeat", type=int, default=3, help="runs of each contender, in turn")
     parser.add_argument("--workers", type=int, default=None, help="pass `--workers N` to triage")
+    parser.add_argument(
+        "--baseline",
+        metavar="DIR",
+        help="also run each triage command from this checkout (e.g. a git worktree of an "
+        "earlier commit), in the same turns, for a before/after table",
+    )
     parser.add_argument("--make", metavar="CASE", help=argparse.SUPPRESS)  # in a child process
     args = parser.parse_args()
     if args.make:
@@ -218,11 +235,13 @@ def main() -> None:
     extra = [] if args.workers is None else ["--workers", str(args.workers)]
     compile_once()
     rows = [
-        run_case(case, int(n), args.repeat, extra)
+        run_case(case, int(n), args.repeat, extra, args.baseline)
         for case in args.cases.split(",")
         for n in args.rows.split(",")
     ]
     names = ["floor", "fit", "report", "export"]
+    if args.baseline is not None:
+        names += ["fit@base", "report@base", "export@base"]
     header = f"{'case':<13} {'rows':>11}" + "".join(
         f" {n + ' s':>9} {'x':>5} {'cpu s':>6} {'MiB':>5}" for n in names
     )

@@ -344,10 +344,18 @@ class PassPlan:
     def keep_frames(self, budget_bytes: int | None = None) -> None:
         """Keep the next full pass's frames in memory for later passes, up to `budget_bytes`.
 
-        The budget is `KEEP_FRAMES_BYTES` when not given.
+        The budget is `KEEP_FRAMES_BYTES` when not given. When the learning sample's bytes
+        per row, times the source's rows, already pass the budget, nothing is kept at all: the
+        frames would only raise pass 1's peak memory before being let go.
         """
-        if self.sample is None:
-            self._kept = KeptFrames(KEEP_FRAMES_BYTES if budget_bytes is None else budget_bytes)
+        if self.sample is not None:
+            return
+        kept = KeptFrames(KEEP_FRAMES_BYTES if budget_bytes is None else budget_bytes)
+        sample = self.learning_frame
+        if self.rows_in_source is not None and sample.height > 0:
+            expected = sample.estimated_size() / sample.height * self.rows_in_source
+            kept.is_complete = expected <= kept.budget_bytes
+        self._kept = kept
 
     @property
     def pass_source(self) -> str:
