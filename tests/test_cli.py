@@ -330,3 +330,33 @@ def test_cli_fit_holdout_prints_figures_not_a_table_for_one_model(
     assert code == 0
     assert "models side by side" not in out and "◆" not in out
     assert re.search(r"^held-out RMSE\s+\d", out, re.MULTILINE)
+
+
+def test_cli_report_show_puts_identifying_columns_beside_the_worst_rows(
+    small: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # Oracle: the same rows read back with polars by position.
+    args = ["report", str(small), "-y", "y", "-x", "x", "--top", "4", "--show", "label,signed"]
+    code, out, _ = run_cli([*args, "--json"], capsys)
+    assert code == 0
+    frame = pl.read_parquet(small)
+    for rows in json.loads(out)["worst"].values():
+        for row in rows:
+            record = frame.row(row["row"], named=True)
+            assert row["shown"] == {"label": record["label"], "signed": str(record["signed"])}
+    code, out, _ = run_cli([*args, "--no-charts", "--width", "100"], capsys)
+    block = out.split("largest residuals (absolute)")[1]
+    header = block.split("\n")[1].split()
+    assert header[:3] == ["row", "label", "signed"]
+    first = json.loads(run_cli([*args, "--json"], capsys)[1])["worst"]["abs_resid"][0]
+    assert first["shown"]["label"] in block.split("\n")[3]
+
+
+def test_cli_report_show_refuses_unknown_or_too_many_columns(
+    small: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    base = ["report", str(small), "-y", "y", "-x", "x", "--show"]
+    code, _, err = run_cli([*base, "lable"], capsys)
+    assert code == 2 and "closest: `label`" in err
+    code, _, err = run_cli([*base, "label,signed,x"], capsys)
+    assert code == 2 and "at most 2 columns" in err

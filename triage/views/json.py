@@ -281,13 +281,18 @@ def _diagnostics_to_json(d: Diagnostics) -> dict[str, Any]:
     }
 
 
-def report_to_json(report: ReportOutcome) -> dict[str, Any]:
+def report_to_json(
+    report: ReportOutcome, *, shown: Mapping[int, Mapping[str, str]] | None = None
+) -> dict[str, Any]:
     """Return a fit and its diagnostics as a JSON-safe dictionary.
 
     Parameters
     ----------
     report : ReportOutcome
         A fit and its diagnostics.
+    shown : mapping of int to mapping of str to str, optional
+        Columns to put beside each worst row (``report --show``): position -> column -> text;
+        each worst row then has a ``shown`` object.
 
     Returns
     -------
@@ -306,6 +311,10 @@ def report_to_json(report: ReportOutcome) -> dict[str, Any]:
     """
     result = fit_to_json(report.outcome)
     result.update(json_safe(_diagnostics_to_json(report.diagnostics)))
+    if shown is not None:
+        for rows in result["worst"].values():
+            for row in rows:
+                row["shown"] = dict(shown.get(row["row"], {}))
     spec = report.outcome.spec
     # segment columns whose mean residuals least squares makes 0 (a categorical term)
     result["segments_zero_by_construction"] = [

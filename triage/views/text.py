@@ -608,6 +608,7 @@ def render_worst_rows(
     criterion: Criterion,
     target: str = "observed",
     decimals: int = 1,
+    shown: Mapping[int, Mapping[str, str]] | None = None,
     width: int = 100,
 ) -> str:
     """Show one worst-rows list: source row position, observed and fitted value, diagnostics.
@@ -622,6 +623,8 @@ def render_worst_rows(
         Heading of the observed-value column (the target's name).
     decimals : int, default=1
         Decimals of observed, fitted and residual (`amount_decimals` of the fit).
+    shown : mapping of int to mapping of str to str, optional
+        Identifying columns to put after the row number: position -> column -> text.
     width : int, default=100
         Line width.
 
@@ -634,10 +637,13 @@ def render_worst_rows(
     title = CRITERION_TITLES[criterion]
     if not rows:
         return f"{rule(title, width)}\nno rows"
-    headers = ["row", target, "fitted", "residual", "studentized", "leverage", "Cook's distance"]
+    names = list(next(iter(shown.values()), {})) if shown else []
+    headers = ["row", *names, target, "fitted", "residual", "studentized", "leverage"]
+    headers.append("Cook's distance")
     cells = [
         [
             f"{int(r.row):,}",
+            *[(shown or {}).get(r.row, {}).get(name, NA) for name in names],
             format_fixed(r.fitted + r.resid, decimals),
             format_fixed(r.fitted, decimals),
             format_fixed(r.resid, decimals),
@@ -647,7 +653,10 @@ def render_worst_rows(
         ]
         for r in rows
     ]
-    body = table(headers, cells, align=[">"] * len(headers), width=width)
+    left: list[Align] = ["<"] * len(names)
+    right: list[Align] = [">"] * (len(headers) - 1 - len(names))
+    align: list[Align] = [">", *left, *right]
+    body = table(headers, cells, align=align, width=width)
     return f"{rule(title, width)}\n{body}"
 
 
@@ -817,6 +826,7 @@ def render_full_report(
     charts: bool = True,
     color: bool = False,
     is_ordered: bool = False,
+    shown: Mapping[int, Mapping[str, str]] | None = None,
 ) -> str:
     """Compose the report of ``triage report``: the fit, hints, tests, charts and tables.
 
@@ -832,6 +842,8 @@ def render_full_report(
         Colour the charts with ANSI codes; the tables are always plain.
     is_ordered : bool, default=False
         Row order means something: show the Durbin–Watson statistic.
+    shown : mapping of int to mapping of str to str, optional
+        Identifying columns of the worst rows (``report --show``).
 
     Returns
     -------
@@ -872,6 +884,7 @@ def render_full_report(
             criterion=c,
             target=outcome.spec.target_label,
             decimals=amount_decimals(outcome.fit.resid_sd),
+            shown=shown,
             width=width,
         )
         for c in CRITERIA

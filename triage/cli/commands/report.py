@@ -57,6 +57,12 @@ def register(subparsers: Any) -> None:
     add_row_options(parser)
     add_engine_options(parser)
     add_diagnostics_options(parser)
+    parser.add_argument(
+        "--show",
+        default="",
+        metavar="COLS",
+        help="up to two columns (an id, a name) shown beside each worst row",
+    )
     parser.add_argument("--json", action="store_true", help="print one JSON object")
     parser.add_argument("--no-charts", action="store_true", help="leave out the text charts")
     parser.add_argument("--width", type=int, default=None, help="text width (default: terminal)")
@@ -72,6 +78,7 @@ def run(args: argparse.Namespace) -> int:
 
     source = open_source_from_args(args)
     spec = spec_from_args(args, source)
+    show = shown_columns(args.show, source.schema())
     progress = StderrProgress()
     try:
         with pass_engine(args) as engine:
@@ -90,17 +97,56 @@ def run(args: argparse.Namespace) -> int:
             )
     finally:
         progress.finish()
+    shown = worst_row_values(source, report, show) if show else None
     if args.json:
         from triage.views.json import report_to_json
 
-        json.dump(report_to_json(report), sys.stdout, indent=2, allow_nan=False)
+        document = report_to_json(report, shown=shown)
+        json.dump(document, sys.stdout, indent=2, allow_nan=False)
         sys.stdout.write("\n")
         return 0
     from triage.views.text import render_full_report
 
     width = args.width or min(shutil.get_terminal_size((100, 40)).columns, 120)
     text = render_full_report(
-        report, width=width, charts=not args.no_charts, color=False, is_ordered=args.ordered
+        report,
+        width=width,
+        charts=not args.no_charts,
+        color=False,
+        is_ordered=args.ordered,
+        shown=shown,
     )
     sys.stdout.write(text + "\n")
     return 0
+
+
+MAX_SHOWN = 2
+"""Most columns `--show` puts beside the worst rows (they must fit at 80 columns)."""
+
+
+def shown_columns(text: str, schema: Any) -> tuple[str, ...]:
+    """Read `--show`: up to two existing columns, comma-separated."""
+    from triage.core.filter import closest_names_hint
+    from triage.errors import SpecError
+
+    names = tuple(dict.fromkeys(c.strip() for c in text.split(",") if c.strip()))
+    if len(names) > MAX_SHOWN:
+        msg = f"`--show` takes at most {MAX_SHOWN} columns, got {len(names)}: `{text}`"
+        raise SpecError(msg)
+    for name in names:
+        if name not in schema:
+            msg = f"unknown column `{name}` in `--show`{closest_names_hint(name, schema)}"
+            raise SpecError(msg)
+    return names
+
+
+def worst_row_values(source: Any, report: Any, columns: tuple[str, ...]) -> dict[int, Any]:
+    """Read `columns` of every worst row (each listed row once): position -> column -> text."""
+    positions = sorted({r.row for rows in report.diagnostics.worst.values() for r in rows})
+    frame = source.read_rows(positions).select(columns) if positions else None
+    if frame is None:
+        return {}
+    return {
+        position: {c: "(missing)" if v is None else str(v) for c, v in record.items()}
+        for position, record in zip(positions, frame.iter_rows(named=True), strict=True)
+    }
