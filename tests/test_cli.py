@@ -303,9 +303,9 @@ def test_cli_open_takes_top_and_ordered_like_report(small: Path) -> None:
     from triage.cli.commands.open import settings_from_args
     from triage.cli.main import build_parser
 
-    args = build_parser().parse_args(["open", str(small), "--top", "7", "--ordered"])
-    settings = settings_from_args(args)
-    assert settings.top_k == 7 and settings.is_ordered
+    argv = ["open", str(small), "--top", "7", "--ordered", "--show", "label"]
+    settings = settings_from_args(build_parser().parse_args(argv))
+    assert settings.top_k == 7 and settings.is_ordered and settings.show == ("label",)
 
 
 def test_cli_progress_line_names_the_pass_and_counts_its_rows_once() -> None:

@@ -1224,3 +1224,34 @@ async def test_tui_export_choices_show_their_state_without_colour(
         app.screen.query_one("#export-replace").value = True
         await pilot.pause()
         assert "▐X▌ replace the file" in tui_support.screen_text(app)
+
+
+async def test_tui_worst_rows_show_the_columns_the_user_chose(
+    config_home: Path, demo_file: Path
+) -> None:
+    """Oracle: the same rows read back with polars by position."""
+    app = build_app(demo_file, target="minutes", terms="distance_km, stops", show=("delivery_id",))
+    original = pl.read_parquet(demo_file)
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        await press_id(pilot, "pane-worst")
+        worst = app.screen.query_one(WorstPane)
+        table = worst.query_one("#worst-table")
+
+        def shown(name: str) -> list[str]:
+            return [str(table.get_cell(str(p), f"show:{name}")) for p in worst.positions()]
+
+        await wait_until(pilot, lambda: "…" not in shown("delivery_id"), "the rows to be read")
+        expected = [str(original["delivery_id"][p]) for p in worst.positions()]
+        assert shown("delivery_id") == expected
+        # a key in Columns adds a second column, and refuses a third
+        await press_id(pilot, "pane-columns")
+        columns = app.screen.query_one(ColumnsPane)
+        table_columns = columns.query_one("#columns-table")
+        for name in ("depot", "vehicle"):
+            names = [str(table_columns.get_row_at(i)[1]) for i in range(table_columns.row_count)]
+            table_columns.move_cursor(row=names.index(name))
+            await press_id(pilot, "toggle-shown")
+        assert worst.shown_columns == ("delivery_id", "depot")
+        assert any("at most 2 columns" in n.message for n in app._notifications)
+        assert shown("depot") == [str(original["depot"][p]) for p in worst.positions()]

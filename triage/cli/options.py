@@ -6,8 +6,8 @@ import argparse
 import contextlib
 import importlib.util
 import os
-from collections.abc import Callable, Iterator
-from typing import TYPE_CHECKING
+from collections.abc import Callable, Iterator, Mapping
+from typing import TYPE_CHECKING, Any
 
 from triage._typing import ALL_ROWS, RowsToRead
 
@@ -360,3 +360,20 @@ def _is_installed(module: str) -> bool:
         return importlib.util.find_spec(module) is not None
     except (ImportError, ValueError):  # a module blocked in sys.modules has no spec
         return False
+
+
+def shown_columns(text: str, schema: Mapping[str, Any] | None) -> tuple[str, ...]:
+    """Read `--show`: up to two columns, comma-separated (checked against `schema` if given)."""
+    from triage.core.filter import closest_names_hint
+    from triage.errors import SpecError
+    from triage.tui.settings import MAX_SHOWN
+
+    names = tuple(dict.fromkeys(c.strip() for c in text.split(",") if c.strip()))
+    if len(names) > MAX_SHOWN:
+        msg = f"`--show` takes at most {MAX_SHOWN} columns, got {len(names)}: `{text}`"
+        raise SpecError(msg)
+    for name in names:
+        if schema is not None and name not in schema:
+            msg = f"unknown column `{name}` in `--show`{closest_names_hint(name, schema)}"
+            raise SpecError(msg)
+    return names

@@ -12,6 +12,9 @@ from triage._typing import Sampling
 if TYPE_CHECKING:
     from triage.data.source import CsvOptions
 
+MAX_SHOWN = 2
+"""Most columns shown beside each worst row (`--show`): they must fit at 80 columns."""
+
 DEFAULT_SAMPLE_ROWS = 200_000
 """Rows in a quick fit's sample unless the user asks for another number."""
 
@@ -60,6 +63,8 @@ class Settings:
     """The user's keymap file; None means `keymap.toml` in the configuration directory."""
     top_k: int = 50
     """Rows kept per worst-row list."""
+    show: tuple[str, ...] = ()
+    """Up to two columns shown beside each worst row (an id, a name)."""
     is_ordered: bool = False
     """Row order means something (time order): judge serial correlation and trends."""
     scheduler: str | None = None

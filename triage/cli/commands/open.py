@@ -53,6 +53,12 @@ def register(subparsers: Any) -> None:
         help="rows kept in each worst-rows list (default 50)",
     )
     parser.add_argument(
+        "--show",
+        default="",
+        metavar="COLS",
+        help="up to two columns (an id, a name) shown beside each worst row",
+    )
+    parser.add_argument(
         "--ordered",
         action="store_true",
         help="rows are in a meaningful order (time): judge serial correlation and trends",
@@ -68,6 +74,7 @@ def settings_from_args(args: argparse.Namespace) -> Any:
         csv_options_from_args,
         parse_reference,
         scheduler_address,
+        shown_columns,
     )
     from triage.tui.settings import Settings
 
@@ -91,6 +98,7 @@ def settings_from_args(args: argparse.Namespace) -> Any:
         keyset=args.keyset,
         keymap_file=args.keymap,
         top_k=args.top,
+        show=shown_columns(args.show, None),
         is_ordered=args.ordered,
         scheduler=scheduler_address(args.engine, args.scheduler),
     )

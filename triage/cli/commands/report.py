@@ -71,7 +71,12 @@ def register(subparsers: Any) -> None:
 
 def run(args: argparse.Namespace) -> int:
     """Run `triage report`."""
-    from triage.cli.options import open_source_from_args, pass_engine, spec_from_args
+    from triage.cli.options import (
+        open_source_from_args,
+        pass_engine,
+        shown_columns,
+        spec_from_args,
+    )
     from triage.cli.progress import StderrProgress
     from triage.engine.passes import run_report
     from triage.engine.signals import stop_event
@@ -118,26 +123,6 @@ def run(args: argparse.Namespace) -> int:
     )
     sys.stdout.write(text + "\n")
     return 0
-
-
-MAX_SHOWN = 2
-"""Most columns `--show` puts beside the worst rows (they must fit at 80 columns)."""
-
-
-def shown_columns(text: str, schema: Any) -> tuple[str, ...]:
-    """Read `--show`: up to two existing columns, comma-separated."""
-    from triage.core.filter import closest_names_hint
-    from triage.errors import SpecError
-
-    names = tuple(dict.fromkeys(c.strip() for c in text.split(",") if c.strip()))
-    if len(names) > MAX_SHOWN:
-        msg = f"`--show` takes at most {MAX_SHOWN} columns, got {len(names)}: `{text}`"
-        raise SpecError(msg)
-    for name in names:
-        if name not in schema:
-            msg = f"unknown column `{name}` in `--show`{closest_names_hint(name, schema)}"
-            raise SpecError(msg)
-    return names
 
 
 def worst_row_values(source: Any, report: Any, columns: tuple[str, ...]) -> dict[int, Any]:

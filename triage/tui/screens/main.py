@@ -39,6 +39,7 @@ from triage.tui.session import (
     draft_from_settings,
     draft_from_spec,
 )
+from triage.tui.settings import MAX_SHOWN
 from triage.tui.widgets.panes import (
     PANE_BY_ID,
     PANES,
@@ -77,7 +78,14 @@ ROW_CACHE_SIZE: Final = 256
 """Original rows kept after fetching, so stepping back and forth reads nothing again."""
 
 COLUMN_ACTIONS: Final = frozenset(
-    {"set_target", "toggle_term", "cycle_transform", "toggle_categorical", "set_weights"}
+    {
+        "set_target",
+        "toggle_term",
+        "cycle_transform",
+        "toggle_categorical",
+        "set_weights",
+        "toggle_shown",
+    }
 )
 """Actions that work on the column under the cursor of the Columns pane."""
 
@@ -194,6 +202,15 @@ class MainScreen(Screen[None]):
             show=False,
             id="set-weights",
             tooltip="Use the column under the cursor as case weights, or stop doing so.",
+        ),
+        Binding(
+            "l",
+            "toggle_shown",
+            "show in Worst",
+            show=False,
+            id="toggle-shown",
+            tooltip="Show the column under the cursor beside each worst row (two at most), "
+            "or stop.",
         ),
         Binding(
             "f",
@@ -622,6 +639,7 @@ class MainScreen(Screen[None]):
                 weights=None,
                 where=None,
                 categorical=(),
+                show=(),
                 is_full_at_start=False,
             )
             self.app.switch_screen(MainScreen(fresh, opened=message))
@@ -629,6 +647,13 @@ class MainScreen(Screen[None]):
         self.source = message.source
         self._text_facts = {}
         self.segment_columns = segment_columns(message.source.schema(), message.profile)
+        schema = message.source.schema()
+        unknown = [name for name in self.settings.show if name not in schema]
+        if unknown:
+            self.notify(f"--show: no column {', '.join(f'`{n}`' for n in unknown)} in this data")
+        self.query_one(WorstPane).show_columns(
+            tuple(name for name in self.settings.show if name in schema)
+        )
         columns = self.query_one(ColumnsPane)
         columns.profile = message.profile
         if self.settings.terms:
@@ -716,6 +741,24 @@ class MainScreen(Screen[None]):
         column = self._cursor_column()
         if column is not None:
             self._set_draft(self.draft.with_weights_toggled(column))
+
+    def action_toggle_shown(self) -> None:
+        """Show the column under the cursor beside each worst row, or stop (two at most)."""
+        column = self._cursor_column()
+        worst = self.query_one(WorstPane)
+        if column is None:
+            return
+        names = list(worst.shown_columns)
+        if column in names:
+            names.remove(column)
+        elif len(names) >= MAX_SHOWN:
+            self.notify(
+                f"at most {MAX_SHOWN} columns show in Worst: press the key on one to drop it"
+            )
+            return
+        else:
+            names.append(column)
+        worst.show_columns(tuple(names))
 
     def action_edit_filter(self) -> None:
         """Ask for a row filter."""
@@ -1383,6 +1426,8 @@ class MainScreen(Screen[None]):
             fit_number=fit.number,
         )
         self.row_cache[message.position] = view
+        if message.frame is not None and message.frame.height:
+            self.query_one(WorstPane).add_record(message.position, message.frame.row(0, named=True))
         while len(self.row_cache) > ROW_CACHE_SIZE:
             self.row_cache.popitem(last=False)
         if message.position == self.row_position:

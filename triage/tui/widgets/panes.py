@@ -776,6 +776,10 @@ class WorstPane(Pane):
         """Heading of the observed-target column (the target's name)."""
         self.decimals = 1
         """Decimals of observed, fitted and residual under the fit shown."""
+        self.shown_columns: tuple[str, ...] = ()
+        """Source columns shown beside each row (an id, a name), at most two."""
+        self.records: dict[int, dict[str, str]] = {}
+        """Source position -> column -> text of the rows read so far (for `shown_columns`)."""
 
     def compose(self) -> ComposeResult:
         """Add the heading and the table."""
@@ -793,6 +797,8 @@ class WorstPane(Pane):
         ranked = RANKED_BY.get(self.criterion)
         table.add_column("", key="mark")
         table.add_column(_right("row"), key="row")
+        for name in self.shown_columns:
+            table.add_column(name, key=f"show:{name}")
         table.add_column(_right(self.target), key="observed")
         for field, title in WORST_FIGURES:
             table.add_column(_right(f"{title} ▼" if field == ranked else title), key=field)
@@ -846,6 +852,7 @@ class WorstPane(Pane):
             table.add_row(
                 self._mark(index, row),
                 _right(f"{entry.row:,}"),
+                *[self._shown(entry.row, name) for name in self.shown_columns],
                 _right(format_fixed(entry.fitted + entry.resid, decimals)),
                 _right(format_fixed(entry.fitted, decimals)),
                 _right(format_fixed(entry.resid, decimals)),
@@ -856,6 +863,28 @@ class WorstPane(Pane):
             )
         if self.rows:
             table.move_cursor(row=row, animate=False)
+
+    def _shown(self, position: int, name: str) -> str:
+        record = self.records.get(position)
+        return "…" if record is None else record.get(name, "")
+
+    def show_columns(self, names: tuple[str, ...]) -> None:
+        """Show these source columns beside each row (values fill in as rows are read)."""
+        self.shown_columns = names
+        if self.is_mounted:
+            self._set_columns()
+            self._fill()
+
+    def add_record(self, position: int, record: dict[str, object]) -> None:
+        """Keep a row read from the source; fill its shown columns if it is listed."""
+        self.records[position] = {
+            name: "(missing)" if value is None else str(value) for name, value in record.items()
+        }
+        if not self.is_mounted or position not in self.positions():
+            return
+        table = _table(self, "worst-table")
+        for name in self.shown_columns:
+            table.update_cell(str(position), f"show:{name}", self._shown(position, name))
 
     def on_data_table_row_highlighted(self, event: DataTable.RowHighlighted) -> None:
         """Move the cursor mark with the cursor (it shows where it is without colour)."""
