@@ -518,6 +518,19 @@ def test_diagnostics_flags_follow_the_tests(case) -> None:
         assert "may" in flag_message(flag)
 
 
+def test_diagnostics_studentized_quantiles_match_statsmodels(case) -> None:
+    """Oracle: numpy quantiles of statsmodels' externally studentized residuals (grid 0.01)."""
+    data, x, w, fit, _ = case
+    diag = run(fit, config_for(fit, data, x), [batch_of(data, x, w, 0, 240)]).finalize()
+    sw = np.ones_like(data["y"]) if w is None else np.sqrt(w)
+    external = OLSInfluence(
+        sm.OLS(sw * data["y"], sw[:, None] * x).fit()
+    ).resid_studentized_external
+    for p, value in diag.studentized_quantiles.items():
+        assert value == pytest.approx(np.quantile(external, p), abs=0.02)
+    assert len(diag.studentized_quantiles) == 27
+
+
 @pytest.mark.parametrize(("count", "mean"), [(0, 3.0), (1, 0.2), (40, 267.4), (300, 267.4)])
 def test_poisson_upper_tail_matches_scipy(count: int, mean: float) -> None:
     # scipy.stats.poisson.sf(k - 1, mu) = P(X >= k) as oracle

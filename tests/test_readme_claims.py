@@ -171,6 +171,11 @@ def test_readme_tour_gross_errors(tour: ReportOutcome, planted: Any) -> None:
     view = histogram_view(tour.diagnostics.histogram, bars=36)
     assert view.is_robust and view.above == pytest.approx(200, abs=15)
     assert view.edges[-1] < 10_000 - 200  # the gross errors (observed about 60x) lie beyond
+    said("the studentized residuals' quantiles against a normal's lie almost flat", README)
+    said("within about ±0.7 from the 0.1% to the 99.9% point, far off the line", README)
+    quantiles = tour.diagnostics.studentized_quantiles
+    assert (min(quantiles), max(quantiles)) == (0.001, 0.999)
+    assert all(abs(q) < 0.75 for q in quantiles.values())
     said('row 3,883 took 10,260 "minutes" where the model expects about 200', README)
     said("they are all such rows", README)
     top = tour.diagnostics.worst["abs_resid"][0]

@@ -81,6 +81,14 @@ IntArray = NDArray[np.int64]
 RESID_QUANTILES: Final = (0.01, 0.05, 0.25, 0.5, 0.75, 0.95, 0.99)
 """Probabilities of the reported residual quantiles."""
 
+STUDENTIZED_EDGES: Final = np.linspace(-10.0, 10.0, 2001)
+"""Fine grid of the studentized residuals (steps of 0.01) behind the normal quantile chart."""
+QUANTILE_CHART_PROBS: Final = (
+    0.001, 0.005, 0.01, 0.025, 0.05, 0.1, 0.15, 0.2, 0.25, 0.3, 0.35, 0.4, 0.45, 0.5,
+    0.55, 0.6, 0.65, 0.7, 0.75, 0.8, 0.85, 0.9, 0.95, 0.975, 0.99, 0.995, 0.999,
+)  # fmt: skip
+"""Probabilities of the studentized-residual quantiles drawn against the normal's."""
+
 _WORST_FIELDS: Final = ("fitted", "resid", "weighted_resid", "studentized", "leverage", "cooks")
 
 
@@ -160,6 +168,9 @@ class DiagnosticsAccumulator:
         self._fine_lookup = BinLookup(config.fine_edges)
         self._min = math.inf
         self._max = -math.inf
+        self._studentized = np.zeros(STUDENTIZED_EDGES.size + 1, dtype=np.int64)
+        self._studentized_lookup = BinLookup(STUDENTIZED_EDGES)
+        self._studentized_range = (math.inf, -math.inf)
         self._binned = {
             name: BinnedResiduals(edges, config.fine_edges)
             for name, edges in config.binned_edges.items()
@@ -224,6 +235,7 @@ class DiagnosticsAccumulator:
         self._fine += np.bincount(cell, minlength=self._fine.size)
         self._min = min(self._min, float(e.min()))
         self._max = max(self._max, float(e.max()))
+        self._add_studentized(rd.studentized)
         for name, binned in self._binned.items():
             x = rd.fitted if name == "fitted" else batch.frame[name].cast(pl.Float64).to_numpy()
             binned.update(x, e, cell, below, above)
@@ -329,6 +341,12 @@ class DiagnosticsAccumulator:
         self._fine += other._fine
         self._min = min(self._min, other._min)
         self._max = max(self._max, other._max)
+        self._studentized += other._studentized
+        low, high = other._studentized_range
+        self._studentized_range = (
+            min(self._studentized_range[0], low),
+            max(self._studentized_range[1], high),
+        )
         for name, binned in self._binned.items():
             binned.merge(other._binned[name])
         for criterion, top in self._worst.items():
@@ -425,4 +443,24 @@ class DiagnosticsAccumulator:
             resid_skewness=self._moments.skewness(),
             resid_kurtosis=self._moments.kurtosis(),
             flags=raise_flags(self.fit, self.config, self._n, counts, tests, self._moments),
+            studentized_quantiles=self._studentized_quantiles(),
         )
+
+    def _add_studentized(self, studentized: FloatArray) -> None:
+        """Count the finite studentized residuals on their fine grid (for the quantile chart)."""
+        finite = studentized[np.isfinite(studentized)]
+        if not finite.size:
+            return
+        cells = self._studentized_lookup.fine(finite)
+        self._studentized += np.bincount(cells, minlength=self._studentized.size)
+        low, high = self._studentized_range
+        self._studentized_range = (min(low, float(finite.min())), max(high, float(finite.max())))
+
+    def _studentized_quantiles(self) -> dict[float, float]:
+        if not self._studentized.sum():
+            return {}
+        low, high = self._studentized_range
+        values = quantiles_from_counts(
+            self._studentized, STUDENTIZED_EDGES, low, high, QUANTILE_CHART_PROBS
+        )
+        return dict(zip(QUANTILE_CHART_PROBS, values, strict=True))

@@ -277,6 +277,9 @@ class Diagnostics:
     resid_kurtosis: float
     """Moment kurtosis of the weighted residuals (3 for a normal)."""
     flags: tuple[Flag, ...]
+    studentized_quantiles: dict[float, float]
+    """Probability -> quantile of the externally studentized residuals, from a fine grid
+    (steps of 0.01 within ±10); empty without rows. Drawn against the normal's quantiles."""
 
 
 @dataclass(frozen=True)

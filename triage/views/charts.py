@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import math
 import threading
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Final
 
@@ -206,13 +206,28 @@ def render_histogram(histogram: Any, width: int, height: int, *, color: bool) ->
     if counts.size == 0 or (counts.sum() == 0 and below + above == 0):
         return _note("no residuals to draw", width, height)
     centers = (edges[:-1] + edges[1:]) / 2.0
-    tail_note = (
-        f"{_rows(below)} below {format_number(edges[0], digits=3, trim=True)}, "
-        f"{_rows(above)} above {format_number(edges[-1], digits=3, trim=True)}"
-    )
+    lo_text = format_number(edges[0], digits=3, trim=True)
+    hi_text = format_number(edges[-1], digits=3, trim=True)
     total = int(counts.sum()) + below + above
     scale = "median ± 4 robust SD (IQR/1.349)" if view.is_robust else "± 4 SD"
-    bar_width = float(edges[1] - edges[0]) if edges.size > 1 else 1.0
+    bar_width = format_number(float(edges[1] - edges[0]) if edges.size > 1 else 1.0, digits=2)
+    title = _fit_words(
+        (
+            f"residuals of {format_count(total)} rows, {scale}",
+            f"residuals, {'median ± 4 robust SD' if view.is_robust else '± 4 SD'}",
+            "residuals",
+        ),
+        width,
+    )
+    tail_note = _fit_words(
+        (
+            f"{_rows(below)} below {lo_text}, {_rows(above)} above {hi_text}; "
+            f"bars {bar_width} wide",
+            f"{_rows(below)} below {lo_text}, {_rows(above)} above {hi_text}",
+            f"{format_count(below)} below, {format_count(above)} above",
+        ),
+        width,
+    )
 
     def steps() -> None:
         plt.bar(
@@ -222,8 +237,8 @@ def render_histogram(histogram: Any, width: int, height: int, *, color: bool) ->
             marker="sd",
             color=_BAR_COLOR if color else None,
         )
-        plt.title(f"residuals of {format_count(total)} rows, {scale}")
-        plt.xlabel(f"{tail_note}; bars {format_number(bar_width, digits=2, trim=True)} wide")
+        plt.title(title)
+        plt.xlabel(tail_note)
         ticks, labels = _ticks(float(edges[0]), float(edges[-1]), _tick_count(width))
         plt.xticks(ticks, labels)
         top = float(counts.max())
@@ -231,6 +246,79 @@ def render_histogram(histogram: Any, width: int, height: int, *, color: bool) ->
         plt.yticks(y_ticks, [format_count(y) for y in y_ticks] if top >= 10 else y_labels)
 
     return _draw(steps, width, height, color=color)
+
+
+def render_quantile_chart(
+    quantiles: Mapping[float, float], width: int, height: int, *, color: bool
+) -> str:
+    """Draw the studentized residuals' quantiles against a normal's, with the line of equality.
+
+    Points on the line: tails like a normal's. Points that leave it upwards on the right
+    or downwards on the left: heavier tails; a bend to one side only: skew.
+
+    Parameters
+    ----------
+    quantiles : mapping of float to float
+        Probability -> quantile of the studentized residuals (`Diagnostics`).
+    width, height : int
+        Size of the chart in terminal cells.
+    color : bool
+        Colour the chart with ANSI codes; False gives plain text.
+
+    Returns
+    -------
+    str
+        The chart text.
+    """
+    from statistics import NormalDist
+
+    title = "studentized residuals vs normal"
+    if width < _MIN_WIDTH or height < _MIN_HEIGHT:
+        return _note(f"{title}: enlarge to see", width, height)
+    points = sorted((p, q) for p, q in quantiles.items() if 0.0 < p < 1.0 and math.isfinite(q))
+    if not points:
+        return _note(f"{title}: no rows to draw", width, height)
+    normal = [NormalDist().inv_cdf(p) for p, _ in points]
+    observed = [q for _, q in points]
+    lo = min(min(normal), min(observed))
+    hi = max(max(normal), max(observed))
+
+    def steps() -> None:
+        plt.plot([lo, hi], [lo, hi], marker="dot", color=_ZERO_COLOR if color else None)
+        plt.scatter(normal, observed, marker="●", color=_MEAN_COLOR if color else None)
+        plt.title(title)
+        plt.xlabel(
+            _fit_words(
+                (
+                    "normal quantile; on the dotted line: normal tails",
+                    "normal quantiles (line: equal)",
+                ),
+                width,
+            )
+        )
+        ticks, labels = _ticks(min(normal), max(normal), max(3, min(5, width // 14)))
+        plt.xticks(ticks, labels)
+        y_ticks, y_labels = _ticks(lo, hi, max(2, min(5, height // 3)))
+        plt.yticks(y_ticks, y_labels)
+
+    return _draw(steps, width, height, color=color)
+
+
+def _fit_words(wordings: Sequence[str], width: int) -> str:
+    """Return the first wording that fits a chart `width` cells wide (else the last)."""
+    room = width - _LEGEND_MARGIN
+    return next((w for w in wordings if len(w) <= room), wordings[-1])
+
+
+def side_by_side(left: str, right: str, left_width: int) -> str:
+    """Join two charts line by line, the left one padded to `left_width` cells."""
+    from rich.text import Text
+
+    lines = []
+    for a, b in zip(left.split("\n"), right.split("\n"), strict=False):
+        pad = max(0, left_width - Text.from_ansi(a).cell_len)
+        lines.append(f"{a}{' ' * pad}{b}")
+    return "\n".join(lines)
 
 
 def _rows(count: int) -> str:
@@ -252,8 +340,7 @@ def binned_legend(x_label: str, width: int) -> str:
         "~equal-row bins; ● mean, dotted 10-90%",
         "● mean, dotted 10-90%",
     )
-    room = width - _LEGEND_MARGIN
-    return next((w for w in wordings if len(w) <= room), wordings[-1])
+    return _fit_words(wordings, width)
 
 
 _LEGEND_MARGIN: Final = 8

@@ -267,6 +267,9 @@ def _diagnostics_to_json(d: Diagnostics) -> dict[str, Any]:
             "skewness": d.resid_skewness,
             "kurtosis": d.resid_kurtosis,
             "excess_kurtosis": d.resid_kurtosis - 3.0,
+            "studentized_quantiles": {
+                format_number(q, digits=6, trim=True): v for q, v in d.studentized_quantiles.items()
+            },
         },
         "threshold_counts": {
             "studentized": d.counts.studentized,

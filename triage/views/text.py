@@ -869,10 +869,13 @@ def render_full_report(
     ]
     if charts:
         # plotext loads only when charts are drawn: `triage fit` never needs it.
-        from triage.views.charts import render_binned, render_histogram
+        from triage.views.charts import render_binned, render_histogram, render_quantile_chart
 
         height = _chart_height(width)
         sections.append(render_histogram(diagnostics.histogram, width, height, color=color))
+        sections.append(
+            render_quantile_chart(diagnostics.studentized_quantiles, width, height, color=color)
+        )
         for name, bins in diagnostics.binned.items():
             title = "residual by fitted value" if name == "fitted" else f"residual by {name}"
             sections.append(

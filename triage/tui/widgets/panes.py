@@ -643,6 +643,10 @@ class ChartPane(Pane):
         return not self.is_colorless
 
 
+SIDE_BY_SIDE_WIDTH: Final = 70
+"""From this width the Spread pane draws the normal quantile chart beside the histogram."""
+
+
 class SpreadPane(ChartPane):
     """The residual histogram."""
 
@@ -650,10 +654,17 @@ class SpreadPane(ChartPane):
         """Draw the histogram of residuals."""
         if self.shown is None:
             return None
-        from triage.views.charts import render_histogram
+        from triage.views.charts import render_histogram, render_quantile_chart, side_by_side
 
-        histogram = self.shown.report.diagnostics.histogram
-        return render_histogram(histogram, width, height, color=self.color())
+        diagnostics = self.shown.report.diagnostics
+        if width < SIDE_BY_SIDE_WIDTH:
+            return render_histogram(diagnostics.histogram, width, height, color=self.color())
+        left = width * 11 // 20
+        histogram = render_histogram(diagnostics.histogram, left, height, color=self.color())
+        quantile_chart = render_quantile_chart(
+            diagnostics.studentized_quantiles, width - left, height, color=self.color()
+        )
+        return side_by_side(histogram, quantile_chart, left)
 
 
 class TrendPane(ChartPane):
