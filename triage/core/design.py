@@ -334,15 +334,28 @@ def design_width(spec: ModelSpec, tables: Mapping[str, LevelTable]) -> int:
     return width
 
 
-def design_memory_bytes(n_columns: int, batch_rows: int, n_workers: int) -> int:
+SQUARE_MATRICES_PER_WORKER = 12
+"""Width-by-width float64 matrices one worker may hold at once, counted from the passes:
+the factor, its inverse and the covariance (3), three HC meats (3), the two auxiliary tests'
+factors with their pending Gram matrices (4), and a factor being merged (2)."""
+
+MIN_BLOCK_ROWS = 4_096
+"""Fewest rows of a written-out design block (`engine.passes.batch_rows_for`)."""
+
+
+def design_memory_bytes(n_columns: int, batch_rows: int, n_workers: int, block_values: int) -> int:
     """Estimate the peak memory of a pass over a design of `n_columns` columns.
 
-    Each worker holds its triangular factor (the shifted design plus target and a spare
-    column), twice that while two factors merge, and a batch's design three times over
-    (the polars frame, its float64 copy, the shifted copy the accumulator factors).
+    Each worker holds `SQUARE_MATRICES_PER_WORKER` width-by-width matrices and one design
+    block three times over (the polars frame, its float64 copy, the shifted copy the
+    accumulator factors). A block written out whole (indicators included) has at most
+    `block_values` values, and never more rows than a batch: the passes cut wider batches
+    into such blocks, and keep categoricals as level codes where they can, so the block is
+    the most a batch can cost.
     """
     width = n_columns + 2
-    per_worker = 3 * width * width * 8 + 3 * batch_rows * width * 8
+    block_rows = min(batch_rows, max(block_values // width, MIN_BLOCK_ROWS))
+    per_worker = SQUARE_MATRICES_PER_WORKER * width * width * 8 + 3 * block_rows * width * 8
     return n_workers * per_worker
 
 
@@ -367,20 +380,27 @@ class DesignBudget:
         Rows per batch of the pass.
     n_workers : int
         Threads that each hold a factor and a batch.
+    block_values : int
+        Most values of a design block written out whole (the passes cut batches to it).
     """
 
     limit_bytes: int
     batch_rows: int
     n_workers: int
+    block_values: int
+
+    def need_bytes(self, n_columns: int) -> int:
+        """Estimated peak memory of a pass over `n_columns` design columns."""
+        return design_memory_bytes(n_columns, self.batch_rows, self.n_workers, self.block_values)
 
     def max_columns(self) -> int:
         """Most design columns that fit within the limit."""
         low, high = 0, 1
-        while design_memory_bytes(high, self.batch_rows, self.n_workers) <= self.limit_bytes:
+        while self.need_bytes(high) <= self.limit_bytes:
             low, high = high, 2 * high
         while high - low > 1:
             middle = (low + high) // 2
-            if design_memory_bytes(middle, self.batch_rows, self.n_workers) <= self.limit_bytes:
+            if self.need_bytes(middle) <= self.limit_bytes:
                 low = middle
             else:
                 high = middle
@@ -389,7 +409,7 @@ class DesignBudget:
     def check(self, spec: ModelSpec, tables: Mapping[str, LevelTable]) -> None:
         """Raise `DataError` in one line when the design would need more than the limit."""
         width = design_width(spec, tables)
-        need = design_memory_bytes(width, self.batch_rows, self.n_workers)
+        need = self.need_bytes(width)
         if need <= self.limit_bytes:
             return
         widest = max(tables.values(), key=lambda t: len(t.levels), default=None)

@@ -36,6 +36,7 @@ from triage.engine.passes import (
     PassPlan,
     RowCounts,
     check_rows_left,
+    dense_pieces,
     naming_values_too_large,
 )
 from triage.engine.progress import ProgressCallback, ProgressTracker
@@ -227,8 +228,11 @@ def compare_models(
     def new_part() -> _ComparePart:
         return _ComparePart.empty(builders)
 
+    widest = max(builders, key=lambda builder: len(builder.column_names))
+
     def fold(part: _ComparePart, frame: pl.DataFrame) -> None:
-        part.update(builders, frame, holdout)
+        for piece in dense_pieces(widest, frame):
+            part.update(builders, piece, holdout)
 
     counts = RowCounts()
     tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)

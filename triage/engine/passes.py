@@ -19,7 +19,13 @@ import numpy as np
 import polars as pl
 
 from triage._typing import ALL_ROWS
-from triage.core.design import CodedBatch, DesignBatch, DesignBudget, DesignBuilder
+from triage.core.design import (
+    MIN_BLOCK_ROWS,
+    CodedBatch,
+    DesignBatch,
+    DesignBudget,
+    DesignBuilder,
+)
 from triage.core.filter import parse_filter
 from triage.core.levels import LevelCounter
 from triage.core.limits import check_column_values, check_factor_scale
@@ -91,8 +97,24 @@ def default_memory_limit() -> int:
 
 def batch_rows_for(n_columns: int, values: int = BATCH_VALUES) -> int:
     """Rows per batch when reading `n_columns` columns: a power of two, 4,096 to `BATCH_ROWS`."""
-    rows = max(values // max(n_columns, 1), 4_096)
+    rows = max(values // max(n_columns, 1), MIN_BLOCK_ROWS)
     return min(BATCH_ROWS, 1 << (rows.bit_length() - 1))
+
+
+def dense_pieces(
+    builder: DesignBuilder, frame: pl.DataFrame, values: int = BATCH_VALUES
+) -> Iterator[pl.DataFrame]:
+    """Cut `frame` so that each piece's design, written out whole, holds about `values` values.
+
+    A batch is sized by the columns it reads; a categorical of many levels makes its design
+    far wider, so a batch written out with its indicators (when the level codes cannot be
+    used) is cut into pieces, as `DesignBudget` assumes.
+    """
+    step = batch_rows_for(len(builder.column_names) + 2, values)
+    if frame.height <= step:
+        yield frame
+        return
+    yield from frame.iter_slices(step)
 
 
 @dataclass
@@ -576,6 +598,7 @@ class PassPlan:
             limit_bytes=limit if limit is not None else default_memory_limit(),
             batch_rows=batch_rows_for(len(self.columns), FIT_BATCH_VALUES),
             n_workers=pass_workers(),
+            block_values=FIT_BATCH_VALUES,
         )
 
     def learn(self, tracker: ProgressTracker) -> DesignBuilder:
@@ -802,9 +825,10 @@ def _fit_pass(
                 part_counts.add(coded)
                 return
             # Rows to drop (nulls, NaN, levels, domain) or weights: the batch's full build.
-            batch = builder.build(frame)
-            part_counts.add(batch)
-            accumulator.update(batch.x, batch.y, batch.weights)
+            for piece in dense_pieces(builder, frame, FIT_BATCH_VALUES):
+                batch = builder.build(piece)
+                part_counts.add(batch)
+                accumulator.update(batch.x, batch.y, batch.weights)
 
     def merge(
         part: tuple[QRAccumulator, RowCounts], other: tuple[QRAccumulator, RowCounts]
@@ -974,9 +998,13 @@ def _diagnose(
 
     def run(indicators: Sequence[int]) -> Diagnostics:
         def fold(accumulator: DiagnosticsAccumulator, frame: pl.DataFrame) -> None:
-            batch = build_for_diagnostics(builder, frame, use_codes=bool(indicators))
-            if batch.n_rows:
-                accumulator.update(batch)
+            coded = builder.build_coded(frame) if indicators else None
+            batches = (
+                [coded] if coded is not None else map(builder.build, dense_pieces(builder, frame))
+            )
+            for batch in batches:
+                if batch.n_rows:
+                    accumulator.update(batch)
 
         def new_part() -> DiagnosticsAccumulator:
             return DiagnosticsAccumulator(fit, config, indicators=indicators)
