@@ -50,3 +50,31 @@ async def test_tui_signal_mid_pass_closes_the_app(
     assert sent == [1]
     assert app.return_code == 128 + signum
     assert all(worker.is_cancelled or worker.is_finished for worker in app.workers)
+
+
+def test_tui_app_stuck_closing_after_a_signal_is_ended_without_partial_files(
+    tmp_path: Path,
+) -> None:
+    # The close deadline: an app that cannot close (its terminal gone, Textual's writer
+    # stopped) is ended with 128+N, its export temporaries removed, in a child process.
+    import subprocess
+    import sys
+
+    temporary = tmp_path / "worst.csv.part"
+    code = (
+        "import signal, sys, threading\n"
+        "from pathlib import Path\n"
+        "from triage.data.bus_guard import TEMPORARIES\n"
+        "from triage.tui.app import _end_if_still_closing\n"
+        f"path = Path({str(temporary)!r}); path.write_text('partial'); TEMPORARIES.add(path)\n"
+        "threading.Thread(target=_end_if_still_closing, args=(signal.SIGHUP, 0.05)).start()\n"
+        "threading.Event().wait()  # an app stuck closing\n"
+    )
+    done = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, timeout=60, check=False
+    )
+    assert done.returncode == 128 + signal.SIGHUP
+    assert not temporary.exists()
+    assert done.stderr.splitlines() == [
+        "triage: stopped by SIGHUP; the app could not close in time and was ended"
+    ]

@@ -3,13 +3,17 @@
 from __future__ import annotations
 
 import asyncio
+import contextlib
+import os
 import signal
 import threading
+import time
 from typing import TYPE_CHECKING, ClassVar, Final
 
 from textual.app import App
 from textual.binding import Binding, BindingType
 
+from triage.data.bus_guard import TEMPORARIES
 from triage.engine.signals import HANDLED_SIGNALS
 from triage.tui.commands import TriageCommands
 from triage.tui.keymap import binding_ids, keymap_overrides, load_keymap
@@ -70,6 +74,9 @@ class TriageApp(App[None]):
         """Merged keymap (binding id -> key) applied on mount."""
         self.head_start = head_start
         """Work begun before the app started, handed to the first main screen."""
+        self.close_deadline_s: float | None = None
+        """Seconds the app may take to close after a signal before the process ends anyway
+        (`triage open` sets it; None in tests, which run the app inside the test process)."""
         self.animation_level = "none"
 
     def on_mount(self) -> None:
@@ -97,6 +104,13 @@ class TriageApp(App[None]):
         """
         self.workers.cancel_all()
         name = signal.Signals(signum).name
+        if self.close_deadline_s is not None:
+            threading.Thread(
+                target=_end_if_still_closing,
+                args=(signum, self.close_deadline_s),
+                name="triage-close-deadline",
+                daemon=True,
+            ).start()
         self.exit(
             return_code=128 + signum,
             message=f"triage: stopped by {name}; the app closed and left no partial file",
@@ -123,6 +137,24 @@ class TriageApp(App[None]):
 
 BINDING_OWNERS: Final = (TriageApp, MainScreen, HelpScreen, ErrorScreen, PromptScreen, ExportScreen)
 """The app and its screens: the classes whose bindings a keymap may name."""
+
+
+def _end_if_still_closing(signum: int, deadline_s: float) -> None:
+    """End the process `deadline_s` after a signal if the app has not closed by then.
+
+    After SIGHUP the terminal is gone, and Textual's writer thread can stop on a write to it
+    while the app waits for it to drain its queue: seen here, an app whose tmux session was
+    killed still waited 45 minutes later, holding its memory. Temporary export files are
+    removed first, so nothing partial is left.
+    """
+    time.sleep(deadline_s)
+    for temporary in list(TEMPORARIES):
+        temporary.unlink(missing_ok=True)
+    name = signal.Signals(signum).name
+    line = f"triage: stopped by {name}; the app could not close in time and was ended\n"
+    with contextlib.suppress(OSError):
+        os.write(2, line.encode())
+    os._exit(128 + signum)
 
 
 def all_binding_ids() -> tuple[str, ...]:

@@ -15,6 +15,9 @@ from triage.cli.options import (
     integer_option,
 )
 
+CLOSE_DEADLINE_S = 10.0
+"""Seconds the app may take to close after SIGINT, SIGTERM or SIGHUP before it is ended."""
+
 
 def register(subparsers: Any) -> None:
     """Add the `open` command."""
@@ -118,6 +121,7 @@ def run(args: argparse.Namespace) -> int:
         from triage.tui.app import make_app
 
         app = make_app(settings, head_start=head_start)
+        app.close_deadline_s = CLOSE_DEADLINE_S
         app.run()
     finally:
         head_start.stop()
