@@ -135,8 +135,10 @@ def measure_cpu(
     env = {"OPENBLAS_NUM_THREADS": "1", **_environ()}
     if pythonpath is not None:
         env["PYTHONPATH"] = pythonpath
+    # -P: the working folder is not put first on the path, so a checkout it holds cannot
+    # stand in for the one PYTHONPATH (or the installation) names.
     done = subprocess.run(
-        [sys.executable, "-c", MEASURE, script, *args],
+        [sys.executable, "-P", "-c", MEASURE, script, *args],
         capture_output=True,
         text=True,
         check=False,
