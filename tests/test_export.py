@@ -177,3 +177,29 @@ def test_export_note_goes_to_metadata_or_a_sidecar(tmp_path: Path, name: str) ->
             write_frame(_frame(4), tmp_path / "other.csv", note=note)
         assert not (tmp_path / "other.csv").exists()
     assert _leftovers(tmp_path) == []
+
+
+def test_cli_exports_name_the_fit_that_scored_their_rows(tmp_path: Path) -> None:
+    # A file handed on says which model, filter and basis scored its rows: in the Parquet
+    # metadata, or in a note beside a CSV (as the app's exports do).
+    import pyarrow.parquet as pq
+
+    from triage.cli.main import main
+    from triage.data.export import NOTE_KEY, NOTE_SUFFIX
+
+    demo = Path(__file__).resolve().parents[1] / "sample_parquet" / "deliveries.parquet"
+    model = ["-y", "minutes", "-x", "distance_km, depot", "--where", "minutes < 1000"]
+    every = tmp_path / "every.parquet"
+    assert main(["export", str(demo), *model, "--all", "--out", str(every)]) == 0
+    note = pq.read_schema(every).metadata[NOTE_KEY.encode()].decode()
+    assert note == (
+        "scored by minutes ~ distance_km + depot | where minutes < 1000 | fitted on every row"
+    )
+    worst = tmp_path / "worst.csv"
+    command = ["export", str(demo), *model, "--worst", "5", "--rows", "20000"]
+    assert main([*command, "--out", str(worst)]) == 0
+    sidecar = worst.with_name(worst.name + NOTE_SUFFIX)
+    assert sidecar.read_text().splitlines() == [
+        "scored by minutes ~ distance_km + depot | where minutes < 1000"
+        " | fitted on a sample of about 20,000 rows"
+    ]

@@ -472,7 +472,7 @@ CASES: list[Case] = [
         ["export", "{in}/deliveries.csv", *MODEL, "--worst", "4", "--out", "{out}/w.csv"],
         0,
         (),
-        ("w.csv",),
+        ("w.csv", "w.csv.fit.txt"),  # the export and its note naming the fit
     ),
 ]
 """The catalogue."""

@@ -125,11 +125,13 @@ def export_worst_rows(
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
     engine: PassEngine | None = None,
+    note: str | None = None,
 ) -> tuple[Path, int, DataSummary]:
     """Fit, rank rows by `criterion`, and write the `k` worst.
 
     Every row is ranked by default (`rows=ALL_ROWS`); a list handed on should not depend on a
-    sample. Returns the path, the number of rows written and the rows ranked.
+    sample. `note` says which fit scored the rows (see `export_rows`). Returns the path, the
+    number of rows written and the rows ranked.
     """
     report = run_report(
         source,
@@ -143,7 +145,7 @@ def export_worst_rows(
         engine=engine,
     )
     positions = [entry.row for entry in report.diagnostics.worst[criterion]]
-    written = export_rows(source, report.outcome, positions, out, force=force)
+    written = export_rows(source, report.outcome, positions, out, force=force, note=note)
     return written, len(positions), report.outcome.data
 
 
@@ -215,12 +217,14 @@ def export_all_rows(
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
     engine: PassEngine | None = None,
+    note: str | None = None,
 ) -> tuple[Path, dict[str, int]]:
     """Fit (on every row by default, or a sample), then write one line per source row to `out`.
 
     Each line holds the row's position, its `status` (``used`` or why the fit left it out)
     and, where the model scored it, the `DIAGNOSTIC_COLUMNS`. Memory stays bounded: one
-    batch is held at a time. Returns the path and the number of rows of each status.
+    batch is held at a time. `note` says which fit scored the rows (see `export_rows`).
+    Returns the path and the number of rows of each status.
     With a cluster `engine`, the fit over every row runs on the cluster and only the fit
     comes back; the rows are then read and written here, next to the output, so no row
     crosses the network.
@@ -236,7 +240,8 @@ def export_all_rows(
         engine=engine,
     )
     counts: dict[str, int] = {}
-    with StreamingExport(out, force=force, protected=(*source.files, source.path)) as sink:
+    protected = (*source.files, source.path)
+    with StreamingExport(out, force=force, protected=protected, note=note) as sink:
         for frame in _status_frames(source, outcome, on_progress=on_progress, cancel=cancel):
             sink.write(frame)
             for status, n in frame.get_column("status").value_counts().iter_rows():

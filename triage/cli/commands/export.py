@@ -15,6 +15,8 @@ from triage.cli.options import (
 )
 
 if TYPE_CHECKING:
+    from triage._typing import RowsToRead
+    from triage.core.spec import ModelSpec
     from triage.results.fit import DataSummary
 
 
@@ -68,6 +70,7 @@ def run(args: argparse.Namespace) -> int:
     source = open_source_from_args(args)
     spec = spec_from_args(args, source)
     check_output_path(args.out, force=args.force, protected=(*source.files, source.path))
+    note = export_note(spec, args.rows)
     progress = StderrProgress()
     try:
         with pass_engine(args) as engine:
@@ -83,6 +86,7 @@ def run(args: argparse.Namespace) -> int:
                     on_progress=progress,
                     cancel=stop_event,
                     engine=engine,
+                    note=note,
                 )
             else:
                 written, n_rows, data = export_worst_rows(
@@ -98,6 +102,7 @@ def run(args: argparse.Namespace) -> int:
                     on_progress=progress,
                     cancel=stop_event,
                     engine=engine,
+                    note=note,
                 )
     finally:
         progress.finish()
@@ -144,3 +149,22 @@ def ranked_basis(data: DataSummary, criterion: str) -> str:
         f"ranked by {by} among a SAMPLE of {data.rows_used:,} rows only ({data.sample}); "
         "`--rows all` ranks every row"
     )
+
+
+def export_note(spec: ModelSpec, rows: RowsToRead) -> str:
+    """Say in one line which fit scores the exported rows: the model, its filter and basis.
+
+    It goes into the Parquet file's metadata, or a note beside a CSV (as the app's exports).
+    """
+    from triage._typing import ALL_ROWS
+    from triage.views.text import model_formula
+
+    parts = [f"scored by {model_formula(spec)}"]
+    if spec.where:
+        parts.append(f"where {spec.where}")
+    if spec.weights:
+        parts.append(f"weights {spec.weights}")
+    parts.append(
+        "fitted on every row" if rows is ALL_ROWS else f"fitted on a sample of about {rows:,} rows"
+    )
+    return " | ".join(parts)
