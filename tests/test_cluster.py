@@ -512,7 +512,7 @@ async def test_tui_full_pass_runs_on_the_cluster_and_the_sample_fit_here(
         assert screen.current is not None and not screen.current.is_full_pass
         assert screen.cluster is None  # the sample fit never touched the cluster
         await press_id(pilot, "start-full-pass")
-        await wait_until(pilot, lambda: screen.running_pass is None, "the full pass to end")
+        await wait_until(pilot, lambda: screen.passes.running_pass is None, "the full pass to end")
         await settle(pilot)
         assert screen.current is not None and screen.current.is_full_pass
         assert screen.cluster is not None and screen.cluster.is_connected
