@@ -11,7 +11,7 @@ import functools
 import os
 import threading
 import time
-from collections.abc import Callable, Collection, Generator, Iterator, Sequence
+from collections.abc import Callable, Collection, Generator, Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Protocol, TypeVar
 
@@ -227,6 +227,16 @@ def drop_marked_rows(
     return frame.filter(pl.Series(keep))
 
 
+def counted_frames(
+    batches: Iterable[Batch], counts: RowCounts, marked: NDArray[np.int64] | None
+) -> Iterator[pl.DataFrame]:
+    """Yield the frames of `batches`, counting their rows and leaving out `marked` ones."""
+    for batch in batches:
+        counts.read = batch.rows_read
+        counts.kept_by_filter += batch.frame.height
+        yield batch.frame if marked is None else drop_marked_rows(batch.frame, marked, counts)
+
+
 def fold_part(
     read_part: Callable[[], Iterator[Batch]],
     state: S,
@@ -245,17 +255,42 @@ def fold_part(
     before each batch (a cancel); a set `stopping` ends the part early; `keep`, if given,
     receives each folded frame (a report keeps them for pass 2, `KeptFrames`).
     """
-    for batch in read_part():
+    for frame in counted_frames(read_part(), counts, marked):
         if stopping is not None and stopping.is_set():
             break
         check()
-        counts.read = batch.rows_read
-        counts.kept_by_filter += batch.frame.height
-        frame = batch.frame if marked is None else drop_marked_rows(batch.frame, marked, counts)
         fold(state, frame)
         if keep is not None:
             keep(frame)
     return state
+
+
+def fold_each_frame(
+    frames: Iterable[pl.DataFrame],
+    new_part: Callable[[], S],
+    fold: Callable[[S, pl.DataFrame], None],
+    merge: Callable[[S, S], S],
+    *,
+    wait: Callable[[], None],
+    keep: Callable[[int, pl.DataFrame], None] | None = None,
+    n_workers: int | None = None,
+) -> S:
+    """Fold each frame into a part of its own on worker threads; merge them in frame order.
+
+    This is how a pass over a source of one part (a stream) folds, here or on a cluster
+    worker, so both give the same bits. `keep`, if given, receives each frame and its number.
+    """
+
+    def fold_frame(unit: tuple[int, pl.DataFrame], stopping: threading.Event) -> S:
+        k, frame = unit
+        state = new_part()
+        fold(state, frame)
+        if keep is not None:
+            keep(k, frame)
+        return state
+
+    merged = fold_in_order(enumerate(frames), fold_frame, merge, wait=wait, n_workers=n_workers)
+    return new_part() if merged is None else merged
 
 
 class PassPlan:
@@ -340,21 +375,25 @@ class PassPlan:
         batch_values: int = BATCH_VALUES,
         columns: Sequence[str] | None = None,
         drop_marked: bool = True,
+        part: Callable[[], Iterator[Batch]] | None = None,
     ) -> Generator[pl.DataFrame, None, None]:
         """Yield the filtered frames of the pass, counting rows and reporting progress.
 
         `columns` reads other columns than the plan's (a first read of the categoricals);
-        `drop_marked=False` keeps the rows the user marked.
+        `drop_marked=False` keeps the rows the user marked; `part` is read in place of
+        the whole source (its one part, `Source.scan_parts`).
         """
         columns = self.columns if columns is None else list(columns)
         step = batch_rows_for(len(columns), batch_values)
         if self.sample is None:
-            batches = self.source.scan_batches(columns, where=self.where, batch_rows=step)
-            for batch in ReadAhead(iter(batches)):
-                counts.read = batch.rows_read
-                counts.kept_by_filter += batch.frame.height
-                tracker.advance(batch.rows_read)
-                yield self._drop_excluded(batch.frame, counts) if drop_marked else batch.frame
+            if part is None:
+                part = functools.partial(
+                    self.source.scan_batches, columns, where=self.where, batch_rows=step
+                )
+            marked = self.exclude if drop_marked else None
+            for frame in counted_frames(ReadAhead(iter(part())), counts, marked):
+                tracker.advance(counts.read)
+                yield frame
             return
         frame = self.sample.frame
         counts.read = self.sample.rows_read
@@ -488,15 +527,6 @@ class PassPlan:
                 tracker.advance(counts.read, force=True)
                 return folded
         if len(parts) < 2:
-
-            def fold_frame(unit: tuple[int, pl.DataFrame], stopping: threading.Event) -> S:
-                k, frame = unit
-                state = new_part()
-                fold(state, frame)
-                if keep is not None:
-                    keep(k, frame)
-                return state
-
             with contextlib.closing(
                 self.frames(
                     counts,
@@ -504,10 +534,10 @@ class PassPlan:
                     batch_values=batch_values,
                     columns=columns,
                     drop_marked=drop_marked,
+                    part=parts[0] if parts else None,
                 )
             ) as frames:
-                merged = fold_in_order(enumerate(frames), fold_frame, merge, wait=tracker.check)
-            return new_part() if merged is None else merged
+                return fold_each_frame(frames, new_part, fold, merge, wait=tracker.check, keep=keep)
         part_counts = [RowCounts() for _ in parts]
 
         def fold_unit(k: int, stopping: threading.Event) -> S:
