@@ -28,6 +28,7 @@ from triage.core.design import (
     DesignBuilder,
 )
 from triage.core.filter import parse_filter
+from triage.core.indicator_terms import IndicatorRows, indicator_parts
 from triage.core.levels import LevelCounter
 from triage.core.limits import check_column_values, check_factor_scale
 from triage.core.lsq import QRAccumulator, UncertifiedGram
@@ -43,6 +44,7 @@ if TYPE_CHECKING:
     from numpy.typing import NDArray
 
     from triage._typing import RowsToRead, Sampling
+    from triage.core.indicator_terms import IndicatorLevel
     from triage.core.levels import LevelTable
     from triage.core.lsq import LinearFit
     from triage.core.spec import ModelSpec
@@ -627,6 +629,35 @@ class PassPlan:
             drop_marked=False,
         ).finalize()
 
+    def count_indicator_rows(
+        self, tracker: ProgressTracker, specs: Sequence[ModelSpec] = ()
+    ) -> dict[str, IndicatorLevel] | None:
+        """Count the rows holding each indicator term's level over every row, or None.
+
+        None for a sample (the design counts the sample) or a model without an indicator
+        term such as ``depot=north``. Like `count_levels`, it reads only the indicators'
+        columns (and the filter's), counting marked rows too, so a level that only rows
+        left out for a missing value elsewhere hold is still a level of the column.
+        """
+        terms = indicator_parts(specs or (self.spec,))
+        if self.sample is not None or not terms:
+            return None
+        schema = self.source.schema()
+
+        def fold(counter: IndicatorRows, frame: pl.DataFrame) -> None:
+            counter.update(frame)
+
+        return self.fold_frames(
+            lambda: IndicatorRows(schema, terms),
+            fold,
+            IndicatorRows.merge,
+            RowCounts(),
+            tracker,
+            batch_values=FIT_BATCH_VALUES,
+            columns=list(dict.fromkeys(t.column for t in terms if t.column)),
+            drop_marked=False,
+        ).finalize()
+
     def budget(self) -> DesignBudget:
         """Return this pass's design memory budget (the spec's `max_memory` or the default)."""
         limit = self.spec.max_memory
@@ -646,6 +677,7 @@ class PassPlan:
             self.source.schema(),
             self.learning_frame,
             level_tables=self.count_levels(tracker, cap),
+            indicator_levels=self.count_indicator_rows(tracker),
             budget=budget,
         )
 
