@@ -18,6 +18,13 @@ from typing import TYPE_CHECKING, Final
 import numpy as np
 import polars as pl
 
+from triage.core.indicator_terms import (
+    IndicatorLevel,
+    check_indicator_levels,
+    count_indicator_rows,
+    indicator_match,
+    indicator_parts,
+)
 from triage.core.indicators import CodedDesign, IndicatorCodes
 from triage.core.levels import (
     FoundLevels,
@@ -26,7 +33,7 @@ from triage.core.levels import (
     level_text,
     present_value,
 )
-from triage.core.spec import Term, is_categorical_dtype, quote_name
+from triage.core.spec import Term, indicator_name, is_categorical_dtype, quote_name
 from triage.errors import DataError, SpecError
 
 if TYPE_CHECKING:
@@ -67,59 +74,6 @@ _DROP_HINT: Final = (
 )
 _OVERFLOW_TRANSFORMS: Final = frozenset({"square", "pow", "poly"})
 _SQL_NAME: Final = re.compile(r"[A-Za-z_][A-Za-z0-9_]*\Z")
-_BRACKET_INDICATOR: Final = re.compile(r"(.+?)\[(.*)\]")
-"""The bracket form ``depot[north]`` of an indicator name, still accepted as input."""
-
-
-def indicator_name(column: str, level: str) -> str:
-    """Name the indicator (dummy) column of one level of a categorical column.
-
-    Every view, export and JSON document shows an indicator under this one name:
-    ``vehicle=cargo_bike`` reads as "the rows where `vehicle` is `cargo_bike`".
-
-    Parameters
-    ----------
-    column : str
-        The categorical column (written in backticks when not a plain name).
-    level : str
-        The level the indicator is 1 for.
-
-    Returns
-    -------
-    str
-        ``column=level``.
-    """
-    return f"{quote_name(column)}={level}"
-
-
-def split_indicator_name(text: str) -> tuple[str, str] | None:
-    """Read an indicator name typed by a user back into (column, level).
-
-    Accepts our form ``depot=north`` and, for older notes and scripts, ``depot[north]``.
-    A backticked column name is unquoted.
-
-    Parameters
-    ----------
-    text : str
-        The typed name.
-
-    Returns
-    -------
-    tuple of (str, str) or None
-        The column and the level (both stripped), or None when `text` is neither form.
-    """
-    text = text.strip()
-    bracket = _BRACKET_INDICATOR.fullmatch(text)
-    if bracket is not None:
-        column, level = bracket.group(1), bracket.group(2)
-    else:
-        column, sep, level = text.partition("=")
-        if not sep:
-            return None
-    column, level = column.strip(), level.strip()
-    if len(column) > 1 and column.startswith("`") and column.endswith("`"):
-        column = column[1:-1]
-    return (column, level) if column else None
 
 
 @dataclass(frozen=True)
@@ -461,7 +415,8 @@ class DesignBuilder:
     term_of_column : tuple of str
         The term label of each design column (``intercept`` for the column of ones).
     numeric_predictors : tuple of str
-        Source columns used by numeric, transform and interaction terms, in order.
+        Source columns used by numeric, transform and interaction terms, in order (not
+        the column of an indicator term such as ``depot=north``).
     levels : mapping of str to tuple of str
         Each categorical column's levels in natural order, reference included.
     level_tables : mapping of str to LevelTable
@@ -507,6 +462,7 @@ class DesignBuilder:
         sample: pl.DataFrame,
         *,
         level_tables: Mapping[str, LevelTable] | None = None,
+        indicator_levels: Mapping[str, IndicatorLevel] | None = None,
         budget: DesignBudget | None = None,
     ) -> DesignBuilder:
         """Learn the coding of every term: levels and references, and `std()` scaling.
@@ -514,9 +470,11 @@ class DesignBuilder:
         A categorical's levels are those of `level_tables` (counted over every row of a
         full pass) or else of the sample rows with a value in that column; its reference is
         the one the spec names, else the level with the most of those rows, ties going to
-        the first in natural order (`LevelTable.most_frequent`). The mean and SD behind
-        ``std(x)`` come from the sample rows that have a usable value in every model column
-        and meet every domain check, i.e. the rows `build` would keep.
+        the first in natural order (`LevelTable.most_frequent`). An indicator term's level
+        must be held by a row of `indicator_levels` (a full pass counts every row) or else
+        of the sample. The mean and SD behind ``std(x)`` come from the sample rows that
+        have a usable value in every model column and meet every domain check, i.e. the
+        rows `build` would keep.
 
         Parameters
         ----------
@@ -528,6 +486,9 @@ class DesignBuilder:
             Rows holding at least the spec's model columns (target, terms, weights).
         level_tables : mapping of str to LevelTable, optional
             Levels counted over every row a full pass reads; None learns them from `sample`.
+        indicator_levels : mapping of str to IndicatorLevel, optional
+            Rows holding each indicator term's level, counted over every row a full pass
+            reads (`IndicatorRows`); None counts them in `sample`.
         budget : DesignBudget, optional
             Memory the design may take; checked before any design column is made.
 
@@ -539,7 +500,8 @@ class DesignBuilder:
         ------
         SpecError
             If a categorical column has more than ``spec.max_levels`` levels, a given
-            reference level is not among its levels, or two design columns share a name.
+            reference level is not among its levels, no row holds an indicator term's
+            level, or two design columns share a name.
         DataError
             If a categorical has fewer than two levels, a ``std`` term has no spread in
             the usable sample rows, or the design would need more memory than `budget`.
@@ -551,6 +513,13 @@ class DesignBuilder:
         else:
             basis = "the rows read"
         tables = {c: _check_levels(spec, level_tables[c], basis) for c in categorical}
+        indicators = indicator_parts([spec])
+        if indicators:
+            if indicator_levels is None:
+                indicator_levels = count_indicator_rows(schema, indicators, sample)
+                check_indicator_levels(indicator_levels, "the sample")
+            else:
+                check_indicator_levels(indicator_levels, "the rows read")
         if budget is not None:
             budget.check(spec, tables)
         present = _all([present_value(c, schema[c]) for c in spec.model_columns()])
@@ -570,6 +539,8 @@ class DesignBuilder:
         def single(term: Term) -> pl.Expr:
             column = term.column
             assert column is not None  # callers pass one-column terms
+            if term.kind == "indicator":
+                return indicator_match(term, schema[column])
             x = _as_float(column)
             match term.transform:
                 case None:
@@ -648,7 +619,7 @@ class DesignBuilder:
             for term in spec.terms
             if term.kind != "categorical"
             for part in _single_columns(term)
-            if part.column is not None
+            if part.column is not None and part.kind != "indicator"
         ]
         index = {name: i for i, name in enumerate(names)}
         categorical_columns = list(levels)
@@ -1060,6 +1031,8 @@ class OpenLevelDesign:
     cap: int
     """Most levels a column may reach before the pass is refused (`_check_levels`)."""
     budget: DesignBudget | None
+    indicator_levels: Mapping[str, IndicatorLevel] | None
+    """As for `DesignBuilder.learn`."""
 
     @classmethod
     def learn(
@@ -1069,6 +1042,7 @@ class OpenLevelDesign:
         sample: pl.DataFrame,
         *,
         cap: int,
+        indicator_levels: Mapping[str, IndicatorLevel] | None = None,
         budget: DesignBudget | None = None,
     ) -> OpenLevelDesign:
         """Learn everything but the levels (see `DesignBuilder.learn`); `cap` as the attribute."""
@@ -1078,8 +1052,11 @@ class OpenLevelDesign:
         )
         # the rows `DesignBuilder.learn` takes a `std(x)` scaling from have every categorical
         present = _all([present_value(c, schema[c]) for c in categorical])
-        numeric = DesignBuilder.learn(numeric_spec, schema, sample.filter(present))
-        return cls(spec, numeric, categorical, tuple(schema[c] for c in categorical), cap, budget)
+        numeric = DesignBuilder.learn(
+            numeric_spec, schema, sample.filter(present), indicator_levels=indicator_levels
+        )
+        dtypes = tuple(schema[c] for c in categorical)
+        return cls(spec, numeric, categorical, dtypes, cap, budget, indicator_levels)
 
     def new_levels(self) -> list[FoundLevels]:
         """Return no levels yet for each categorical, to start a part of the pass."""
@@ -1195,6 +1172,7 @@ class OpenLevelDesign:
             schema,
             sample,
             level_tables={table.column: table for table, _ in found},
+            indicator_levels=self.indicator_levels,
             budget=self.budget,
         )
         dense_positions, level_positions = builder.coded_positions

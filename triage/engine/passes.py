@@ -11,7 +11,7 @@ import functools
 import os
 import threading
 import time
-from collections.abc import Callable, Collection, Generator, Iterator, Sequence
+from collections.abc import Callable, Collection, Generator, Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Protocol, TypeVar
 
@@ -19,6 +19,7 @@ import numpy as np
 import polars as pl
 
 from triage._typing import ALL_ROWS
+from triage.core.column_figures import ColumnFiguresAccumulator
 from triage.core.design import (
     MIN_BLOCK_ROWS,
     CodedBatch,
@@ -29,6 +30,7 @@ from triage.core.design import (
     OpenLevelDesign,
 )
 from triage.core.filter import parse_filter
+from triage.core.indicator_terms import IndicatorRows, indicator_parts
 from triage.core.levels import LevelCounter
 from triage.core.limits import check_column_values, check_factor_scale
 from triage.core.lsq import OpenLevelAccumulator, QRAccumulator, UncertifiedGram
@@ -37,13 +39,14 @@ from triage.engine.allocator import keep_batch_memory
 from triage.engine.progress import ProgressCallback, ProgressTracker, ReadAhead
 from triage.engine.workers import fold_in_order, pass_workers
 from triage.errors import DataError, TriageError
-from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
+from triage.results.fit import ColumnFigures, DataSummary, FitOutcome, ReportOutcome
 from triage.results.progress import PassProgress
 
 if TYPE_CHECKING:
     from numpy.typing import NDArray
 
     from triage._typing import RowsToRead, Sampling
+    from triage.core.indicator_terms import IndicatorLevel
     from triage.core.levels import FoundLevels, LevelTable
     from triage.core.lsq import LinearFit
     from triage.core.spec import ModelSpec
@@ -227,6 +230,16 @@ def drop_marked_rows(
     return frame.filter(pl.Series(keep))
 
 
+def counted_frames(
+    batches: Iterable[Batch], counts: RowCounts, marked: NDArray[np.int64] | None
+) -> Iterator[pl.DataFrame]:
+    """Yield the frames of `batches`, counting their rows and leaving out `marked` ones."""
+    for batch in batches:
+        counts.read = batch.rows_read
+        counts.kept_by_filter += batch.frame.height
+        yield batch.frame if marked is None else drop_marked_rows(batch.frame, marked, counts)
+
+
 def fold_part(
     read_part: Callable[[], Iterator[Batch]],
     state: S,
@@ -245,17 +258,42 @@ def fold_part(
     before each batch (a cancel); a set `stopping` ends the part early; `keep`, if given,
     receives each folded frame (a report keeps them for pass 2, `KeptFrames`).
     """
-    for batch in read_part():
+    for frame in counted_frames(read_part(), counts, marked):
         if stopping is not None and stopping.is_set():
             break
         check()
-        counts.read = batch.rows_read
-        counts.kept_by_filter += batch.frame.height
-        frame = batch.frame if marked is None else drop_marked_rows(batch.frame, marked, counts)
         fold(state, frame)
         if keep is not None:
             keep(frame)
     return state
+
+
+def fold_each_frame(
+    frames: Iterable[pl.DataFrame],
+    new_part: Callable[[], S],
+    fold: Callable[[S, pl.DataFrame], None],
+    merge: Callable[[S, S], S],
+    *,
+    wait: Callable[[], None],
+    keep: Callable[[int, pl.DataFrame], None] | None = None,
+    n_workers: int | None = None,
+) -> S:
+    """Fold each frame into a part of its own on worker threads; merge them in frame order.
+
+    This is how a pass over a source of one part (a stream) folds, here or on a cluster
+    worker, so both give the same bits. `keep`, if given, receives each frame and its number.
+    """
+
+    def fold_frame(unit: tuple[int, pl.DataFrame], stopping: threading.Event) -> S:
+        k, frame = unit
+        state = new_part()
+        fold(state, frame)
+        if keep is not None:
+            keep(k, frame)
+        return state
+
+    merged = fold_in_order(enumerate(frames), fold_frame, merge, wait=wait, n_workers=n_workers)
+    return new_part() if merged is None else merged
 
 
 class PassPlan:
@@ -329,6 +367,11 @@ class PassPlan:
         """True when the pass reads every row of the source."""
         return self.sample is None or self.sample.is_whole
 
+    @property
+    def folds_whole_source(self) -> bool:
+        """True when every row of the source reaches the fold: a full pass, no filter, no marks."""
+        return self.is_full_pass and self.where is None and self.exclude.size == 0
+
     def _drop_excluded(self, frame: pl.DataFrame, counts: RowCounts) -> pl.DataFrame:
         return drop_marked_rows(frame, self.exclude, counts)
 
@@ -340,21 +383,25 @@ class PassPlan:
         batch_values: int = BATCH_VALUES,
         columns: Sequence[str] | None = None,
         drop_marked: bool = True,
+        part: Callable[[], Iterator[Batch]] | None = None,
     ) -> Generator[pl.DataFrame, None, None]:
         """Yield the filtered frames of the pass, counting rows and reporting progress.
 
         `columns` reads other columns than the plan's (a first read of the categoricals);
-        `drop_marked=False` keeps the rows the user marked.
+        `drop_marked=False` keeps the rows the user marked; `part` is read in place of
+        the whole source (its one part, `Source.scan_parts`).
         """
         columns = self.columns if columns is None else list(columns)
         step = batch_rows_for(len(columns), batch_values)
         if self.sample is None:
-            batches = self.source.scan_batches(columns, where=self.where, batch_rows=step)
-            for batch in ReadAhead(iter(batches)):
-                counts.read = batch.rows_read
-                counts.kept_by_filter += batch.frame.height
-                tracker.advance(batch.rows_read)
-                yield self._drop_excluded(batch.frame, counts) if drop_marked else batch.frame
+            if part is None:
+                part = functools.partial(
+                    self.source.scan_batches, columns, where=self.where, batch_rows=step
+                )
+            marked = self.exclude if drop_marked else None
+            for frame in counted_frames(ReadAhead(iter(part())), counts, marked):
+                tracker.advance(counts.read)
+                yield frame
             return
         frame = self.sample.frame
         counts.read = self.sample.rows_read
@@ -488,15 +535,6 @@ class PassPlan:
                 tracker.advance(counts.read, force=True)
                 return folded
         if len(parts) < 2:
-
-            def fold_frame(unit: tuple[int, pl.DataFrame], stopping: threading.Event) -> S:
-                k, frame = unit
-                state = new_part()
-                fold(state, frame)
-                if keep is not None:
-                    keep(k, frame)
-                return state
-
             with contextlib.closing(
                 self.frames(
                     counts,
@@ -504,10 +542,10 @@ class PassPlan:
                     batch_values=batch_values,
                     columns=columns,
                     drop_marked=drop_marked,
+                    part=parts[0] if parts else None,
                 )
             ) as frames:
-                merged = fold_in_order(enumerate(frames), fold_frame, merge, wait=tracker.check)
-            return new_part() if merged is None else merged
+                return fold_each_frame(frames, new_part, fold, merge, wait=tracker.check, keep=keep)
         part_counts = [RowCounts() for _ in parts]
 
         def fold_unit(k: int, stopping: threading.Event) -> S:
@@ -593,6 +631,35 @@ class PassPlan:
             drop_marked=False,
         ).finalize()
 
+    def count_indicator_rows(
+        self, tracker: ProgressTracker, specs: Sequence[ModelSpec] = ()
+    ) -> dict[str, IndicatorLevel] | None:
+        """Count the rows holding each indicator term's level over every row, or None.
+
+        None for a sample (the design counts the sample) or a model without an indicator
+        term such as ``depot=north``. Like `count_levels`, it reads only the indicators'
+        columns (and the filter's), counting marked rows too, so a level that only rows
+        left out for a missing value elsewhere hold is still a level of the column.
+        """
+        terms = indicator_parts(specs or (self.spec,))
+        if self.sample is not None or not terms:
+            return None
+        schema = self.source.schema()
+
+        def fold(counter: IndicatorRows, frame: pl.DataFrame) -> None:
+            counter.update(frame)
+
+        return self.fold_frames(
+            lambda: IndicatorRows(schema, terms),
+            fold,
+            IndicatorRows.merge,
+            RowCounts(),
+            tracker,
+            batch_values=FIT_BATCH_VALUES,
+            columns=list(dict.fromkeys(t.column for t in terms if t.column)),
+            drop_marked=False,
+        ).finalize()
+
     def budget(self) -> DesignBudget:
         """Return this pass's design memory budget (the spec's `max_memory` or the default)."""
         limit = self.spec.max_memory
@@ -603,20 +670,28 @@ class PassPlan:
             block_values=FIT_BATCH_VALUES,
         )
 
-    def learn(self) -> DesignBuilder:
-        """Learn the design from the sample alone (a sample fit, or a design without levels)."""
+    def learn(self, tracker: ProgressTracker) -> DesignBuilder:
+        """Learn the design of a sample fit, or of a full pass without categoricals.
+
+        A full pass's indicator terms (``depot=north``) have their rows counted first.
+        """
         return DesignBuilder.learn(
-            self.spec, self.source.schema(), self.learning_frame, budget=self.budget()
+            self.spec,
+            self.source.schema(),
+            self.learning_frame,
+            indicator_levels=self.count_indicator_rows(tracker),
+            budget=self.budget(),
         )
 
-    def learn_open(self) -> OpenLevelDesign:
-        """Learn all of a full pass's design but its levels, which the pass finds."""
+    def learn_open(self, tracker: ProgressTracker) -> OpenLevelDesign:
+        """Learn all of a full pass's design but its categoricals' levels, which it finds."""
         budget = self.budget()
         return OpenLevelDesign.learn(
             self.spec,
             self.source.schema(),
             self.learning_frame,
             cap=min(self.spec.max_levels, budget.max_columns()),
+            indicator_levels=self.count_indicator_rows(tracker),
             budget=budget,
         )
 
@@ -800,10 +875,12 @@ def _fit(
     tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
     accumulator: QRAccumulator | None
     if plan.sample is None and any(t.kind == "categorical" for t in spec.terms):
-        builder, counts, accumulator = _fit_pass_finding_levels(plan, tracker)
+        builder, counts, accumulator, figures = _fit_pass_finding_levels(
+            plan, tracker, ProgressTracker(None, cancel=cancel)
+        )
     else:
-        builder = plan.learn()
-        counts, accumulator = _fit_pass(plan, builder, tracker, use_codes=True)
+        builder = plan.learn(ProgressTracker(None, cancel=cancel))
+        counts, accumulator, figures = _fit_pass(plan, builder, tracker, use_codes=True)
     fit_or_none: LinearFit | None = None
     try:
         if accumulator is not None:
@@ -814,52 +891,65 @@ def _fit(
         fit_or_none = None
     if fit_or_none is None:
         tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
-        counts, accumulator = _fit_pass(plan, builder, tracker, use_codes=False)
+        counts, accumulator, figures = _fit_pass(plan, builder, tracker, use_codes=False)
         fit_or_none = _finalize_fit(plan, builder, counts, accumulator)
-    return FitOutcome(spec, builder, fit_or_none, plan.summary(counts), plan.learning_frame)
+    summary = plan.summary(counts)
+    return FitOutcome(spec, builder, fit_or_none, summary, plan.learning_frame, figures)
+
+
+FitPart = tuple[QRAccumulator, RowCounts, ColumnFiguresAccumulator | None]
+"""What one part of pass 1 folds into: the fit, the row counts, the columns' figures."""
 
 
 @dataclass
 class _FindingPart:
-    """One part of a pass that finds its levels: levels, sums by level, row counts."""
+    """One part of a pass that finds its levels: levels, sums by level, rows, column figures."""
 
     levels: list[FoundLevels]
     sums: OpenLevelAccumulator
     counts: RowCounts
+    figures: ColumnFiguresAccumulator | None
     is_finite: bool = True
     """False once a batch's sums passed float64: the rows must be factored written out."""
 
     def merge(self, other: _FindingPart) -> _FindingPart:
         """Add a later part (its levels join ours in the order found); return self."""
-        where = [
-            mine.absorb(theirs) for mine, theirs in zip(self.levels, other.levels, strict=True)
-        ]
+        pairs = zip(self.levels, other.levels, strict=True)
+        where = [mine.absorb(theirs) for mine, theirs in pairs]
         self.sums.merge(other.sums, where, [len(found) for found in self.levels])
         self.counts.absorb(other.counts)
+        if self.figures is not None and other.figures is not None:
+            self.figures.merge(other.figures)
         self.is_finite = self.is_finite and other.is_finite
         return self
 
 
 def _fit_pass_finding_levels(
-    plan: PassPlan, tracker: ProgressTracker
-) -> tuple[DesignBuilder, RowCounts, QRAccumulator | None]:
+    plan: PassPlan, tracker: ProgressTracker, learning: ProgressTracker
+) -> tuple[DesignBuilder, RowCounts, QRAccumulator | None, tuple[ColumnFigures, ...]]:
     """Pass 1 of a full pass with categoricals, finding their levels as it goes.
 
     Each part codes its batches against the levels it has found and keeps its sums by level;
     the parts' levels join when they merge, and the design (references included) is learned
     once every row is read, from the rows under the filter (marked rows too), as a count of
     the levels before the pass would give. The accumulator is None when the sums passed
-    float64 (the caller factors the rows written out).
+    float64 (the caller factors the rows written out). Column figures as in `_fit_pass`;
+    `learning` reports on what is read before the pass (indicator terms' rows).
     """
-    design = plan.learn_open()
+    design = plan.learn_open(learning)
     has_intercept = plan.spec.intercept  # the parts go to a cluster's workers without `plan`
     n_dense = len(design.numeric.column_names) - int(has_intercept)
+    schema = dict(plan.source.schema()) if plan.folds_whole_source else None
+    source_columns = plan.spec.source_columns()
 
     def new_part() -> _FindingPart:
         sums = OpenLevelAccumulator(n_dense, has_intercept=has_intercept)
-        return _FindingPart(design.new_levels(), sums, RowCounts())
+        figures = None if schema is None else ColumnFiguresAccumulator(schema, source_columns)
+        return _FindingPart(design.new_levels(), sums, RowCounts(), figures)
 
     def fold(part: _FindingPart, frame: pl.DataFrame) -> None:
+        if part.figures is not None:
+            part.figures.update(frame)
         with naming_values_too_large(design.numeric, frame):
             batch = design.build(frame, part.levels)
         part.counts.add(batch)
@@ -872,6 +962,7 @@ def _fit_pass_finding_levels(
         new_part, fold, _FindingPart.merge, counts, tracker, batch_values=FIT_BATCH_VALUES
     )
     counts.absorb(part.counts)
+    figures = () if part.figures is None else part.figures.finalize()
     if plan.exclude.size:
         marked = design.new_levels()
         design.count(plan.marked_rows(), marked)
@@ -879,30 +970,40 @@ def _fit_pass_finding_levels(
             found.absorb(more)
     builder, level_positions = design.finish(part.levels, plan.source.schema(), plan.learning_frame)
     if not part.is_finite:
-        return builder, counts, None
+        return builder, counts, None, figures
     dense_positions, _ = builder.coded_positions
     accumulator = part.sums.to_accumulator(
         len(builder.column_names), dense_positions, level_positions
     )
-    return builder, counts, accumulator
+    return builder, counts, accumulator, figures
 
 
 def _fit_pass(
     plan: PassPlan, builder: DesignBuilder, tracker: ProgressTracker, *, use_codes: bool
-) -> tuple[RowCounts, QRAccumulator]:
-    """Fold every batch of pass 1 into one accumulator; categoricals as codes if `use_codes`."""
+) -> tuple[RowCounts, QRAccumulator, tuple[ColumnFigures, ...]]:
+    """Fold every batch of pass 1 into one accumulator; categoricals as codes if `use_codes`.
+
+    When every row of the source reaches the fold, the model's columns' figures (rows,
+    missing, low, mean, spread, high) are folded alongside.
+    """
     spec = plan.spec
     unshifted = builder.indicator_positions if use_codes else ()
+    schema = dict(plan.source.schema()) if plan.folds_whole_source else None
 
-    def new_part() -> tuple[QRAccumulator, RowCounts]:
+    def new_part() -> FitPart:
         accumulator = QRAccumulator(
             len(builder.column_names), has_intercept=spec.intercept, unshifted=unshifted
         )
-        return accumulator, RowCounts()
+        figures = (
+            None if schema is None else ColumnFiguresAccumulator(schema, spec.source_columns())
+        )
+        return accumulator, RowCounts(), figures
 
-    def fold(part: tuple[QRAccumulator, RowCounts], frame: pl.DataFrame) -> None:
+    def fold(part: FitPart, frame: pl.DataFrame) -> None:
         with naming_values_too_large(builder, frame):
-            accumulator, part_counts = part
+            accumulator, part_counts, figures = part
+            if figures is not None:
+                figures.update(frame)
             columns = builder.build_columns(frame)
             if columns is not None and accumulator.update_columns(columns.predictors, columns.y):
                 part_counts.used += columns.n_rows
@@ -917,19 +1018,19 @@ def _fit_pass(
                 part_counts.add(batch)
                 accumulator.update(batch.x, batch.y, batch.weights)
 
-    def merge(
-        part: tuple[QRAccumulator, RowCounts], other: tuple[QRAccumulator, RowCounts]
-    ) -> tuple[QRAccumulator, RowCounts]:
+    def merge(part: FitPart, other: FitPart) -> FitPart:
         part[0].merge(other[0])
         part[1].absorb(other[1])
+        if part[2] is not None and other[2] is not None:
+            part[2].merge(other[2])
         return part
 
     counts = RowCounts()
-    accumulator, design_counts = plan.fold_frames(
+    accumulator, design_counts, figures = plan.fold_frames(
         new_part, fold, merge, counts, tracker, batch_values=FIT_BATCH_VALUES
     )
     counts.absorb(design_counts)
-    return counts, accumulator
+    return counts, accumulator, () if figures is None else figures.finalize()
 
 
 def _finalize_fit(
