@@ -8,14 +8,8 @@ import polars as pl
 import pytest
 import statsmodels.formula.api as smf
 
-from triage.core.design import (
-    INTERCEPT,
-    ROW_INDEX,
-    DesignBuilder,
-    indicator_name,
-    split_indicator_name,
-)
-from triage.core.spec import ModelSpec, build_spec
+from triage.core.design import INTERCEPT, ROW_INDEX, DesignBuilder
+from triage.core.spec import ModelSpec, build_spec, indicator_name, split_indicator_name
 from triage.errors import DataError, SpecError
 
 
@@ -225,12 +219,6 @@ def test_indicator_name_round_trips_and_quotes_odd_columns() -> None:
     assert indicator_name("vehicle", "cargo_bike") == "vehicle=cargo_bike"
     assert indicator_name("pick up", "van") == "`pick up`=van"
     assert split_indicator_name(indicator_name("pick up", "van")) == ("pick up", "van")
-
-
-@pytest.mark.parametrize("typed", ["vehicle=van", "vehicle[van]"])
-def test_a_typed_indicator_term_points_at_the_column_and_reference(typed: str) -> None:
-    with pytest.raises(SpecError, match=r"give `vehicle` as a term.*--reference vehicle=LEVEL"):
-        build_spec({"y": pl.Float64, "vehicle": pl.String}, terms=f"{typed}, y", target="y")
 
 
 def test_design_matches_statsmodels_wls_with_categorical_interaction_and_weights(rng) -> None:

@@ -114,6 +114,7 @@ def test_coded_fit_reports_a_level_without_rows_as_aliased(rng: np.random.Genera
     assert accumulator.update_coded(design, y)
     fit = accumulator.finalize([f"c{j}" for j in range(18)])
     assert fit.aliased == ("c11",)
+    assert fit.no_rows == ("c11",)  # no rows left, not a combination of other columns
 
 
 def test_coded_fit_refuses_an_uncertified_gram(rng: np.random.Generator) -> None:

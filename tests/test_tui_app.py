@@ -250,7 +250,7 @@ async def test_tui_full_pass_reports_progress_stays_responsive_and_finishes(
         screen = main_screen(app)
         assert screen.current is not None and not screen.current.is_full_pass
         await press_id(pilot, "start-full-pass")
-        assert screen.running_pass is not None
+        assert screen.passes.running_pass is not None
         source = gated[0]
         pass_line = app.screen.query_one(PassLine)
         seen: list[int] = []
@@ -276,7 +276,7 @@ async def test_tui_full_pass_reports_progress_stays_responsive_and_finishes(
         assert "SAMPLE" in pass_line.basis
         for _ in range(60):  # two passes (fit, diagnostics) of twelve batches
             source.gate.release()
-        await wait_until(pilot, lambda: screen.running_pass is None, "the full pass to end")
+        await wait_until(pilot, lambda: screen.passes.running_pass is None, "the full pass to end")
         await settle(pilot)
         assert screen.current is not None and screen.current.is_full_pass
         assert "EVERY ROW" in pass_line.basis
@@ -305,7 +305,7 @@ async def test_tui_full_pass_cancel_keeps_sample_results(
         await press_id(pilot, "cancel-pass")
         for _ in range(60):
             gated[0].gate.release()
-        await wait_until(pilot, lambda: screen.running_pass is None, "the full pass to end")
+        await wait_until(pilot, lambda: screen.passes.running_pass is None, "the full pass to end")
         await settle(pilot)
         assert screen.current is sample_fit
         assert len(screen.fits) == 1
@@ -824,7 +824,7 @@ async def test_tui_full_pass_is_not_repeated_when_the_sample_was_every_row(
         assert screen.current is not None and screen.current.is_full_pass
         await press_id(pilot, "start-full-pass")
         await settle(pilot)
-        assert len(screen.fits) == 1 and screen.running_pass is None
+        assert len(screen.fits) == 1 and screen.passes.running_pass is None
         assert any("already uses every row" in m for m in notifications(app))
 
 
@@ -1136,7 +1136,9 @@ async def test_tui_footer_follows_the_active_keys_and_rebuilds_only_on_change(
         )
         for _ in range(60):
             gated[0].gate.release()
-        await wait_until(pilot, lambda: main_screen(app).running_pass is None, "the pass to end")
+        await wait_until(
+            pilot, lambda: main_screen(app).passes.running_pass is None, "the pass to end"
+        )
         await settle(pilot)
         assert matches_textual()
 

@@ -55,7 +55,11 @@ SAMPLE_ROWS = 2_000
 
 def settled(screen: MainScreen) -> bool:
     """True when a fit is on screen with its diagnostics and no sample fit is awaited."""
-    return screen.current is not None and screen.pending is None and not screen.screen_passes
+    return (
+        screen.current is not None
+        and screen.passes.pending is None
+        and not screen.passes.screen_passes
+    )
 
 
 def assert_screen_names(screen: MainScreen, fit: SessionFit) -> None:
@@ -190,14 +194,14 @@ async def test_a_full_pass_ending_after_the_model_changed_joins_fits_without_the
         app.screen.query_one("#prompt-input", Input).value = "distance_km, stops"
         await pilot.press("enter")
         await wait_until(pilot, lambda: settled(screen), "the fit of the new terms")
-        assert screen.running_pass is not None  # the gated pass still runs
+        assert screen.passes.running_pass is not None  # the gated pass still runs
         assert pass_line.pass_label == "every row (to Fits)"  # says where its fit goes
         assert any("goes on; its fit will join Fits" in m for m in posted)
         new = screen.current
         assert new is not None and new.number == 2
         for _ in range(60):  # let the pass finish: the race the issue describes
             source.gate.release()
-        await wait_until(pilot, lambda: screen.running_pass is None, "the pass's end")
+        await wait_until(pilot, lambda: screen.passes.running_pass is None, "the pass's end")
         await wait_until(pilot, lambda: len(screen.fits) == 3, "the pass's fit in the list")
         full = screen.fit_numbered(3)
         assert full is not None and full.is_full_pass

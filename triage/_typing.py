@@ -14,7 +14,7 @@ Criterion: TypeAlias = Literal["abs_resid", "studentized", "leverage", "cooks"]
 CRITERIA: tuple[Criterion, ...] = ("abs_resid", "studentized", "leverage", "cooks")
 """Every worst-row criterion, in display order."""
 
-TermKind: TypeAlias = Literal["numeric", "transform", "interaction", "categorical"]
+TermKind: TypeAlias = Literal["numeric", "transform", "interaction", "categorical", "indicator"]
 """What a model term is built from."""
 
 

@@ -190,7 +190,7 @@ def open_source_from_args(args: argparse.Namespace) -> Source:
 
 def parse_reference(pairs: list[str]) -> dict[str, str]:
     """Parse repeated `--reference COL=LEVEL` options (`COL[LEVEL]` is read the same way)."""
-    from triage.core.design import split_indicator_name
+    from triage.core.spec import split_indicator_name
     from triage.errors import SpecError
 
     reference: dict[str, str] = {}

@@ -97,7 +97,8 @@ def score_fit(
         holdout_r2=None if holdout is None else _finite(holdout.r2),
         holdout_rmse=None if holdout is None else _finite(holdout.rmse),
         cv_rmse=_finite(cv_rmse),
-        aliased=tuple(fit.aliased),
+        aliased=fit.collinear,
+        no_rows=fit.no_rows,
         notes=notes,
     )
 

@@ -17,9 +17,16 @@ from typing import TYPE_CHECKING, Final
 import numpy as np
 import polars as pl
 
+from triage.core.indicator_terms import (
+    IndicatorLevel,
+    check_indicator_levels,
+    count_indicator_rows,
+    indicator_match,
+    indicator_parts,
+)
 from triage.core.indicators import CodedDesign, IndicatorCodes
 from triage.core.levels import LevelTable, count_levels, level_text, present_value
-from triage.core.spec import Term, is_categorical_dtype, quote_name
+from triage.core.spec import Term, indicator_name, is_categorical_dtype, quote_name
 from triage.errors import DataError, SpecError
 
 if TYPE_CHECKING:
@@ -60,59 +67,6 @@ _DROP_HINT: Final = (
 )
 _OVERFLOW_TRANSFORMS: Final = frozenset({"square", "pow", "poly"})
 _SQL_NAME: Final = re.compile(r"[A-Za-z_][A-Za-z0-9_]*\Z")
-_BRACKET_INDICATOR: Final = re.compile(r"(.+?)\[(.*)\]")
-"""The bracket form ``depot[north]`` of an indicator name, still accepted as input."""
-
-
-def indicator_name(column: str, level: str) -> str:
-    """Name the indicator (dummy) column of one level of a categorical column.
-
-    Every view, export and JSON document shows an indicator under this one name:
-    ``vehicle=cargo_bike`` reads as "the rows where `vehicle` is `cargo_bike`".
-
-    Parameters
-    ----------
-    column : str
-        The categorical column (written in backticks when not a plain name).
-    level : str
-        The level the indicator is 1 for.
-
-    Returns
-    -------
-    str
-        ``column=level``.
-    """
-    return f"{quote_name(column)}={level}"
-
-
-def split_indicator_name(text: str) -> tuple[str, str] | None:
-    """Read an indicator name typed by a user back into (column, level).
-
-    Accepts our form ``depot=north`` and, for older notes and scripts, ``depot[north]``.
-    A backticked column name is unquoted.
-
-    Parameters
-    ----------
-    text : str
-        The typed name.
-
-    Returns
-    -------
-    tuple of (str, str) or None
-        The column and the level (both stripped), or None when `text` is neither form.
-    """
-    text = text.strip()
-    bracket = _BRACKET_INDICATOR.fullmatch(text)
-    if bracket is not None:
-        column, level = bracket.group(1), bracket.group(2)
-    else:
-        column, sep, level = text.partition("=")
-        if not sep:
-            return None
-    column, level = column.strip(), level.strip()
-    if len(column) > 1 and column.startswith("`") and column.endswith("`"):
-        column = column[1:-1]
-    return (column, level) if column else None
 
 
 @dataclass(frozen=True)
@@ -454,7 +408,8 @@ class DesignBuilder:
     term_of_column : tuple of str
         The term label of each design column (``intercept`` for the column of ones).
     numeric_predictors : tuple of str
-        Source columns used by numeric, transform and interaction terms, in order.
+        Source columns used by numeric, transform and interaction terms, in order (not
+        the column of an indicator term such as ``depot=north``).
     levels : mapping of str to tuple of str
         Each categorical column's levels in natural order, reference included.
     level_tables : mapping of str to LevelTable
@@ -501,6 +456,7 @@ class DesignBuilder:
         sample: pl.DataFrame,
         *,
         level_tables: Mapping[str, LevelTable] | None = None,
+        indicator_levels: Mapping[str, IndicatorLevel] | None = None,
         budget: DesignBudget | None = None,
     ) -> DesignBuilder:
         """Learn the coding of every term: levels and references, and `std()` scaling.
@@ -508,9 +464,11 @@ class DesignBuilder:
         A categorical's levels are those of `level_tables` (a full pass counts every row
         first) or else of the sample rows with a value in that column; its reference is
         the one the spec names, else the level with the most of those rows, ties going to
-        the first in natural order (`LevelTable.most_frequent`). The mean and SD behind
-        ``std(x)`` come from the sample rows that have a usable value in every model column
-        and meet every domain check, i.e. the rows `build` would keep.
+        the first in natural order (`LevelTable.most_frequent`). An indicator term's level
+        must be held by a row of `indicator_levels` (a full pass counts every row) or else
+        of the sample. The mean and SD behind ``std(x)`` come from the sample rows that
+        have a usable value in every model column and meet every domain check, i.e. the
+        rows `build` would keep.
 
         Parameters
         ----------
@@ -522,6 +480,9 @@ class DesignBuilder:
             Rows holding at least the spec's model columns (target, terms, weights).
         level_tables : mapping of str to LevelTable, optional
             Levels counted over every row a full pass reads; None learns them from `sample`.
+        indicator_levels : mapping of str to IndicatorLevel, optional
+            Rows holding each indicator term's level, counted over every row a full pass
+            reads (`IndicatorRows`); None counts them in `sample`.
         budget : DesignBudget, optional
             Memory the design may take; checked before any design column is made.
 
@@ -533,7 +494,8 @@ class DesignBuilder:
         ------
         SpecError
             If a categorical column has more than ``spec.max_levels`` levels, a given
-            reference level is not among its levels, or two design columns share a name.
+            reference level is not among its levels, no row holds an indicator term's
+            level, or two design columns share a name.
         DataError
             If a categorical has fewer than two levels, a ``std`` term has no spread in
             the usable sample rows, or the design would need more memory than `budget`.
@@ -545,6 +507,13 @@ class DesignBuilder:
         else:
             basis = "the rows read"
         tables = {c: _check_levels(spec, level_tables[c], basis) for c in categorical}
+        indicators = indicator_parts([spec])
+        if indicators:
+            if indicator_levels is None:
+                indicator_levels = count_indicator_rows(schema, indicators, sample)
+                check_indicator_levels(indicator_levels, "the sample")
+            else:
+                check_indicator_levels(indicator_levels, "the rows read")
         if budget is not None:
             budget.check(spec, tables)
         present = _all([present_value(c, schema[c]) for c in spec.model_columns()])
@@ -564,6 +533,8 @@ class DesignBuilder:
         def single(term: Term) -> pl.Expr:
             column = term.column
             assert column is not None  # callers pass one-column terms
+            if term.kind == "indicator":
+                return indicator_match(term, schema[column])
             x = _as_float(column)
             match term.transform:
                 case None:
@@ -642,7 +613,7 @@ class DesignBuilder:
             for term in spec.terms
             if term.kind != "categorical"
             for part in _single_columns(term)
-            if part.column is not None
+            if part.column is not None and part.kind != "indicator"
         ]
         index = {name: i for i, name in enumerate(names)}
         categorical_columns = list(levels)

@@ -349,6 +349,24 @@ def _check_weights(weights: ArrayLike, n_rows: int) -> FloatArray:
     return w
 
 
+def _zero_columns(r: FloatArray, x_shift: FloatArray, *, has_intercept: bool) -> NDArray[np.bool_]:
+    """Mark the design columns that are 0 in every row of the factor ``R``.
+
+    With an intercept, ``R`` factors ``sqrt(w) [1 | X - m]``; moving the shift back
+    (``x = x~ + m * 1``) changes only row 0, so column ``j``'s weighted sum of squares is
+    ``||R[:, j] + R[0, 0] m_j e_0||^2``. A column of zeros gives exactly 0 there when its
+    shift is 0, and rounding of about ``|R[0, 0] m_j|`` times the unit roundoff otherwise.
+    """
+    p = x_shift.size
+    columns = r[:, :p].copy()
+    moved = np.zeros(p)
+    if has_intercept:
+        moved = np.abs(r[0, 0] * x_shift)
+        columns[0] += r[0, 0] * x_shift
+    norms = np.linalg.norm(columns, axis=0)
+    return np.asarray(norms <= RANK_TOLERANCE * moved)
+
+
 def _drop_aliased(r: FloatArray, n_design: int) -> tuple[FloatArray, list[int]]:
     """Remove design columns that lie in the span of earlier ones, refactoring ``R`` after each.
 
@@ -463,7 +481,12 @@ class LinearFit:
     ci_high: FloatArray
     """Upper ends of the 95% confidence intervals."""
     aliased: tuple[str, ...]
-    """Names of design columns in the span of earlier columns: they get no estimate."""
+    """Names of design columns that get no estimate: in the span of earlier columns (a
+    column that is 0 in every row used among them, see `no_rows`)."""
+    no_rows: tuple[str, ...]
+    """Aliased columns that are 0 in every row used, such as the indicator of a level all of
+    whose rows were left out (a missing value in another column): no estimate for want of
+    rows, not because the column combines others (`collinear`)."""
     cov: FloatArray
     """Covariance matrix of the estimates, shape (p, p), NaN rows and columns for aliased ones."""
     n: int
@@ -504,6 +527,11 @@ class LinearFit:
     """Whether rows carried weights."""
     _factor: _ShiftedFactor = field(repr=False)
     """Triangular factor and shift, for predictions, hat values and robust covariances."""
+
+    @property
+    def collinear(self) -> tuple[str, ...]:
+        """Aliased columns that are exact combinations of other columns (not `no_rows`)."""
+        return tuple(name for name in self.aliased if name not in self.no_rows)
 
     @property
     def kept_columns(self) -> NDArray[np.intp]:
@@ -1090,6 +1118,7 @@ class QRAccumulator:
                 "no rows reached the fit; check the filter and the rows dropped for missing values"
             )
             raise DataError(msg)
+        zero = _zero_columns(self._r, self._x_shift, has_intercept=self._has_intercept)
         r, kept_list = _drop_aliased(self._r.copy(), self._p)
         k = len(kept_list)
         if k == 0:
@@ -1175,6 +1204,7 @@ class QRAccumulator:
             ci_low=spread(reported - half_width),
             ci_high=spread(reported + half_width),
             aliased=tuple(name for j, name in enumerate(names) if j not in kept_set),
+            no_rows=tuple(name for j, name in enumerate(names) if j not in kept_set and zero[j]),
             cov=_embed(cov_k, kept, p),
             n=n,
             df_model=df_model,

@@ -8,6 +8,8 @@ and recursive-descent parser read them; nothing is ever evaluated as Python.
 
 from __future__ import annotations
 
+import datetime
+import math
 import re
 from dataclasses import dataclass, field, replace
 from types import MappingProxyType
@@ -42,6 +44,14 @@ _TARGET_CALL = re.compile(r"(log1p|log|sqrt)\(\s*(`[^`]+`|[^()`]+?)\s*\)\Z")
 _CAT: Final = "cat"
 _KNOWN_FUNCTIONS: Final = "log, log1p, sqrt, square, pow, poly, std, cat"
 _PLAIN_NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_.]*\Z")
+_PLAIN_LEVEL = re.compile(r"[^\s,+~*:()^`\[\]]+")
+"""A level written bare after ``column=``; any other is written in backticks."""
+_BRACKET_INDICATOR: Final = re.compile(r"(.+?)\[(.*)\]")
+"""The bracket form ``depot[north]`` of an indicator name, still accepted as input."""
+_LEVEL = re.compile(
+    r"\s*(?:=\s*(?:`(?P<quoted>[^`]*)`|(?P<bare>[^\s,+~*:()^`\[\]]+))|\[(?P<bracket>[^\]]*)\])"
+)
+"""The level after a column name: ``=north``, ``=`north east```, or the older ``[north]``."""
 _TOKEN = re.compile(
     r"\s*(?:(?P<name>[A-Za-z_][A-Za-z0-9_.]*)|`(?P<quoted>[^`]*)`|(?P<number>\d+(?:\.\d*)?)"
     r"|(?P<punct>[(),~+*:^]))"
@@ -50,7 +60,7 @@ _TOKEN = re.compile(
 
 @dataclass(frozen=True)
 class Term:
-    """One model term: a column, a transform of a column, a categorical, or an interaction.
+    """One model term: a column, a transform, a categorical, an indicator, or an interaction.
 
     Attributes
     ----------
@@ -59,7 +69,8 @@ class Term:
         ``log(weight_kg)``, ``pow(x, 3)``, ``stops:weight_kg``, ``depot``. Names that are
         not plain identifiers are quoted with backticks.
     kind : TermKind
-        ``numeric``, ``transform``, ``interaction`` or ``categorical``.
+        ``numeric``, ``transform``, ``interaction``, ``categorical`` or ``indicator``
+        (``depot=north``: one 0/1 column, 1 where `column` holds `level`).
     column : str or None
         The source column; None for an interaction.
     transform : Transform or None
@@ -68,6 +79,9 @@ class Term:
         The power of ``pow`` or the degree of ``poly``.
     factors : tuple of Term
         The two terms multiplied by an interaction; empty otherwise.
+    level : str or None
+        The level of an indicator, as the column's values read as text (`month=3`,
+        `flag=true`) once `build_spec` has read it in the column's type; None otherwise.
     """
 
     label: str
@@ -76,6 +90,7 @@ class Term:
     transform: Transform | None = None
     arg: int | None = None
     factors: tuple[Term, ...] = ()
+    level: str | None = None
 
     @property
     def columns(self) -> tuple[str, ...]:
@@ -166,13 +181,75 @@ def quote_name(name: str) -> str:
     return name if _PLAIN_NAME.match(name) else f"`{name}`"
 
 
+def indicator_name(column: str, level: str) -> str:
+    """Name the indicator (dummy) column of one level of a column: ``column=level``.
+
+    Every view, export and JSON document shows an indicator under this one name, and
+    the same text typed as a term makes that one column: ``vehicle=cargo_bike`` reads as
+    "the rows where `vehicle` is `cargo_bike`". The column is written as `quote_name`
+    does; a level holding a space or one of ``,+~*:()^[]`` is put in backticks.
+
+    Parameters
+    ----------
+    column : str
+        The column.
+    level : str
+        The level the indicator is 1 for, as the column's values read as text.
+
+    Returns
+    -------
+    str
+        ``column=level``.
+
+    Examples
+    --------
+    >>> indicator_name("vehicle", "cargo_bike"), indicator_name("pick up", "north east")
+    ('vehicle=cargo_bike', '`pick up`=`north east`')
+    """
+    shown = level if _PLAIN_LEVEL.fullmatch(level) else f"`{level}`"
+    return f"{quote_name(column)}={shown}"
+
+
+def split_indicator_name(text: str) -> tuple[str, str] | None:
+    """Read an indicator name typed by a user back into (column, level).
+
+    Accepts our form ``depot=north`` and, for older notes and scripts, ``depot[north]``.
+    A backticked column name or level is unquoted.
+
+    Parameters
+    ----------
+    text : str
+        The typed name.
+
+    Returns
+    -------
+    tuple of (str, str) or None
+        The column and the level (both stripped), or None when `text` is neither form.
+    """
+    text = text.strip()
+    bracket = _BRACKET_INDICATOR.fullmatch(text)
+    if bracket is not None:
+        column, level = bracket.group(1), bracket.group(2)
+    else:
+        column, sep, level = text.partition("=")
+        if not sep:
+            return None
+    column, level = _unquote(column.strip()), _unquote(level.strip())
+    return (column, level) if column else None
+
+
+def _unquote(text: str) -> str:
+    """Remove one pair of backticks around `text`, if it has them."""
+    return text[1:-1] if len(text) > 1 and text.startswith("`") and text.endswith("`") else text
+
+
 # ---------------------------------------------------------------------------------------------
 # tokenizer and parser
 
 
 @dataclass(frozen=True)
 class _Token:
-    kind: Literal["name", "number", "punct", "end"]
+    kind: Literal["name", "level", "number", "punct", "end"]
     text: str
     start: int
     end: int
@@ -183,6 +260,12 @@ def _tokenize(text: str) -> list[_Token]:
     pos = 0
     stripped_end = len(text.rstrip())
     while pos < stripped_end:
+        level = _LEVEL.match(text, pos) if tokens and tokens[-1].kind == "name" else None
+        if level is not None:
+            read = next(g for g in level.group("quoted", "bare", "bracket") if g is not None)
+            tokens.append(_Token("level", read, pos, level.end()))
+            pos = level.end()
+            continue
         match = _TOKEN.match(text, pos)
         if match is None:
             bad = text[pos:].lstrip()
@@ -195,13 +278,16 @@ def _tokenize(text: str) -> list[_Token]:
                     "the intercept is a separate option of the model, on by default"
                 )
             elif bad[0] in "=[" and tokens and tokens[-1].kind == "name":
-                column = tokens[-1].text
-                written = re.split(r"[,+]", text[tokens[-1].start :])[0].strip()
+                written = text[tokens[-1].start : where + 1]
                 msg = (
-                    f"`{written}` names one indicator of "
-                    f"the categorical `{column}`: give `{column}` as a term (it gets an "
-                    f"indicator per level) and choose the level left out with "
-                    f"`--reference {column}=LEVEL`"
+                    f"expected a level after `{written}` in terms `{text}`, such as "
+                    f"`{tokens[-1].text}=north`; put a level with spaces or `,+~*:()^[]` "
+                    "in backticks"
+                )
+            elif bad[0] in "=[":
+                msg = (
+                    f"unexpected `{bad[0]}` at position {where + 1} in terms `{text}`; "
+                    "an indicator is a column name and a level, such as `depot=north`"
                 )
             else:
                 msg = (
@@ -228,6 +314,11 @@ def _tokenize(text: str) -> list[_Token]:
 
 def _numeric_term(column: str) -> Term:
     return Term(label=quote_name(column), kind="numeric", column=column)
+
+
+def _indicator_term(column: str, level: str) -> Term:
+    """Build an indicator term as typed; `build_spec` reads the level in the column's type."""
+    return Term(indicator_name(column, level), "indicator", column, level=level)
 
 
 def _transform_term(name: str, column: str, arg: int | None) -> Term:
@@ -404,6 +495,12 @@ class _Parser:
         if token.kind != "name":
             self.fail_here("a column name or a transform such as `log(x)`", start)
         self.advance()
+        if self.token.kind == "level":
+            indicator = _indicator_term(token.text, self.advance().text)
+            if self.at("^"):
+                msg = f"`^` applies to a numeric column, not to the indicator `{indicator.label}`"
+                raise SpecError(msg)
+            return indicator
         quoted = self.text[token.start] == "`"
         if self.at("(") and not quoted:
             return self.call(token, start)
@@ -512,7 +609,9 @@ def parse_terms(text: str) -> tuple[str | None, tuple[Term, ...]]:
         ``minutes ~ distance_km + log(weight_kg) + depot + stops:weight_kg``. ``a*b``
         means ``a, b, a:b``. Transforms: ``log``, ``log1p``, ``sqrt``, ``square`` (also
         ``x^2``), ``pow(x, k)`` (also ``x^k``), ``poly(x, k)``, ``std``, and ``cat(x)``
-        to force a categorical. Backticks quote odd names: ```delivery minutes```.
+        to force a categorical. ``depot=north`` (or the older ``depot[north]``) is one
+        indicator, 1 where `depot` is `north`. Backticks quote odd names, and levels with
+        a space or one of ``,+~*:()^[]``: ```delivery minutes```, ``depot=`north east```.
 
     Returns
     -------
@@ -668,10 +767,15 @@ def _resolve(
                     "cannot use it; interactions take two numeric terms"
                 )
                 raise SpecError(msg)
-        return replace(term, factors=factors)
+        label = ":".join(f.label for f in factors)  # an indicator's level may read anew
+        return replace(term, label=label, factors=factors)
     column = term.column
     assert column is not None  # every non-interaction term has a column
     dtype = schema[column]
+    if term.kind == "indicator":
+        assert term.level is not None  # the parser sets an indicator's level
+        _, level = indicator_value(column, dtype, term.level)
+        return replace(term, label=indicator_name(column, level), level=level)
     forced = column in categorical
     if term.kind == "categorical" or (
         term.kind == "numeric" and (forced or is_categorical_dtype(dtype))
@@ -692,6 +796,104 @@ def _resolve(
         )
         raise SpecError(msg)
     return term
+
+
+def indicator_value(
+    column: str, dtype: pl.DataType | type[pl.DataType], level: str
+) -> tuple[object, str]:
+    """Read an indicator's level in its column's type.
+
+    Text, Categorical and Enum columns take the level as text; a boolean `true` or
+    `false`; an integer column a whole number (``month=3``); a float or decimal column
+    a number; a date or datetime column an ISO date (``day=2024-03-01``).
+
+    Parameters
+    ----------
+    column : str
+        The column.
+    dtype : polars data type
+        Its type in the source.
+    level : str
+        The level as typed.
+
+    Returns
+    -------
+    value : object
+        The level as a value of the column's type, to compare the column with.
+    text : str
+        The level as the column's values read as text (``3`` for ``03``, ``true`` for
+        ``TRUE``): the name the indicator goes by.
+
+    Raises
+    ------
+    SpecError
+        If the level cannot be read in the column's type, an Enum column has no such
+        category, or the column's type cannot hold levels (a list, a duration).
+
+    Examples
+    --------
+    >>> indicator_value("month", pl.Int64, "03")
+    (3, '3')
+    """
+    shown = indicator_name(column, level)
+    if dtype == pl.Enum:
+        categories = cast("pl.Enum", dtype).categories.to_list()
+        if level not in categories:
+            msg = (
+                f"`{column}` has no level `{level}` (in `{shown}`); its levels are "
+                + ", ".join(f"`{c}`" for c in categories[:10])
+                + (f" and {len(categories) - 10} more" if len(categories) > 10 else "")
+            )
+            raise SpecError(msg)
+        return level, level
+    if is_categorical_dtype(dtype) and dtype != pl.Boolean:
+        return level, level
+    if dtype == pl.Boolean:
+        if level.lower() not in {"true", "false"}:
+            msg = f"`{column}` is true or false, so `{shown}` must read `{column}=true` or `=false`"
+            raise SpecError(msg)
+        return level.lower() == "true", level.lower()
+    read: Callable[[str], object]
+    if dtype.is_integer():
+        kind, read = "a whole number", _whole_number
+    elif dtype.is_float() or dtype.is_decimal():
+        kind, read = "a number", _finite_number
+    elif dtype == pl.Date:
+        kind, read = "a date such as 2024-03-01", datetime.date.fromisoformat
+    elif dtype == pl.Datetime:
+        kind, read = "a date and time such as 2024-03-01T08:30", datetime.datetime.fromisoformat
+    else:
+        msg = (
+            f"`{column}` has type {dtype}, which holds no levels for `{shown}`; an "
+            "indicator takes a text, categorical, boolean, number or date column"
+        )
+        raise SpecError(msg)
+    try:
+        value = read(level)
+    except ValueError:
+        msg = f"the level in `{shown}` must be {kind}, as `{column}` has type {dtype}"
+        raise SpecError(msg) from None
+    try:
+        text = pl.Series([value]).cast(dtype).cast(pl.String).item()
+    except (OverflowError, pl.exceptions.PolarsError):
+        msg = f"the level in `{shown}` is outside the range of `{column}`, of type {dtype}"
+        raise SpecError(msg) from None
+    return value, str(text)
+
+
+def _whole_number(text: str) -> int:
+    """Read a whole number written as ``3``, ``03``, ``3.0`` or ``1e3``."""
+    number = float(text)
+    if not number.is_integer():
+        raise ValueError(text)
+    return int(text) if text.strip().lstrip("+-").isdigit() else int(number)
+
+
+def _finite_number(text: str) -> float:
+    number = float(text)
+    if not math.isfinite(number):
+        raise ValueError(text)
+    return number
 
 
 def _check_numeric_column(name: str, schema: SchemaLike, role: str) -> None:
@@ -772,16 +974,18 @@ def build_spec(
     -------
     ModelSpec
         The validated spec; bare names of String, Categorical, Enum or Boolean columns, or
-        listed in `categorical`, become categorical terms.
+        listed in `categorical`, become categorical terms; an indicator's level is read in
+        its column's type (`indicator_value`).
 
     Raises
     ------
     SpecError
         For unknown columns (with up to three closest names), a missing or non-numeric
         target, a target used as a term, non-numeric weights or weights that are the
-        target, a categorical inside an interaction or transform, duplicate terms, no
-        terms and no intercept, a reference for a column that is not a categorical term,
-        or an invalid filter.
+        target, a categorical inside an interaction or transform, an indicator whose level
+        its column's type cannot hold or whose column is also a categorical term,
+        duplicate terms, no terms and no intercept, a reference for a column that is not
+        a categorical term, or an invalid filter.
     """
     if isinstance(terms, str):
         written_target, parsed = parse_terms(terms)
@@ -827,6 +1031,14 @@ def build_spec(
             )
             raise SpecError(msg)
     categorical_terms = {t.column for t in resolved if t.kind == "categorical"}
+    for term in resolved:
+        if term.kind == "indicator" and term.column in categorical_terms:
+            msg = (
+                f"`{term.label}` is one of the indicators the categorical term "
+                f"`{quote_name(term.column or '')}` makes already; keep one of the two (the "
+                f"categorical's left-out level is chosen with `--reference {term.label}`)"
+            )
+            raise SpecError(msg)
     reference = dict(reference or {})
     for column in reference:
         if column not in categorical_terms:

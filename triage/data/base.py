@@ -10,10 +10,11 @@ from __future__ import annotations
 import abc
 import contextlib
 import functools
+import os
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING, Final, Protocol
+from typing import TYPE_CHECKING, Any, ClassVar, Final, Protocol
 
 import numpy as np
 import polars as pl
@@ -22,7 +23,7 @@ import pyarrow as pa
 from triage.core.design import ROW_INDEX
 from triage.core.filter import closest_names_hint
 from triage.data import hooks
-from triage.data.snapshot import SourceSnapshot, being_read
+from triage.data.snapshot import FileStamp, SourceSnapshot, being_read, changed_message
 from triage.errors import SourceChanged, SourceError, SpecError, TriageError
 
 if TYPE_CHECKING:
@@ -385,6 +386,105 @@ def group_runs(sizes: Sequence[int], part_rows: int) -> list[tuple[int, int]]:
     return runs
 
 
+@dataclass(frozen=True, eq=False, kw_only=True)
+class FilePart(abc.ABC):
+    """One file, or a run of its blocks, that any thread or process reads alone.
+
+    A part holds what its read needs and nothing of the source (a few hundred bytes
+    pickled), so a cluster ships it to the worker that reads it; rows keep their positions
+    in the whole source. Called, it yields the part's `Batch` es as `Source.scan_parts` says.
+    """
+
+    kind: ClassVar[str]
+    """The format in words, for messages (``"Parquet"``)."""
+    path: str
+    """The file, as an absolute path (a worker's working folder may differ)."""
+    start: int
+    """Position in the source of the part's first row."""
+    columns: tuple[str, ...]
+    """Columns to return (then dropped: the filter's own `extra`), in order."""
+    schema: dict[str, pl.DataType]
+    """The source's polars types of `columns` (reads are cast to them)."""
+    where: pl.Expr | None = None
+    extra: tuple[str, ...] = ()
+    batch_rows: int = 65_536
+    stamp: tuple[int, int] | None = None
+    """The file's size and modification time (ns) when the source was opened; None: unchecked.
+
+    Not its device and inode, which differ between machines that mount the same storage.
+    """
+
+    @property
+    @abc.abstractmethod
+    def rows(self) -> int | None:
+        """Rows the part reads, before filtering; None when only a read tells (CSV)."""
+
+    @abc.abstractmethod
+    def _frames(self) -> Iterator[pl.DataFrame]:
+        """Yield the part's rows, unfiltered, with `ROW_INDEX`, in order."""
+
+    def __call__(self) -> Iterator[Batch]:
+        """Read the part: filtered batches with `ROW_INDEX`, ``rows_read`` from its start.
+
+        Raises
+        ------
+        SourceChanged
+            When the file differs from its stamp before, during or after the read, or the
+            read ends with other than the part's rows (a file cut short).
+        SourceError
+            When the file cannot be read.
+        """
+        path = Path(self.path)
+        self._check_unchanged(path)
+        rows_read = 0
+        try:
+            for batch in filter_frames(self._frames(), self.where, self.extra, path=path):
+                rows_read = batch.rows_read
+                yield batch
+        except SourceError as error:
+            if not isinstance(error, SourceChanged):
+                self._check_unchanged(path)  # a file cut short fails to decode: say so
+            raise
+        self._check_unchanged(path)
+        if self.rows is not None and rows_read != self.rows:
+            raise SourceChanged(changed_message(path))
+
+    def _check_unchanged(self, path: Path) -> None:
+        if self.stamp is None:
+            return
+        now = FileStamp.of(path)
+        if now is None or (now.size, now.mtime_ns) != self.stamp:
+            raise SourceChanged(
+                changed_message(path, how="was removed" if now is None else "changed")
+            )
+
+
+def part_fields(
+    path: Path,
+    columns: Sequence[str],
+    schema: dict[str, pl.DataType],
+    *,
+    where: pl.Expr | None,
+    extra: Sequence[str],
+    batch_rows: int,
+    stamp: FileStamp | None,
+) -> dict[str, Any]:
+    """Return the fields every `FilePart` of the file at `path` shares, as keywords.
+
+    `schema` is the source's (only `columns` are kept); of `stamp`, a part checks the size
+    and modification time.
+    """
+    return {
+        "path": os.path.abspath(path),
+        "columns": tuple(columns),
+        "schema": {name: schema[name] for name in columns},
+        "where": where,
+        "extra": tuple(extra),
+        "batch_rows": batch_rows,
+        "stamp": None if stamp is None else (stamp.size, stamp.mtime_ns),
+    }
+
+
 def _check_sample_args(n_rows: int, sampling: str) -> None:
     check_count("n_rows", n_rows)
     if sampling not in ("groups", "uniform"):
@@ -550,11 +650,12 @@ class BlockSource(abc.ABC):
     ) -> list[Callable[[], Iterator[Batch]]]:
         """Split the scan into parts that can be read at the same time, in source order.
 
-        Each part, called, yields what `scan_batches` would for its rows, with
-        ``rows_read`` counted from the part's start. A source that reads as one stream (CSV,
-        Arrow IPC) gives one part that reads through the source; a Parquet source gives
-        self-contained parts (`ParquetPart`: file, row groups, positions and columns, not the
-        source), which another process (a cluster worker) can unpickle and read.
+        Each part, called, yields what `scan_batches` would for its rows (maybe cut into
+        other batches), with ``rows_read`` counted from the part's start. Parts are
+        self-contained (`FilePart`: file, blocks, first position and columns, not the
+        source), so another process (a cluster worker) can unpickle and read them: runs of
+        Parquet row groups or of Arrow IPC record batches, never across files; a CSV file is
+        one part.
 
         Parameters
         ----------

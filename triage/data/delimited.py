@@ -13,7 +13,14 @@ import numpy as np
 import polars as pl
 
 from triage.core.design import ROW_INDEX
-from triage.data.base import BlockSource, block_positions, collect_batches, reading
+from triage.data.base import (
+    BlockSource,
+    FilePart,
+    block_positions,
+    collect_batches,
+    part_fields,
+    reading,
+)
 
 _INFER_ROWS: Final[int] = 10_000
 """Rows polars looks at to guess column types (its default of 100 misses late decimals)."""
@@ -48,6 +55,51 @@ def _separator_for(path: Path, options: CsvOptions) -> str:
     return "\t" if ".tsv" in suffixes else ","
 
 
+def scan_delimited(path: Path, separator: str, options: CsvOptions) -> pl.LazyFrame:
+    """Scan the delimited text file at `path` with `options`, typing columns as triage does."""
+    return pl.scan_csv(
+        path,
+        separator=separator,
+        has_header=options.has_header,
+        quote_char=options.quote_char,
+        null_values=list(options.null_values),
+        encoding=options.encoding,  # type: ignore[arg-type]
+        infer_schema_length=_INFER_ROWS,
+    )
+
+
+def numbered(frame: pl.LazyFrame, start: int = 0) -> pl.LazyFrame:
+    """Put `ROW_INDEX` (int64 positions from `start`) in front of `frame`."""
+    indexed = frame.with_row_index(ROW_INDEX, offset=start)
+    return indexed.with_columns(pl.col(ROW_INDEX).cast(pl.Int64))
+
+
+@dataclass(frozen=True, eq=False, kw_only=True)
+class CsvPart(FilePart):
+    """One whole delimited text file (see `FilePart`); its rows are known only once read.
+
+    A file is not cut into byte ranges: a quoted field may hold a line break, so only a
+    read from the file's start knows where a row begins.
+    """
+
+    kind = "CSV"
+    separator: str
+    options: CsvOptions
+
+    @property
+    def rows(self) -> None:
+        """Unknown until the file is read."""
+        return None
+
+    def _frames(self) -> Iterator[pl.DataFrame]:
+        path = Path(self.path)
+        query = numbered(scan_delimited(path, self.separator, self.options), self.start)
+        with reading(path, self.kind):
+            yield from collect_batches(
+                query.select(ROW_INDEX, *self.columns), batch_rows=self.batch_rows
+            )
+
+
 class CsvSource(BlockSource):
     """A delimited text file; the row count needs a scan, so blocks are cut at sampling time.
 
@@ -80,23 +132,30 @@ class CsvSource(BlockSource):
         return f"{self._path.name}: CSV, separator {shown}, rows counted by a scan"
 
     def _lazy(self) -> pl.LazyFrame:
-        options = self._options
         self.snapshot.check_file(self._path)
-        return pl.scan_csv(
-            self._path,
-            separator=self._separator,
-            has_header=options.has_header,
-            quote_char=options.quote_char,
-            null_values=list(options.null_values),
-            encoding=options.encoding,  # type: ignore[arg-type]
-            infer_schema_length=_INFER_ROWS,
-        )
+        return scan_delimited(self._path, self._separator, self._options)
 
     def _read_schema(self) -> dict[str, pl.DataType]:
         return dict(self._lazy().collect_schema())
 
     def _indexed(self) -> pl.LazyFrame:
-        return self._lazy().with_row_index(ROW_INDEX).with_columns(pl.col(ROW_INDEX).cast(pl.Int64))
+        return numbered(self._lazy())
+
+    def _parts(
+        self,
+        columns: list[str],
+        where: pl.Expr | None,
+        extra: list[str],
+        batch_rows: int,
+        part_rows: int | None,
+    ) -> list[CsvPart]:
+        """Return the whole file as one part (a worker can read it where it sees it)."""
+        fields = part_fields(
+            self._path, columns, self.schema(), where=where, extra=extra,
+            batch_rows=batch_rows, stamp=self.snapshot.stamp(self._path),
+        )  # fmt: skip
+        part = CsvPart(start=0, separator=self._separator, options=self._options, **fields)
+        return [part]
 
     def _scan_raw(self, columns: list[str], batch_rows: int) -> Iterator[pl.DataFrame]:
         query = self._indexed().select(ROW_INDEX, *columns)

@@ -16,20 +16,19 @@ import pyarrow.parquet as pq
 
 from triage.core.design import ROW_INDEX
 from triage.data.base import (
-    Batch,
     BlockSource,
+    FilePart,
     block_positions,
     collect_batches,
     conform,
-    filter_frames,
     group_runs,
     number_record_batches,
     offsets_from_sizes,
+    part_fields,
     reading,
     with_positions,
 )
-from triage.data.snapshot import FileStamp, changed_message
-from triage.errors import SourceChanged, SourceError
+from triage.data.snapshot import FileStamp
 
 PART_ROWS: Final = 500_000
 """Rows, at least, in a part of a split scan (`scan_parts`): whole row groups, so each part
@@ -68,77 +67,22 @@ def open_parquet(path: str | os.PathLike[str], **options: object) -> pq.ParquetF
     return pq.ParquetFile(path, pre_buffer=False, buffer_size=READ_BUFFER_BYTES, **options)
 
 
-@dataclass(frozen=True, eq=False)
-class ParquetPart:
-    """A run of whole row groups of one Parquet file that any thread or process reads alone.
+@dataclass(frozen=True, eq=False, kw_only=True)
+class ParquetPart(FilePart):
+    """A run of whole row groups of one Parquet file (see `FilePart`)."""
 
-    It holds what the read needs and nothing of the source (a few hundred bytes pickled),
-    so a cluster ships it to the worker that reads the part; rows keep their positions in
-    the whole source. Called, it yields the part's `Batch` es as `Source.scan_parts` says.
-    """
-
-    path: str
-    """The file, as an absolute path (a worker's working folder may differ)."""
+    kind = "Parquet"
     groups: tuple[int, int]
     """Row groups ``[first, stop)`` of the file."""
     sizes: tuple[int, ...]
     """Rows of each of those row groups."""
-    start: int
-    """Position in the source of the part's first row."""
-    columns: tuple[str, ...]
-    """Columns to return (then dropped: the filter's own `extra`), in order."""
-    schema: dict[str, pl.DataType]
-    """The source's polars types of `columns` (pyarrow reads are cast to them)."""
-    where: pl.Expr | None = None
-    extra: tuple[str, ...] = ()
-    batch_rows: int = 65_536
     constants: tuple[tuple[str, str | None], ...] = ()
     """Columns taken from the file's partition folders (``key=value``), with their values."""
-    stamp: tuple[int, int] | None = None
-    """The file's size and modification time (ns) when the source was opened; None: unchecked.
-
-    Not its device and inode, which differ between machines that mount the same storage.
-    """
 
     @property
     def rows(self) -> int:
         """Rows the part reads, before filtering."""
         return sum(self.sizes)
-
-    def __call__(self) -> Iterator[Batch]:
-        """Read the part: filtered batches with `ROW_INDEX`, ``rows_read`` from its start.
-
-        Raises
-        ------
-        SourceChanged
-            When the file differs from its stamp before, during or after the read, or the
-            read ends with other than the part's rows (a file cut short).
-        SourceError
-            When the file cannot be read.
-        """
-        path = Path(self.path)
-        self._check_unchanged(path)
-        rows_read = 0
-        try:
-            for batch in filter_frames(self._frames(), self.where, self.extra, path=path):
-                rows_read = batch.rows_read
-                yield batch
-        except SourceError as error:
-            if not isinstance(error, SourceChanged):
-                self._check_unchanged(path)  # a file cut short fails to decode: say so
-            raise
-        self._check_unchanged(path)
-        if rows_read != self.rows:
-            raise SourceChanged(changed_message(path))
-
-    def _check_unchanged(self, path: Path) -> None:
-        if self.stamp is None:
-            return
-        now = FileStamp.of(path)
-        if now is None or (now.size, now.mtime_ns) != self.stamp:
-            raise SourceChanged(
-                changed_message(path, how="was removed" if now is None else "changed")
-            )
 
     def _frames(self) -> Iterator[pl.DataFrame]:
         # One thread per part: pyarrow's own threads cost 1.4-1.6 CPU-s against 1.3 alone
@@ -188,19 +132,16 @@ def file_parts(
     Each part holds `part_rows` rows or more (`PART_ROWS` when not given), the last maybe fewer.
     """
     offsets = offsets_from_sizes(sizes) + start
+    fields = part_fields(
+        path, columns, schema, where=where, extra=extra, batch_rows=batch_rows, stamp=stamp
+    )
     return [
         ParquetPart(
-            path=os.path.abspath(path),
             groups=(first, stop),
             sizes=tuple(int(n) for n in sizes[first:stop]),
             start=int(offsets[first]),
-            columns=tuple(columns),
-            schema={c: schema[c] for c in columns},
-            where=where,
-            extra=tuple(extra),
-            batch_rows=batch_rows,
             constants=constants,
-            stamp=None if stamp is None else (stamp.size, stamp.mtime_ns),
+            **fields,
         )
         for first, stop in group_runs(sizes, PART_ROWS if part_rows is None else part_rows)
     ]

@@ -1,11 +1,12 @@
 """Full passes on a Dask cluster: a part of the source in, its accumulators out, on a worker.
 
-Each task reads one part of the source (`Source.scan_parts`: a file, or a run of its row
-groups) on a worker, from storage that worker sees, folds it into the pass's accumulators
-and keeps them there; merge tasks join neighbouring parts in a tree on the cluster, so only
-accumulators move between workers and only the root comes back. A task carries its part
-(file, row groups, first position: a few hundred bytes) and the pass's job (the design
-builder, and in pass 2 the fit: kilobytes), never rows.
+Each task reads one part of the source (`Source.scan_parts`: a run of Parquet row groups or
+of Arrow IPC record batches, or a whole CSV file) on a worker, from storage that worker
+sees, folds it into the pass's accumulators and keeps them there; merge tasks join
+neighbouring parts in a tree on the cluster, so only accumulators move between workers and
+only the root comes back. A task carries its part (file, blocks, first position: a few
+hundred bytes) and the pass's job (the design builder, and in pass 2 the fit: kilobytes),
+never rows. A source of one part is folded frame by frame in the local engine's tree.
 
 Dask is optional (``pip install 'triage[cluster]'``); this module imports it only when a
 pass first needs the cluster, so a sample fit never contacts the scheduler.
@@ -25,8 +26,8 @@ from dataclasses import dataclass
 from types import TracebackType
 from typing import TYPE_CHECKING, Any, Final, Generic, Self, TypeVar
 
-from triage.data.parquet import ParquetPart
-from triage.engine.passes import RowCounts, fold_part
+from triage.data.base import FilePart
+from triage.engine.passes import RowCounts, counted_frames, fold_each_frame, fold_part
 from triage.errors import ClusterError, TriageError
 
 if TYPE_CHECKING:
@@ -65,6 +66,22 @@ def fold_part_task(
     """Read and fold one part on a cluster worker; return its accumulators and row counts."""
     counts = RowCounts()
     state = fold_part(read_part, job.new_part(), job.fold, counts, marked=job.marked)
+    return state, counts
+
+
+def fold_lone_part_task(
+    read_part: Callable[[], Iterator[Batch]], job: PassJob[S]
+) -> tuple[S, RowCounts]:
+    """Fold a source's only part on a cluster worker, frame by frame, as the local engine does.
+
+    The local engine folds a source of one part one frame per accumulator, merged in frame
+    order (`fold_each_frame`); the same tree here gives the same bits.
+    """
+    counts = RowCounts()
+    frames = counted_frames(read_part(), counts, job.marked)
+    state = fold_each_frame(
+        frames, job.new_part, job.fold, job.merge, wait=lambda: None, n_workers=1
+    )
     return state, counts
 
 
@@ -188,25 +205,22 @@ class ClusterEngine:
         PassCancelled
             When the tracker's cancel event is set.
         """
-        if not all(isinstance(part, ParquetPart) for part in parts):
-            msg = (
-                "`--engine dask` splits Parquet files (a file, a folder or a glob of them); "
-                "this source reads as one stream: use `--engine local`"
-            )
+        file_parts = [part for part in parts if isinstance(part, FilePart)]
+        if len(file_parts) < len(parts):  # an IPC file without record batches
+            msg = "`--engine dask` cannot split this source into parts: use `--engine local`"
             raise ClusterError(msg)
         client = self.client()
-        self._check_workers_see(client, parts)
+        self._check_workers_see(client, file_parts)
         job = client.submit(pass_job_task, PassJob(new_part, fold, merge, marked), pure=False)
-        pending = {
-            k: client.submit(fold_part_task, part, job, pure=False) for k, part in enumerate(parts)
-        }
+        task = fold_part_task if len(file_parts) > 1 else fold_lone_part_task
+        pending = {k: client.submit(task, part, job, pure=False) for k, part in enumerate(parts)}
         root = merge_tree(
             list(pending.values()),
             lambda left, right: client.submit(merge_task, job, left, right, pure=False),
         )
         finished = threading.Event()
         root.add_done_callback(lambda _: finished.set())
-        sizes = [part.rows for part in parts if isinstance(part, ParquetPart)]
+        sizes = [part.rows or 0 for part in file_parts]  # a CSV file's rows: known when read
         rows_done = 0
         try:
             while not finished.wait(POLL_S):
@@ -221,11 +235,9 @@ class ClusterEngine:
             raise
         return result
 
-    def _check_workers_see(
-        self, client: Any, parts: Sequence[Callable[[], Iterator[Batch]]]
-    ) -> None:
+    def _check_workers_see(self, client: Any, parts: Sequence[FilePart]) -> None:
         """Raise `ClusterError` when a worker cannot see a file of the parts."""
-        paths = sorted({part.path for part in parts if isinstance(part, ParquetPart)})
+        paths = sorted({part.path for part in parts})
         if not paths:
             return
         try:

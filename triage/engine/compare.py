@@ -27,6 +27,7 @@ from triage.core.holdout import (
     kfold_rmse,
     random_holdout_mask,
 )
+from triage.core.indicator_terms import count_indicator_rows, indicator_parts
 from triage.core.limits import check_factor_scale
 from triage.core.lsq import QRAccumulator
 from triage.data.base import random_keys
@@ -48,6 +49,7 @@ from triage.results.holdout import KFoldResult
 
 if TYPE_CHECKING:
     from triage._typing import RowsToRead, Sampling
+    from triage.core.indicator_terms import IndicatorLevel
     from triage.core.levels import LevelTable
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
@@ -121,18 +123,30 @@ def _learn_builders(
     frame: pl.DataFrame,
     *,
     level_tables: Mapping[str, LevelTable] | None = None,
+    indicator_levels: Mapping[str, IndicatorLevel] | None = None,
     budget: DesignBudget | None = None,
 ) -> tuple[list[DesignBuilder], pl.DataFrame]:
     """Learn each model's coding on the sample rows every model can use; return those rows too.
 
     Learning on the same rows gives every model the same levels and `std()` scaling, so
     rebuilding a model's rows later reproduces what was fitted. A full pass gives the
-    levels it counted over every row (`level_tables`) and its memory `budget`.
+    levels it counted over every row (`level_tables`, `indicator_levels`) and its memory
+    `budget`; a sample's indicator levels are counted on every row read, so a level held
+    only by rows some model cannot use still counts as held.
     """
     schema = source.schema()
+    if indicator_levels is None:
+        indicator_levels = count_indicator_rows(schema, indicator_parts(specs), frame)
 
     def learn(spec: ModelSpec, rows: pl.DataFrame) -> DesignBuilder:
-        return DesignBuilder.learn(spec, schema, rows, level_tables=level_tables, budget=budget)
+        return DesignBuilder.learn(
+            spec,
+            schema,
+            rows,
+            level_tables=level_tables,
+            indicator_levels=indicator_levels,
+            budget=budget,
+        )
 
     provisional = [learn(spec, frame) for spec in specs]
     common = _common_batches(provisional, frame, None)[0].frame
@@ -222,7 +236,12 @@ def compare_models(
         specs,
     )
     builders, common_sample = _learn_builders(
-        specs, source, plan.learning_frame, level_tables=tables, budget=budget
+        specs,
+        source,
+        plan.learning_frame,
+        level_tables=tables,
+        indicator_levels=plan.count_indicator_rows(ProgressTracker(None, cancel=cancel), specs),
+        budget=budget,
     )
 
     def new_part() -> _ComparePart:

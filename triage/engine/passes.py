@@ -11,7 +11,7 @@ import functools
 import os
 import threading
 import time
-from collections.abc import Callable, Collection, Generator, Iterator, Sequence
+from collections.abc import Callable, Collection, Generator, Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Protocol, TypeVar
 
@@ -19,6 +19,7 @@ import numpy as np
 import polars as pl
 
 from triage._typing import ALL_ROWS
+from triage.core.column_figures import ColumnFiguresAccumulator
 from triage.core.design import (
     MIN_BLOCK_ROWS,
     CodedBatch,
@@ -27,6 +28,7 @@ from triage.core.design import (
     DesignBuilder,
 )
 from triage.core.filter import parse_filter
+from triage.core.indicator_terms import IndicatorRows, indicator_parts
 from triage.core.levels import LevelCounter
 from triage.core.limits import check_column_values, check_factor_scale
 from triage.core.lsq import QRAccumulator, UncertifiedGram
@@ -35,13 +37,14 @@ from triage.engine.allocator import keep_batch_memory
 from triage.engine.progress import ProgressCallback, ProgressTracker, ReadAhead
 from triage.engine.workers import fold_in_order, pass_workers
 from triage.errors import DataError, TriageError
-from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
+from triage.results.fit import ColumnFigures, DataSummary, FitOutcome, ReportOutcome
 from triage.results.progress import PassProgress
 
 if TYPE_CHECKING:
     from numpy.typing import NDArray
 
     from triage._typing import RowsToRead, Sampling
+    from triage.core.indicator_terms import IndicatorLevel
     from triage.core.levels import LevelTable
     from triage.core.lsq import LinearFit
     from triage.core.spec import ModelSpec
@@ -225,6 +228,16 @@ def drop_marked_rows(
     return frame.filter(pl.Series(keep))
 
 
+def counted_frames(
+    batches: Iterable[Batch], counts: RowCounts, marked: NDArray[np.int64] | None
+) -> Iterator[pl.DataFrame]:
+    """Yield the frames of `batches`, counting their rows and leaving out `marked` ones."""
+    for batch in batches:
+        counts.read = batch.rows_read
+        counts.kept_by_filter += batch.frame.height
+        yield batch.frame if marked is None else drop_marked_rows(batch.frame, marked, counts)
+
+
 def fold_part(
     read_part: Callable[[], Iterator[Batch]],
     state: S,
@@ -243,17 +256,42 @@ def fold_part(
     before each batch (a cancel); a set `stopping` ends the part early; `keep`, if given,
     receives each folded frame (a report keeps them for pass 2, `KeptFrames`).
     """
-    for batch in read_part():
+    for frame in counted_frames(read_part(), counts, marked):
         if stopping is not None and stopping.is_set():
             break
         check()
-        counts.read = batch.rows_read
-        counts.kept_by_filter += batch.frame.height
-        frame = batch.frame if marked is None else drop_marked_rows(batch.frame, marked, counts)
         fold(state, frame)
         if keep is not None:
             keep(frame)
     return state
+
+
+def fold_each_frame(
+    frames: Iterable[pl.DataFrame],
+    new_part: Callable[[], S],
+    fold: Callable[[S, pl.DataFrame], None],
+    merge: Callable[[S, S], S],
+    *,
+    wait: Callable[[], None],
+    keep: Callable[[int, pl.DataFrame], None] | None = None,
+    n_workers: int | None = None,
+) -> S:
+    """Fold each frame into a part of its own on worker threads; merge them in frame order.
+
+    This is how a pass over a source of one part (a stream) folds, here or on a cluster
+    worker, so both give the same bits. `keep`, if given, receives each frame and its number.
+    """
+
+    def fold_frame(unit: tuple[int, pl.DataFrame], stopping: threading.Event) -> S:
+        k, frame = unit
+        state = new_part()
+        fold(state, frame)
+        if keep is not None:
+            keep(k, frame)
+        return state
+
+    merged = fold_in_order(enumerate(frames), fold_frame, merge, wait=wait, n_workers=n_workers)
+    return new_part() if merged is None else merged
 
 
 class PassPlan:
@@ -327,6 +365,11 @@ class PassPlan:
         """True when the pass reads every row of the source."""
         return self.sample is None or self.sample.is_whole
 
+    @property
+    def folds_whole_source(self) -> bool:
+        """True when every row of the source reaches the fold: a full pass, no filter, no marks."""
+        return self.is_full_pass and self.where is None and self.exclude.size == 0
+
     def _drop_excluded(self, frame: pl.DataFrame, counts: RowCounts) -> pl.DataFrame:
         return drop_marked_rows(frame, self.exclude, counts)
 
@@ -338,21 +381,25 @@ class PassPlan:
         batch_values: int = BATCH_VALUES,
         columns: Sequence[str] | None = None,
         drop_marked: bool = True,
+        part: Callable[[], Iterator[Batch]] | None = None,
     ) -> Generator[pl.DataFrame, None, None]:
         """Yield the filtered frames of the pass, counting rows and reporting progress.
 
         `columns` reads other columns than the plan's (a first read of the categoricals);
-        `drop_marked=False` keeps the rows the user marked.
+        `drop_marked=False` keeps the rows the user marked; `part` is read in place of
+        the whole source (its one part, `Source.scan_parts`).
         """
         columns = self.columns if columns is None else list(columns)
         step = batch_rows_for(len(columns), batch_values)
         if self.sample is None:
-            batches = self.source.scan_batches(columns, where=self.where, batch_rows=step)
-            for batch in ReadAhead(iter(batches)):
-                counts.read = batch.rows_read
-                counts.kept_by_filter += batch.frame.height
-                tracker.advance(batch.rows_read)
-                yield self._drop_excluded(batch.frame, counts) if drop_marked else batch.frame
+            if part is None:
+                part = functools.partial(
+                    self.source.scan_batches, columns, where=self.where, batch_rows=step
+                )
+            marked = self.exclude if drop_marked else None
+            for frame in counted_frames(ReadAhead(iter(part())), counts, marked):
+                tracker.advance(counts.read)
+                yield frame
             return
         frame = self.sample.frame
         counts.read = self.sample.rows_read
@@ -486,15 +533,6 @@ class PassPlan:
                 tracker.advance(counts.read, force=True)
                 return folded
         if len(parts) < 2:
-
-            def fold_frame(unit: tuple[int, pl.DataFrame], stopping: threading.Event) -> S:
-                k, frame = unit
-                state = new_part()
-                fold(state, frame)
-                if keep is not None:
-                    keep(k, frame)
-                return state
-
             with contextlib.closing(
                 self.frames(
                     counts,
@@ -502,10 +540,10 @@ class PassPlan:
                     batch_values=batch_values,
                     columns=columns,
                     drop_marked=drop_marked,
+                    part=parts[0] if parts else None,
                 )
             ) as frames:
-                merged = fold_in_order(enumerate(frames), fold_frame, merge, wait=tracker.check)
-            return new_part() if merged is None else merged
+                return fold_each_frame(frames, new_part, fold, merge, wait=tracker.check, keep=keep)
         part_counts = [RowCounts() for _ in parts]
 
         def fold_unit(k: int, stopping: threading.Event) -> S:
@@ -591,6 +629,35 @@ class PassPlan:
             drop_marked=False,
         ).finalize()
 
+    def count_indicator_rows(
+        self, tracker: ProgressTracker, specs: Sequence[ModelSpec] = ()
+    ) -> dict[str, IndicatorLevel] | None:
+        """Count the rows holding each indicator term's level over every row, or None.
+
+        None for a sample (the design counts the sample) or a model without an indicator
+        term such as ``depot=north``. Like `count_levels`, it reads only the indicators'
+        columns (and the filter's), counting marked rows too, so a level that only rows
+        left out for a missing value elsewhere hold is still a level of the column.
+        """
+        terms = indicator_parts(specs or (self.spec,))
+        if self.sample is not None or not terms:
+            return None
+        schema = self.source.schema()
+
+        def fold(counter: IndicatorRows, frame: pl.DataFrame) -> None:
+            counter.update(frame)
+
+        return self.fold_frames(
+            lambda: IndicatorRows(schema, terms),
+            fold,
+            IndicatorRows.merge,
+            RowCounts(),
+            tracker,
+            batch_values=FIT_BATCH_VALUES,
+            columns=list(dict.fromkeys(t.column for t in terms if t.column)),
+            drop_marked=False,
+        ).finalize()
+
     def budget(self) -> DesignBudget:
         """Return this pass's design memory budget (the spec's `max_memory` or the default)."""
         limit = self.spec.max_memory
@@ -610,6 +677,7 @@ class PassPlan:
             self.source.schema(),
             self.learning_frame,
             level_tables=self.count_levels(tracker, cap),
+            indicator_levels=self.count_indicator_rows(tracker),
             budget=budget,
         )
 
@@ -787,7 +855,7 @@ def _fit(
     builder = plan.learn(ProgressTracker(None, cancel=cancel))
     tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
     try:
-        counts, accumulator = _fit_pass(plan, builder, tracker, use_codes=True)
+        counts, accumulator, figures = _fit_pass(plan, builder, tracker, use_codes=True)
         fit_or_none: LinearFit | None = _finalize_fit(plan, builder, counts, accumulator)
     except UncertifiedGram:
         # Rare: a design the counts and sums cannot factor to full accuracy (say a rare
@@ -795,27 +863,42 @@ def _fit(
         fit_or_none = None
     if fit_or_none is None:
         tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
-        counts, accumulator = _fit_pass(plan, builder, tracker, use_codes=False)
+        counts, accumulator, figures = _fit_pass(plan, builder, tracker, use_codes=False)
         fit_or_none = _finalize_fit(plan, builder, counts, accumulator)
-    return FitOutcome(spec, builder, fit_or_none, plan.summary(counts), plan.learning_frame)
+    summary = plan.summary(counts)
+    return FitOutcome(spec, builder, fit_or_none, summary, plan.learning_frame, figures)
+
+
+FitPart = tuple[QRAccumulator, RowCounts, ColumnFiguresAccumulator | None]
+"""What one part of pass 1 folds into: the fit, the row counts, the columns' figures."""
 
 
 def _fit_pass(
     plan: PassPlan, builder: DesignBuilder, tracker: ProgressTracker, *, use_codes: bool
-) -> tuple[RowCounts, QRAccumulator]:
-    """Fold every batch of pass 1 into one accumulator; categoricals as codes if `use_codes`."""
+) -> tuple[RowCounts, QRAccumulator, tuple[ColumnFigures, ...]]:
+    """Fold every batch of pass 1 into one accumulator; categoricals as codes if `use_codes`.
+
+    When every row of the source reaches the fold, the model's columns' figures (rows,
+    missing, low, mean, spread, high) are folded alongside.
+    """
     spec = plan.spec
     unshifted = builder.indicator_positions if use_codes else ()
+    schema = dict(plan.source.schema()) if plan.folds_whole_source else None
 
-    def new_part() -> tuple[QRAccumulator, RowCounts]:
+    def new_part() -> FitPart:
         accumulator = QRAccumulator(
             len(builder.column_names), has_intercept=spec.intercept, unshifted=unshifted
         )
-        return accumulator, RowCounts()
+        figures = (
+            None if schema is None else ColumnFiguresAccumulator(schema, spec.source_columns())
+        )
+        return accumulator, RowCounts(), figures
 
-    def fold(part: tuple[QRAccumulator, RowCounts], frame: pl.DataFrame) -> None:
+    def fold(part: FitPart, frame: pl.DataFrame) -> None:
         with naming_values_too_large(builder, frame):
-            accumulator, part_counts = part
+            accumulator, part_counts, figures = part
+            if figures is not None:
+                figures.update(frame)
             columns = builder.build_columns(frame)
             if columns is not None and accumulator.update_columns(columns.predictors, columns.y):
                 part_counts.used += columns.n_rows
@@ -830,19 +913,19 @@ def _fit_pass(
                 part_counts.add(batch)
                 accumulator.update(batch.x, batch.y, batch.weights)
 
-    def merge(
-        part: tuple[QRAccumulator, RowCounts], other: tuple[QRAccumulator, RowCounts]
-    ) -> tuple[QRAccumulator, RowCounts]:
+    def merge(part: FitPart, other: FitPart) -> FitPart:
         part[0].merge(other[0])
         part[1].absorb(other[1])
+        if part[2] is not None and other[2] is not None:
+            part[2].merge(other[2])
         return part
 
     counts = RowCounts()
-    accumulator, design_counts = plan.fold_frames(
+    accumulator, design_counts, figures = plan.fold_frames(
         new_part, fold, merge, counts, tracker, batch_values=FIT_BATCH_VALUES
     )
     counts.absorb(design_counts)
-    return counts, accumulator
+    return counts, accumulator, () if figures is None else figures.finalize()
 
 
 def _finalize_fit(

@@ -58,7 +58,10 @@ class ModelScore:
     cv_rmse: float | None
     """Mean over K folds of the held-out-fold RMSE, on the in-memory sample."""
     aliased: tuple[str, ...]
-    """Design columns that got no estimate."""
+    """Design columns that got no estimate because they combine other columns exactly."""
+    no_rows: tuple[str, ...]
+    """Design columns that got no estimate because they are 0 in every row fitted (a level
+    whose rows were all left out)."""
     notes: tuple[str, ...]
     """Plain-language remarks, e.g. that no degrees of freedom are left."""
 

@@ -11,6 +11,7 @@ from typing import TYPE_CHECKING, Any, Final
 
 from triage.views.format import NA, Align, format_count, format_number, format_p
 from triage.views.text import (
+    NO_ROWS_LEFT,
     criterion_text,
     join_sections,
     render_data_summary,
@@ -93,6 +94,9 @@ def render_comparison_table(comparison: Comparison, *, width: int = 100) -> str:
         if model.aliased:
             names = ", ".join(model.aliased)
             lines.append(_wrap(f"#{i + 1}: no estimate (aliased) for {names}", width))
+        if model.no_rows:
+            names = ", ".join(model.no_rows)
+            lines.append(_wrap(f"#{i + 1}: no estimate ({NO_ROWS_LEFT}) for {names}", width))
     return "\n".join(lines)
 
 

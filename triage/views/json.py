@@ -80,9 +80,9 @@ def _term_to_json(term: Term, builder: DesignBuilder) -> dict[str, Any]:
     """Describe one term so that its design columns can be rebuilt from the source.
 
     Every term gives its kind, column, transform, power, factors and design columns; a
-    ``std()`` term the mean and SD it uses; a categorical its levels in natural order with
-    the rows counted for each (the rows it was learned from), its reference level and
-    whether ``--reference`` named it.
+    ``std()`` term the mean and SD it uses; an indicator (``depot=north``) its level; a
+    categorical its levels in natural order with the rows counted for each (the rows it
+    was learned from), its reference level and whether ``--reference`` named it.
     """
     entry: dict[str, Any] = {
         "term": term.label,
@@ -97,6 +97,8 @@ def _term_to_json(term: Term, builder: DesignBuilder) -> dict[str, Any]:
             if owner == term.label
         ],
     }
+    if term.kind == "indicator":
+        entry["level"] = term.level
     if term.label in builder.scaling:
         mean, sd = builder.scaling[term.label]
         entry["mean"], entry["sd"] = mean, sd
@@ -123,7 +125,9 @@ def fit_to_json(outcome: FitOutcome) -> dict[str, Any]:
     -------
     dict
         Keys ``data``, ``model``, ``coefficients`` (one entry per design column, the
-        intercept named ``intercept``), ``aliased`` and ``fit``.
+        intercept named ``intercept``), ``aliased`` (columns that combine others exactly),
+        ``no_rows_left`` (columns 0 in every row used, such as a level whose rows were all
+        left out) and ``fit``.
 
     See Also
     --------
@@ -160,7 +164,8 @@ def fit_to_json(outcome: FitOutcome) -> dict[str, Any]:
             "reference_rule": CODING_RULE,
         },
         "coefficients": coefficients,
-        "aliased": list(fit.aliased),
+        "aliased": list(fit.collinear),
+        "no_rows_left": list(fit.no_rows),
         "fit": {
             "n": fit.n,
             "r2": fit.r2,

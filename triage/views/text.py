@@ -467,8 +467,16 @@ def render_coefficients(
     return f"{rule('coefficients', width)}\n{body}"
 
 
+NO_ROWS_LEFT: Final = "no rows left after missing values"
+"""Why a design column that is 0 in every row used got no estimate (`LinearFit.no_rows`)."""
+
+
 def render_aliased(fit: LinearFit, *, width: int = 100) -> str:
-    """Name the design columns that are exact combinations of others, if any.
+    """Name the design columns that got no estimate, each under its reason, if any.
+
+    A column that is an exact combination of others is aliased; a column that is 0 in
+    every row used (a level whose rows were all left out, for a missing value in another
+    column, a mark or a filter) has no rows to estimate it from, and says so apart.
 
     Parameters
     ----------
@@ -480,18 +488,32 @@ def render_aliased(fit: LinearFit, *, width: int = 100) -> str:
     Returns
     -------
     str
-        The ``aliased terms`` section, or an empty string when there are none.
+        The ``aliased terms`` and ``terms with no rows left`` sections, or an empty string
+        when every column got an estimate.
     """
-    names = list(fit.aliased)
-    if not names:
-        return ""
-    lines = [
-        rule("aliased terms", width),
-        truncate(
-            "these columns are exact combinations of other columns and got no estimate:", width
-        ),
-    ]
-    lines += [f"  {truncate(name, width - 2)}" for name in names]
+    sections = []
+    if fit.collinear:
+        sections.append(
+            (
+                "aliased terms",
+                "these columns are exact combinations of other columns and got no estimate:",
+                fit.collinear,
+            )
+        )
+    if fit.no_rows:
+        sections.append(
+            (
+                "terms with no rows left",
+                f"{NO_ROWS_LEFT}: these columns are 0 in every row used (every row of the "
+                "level was left out, for a missing value in another column, a mark, the "
+                "filter or a held-out split), so they got no estimate:",
+                fit.no_rows,
+            )
+        )
+    lines = []
+    for title, why, names in sections:
+        lines += [rule(title, width), *textwrap.wrap(why, width=max(width, 20))]
+        lines += [f"  {truncate(name, width - 2)}" for name in names]
     return "\n".join(lines)
 
 

@@ -3,20 +3,19 @@
 from __future__ import annotations
 
 from collections import OrderedDict
-from dataclasses import dataclass, replace
-from itertools import count
+from dataclasses import replace
 from typing import TYPE_CHECKING, ClassVar, Final, cast
 
 from textual import events, on, work
 from textual.app import ComposeResult
-from textual.binding import Binding, BindingType
+from textual.binding import BindingType
 from textual.containers import Container
 from textual.screen import Screen
 from textual.widgets import DataTable
 from textual.worker import Worker, WorkerState, get_current_worker
 
-from triage._typing import ALL_ROWS, CRITERIA, RowsToRead
-from triage.errors import PassCancelled, TriageError, numeric_warning_message
+from triage._typing import ALL_ROWS, CRITERIA
+from triage.errors import TriageError, numeric_warning_message
 from triage.tui.head_start import HeadStart, collect_again, open_and_profile, segment_columns
 from triage.tui.messages import (
     ChecksFinished,
@@ -29,10 +28,11 @@ from triage.tui.messages import (
     RowsFetched,
     SourceOpened,
 )
+from triage.tui.passes import PassJob, PassLedger, basis_text, run_pass
 from triage.tui.screens.dialogs import ErrorScreen, PromptScreen, TextScreen
 from triage.tui.screens.export import ExportRequest, ExportScreen
+from triage.tui.screens.main_keys import COLUMN_ACTIONS, FIT_ACTIONS, MAIN_BINDINGS
 from triage.tui.session import (
-    FitLabel,
     ModelDraft,
     SessionFit,
     compare_session_fits,
@@ -60,12 +60,10 @@ from triage.tui.widgets.panes import (
 from triage.tui.widgets.status import KeyFooter, ModelLine, PaneStrip, PassLine
 
 if TYPE_CHECKING:
-    from triage._typing import Criterion
+    from triage._typing import Criterion, RowsToRead
     from triage.core.spec import ModelSpec, TextColumnFacts
     from triage.data.source import Source
     from triage.engine.cluster import ClusterEngine
-    from triage.results.fit import DataSummary, FitOutcome
-    from triage.results.progress import PassProgress
     from triage.tui.settings import Settings
 
 TILE_MIN_WIDTH: Final = 110
@@ -77,284 +75,11 @@ TILE_MIN_HEIGHT: Final = 32
 ROW_CACHE_SIZE: Final = 256
 """Original rows kept after fetching, so stepping back and forth reads nothing again."""
 
-COLUMN_ACTIONS: Final = frozenset(
-    {
-        "set_target",
-        "toggle_term",
-        "cycle_transform",
-        "toggle_categorical",
-        "set_weights",
-        "toggle_shown",
-    }
-)
-"""Actions that work on the column under the cursor of the Columns pane."""
-
-FIT_ACTIONS: Final = frozenset(
-    {
-        "toggle_robust",
-        "next_predictor",
-        "next_criterion",
-        "next_segment_column",
-        "open_row",
-        "step_row",
-        "toggle_mark",
-        "refit_without_marked",
-        "clear_marks",
-        "export_rows",
-        "show_checks",
-    }
-)
-"""Actions that need a fit on screen."""
-
-
-@dataclass(frozen=True)
-class PassJob:
-    """What one pass fits: the checked model, rows left out, and the fit it compares with."""
-
-    pass_id: int
-    """Carried in the pass's messages so late ones from a cancelled pass are dropped."""
-    spec: ModelSpec
-    """The model, checked against the source's columns."""
-    excluded: frozenset[int]
-    """Source positions left out (a what-if refit)."""
-    baseline: int | None
-    """Number of the fit a what-if refit is compared with."""
-    is_full: bool
-    """Reads every row (in the background) rather than the sample."""
-
-
-def _pane_binding(index: int, pane_id: str, title: str) -> Binding:
-    key = str((index + 1) % 10)
-    return Binding(
-        key,
-        f"show_pane('{pane_id}')",
-        title,
-        show=False,
-        id=f"pane-{pane_id}",
-        tooltip=f"Bring the {title} pane to the front.",
-    )
-
 
 class MainScreen(Screen[None]):
     """Panes of one session around a status line; the only place that starts passes."""
 
-    BINDINGS: ClassVar[list[BindingType]] = [
-        *(_pane_binding(i, info.pane_id, info.title) for i, info in enumerate(PANES)),
-        Binding(
-            "greater_than_sign",
-            "cycle_pane(1)",
-            "next pane",
-            show=False,
-            id="next-pane",
-            tooltip="Bring the next pane to the front.",
-        ),
-        Binding(
-            "less_than_sign",
-            "cycle_pane(-1)",
-            "previous pane",
-            show=False,
-            id="previous-pane",
-            tooltip="Bring the previous pane to the front.",
-        ),
-        Binding(
-            "ctrl+o",
-            "open_data",
-            "open file",
-            show=False,
-            id="open-data",
-            tooltip="Open another Parquet, CSV or Arrow file, folder or glob.",
-        ),
-        Binding(
-            "y",
-            "set_target",
-            "target",
-            id="set-target",
-            tooltip="Make the column under the cursor the target of the model.",
-        ),
-        Binding(
-            "space",
-            "toggle_term",
-            "term",
-            show=False,
-            id="toggle-term",
-            tooltip="Add the column under the cursor as a term, or remove its term.",
-        ),
-        Binding(
-            "t",
-            "cycle_transform",
-            "transform",
-            show=False,
-            id="cycle-transform",
-            tooltip="Step the column's term through log, log1p, sqrt, square, std, none.",
-        ),
-        Binding(
-            "c",
-            "toggle_categorical",
-            "categorical",
-            show=False,
-            id="toggle-categorical",
-            tooltip="Treat the column under the cursor as categories, or stop doing so.",
-        ),
-        Binding(
-            "w",
-            "set_weights",
-            "weights",
-            show=False,
-            id="set-weights",
-            tooltip="Use the column under the cursor as case weights, or stop doing so.",
-        ),
-        Binding(
-            "l",
-            "toggle_shown",
-            "show in Worst",
-            show=False,
-            id="toggle-shown",
-            tooltip="Show the column under the cursor beside each worst row (two at most), "
-            "or stop.",
-        ),
-        Binding(
-            "f",
-            "edit_filter",
-            "filter",
-            show=False,
-            id="edit-filter",
-            tooltip="Type a row filter in SQL syntax, e.g. depot = 'north' AND hour < 20.",
-        ),
-        Binding(
-            "e",
-            "edit_terms",
-            "type terms",
-            show=False,
-            id="edit-terms",
-            tooltip="Type the terms, e.g. distance_km, log(stops), depot, or y ~ a + b.",
-        ),
-        Binding(
-            "s",
-            "quick_fit",
-            "sample fit",
-            id="quick-fit",
-            tooltip="Fit the model on a sample now (about a second on a large file).",
-        ),
-        Binding(
-            "a",
-            "start_full_pass",
-            "every row",
-            id="start-full-pass",
-            tooltip="Fit and diagnose on every row in the background.",
-        ),
-        Binding(
-            "x",
-            "cancel_pass",
-            "stop pass",
-            id="cancel-pass",
-            tooltip="Stop the running pass; the sample results stay on screen.",
-        ),
-        Binding(
-            "r",
-            "toggle_robust",
-            "robust SE",
-            show=False,
-            id="toggle-robust",
-            tooltip="Show standard errors robust to changing spread (HC3), or the usual ones.",
-        ),
-        Binding(
-            "v",
-            "next_predictor",
-            "next input",
-            show=False,
-            id="next-predictor",
-            tooltip="Show residuals against the next numeric input of the model.",
-        ),
-        Binding(
-            "o",
-            "next_criterion",
-            "next ranking",
-            show=False,
-            id="next-criterion",
-            tooltip="Rank the worst rows by the next criterion.",
-        ),
-        Binding(
-            "g",
-            "next_segment_column",
-            "next group column",
-            show=False,
-            id="next-segment-column",
-            tooltip="Break residuals down by the next column.",
-        ),
-        Binding(
-            "d",
-            "open_row",
-            "open row",
-            show=False,
-            id="open-row",
-            tooltip="Show the whole original row under the cursor with its diagnostics.",
-        ),
-        Binding(
-            "n",
-            "step_row(1)",
-            "next row",
-            show=False,
-            id="next-row",
-            tooltip="Open the next row of the worst-rows list.",
-        ),
-        Binding(
-            "p",
-            "step_row(-1)",
-            "previous row",
-            show=False,
-            id="previous-row",
-            tooltip="Open the previous row of the worst-rows list.",
-        ),
-        Binding(
-            "m",
-            "toggle_mark",
-            "mark row",
-            show=False,
-            id="toggle-mark",
-            tooltip="Mark or unmark the current row for a what-if refit or an export.",
-        ),
-        Binding(
-            "i",
-            "refit_without_marked",
-            "refit w/o marked",
-            show=False,
-            id="refit-without-marked",
-            tooltip="Refit without the marked rows and show how each coefficient moved.",
-        ),
-        Binding(
-            "M",
-            "clear_marks",
-            "clear marks",
-            show=False,
-            id="clear-marks",
-            tooltip="Unmark every row.",
-        ),
-        Binding(
-            "k",
-            "run_checks",
-            "checks",
-            show=False,
-            id="run-checks",
-            tooltip="Refit the fit on screen robustly (Huber) and check each numeric input for "
-            "curvature with a spline, on the sample; a notification says when they are ready.",
-        ),
-        Binding(
-            "K",
-            "show_checks",
-            "read checks",
-            show=False,
-            id="show-checks",
-            tooltip="Read the finished robust and curvature checks of the fit on screen.",
-        ),
-        Binding(
-            "E",
-            "export_rows",
-            "export",
-            show=False,
-            id="export-rows",
-            tooltip="Write the marked rows or the worst K rows to Parquet or CSV.",
-        ),
-    ]
+    BINDINGS: ClassVar[list[BindingType]] = MAIN_BINDINGS
 
     def __init__(
         self,
@@ -404,23 +129,8 @@ class MainScreen(Screen[None]):
         """The terms text last typed (offered again after a typing mistake)."""
         self.row_cache: OrderedDict[int, RowView] = OrderedDict()
         """Recently fetched rows, newest last."""
-        self._pass_ids = count(1)
-        self._next_number = 1
-        self.reserved: dict[int, int] = {}
-        """Fit number given to a pass (by id) whose fit is on screen before it finished."""
-        self.running_pass: int | None = None
-        """Id of the running full pass, or None."""
-        self.running_job: PassJob | None = None
-        """What the running full pass fits, or None."""
-        self.screen_passes: set[int] = set()
-        """Ids of the passes whose results take the screen: the latest one asked for (with the
-        sample fit of the same model while a full pass of it runs), none once a fit was chosen
-        from the list. Any other pass's result never replaces the fit on screen: a full pass
-        joins the Fits list, a sample fit is dropped."""
-        self.sample_job: PassJob | None = None
-        """The latest sample fit asked for, until it ends."""
-        self.pending: tuple[int, FitLabel] | None = None
-        """(pass id, label) of a sample fit on screen whose diagnostics are still running."""
+        self.passes = PassLedger()
+        """Pass ids, fit numbers and which passes' results take the screen."""
         self.full_pass_worker: Worker[None] | None = None
         """Worker of the running full pass, kept so one key can cancel it."""
         self.checks: dict[int, str] = {}
@@ -546,11 +256,11 @@ class MainScreen(Screen[None]):
         if action in COLUMN_ACTIONS:
             return None if self.source is None or self.front != "columns" else True
         if action == "cancel_pass":
-            return None if self.running_pass is None else True
+            return None if self.passes.running_pass is None else True
         if action in {"edit_filter", "edit_terms", "quick_fit", "start_full_pass"}:
             return None if self.source is None else True
         if action in FIT_ACTIONS:  # not while a fit shows without its diagnostics
-            return None if self.current is None or self.pending is not None else True
+            return None if self.current is None or self.passes.pending is not None else True
         return True
 
     # ----------------------------------------------------------------------------------------
@@ -573,8 +283,8 @@ class MainScreen(Screen[None]):
     def on_worker_state_changed(self, event: Worker.StateChanged) -> None:
         """Report a worker that failed with an unexpected error, without closing the app."""
         if event.state is WorkerState.ERROR and event.worker.error is not None:
-            if event.worker is self.full_pass_worker and self.running_pass is not None:
-                self._end_full_pass(self.running_pass)
+            if event.worker is self.full_pass_worker and self.passes.running_pass is not None:
+                self._end_full_pass(self.passes.running_pass)
             error = event.worker.error
             self.log.error(f"worker {event.worker.name} failed: {error!r}")
             if isinstance(error, RuntimeWarning):  # numpy's warnings are errors (cli/main.py)
@@ -696,8 +406,8 @@ class MainScreen(Screen[None]):
     def _update_model_line(self) -> None:
         """Name the fit on screen in the heading; before the first fit, the model being built."""
         line = self.query_one(ModelLine)
-        if self.pending is not None:
-            line.label = self.pending[1]
+        if self.passes.pending is not None:
+            line.label = self.passes.pending[1]
         else:
             line.label = None if self.current is None else self.current.label
         if self.draft.target is None and not self.draft.terms:
@@ -865,20 +575,8 @@ class MainScreen(Screen[None]):
         ):
             self.notify(f"fit #{current.number} already uses every row")
             return
-        pass_id = next(self._pass_ids)
-        job = PassJob(pass_id, spec, excluded, baseline, is_full)
-        # a sample fit and a full pass of one model both take the screen: the sample first
-        other = self.sample_job if is_full else self.running_job
-        if (
-            other is not None
-            and other.pass_id in self.screen_passes
-            and (other.spec, other.excluded) == (spec, excluded)
-        ):
-            self.screen_passes = {other.pass_id, pass_id}
-        else:
-            self.screen_passes = {pass_id}
+        job, replaced = self.passes.start(spec, excluded, baseline, is_full=is_full)
         if is_full:
-            replaced = self.running_job
             if replaced is not None:
                 from triage.views.text import model_formula
 
@@ -887,15 +585,12 @@ class MainScreen(Screen[None]):
                     "a new pass over every row started",
                     severity="warning",
                 )
-            self.running_pass = pass_id
-            self.running_job = job
             self.full_pass_worker = self.run_full_pass(job)
             pass_line = self.query_one(PassLine)
             pass_line.pass_label = "every row"
             pass_line.set_class(True, "-running")
             self.notify("reading every row in the background; the sample results stay until done")
         else:
-            self.sample_job = job
             self.run_sample_fit(job)
             self._running_pass_gives_way()
         self.refresh_bindings()
@@ -906,8 +601,8 @@ class MainScreen(Screen[None]):
         The model, filter, weights or marks changed (or another fit was chosen) while it ran:
         it goes on, and its fit joins the Fits list as a fit of its own.
         """
-        job = self.running_job
-        if job is None or job.pass_id in self.screen_passes:
+        job = self.passes.lost_screen()
+        if job is None:
             return
         pass_line = self.query_one(PassLine)
         if pass_line.pass_label != "every row":
@@ -921,60 +616,19 @@ class MainScreen(Screen[None]):
             timeout=8,
         )
 
-    def _report(self, job: PassJob, *, rows: RowsToRead) -> None:
-        """Run one pass of `job` in the current worker and post how it ended.
-
-        A sample fit the head start already made (or is making) of the same model is taken
-        over instead of computed again.
-        """
-        from triage.engine.passes import run_report
-
+    def _run_pass(self, job: PassJob, *, rows: RowsToRead) -> None:
+        """Run one pass of `job` in the current thread worker and post how it ended."""
         assert self.source is not None
-        worker = get_current_worker()
-
-        def report_progress(progress: PassProgress) -> None:
-            self.post_message(PassProgressed(job.pass_id, progress))
-
-        def report_fit(outcome: FitOutcome) -> None:
-            if not worker.is_cancelled:
-                self.post_message(FitComputed(job.pass_id, outcome))
-
-        head_start = self.head_start if rows is not ALL_ROWS and not job.excluded else None
-        try:
-            early = (
-                None
-                if head_start is None
-                else head_start.take_report(
-                    job.spec,
-                    self.segment_columns,
-                    cancel=worker.cancelled_event,
-                    on_fit=report_fit,
-                )
-            )
-            report = early or run_report(
-                self.source,
-                job.spec,
-                engine=self._cluster_engine() if rows is ALL_ROWS else None,
-                rows=rows,
-                seed=self.settings.seed,
-                sampling=self.settings.sampling,
-                exclude_rows=job.excluded,
-                top_k=self.settings.top_k,
-                by=self.segment_columns,
-                is_ordered=self.settings.is_ordered,
-                on_progress=None if rows is not ALL_ROWS else report_progress,
-                cancel=worker.cancelled_event,
-                on_fit=None if rows is ALL_ROWS else report_fit,
-            )
-        except PassCancelled:
-            self.post_message(PassStopped(job.pass_id))
-        except TriageError as error:
-            self.post_message(PassFailed(job.pass_id, str(error), "the fit failed"))
-        else:
-            if worker.is_cancelled:  # a newer request replaced this one while it finished
-                self.post_message(PassStopped(job.pass_id))
-            else:
-                self.post_message(PassFinished(job.pass_id, report, job.excluded, job.baseline))
+        run_pass(
+            job,
+            rows=rows,
+            source=self.source,
+            settings=self.settings,
+            segment_columns=self.segment_columns,
+            head_start=self.head_start,
+            engine=self._cluster_engine() if rows is ALL_ROWS else None,
+            post=self.post_message,
+        )
 
     def _cluster_engine(self) -> ClusterEngine | None:
         """Return the cluster engine of `Settings.scheduler` (it connects on its first pass)."""
@@ -994,12 +648,12 @@ class MainScreen(Screen[None]):
     @work(thread=True, exclusive=True, group="sample-fit", exit_on_error=False)
     def run_sample_fit(self, job: PassJob) -> None:
         """Fit and diagnose on the sample (thread worker; a newer request cancels it)."""
-        self._report(job, rows=self.settings.sample_rows)
+        self._run_pass(job, rows=self.settings.sample_rows)
 
     @work(thread=True, exclusive=True, group="full-pass", exit_on_error=False)
     def run_full_pass(self, job: PassJob) -> None:
         """Fit and diagnose on every row (thread worker; the cancel key stops it)."""
-        self._report(job, rows=ALL_ROWS)
+        self._run_pass(job, rows=ALL_ROWS)
 
     def action_cancel_pass(self) -> None:
         """Stop the running full pass; the results on screen stay."""
@@ -1016,37 +670,32 @@ class MainScreen(Screen[None]):
 
     def on_pass_progressed(self, message: PassProgressed) -> None:
         """Show the progress of the running full pass."""
-        if message.pass_id == self.running_pass:
+        if message.pass_id == self.passes.running_pass:
             self.query_one(PassLine).progress = message.progress
 
     def _end_full_pass(self, pass_id: int) -> bool:
-        if pass_id != self.running_pass:
+        """Forget the running full pass if it is `pass_id`; return True if it was."""
+        if not self.passes.end_full_pass(pass_id):
             return False
-        self.running_pass = None
-        self.running_job = None
+        self._show_full_pass_ended()
+        return True
+
+    def _show_full_pass_ended(self) -> None:
         self.full_pass_worker = None
         pass_line = self.query_one(PassLine)
         pass_line.progress = None
         pass_line.pass_label = "every row"
         self.refresh_bindings()
-        return True
 
     def _end_pass(self, pass_id: int) -> None:
         """Forget a pass that ended without a fit: its number, and its fit shown early."""
-        number = self.reserved.pop(pass_id, None)
-        if number is not None and number == self._next_number - 1:
-            self._next_number = number  # nobody took a later number: no gap in the list
-        if self.pending is not None and self.pending[0] == pass_id:
-            self.pending = None
+        if self.passes.end_pass(pass_id):
             self.query_one(FitPane).drop_provisional()
             if self.current is not None:
                 self.show_fit(self.current)
             else:
                 self._show_basis()
                 self._update_model_line()
-        self.screen_passes.discard(pass_id)
-        if self.sample_job is not None and self.sample_job.pass_id == pass_id:
-            self.sample_job = None
 
     def on_pass_stopped(self, message: PassStopped) -> None:
         """Say that the full pass stopped and what stays on screen."""
@@ -1073,24 +722,17 @@ class MainScreen(Screen[None]):
             else basis_text(fit.number, fit.report.outcome.data, excluded=bool(fit.excluded))
         )
 
-    def _take_number(self) -> int:
-        number = self._next_number
-        self._next_number += 1
-        return number
-
     def on_fit_computed(self, message: FitComputed) -> None:
         """Show a sample fit at once, while its residual diagnostics are still computed.
 
         The fit takes its number now, and the heading names it; the panes that need the
         diagnostics show nothing of the previous fit meanwhile.
         """
-        if message.pass_id not in self.screen_passes:
-            return
-        number = self._take_number()
-        self.reserved[message.pass_id] = number
         outcome = message.outcome
-        excluded = outcome.data.rows_excluded
-        self.pending = (message.pass_id, FitLabel.of(number, outcome, excluded))
+        label = self.passes.show_early(message.pass_id, outcome)
+        if label is None:
+            return
+        number = label.number
         self.query_one(FitPane).show_provisional(outcome, number)
         self.query_one(SpreadPane).shown = None
         self.query_one(TrendPane).shown = None
@@ -1106,7 +748,7 @@ class MainScreen(Screen[None]):
                 is_marked=self.row_position in self.marked,
                 fit_number=number,
             )
-        basis = basis_text(number, outcome.data, excluded=bool(excluded))
+        basis = basis_text(number, outcome.data, excluded=bool(outcome.data.rows_excluded))
         self.query_one(PassLine).basis = f"{basis}; residual diagnostics running"
         self._update_model_line()
         self._open_on_fit()
@@ -1118,14 +760,14 @@ class MainScreen(Screen[None]):
         A full pass whose model was changed while it ran joins the list without taking the
         screen; a late sample fit of an older request is dropped.
         """
-        is_full = self._end_full_pass(message.pass_id)
-        takes_screen = message.pass_id in self.screen_passes
-        if not is_full and not takes_screen:
+        ended = self.passes.finish(message.pass_id)
+        if ended is None:
             self._end_pass(message.pass_id)
             return
-        number = self.reserved.pop(message.pass_id, None) or self._take_number()
+        if ended.is_full:
+            self._show_full_pass_ended()
         fit = SessionFit(
-            number=number,
+            number=ended.number,
             report=message.report,
             excluded=message.excluded,
             baseline=message.baseline,
@@ -1134,13 +776,9 @@ class MainScreen(Screen[None]):
         self.fits.sort(key=lambda kept: kept.number)  # a pass bound for Fits may end first
         fits_pane = self.query_one(FitsPane)
         fits_pane.fits = tuple(self.fits)
-        if takes_screen:
-            # a full pass ends every claim on the screen; a sample fit only its own
-            self.screen_passes = set() if is_full else self.screen_passes - {message.pass_id}
-            if self.sample_job is not None and self.sample_job.pass_id == message.pass_id:
-                self.sample_job = None
+        if ended.takes_screen:
             self.show_fit(fit)
-            if is_full:
+            if ended.is_full:
                 self.notify(f"fit #{fit.number} now uses every row")
         else:
             shown = "" if self.current is None else f"; fit #{self.current.number} stays on screen"
@@ -1167,7 +805,7 @@ class MainScreen(Screen[None]):
     def show_fit(self, fit: SessionFit) -> None:
         """Push one fit of the session down to every pane, and name it in the heading."""
         self.current = fit
-        self.pending = None
+        self.passes.pending = None
         outcome = fit.report.outcome
         predictors = outcome.builder.numeric_predictors
         self.predictor_index %= max(len(predictors), 1)
@@ -1215,7 +853,7 @@ class MainScreen(Screen[None]):
         if fit is None:
             return
         self.workers.cancel_group(self, "sample-fit")
-        self.screen_passes = set()
+        self.passes.release_screen()
         self.draft = draft_from_spec(fit.report.outcome.spec)
         self.typed_terms = None
         self.query_one(ColumnsPane).draft = self.draft
@@ -1416,7 +1054,7 @@ class MainScreen(Screen[None]):
         Rows diagnosed under a fit that is no longer on screen are dropped.
         """
         fit = self.current
-        if fit is None or self.pending is not None or message.fit_number != fit.number:
+        if fit is None or self.passes.pending is not None or message.fit_number != fit.number:
             return
         view = RowView(
             message.position,
@@ -1542,29 +1180,3 @@ class MainScreen(Screen[None]):
             f"{message.path}\n{PERSONAL_DATA_NOTICE}",
             timeout=12,
         )
-
-
-def basis_text(number: int, data: DataSummary, *, excluded: bool) -> str:
-    """Say which rows a fit's results come from, for the pass line.
-
-    Parameters
-    ----------
-    number : int
-        The fit's number in the session.
-    data : DataSummary
-        The rows it used.
-    excluded : bool
-        Marked rows were left out (a what-if refit).
-
-    Returns
-    -------
-    str
-        E.g. `fit #2 from a SAMPLE: 200,000 of 20,000,000 rows used`.
-    """
-    from triage.views.format import format_count
-
-    total = "?" if data.rows_in_source is None else format_count(data.rows_in_source)
-    used = format_count(data.rows_used)
-    left_out = f", {format_count(data.rows_excluded)} marked left out" if excluded else ""
-    basis = "EVERY ROW" if data.is_full_pass else "a SAMPLE"
-    return f"fit #{number} from {basis}: {used} of {total} rows used{left_out}"
