@@ -16,6 +16,7 @@ import pyarrow.ipc as ipc
 from triage.data.base import (
     BlockSource,
     FilePart,
+    arrow_schema_types,
     block_positions,
     conform,
     group_runs,
@@ -25,6 +26,7 @@ from triage.data.base import (
     reading,
     with_positions,
 )
+from triage.data.remote import FileName, file_name, open_input
 
 PART_ROWS: Final = 500_000
 """Rows, at least, in a part of a split scan: whole record batches (as for Parquet)."""
@@ -33,12 +35,12 @@ KIND: Final = "Arrow IPC"
 
 
 def read_record_batches(
-    path: Path, batches: Iterable[int] | None, columns: Sequence[str]
+    path: FileName, batches: Iterable[int] | None, columns: Sequence[str]
 ) -> Iterator[pa.RecordBatch]:
     """Yield the record batches numbered `batches` (None: all) of the IPC file at `path`."""
     # pa.OSFile rather than a memory map: the batches own their memory, so frames built
     # from them stay valid after the file is closed.
-    with reading(path, KIND), pa.OSFile(str(path), "rb") as file:
+    with reading(path, KIND), open_input(path) as file:
         reader = ipc.open_file(file)
         for i in range(reader.num_record_batches) if batches is None else batches:
             yield reader.get_batch(i).select(columns)
@@ -76,7 +78,7 @@ class IpcPart(FilePart):
         return sum(self.sizes)
 
     def _frames(self) -> Iterator[pl.DataFrame]:
-        record_batches = read_record_batches(Path(self.path), range(*self.batches), self.columns)
+        record_batches = read_record_batches(self.file, range(*self.batches), self.columns)
         yield from number_pieces(record_batches, self.schema, self.batch_rows, start=self.start)
 
 
@@ -97,18 +99,20 @@ class IpcSource(BlockSource):
     _kind = KIND
     _block_unit = "record batches"
 
-    def __init__(self, path: Path) -> None:
+    def __init__(self, path: FileName) -> None:
         super().__init__(path)
-        with reading(path, self._kind), pa.OSFile(str(path), "rb") as file:
-            ipc.open_file(file)  # reads the footer: a damaged file fails here
+        with reading(path, self._kind), open_input(path) as file:
+            self._arrow_schema = ipc.open_file(file).schema  # a damaged footer fails here
         self.schema()
 
     @property
     def description(self) -> str:
         """One line naming the file and its record batches."""
-        return f"{self._path.name}: Arrow IPC, {len(self._offsets) - 1:,} record batches"
+        return f"{file_name(self._path)}: Arrow IPC, {len(self._offsets) - 1:,} record batches"
 
     def _read_schema(self) -> dict[str, pl.DataType]:
+        if isinstance(self._path, str):  # a URL: polars' types of pyarrow's schema
+            return arrow_schema_types(self._arrow_schema)
         return dict(pl.scan_ipc(self._path).collect_schema())
 
     def _batches(self, blocks: list[int] | None, columns: list[str]) -> Iterator[pa.RecordBatch]:
@@ -117,9 +121,14 @@ class IpcSource(BlockSource):
 
     @functools.cached_property
     def _offsets(self) -> np.ndarray:
-        # Mapped, a record batch's rows are read from its header without copying its data.
+        # Mapped, a record batch's rows are read from its header without copying its data;
+        # a URL's batches are fetched.
         self.snapshot.check_file(self._path)
-        with reading(self._path, self._kind), pa.memory_map(str(self._path)) as file:
+        path = self._path
+        with (
+            reading(path, self._kind),
+            pa.memory_map(str(path)) if isinstance(path, Path) else open_input(path) as file,
+        ):
             reader = ipc.open_file(file)
             sizes = [reader.get_batch(i).num_rows for i in range(reader.num_record_batches)]
         return offsets_from_sizes(sizes)
