@@ -1,11 +1,11 @@
 """Files named by a URL (``s3://``, ``gs://``, ``https://``, ``file://``), opened through fsspec.
 
 A Parquet or Arrow IPC file may be given as a URL that fsspec knows; pyarrow reads it
-through fsspec's filesystem (`pyarrow.fs.FSSpecHandler`), fetching only the byte ranges it
-needs: the footer when the source opens, then the row groups or record batches a read asks
-for. fsspec is optional (``pip install 'triage[urls]'``, which also brings the HTTP backend);
-each storage service needs fsspec's package for it (``s3fs``, ``gcsfs`` ...), which fsspec
-names when it is missing.
+through fsspec's file, fetching only the byte ranges it asks for: the footer (and an IPC
+file's record batch headers) when the source opens, then the row groups or record batches
+a read needs. fsspec is optional (``pip install 'triage[urls]'``, which also brings its HTTP
+backend); each storage service needs fsspec's package for it (``s3fs``, ``gcsfs`` ...),
+which fsspec names when it is missing.
 
 Paths on local disks stay `pathlib.Path`; a URL is kept as its text (`FileName`).
 """
@@ -89,10 +89,15 @@ def open_input(file: FileName) -> pa.NativeFile:
     """Open a local file or a URL for random-access reading by pyarrow."""
     if isinstance(file, Path):
         return pa.OSFile(str(file), "rb")
-    from pyarrow.fs import FSSpecHandler, PyFileSystem
-
     filesystem, path = url_filesystem(file)
-    return PyFileSystem(FSSpecHandler(filesystem)).open_input_file(path)
+    try:
+        # No read-ahead cache: a store fetches the ranges pyarrow asks for and no more (its
+        # default would fetch blocks of 5 to 50 MB past each small read).
+        handle = filesystem.open(path, mode="rb", cache_type="none")
+    except FileNotFoundError:
+        msg = f"`{file}` does not exist; check the URL"
+        raise SourceError(msg) from None
+    return pa.PythonFile(handle, mode="r")
 
 
 def url_info(url: str) -> dict[str, Any] | None:
