@@ -157,6 +157,10 @@ def test_cluster_fit_equals_local_engine(folder: Path, engine: ClusterEngine, lr
     assert remote.data.rows_read == N_FILES * FILE_ROWS and remote.data.is_full_pass
     assert_same(fit_to_json(local), fit_to_json(remote), lre)
     assert fit_to_json(remote) == fit_to_json(local)  # the same parts in the same tree: same bits
+    # the model's columns over every row ship and merge as the fit does
+    assert remote.column_figures == local.column_figures
+    assert [f.name for f in remote.column_figures] == list(spec.source_columns())
+    assert {f.rows for f in remote.column_figures} == {N_FILES * FILE_ROWS}
     assert float(np.min(lre(remote.fit.coef, local.fit.coef))) >= 12
     assert float(np.min(lre(remote.fit.cov, local.fit.cov))) >= 12
     # progress comes from finished tasks, only grows, and ends at every row

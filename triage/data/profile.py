@@ -20,7 +20,8 @@ def profile_columns(schema: Mapping[str, pl.DataType], sample: pl.DataFrame) -> 
     Returns
     -------
     polars.DataFrame
-        One row per column: `name`, `dtype`, `missing` (share of null or NaN values),
+        One row per column: `name`, `dtype`, `missing` (share of values no fit can use:
+        null, NaN or ±inf),
         `distinct` (distinct values in the sample), `low`, `mean`, `high` (numeric columns;
         null otherwise) and `top` (most frequent value, for other columns).
     """
@@ -30,11 +31,12 @@ def profile_columns(schema: Mapping[str, pl.DataType], sample: pl.DataFrame) -> 
         series = sample[name] if name in sample.columns else pl.Series(name, [], dtype=dtype)
         missing = series.null_count()
         if dtype.is_float():
-            missing += int(series.is_nan().sum())
+            missing += int((~series.is_finite()).sum())
         low = mean = high = None
         top = None
         if dtype.is_numeric() and series.len() > missing:
-            values = series.cast(pl.Float64).fill_nan(None).drop_nulls()
+            values = series.cast(pl.Float64)
+            values = values.filter(values.is_finite())
             low, mean, high = values.min(), values.mean(), values.max()
         elif series.len() > missing:
             counts = series.drop_nulls().value_counts(sort=True)

@@ -19,6 +19,7 @@ import numpy as np
 import polars as pl
 
 from triage._typing import ALL_ROWS
+from triage.core.column_figures import ColumnFiguresAccumulator
 from triage.core.design import (
     MIN_BLOCK_ROWS,
     CodedBatch,
@@ -36,7 +37,7 @@ from triage.engine.allocator import keep_batch_memory
 from triage.engine.progress import ProgressCallback, ProgressTracker, ReadAhead
 from triage.engine.workers import fold_in_order, pass_workers
 from triage.errors import DataError, TriageError
-from triage.results.fit import DataSummary, FitOutcome, ReportOutcome
+from triage.results.fit import ColumnFigures, DataSummary, FitOutcome, ReportOutcome
 from triage.results.progress import PassProgress
 
 if TYPE_CHECKING:
@@ -363,6 +364,11 @@ class PassPlan:
     def is_full_pass(self) -> bool:
         """True when the pass reads every row of the source."""
         return self.sample is None or self.sample.is_whole
+
+    @property
+    def folds_whole_source(self) -> bool:
+        """True when every row of the source reaches the fold: a full pass, no filter, no marks."""
+        return self.is_full_pass and self.where is None and self.exclude.size == 0
 
     def _drop_excluded(self, frame: pl.DataFrame, counts: RowCounts) -> pl.DataFrame:
         return drop_marked_rows(frame, self.exclude, counts)
@@ -849,7 +855,7 @@ def _fit(
     builder = plan.learn(ProgressTracker(None, cancel=cancel))
     tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
     try:
-        counts, accumulator = _fit_pass(plan, builder, tracker, use_codes=True)
+        counts, accumulator, figures = _fit_pass(plan, builder, tracker, use_codes=True)
         fit_or_none: LinearFit | None = _finalize_fit(plan, builder, counts, accumulator)
     except UncertifiedGram:
         # Rare: a design the counts and sums cannot factor to full accuracy (say a rare
@@ -857,27 +863,42 @@ def _fit(
         fit_or_none = None
     if fit_or_none is None:
         tracker = ProgressTracker(plan.rows_total(), on_progress=on_progress, cancel=cancel)
-        counts, accumulator = _fit_pass(plan, builder, tracker, use_codes=False)
+        counts, accumulator, figures = _fit_pass(plan, builder, tracker, use_codes=False)
         fit_or_none = _finalize_fit(plan, builder, counts, accumulator)
-    return FitOutcome(spec, builder, fit_or_none, plan.summary(counts), plan.learning_frame)
+    summary = plan.summary(counts)
+    return FitOutcome(spec, builder, fit_or_none, summary, plan.learning_frame, figures)
+
+
+FitPart = tuple[QRAccumulator, RowCounts, ColumnFiguresAccumulator | None]
+"""What one part of pass 1 folds into: the fit, the row counts, the columns' figures."""
 
 
 def _fit_pass(
     plan: PassPlan, builder: DesignBuilder, tracker: ProgressTracker, *, use_codes: bool
-) -> tuple[RowCounts, QRAccumulator]:
-    """Fold every batch of pass 1 into one accumulator; categoricals as codes if `use_codes`."""
+) -> tuple[RowCounts, QRAccumulator, tuple[ColumnFigures, ...]]:
+    """Fold every batch of pass 1 into one accumulator; categoricals as codes if `use_codes`.
+
+    When every row of the source reaches the fold, the model's columns' figures (rows,
+    missing, low, mean, spread, high) are folded alongside.
+    """
     spec = plan.spec
     unshifted = builder.indicator_positions if use_codes else ()
+    schema = dict(plan.source.schema()) if plan.folds_whole_source else None
 
-    def new_part() -> tuple[QRAccumulator, RowCounts]:
+    def new_part() -> FitPart:
         accumulator = QRAccumulator(
             len(builder.column_names), has_intercept=spec.intercept, unshifted=unshifted
         )
-        return accumulator, RowCounts()
+        figures = (
+            None if schema is None else ColumnFiguresAccumulator(schema, spec.source_columns())
+        )
+        return accumulator, RowCounts(), figures
 
-    def fold(part: tuple[QRAccumulator, RowCounts], frame: pl.DataFrame) -> None:
+    def fold(part: FitPart, frame: pl.DataFrame) -> None:
         with naming_values_too_large(builder, frame):
-            accumulator, part_counts = part
+            accumulator, part_counts, figures = part
+            if figures is not None:
+                figures.update(frame)
             columns = builder.build_columns(frame)
             if columns is not None and accumulator.update_columns(columns.predictors, columns.y):
                 part_counts.used += columns.n_rows
@@ -892,19 +913,19 @@ def _fit_pass(
                 part_counts.add(batch)
                 accumulator.update(batch.x, batch.y, batch.weights)
 
-    def merge(
-        part: tuple[QRAccumulator, RowCounts], other: tuple[QRAccumulator, RowCounts]
-    ) -> tuple[QRAccumulator, RowCounts]:
+    def merge(part: FitPart, other: FitPart) -> FitPart:
         part[0].merge(other[0])
         part[1].absorb(other[1])
+        if part[2] is not None and other[2] is not None:
+            part[2].merge(other[2])
         return part
 
     counts = RowCounts()
-    accumulator, design_counts = plan.fold_frames(
+    accumulator, design_counts, figures = plan.fold_frames(
         new_part, fold, merge, counts, tracker, batch_values=FIT_BATCH_VALUES
     )
     counts.absorb(design_counts)
-    return counts, accumulator
+    return counts, accumulator, () if figures is None else figures.finalize()
 
 
 def _finalize_fit(

@@ -13,7 +13,7 @@ if TYPE_CHECKING:
     from triage.core.spec import ModelSpec
     from triage.results.diagnostics import Diagnostics
 
-__all__ = ["DataSummary", "FitOutcome", "ReportOutcome"]
+__all__ = ["ColumnFigures", "DataSummary", "FitOutcome", "ReportOutcome"]
 
 
 @dataclass(frozen=True)
@@ -41,6 +41,23 @@ class DataSummary:
 
 
 @dataclass(frozen=True)
+class ColumnFigures:
+    """One column's figures over every row of the source (`FitOutcome.column_figures`)."""
+
+    name: str
+    rows: int
+    """Rows read."""
+    missing: int
+    """Rows with no usable value (null, NaN or ±inf)."""
+    low: float | None
+    """Smallest value; None for a column that is not numeric or has no value."""
+    mean: float | None
+    sd: float | None
+    """Standard deviation (n - 1 in the denominator); None with fewer than two values."""
+    high: float | None
+
+
+@dataclass(frozen=True)
 class FitOutcome:
     """A fitted model together with what it was fitted on."""
 
@@ -53,6 +70,9 @@ class FitOutcome:
 
     Empty after `fit_model` streamed every row of a model with nothing to learn.
     """
+    column_figures: tuple[ColumnFigures, ...] = ()
+    """The model's columns over every row of the source, from a pass that read every row
+    with no filter and no rows left out; empty otherwise."""
 
 
 @dataclass(frozen=True)

@@ -1,0 +1,122 @@
+"""Figures of a few columns over the rows a pass folds: rows, missing, low, mean, spread, high.
+
+Mergeable in any order: counts add, extremes take the smaller and larger, means and central
+sums of squares pool by the pairwise formulas of Chan, Golub and LeVeque (1979) (through
+`pool_groups`, each column a group), so no part ever subtracts two large, nearly equal sums.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+
+import numpy as np
+import polars as pl
+
+from triage.core.moments import FloatArray, IntArray, pool_groups
+from triage.results.fit import ColumnFigures
+
+
+class ColumnFiguresAccumulator:
+    """Rows, missing values and, for numeric columns, low, mean, Σ(x - mean)² and high.
+
+    A missing value is a null, or a NaN or ±inf in a float column: a value no fit can use
+    (the sample profile counts them alike).
+    """
+
+    def __init__(self, schema: Mapping[str, pl.DataType], columns: Sequence[str]) -> None:
+        self.names = tuple(columns)
+        """The columns, in the order the figures come out."""
+        self.is_numeric = tuple(schema[name].is_numeric() for name in self.names)
+        k = len(self.names)
+        self.rows = 0
+        self.missing = np.zeros(k, dtype=np.int64)
+        self.count = np.zeros(k)
+        """Values counted in each numeric column (rows minus missing)."""
+        self.mean = np.zeros(k)
+        self.m2 = np.zeros(k)
+        self.low = np.full(k, np.inf)
+        self.high = np.full(k, -np.inf)
+
+    def update(self, frame: pl.DataFrame) -> None:
+        """Add the rows of one frame holding the columns (one polars query per frame)."""
+        if frame.height == 0:
+            return
+        queries: list[pl.Expr] = []
+        for i, (name, is_numeric) in enumerate(zip(self.names, self.is_numeric, strict=True)):
+            if not is_numeric:
+                queries.append(pl.col(name).null_count().alias(f"{i}_missing"))
+                continue
+            number = pl.col(name).cast(pl.Float64)
+            values = pl.when(number.is_finite()).then(number)
+            # Shifted by the frame's first value, mean and variance keep their digits when
+            # the values sit far from zero (a code near 1e9 that varies by 1). A literal
+            # costs a quarter of a `drop_nulls().first()` expression (measured).
+            first = frame[name][0]
+            shift = float(first) if first is not None and math.isfinite(first) else 0.0
+            shifted = values - shift
+            queries += [
+                values.null_count().alias(f"{i}_missing"),
+                values.min().alias(f"{i}_low"),
+                values.max().alias(f"{i}_high"),
+                (shifted.mean() + shift).alias(f"{i}_mean"),
+                shifted.var(ddof=0).alias(f"{i}_var"),
+            ]
+        found = frame.select(queries).row(0, named=True)
+        k = len(self.names)
+        missing = np.array([found[f"{i}_missing"] for i in range(k)], dtype=np.int64)
+        count = np.where(self.is_numeric, frame.height - missing, 0).astype(np.float64)
+        mean, m2 = np.zeros(k), np.zeros(k)
+        low, high = np.full(k, np.inf), np.full(k, -np.inf)
+        for i in np.flatnonzero(count).tolist():
+            low[i], high[i] = found[f"{i}_low"], found[f"{i}_high"]
+            mean[i], m2[i] = found[f"{i}_mean"], found[f"{i}_var"] * count[i]
+        self._add(frame.height, missing, count, mean, m2, low, high)
+
+    def merge(self, other: ColumnFiguresAccumulator) -> None:
+        """Fold `other`, which counted the same columns over other rows, into this one."""
+        self._add(
+            other.rows, other.missing, other.count, other.mean, other.m2, other.low, other.high
+        )
+
+    def _add(
+        self,
+        rows: int,
+        missing: IntArray,
+        count: FloatArray,
+        mean: FloatArray,
+        m2: FloatArray,
+        low: FloatArray,
+        high: FloatArray,
+    ) -> None:
+        k = len(self.names)
+        self.count, self.mean, self.m2 = pool_groups(
+            np.concatenate([np.arange(k), np.arange(k)]),
+            np.concatenate([self.count, count]),
+            np.concatenate([self.mean, mean]),
+            np.concatenate([self.m2, m2]),
+            k,
+        )
+        self.rows += rows
+        self.missing += missing
+        self.low = np.minimum(self.low, low)
+        self.high = np.maximum(self.high, high)
+
+    def finalize(self) -> tuple[ColumnFigures, ...]:
+        """Return each column's figures, in the order of `names`."""
+        figures = []
+        for i, name in enumerate(self.names):
+            count = float(self.count[i])
+            has_values = count > 0
+            figures.append(
+                ColumnFigures(
+                    name=name,
+                    rows=self.rows,
+                    missing=int(self.missing[i]),
+                    low=float(self.low[i]) if has_values else None,
+                    mean=float(self.mean[i]) if has_values else None,
+                    sd=float(np.sqrt(self.m2[i] / (count - 1.0))) if count > 1 else None,
+                    high=float(self.high[i]) if has_values else None,
+                )
+            )
+        return tuple(figures)
