@@ -21,7 +21,7 @@ from statsmodels.stats.outliers_influence import OLSInfluence
 from statsmodels.stats.stattools import durbin_watson, jarque_bera
 
 from triage._typing import CRITERIA
-from triage.core.binning import quantile_edges
+from triage.core.binning import EDGE_SAMPLE_VALUES, edge_sample, quantile_edges
 from triage.core.design import DesignBatch
 from triage.core.diagnostics import DiagnosticsAccumulator
 from triage.core.diagnostics_config import DiagnosticsConfig, default_config
@@ -578,6 +578,28 @@ def test_default_config_edges_follow_sample_quantiles(rng) -> None:
     )
     with pytest.raises(SpecError, match="segment column `zone`"):
         default_config(fit, fit.predict(x), {}, ("zone",), {})
+
+
+def test_edge_sample_thinned_first_gives_the_same_edges() -> None:
+    # A long sample with gaps (NaN) and a heavy tail: thinning it before `quantile_edges`
+    # (as pass 2 does, to keep less of the learning sample) must not move an edge.
+    rng = np.random.default_rng(11)
+    values = rng.lognormal(1.0, 0.8, 400_003)
+    values[rng.random(values.size) < 0.02] = np.nan
+    thinned = edge_sample(values)
+    assert thinned.size <= EDGE_SAMPLE_VALUES
+    assert np.isfinite(thinned).all()
+    np.testing.assert_array_equal(edge_sample(thinned), thinned)
+    np.testing.assert_array_equal(
+        quantile_edges(thinned, 20, name="v"), quantile_edges(values, 20, name="v")
+    )
+    # numpy.quantile over every finite value as oracle: the thinned edges stay close
+    finite = values[np.isfinite(values)]
+    np.testing.assert_allclose(
+        quantile_edges(thinned, 20, name="v")[1:-1],
+        np.quantile(finite, np.linspace(0, 1, 21))[1:-1],
+        rtol=0.05,
+    )
 
 
 def test_stream_moments_merge_matches_scipy() -> None:

@@ -34,7 +34,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from triage.core.distributions import f_sf, t_ppf, t_sf
-from triage.core.indicators import CodedDesign, IntArray, coded_gram
+from triage.core.indicators import CodedDesign, IntArray, LevelGram, coded_gram
 from triage.errors import DataError, SpecError
 
 __all__ = [
@@ -42,6 +42,7 @@ __all__ = [
     "RANK_TOLERANCE",
     "AccumulatedFactor",
     "LinearFit",
+    "OpenLevelAccumulator",
     "QRAccumulator",
     "UncertifiedGram",
     "fit_arrays",
@@ -818,6 +819,32 @@ class QRAccumulator:
         """Rows accumulated so far."""
         return self._n
 
+    @classmethod
+    def from_gram(
+        cls,
+        gram: FloatArray,
+        x_shift: FloatArray,
+        y_shift: float,
+        *,
+        n_rows: int,
+        sum_log_w: float,
+        is_weighted: bool,
+        has_intercept: bool,
+    ) -> QRAccumulator:
+        """Start from the Gram matrix of rows in the given shift, as `update_coded` keeps it.
+
+        `gram` is ``Z' W Z`` over ``[design | target]`` shifted by ``(x_shift, y_shift)``;
+        it is factored when the fit is asked for, or `UncertifiedGram` is raised then.
+        """
+        accumulator = cls(x_shift.size, has_intercept=has_intercept)
+        accumulator._x_shift = x_shift
+        accumulator._y_shift = y_shift
+        accumulator._pending = gram
+        accumulator._n = n_rows
+        accumulator._sum_log_w = sum_log_w
+        accumulator._is_weighted = is_weighted
+        return accumulator
+
     @property
     def factor(self) -> AccumulatedFactor | None:
         """A copy of the factor and shift accumulated so far, or None before the first row.
@@ -1223,6 +1250,128 @@ class QRAccumulator:
             has_intercept=self._has_intercept,
             is_weighted=self._is_weighted,
             _factor=factor,
+        )
+
+
+class OpenLevelAccumulator:
+    """Pass 1's sums while the levels of its categoricals are still being found; mergeable.
+
+    Rows come as their dense design columns (neither the intercept nor indicators), target,
+    weights and one level code per categorical. The sums are kept by level (`LevelGram`),
+    every level in its place, so a level joins when a batch first holds it and the
+    reference level is chosen after the pass; `to_accumulator` then writes them out in the
+    design's order as a `QRAccumulator`'s Gram matrix. The dense columns and the target are
+    shifted by the first batch's means (with an intercept), as `QRAccumulator` does.
+
+    Parameters
+    ----------
+    n_dense : int
+        Dense design columns (the intercept and the indicators left out).
+    has_intercept : bool
+        Whether the design has an intercept.
+    """
+
+    def __init__(self, n_dense: int, *, has_intercept: bool) -> None:
+        self._has_intercept = has_intercept
+        self._gram: LevelGram | None = None
+        self._shift = np.zeros(n_dense + 1)
+        self._n = 0
+        self._sum_log_w = 0.0
+        self._is_weighted = False
+
+    @property
+    def n_rows(self) -> int:
+        """Rows accumulated so far."""
+        return self._n
+
+    def update(
+        self,
+        dense: Sequence[FloatArray],
+        y: FloatArray,
+        weights: FloatArray | None,
+        codes: Sequence[NDArray[np.integer]],
+        n_levels: Sequence[int],
+    ) -> bool:
+        """Add a batch: `codes[i]` holds each row's level of categorical i, of `n_levels[i]`.
+
+        Returns False, adding nothing, when a sum is not finite (values whose squares pass
+        float64): the rows must then be factored written out.
+        """
+        n_rows = len(y)
+        if n_rows == 0:
+            return True
+        w = None if weights is None else _check_weights(weights, n_rows)
+        root_w = None if w is None else np.sqrt(w)
+        with np.errstate(invalid="ignore", over="ignore"):
+            shift = self._shift
+            if self._gram is None and self._has_intercept:
+                shift = np.array([*(np.mean(c) for c in dense), np.mean(y)])
+            columns = [*dense, y]
+            dense_gram = shifted_gram(columns, shift, root_w, intercept=self._has_intercept)
+            shifted = [c - m for c, m in zip(columns, shift, strict=True)]
+            batch = LevelGram.of_batch(
+                codes, n_levels, shifted, dense_gram, w, has_intercept=self._has_intercept
+            )
+        if not np.all(np.isfinite(np.diagonal(dense_gram))):
+            return False
+        self._shift = shift
+        if w is not None:
+            self._sum_log_w += float(np.log(w).sum())
+            self._is_weighted = True
+        if self._gram is None:
+            self._gram = batch
+        else:
+            self._gram.grow(n_levels)
+            self._gram.add(batch)
+        self._n += n_rows
+        return True
+
+    def merge(
+        self, other: OpenLevelAccumulator, where: Sequence[IntArray], n_levels: Sequence[int]
+    ) -> Self:
+        """Add another part's sums (it is not modified) and return self.
+
+        `where[i][k]` is our level of the other's level k of categorical i, and `n_levels`
+        our levels once the other's are added (`triage.core.levels.FoundLevels.absorb`).
+        """
+        if other._gram is None:
+            return self
+        if self._gram is None:
+            self._shift = other._shift.copy()
+            self._gram = LevelGram.empty(
+                other._gram.dense.shape[0], n_levels, has_intercept=self._has_intercept
+            )
+        self._gram.grow(n_levels)
+        self._gram.add(other._gram.moved(other._shift - self._shift), where)
+        self._n += other._n
+        self._sum_log_w += other._sum_log_w
+        self._is_weighted = self._is_weighted or other._is_weighted
+        return self
+
+    def to_accumulator(
+        self, n_cols: int, dense_positions: IntArray, level_positions: Sequence[IntArray]
+    ) -> QRAccumulator:
+        """Write the sums out over a design of `n_cols` columns as a `QRAccumulator`.
+
+        `dense_positions` gives the design column of each dense column; `level_positions[i][k]`
+        that of level k of categorical i (as found), or -1 for its reference level.
+        """
+        x_shift = np.zeros(n_cols)
+        if self._gram is None:
+            return QRAccumulator(n_cols, has_intercept=self._has_intercept)
+        x_shift[dense_positions] = self._shift[:-1]
+        self._gram.grow([positions.size for positions in level_positions])
+        gram = self._gram.assemble(
+            np.append(dense_positions, n_cols).astype(np.intp), level_positions, n_cols + 1
+        )
+        return QRAccumulator.from_gram(
+            gram,
+            x_shift,
+            float(self._shift[-1]),
+            n_rows=self._n,
+            sum_log_w=self._sum_log_w,
+            is_weighted=self._is_weighted,
+            has_intercept=self._has_intercept,
         )
 
 
