@@ -658,6 +658,13 @@ def test_bin_lookup_equals_searchsorted_bins(rng: np.random.Generator, n_edges: 
     np.testing.assert_array_equal(BinLookup(edges).index(values), bin_index(edges, values))
     constant = np.array([2.0, 2.0])
     np.testing.assert_array_equal(BinLookup(constant).index(values), bin_index(constant, values))
+    # the values found exactly hold every value outside the edges and every non-finite one,
+    # so the extremes of those are the extremes of all the values outside the edges
+    for grid in (edges, constant):
+        bins, exact = BinLookup(grid).index_and_exact(values)
+        np.testing.assert_array_equal(bins, bin_index(grid, values))
+        outside = ~((values >= grid[0]) & (values <= grid[-1]))
+        assert set(np.flatnonzero(outside)) <= set(exact)
     # Fine-grid cells with tails: numpy.searchsorted (side "right"), a value on the last
     # edge counted in the last bin.
     for grid in (edges, np.linspace(-3.0, 3.0, n_edges), constant):
