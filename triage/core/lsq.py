@@ -196,14 +196,15 @@ def _equilibrated_cholesky(gram: FloatArray) -> tuple[FloatArray, float] | None:
     None when the Cholesky fails.
     """
     scale = np.sqrt(np.diagonal(gram))
-    r1 = _upper_cholesky(gram / np.outer(scale, scale))
+    equilibrated = gram / np.outer(scale, scale)
+    r1 = _upper_cholesky(equilibrated)
     if r1 is None:
         return None
-    # The 2-norm condition number, from the singular values of the small factor; the
-    # 1-norm one read 214 for a 2-norm 18 on a 31-column block here.
-    singular_values = np.linalg.svd(r1, compute_uv=False)
+    # The 2-norm condition number, of the small factor; the 1-norm one read 214 for a
+    # 2-norm 18 on a 31-column block here.
+    condition = _condition_number(r1, equilibrated)
     r1 *= scale[np.newaxis, :]
-    return r1, float(singular_values[0] / singular_values[-1])
+    return r1, condition
 
 
 def _gram_factor(gram: FloatArray) -> FloatArray | None:
@@ -288,21 +289,70 @@ def _upper_cholesky(gram: FloatArray) -> FloatArray | None:
     return np.ascontiguousarray(lower.T)
 
 
+SOLVE_BLOCK_ROWS: Final = 64
+"""Rows of a triangular solve substituted one by one before the rest are updated at once.
+
+Within a block each row is solved from the ones before it, as plain substitution does; the
+rows of earlier blocks enter every row of the next block by one matrix product. Measured
+here (one thread) on a 3,000-column factor with 3,000 right-hand sides: 4.8 s row by row.
+"""
+
+
 def _solve_upper(r: FloatArray, b: FloatArray, *, transposed: bool = False) -> FloatArray:
     """Solve ``R v = b`` (or ``R' v = b`` when `transposed`) for an upper-triangular ``R``.
 
-    ``R v = b`` by numpy's LU solve, which on an upper-triangular matrix pivots nowhere and
-    is back-substitution. ``R' v = b`` by forward substitution, one row of ``R'`` at a
-    time: an LU solve would pivot on ``R'`` and cost the near-collinear case about a digit
-    (measured against a 50-digit solution).
+    By substitution (backward for ``R``, forward for ``R'``), `SOLVE_BLOCK_ROWS` rows at a
+    time, never by an LU solve: one would pivot on ``R'`` and cost the near-collinear case
+    about a digit (measured against a 50-digit solution). `b` is a vector or a matrix.
     """
-    if not transposed:
-        solution: FloatArray = np.linalg.solve(r, b).astype(np.float64, copy=False)
-        return solution
+    n = r.shape[0]
     v = np.empty(b.shape)
-    for i in range(r.shape[0]):
-        v[i] = (b[i] - r[:i, i] @ v[:i]) / r[i, i]
+    if transposed:
+        for start in range(0, n, SOLVE_BLOCK_ROWS):
+            stop = min(start + SOLVE_BLOCK_ROWS, n)
+            rhs = b[start:stop] - r[:start, start:stop].T @ v[:start]
+            for i in range(start, stop):
+                v[i] = (rhs[i - start] - r[start:i, i] @ v[start:i]) / r[i, i]
+        return v
+    for stop in range(n, 0, -SOLVE_BLOCK_ROWS):
+        start = max(stop - SOLVE_BLOCK_ROWS, 0)
+        rhs = b[start:stop] - r[start:stop, stop:] @ v[stop:]
+        for i in range(stop - 1, start - 1, -1):
+            v[i] = (rhs[i - start] - r[i, i + 1 : stop] @ v[i + 1 : stop]) / r[i, i]
     return v
+
+
+SVD_MAX_COLUMNS: Final = 200
+"""Most columns of a factor whose condition number is read from its singular values alone.
+
+Past it the eigenvalues of ``R'R`` are read first: on a 1,500-column factor (one thread)
+its singular values took 0.85 s, the eigenvalues 0.36 s; a 3,000-column fit spent 17 of its
+25 s in two singular value decompositions.
+"""
+
+EIGEN_MAX_CONDITION: Final = 1e4
+"""Largest condition number taken from the eigenvalues of ``R'R``; past it, singular values.
+
+The smallest eigenvalue's relative error is about ``p eps cond**2``, so the condition number
+read this way is good to about 3e-5 relative at 3,000 columns (better below).
+"""
+
+
+def _condition_number(r: FloatArray, gram: FloatArray | None = None) -> float:
+    """Return the 2-norm condition number of a square factor ``R`` (`gram` is ``R'R`` if known).
+
+    Singular values up to `SVD_MAX_COLUMNS` columns or past `EIGEN_MAX_CONDITION`; otherwise
+    the square root of the ratio of the extreme eigenvalues of ``R'R``.
+    """
+    if r.shape[0] > SVD_MAX_COLUMNS:
+        eigenvalues = np.linalg.eigvalsh(r.T @ r if gram is None else gram)
+        low, high = float(eigenvalues[0]), float(eigenvalues[-1])
+        if low > 0.0 and high < EIGEN_MAX_CONDITION**2 * low:
+            return math.sqrt(high / low)
+    singular_values = np.linalg.svd(r, compute_uv=False)
+    if singular_values[-1] == 0.0:
+        return math.inf
+    return float(singular_values[0] / singular_values[-1])
 
 
 class UncertifiedGram(DataError):
@@ -1420,8 +1470,4 @@ def _scaled_condition_number(factor: _ShiftedFactor) -> float:
     r = factor.r.copy()
     if factor.has_intercept:
         r[0, 1:] += r[0, 0] * factor.x_shift[factor.kept[1:]]
-    norms = np.linalg.norm(r, axis=0)
-    singular = np.linalg.svd(r / norms, compute_uv=False)
-    if singular[-1] == 0.0:
-        return math.inf
-    return float(singular[0] / singular[-1])
+    return _condition_number(r / np.linalg.norm(r, axis=0))
