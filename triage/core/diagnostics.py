@@ -20,7 +20,7 @@ Flags are aids to judgement: each names its rule, and none is proof of an error.
 from __future__ import annotations
 
 import math
-from typing import TYPE_CHECKING, Final
+from typing import TYPE_CHECKING, Any, Final
 
 import numpy as np
 import polars as pl
@@ -404,20 +404,10 @@ class DiagnosticsAccumulator:
 
     def _merge_tests(self, other: DiagnosticsAccumulator) -> None:
         """Merge Breusch–Pagan and RESET, computed the same way in both (same fit and config)."""
-        bp, other_bp = self._bp, other._bp
-        if isinstance(bp, BreuschPaganFromFit):
-            assert isinstance(other_bp, BreuschPaganFromFit)
-            bp.merge(other_bp)
-        else:
-            assert isinstance(other_bp, BreuschPaganAccumulator)
-            bp.merge(other_bp)
-        reset, other_reset = self._reset, other._reset
-        if isinstance(reset, ResetFromFit):
-            assert isinstance(other_reset, ResetFromFit)
-            reset.merge(other_reset)
-        else:
-            assert isinstance(other_reset, ResetAccumulator)
-            reset.merge(other_reset)
+        pairs: tuple[tuple[Any, Any], ...] = ((self._bp, other._bp), (self._reset, other._reset))
+        for mine, theirs in pairs:
+            assert type(theirs) is type(mine)
+            mine.merge(theirs)
 
     def _histogram(self) -> ResidualHistogram:
         empty = self._n == 0

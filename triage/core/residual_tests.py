@@ -25,7 +25,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from triage.core.distributions import chi2_sf, f_sf
-from triage.core.indicators import CodedDesign, level_sums
+from triage.core.indicators import CodedDesign
 from triage.core.lsq import GRAM_MAX_CONDITION, QRAccumulator, UncertifiedGram
 from triage.results.diagnostics import ResidualTest
 
@@ -80,7 +80,8 @@ def coded_cross(
             has_column = factor.positions >= 0
             at = factor.positions[has_column]
             for j, column in enumerate(columns):
-                products[at, j] = level_sums(factor, column)[has_column]
+                sums = np.bincount(factor.codes, weights=column, minlength=factor.n_levels)
+                products[at, j] = sums[has_column]
         products[indicators] -= shift[indicators, np.newaxis] * products[0]
         kept: FloatArray = products[fit.kept_columns]
         return kept
