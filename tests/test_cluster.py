@@ -14,9 +14,12 @@ scheduler's web page on a free loopback port).
 
 from __future__ import annotations
 
+import functools
+import http.server
 import json
 import math
 import os
+import re
 import signal
 import socket
 import subprocess
@@ -25,7 +28,7 @@ import threading
 import time
 from collections.abc import Callable, Iterator
 from pathlib import Path
-from typing import Any
+from typing import Any, ClassVar
 
 import numpy as np
 import polars as pl
@@ -36,6 +39,7 @@ from distributed.client import FutureCancelledError
 from threadpoolctl import threadpool_limits
 
 from tests import tui_support
+from tests.test_readme_claims import README, said
 from tests.tui_support import build_app, press_id, settle, wait_until
 from triage._typing import ALL_ROWS
 from triage.core.spec import build_spec
@@ -51,7 +55,7 @@ from triage.engine.compare import compare_models
 from triage.engine.export import export_all_rows
 from triage.engine.progress import PassProgress
 from triage.engine.workers import fold_in_order
-from triage.errors import PassCancelled, SourceError, TriageError
+from triage.errors import ClusterError, PassCancelled, SourceError, TriageError
 from triage.tui.screens.main import MainScreen
 from triage.views.json import fit_to_json, report_to_json
 from triage.views.text import render_full_report
@@ -304,6 +308,11 @@ def test_cluster_csv_and_ipc_equal_local_engine(
     # cut otherwise, is an outside check: the same positions, and the same coefficients to
     # the rounding of sums taken in another order (n * eps = 240,000 * 1.1e-16, about 2.7e-11
     # relative: LRE 10 or better; 10.9 was measured for the CSV file here).
+    said(
+        "A table of one task is folded batch by batch in the local engine's tree, so its "
+        "results too are the local engine's bit for bit.",
+        README,
+    )
     source = open_source(other_formats[kind])
     parts = source.scan_parts(["minutes"])
     assert len(parts) == {"csv": 1, "ipc": 8}[kind]
@@ -319,6 +328,121 @@ def test_cluster_csv_and_ipc_equal_local_engine(
     for criterion, rows in parquet.diagnostics.worst.items():
         assert [r.row for r in remote.diagnostics.worst[criterion]] == [r.row for r in rows]
     assert float(np.min(lre(remote.outcome.fit.coef, parquet.outcome.fit.coef))) >= 10
+
+
+class _RangeHandler(http.server.SimpleHTTPRequestHandler):
+    """Serves a folder with single byte ranges (``Range: bytes=A-B``, RFC 9110), as object
+    stores and most web servers do; counts the bytes of every range it sends."""
+
+    ranges: ClassVar[list[int]] = []
+
+    def do_GET(self) -> None:
+        match = re.fullmatch(r"bytes=(\d+)-(\d*)", self.headers.get("Range", ""))
+        path = Path(self.translate_path(self.path))
+        if match is None or not path.is_file():
+            super().do_GET()  # fsspec asks for the file once to see that it exists
+            return
+        size = path.stat().st_size
+        first, last = int(match[1]), min(int(match[2] or size - 1), size - 1)
+        with path.open("rb") as file:
+            file.seek(first)
+            body = file.read(last - first + 1)
+        self.send_response(206)
+        self.send_header("Content-Range", f"bytes {first}-{last}/{size}")
+        self.send_header("Content-Length", str(len(body)))
+        self.end_headers()
+        self.wfile.write(body)
+        self.ranges.append(len(body))
+
+    def log_message(self, *args: Any) -> None:
+        pass
+
+
+class _QuietServer(http.server.ThreadingHTTPServer):
+    def handle_error(self, request: Any, client_address: Any) -> None:
+        pass  # a client that closes a whole-file answer after its headers (fsspec's exists)
+
+
+@pytest.fixture(scope="module")
+def served(other_formats: dict[str, Path], folder: Path) -> Iterator[str]:
+    """The table as one Parquet file and one IPC file, served over HTTP on loopback."""
+    root = other_formats["csv"].parent
+    pl.read_parquet(sorted(folder.glob("*.parquet"))).write_parquet(
+        root / "deliveries.parquet", row_group_size=GROUP_ROWS
+    )
+    handler = functools.partial(_RangeHandler, directory=str(root))
+    server = _QuietServer(("127.0.0.1", 0), handler)
+    thread = threading.Thread(target=server.serve_forever, daemon=True)
+    thread.start()
+    yield f"http://127.0.0.1:{server.server_address[1]}"
+    server.shutdown()
+    thread.join()
+    server.server_close()
+
+
+@pytest.mark.parametrize(
+    ("scheme", "name"),
+    [("http", "deliveries.parquet"), ("http", "deliveries.arrow"), ("file", "deliveries.parquet")],
+)
+def test_cluster_url_sources_equal_local_engine_on_a_plain_path(
+    scheme: str, name: str, served: str, other_formats: dict[str, Path], engine: ClusterEngine
+) -> None:
+    # The workers open the URL themselves (fsspec); the parts are those of the plain file,
+    # so both engines on the URL and the local engine on the path give the same bits.
+    said("or at a URL that every worker can open. A URL names one Parquet or Arrow IPC", README)
+    path = other_formats["csv"].parent / name
+    url = f"{served}/{name}" if scheme == "http" else path.as_uri()
+    plain, remote = open_source(path), open_source(url)
+    assert remote.schema() == plain.schema() and remote.row_count() == N_FILES * FILE_ROWS
+    assert len(remote.scan_parts(["minutes"])) == 8
+    spec = build_spec(plain.schema(), target=None, terms=TERMS)
+    options: dict[str, Any] = {"rows": ALL_ROWS, "by": ("depot",), "top_k": 25}
+    on_path = report_to_json(passes.run_report(plain, spec, **options))
+    assert report_to_json(passes.run_report(remote, spec, engine=engine, **options)) == on_path
+    assert report_to_json(passes.run_report(remote, spec, **options)) == on_path
+
+
+@pytest.mark.parametrize("name", ["deliveries.parquet", "deliveries.arrow"])
+def test_url_source_opens_on_its_metadata_alone(
+    name: str, served: str, other_formats: dict[str, Path]
+) -> None:
+    # Opening a URL fetches the footer (and an IPC file's record batch headers), not rows:
+    # the byte ranges the server sent add up to a small share of the file.
+    said(
+        "pyarrow reads a URL through fsspec in byte ranges: the footer (and an Arrow IPC "
+        "file's record batch headers) when the file opens",
+        README,
+    )
+    size = (other_formats["csv"].parent / name).stat().st_size
+    _RangeHandler.ranges.clear()
+    source = open_source(f"{served}/{name}")
+    assert source.row_count() == N_FILES * FILE_ROWS
+    assert 0 < sum(_RangeHandler.ranges) < size / 20, (_RangeHandler.ranges, size)
+
+
+def test_cluster_url_the_workers_cannot_open_is_named_in_one_line(
+    folder: Path, engine: ClusterEngine
+) -> None:
+    # fsspec's memory store lives in each process: this process sees the file, no worker does.
+    import fsspec
+
+    said(
+        "Before a pass triage asks every worker whether it can read every file or URL, and "
+        "stops with one line naming the first worker and file that it cannot.",
+        README,
+    )
+    url = "memory://triage-test/deliveries.parquet"
+    with fsspec.open(url, "wb") as sink:
+        pl.read_parquet(sorted(folder.glob("*.parquet"))[0]).write_parquet(sink)
+    try:
+        source = open_source(url)
+        spec = build_spec(source.schema(), target="minutes", terms="distance_km, stops")
+        with pytest.raises(ClusterError) as caught:
+            passes.fit_model(source, spec, rows=ALL_ROWS, engine=engine)
+    finally:
+        fsspec.filesystem("memory").rm(url)
+    message = str(caught.value)
+    assert f"cannot find `{url}`" in message and "\n" not in message
 
 
 @pytest.mark.parametrize(
@@ -473,6 +597,24 @@ def test_cli_source_the_workers_cannot_see_exits_2_with_one_line(
     assert "cannot see" in result.stderr and folder.name in result.stderr
     assert len(result.stderr.strip().splitlines()) == 1, result.stderr
     assert _cli(args, cwd=folder.parent).returncode == 0  # the command itself sees them
+
+
+@pytest.mark.parametrize(
+    ("url", "says"),
+    [
+        ("http://127.0.0.1:{closed}/deliveries.parquet", "cannot open"),
+        ("nosuchstore://bucket/deliveries.parquet", "Protocol not known"),
+        ("http://127.0.0.1:{closed}/deliveries.csv", "must name one Parquet"),
+    ],
+)
+def test_cli_url_that_cannot_be_opened_exits_2_with_one_line(url: str, says: str) -> None:
+    with socket.create_server(("127.0.0.1", 0)) as probe:
+        closed = probe.getsockname()[1]  # closed again below: nothing listens there
+    url = url.format(closed=closed)
+    result = _cli(["fit", url, "--terms", "minutes ~ distance_km", "--rows", "all"])
+    assert result.returncode == 2
+    assert says in result.stderr and f"`{url}`" in result.stderr
+    assert len(result.stderr.strip().splitlines()) == 1, result.stderr
 
 
 def test_cli_scheduler_without_dask_engine_is_refused(folder: Path) -> None:

@@ -278,6 +278,32 @@ CASES: list[Case] = [
         "--reference",
     ),
     _case(
+        "fit-indicator-unknown-level",
+        ["fit", "{in}/deliveries.parquet", "-y", "minutes", "-x", "stops, depot=mars"],
+        2,
+        "`depot`",
+        "mars",
+    ),
+    _case(
+        "fit-indicator-unknown-level-every-row",
+        ["fit", "{in}/deliveries.parquet", "-y", "minutes", "-x", "depot=mars", "--rows", "all"],
+        2,
+        "`depot`",
+        "mars",
+    ),
+    _case(
+        "fit-indicator-level-not-a-number",
+        ["fit", "{in}/deliveries.parquet", "-y", "minutes", "-x", "stops, hour=noon"],
+        2,
+        "hour=noon",
+    ),
+    _case(
+        "fit-indicator-beside-its-categorical",
+        ["fit", "{in}/deliveries.parquet", "-y", "minutes", "-x", "depot, depot[north]"],
+        2,
+        "depot=north",
+    ),
+    _case(
         "fit-too-many-levels", "fit {in}/odd.parquet -y minutes -x note", 2, "note", "--max-levels"
     ),
     _where_case("fit-where-unknown-column", "dept = 'north'", "dept"),

@@ -23,6 +23,7 @@ from triage.core.spec import build_spec
 from triage.data import parquet as parquet_module
 from triage.data.source import open_source
 from triage.engine import passes
+from triage.errors import DataError, SpecError
 
 RTOL = 1e-8
 
@@ -244,3 +245,99 @@ def test_report_with_codes_matches_statsmodels(
         assert row.leverage == pytest.approx(hat[i], rel=RTOL)
         assert row.cooks == pytest.approx(cooks[i], rel=RTOL)
         assert row.weighted_resid == pytest.approx(resid[i], rel=RTOL)
+
+
+def test_full_pass_finds_every_level_as_it_reads(
+    tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Oracles: polars' group_by counts of each level over the rows under the filter (rows
+    # the user marks included) with the reference rule (most rows, ties to the first in
+    # natural order), and statsmodels WLS on the usable, unmarked rows. The pass finds the
+    # levels as it reads, in parts of 2,500 rows: `kiosk` appears in the last part only,
+    # `fax` only in rows without a target, `stall` only in rows the user marks.
+    from triage.engine.workers import set_pass_workers
+
+    monkeypatch.setattr(parquet_module, "PART_ROWS", 2_500)
+    table = administrative_table(rng, 30_000)
+    n = table.height
+    channel = table["channel"].to_list()
+    y = table["y"].to_list()
+    weight = table["weight"].to_list()
+    for i in range(n - 40, n):
+        channel[i] = "kiosk"
+    for i in range(100, 104):
+        channel[i], y[i] = "fax", None
+    marked = list(range(5_000, 5_003))
+    for i in marked:
+        channel[i], weight[i] = "stall", 1.5
+    table = table.with_columns(
+        pl.Series("channel", channel), pl.Series("y", y), pl.Series("weight", weight)
+    )
+    path = tmp_path / "admin.parquet"
+    table.write_parquet(path, row_group_size=2_500)
+    source = open_source(path)
+    spec = build_spec(
+        source.schema(), target="y", terms=TERMS, weights="weight", where="weight > 0.6"
+    )
+    fits = {}
+    try:
+        for n_workers in (1, 2, 8):
+            set_pass_workers(n_workers)
+            fits[n_workers] = passes.fit_model(source, spec, rows=ALL_ROWS, exclude_rows=marked)
+    finally:
+        set_pass_workers(None)
+    outcome = fits[1]
+    for other in (fits[2], fits[8]):
+        assert np.array_equal(other.fit.coef, outcome.fit.coef, equal_nan=True)
+        assert np.array_equal(other.fit.std_error, outcome.fit.std_error, equal_nan=True)
+    under_filter = table.filter(pl.col("weight") > 0.6)
+    for column in ("region", "channel"):
+        counted = under_filter.drop_nulls(column).group_by(column).len().sort(column)
+        found = outcome.builder.level_tables[column]
+        assert found.levels == tuple(counted[column].to_list())
+        assert found.counts == tuple(counted["len"].to_list())
+        most = counted.sort("len", descending=True, maintain_order=True)[column][0]
+        assert outcome.builder.reference_levels[column] == most
+    assert set(outcome.fit.aliased) == {"channel=fax", "channel=stall"}
+    used = (
+        table.with_row_index("row")
+        .filter((pl.col("weight") > 0.6) & ~pl.col("row").is_in(marked))
+        .drop("row")
+    )
+    result, names = _statsmodels_wls(used, dict(outcome.builder.reference_levels))
+    kept = [outcome.fit.names.index(name) for name in names]
+    np.testing.assert_allclose(outcome.fit.coef[kept[:-1]], result.params.iloc[:-1], rtol=RTOL)
+    np.testing.assert_allclose(outcome.fit.std_error[kept], result.bse, rtol=RTOL)
+    assert outcome.data.rows_used == result.nobs
+    assert outcome.data.rows_excluded == len(marked)
+
+
+@pytest.mark.parametrize(
+    ("limits", "raised", "says"),
+    [
+        ({"max_levels": 50}, SpecError, "at least 2,500 levels in the rows read"),
+        ({"max_memory": 2**20}, DataError, "the design would have at least"),
+    ],
+)
+def test_full_pass_refuses_a_column_of_too_many_levels_as_soon_as_it_finds_them(
+    tmp_path: Path,
+    rng: np.random.Generator,
+    monkeypatch: pytest.MonkeyPatch,
+    limits: dict[str, int],
+    raised: type[Exception],
+    says: str,
+) -> None:
+    # A column of case numbers (one per row) put in as a categorical: the pass stops in
+    # its first part (2,500 rows) instead of counting every level of the file first.
+    monkeypatch.setattr(parquet_module, "PART_ROWS", 2_500)
+    table = administrative_table(rng, 20_000).with_columns(
+        (pl.lit("C") + pl.int_range(pl.len()).cast(pl.String)).alias("case")
+    )
+    path = tmp_path / "admin.parquet"
+    table.write_parquet(path, row_group_size=2_500)
+    source = open_source(path)
+    spec = build_spec(
+        source.schema(), target="y", terms="age, region, case", categorical=["case"], **limits
+    )
+    with pytest.raises(raised, match=says):
+        passes.fit_model(source, spec, rows=ALL_ROWS)

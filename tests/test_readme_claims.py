@@ -24,8 +24,9 @@ from triage._typing import ALL_ROWS
 from triage.cli.main import build_parser, main
 from triage.core.spec import build_spec
 from triage.data.scenario import planted_positions
-from triage.data.source import open_source
+from triage.data.source import ROW_INDEX, open_source
 from triage.engine.passes import run_report
+from triage.errors import SourceError
 from triage.results.fit import ReportOutcome
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -280,6 +281,49 @@ def test_readme_names_every_command() -> None:
     assert set(COMMANDS) <= named
 
 
+# ── running on a cluster (the claims that need a LocalCluster are in test_cluster.py) ───────
+
+
+def test_readme_cluster_tasks_per_source(tmp_path: Path) -> None:
+    said(
+        "Parquet (a file, folder or glob) gives a task per file, or per run of row groups "
+        "of at least 500,000 rows; an Arrow IPC file a task per run of record batches of at "
+        "least 500,000 rows. Each task knows the position of its first row from the "
+        "metadata, so row positions are those of the whole table. A CSV file is one task",
+        README,
+    )
+    import pyarrow as pa
+    import pyarrow.ipc as ipc
+
+    from triage.data.scenario import iter_scenario
+
+    # the demo table, sorted by delivery id, in blocks of 200,000 rows: runs of 3 blocks
+    frame = pl.concat(iter_scenario(1_200_000, seed=3)).select("delivery_id", "depot")
+    frame.write_parquet(tmp_path / "d.parquet", row_group_size=200_000)
+    table = frame.to_arrow().combine_chunks()
+    with pa.OSFile(str(tmp_path / "d.arrow"), "wb") as sink, ipc.new_file(sink, table.schema) as w:
+        w.write_table(table, max_chunksize=200_000)
+    frame.head(1_000).write_csv(tmp_path / "d.csv")
+    for name, starts in [("d.parquet", [0, 600_000]), ("d.arrow", [0, 600_000]), ("d.csv", [0])]:
+        parts = open_source(tmp_path / name).scan_parts(["delivery_id"])
+        assert [part.start for part in parts] == starts, name  # type: ignore[attr-defined]
+        first_rows = [next(iter(part())).frame[ROW_INDEX][0] for part in parts]
+        assert first_rows == starts, name
+
+
+def test_readme_urls_name_one_parquet_or_ipc_file(tmp_path: Path) -> None:
+    said("A URL names one Parquet or Arrow IPC file in any store fsspec opens", README)
+    said("A CSV file, a folder or a glob is read from a disk, not from a URL.", README)
+    pl.DataFrame({"code": [3, 1, 2], "depot": ["north", "north", None]}).write_csv(
+        tmp_path / "d.csv"
+    )
+    for url in [(tmp_path / "d.csv").as_uri(), f"{tmp_path.as_uri()}/*.parquet"]:
+        with pytest.raises(SourceError, match="must name one Parquet"):
+            open_source(url)
+    pl.read_csv(tmp_path / "d.csv").write_parquet(tmp_path / "d.parquet")
+    assert open_source((tmp_path / "d.parquet").as_uri()).row_count() == 3
+
+
 # ── legibility at 80 columns ─────────────────────────────────────────────────────────────
 
 
@@ -330,3 +374,84 @@ def test_no_two_rows_of_a_table_at_80_columns_share_a_label() -> None:
     names = report.outcome.fit.names
     coefficient_tables = [t for t in tables if set(t) == set(names)]
     assert coefficient_tables  # every design column, whole, e.g. `vehicle=cargo_bike`
+
+
+# ── README.md: indicator terms and columns with no rows left ────────────────────────────
+
+
+def test_readme_indicator_terms_on_the_demo(frame: pd.DataFrame) -> None:
+    # Oracle: statsmodels OLS with the same indicators built by hand (pandas `==`).
+    said("`depot=east` (the older `depot[east]` is read too) is one column, 1 where", README)
+    said("`hour=8` on a column of whole numbers (`hour=08` is the same)", README)
+    said("`distance_km:vehicle=truck` is the difference between the slope of distance", README)
+    source = open_source(DEMO)
+    terms = "distance_km, stops, depot[east], hour=08, vehicle=truck, distance_km:vehicle=truck"
+    spec = build_spec(source.schema(), target="minutes", terms=terms)
+    fit = run_report(source, spec, rows=ALL_ROWS, top_k=1).outcome.fit
+    assert fit.names[3:] == ("depot=east", "hour=8", "vehicle=truck", "distance_km:vehicle=truck")
+    data = frame.assign(
+        east=(frame["depot"] == "east").astype(float),
+        eight=(frame["hour"] == 8).astype(float),
+        truck=(frame["vehicle"] == "truck").astype(float),
+    )
+    oracle = smf.ols(
+        "minutes ~ distance_km + stops + east + eight + truck + distance_km:truck", data
+    )
+    np.testing.assert_allclose(fit.coef, oracle.fit().params, rtol=1e-8)
+
+
+def test_readme_indicator_level_no_row_holds_is_refused(tmp_path: Path) -> None:
+    message = (
+        "`depot` has no level `eest` in the sample (the term `depot=eest`); its levels there: "
+        "`airport`, `east`, `harbour`, `north`, `south`, `west`"
+    )
+    said(f"`` {message} ``", README)
+    said("so a level found only at the end of a sorted file is found", README)
+    from triage.engine.passes import fit_model
+    from triage.errors import SpecError
+
+    source = open_source(DEMO)
+    spec = build_spec(source.schema(), target="minutes", terms="distance_km, depot=eest")
+    with pytest.raises(SpecError) as error:
+        fit_model(source, spec)
+    assert str(error.value) == message
+    # A copy sorted by depot: `west` lies in its last row groups only.
+    ordered = tmp_path / "by_depot.parquet"
+    pl.read_parquet(DEMO).sort("depot").write_parquet(ordered, row_group_size=5_000)
+    source = open_source(ordered)
+    spec = build_spec(source.schema(), target="minutes", terms="distance_km, depot=west")
+    assert fit_model(source, spec, rows=ALL_ROWS).fit.names[-1] == "depot=west"
+
+
+def test_readme_no_rows_left_apart_from_aliasing(tmp_path: Path) -> None:
+    # Oracle: numpy's matrix rank of the design on the rows used (the airport column is all
+    # zero there; distance in miles is distance in km in other units).
+    said(
+        'under `no_rows_left` (*terms with no rows left*, "no rows left after missing values")',
+        README,
+    )
+    from triage.engine.passes import fit_model
+    from triage.views.json import fit_to_json
+    from triage.views.text import render_aliased
+
+    table = pl.read_parquet(DEMO).with_columns(
+        pl.when(pl.col("depot") == "airport")
+        .then(None)
+        .otherwise(pl.col("weight_kg"))
+        .alias("weight_kg"),
+        (pl.col("distance_km") / 1.609344).alias("distance_miles"),
+    )
+    path = tmp_path / "airport_weights_missing.parquet"
+    table.write_parquet(path)
+    source = open_source(path)
+    terms = "distance_km, weight_kg, depot, distance_miles"
+    outcome = fit_model(source, build_spec(source.schema(), target="minutes", terms=terms))
+    document = fit_to_json(outcome)
+    assert document["aliased"] == ["distance_miles"]
+    assert document["no_rows_left"] == ["depot=airport"]
+    text = render_aliased(outcome.fit, width=80)
+    assert "aliased terms" in text and "terms with no rows left" in text
+    assert "no rows left after missing values" in text
+    used = table.with_row_index("__row").drop_nulls(["distance_km", "weight_kg", "minutes"])
+    design = outcome.builder.build(used).x
+    assert np.linalg.matrix_rank(design) == design.shape[1] - 2

@@ -18,6 +18,7 @@ import pytest
 from polars.testing import assert_frame_equal
 from scipy import stats
 
+from triage.data import ipc as ipc_module
 from triage.data import parquet as parquet_module
 from triage.data.source import ROW_INDEX, CsvOptions, Sample, Source, open_source
 from triage.errors import SourceError, SpecError
@@ -187,6 +188,32 @@ def test_source_ipc_record_batches(ipc_file: Path) -> None:
         _scan_all(source, ["k", "depot"], batch_rows=32),
         _indexed(oracle).select(ROW_INDEX, "k", "depot"),
     )
+
+
+@pytest.mark.parametrize("compression", [None, "zstd", "lz4"])
+def test_source_ipc_rows_per_batch_from_headers_equal_pyarrows(
+    tmp_path: Path, compression: str | None
+) -> None:
+    # pyarrow's reader, which reads each batch whole, is the oracle for the rows the footer
+    # and message headers give; a zero-row batch, a dictionary column and compressed bodies
+    # must not confuse the walk over the flatbuffers.
+    table = _frame(500, seed=6).with_columns(pl.col("depot").cast(pl.Categorical)).to_arrow()
+    path = tmp_path / "f.arrow"
+    options = ipc.IpcWriteOptions(compression=compression)
+    with pa.OSFile(str(path), "wb") as sink, ipc.new_file(sink, table.schema, options=options) as w:
+        w.write_batch(table.to_batches()[0].slice(0, 0))
+        w.write_table(table, max_chunksize=70)
+    reader = ipc.open_file(str(path))
+    oracle = [reader.get_batch(i).num_rows for i in range(reader.num_record_batches)]
+    with pa.OSFile(str(path)) as file:
+        assert ipc_module.record_batch_rows(file) == oracle == [0, *[70] * 7, 10]
+    with pa.OSFile(str(tmp_path / "f.arrow"), "wb") as sink, ipc.new_file(sink, table.schema):
+        pass  # no record batch at all
+    with pa.OSFile(str(path)) as file:
+        assert ipc_module.record_batch_rows(file) == []
+    path.write_bytes(b"not arrow")
+    with pa.OSFile(str(path)) as file, pytest.raises(ValueError, match="not an Arrow IPC"):
+        ipc_module.record_batch_rows(file)
 
 
 @pytest.mark.parametrize("kind", ["parquet", "hive", "ipc", "csv"])

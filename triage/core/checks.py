@@ -154,8 +154,11 @@ def huber_refit(
             )
         )
     notes = []
-    if aliased:
-        notes.append("left out as aliased: " + ", ".join(f"`{a}`" for a in aliased))
+    if ordinary.collinear:
+        notes.append("left out as aliased: " + ", ".join(f"`{a}`" for a in ordinary.collinear))
+    if ordinary.no_rows:
+        names = ", ".join(f"`{a}`" for a in ordinary.no_rows)
+        notes.append(f"left out with no rows left after missing values: {names}")
     if not converged:
         notes.append(f"the robust fit stopped after {max_iter} iterations; figures are rough")
     return RobustCheck(

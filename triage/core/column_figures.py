@@ -39,16 +39,50 @@ class ColumnFiguresAccumulator:
         self.high = np.full(k, -np.inf)
 
     def update(self, frame: pl.DataFrame) -> None:
-        """Add the rows of one frame holding the columns (one polars query per frame)."""
+        """Add the rows of one frame holding the columns (one polars query per frame).
+
+        The query first reads every value as it is; a column whose figures come out NaN or
+        infinite (a NaN or inf among its values) is read again with those values masked.
+        Masking every column cost 0.82 of a 30-predictor fit's 1.5 CPU-s per 2 million rows
+        here, reading as it is 0.21.
+        """
         if frame.height == 0:
             return
+        found = frame.select(self._queries(frame, masked=False)).row(0, named=True)
+        unusable = [
+            i
+            for i, is_numeric in enumerate(self.is_numeric)
+            if is_numeric
+            and not all(
+                found[f"{i}_{figure}"] is None or math.isfinite(found[f"{i}_{figure}"])
+                for figure in ("low", "high", "mean", "var")
+            )
+        ]
+        if unusable:
+            again = frame.select(self._queries(frame, masked=True, only=unusable))
+            found.update(again.row(0, named=True))
+        k = len(self.names)
+        missing = np.array([found[f"{i}_missing"] for i in range(k)], dtype=np.int64)
+        count = np.where(self.is_numeric, frame.height - missing, 0).astype(np.float64)
+        mean, m2 = np.zeros(k), np.zeros(k)
+        low, high = np.full(k, np.inf), np.full(k, -np.inf)
+        for i in np.flatnonzero(count).tolist():
+            low[i], high[i] = found[f"{i}_low"], found[f"{i}_high"]
+            mean[i], m2[i] = found[f"{i}_mean"], found[f"{i}_var"] * count[i]
+        self._add(frame.height, missing, count, mean, m2, low, high)
+
+    def _queries(
+        self, frame: pl.DataFrame, *, masked: bool, only: Sequence[int] | None = None
+    ) -> list[pl.Expr]:
+        """Build the queries of the columns' figures (`only` these), NaN and inf masked if asked."""
         queries: list[pl.Expr] = []
-        for i, (name, is_numeric) in enumerate(zip(self.names, self.is_numeric, strict=True)):
-            if not is_numeric:
+        for i in range(len(self.names)) if only is None else only:
+            name = self.names[i]
+            if not self.is_numeric[i]:
                 queries.append(pl.col(name).null_count().alias(f"{i}_missing"))
                 continue
             number = pl.col(name).cast(pl.Float64)
-            values = pl.when(number.is_finite()).then(number)
+            values = pl.when(number.is_finite()).then(number) if masked else number
             # Shifted by the frame's first value, mean and variance keep their digits when
             # the values sit far from zero (a code near 1e9 that varies by 1). A literal
             # costs a quarter of a `drop_nulls().first()` expression (measured).
@@ -62,16 +96,7 @@ class ColumnFiguresAccumulator:
                 (shifted.mean() + shift).alias(f"{i}_mean"),
                 shifted.var(ddof=0).alias(f"{i}_var"),
             ]
-        found = frame.select(queries).row(0, named=True)
-        k = len(self.names)
-        missing = np.array([found[f"{i}_missing"] for i in range(k)], dtype=np.int64)
-        count = np.where(self.is_numeric, frame.height - missing, 0).astype(np.float64)
-        mean, m2 = np.zeros(k), np.zeros(k)
-        low, high = np.full(k, np.inf), np.full(k, -np.inf)
-        for i in np.flatnonzero(count).tolist():
-            low[i], high[i] = found[f"{i}_low"], found[f"{i}_high"]
-            mean[i], m2[i] = found[f"{i}_mean"], found[f"{i}_var"] * count[i]
-        self._add(frame.height, missing, count, mean, m2, low, high)
+        return queries
 
     def merge(self, other: ColumnFiguresAccumulator) -> None:
         """Fold `other`, which counted the same columns over other rows, into this one."""

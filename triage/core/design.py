@@ -8,6 +8,7 @@ and one ``to_numpy``, dropping and counting rows it cannot use.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import re
 from dataclasses import dataclass, field
@@ -25,7 +26,13 @@ from triage.core.indicator_terms import (
     indicator_parts,
 )
 from triage.core.indicators import CodedDesign, IndicatorCodes
-from triage.core.levels import LevelTable, count_levels, level_text, present_value
+from triage.core.levels import (
+    FoundLevels,
+    LevelTable,
+    count_levels,
+    level_text,
+    present_value,
+)
 from triage.core.spec import Term, indicator_name, is_categorical_dtype, quote_name
 from triage.errors import DataError, SpecError
 
@@ -440,13 +447,12 @@ class DesignBuilder:
     _level_positions: tuple[NDArray[np.intp], ...] = field(repr=False, compare=False)
 
     @staticmethod
-    def learns_from_sample(spec: ModelSpec) -> bool:
-        """Whether `learn` takes anything from the sample: levels or a standardisation."""
-        return any(
-            part.kind == "categorical" or part.transform == "std"
-            for term in spec.terms
-            for part in _single_columns(term)
-        )
+    def scales_from_sample(spec: ModelSpec) -> bool:
+        """Whether `learn` takes a standardisation (``std(x)``) from the sample.
+
+        A full pass needs the sample for nothing else: it finds its levels as it reads.
+        """
+        return any(part.transform == "std" for term in spec.terms for part in _single_columns(term))
 
     @classmethod
     def learn(
@@ -461,8 +467,8 @@ class DesignBuilder:
     ) -> DesignBuilder:
         """Learn the coding of every term: levels and references, and `std()` scaling.
 
-        A categorical's levels are those of `level_tables` (a full pass counts every row
-        first) or else of the sample rows with a value in that column; its reference is
+        A categorical's levels are those of `level_tables` (counted over every row of a
+        full pass) or else of the sample rows with a value in that column; its reference is
         the one the spec names, else the level with the most of those rows, ties going to
         the first in natural order (`LevelTable.most_frequent`). An indicator term's level
         must be held by a row of `indicator_levels` (a full pass counts every row) or else
@@ -726,6 +732,11 @@ class DesignBuilder:
         )
 
     @property
+    def coded_positions(self) -> tuple[NDArray[np.intp], tuple[NDArray[np.intp], ...]]:
+        """Design columns of the dense columns, and of each categorical's levels (-1: none)."""
+        return self._dense_positions, self._level_positions
+
+    @property
     def indicator_positions(self) -> tuple[int, ...]:
         """Design columns that are indicators of a categorical's levels."""
         return tuple(int(i) for p in self._level_positions for i in p if i >= 0)
@@ -966,3 +977,208 @@ def _learn_scaling(usable: pl.DataFrame, term: Term) -> tuple[float, float]:
         )
         raise DataError(msg)
     return float(mean), float(sd)
+
+
+@dataclass(frozen=True)
+class OpenBatch:
+    """One batch of a pass whose levels are being found (`OpenLevelDesign.build`).
+
+    Attributes
+    ----------
+    dense : list of ndarray of shape (n_rows,)
+        The design columns that are neither the intercept nor indicators, float64.
+    y, weights
+        As for `DesignBatch`.
+    codes : list of ndarray of shape (n_rows,)
+        Each row's level of each categorical, numbered as found (`FoundLevels`).
+    n_dropped_missing, n_dropped_domain : int
+        As for `DesignBatch`.
+    """
+
+    dense: list[NDArray[np.float64]]
+    y: NDArray[np.float64]
+    weights: NDArray[np.float64] | None
+    codes: list[NDArray[np.int64]]
+    n_dropped_missing: int
+    n_dropped_domain: int
+    n_dropped_unseen_level: int = 0
+    """Always 0: every level is found."""
+
+    @property
+    def n_rows(self) -> int:
+        """Number of rows kept."""
+        return int(self.y.shape[0])
+
+
+@dataclass(frozen=True)
+class OpenLevelDesign:
+    """A full pass's design while the levels of its categoricals are still being found.
+
+    The pass codes each batch's categoricals against the levels found so far and adds the
+    levels it meets (`FoundLevels`), so no pass has to count them first; `finish` then
+    learns the `DesignBuilder` from every level found, with the usual reference rule. The
+    other columns, the target, weights and checks are those of the design without its
+    categorical terms (`numeric`), learned from the sample rows that have every model value.
+
+    Build one with `learn`.
+    """
+
+    spec: ModelSpec
+    numeric: DesignBuilder
+    """The design of the model without its categorical terms."""
+    categorical: tuple[str, ...]
+    dtypes: tuple[pl.DataType | type[pl.DataType], ...]
+    cap: int
+    """Most levels a column may reach before the pass is refused (`_check_levels`)."""
+    budget: DesignBudget | None
+    indicator_levels: Mapping[str, IndicatorLevel] | None
+    """As for `DesignBuilder.learn`."""
+
+    @classmethod
+    def learn(
+        cls,
+        spec: ModelSpec,
+        schema: SchemaLike,
+        sample: pl.DataFrame,
+        *,
+        cap: int,
+        indicator_levels: Mapping[str, IndicatorLevel] | None = None,
+        budget: DesignBudget | None = None,
+    ) -> OpenLevelDesign:
+        """Learn everything but the levels (see `DesignBuilder.learn`); `cap` as the attribute."""
+        categorical = tuple(t.column for t in spec.terms if t.kind == "categorical" and t.column)
+        numeric_spec = dataclasses.replace(
+            spec, terms=tuple(t for t in spec.terms if t.kind != "categorical")
+        )
+        # the rows `DesignBuilder.learn` takes a `std(x)` scaling from have every categorical
+        present = _all([present_value(c, schema[c]) for c in categorical])
+        numeric = DesignBuilder.learn(
+            numeric_spec, schema, sample.filter(present), indicator_levels=indicator_levels
+        )
+        dtypes = tuple(schema[c] for c in categorical)
+        return cls(spec, numeric, categorical, dtypes, cap, budget, indicator_levels)
+
+    def new_levels(self) -> list[FoundLevels]:
+        """Return no levels yet for each categorical, to start a part of the pass."""
+        return [
+            FoundLevels(c, dtype) for c, dtype in zip(self.categorical, self.dtypes, strict=True)
+        ]
+
+    def build(self, frame: pl.DataFrame, levels: Sequence[FoundLevels]) -> OpenBatch:
+        """Code one batch, adding the levels it holds for the first time to `levels`.
+
+        Every row with a value in a categorical counts for its level, whatever its other
+        values; rows are then dropped and counted as `DesignBuilder.build` does.
+
+        Raises
+        ------
+        DataError, SpecError
+            As `DesignBuilder.build`; and as `DesignBuilder.learn` when a column's levels
+            pass `cap`.
+        """
+        numeric, c = self.numeric, len(levels)
+        values = numeric._design[int(self.spec.intercept) :]
+        n_values = len(values)
+        found = [lv.present().alias(f"__has_{k}") for k, lv in enumerate(levels)]
+        selected = frame.select(
+            *values,
+            *[lv.code().alias(f"__code_{k}") for k, lv in enumerate(levels)],
+            *found,
+            _all([numeric._masks[0], *found]).alias(_PRESENT),
+            _any(list(numeric._masks[2:])).alias(_DOMAIN),
+        )
+        masks = selected.get_columns()[n_values:]
+        codes = self._found_codes(frame, levels, masks[: 2 * c])
+        present, bad = masks[2 * c].to_numpy(), masks[2 * c + 1].to_numpy()
+        values_frame = selected[:, :n_values]
+        n_missing = n_domain = 0
+        if not (present.all() and not bad.any()):
+            if not self.spec.drop_invalid and (present & bad).any():
+                numeric._drop_rows(frame.filter(pl.Series(present)))  # raises, saying why
+            keep = present & ~bad
+            n_missing = int(np.count_nonzero(~present))
+            n_domain = int(np.count_nonzero(present & bad))
+            values_frame = values_frame.filter(pl.Series(keep))
+            codes = [code[keep] for code in codes]
+        columns = [series.to_numpy() for series in values_frame.get_columns()]
+        overflow = [p - int(self.spec.intercept) for p in numeric._may_overflow]
+        if overflow and not all(np.isfinite(columns[j]).all() for j in overflow):
+            finite = np.logical_and.reduce([np.isfinite(columns[j]) for j in overflow])
+            if not self.spec.drop_invalid:
+                p = len(numeric.column_names)
+                intercept = [np.ones(finite.size)] if self.spec.intercept else []
+                x = np.column_stack([*intercept, *columns[: p - len(intercept)]])
+                numeric._drop_overflow(x, frame)  # raises, naming the terms
+            n_domain += int(np.count_nonzero(~finite))
+            columns = [column[finite] for column in columns]
+            codes = [code[finite] for code in codes]
+        q = n_values - 1 - int(self.spec.weights is not None)
+        return OpenBatch(
+            dense=columns[:q],
+            y=columns[q],
+            weights=columns[q + 1] if self.spec.weights is not None else None,
+            codes=codes,
+            n_dropped_missing=n_missing,
+            n_dropped_domain=n_domain,
+        )
+
+    def count(self, frame: pl.DataFrame, levels: Sequence[FoundLevels]) -> None:
+        """Find and count the levels of rows that are not fitted (rows the user marked)."""
+        selected = frame.select(
+            *[lv.code().alias(f"__code_{k}") for k, lv in enumerate(levels)],
+            *[lv.present().alias(f"__has_{k}") for k, lv in enumerate(levels)],
+        ).get_columns()
+        self._found_codes(frame, levels, selected)
+
+    def _found_codes(
+        self, frame: pl.DataFrame, levels: Sequence[FoundLevels], selected: Sequence[pl.Series]
+    ) -> list[NDArray[np.int64]]:
+        """Each categorical's codes (`selected`: codes, then presence), new levels added."""
+        found = []
+        c = len(levels)
+        for lv, code, has in zip(levels, selected[:c], selected[c : 2 * c], strict=True):
+            codes = code.to_numpy()
+            present = has.to_numpy()
+            new = present & (codes < 0)
+            if new.any():
+                lv.add_new(frame, new)
+                if len(lv) > self.cap:
+                    self._refuse(levels)
+                codes = frame.select(lv.code()).to_series().to_numpy()
+            lv.count(codes[present])
+            found.append(codes)
+        return found
+
+    def _refuse(self, levels: Sequence[FoundLevels]) -> None:
+        """Raise as `DesignBuilder.learn` would for a column whose levels passed `cap`."""
+        tables = {lv.column: lv.table(is_partial=True)[0] for lv in levels}
+        for table in tables.values():
+            if len(table.levels) > self.spec.max_levels:
+                _check_levels(self.spec, table, "the rows read")
+        if self.budget is not None:
+            self.budget.check(self.spec, tables)
+
+    def finish(
+        self, levels: Sequence[FoundLevels], schema: SchemaLike, sample: pl.DataFrame
+    ) -> tuple[DesignBuilder, list[NDArray[np.intp]]]:
+        """Learn the design from the levels found over the pass (see `DesignBuilder.learn`).
+
+        Returns the builder and, per categorical, the design column of each level in the
+        order found (-1 for the reference level).
+        """
+        found = [lv.table() for lv in levels]
+        builder = DesignBuilder.learn(
+            self.spec,
+            schema,
+            sample,
+            level_tables={table.column: table for table, _ in found},
+            indicator_levels=self.indicator_levels,
+            budget=self.budget,
+        )
+        dense_positions, level_positions = builder.coded_positions
+        dense_names = [builder.column_names[i] for i in dense_positions]
+        assert dense_names == list(self.numeric.column_names[int(self.spec.intercept) :])
+        return builder, [
+            positions[natural]
+            for positions, (_, natural) in zip(level_positions, found, strict=True)
+        ]

@@ -97,13 +97,6 @@ class CodedDesign:
         return x
 
 
-def level_sums(factor: IndicatorCodes, values: FloatArray | None) -> FloatArray:
-    """Sum `values` (or count rows, for None) per level of `factor`."""
-    return np.bincount(factor.codes, weights=values, minlength=factor.n_levels).astype(
-        np.float64, copy=False
-    )
-
-
 def coded_gram(
     design: CodedDesign,
     dense_block: Sequence[FloatArray],
@@ -135,37 +128,170 @@ def coded_gram(
     -------
     ndarray of shape (n_cols + n_further, n_cols + n_further)
     """
+    blocks = LevelGram.of_batch(
+        [f.codes for f in design.factors],
+        [f.n_levels for f in design.factors],
+        dense_block,
+        dense_gram,
+        row_weights,
+        has_intercept=design.has_intercept,
+    )
     n_further = len(dense_block) - len(design.dense)
-    size = design.n_cols + n_further
-    # Where each column of the dense Gram goes: intercept, dense columns, further columns.
-    targets = np.concatenate(
-        [
-            [0] if design.has_intercept else np.zeros(0, dtype=np.intp),
-            design.dense_positions,
-            np.arange(design.n_cols, size),
-        ]
-    ).astype(np.intp)
-    gram = np.zeros((size, size))
-    gram[np.ix_(targets, targets)] = dense_gram
-    weighted = [c if row_weights is None else c * row_weights for c in dense_block]
-    for i, factor in enumerate(design.factors):
-        has_column = factor.positions >= 0
-        at = factor.positions[has_column]
-        counts = level_sums(factor, row_weights)[has_column]
-        gram[at, at] = counts
-        if design.has_intercept:
-            gram[0, at] = gram[at, 0] = counts
-        for target, column in zip(targets[int(design.has_intercept) :], weighted, strict=True):
-            sums = level_sums(factor, column)[has_column]
-            gram[target, at] = gram[at, target] = sums
-        for other in design.factors[i + 1 :]:
-            pairs = factor.codes.astype(np.intp, copy=False) * other.n_levels + other.codes
-            table = np.bincount(
-                pairs, weights=row_weights, minlength=factor.n_levels * other.n_levels
-            ).reshape(factor.n_levels, other.n_levels)
-            other_has = other.positions >= 0
-            block = table[np.ix_(has_column, other_has)]
-            other_at = other.positions[other_has]
-            gram[np.ix_(at, other_at)] = block
-            gram[np.ix_(other_at, at)] = block.T
-    return gram
+    further = np.arange(design.n_cols, design.n_cols + n_further, dtype=np.intp)
+    return blocks.assemble(
+        np.concatenate([design.dense_positions, further]).astype(np.intp),
+        [f.positions for f in design.factors],
+        design.n_cols + n_further,
+    )
+
+
+@dataclass(eq=False)
+class LevelGram:
+    """The Gram matrix ``Z' W Z`` of ``[1 | dense block | an indicator of every level]``, in blocks.
+
+    Every level of every categorical has its place, the reference level too (a design leaves
+    one out, chosen later by `assemble`'s positions), so levels can be added as a pass finds
+    them (`grow`) and parts that found different levels can be joined (`add`).
+
+    Attributes
+    ----------
+    dense : ndarray of shape (d, d)
+        Gram matrix of ``[1 | dense block]`` (no ones column without an intercept).
+    counts : list of ndarray of shape (n_levels,)
+        Weighted rows of each level, one array per categorical.
+    sums : list of ndarray of shape (n_levels, m)
+        Weighted sums of each of the m dense-block columns over each level's rows.
+    pairs : dict of (int, int) to ndarray of shape (n_levels_i, n_levels_j)
+        Weighted rows of each pair of levels of two categoricals ``i < j``.
+    has_intercept : bool
+        Whether `dense` starts with the ones column.
+    """
+
+    dense: FloatArray
+    counts: list[FloatArray]
+    sums: list[FloatArray]
+    pairs: dict[tuple[int, int], FloatArray]
+    has_intercept: bool
+
+    @classmethod
+    def of_batch(
+        cls,
+        codes: Sequence[NDArray[np.integer]],
+        n_levels: Sequence[int],
+        dense_block: Sequence[FloatArray],
+        dense_gram: FloatArray,
+        row_weights: FloatArray | None,
+        *,
+        has_intercept: bool,
+    ) -> LevelGram:
+        """Count and sum one batch: `codes` per categorical, `dense_block` as shifted."""
+        weighted = [c if row_weights is None else c * row_weights for c in dense_block]
+        counts, sums = [], []
+        for factor, n in zip(codes, n_levels, strict=True):
+            counts.append(_bincount(factor, row_weights, n))
+            sums.append(np.column_stack([_bincount(factor, c, n) for c in weighted]))
+        pairs = {}
+        for i, first in enumerate(codes):
+            for j in range(i + 1, len(codes)):
+                pair = first.astype(np.intp, copy=False) * n_levels[j] + codes[j]
+                table = _bincount(pair, row_weights, n_levels[i] * n_levels[j])
+                pairs[i, j] = table.reshape(n_levels[i], n_levels[j])
+        return cls(dense_gram, counts, sums, pairs, has_intercept)
+
+    @classmethod
+    def empty(cls, dense_size: int, n_levels: Sequence[int], *, has_intercept: bool) -> LevelGram:
+        """Return blocks of zeros: no rows yet, `dense_size` dense columns (the ones included)."""
+        m = dense_size - int(has_intercept)
+        return cls(
+            np.zeros((dense_size, dense_size)),
+            [np.zeros(n) for n in n_levels],
+            [np.zeros((n, m)) for n in n_levels],
+            {
+                (i, j): np.zeros((n_levels[i], n_levels[j]))
+                for i in range(len(n_levels))
+                for j in range(i + 1, len(n_levels))
+            },
+            has_intercept,
+        )
+
+    @property
+    def n_levels(self) -> list[int]:
+        """Levels of each categorical."""
+        return [c.size for c in self.counts]
+
+    def grow(self, n_levels: Sequence[int]) -> None:
+        """Make room for levels added at the end of each categorical (zero rows so far)."""
+        old = self.n_levels
+        if list(n_levels) == old:
+            return
+        more = [n - k for n, k in zip(n_levels, old, strict=True)]
+        self.counts = [np.pad(c, (0, m)) for c, m in zip(self.counts, more, strict=True)]
+        self.sums = [np.pad(s, ((0, m), (0, 0))) for s, m in zip(self.sums, more, strict=True)]
+        self.pairs = {
+            (i, j): np.pad(t, ((0, more[i]), (0, more[j]))) for (i, j), t in self.pairs.items()
+        }
+
+    def moved(self, delta: FloatArray) -> LevelGram:
+        """Return the blocks in another shift: dense column j gains ``delta[j]`` (intercept only).
+
+        ``Z'`` is ``Z T`` with ``T = I + e0 delta'`` over ``[1 | dense block]``, so the dense
+        Gram takes a rank-2 update, and each level's sums gain its count times ``delta``.
+        """
+        if not self.has_intercept or not delta.any():
+            return self
+        step = np.append(0.0, delta)
+        g0 = self.dense[:, 0]
+        dense = self.dense + np.outer(g0, step) + np.outer(step, g0) + g0[0] * np.outer(step, step)
+        sums = [s + np.outer(c, delta) for s, c in zip(self.sums, self.counts, strict=True)]
+        return LevelGram(dense, list(self.counts), sums, dict(self.pairs), self.has_intercept)
+
+    def add(self, other: LevelGram, where: Sequence[IntArray] | None = None) -> None:
+        """Add another Gram's blocks, in the same shift; `where` puts its levels among ours.
+
+        `where[i][k]` is our level of the other's level k of categorical i (we must have
+        grown to hold them); None when both have the same levels in the same order.
+        """
+        self.dense = self.dense + other.dense
+        if where is None:
+            where = [np.arange(c.size) for c in other.counts]
+        for i, at in enumerate(where):
+            self.counts[i][at] += other.counts[i]
+            self.sums[i][at] += other.sums[i]
+        for (i, j), table in other.pairs.items():
+            self.pairs[i, j][np.ix_(where[i], where[j])] += table
+
+    def assemble(
+        self, dense_positions: IntArray, level_positions: Sequence[IntArray], size: int
+    ) -> FloatArray:
+        """Write the blocks out as one Gram matrix of `size` columns in design order.
+
+        `dense_positions` gives the column of each dense-block column (the ones column, when
+        there is one, goes to column 0); `level_positions[i][k]` the column of level k of
+        categorical i, or -1 for a level without one (the reference).
+        """
+        intercept = [0] if self.has_intercept else []
+        targets = np.concatenate([np.array(intercept, dtype=np.intp), dense_positions])
+        gram = np.zeros((size, size))
+        gram[np.ix_(targets, targets)] = self.dense
+        has, at = [], []
+        for positions in level_positions:
+            has.append(positions >= 0)
+            at.append(positions[positions >= 0])
+        for i, (counts, sums) in enumerate(zip(self.counts, self.sums, strict=True)):
+            kept = counts[has[i]]
+            gram[at[i], at[i]] = kept
+            if self.has_intercept:
+                gram[0, at[i]] = gram[at[i], 0] = kept
+            block = sums[has[i]]
+            gram[np.ix_(dense_positions, at[i])] = block.T
+            gram[np.ix_(at[i], dense_positions)] = block
+        for (i, j), table in self.pairs.items():
+            block = table[np.ix_(has[i], has[j])]
+            gram[np.ix_(at[i], at[j])] = block
+            gram[np.ix_(at[j], at[i])] = block.T
+        return gram
+
+
+def _bincount(codes: NDArray[np.integer], values: FloatArray | None, n: int) -> FloatArray:
+    """Sum `values` (or count rows, for None) per code ``0 .. n - 1``."""
+    return np.bincount(codes, weights=values, minlength=n).astype(np.float64, copy=False)

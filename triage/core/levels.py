@@ -14,10 +14,13 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
+import numpy as np
 import polars as pl
 
 if TYPE_CHECKING:
     from collections.abc import Mapping, Sequence
+
+    from numpy.typing import NDArray
 
     from triage.core.spec import SchemaLike
 
@@ -153,3 +156,95 @@ def count_levels(
     counter = LevelCounter(schema, columns)
     counter.update(frame)
     return counter.finalize()
+
+
+class FoundLevels:
+    """One categorical column's levels in the order a pass met them, with the rows of each.
+
+    A full pass codes each batch against the levels found so far (`code`) and adds the levels
+    it meets for the first time (`add_new`); parts of a pass join with `absorb`, and
+    `table` puts the levels in natural order at the end, as `LevelCounter` would have
+    counted them. The rows counted are those with a usable value in the column.
+
+    Parameters
+    ----------
+    column : str
+        The categorical column.
+    dtype : polars data type
+        Its type (it decides the natural order and which values are usable).
+    """
+
+    def __init__(self, column: str, dtype: pl.DataType | type[pl.DataType]) -> None:
+        self.column = column
+        self.dtype = dtype
+        self.names: list[str] = []
+        self.counts = np.zeros(0, dtype=np.int64)
+        self._values = pl.Series(column, [], dtype=pl.String if dtype == pl.Categorical else dtype)
+        self._index: dict[str, int] = {}
+        self._code: pl.Expr | None = None
+
+    def __len__(self) -> int:
+        return len(self.names)
+
+    def present(self) -> pl.Expr:
+        """Mark the rows with a usable value in the column."""
+        return present_value(self.column, self.dtype)
+
+    def code(self) -> pl.Expr:
+        """Each row's level among those found so far (0, 1, ...), or -1 (missing or new)."""
+        if self._code is None:
+            self._code = (
+                level_text(self.column)
+                .cast(pl.Enum(self.names), strict=False)
+                .to_physical()
+                .cast(pl.Int64)
+                .fill_null(-1)
+            )
+        return self._code
+
+    def add_new(self, frame: pl.DataFrame, rows: NDArray[np.bool_]) -> None:
+        """Add the levels of `frame`'s marked `rows` (present, not yet found), in row order."""
+        new = frame.filter(pl.Series(rows)).select(
+            _sortable(self.column, self.dtype).unique(maintain_order=True).alias(self.column)
+        )
+        self._append(new.to_series())
+
+    def _append(self, values: pl.Series) -> None:
+        names = values.to_frame().select(level_text(self.column)).to_series().to_list()
+        for name in names:
+            self._index[name] = len(self.names)
+            self.names.append(name)
+        self._values = pl.concat([self._values, values])
+        self.counts = np.concatenate([self.counts, np.zeros(len(names), dtype=np.int64)])
+        self._code = None
+
+    def count(self, codes: NDArray[np.int64]) -> None:
+        """Add one row to the level of each code (all found, none missing)."""
+        self.counts += np.bincount(codes, minlength=len(self.names))
+
+    def absorb(self, other: FoundLevels) -> NDArray[np.intp]:
+        """Add another part's levels and counts; return where each of its levels is here."""
+        new = [k for k, name in enumerate(other.names) if name not in self._index]
+        if new:
+            self._append(other._values.gather(new))
+        where = np.array([self._index[name] for name in other.names], dtype=np.intp)
+        self.counts[where] += other.counts
+        return where
+
+    def table(self, *, is_partial: bool = False) -> tuple[LevelTable, NDArray[np.intp]]:
+        """Return the levels in natural order, and the natural position of each level as found."""
+        order = (
+            pl.DataFrame({self.column: self._values, _COUNT: np.arange(len(self.names))})
+            .sort(self.column, nulls_last=True)
+            .get_column(_COUNT)
+            .to_numpy()
+        )
+        position = np.empty(len(order), dtype=np.intp)
+        position[order] = np.arange(len(order))
+        table = LevelTable(
+            self.column,
+            tuple(self.names[k] for k in order),
+            tuple(int(self.counts[k]) for k in order),
+            is_partial,
+        )
+        return table, position

@@ -498,7 +498,10 @@ class _Parser:
         if self.token.kind == "level":
             indicator = _indicator_term(token.text, self.advance().text)
             if self.at("^"):
-                msg = f"`^` applies to a numeric column, not to the indicator `{indicator.label}`"
+                msg = (
+                    f"`^` applies to a numeric column, not to the indicator "
+                    f"`{indicator.label}`; its powers are itself"
+                )
                 raise SpecError(msg)
             return indicator
         quoted = self.text[token.start] == "`"
@@ -850,7 +853,10 @@ def indicator_value(
         return level, level
     if dtype == pl.Boolean:
         if level.lower() not in {"true", "false"}:
-            msg = f"`{column}` is true or false, so `{shown}` must read `{column}=true` or `=false`"
+            msg = (
+                f"`{column}` is true or false, not `{level}` (in `{shown}`); write "
+                f"`{indicator_name(column, 'true')}` or `{indicator_name(column, 'false')}`"
+            )
             raise SpecError(msg)
         return level.lower() == "true", level.lower()
     read: Callable[[str], object]
@@ -871,12 +877,18 @@ def indicator_value(
     try:
         value = read(level)
     except ValueError:
-        msg = f"the level in `{shown}` must be {kind}, as `{column}` has type {dtype}"
+        msg = (
+            f"the level in `{shown}` must be {kind}, as `{column}` has type {dtype}; "
+            "write it as the column's values read"
+        )
         raise SpecError(msg) from None
     try:
         text = pl.Series([value]).cast(dtype).cast(pl.String).item()
     except (OverflowError, pl.exceptions.PolarsError):
-        msg = f"the level in `{shown}` is outside the range of `{column}`, of type {dtype}"
+        msg = (
+            f"the level in `{shown}` is outside the range of `{column}`, of type {dtype}; "
+            "no row can hold it"
+        )
         raise SpecError(msg) from None
     return value, str(text)
 

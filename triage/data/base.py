@@ -23,6 +23,7 @@ import pyarrow as pa
 from triage.core.design import ROW_INDEX
 from triage.core.filter import closest_names_hint
 from triage.data import hooks
+from triage.data.remote import FileName, file_name, is_url
 from triage.data.snapshot import FileStamp, SourceSnapshot, being_read, changed_message
 from triage.errors import SourceChanged, SourceError, SpecError, TriageError
 
@@ -65,8 +66,8 @@ class Source(Protocol):
     """A table on disk read in bounded batches; rows are named by their position."""
 
     @property
-    def path(self) -> Path:
-        """The path (file, directory or glob) the source was opened from."""
+    def path(self) -> FileName:
+        """The path (file, directory or glob) or the URL the source was opened from."""
         ...
 
     @property
@@ -75,7 +76,7 @@ class Source(Protocol):
         ...
 
     @property
-    def files(self) -> tuple[Path, ...]:
+    def files(self) -> tuple[FileName, ...]:
         """The files read, in the order their rows are numbered."""
         ...
 
@@ -131,13 +132,13 @@ class Source(Protocol):
 
 
 @contextlib.contextmanager
-def reading(path: Path, kind: str) -> Iterator[None]:
+def reading(path: FileName, kind: str) -> Iterator[None]:
     """Turn a reader's exception into a one-line `SourceError` naming `path`.
 
     Parameters
     ----------
-    path : Path
-        The file or folder being read.
+    path : Path or str
+        The file or folder (or URL) being read.
     kind : str
         The format in words (``"Parquet"``), for the advice in the message.
 
@@ -202,6 +203,11 @@ def with_positions(frame: pl.DataFrame, positions: np.ndarray | range) -> pl.Dat
     else:
         index = pl.DataFrame({ROW_INDEX: np.asarray(positions, dtype=np.int64)})
     return index if frame.width == 0 else index.hstack(frame)
+
+
+def arrow_schema_types(schema: pa.Schema) -> dict[str, pl.DataType]:
+    """Return the polars types of the columns of an Arrow `schema` (as a read converts them)."""
+    return dict(pl.DataFrame(schema.empty_table()).schema)
 
 
 def block_positions(blocks: np.ndarray, offsets: np.ndarray) -> np.ndarray:
@@ -351,7 +357,7 @@ def apply_filter(frame: pl.DataFrame, where: pl.Expr | None, extra: Sequence[str
 
 
 def filter_frames(
-    frames: Iterable[pl.DataFrame], where: pl.Expr | None, extra: Sequence[str], *, path: Path
+    frames: Iterable[pl.DataFrame], where: pl.Expr | None, extra: Sequence[str], *, path: FileName
 ) -> Iterator[Batch]:
     """Filter raw frames (dropping the filter's own columns), counting the rows read.
 
@@ -398,7 +404,7 @@ class FilePart(abc.ABC):
     kind: ClassVar[str]
     """The format in words, for messages (``"Parquet"``)."""
     path: str
-    """The file, as an absolute path (a worker's working folder may differ)."""
+    """The file, as an absolute path (a worker's working folder may differ), or its URL."""
     start: int
     """Position in the source of the part's first row."""
     columns: tuple[str, ...]
@@ -413,6 +419,11 @@ class FilePart(abc.ABC):
 
     Not its device and inode, which differ between machines that mount the same storage.
     """
+
+    @property
+    def file(self) -> FileName:
+        """The file: a `Path`, or the URL as text."""
+        return self.path if is_url(self.path) else Path(self.path)
 
     @property
     @abc.abstractmethod
@@ -434,7 +445,7 @@ class FilePart(abc.ABC):
         SourceError
             When the file cannot be read.
         """
-        path = Path(self.path)
+        path = self.file
         self._check_unchanged(path)
         rows_read = 0
         try:
@@ -449,7 +460,7 @@ class FilePart(abc.ABC):
         if self.rows is not None and rows_read != self.rows:
             raise SourceChanged(changed_message(path))
 
-    def _check_unchanged(self, path: Path) -> None:
+    def _check_unchanged(self, path: FileName) -> None:
         if self.stamp is None:
             return
         now = FileStamp.of(path)
@@ -460,7 +471,7 @@ class FilePart(abc.ABC):
 
 
 def part_fields(
-    path: Path,
+    path: FileName,
     columns: Sequence[str],
     schema: dict[str, pl.DataType],
     *,
@@ -475,7 +486,7 @@ def part_fields(
     and modification time.
     """
     return {
-        "path": os.path.abspath(path),
+        "path": path if isinstance(path, str) else os.path.abspath(path),
         "columns": tuple(columns),
         "schema": {name: schema[name] for name in columns},
         "where": where,
@@ -511,7 +522,7 @@ class BlockSource(abc.ABC):
     _block_unit: str
     """What a block is called in sample descriptions, plural, e.g. ``"row groups"``."""
 
-    def __init__(self, path: Path) -> None:
+    def __init__(self, path: FileName) -> None:
         self._path = path
         self._schema: dict[str, pl.DataType] | None = None
         self._snapshot = SourceSnapshot(self.files)
@@ -523,7 +534,7 @@ class BlockSource(abc.ABC):
         return self._snapshot
 
     @contextlib.contextmanager
-    def _unchanged(self, files: Sequence[Path]) -> Iterator[None]:
+    def _unchanged(self, files: Sequence[FileName]) -> Iterator[None]:
         """Check `files` against the snapshot before and after the block.
 
         A read that fails inside the block is reported as the file's change when one of
@@ -540,12 +551,12 @@ class BlockSource(abc.ABC):
         self._snapshot.check_files(files)
 
     @property
-    def path(self) -> Path:
-        """The path (file, directory or glob) the source was opened from."""
+    def path(self) -> FileName:
+        """The path (file, directory or glob) or the URL the source was opened from."""
         return self._path
 
     @property
-    def files(self) -> tuple[Path, ...]:
+    def files(self) -> tuple[FileName, ...]:
         """The files read, in the order their rows are numbered."""
         return (self._path,)
 
@@ -822,7 +833,7 @@ class BlockSource(abc.ABC):
                 continue
             if name not in schema:
                 hint = closest_names_hint(name, schema)
-                msg = f"unknown column `{name}` in `{self._path.name}`{hint}"
+                msg = f"unknown column `{name}` in `{file_name(self._path)}`{hint}"
                 raise SpecError(msg)
             names.append(name)
         return names

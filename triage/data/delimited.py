@@ -121,6 +121,7 @@ class CsvSource(BlockSource):
 
     def __init__(self, path: Path, options: CsvOptions) -> None:
         super().__init__(path)
+        self._file = path
         self._options = options
         self._separator = _separator_for(path, options)
         self.schema()
@@ -129,11 +130,11 @@ class CsvSource(BlockSource):
     def description(self) -> str:
         """One line naming the file, its separator and the row-count cost."""
         shown = "tab" if self._separator == "\t" else f"`{self._separator}`"
-        return f"{self._path.name}: CSV, separator {shown}, rows counted by a scan"
+        return f"{self._file.name}: CSV, separator {shown}, rows counted by a scan"
 
     def _lazy(self) -> pl.LazyFrame:
         self.snapshot.check_file(self._path)
-        return scan_delimited(self._path, self._separator, self._options)
+        return scan_delimited(self._file, self._separator, self._options)
 
     def _read_schema(self) -> dict[str, pl.DataType]:
         return dict(self._lazy().collect_schema())

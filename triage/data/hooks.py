@@ -10,10 +10,11 @@ from __future__ import annotations
 import os
 import threading
 from collections.abc import Callable
-from pathlib import Path
 from typing import Final
 
-BatchHook = Callable[[Path, int], None]
+from triage.data.remote import FileName
+
+BatchHook = Callable[[FileName, int], None]
 """Called with the source path and the batch's number (1 for the first of the process)."""
 
 PAUSE_ENVIRONMENT: Final = "TRIAGE_TEST_PAUSE_AT_BATCH"
@@ -38,7 +39,7 @@ def _pause_from_environment() -> BatchHook | None:
         return None
     at, write_fd, read_fd = (int(part) for part in text.split(","))
 
-    def pause(path: Path, batch: int) -> None:
+    def pause(path: FileName, batch: int) -> None:
         if batch == at:
             os.write(write_fd, b"k")
             os.read(read_fd, 1)
@@ -46,7 +47,7 @@ def _pause_from_environment() -> BatchHook | None:
     return pause
 
 
-def batch_read(path: Path) -> None:
+def batch_read(path: FileName) -> None:
     """Count one batch read from `path` and call the hook, if any, on the reading thread."""
     global _hook, _batches, _is_environment_read
     if _is_environment_read and _hook is None:

@@ -14,8 +14,8 @@ import os
 import threading
 from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
-from pathlib import Path
 
+from triage.data.remote import FileName, url_version
 from triage.errors import SourceChanged
 
 
@@ -32,8 +32,11 @@ class FileStamp:
     inode: int
 
     @classmethod
-    def of(cls, path: Path) -> FileStamp | None:
-        """Stat `path`; None when it no longer exists."""
+    def of(cls, path: FileName) -> FileStamp | None:
+        """Stat `path` (a URL: ask its store); None when it no longer exists."""
+        if isinstance(path, str):
+            found = url_version(path)
+            return None if found is None else cls(*found, inode=0)
         try:
             info = os.stat(path)
         except FileNotFoundError:
@@ -41,7 +44,7 @@ class FileStamp:
         return cls(info.st_size, info.st_mtime_ns, info.st_ino)
 
 
-def changed_message(path: Path, *, how: str = "changed") -> str:
+def changed_message(path: FileName, *, how: str = "changed") -> str:
     """Return the one-line message for a file that changed under a read."""
     return (
         f"`{path}` {how} while it was being read; nothing was written; run again when it is stable"
@@ -53,7 +56,7 @@ class SourceSnapshot:
 
     Parameters
     ----------
-    files : sequence of Path
+    files : sequence of FileName
         The files the source reads.
 
     Raises
@@ -62,23 +65,23 @@ class SourceSnapshot:
         Never here; a missing file is reported when the source opens it.
     """
 
-    def __init__(self, files: Sequence[Path]) -> None:
+    def __init__(self, files: Sequence[FileName]) -> None:
         self._stamps = {path: FileStamp.of(path) for path in files}
 
     @property
-    def files(self) -> tuple[Path, ...]:
+    def files(self) -> tuple[FileName, ...]:
         """The files recorded, in source order."""
         return tuple(self._stamps)
 
-    def stamp(self, path: Path) -> FileStamp | None:
+    def stamp(self, path: FileName) -> FileStamp | None:
         """Return the stamp of `path` taken at opening (None if it was not recorded or missing)."""
         return self._stamps.get(path)
 
-    def is_unchanged(self, path: Path) -> bool:
+    def is_unchanged(self, path: FileName) -> bool:
         """Whether `path` still matches its stamp (a file not recorded counts as unchanged)."""
         return path not in self._stamps or FileStamp.of(path) == self._stamps[path]
 
-    def check_file(self, path: Path) -> None:
+    def check_file(self, path: FileName) -> None:
         """Raise `SourceChanged` if `path` differs from its stamp (a file not recorded passes).
 
         Raises
@@ -88,10 +91,10 @@ class SourceSnapshot:
         """
         if self.is_unchanged(path):
             return
-        how = "was removed" if not path.exists() else "changed"
+        how = "was removed" if FileStamp.of(path) is None else "changed"
         raise SourceChanged(changed_message(path, how=how))
 
-    def check_files(self, paths: Iterable[Path]) -> None:
+    def check_files(self, paths: Iterable[FileName]) -> None:
         """Check each of `paths` in turn (see `check_file`)."""
         for path in paths:
             self.check_file(path)
@@ -100,7 +103,9 @@ class SourceSnapshot:
         """Check every recorded file."""
         self.check_files(self._stamps)
 
-    def check_rows(self, rows_read: int, rows_expected: int | None, files: Iterable[Path]) -> None:
+    def check_rows(
+        self, rows_read: int, rows_expected: int | None, files: Iterable[FileName]
+    ) -> None:
         """Raise `SourceChanged` when a finished scan of `files` read other than the rows promised.
 
         The files are checked first, so the message names the one that changed; if none
@@ -112,7 +117,7 @@ class SourceSnapshot:
             Rows the scan read, before any filter.
         rows_expected : int or None
             Rows the metadata promised when the source was opened; None skips the check.
-        files : iterable of Path
+        files : iterable of FileName
             The files the scan read.
         """
         files = list(files)
@@ -123,13 +128,13 @@ class SourceSnapshot:
 
 
 _reading_lock = threading.Lock()
-_reading: dict[tuple[int, Path], int] = {}
+_reading: dict[tuple[int, FileName], int] = {}
 """(snapshot id, file) -> reads of it under way (`changed_file_being_read` reads it unlocked)."""
 _snapshots: dict[int, SourceSnapshot] = {}
 
 
 @contextlib.contextmanager
-def being_read(snapshot: SourceSnapshot, files: Sequence[Path]) -> Iterator[None]:
+def being_read(snapshot: SourceSnapshot, files: Sequence[FileName]) -> Iterator[None]:
     """Record that `files` of `snapshot` are being read during the block (see `bus_guard`)."""
     keys = [(id(snapshot), path) for path in files]
     with _reading_lock:
@@ -148,7 +153,7 @@ def being_read(snapshot: SourceSnapshot, files: Sequence[Path]) -> Iterator[None
                 _snapshots.pop(id(snapshot), None)
 
 
-def changed_file_being_read() -> Path | None:
+def changed_file_being_read() -> FileName | None:
     """Return a file being read now that changed since it was opened, else any file being read.
 
     Called from the bus-error guard, where a lock could be held by the thread that faulted:

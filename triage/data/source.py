@@ -19,12 +19,14 @@ import glob
 import os
 from pathlib import Path
 from typing import Final
+from urllib.parse import urlsplit
 
 from triage.core.design import ROW_INDEX
 from triage.data.base import Batch, BlockSource, Sample, Source
 from triage.data.delimited import CsvOptions, CsvSource
 from triage.data.ipc import IpcSource
 from triage.data.parquet import ParquetDatasetSource, ParquetFileSource
+from triage.data.remote import is_url, url_info, url_name
 from triage.errors import SourceError
 
 __all__ = [
@@ -70,8 +72,9 @@ def open_source(path: str | os.PathLike[str], *, csv: CsvOptions = DEFAULT_CSV_O
     path : str or PathLike
         A ``.parquet``/``.pq`` file; a folder of Parquet files (hive-style ``key=value``
         subfolders become columns); a glob of Parquet files (``data/*.parquet``,
-        ``data/**/*.parquet``); a ``.csv``/``.tsv``/``.txt`` file, optionally ``.gz``; or an
-        Arrow IPC file (``.arrow``/``.feather``/``.ipc``).
+        ``data/**/*.parquet``); a ``.csv``/``.tsv``/``.txt`` file, optionally ``.gz``; an
+        Arrow IPC file (``.arrow``/``.feather``/``.ipc``); or the URL of a Parquet or Arrow
+        IPC file (``s3://``, ``https://``, ``file://``: any that fsspec opens).
     csv : CsvOptions, default=DEFAULT_CSV_OPTIONS
         How to parse delimited text; ignored for other kinds.
 
@@ -86,6 +89,8 @@ def open_source(path: str | os.PathLike[str], *, csv: CsvOptions = DEFAULT_CSV_O
         cannot be read.
     """
     text = os.fspath(path)
+    if is_url(text):
+        return _open_url(text)
     target = Path(text).expanduser()
     if any(c in text for c in _GLOB_CHARS) and not target.exists():
         return _open_glob(target)
@@ -110,6 +115,23 @@ def open_source(path: str | os.PathLike[str], *, csv: CsvOptions = DEFAULT_CSV_O
         f"use one of {known}, or a folder of Parquet files"
     )
     raise SourceError(msg)
+
+
+def _open_url(url: str) -> Source:
+    """Open one Parquet or Arrow IPC file named by a URL (through fsspec)."""
+    name = url_name(url).lower()
+    is_glob = any(c in urlsplit(url).path for c in _GLOB_CHARS)
+    if is_glob or not name.endswith(PARQUET_SUFFIXES + IPC_SUFFIXES):
+        msg = (
+            f"`{url}`: a URL must name one Parquet (`.parquet`, `.pq`) or Arrow IPC "
+            "(`.arrow`, `.feather`, `.ipc`) file, whose metadata says where its rows are; "
+            "copy a CSV file, a folder or a glob to a local or mounted disk"
+        )
+        raise SourceError(msg)
+    if url_info(url) is None:
+        msg = f"`{url}` does not exist; check the URL"
+        raise SourceError(msg)
+    return ParquetFileSource(url) if name.endswith(PARQUET_SUFFIXES) else IpcSource(url)
 
 
 def _is_parquet(path: Path) -> bool:

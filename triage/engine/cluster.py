@@ -27,8 +27,9 @@ from types import TracebackType
 from typing import TYPE_CHECKING, Any, Final, Generic, Self, TypeVar
 
 from triage.data.base import FilePart
+from triage.data.remote import is_url, url_info
 from triage.engine.passes import RowCounts, counted_frames, fold_each_frame, fold_part
-from triage.errors import ClusterError, TriageError
+from triage.errors import ClusterError, SourceError, TriageError
 
 if TYPE_CHECKING:
     import numpy as np
@@ -103,9 +104,22 @@ def pass_job_task(job: PassJob[S]) -> PassJob[S]:
     return job
 
 
-def missing_files(paths: Sequence[str]) -> str | None:
-    """Return the first of `paths` this process cannot see, or None (run on every worker)."""
-    return next((path for path in paths if not os.path.exists(path)), None)
+def unseen_file(paths: Sequence[str]) -> str | None:
+    """Say why this process cannot read the first of `paths` it cannot, or None (on every worker).
+
+    A local path must exist; a URL must open through fsspec (its store is asked for it).
+    """
+    for path in paths:
+        if not is_url(path):
+            if not os.path.exists(path):
+                return f"cannot see `{path}`"
+            continue
+        try:
+            if url_info(path) is None:
+                return f"cannot find `{path}`"
+        except SourceError as error:
+            return str(error)
+    return None
 
 
 def merge_tree(leaves: Sequence[T], merge_pair: Callable[[T, T], T]) -> T:
@@ -241,7 +255,7 @@ class ClusterEngine:
         if not paths:
             return
         try:
-            answers = client.run(missing_files, paths)
+            answers = client.run(unseen_file, paths)
         except Exception as error:  # the scheduler or a worker went away: one line
             msg = f"the cluster at `{self.address}` did not answer ({_first_line(error)})"
             raise ClusterError(msg) from None
@@ -251,12 +265,12 @@ class ClusterEngine:
                 f"start some with `dask worker {self.address}`"
             )
             raise ClusterError(msg)
-        for worker, missing in sorted(answers.items()):
-            if missing is not None:
+        for worker, why in sorted(answers.items()):
+            if why is not None:
                 msg = (
-                    f"the cluster's worker {worker} cannot see `{missing}`; a pass on a cluster "
-                    "reads the data where the workers run: put it on storage every worker "
-                    "mounts at the same path"
+                    f"the cluster's worker {worker} {why}; a pass on a cluster reads the data "
+                    "where the workers run: put it on storage every worker mounts at the same "
+                    "path, or give a URL every worker can open"
                 )
                 raise ClusterError(msg)
 

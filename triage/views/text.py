@@ -476,7 +476,7 @@ def render_aliased(fit: LinearFit, *, width: int = 100) -> str:
 
     A column that is an exact combination of others is aliased; a column that is 0 in
     every row used (a level whose rows were all left out, for a missing value in another
-    column, a mark or a filter) has no rows to estimate it from, and says so apart.
+    column, a mark or a held-out split) has no rows to estimate it from, and says so apart.
 
     Parameters
     ----------
@@ -505,8 +505,8 @@ def render_aliased(fit: LinearFit, *, width: int = 100) -> str:
             (
                 "terms with no rows left",
                 f"{NO_ROWS_LEFT}: these columns are 0 in every row used (every row of the "
-                "level was left out, for a missing value in another column, a mark, the "
-                "filter or a held-out split), so they got no estimate:",
+                "level was left out, for a missing value in another column, a mark or a "
+                "held-out split), so they got no estimate:",
                 fit.no_rows,
             )
         )

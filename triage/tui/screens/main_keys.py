@@ -137,7 +137,10 @@ MAIN_BINDINGS: Final[list[BindingType]] = [
         "type terms",
         show=False,
         id="edit-terms",
-        tooltip="Type the terms, e.g. distance_km, log(stops), depot, or y ~ a + b.",
+        tooltip=(
+            "Type the terms, e.g. distance_km, log(stops), depot (an indicator per level), "
+            "depot=north (that level's alone), or y ~ a + b."
+        ),
     ),
     Binding(
         "s",

@@ -192,7 +192,7 @@ class ColumnsPane(Pane):
         parts = []
         term = draft.term_of(name)
         if term is not None:
-            parts.append(term.label if term.transform else "term")
+            parts.append(term.label if term.transform or term.kind == "indicator" else "term")
         elif any(name in t.columns for t in draft.terms):
             parts.append("in :")
         if draft.weights == name:
