@@ -39,6 +39,7 @@ from distributed.client import FutureCancelledError
 from threadpoolctl import threadpool_limits
 
 from tests import tui_support
+from tests.test_readme_claims import README, said
 from tests.tui_support import build_app, press_id, settle, wait_until
 from triage._typing import ALL_ROWS
 from triage.core.spec import build_spec
@@ -307,6 +308,11 @@ def test_cluster_csv_and_ipc_equal_local_engine(
     # cut otherwise, is an outside check: the same positions, and the same coefficients to
     # the rounding of sums taken in another order (n * eps = 240,000 * 1.1e-16, about 2.7e-11
     # relative: LRE 10 or better; 10.9 was measured for the CSV file here).
+    said(
+        "A table of one task is folded batch by batch in the local engine's tree, so its "
+        "results too are the local engine's bit for bit.",
+        README,
+    )
     source = open_source(other_formats[kind])
     parts = source.scan_parts(["minutes"])
     assert len(parts) == {"csv": 1, "ipc": 8}[kind]
@@ -383,6 +389,7 @@ def test_cluster_url_sources_equal_local_engine_on_a_plain_path(
 ) -> None:
     # The workers open the URL themselves (fsspec); the parts are those of the plain file,
     # so both engines on the URL and the local engine on the path give the same bits.
+    said("or at a URL that every worker can open. A URL names one Parquet or Arrow IPC", README)
     path = other_formats["csv"].parent / name
     url = f"{served}/{name}" if scheme == "http" else path.as_uri()
     plain, remote = open_source(path), open_source(url)
@@ -401,6 +408,11 @@ def test_url_source_opens_on_its_metadata_alone(
 ) -> None:
     # Opening a URL fetches the footer (and an IPC file's record batch headers), not rows:
     # the byte ranges the server sent add up to a small share of the file.
+    said(
+        "pyarrow reads a URL through fsspec in byte ranges: the footer (and an Arrow IPC "
+        "file's record batch headers) when the file opens",
+        README,
+    )
     size = (other_formats["csv"].parent / name).stat().st_size
     _RangeHandler.ranges.clear()
     source = open_source(f"{served}/{name}")
@@ -414,6 +426,11 @@ def test_cluster_url_the_workers_cannot_open_is_named_in_one_line(
     # fsspec's memory store lives in each process: this process sees the file, no worker does.
     import fsspec
 
+    said(
+        "Before a pass triage asks every worker whether it can read every file or URL, and "
+        "stops with one line naming the first worker and file that it cannot.",
+        README,
+    )
     url = "memory://triage-test/deliveries.parquet"
     with fsspec.open(url, "wb") as sink:
         pl.read_parquet(sorted(folder.glob("*.parquet"))[0]).write_parquet(sink)

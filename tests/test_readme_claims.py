@@ -24,8 +24,9 @@ from triage._typing import ALL_ROWS
 from triage.cli.main import build_parser, main
 from triage.core.spec import build_spec
 from triage.data.scenario import planted_positions
-from triage.data.source import open_source
+from triage.data.source import ROW_INDEX, open_source
 from triage.engine.passes import run_report
+from triage.errors import SourceError
 from triage.results.fit import ReportOutcome
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -256,11 +257,71 @@ def test_readme_usage_example_runs_from_the_repository_root(
         assert Path(written).stat().st_size > 0
 
 
+def test_readme_columns_pane_sample_and_every_row_maximum() -> None:
+    # Oracle: polars on the whole bundled file; the sample is the app's own profile.
+    from triage.engine.passes import fit_model
+    from triage.tui.head_start import open_and_profile
+    from triage.tui.settings import Settings
+
+    said("the sample's highest `minutes` is `~8430`", README)
+    said("the model's columns from every row, unmarked (`10260`)", README)
+    opened = open_and_profile(str(DEMO), csv=None, seed=Settings().seed)
+    profile = {row["name"]: row for row in opened.profile.iter_rows(named=True)}
+    assert round(profile["minutes"]["high"]) == 8430
+    spec = build_spec(opened.source.schema(), target="minutes", terms=TOUR_TERMS)
+    figures = fit_model(opened.source, spec, rows=ALL_ROWS).column_figures
+    every_row = next(f for f in figures if f.name == "minutes")
+    assert every_row.high == pl.read_parquet(DEMO)["minutes"].max() == 10260
+
+
 def test_readme_names_every_command() -> None:
     from triage.cli.main import COMMANDS
 
     named = {argv[1] for argv in USAGE}
     assert set(COMMANDS) <= named
+
+
+# ── running on a cluster (the claims that need a LocalCluster are in test_cluster.py) ───────
+
+
+def test_readme_cluster_tasks_per_source(tmp_path: Path) -> None:
+    said(
+        "Parquet (a file, folder or glob) gives a task per file, or per run of row groups "
+        "of at least 500,000 rows; an Arrow IPC file a task per run of record batches of at "
+        "least 500,000 rows. Each task knows the position of its first row from the "
+        "metadata, so row positions are those of the whole table. A CSV file is one task",
+        README,
+    )
+    import pyarrow as pa
+    import pyarrow.ipc as ipc
+
+    from triage.data.scenario import iter_scenario
+
+    # the demo table, sorted by delivery id, in blocks of 200,000 rows: runs of 3 blocks
+    frame = pl.concat(iter_scenario(1_200_000, seed=3)).select("delivery_id", "depot")
+    frame.write_parquet(tmp_path / "d.parquet", row_group_size=200_000)
+    table = frame.to_arrow().combine_chunks()
+    with pa.OSFile(str(tmp_path / "d.arrow"), "wb") as sink, ipc.new_file(sink, table.schema) as w:
+        w.write_table(table, max_chunksize=200_000)
+    frame.head(1_000).write_csv(tmp_path / "d.csv")
+    for name, starts in [("d.parquet", [0, 600_000]), ("d.arrow", [0, 600_000]), ("d.csv", [0])]:
+        parts = open_source(tmp_path / name).scan_parts(["delivery_id"])
+        assert [part.start for part in parts] == starts, name  # type: ignore[attr-defined]
+        first_rows = [next(iter(part())).frame[ROW_INDEX][0] for part in parts]
+        assert first_rows == starts, name
+
+
+def test_readme_urls_name_one_parquet_or_ipc_file(tmp_path: Path) -> None:
+    said("A URL names one Parquet or Arrow IPC file in any store fsspec opens", README)
+    said("A CSV file, a folder or a glob is read from a disk, not from a URL.", README)
+    pl.DataFrame({"code": [3, 1, 2], "depot": ["north", "north", None]}).write_csv(
+        tmp_path / "d.csv"
+    )
+    for url in [(tmp_path / "d.csv").as_uri(), f"{tmp_path.as_uri()}/*.parquet"]:
+        with pytest.raises(SourceError, match="must name one Parquet"):
+            open_source(url)
+    pl.read_csv(tmp_path / "d.csv").write_parquet(tmp_path / "d.parquet")
+    assert open_source((tmp_path / "d.parquet").as_uri()).row_count() == 3
 
 
 # ── legibility at 80 columns ─────────────────────────────────────────────────────────────

@@ -19,6 +19,7 @@ import glob
 import os
 from pathlib import Path
 from typing import Final
+from urllib.parse import urlsplit
 
 from triage.core.design import ROW_INDEX
 from triage.data.base import Batch, BlockSource, Sample, Source
@@ -119,7 +120,8 @@ def open_source(path: str | os.PathLike[str], *, csv: CsvOptions = DEFAULT_CSV_O
 def _open_url(url: str) -> Source:
     """Open one Parquet or Arrow IPC file named by a URL (through fsspec)."""
     name = url_name(url).lower()
-    if not name.endswith(PARQUET_SUFFIXES + IPC_SUFFIXES):
+    is_glob = any(c in urlsplit(url).path for c in _GLOB_CHARS)
+    if is_glob or not name.endswith(PARQUET_SUFFIXES + IPC_SUFFIXES):
         msg = (
             f"`{url}`: a URL must name one Parquet (`.parquet`, `.pq`) or Arrow IPC "
             "(`.arrow`, `.feather`, `.ipc`) file, whose metadata says where its rows are; "
