@@ -21,7 +21,15 @@ from textual.command import CommandList, CommandPalette
 from textual.widgets import Static
 
 from tests import tui_support
-from tests.tui_support import build_app, key_for, notifications, press_id, settle, wait_until
+from tests.tui_support import (
+    build_app,
+    key_for,
+    notifications,
+    press_id,
+    screen_text,
+    settle,
+    wait_until,
+)
 from triage._typing import CRITERIA
 from triage.tui.screens.dialogs import ErrorScreen, PromptScreen, TextScreen
 from triage.tui.screens.export import ExportScreen
@@ -623,6 +631,40 @@ async def test_tui_bad_term_shows_a_message_the_user_dismisses(
         await press_id(pilot, "close-dialog")
         assert isinstance(app.screen, MainScreen)
         assert app.is_running
+
+
+async def test_tui_typed_indicator_terms_fit_as_statsmodels_and_show_by_name(
+    config_home: Path, demo_file: Path
+) -> None:
+    # Oracle: statsmodels OLS on the fit's sample rows with the indicators made by hand.
+    app = build_app(demo_file, sample_rows=SAMPLE_ROWS)
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        await press_id(pilot, "edit-terms")
+        app.screen.query_one("#prompt-input").value = "minutes ~ distance_km + depot[east] + hour=8"
+        await pilot.press("enter")
+        await settle(pilot)
+        fit = main_screen(app).current
+        assert fit is not None
+        outcome = fit.report.outcome
+        assert outcome.fit.names == ("intercept", "distance_km", "depot=east", "hour=8")
+        rows = outcome.sample.with_columns(
+            (pl.col("depot") == "east").cast(pl.Float64).alias("east"),
+            (pl.col("hour") == 8).cast(pl.Float64).alias("eight"),
+        )
+        oracle = ols(rows, "minutes", ["distance_km", "east", "eight"])
+        np.testing.assert_allclose(outcome.fit.coef, oracle.params, rtol=1e-8)
+        await press_id(pilot, "pane-columns")
+        await settle(pilot)
+        hour_line = next(line for line in screen_text(app).split("\n") if " hour " in line)
+        assert "hour=8" in hour_line  # the Columns pane names the term on `hour`
+        await press_id(pilot, "edit-terms")
+        app.screen.query_one("#prompt-input").value = "minutes ~ distance_km + depot=eest"
+        await pilot.press("enter")
+        await settle(pilot)
+        assert isinstance(app.screen, ErrorScreen)
+        assert "`depot` has no level `eest`" in app.screen.message
+        assert "`east`" in app.screen.message
 
 
 async def test_tui_bad_filter_and_unreadable_file_show_messages(
