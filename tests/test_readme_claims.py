@@ -257,6 +257,23 @@ def test_readme_usage_example_runs_from_the_repository_root(
         assert Path(written).stat().st_size > 0
 
 
+def test_readme_columns_pane_sample_and_every_row_maximum() -> None:
+    # Oracle: polars on the whole bundled file; the sample is the app's own profile.
+    from triage.engine.passes import fit_model
+    from triage.tui.head_start import open_and_profile
+    from triage.tui.settings import Settings
+
+    said("the sample's highest `minutes` is `~8430`", README)
+    said("the model's columns from every row, unmarked (`10260`)", README)
+    opened = open_and_profile(str(DEMO), csv=None, seed=Settings().seed)
+    profile = {row["name"]: row for row in opened.profile.iter_rows(named=True)}
+    assert round(profile["minutes"]["high"]) == 8430
+    spec = build_spec(opened.source.schema(), target="minutes", terms=TOUR_TERMS)
+    figures = fit_model(opened.source, spec, rows=ALL_ROWS).column_figures
+    every_row = next(f for f in figures if f.name == "minutes")
+    assert every_row.high == pl.read_parquet(DEMO)["minutes"].max() == 10260
+
+
 def test_readme_names_every_command() -> None:
     from triage.cli.main import COMMANDS
 
