@@ -8,6 +8,7 @@ unweighted residuals (see the module docstring of triage.core.diagnostics).
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import math
 
@@ -26,8 +27,9 @@ from triage.core.design import DesignBatch
 from triage.core.diagnostics import DiagnosticsAccumulator
 from triage.core.diagnostics_config import DiagnosticsConfig, default_config
 from triage.core.flag_rules import poisson_at_least
-from triage.core.lsq import LinearFit, QRAccumulator
+from triage.core.lsq import LinearFit, QRAccumulator, UncertifiedGram
 from triage.core.moments import StreamMoments
+from triage.core.residual_tests import TESTS_FROM_FIT_MAX_CONDITION
 from triage.core.row_values import row_diagnostics
 from triage.core.worst_rows import TopRows
 from triage.errors import SpecError
@@ -194,9 +196,14 @@ def test_row_diagnostics_leverage_one_and_no_residual_df_give_nan() -> None:
 # --------------------------------------------------------------------------- tests, HC, histogram
 
 
-def test_diagnostics_tests_and_robust_se_match_statsmodels(case) -> None:
+@pytest.mark.parametrize("exact_tests", [False, True], ids=["from-fit", "refactored"])
+def test_diagnostics_tests_and_robust_se_match_statsmodels(case, exact_tests: bool) -> None:
+    # Breusch–Pagan (without weights) and RESET come from the fit's factor and the added
+    # columns' cross-products, or (exact_tests) from auxiliary regressions factored again:
+    # both against statsmodels.
     data, x, w, fit, res = case
-    config = config_for(fit, data, x)
+    config = dataclasses.replace(config_for(fit, data, x), exact_tests=exact_tests)
+    assert config.fit_condition <= TESTS_FROM_FIT_MAX_CONDITION  # so the fit's route is taken
     diag = run(fit, config, [batch_of(data, x, w, lo, hi) for lo, hi in [(0, 90), (90, 240)]])
     diag = diag.finalize()
 
@@ -602,6 +609,38 @@ def test_edge_sample_thinned_first_gives_the_same_edges() -> None:
     )
 
 
+def test_reset_from_the_fit_hands_over_when_the_added_columns_lie_in_the_design() -> None:
+    # Fitted values on two levels only: their square and cube are in the span of the
+    # intercept and the 0/1 column, so RESET has nothing to test. From the fit that cannot be
+    # told from rounding, so it raises UncertifiedGram; factored from its own rows (what the
+    # engine runs then) the added columns are aliased and the test is NaN. numpy's
+    # matrix_rank as oracle for the aliasing: the augmented design's rank stays 2.
+    rng = np.random.default_rng(8)
+    n = 400
+    group = (rng.random(n) < 0.3).astype(float)
+    x = np.column_stack([np.ones(n), group])
+    y = 2.0 + 3.0 * group + rng.normal(size=n)
+    fit = QRAccumulator(2, has_intercept=True)
+    fit.update(x, y)
+    lin = fit.finalize(("intercept", "group"))
+    fitted = lin.predict(x)
+    assert np.linalg.matrix_rank(np.column_stack([x, fitted**2, fitted**3])) == 2
+    frame = pl.DataFrame({"__row": np.arange(n)})
+    batch = DesignBatch(x, y, None, np.arange(n, dtype=np.int64), frame, 0, 0, 0)
+    config = default_config(lin, fitted, {})
+    acc = DiagnosticsAccumulator(lin, config)
+    acc.update(batch)
+    with pytest.raises(UncertifiedGram):
+        acc.finalize()
+    exact = DiagnosticsAccumulator(lin, dataclasses.replace(config, exact_tests=True))
+    exact.update(batch)
+    diagnostics = exact.finalize()
+    assert math.isnan(diagnostics.tests["reset"].statistic)
+    # Breusch–Pagan still comes out, against statsmodels
+    lm = het_breuschpagan(y - fitted, x, robust=True)[0]
+    assert diagnostics.tests["breusch_pagan"].statistic == pytest.approx(lm, rel=RTOL)
+
+
 def test_stream_moments_merge_matches_scipy() -> None:
     rng = np.random.default_rng(3)
     v = 1e6 + rng.gamma(2.0, 3.0, 1000)  # skewed, with a large offset
@@ -658,6 +697,13 @@ def test_bin_lookup_equals_searchsorted_bins(rng: np.random.Generator, n_edges: 
     np.testing.assert_array_equal(BinLookup(edges).index(values), bin_index(edges, values))
     constant = np.array([2.0, 2.0])
     np.testing.assert_array_equal(BinLookup(constant).index(values), bin_index(constant, values))
+    # the values found exactly hold every value outside the edges and every non-finite one,
+    # so the extremes of those are the extremes of all the values outside the edges
+    for grid in (edges, constant):
+        bins, exact = BinLookup(grid).index_and_exact(values)
+        np.testing.assert_array_equal(bins, bin_index(grid, values))
+        outside = ~((values >= grid[0]) & (values <= grid[-1]))
+        assert set(np.flatnonzero(outside)) <= set(exact)
     # Fine-grid cells with tails: numpy.searchsorted (side "right"), a value on the last
     # edge counted in the last bin.
     for grid in (edges, np.linspace(-3.0, 3.0, n_edges), constant):

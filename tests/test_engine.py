@@ -306,3 +306,26 @@ def test_engine_report_pass_2_from_memory_equals_reading_again(
             assert a == pytest.approx(b, rel=1e-12, abs=1e-300, nan_ok=True), column
         else:
             assert a == b, column
+
+
+def test_engine_report_falls_back_to_refactored_tests_when_reset_has_nothing_to_add(
+    tmp_path: Path, rng: np.random.Generator
+) -> None:
+    # Fitted values on two levels: their square and cube lie in the design's span (numpy's
+    # matrix_rank as oracle), which RESET from the fit cannot tell from rounding. The pass
+    # runs again with the auxiliary regressions factored from their rows: RESET is NaN (its
+    # columns are aliased) and the rest of the report comes out as in any pass.
+    group = (rng.random(N_ROWS) < 0.3).astype(float)
+    y = 2.0 + 3.0 * group + rng.normal(size=N_ROWS)
+    path = tmp_path / "two_levels.parquet"
+    pl.DataFrame({"y": y, "group": group}).write_parquet(path, row_group_size=2_500)
+    source = open_source(path)
+    spec = build_spec(source.schema(), target="y", terms="group")
+    report = passes.run_report(source, spec, rows=ALL_ROWS)
+    design = np.column_stack([np.ones(N_ROWS), group])
+    fitted = design @ np.linalg.lstsq(design, y, rcond=None)[0]
+    assert np.linalg.matrix_rank(np.column_stack([design, fitted**2, fitted**3])) == 2
+    tests = report.diagnostics.tests
+    assert np.isnan(tests["reset"].statistic)
+    assert np.isfinite(tests["breusch_pagan"].statistic)
+    assert report.diagnostics.n == N_ROWS

@@ -20,7 +20,7 @@ Flags are aids to judgement: each names its rule, and none is proof of an error.
 from __future__ import annotations
 
 import math
-from typing import TYPE_CHECKING, Final
+from typing import TYPE_CHECKING, Any, Final
 
 import numpy as np
 import polars as pl
@@ -44,10 +44,16 @@ from triage.core.lsq import GRAM_CHUNK_ROWS, shifted_gram
 from triage.core.moments import StreamMoments
 from triage.core.residual_breakdown import BinnedResiduals, SegmentResiduals
 from triage.core.residual_tests import (
+    TESTS_FROM_FIT_MAX_CONDITION,
     BreuschPaganAccumulator,
+    BreuschPaganFromFit,
+    CrossProducts,
     DurbinWatsonAccumulator,
     ResetAccumulator,
+    ResetFromFit,
+    coded_cross,
     jarque_bera,
+    shifted_cross,
 )
 from triage.core.row_values import (
     LEVERAGE_ONE_TOLERANCE,
@@ -180,15 +186,25 @@ class DiagnosticsAccumulator:
             col: SegmentResiduals(col, config.segment_cuts.get(col), config.max_segment_levels)
             for col in config.segment_columns
         }
-        self._bp = BreuschPaganAccumulator(
-            p, has_intercept=fit.has_intercept, unshifted=self._indicators
+        from_fit = not config.exact_tests and config.fit_condition <= TESTS_FROM_FIT_MAX_CONDITION
+        self._bp: BreuschPaganAccumulator | BreuschPaganFromFit = (
+            BreuschPaganFromFit(fit)
+            if from_fit and fit.has_intercept and not fit.is_weighted
+            else BreuschPaganAccumulator(
+                p, has_intercept=fit.has_intercept, unshifted=self._indicators
+            )
         )
-        self._reset = ResetAccumulator(
-            p,
-            has_intercept=fit.has_intercept,
-            center=config.fitted_center,
-            scale=config.fitted_scale,
-            unshifted=self._indicators,
+        center, scale = config.fitted_center, config.fitted_scale
+        self._reset: ResetAccumulator | ResetFromFit = (
+            ResetFromFit(fit, center=center, scale=scale)
+            if from_fit
+            else ResetAccumulator(
+                p,
+                has_intercept=fit.has_intercept,
+                center=center,
+                scale=scale,
+                unshifted=self._indicators,
+            )
         )
         self._meat = np.zeros((3, rank, rank))
         self._leverage_threshold = LEVERAGE_FACTOR * rank / fit.n
@@ -252,19 +268,39 @@ class DiagnosticsAccumulator:
             seg.update(batch.frame[col], e)
         if shifted is None:
             assert isinstance(batch, CodedBatch)  # only coded batches have no shifted rows
-            self._bp.update_coded(batch.design, e)
-            self._reset.update_coded(batch.design, batch.y, rd.fitted, batch.weights)
-            self._update_meat_coded(batch.design, batch.weights, rd)
+            dense = [
+                c - self.fit.column_shift[j]
+                for c, j in zip(batch.design.dense, batch.design.dense_positions, strict=True)
+            ]
+            self._update_tests(batch, rd, coded_cross(self.fit, batch.design, dense))
+            self._update_meat_coded(batch.design, dense, batch.weights, rd)
         else:
             assert isinstance(batch, DesignBatch)
-            self._bp.update(batch.x, e)
-            self._reset.update(batch.x, batch.y, rd.fitted, batch.weights)
+            self._update_tests(batch, rd, shifted_cross(shifted))
             self._update_meat(shifted, batch.weights, rd)
         with np.errstate(invalid="ignore"):
             self._n_studentized += int(np.sum(np.abs(rd.studentized) > STUDENTIZED_LIMIT))
             self._n_extreme += int(np.sum(np.abs(rd.studentized) > self._extreme_threshold))
             self._n_leverage += int(np.sum(rd.leverage > self._leverage_threshold))
             self._n_cooks += int(np.sum(rd.cooks > self._cooks_threshold))
+
+    def _update_tests(
+        self, batch: DesignBatch | CodedBatch, rd: RowDiagnostics, cross: CrossProducts
+    ) -> None:
+        """Add a batch to Breusch–Pagan and RESET, from the fit or by their own regressions."""
+        e = rd.weighted_resid
+        if isinstance(self._bp, BreuschPaganFromFit):
+            self._bp.update(cross, e)
+        elif isinstance(batch, CodedBatch):
+            self._bp.update_coded(batch.design, e)
+        else:
+            self._bp.update(batch.x, e)
+        if isinstance(self._reset, ResetFromFit):
+            self._reset.update(cross, rd.fitted, rd.resid, batch.weights)
+        elif isinstance(batch, CodedBatch):
+            self._reset.update_coded(batch.design, batch.y, rd.fitted, batch.weights)
+        else:
+            self._reset.update(batch.x, batch.y, rd.fitted, batch.weights)
 
     def _update_meat(
         self, shifted: FloatArray, weights: FloatArray | None, rd: RowDiagnostics
@@ -286,18 +322,22 @@ class DiagnosticsAccumulator:
                 self._meat[j] += chunk.T @ chunk
 
     def _update_meat_coded(
-        self, design: CodedDesign, weights: FloatArray | None, rd: RowDiagnostics
+        self,
+        design: CodedDesign,
+        dense: Sequence[FloatArray],
+        weights: FloatArray | None,
+        rd: RowDiagnostics,
     ) -> None:
         """Add the same sums as `_update_meat` for coded rows: Gram matrices of counts and sums.
 
-        The Gram matrix of the coded rows (indicators unshifted) moves to the fit's shift,
-        which subtracts each indicator's shift times the ones column, by a rank-2 update.
+        `dense` are the design's dense columns in the fit's shift. The Gram matrix of the
+        coded rows (indicators unshifted) moves to the fit's shift, which subtracts each
+        indicator's shift times the ones column, by a rank-2 update.
         """
         kept, x_shift = self.fit.kept_columns, self.fit.column_shift
         indicators = list(self._indicators)
         delta = np.zeros(x_shift.size)
         delta[indicators] = -x_shift[indicators]
-        dense = [c - x_shift[j] for c, j in zip(design.dense, design.dense_positions, strict=True)]
         for j, u in enumerate(_meat_roots(weights, rd)):
             dense_gram = shifted_gram(dense, np.zeros(len(dense)), u, intercept=True)
             gram = coded_gram(design, dense, dense_gram, u * u)
@@ -327,6 +367,7 @@ class DiagnosticsAccumulator:
             and other.config.binned_edges.keys() == self.config.binned_edges.keys()
             and np.array_equal(other.config.fine_edges, self.config.fine_edges)
             and np.array_equal(other.config.hist_edges, self.config.hist_edges)
+            and other.config.exact_tests == self.config.exact_tests
         )
         if not (same_fit and same_config):
             msg = (
@@ -353,14 +394,20 @@ class DiagnosticsAccumulator:
             top.merge(other._worst[criterion])
         for col, seg in self._segments.items():
             seg.merge(other._segments[col])
-        self._bp.merge(other._bp)
-        self._reset.merge(other._reset)
+        self._merge_tests(other)
         self._meat += other._meat
         self._n_studentized += other._n_studentized
         self._n_extreme += other._n_extreme
         self._n_leverage += other._n_leverage
         self._n_cooks += other._n_cooks
         return self
+
+    def _merge_tests(self, other: DiagnosticsAccumulator) -> None:
+        """Merge Breusch–Pagan and RESET, computed the same way in both (same fit and config)."""
+        pairs: tuple[tuple[Any, Any], ...] = ((self._bp, other._bp), (self._reset, other._reset))
+        for mine, theirs in pairs:
+            assert type(theirs) is type(mine)
+            mine.merge(theirs)
 
     def _histogram(self) -> ResidualHistogram:
         empty = self._n == 0

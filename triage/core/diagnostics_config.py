@@ -91,6 +91,13 @@ class DiagnosticsConfig:
     is_ordered : bool
         Whether row order means something (time order): enables the Durbin–Watson and
         shared-trend flags. Durbin–Watson itself is always computed.
+    fit_condition : float
+        The fit's `LinearFit.shifted_condition_number` (NaN: not known). Up to
+        `residual_tests.TESTS_FROM_FIT_MAX_CONDITION`, Breusch–Pagan (for a fit without
+        weights) and RESET are computed from the fit and the added columns' cross-products.
+    exact_tests : bool
+        Factor the auxiliary regressions of Breusch–Pagan and RESET from their own rows
+        whatever `fit_condition` says (after RESET from the fit raised `UncertifiedGram`).
     """
 
     hist_edges: FloatArray
@@ -103,6 +110,8 @@ class DiagnosticsConfig:
     top_k: int = 20
     max_segment_levels: int = 200
     is_ordered: bool = False
+    fit_condition: float = math.nan
+    exact_tests: bool = False
 
     def __post_init__(self) -> None:
         _check_edges("hist_edges", self.hist_edges)
@@ -222,4 +231,5 @@ def default_config(
         top_k=top_k,
         max_segment_levels=max_segment_levels,
         is_ordered=is_ordered,
+        fit_condition=fit.shifted_condition_number,
     )

@@ -800,6 +800,36 @@ class LinearFit:
         inner = u.T @ m @ u
         return _embed(0.5 * (inner + inner.T), self._factor.kept, len(self.names))
 
+    def whiten(self, cross: ArrayLike) -> FloatArray:
+        """Return ``R^-T cross``: cross-products with the design in the fit's orthonormal basis.
+
+        Parameters
+        ----------
+        cross : array_like of shape (k, m)
+            ``sum(w x~ v')`` over rows, ``x~`` from `to_shifted` (the kept columns), for m
+            further columns ``v``.
+
+        Returns
+        -------
+        ndarray of shape (k, m)
+            ``Q' (sqrt(w) v)`` for the orthonormal ``Q`` (never formed) with ``sqrt(w) x~ = Q R``
+            over the fit's rows: its squared column norms are the sums of squares of the
+            further columns that the design explains. Pass 2 tests added columns this way
+            without factoring the design again.
+        """
+        return _solve_upper(self._factor.r, np.asarray(cross, dtype=np.float64), transposed=True)
+
+    @functools.cached_property
+    def shifted_condition_number(self) -> float:
+        """2-norm condition number of ``R`` with its columns scaled to unit length.
+
+        The kept design as it was factored (shifted, weighted): what `whiten` loses is
+        about this times the rounding unit, relative.
+        """
+        r = self._factor.r
+        singular = np.linalg.svd(r / np.linalg.norm(r, axis=0), compute_uv=False)
+        return math.inf if singular[-1] == 0.0 else float(singular[0] / singular[-1])
+
 
 def _embed(small: FloatArray, kept: NDArray[np.intp], p: int) -> FloatArray:
     """Place a (k, k) matrix over the kept columns into a (p, p) matrix of NaN."""

@@ -53,6 +53,8 @@ class BinnedResiduals:
         self.sum_e = np.zeros(n_bins)
         self.min_e = np.full(n_bins, np.inf)
         self.max_e = np.full(n_bins, -np.inf)
+        # Extremes of the values the lookup checked exactly (near an edge or outside the
+        # edges): `finalize` needs them only where they lie beyond the end edges.
         self.min_x = math.inf
         self.max_x = -math.inf
 
@@ -64,15 +66,19 @@ class BinnedResiduals:
         `below` and `above` index the rows in the tail cells below and above the grid.
         """
         n_bins = self.counts.shape[0]
-        b = self.lookup.index(x)
-        flat = np.bincount(b * self.n_cells + cell, minlength=n_bins * self.n_cells)
-        self.counts += flat.reshape(n_bins, self.n_cells)
+        b, exact = self.lookup.index_and_exact(x)
         self.sum_x += np.bincount(b, weights=x, minlength=n_bins)
         self.sum_e += np.bincount(b, weights=e, minlength=n_bins)
         np.minimum.at(self.min_e, b[below], e[below])
         np.maximum.at(self.max_e, b[above], e[above])
-        self.min_x = min(self.min_x, float(x.min()))
-        self.max_x = max(self.max_x, float(x.max()))
+        if exact.size:  # every value outside the edges is among these
+            outside = x[exact]
+            self.min_x = min(self.min_x, float(outside.min()))
+            self.max_x = max(self.max_x, float(outside.max()))
+        b *= self.n_cells  # from here on, the cell of each row's (bin, residual) pair
+        b += cell
+        flat = np.bincount(b, minlength=n_bins * self.n_cells)
+        self.counts += flat.reshape(n_bins, self.n_cells)
 
     def merge(self, other: BinnedResiduals) -> None:
         """Add the bins of `other` (same edges) to these."""

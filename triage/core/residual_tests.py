@@ -1,9 +1,12 @@
 """Specification tests on residuals, computed in one streaming pass and mergeable.
 
 - Breusch–Pagan in Koenker's studentized form: ``n R²`` of the squared residuals regressed on
-  the design (an auxiliary `QRAccumulator` on ``[X | e²]``), chi-squared with rank - 1 df.
-- RESET: F test of adding the squared and cubed fitted values (standardised) to the design, by
-  an auxiliary `QRAccumulator` on ``[X | ŷ², ŷ³ | y]``; Wald form, as statsmodels computes it.
+  the design, chi-squared with rank - 1 df. For a fit without weights, from the fit itself
+  (`BreuschPaganFromFit`); otherwise by an auxiliary `QRAccumulator` on ``[X | e²]``.
+- RESET: F test of adding the squared and cubed fitted values (standardised) to the design; Wald
+  form, as statsmodels computes it. From the fit and the added columns' cross-products
+  (`ResetFromFit`); an auxiliary `QRAccumulator` on ``[X | ŷ², ŷ³ | y]`` (`ResetAccumulator`) when
+  those cannot give it to full accuracy.
 - Jarque–Bera from mergeable central moments of the residuals, chi-squared with 2 df.
 - Durbin–Watson in file order, carrying the residuals at batch edges.
 
@@ -14,23 +17,76 @@ from __future__ import annotations
 
 import itertools
 import math
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Final
 
 import numpy as np
 from numpy.typing import NDArray
 
 from triage.core.distributions import chi2_sf, f_sf
 from triage.core.indicators import CodedDesign
-from triage.core.lsq import QRAccumulator
+from triage.core.lsq import GRAM_MAX_CONDITION, QRAccumulator, UncertifiedGram
 from triage.results.diagnostics import ResidualTest
 
 if TYPE_CHECKING:
-    from collections.abc import Sequence
-
+    from triage.core.lsq import LinearFit
     from triage.core.moments import StreamMoments
 
 FloatArray = NDArray[np.float64]
+
+CrossProducts = Callable[[Sequence[FloatArray]], FloatArray]
+"""Given columns ``v``, a batch's ``sum(x~ v')`` (``x~`` from `LinearFit.to_shifted`)."""
+
+TESTS_FROM_FIT_MAX_CONDITION: Final = GRAM_MAX_CONDITION**2
+"""Largest `LinearFit.shifted_condition_number` for which pass 2 tests added columns from the fit.
+
+Cross-products put in the fit's orthonormal basis (`LinearFit.whiten`) lose about this condition
+number times the rounding unit; below 1e4 that is about 2e-12 relative, as for the Gram
+matrices pass 1 factors (`GRAM_MAX_CONDITION`). Above it the auxiliary regressions are factored
+from their own rows.
+"""
+
+
+def shifted_cross(shifted: FloatArray) -> CrossProducts:
+    """Cross-products ``sum(x~ v')`` of a batch's shifted rows (`LinearFit.to_shifted`)."""
+
+    def cross(columns: Sequence[FloatArray]) -> FloatArray:
+        products: FloatArray = shifted.T @ np.column_stack(columns)
+        return products
+
+    return cross
+
+
+def coded_cross(
+    fit: LinearFit, design: CodedDesign, dense_shifted: Sequence[FloatArray]
+) -> CrossProducts:
+    """Cross-products ``sum(x~ v')`` of a batch's coded rows, as `shifted_cross` would give them.
+
+    `dense_shifted` are the design's dense columns minus the fit's shift. Products with
+    indicator columns are per-level sums; each indicator then moves to the fit's shift
+    (its shift times the intercept's products comes off), and the kept columns are returned.
+    """
+    shift = fit.column_shift
+    indicators = design.indicator_positions()
+
+    def cross(columns: Sequence[FloatArray]) -> FloatArray:
+        block = np.column_stack(columns)
+        products = np.zeros((design.n_cols, block.shape[1]))
+        products[0] = block.sum(axis=0)  # coded designs have the intercept as column 0
+        if dense_shifted:
+            products[design.dense_positions] = np.column_stack(dense_shifted).T @ block
+        for factor in design.factors:
+            has_column = factor.positions >= 0
+            at = factor.positions[has_column]
+            for j, column in enumerate(columns):
+                sums = np.bincount(factor.codes, weights=column, minlength=factor.n_levels)
+                products[at, j] = sums[has_column]
+        products[indicators] -= shift[indicators, np.newaxis] * products[0]
+        kept: FloatArray = products[fit.kept_columns]
+        return kept
+
+    return cross
 
 
 _NAN_TEST_CHI2_2 = ResidualTest(math.nan, (2.0,), math.nan)
@@ -162,6 +218,146 @@ class ResetAccumulator:
             f = float(b @ np.linalg.solve(cov, b)) / 2.0
         except np.linalg.LinAlgError:
             return ResidualTest(math.nan, (2.0, df2), math.nan)
+        return ResidualTest(f, (2.0, df2), f_sf(f, 2.0, df2))
+
+
+class BreuschPaganFromFit:
+    """Breusch–Pagan (Koenker) for a fit without weights, from the fit's triangular factor.
+
+    The auxiliary regression of ``v = e²`` on the fit's own design needs the design's Gram
+    matrix, which the fit has factored already: with ``c = R^-T sum(x~ v)`` (`LinearFit.whiten`)
+    the sum of squares it explains is ``|c|² - (sum v)² / n``. A batch then costs
+    ``sum(x~ v)``, O(n k), instead of factoring ``[X | v]`` again, O(n k²). ``v`` is taken
+    less the fit's mean squared residual, so no large mean cancels in the sums of squares.
+
+    Parameters
+    ----------
+    fit : LinearFit
+        The fit of pass 1: unweighted, with an intercept, `shifted_condition_number` at most
+        `TESTS_FROM_FIT_MAX_CONDITION`.
+    """
+
+    def __init__(self, fit: LinearFit) -> None:
+        self._fit = fit
+        self._offset = fit.rss / fit.n if fit.n else 0.0
+        self._cross = np.zeros(fit.kept_columns.size)
+        self._sum = 0.0
+        self._sum_sq = 0.0
+        self._n = 0
+
+    def update(self, cross: CrossProducts, resid: FloatArray) -> None:
+        """Add a batch's residuals; `cross` gives its rows' cross-products (`shifted_cross`)."""
+        v = resid * resid
+        v -= self._offset
+        self._cross += cross([v])[:, 0]
+        self._sum += float(v.sum())
+        self._sum_sq += float(v @ v)
+        self._n += v.size
+
+    def merge(self, other: BreuschPaganFromFit) -> None:
+        """Fold another accumulator over the same fit into this one."""
+        self._cross += other._cross
+        self._sum += other._sum
+        self._sum_sq += other._sum_sq
+        self._n += other._n
+
+    def finalize(self) -> ResidualTest:
+        """LM = n R² of the auxiliary fit, chi-squared with (rank - 1) df."""
+        n, df = self._n, self._cross.size - 1
+        if n == 0:
+            return ResidualTest(math.nan, (math.nan,), math.nan)
+        mean_part = self._sum * self._sum / n
+        explained = self._fit.whiten(self._cross[:, np.newaxis])[:, 0]
+        tss = self._sum_sq - mean_part
+        if df < 1 or n - df - 1 < 1 or not tss > 0.0:
+            return ResidualTest(math.nan, (float(df),), math.nan)
+        lm = n * max(float(explained @ explained) - mean_part, 0.0) / tss
+        return ResidualTest(lm, (float(df),), chi2_sf(lm, df))
+
+
+class ResetFromFit:
+    """RESET from the fit of pass 1 and the cross-products of the two added columns.
+
+    By Frisch–Waugh–Lovell, the auxiliary regression of ``y`` on ``[X | z², z³]`` (weighted as
+    the fit) needs of the rows only, with ``Z = [z², z³]`` and the fit's residuals ``e``:
+    ``sum(w x~ [Z | e])`` and ``sum(w [Z | e]' [Z | e])``. With ``C = R^-T sum(w x~ Z')``
+    (`LinearFit.whiten`) the part of ``Z`` the design does not explain has Gram matrix
+    ``S = sum(w Z'Z) - C'C = L L'``; the added coefficients explain ``|d|²`` with
+    ``d = L^-1 (sum(w Z'e) - C' R^-T sum(w x~ e))``, and the Wald F is ``|d|² / 2`` over the
+    auxiliary residual variance. A batch costs O(n k) instead of O(n k²).
+
+    `finalize` raises `UncertifiedGram` when ``S`` is too close to singular for that to hold
+    to about 2e-12 relative (the added columns nearly in the design's span): the caller then
+    runs `ResetAccumulator`, which factors the auxiliary rows themselves.
+
+    Parameters
+    ----------
+    fit : LinearFit
+        The fit of pass 1, `shifted_condition_number` at most `TESTS_FROM_FIT_MAX_CONDITION`.
+    center, scale : float
+        Standardisation of the fitted values, as for `ResetAccumulator`.
+    """
+
+    def __init__(self, fit: LinearFit, *, center: float, scale: float) -> None:
+        self._fit = fit
+        self._center = center
+        self._scale = scale
+        self._cross = np.zeros((fit.kept_columns.size, 3))
+        self._gram = np.zeros((3, 3))
+        self._n = 0
+
+    def update(
+        self,
+        cross: CrossProducts,
+        fitted: FloatArray,
+        resid: FloatArray,
+        weights: FloatArray | None,
+    ) -> None:
+        """Add a batch's fitted values, residuals (not weighted) and weights (None: all 1)."""
+        z = (fitted - self._center) / self._scale
+        z2 = z * z
+        block = (z2, z2 * z, resid)
+        weighted = block if weights is None else tuple(weights * c for c in block)
+        self._cross += cross(weighted)
+        self._gram += np.array([[u @ v for v in block] for u in weighted])
+        self._n += resid.size
+
+    def merge(self, other: ResetFromFit) -> None:
+        """Fold another accumulator over the same fit into this one."""
+        self._cross += other._cross
+        self._gram += other._gram
+        self._n += other._n
+
+    def finalize(self) -> ResidualTest:
+        """Wald F of the two added coefficients (2 and the auxiliary residual df).
+
+        Raises
+        ------
+        UncertifiedGram
+            If the added columns are too close to the design's span to test this way.
+        """
+        df2 = float(self._fit.df_resid - 2)
+        if self._n == 0:
+            return ResidualTest(math.nan, (2.0, math.nan), math.nan)
+        whitened = self._fit.whiten(self._cross)
+        c, ce = whitened[:, :2], whitened[:, 2]
+        zz = self._gram[:2, :2]
+        unexplained = zz - c.T @ c
+        norms = np.sqrt(np.diagonal(zz))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            lowest = float(np.linalg.eigvalsh(unexplained / np.outer(norms, norms))[0])
+        if not lowest * TESTS_FROM_FIT_MAX_CONDITION >= self._fit.shifted_condition_number:
+            msg = (
+                "the squared and cubed fitted values lie too close to the design's span to "
+                "test them from the fit; the auxiliary regression must be factored from its rows"
+            )
+            raise UncertifiedGram(msg)
+        lower = np.linalg.cholesky(unexplained)
+        d = np.linalg.solve(lower, self._gram[:2, 2] - c.T @ ce)
+        rss = self._gram[2, 2] - float(ce @ ce) - float(d @ d)
+        if df2 < 1 or not rss > 0.0:
+            return ResidualTest(math.nan, (2.0, df2), math.nan)
+        f = float(d @ d) / 2.0 / (rss / df2)
         return ResidualTest(f, (2.0, df2), f_sf(f, 2.0, df2))
 
 

@@ -7,6 +7,7 @@ cancel, checks the event between batches, and raises `PassCancelled` within one 
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import functools
 import os
 import threading
@@ -1175,7 +1176,7 @@ def _diagnose(
 ) -> Diagnostics:
     from triage.core.binning import edge_sample
     from triage.core.diagnostics import DiagnosticsAccumulator
-    from triage.core.diagnostics_config import default_config
+    from triage.core.diagnostics_config import DiagnosticsConfig, default_config
 
     builder, fit = outcome.builder, outcome.fit
     # Coded batches keep the indicators as level codes; they need an intercept.
@@ -1194,7 +1195,7 @@ def _diagnose(
         is_ordered=is_ordered,
     )
 
-    def run(indicators: Sequence[int]) -> Diagnostics:
+    def run(indicators: Sequence[int], config: DiagnosticsConfig) -> Diagnostics:
         def fold(accumulator: DiagnosticsAccumulator, frame: pl.DataFrame) -> None:
             coded = builder.build_coded(frame) if indicators else None
             batches = (
@@ -1214,11 +1215,12 @@ def _diagnose(
         return merged.finalize()
 
     try:
-        return run(codes)
+        return run(codes, config)
     except UncertifiedGram:
-        # An auxiliary test's design (the fit's plus e², or plus ŷ² and ŷ³) that its counts
-        # and sums cannot factor to full accuracy: pass 2 runs again, indicators written out.
-        return run(())
+        # An auxiliary test's design (the fit's plus e², or plus ŷ² and ŷ³) that the fit,
+        # counts and sums cannot factor to full accuracy: pass 2 runs again, indicators
+        # written out, each auxiliary regression factored from its own rows.
+        return run((), dataclasses.replace(config, exact_tests=True))
 
 
 SAMPLE_PIECE_ROWS = 65_536
