@@ -292,6 +292,11 @@ def test_readme_cluster_tasks_per_source(tmp_path: Path) -> None:
         "metadata, so row positions are those of the whole table. A CSV file is one task",
         README,
     )
+    said(
+        "A folder or glob of CSV files is a task per file; the machine running triage counts "
+        "each file's rows first",
+        README,
+    )
     import pyarrow as pa
     import pyarrow.ipc as ipc
 
@@ -304,7 +309,15 @@ def test_readme_cluster_tasks_per_source(tmp_path: Path) -> None:
     with pa.OSFile(str(tmp_path / "d.arrow"), "wb") as sink, ipc.new_file(sink, table.schema) as w:
         w.write_table(table, max_chunksize=200_000)
     frame.head(1_000).write_csv(tmp_path / "d.csv")
-    for name, starts in [("d.parquet", [0, 600_000]), ("d.arrow", [0, 600_000]), ("d.csv", [0])]:
+    (tmp_path / "csv").mkdir()
+    frame.slice(1_000, 600).write_csv(tmp_path / "csv" / "a.csv")
+    frame.slice(1_600, 400).write_csv(tmp_path / "csv" / "b.csv")
+    for name, starts in [
+        ("d.parquet", [0, 600_000]),
+        ("d.arrow", [0, 600_000]),
+        ("d.csv", [0]),
+        ("csv", [0, 600]),
+    ]:
         parts = open_source(tmp_path / name).scan_parts(["delivery_id"])
         assert [part.start for part in parts] == starts, name  # type: ignore[attr-defined]
         first_rows = [next(iter(part())).frame[ROW_INDEX][0] for part in parts]
