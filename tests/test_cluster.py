@@ -288,22 +288,31 @@ def test_cluster_sample_fit_never_connects(folder: Path, cluster: LocalCluster) 
 
 @pytest.fixture(scope="module")
 def other_formats(folder: Path, tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
-    """The same table as one CSV file and one Arrow IPC file (record batches of 15,000 rows)."""
+    """The same table as one CSV file, a folder of 4 CSV files and one Arrow IPC file (record
+    batches of 15,000 rows)."""
     root = tmp_path_factory.mktemp("formats")
     frame = pl.read_parquet(sorted(folder.glob("*.parquet")))
     frame.write_csv(root / "deliveries.csv")
+    (root / "csv-folder").mkdir()
+    for k, part in enumerate(sorted(folder.glob("*.parquet"))):
+        pl.read_parquet(part).write_csv(root / "csv-folder" / f"part-{k:02d}.csv")
     with (root / "deliveries.arrow").open("wb") as sink:
         table = frame.to_arrow()
         with pa.ipc.new_file(sink, table.schema) as writer:
             writer.write_table(table, max_chunksize=GROUP_ROWS)
-    return {"csv": root / "deliveries.csv", "ipc": root / "deliveries.arrow"}
+    return {
+        "csv": root / "deliveries.csv",
+        "csv-folder": root / "csv-folder",
+        "ipc": root / "deliveries.arrow",
+    }
 
 
-@pytest.mark.parametrize("kind", ["csv", "ipc"])
+@pytest.mark.parametrize("kind", ["csv", "csv-folder", "ipc"])
 def test_cluster_csv_and_ipc_equal_local_engine(
     kind: str, other_formats: dict[str, Path], folder: Path, engine: ClusterEngine, lre: Lre
 ) -> None:
-    # An IPC file splits into runs of record batches (8 tasks here), a CSV file is one task;
+    # An IPC file splits into runs of record batches (8 tasks here), a CSV file is one task
+    # (a folder of them a task per file, each starting at the rows counted before it);
     # both engines fold the same parts in the same tree. The Parquet copy of the same rows,
     # cut otherwise, is an outside check: the same positions, and the same coefficients to
     # the rounding of sums taken in another order (n * eps = 240,000 * 1.1e-16, about 2.7e-11
@@ -315,7 +324,7 @@ def test_cluster_csv_and_ipc_equal_local_engine(
     )
     source = open_source(other_formats[kind])
     parts = source.scan_parts(["minutes"])
-    assert len(parts) == {"csv": 1, "ipc": 8}[kind]
+    assert len(parts) == {"csv": 1, "csv-folder": N_FILES, "ipc": 8}[kind]
     spec = build_spec(source.schema(), target=None, terms=TERMS)
     options: dict[str, Any] = {"rows": ALL_ROWS, "by": ("depot",), "top_k": 25}
     local = passes.run_report(source, spec, **options)

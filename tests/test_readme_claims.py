@@ -257,6 +257,23 @@ def test_readme_usage_example_runs_from_the_repository_root(
         assert Path(written).stat().st_size > 0
 
 
+def test_readme_columns_pane_sample_and_every_row_maximum() -> None:
+    # Oracle: polars on the whole bundled file; the sample is the app's own profile.
+    from triage.engine.passes import fit_model
+    from triage.tui.head_start import open_and_profile
+    from triage.tui.settings import Settings
+
+    said("the sample's highest `minutes` is `~8430`", README)
+    said("the model's columns from every row, unmarked (`10260`)", README)
+    opened = open_and_profile(str(DEMO), csv=None, seed=Settings().seed)
+    profile = {row["name"]: row for row in opened.profile.iter_rows(named=True)}
+    assert round(profile["minutes"]["high"]) == 8430
+    spec = build_spec(opened.source.schema(), target="minutes", terms=TOUR_TERMS)
+    figures = fit_model(opened.source, spec, rows=ALL_ROWS).column_figures
+    every_row = next(f for f in figures if f.name == "minutes")
+    assert every_row.high == pl.read_parquet(DEMO)["minutes"].max() == 10260
+
+
 def test_readme_names_every_command() -> None:
     from triage.cli.main import COMMANDS
 
@@ -275,6 +292,11 @@ def test_readme_cluster_tasks_per_source(tmp_path: Path) -> None:
         "metadata, so row positions are those of the whole table. A CSV file is one task",
         README,
     )
+    said(
+        "A folder or glob of CSV files is a task per file; the machine running triage counts "
+        "each file's rows first",
+        README,
+    )
     import pyarrow as pa
     import pyarrow.ipc as ipc
 
@@ -287,7 +309,15 @@ def test_readme_cluster_tasks_per_source(tmp_path: Path) -> None:
     with pa.OSFile(str(tmp_path / "d.arrow"), "wb") as sink, ipc.new_file(sink, table.schema) as w:
         w.write_table(table, max_chunksize=200_000)
     frame.head(1_000).write_csv(tmp_path / "d.csv")
-    for name, starts in [("d.parquet", [0, 600_000]), ("d.arrow", [0, 600_000]), ("d.csv", [0])]:
+    (tmp_path / "csv").mkdir()
+    frame.slice(1_000, 600).write_csv(tmp_path / "csv" / "a.csv")
+    frame.slice(1_600, 400).write_csv(tmp_path / "csv" / "b.csv")
+    for name, starts in [
+        ("d.parquet", [0, 600_000]),
+        ("d.arrow", [0, 600_000]),
+        ("d.csv", [0]),
+        ("csv", [0, 600]),
+    ]:
         parts = open_source(tmp_path / name).scan_parts(["delivery_id"])
         assert [part.start for part in parts] == starts, name  # type: ignore[attr-defined]
         first_rows = [next(iter(part())).frame[ROW_INDEX][0] for part in parts]

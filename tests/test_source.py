@@ -511,6 +511,47 @@ def test_source_read_rows_out_of_range(parquet_file: Path, tmp_path: Path, bad: 
         open_source(path).read_rows([bad])
 
 
+def test_source_csv_folder_and_glob_read_as_one_table(tmp_path: Path) -> None:
+    # Oracle: polars reading the files one after another and stacking them. The last file
+    # has no value but integers in `x`: it is read with the first file's types (float).
+    frame = _frame(1_000, seed=7)
+    folder = tmp_path / "csv"
+    folder.mkdir()
+    sizes = [300, 450, 250]
+    for k, start in enumerate([0, 300, 750]):
+        part = frame.slice(start, sizes[k])
+        if k == 2:
+            part = part.with_columns(pl.col("x").round().cast(pl.Int64))
+        part.write_csv(folder / f"part-{k}.csv")
+    (folder / "_SUCCESS").write_text("")  # a writer's bookkeeping, skipped
+    oracle = pl.concat(
+        [pl.read_csv(folder / f"part-{k}.csv").cast({"x": pl.Float64}) for k in range(3)]
+    )
+    for source in (open_source(folder), open_source(folder / "*.csv")):
+        assert source.schema() == dict(oracle.schema)
+        assert source.count_rows_exact() == 1_000 and len(source.files) == 3
+        every = _scan_all(source, list(oracle.columns), batch_rows=128)
+        assert_frame_equal(every, _indexed(oracle))
+        where = pl.col("x") > 0
+        parts = source.scan_parts(["x", "k"], where=where, batch_rows=100)
+        assert [part.start for part in parts] == [0, 300, 750]  # type: ignore[attr-defined]
+        got = pl.concat(b.frame for part in parts for b in part())
+        assert_frame_equal(got, _indexed(oracle).filter(where).select(ROW_INDEX, "x", "k"))
+        positions = [999, 0, 299, 300, 749, 750, 5]
+        assert_frame_equal(source.read_rows(positions), _indexed(oracle)[positions])
+    other = tmp_path / "other"
+    other.mkdir()
+    frame.head(5).write_csv(other / "a.csv")
+    frame.head(5).select("k", "x").write_csv(other / "b.csv")
+    with pytest.raises(SourceError, match="must share a header"):
+        open_source(other)
+    hive = tmp_path / "hive" / "year=2024"
+    hive.mkdir(parents=True)
+    frame.head(5).write_csv(hive / "a.csv")
+    with pytest.raises(SourceError, match="read as a column only for Parquet"):
+        open_source(tmp_path / "hive")
+
+
 def test_source_bad_paths(tmp_path: Path) -> None:
     with pytest.raises(SourceError, match="does not exist"):
         open_source(tmp_path / "missing.parquet")

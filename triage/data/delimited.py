@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import functools
 import math
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Final
@@ -18,9 +18,11 @@ from triage.data.base import (
     FilePart,
     block_positions,
     collect_batches,
+    offsets_from_sizes,
     part_fields,
     reading,
 )
+from triage.errors import SourceError
 
 _INFER_ROWS: Final[int] = 10_000
 """Rows polars looks at to guess column types (its default of 100 misses late decimals)."""
@@ -55,8 +57,17 @@ def _separator_for(path: Path, options: CsvOptions) -> str:
     return "\t" if ".tsv" in suffixes else ","
 
 
-def scan_delimited(path: Path, separator: str, options: CsvOptions) -> pl.LazyFrame:
-    """Scan the delimited text file at `path` with `options`, typing columns as triage does."""
+def scan_delimited(
+    path: Path,
+    separator: str,
+    options: CsvOptions,
+    types: dict[str, pl.DataType] | None = None,
+) -> pl.LazyFrame:
+    """Scan the delimited text file at `path` with `options`, typing columns as triage does.
+
+    `types` overrides the types inferred from the file's first rows (the types of a folder's
+    first file, which every file of it is read with).
+    """
     return pl.scan_csv(
         path,
         separator=separator,
@@ -65,6 +76,7 @@ def scan_delimited(path: Path, separator: str, options: CsvOptions) -> pl.LazyFr
         null_values=list(options.null_values),
         encoding=options.encoding,  # type: ignore[arg-type]
         infer_schema_length=_INFER_ROWS,
+        schema_overrides=types,
     )
 
 
@@ -93,7 +105,8 @@ class CsvPart(FilePart):
 
     def _frames(self) -> Iterator[pl.DataFrame]:
         path = Path(self.path)
-        query = numbered(scan_delimited(path, self.separator, self.options), self.start)
+        scan = scan_delimited(path, self.separator, self.options, self.schema)
+        query = numbered(scan, self.start)
         with reading(path, self.kind):
             yield from collect_batches(
                 query.select(ROW_INDEX, *self.columns), batch_rows=self.batch_rows
@@ -101,46 +114,87 @@ class CsvPart(FilePart):
 
 
 class CsvSource(BlockSource):
-    """A delimited text file; the row count needs a scan, so blocks are cut at sampling time.
+    """Delimited text files read as one table; the row count needs a scan.
+
+    Blocks are cut at sampling time. Many files (a folder or a glob) are read in sorted order,
+    each with the column types of the first; their headers must name the same columns.
 
     Parameters
     ----------
     path : Path
-        An existing file.
+        An existing file, or the folder or glob the files were found in.
     options : CsvOptions
         Parsing options.
+    files : sequence of Path, optional
+        The files, sorted; `path` alone when not given.
 
     Raises
     ------
     SourceError
-        If the header and first rows cannot be parsed.
+        If the header and first rows cannot be parsed, or the files' headers differ.
     """
 
     _kind = "CSV"
     _block_unit = "blocks of rows"
 
-    def __init__(self, path: Path, options: CsvOptions) -> None:
+    def __init__(self, path: Path, options: CsvOptions, files: Sequence[Path] = ()) -> None:
+        self._files = tuple(files) or (path,)
         super().__init__(path)
-        self._file = path
         self._options = options
-        self._separator = _separator_for(path, options)
+        self._separator = _separator_for(self._files[0], options)
         self.schema()
 
     @property
-    def description(self) -> str:
-        """One line naming the file, its separator and the row-count cost."""
-        shown = "tab" if self._separator == "\t" else f"`{self._separator}`"
-        return f"{self._file.name}: CSV, separator {shown}, rows counted by a scan"
+    def files(self) -> tuple[Path, ...]:
+        """The files read, in the order their rows are numbered."""
+        return self._files
 
-    def _lazy(self) -> pl.LazyFrame:
-        self.snapshot.check_file(self._path)
-        return scan_delimited(self._file, self._separator, self._options)
+    @property
+    def description(self) -> str:
+        """One line naming the file (or folder and files), its separator and the row-count cost."""
+        shown = "tab" if self._separator == "\t" else f"`{self._separator}`"
+        if len(self._files) == 1:
+            return f"{self._files[0].name}: CSV, separator {shown}, rows counted by a scan"
+        return (
+            f"{self._path}: CSV, {len(self._files):,} files, separator {shown}, "
+            "rows counted by a scan"
+        )
+
+    def _scan(self, file: Path) -> pl.LazyFrame:
+        """Scan one of the files with the source's column types."""
+        self.snapshot.check_file(file)
+        types = self.schema() if len(self._files) > 1 else None
+        return scan_delimited(file, self._separator, self._options, types)
 
     def _read_schema(self) -> dict[str, pl.DataType]:
-        return dict(self._lazy().collect_schema())
+        first, *others = self._files
+        schema = dict(scan_delimited(first, self._separator, self._options).collect_schema())
+        for file in others:
+            with reading(file, self._kind):
+                names = scan_delimited(file, self._separator, self._options).collect_schema()
+            if list(names) != list(schema):
+                msg = (
+                    f"`{file}` has other columns than `{first.name}` ({', '.join(names)} "
+                    f"against {', '.join(schema)}); the files of a CSV folder must share a header"
+                )
+                raise SourceError(msg)
+        return schema
 
-    def _indexed(self) -> pl.LazyFrame:
-        return numbered(self._lazy())
+    @functools.cached_property
+    def _file_rows(self) -> list[int]:
+        """Rows of each file, counted by a scan (polars' count, which follows quoted fields)."""
+        rows = []
+        for file in self._files:
+            with self._unchanged([file]), reading(file, self._kind):
+                rows.append(int(self._scan(file).select(pl.len()).collect().item()))
+        return rows
+
+    @property
+    def _starts(self) -> list[int]:
+        """Position of each file's first row: a single file starts at 0, many are counted."""
+        if len(self._files) == 1:
+            return [0]
+        return [int(start) for start in offsets_from_sizes(self._file_rows)[:-1]]
 
     def _parts(
         self,
@@ -150,31 +204,35 @@ class CsvSource(BlockSource):
         batch_rows: int,
         part_rows: int | None,
     ) -> list[CsvPart]:
-        """Return the whole file as one part (a worker can read it where it sees it)."""
-        fields = part_fields(
-            self._path, columns, self.schema(), where=where, extra=extra,
-            batch_rows=batch_rows, stamp=self.snapshot.stamp(self._path),
-        )  # fmt: skip
-        part = CsvPart(start=0, separator=self._separator, options=self._options, **fields)
-        return [part]
+        """Return each file as one part (a worker reads it where it sees it)."""
+        schema = self.schema()
+        parts = []
+        for file, start in zip(self._files, self._starts, strict=True):
+            fields = part_fields(
+                file, columns, schema, where=where, extra=extra, batch_rows=batch_rows,
+                stamp=self.snapshot.stamp(file),
+            )  # fmt: skip
+            parts.append(
+                CsvPart(start=start, separator=self._separator, options=self._options, **fields)
+            )
+        return parts
 
     def _scan_raw(self, columns: list[str], batch_rows: int) -> Iterator[pl.DataFrame]:
-        query = self._indexed().select(ROW_INDEX, *columns)
-        with reading(self._path, self._kind):
-            yield from collect_batches(query, batch_rows=batch_rows)
-
-    @functools.cached_property
-    def _exact_count(self) -> int:
-        with self._unchanged(self.files), reading(self._path, self._kind):
-            return int(self._lazy().select(pl.len()).collect().item())
+        start = 0
+        for file in self._files:
+            query = numbered(self._scan(file), start).select(ROW_INDEX, *columns)
+            with reading(file, self._kind):
+                for frame in collect_batches(query, batch_rows=batch_rows):
+                    start += frame.height
+                    yield frame
 
     def _count_by_scan(self) -> int:
-        return self._exact_count
+        return sum(self._file_rows)
 
     def _block_offsets(self, n_rows: int | None) -> np.ndarray | None:
         if n_rows is None:
             return None
-        total = self._exact_count
+        total = sum(self._file_rows)
         block_rows = max(1, min(_MAX_BLOCK_ROWS, math.ceil(n_rows / _MIN_BLOCKS)))
         return np.append(np.arange(0, total, block_rows, dtype=np.int64), np.int64(total))
 
@@ -192,12 +250,20 @@ class CsvSource(BlockSource):
     def _read_positions(self, columns: list[str], positions: np.ndarray) -> pl.DataFrame:
         if positions.size == 0:
             return self._empty(columns)
-        # One pass that stops after the last wanted row (polars pushes the slice into the reader).
-        query = (
-            self._indexed()
-            .slice(0, int(positions[-1]) + 1)
-            .filter(pl.col(ROW_INDEX).is_in(pl.Series(positions).implode()))
-            .select(ROW_INDEX, *columns)
-        )
-        with reading(self._path, self._kind):
-            return query.collect()
+        # Per file, one pass that stops after its last wanted row (polars pushes the slice
+        # into the reader); files before the first wanted row and after the last are skipped.
+        starts = self._starts
+        owners = np.searchsorted(starts, positions, side="right") - 1
+        frames = []
+        for k in np.unique(owners):
+            wanted = positions[owners == k]
+            file, start = self._files[k], starts[k]
+            query = (
+                numbered(self._scan(file), start)
+                .slice(0, int(wanted[-1]) - start + 1)
+                .filter(pl.col(ROW_INDEX).is_in(pl.Series(wanted).implode()))
+                .select(ROW_INDEX, *columns)
+            )
+            with reading(file, self._kind):
+                frames.append(query.collect())
+        return self._concat(frames, columns)

@@ -72,7 +72,8 @@ def open_source(path: str | os.PathLike[str], *, csv: CsvOptions = DEFAULT_CSV_O
     path : str or PathLike
         A ``.parquet``/``.pq`` file; a folder of Parquet files (hive-style ``key=value``
         subfolders become columns); a glob of Parquet files (``data/*.parquet``,
-        ``data/**/*.parquet``); a ``.csv``/``.tsv``/``.txt`` file, optionally ``.gz``; an
+        ``data/**/*.parquet``); a ``.csv``/``.tsv``/``.txt`` file, optionally ``.gz``, or a
+        folder or glob of them (sharing a header; read with the first file's types); an
         Arrow IPC file (``.arrow``/``.feather``/``.ipc``); or the URL of a Parquet or Arrow
         IPC file (``s3://``, ``https://``, ``file://``: any that fsspec opens).
     csv : CsvOptions, default=DEFAULT_CSV_OPTIONS
@@ -93,9 +94,9 @@ def open_source(path: str | os.PathLike[str], *, csv: CsvOptions = DEFAULT_CSV_O
         return _open_url(text)
     target = Path(text).expanduser()
     if any(c in text for c in _GLOB_CHARS) and not target.exists():
-        return _open_glob(target)
+        return _open_glob(target, csv)
     if target.is_dir():
-        return _open_folder(target)
+        return _open_folder(target, csv)
     if not target.exists():
         msg = (
             f"`{target}` does not exist (working directory `{Path.cwd()}`); "
@@ -138,44 +139,66 @@ def _is_parquet(path: Path) -> bool:
     return path.is_file() and path.name.lower().endswith(PARQUET_SUFFIXES)
 
 
-def _open_folder(folder: Path) -> Source:
+def _is_csv(path: Path) -> bool:
+    return path.is_file() and path.name.lower().endswith(CSV_SUFFIXES)
+
+
+def _open_folder(folder: Path, csv: CsvOptions) -> Source:
     # Skip hidden and bookkeeping entries (`.tmp`, `_SUCCESS`, `_delta_log/`), as writers
     # of partitioned folders leave them beside the data.
-    files = sorted(
+    entries = sorted(
         (
             p
             for p in folder.rglob("*")
-            if _is_parquet(p)
-            and not any(part.startswith((".", "_")) for part in p.relative_to(folder).parts)
+            if not any(part.startswith((".", "_")) for part in p.relative_to(folder).parts)
         ),
         key=lambda p: p.as_posix(),
     )
+    files = [p for p in entries if _is_parquet(p)]
+    if files:
+        return ParquetDatasetSource(folder, files, folder)
+    files = [p for p in entries if _is_csv(p)]
     if not files:
         msg = (
-            f"folder `{folder}` holds no Parquet files (`*.parquet`, `*.pq`); "
-            "point at a Parquet file or folder, or at a CSV or Arrow IPC file"
+            f"folder `{folder}` holds no Parquet files (`*.parquet`, `*.pq`) and no CSV files "
+            "(`*.csv`, `*.tsv`, `*.txt`); point at a data folder, or at an Arrow IPC file"
         )
         raise SourceError(msg)
-    return ParquetDatasetSource(folder, files, folder)
+    return _open_csv_files(folder, files, folder, csv)
 
 
-def _open_glob(pattern: Path) -> Source:
+def _open_csv_files(path: Path, files: list[Path], base: Path, csv: CsvOptions) -> Source:
+    """Open CSV files found below `base` as one table (no `key=value` folders: Parquet only)."""
+    partitioned = next((f for f in files if "=" in f.parent.relative_to(base).as_posix()), None)
+    if partitioned is not None:
+        msg = (
+            f"`{partitioned}` is in a `key=value` folder, read as a column only for Parquet; "
+            "convert the CSV files to Parquet, or point at files that hold every column"
+        )
+        raise SourceError(msg)
+    return CsvSource(path, csv, files)
+
+
+def _open_glob(pattern: Path, csv: CsvOptions) -> Source:
     matches = sorted(
         (Path(p) for p in glob.glob(os.fspath(pattern), recursive=True)),
         key=lambda p: p.as_posix(),
     )
-    files = [p for p in matches if _is_parquet(p)]
+    is_kind, kind, suffixes = _is_parquet, "Parquet", "`*.parquet`"
+    if not any(_is_parquet(p) for p in matches) and any(_is_csv(p) for p in matches):
+        is_kind, kind, suffixes = _is_csv, "CSV", "`*.csv`"
+    files = [p for p in matches if is_kind(p)]
     if not files:
         msg = (
-            f"glob `{pattern}` matches no Parquet files (`*.parquet`, `*.pq`); "
+            f"glob `{pattern}` matches no Parquet files (`*.parquet`, `*.pq`) and no CSV files; "
             "check the pattern, and quote it so the shell does not expand it"
         )
         raise SourceError(msg)
     others = [p for p in matches if p.is_file() and p not in files]
     if others:
         msg = (
-            f"glob `{pattern}` matches files that are not Parquet, such as `{others[0]}`; "
-            "narrow the pattern to `*.parquet` files"
+            f"glob `{pattern}` matches files that are not {kind}, such as `{others[0]}`; "
+            f"narrow the pattern to {suffixes} files"
         )
         raise SourceError(msg)
     base = Path()
@@ -183,4 +206,6 @@ def _open_glob(pattern: Path) -> Source:
         if any(c in part for c in _GLOB_CHARS):
             break
         base /= part
+    if kind == "CSV":
+        return _open_csv_files(pattern, files, base, csv)
     return ParquetDatasetSource(pattern, files, base)

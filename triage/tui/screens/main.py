@@ -774,6 +774,7 @@ class MainScreen(Screen[None]):
         )
         self.fits.append(fit)
         self.fits.sort(key=lambda kept: kept.number)  # a pass bound for Fits may end first
+        self.query_one(ColumnsPane).refresh_figures(message.report.outcome.column_figures)
         fits_pane = self.query_one(FitsPane)
         fits_pane.fits = tuple(self.fits)
         if ended.takes_screen:

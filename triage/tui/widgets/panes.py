@@ -29,7 +29,7 @@ if TYPE_CHECKING:
     from triage.core.spec import ModelSpec
     from triage.results.compare import Comparison, ModelCriterion
     from triage.results.diagnostics import RowDiagnostics, WorstRow
-    from triage.results.fit import FitOutcome, ReportOutcome
+    from triage.results.fit import ColumnFigures, FitOutcome, ReportOutcome
 
 PaneId = Literal[
     "columns", "fit", "spread", "trend", "inputs", "flags", "worst", "groups", "row", "fits"
@@ -125,11 +125,28 @@ def _table(pane: Pane, table_id: str) -> DataTable[Any]:
     return pane.query_one(f"#{table_id}", DataTable)
 
 
+SAMPLE_MARK: Final = "~"
+"""Put before a figure of the Columns pane that comes from the sample, not every row."""
+
+
+def _sample_figure(value: float | None) -> str:
+    """Format a figure of the sample profile, marked as such; empty when there is none."""
+    from triage.views.format import format_number
+
+    return "" if value is None else SAMPLE_MARK + format_number(value)
+
+
 class ColumnsPane(Pane):
-    """The columns of the source, their role in the model and a profile from the sample."""
+    """The columns of the source, their role in the model and their figures.
+
+    Figures come from the sample profile (marked `SAMPLE_MARK`) until a pass over every row
+    of the source brings those of the model's columns (`refresh_figures`).
+    """
 
     profile: reactive[pl.DataFrame | None] = reactive(None, always_update=True)
     """One row per column from `profile_columns`, None until the data opens."""
+    figures: reactive[dict[str, ColumnFigures]] = reactive(dict, always_update=True)
+    """Figures over every row of the source, by column, from the passes that read them."""
     draft: reactive[ModelDraft] = reactive(ModelDraft)
     """The model being built (roles are shown beside the columns)."""
     keys_hint: reactive[str] = reactive("")
@@ -144,7 +161,7 @@ class ColumnsPane(Pane):
     def on_mount(self) -> None:
         """Name the table's columns."""
         _table(self, "columns-table").add_columns(
-            "role", "column", "type", "missing", "low", "mean", "high / top"
+            "role", "column", "type", "missing", "low", "mean", "high/top"
         )
 
     def watch_profile(self) -> None:
@@ -158,6 +175,15 @@ class ColumnsPane(Pane):
     def watch_keys_hint(self) -> None:
         """Show the keys once the keymap is known."""
         self._fill()
+
+    def watch_figures(self) -> None:
+        """Show the figures a pass over every row brought."""
+        self._fill()
+
+    def refresh_figures(self, figures: tuple[ColumnFigures, ...]) -> None:
+        """Take the figures of some columns over every row of the source (later ones win)."""
+        if figures:
+            self.figures = {**self.figures, **{figure.name: figure for figure in figures}}
 
     def _role(self, name: str) -> str:
         draft = self.draft
@@ -184,22 +210,32 @@ class ColumnsPane(Pane):
         row = table.cursor_row
         table.clear()
         for entry in self.profile.iter_rows(named=True):
-            high = entry["top"] if entry["top"] is not None else format_number(entry["high"])
-            table.add_row(
-                self._role(entry["name"]),
-                entry["name"],
-                entry["dtype"],
-                f"{entry['missing']:.1%}",
-                format_number(entry["low"]) if entry["low"] is not None else "",
-                format_number(entry["mean"]) if entry["mean"] is not None else "",
-                high or "",
-                key=entry["name"],
-            )
+            name = entry["name"]
+            every_row = self.figures.get(name)
+            if every_row is None:
+                missing = SAMPLE_MARK + f"{entry['missing']:.1%}"
+                low, mean, high = (_sample_figure(entry[key]) for key in ("low", "mean", "high"))
+            else:
+                missing = f"{every_row.missing / max(every_row.rows, 1):.1%}"
+                low, mean, high = (
+                    "" if value is None else format_number(value)
+                    for value in (every_row.low, every_row.mean, every_row.high)
+                )
+            if entry["top"] is not None:
+                high = SAMPLE_MARK + str(entry["top"])
+            role = self._role(name)
+            table.add_row(role, name, entry["dtype"], missing, low, mean, high, key=name)
         table.move_cursor(row=min(row, table.row_count - 1), animate=False)
+        source = (
+            f"{SAMPLE_MARK} marks a figure from a sample of whole row groups: the true "
+            "extremes may lie outside"
+        )
+        if self.figures:
+            source += "; the other figures come from every row of the source"
+        else:
+            source += "; a pass over every row brings the model's columns from every row"
         self.query_one(".pane--note", Static).update(
-            f"{self.profile.height} columns. missing, low, mean and high come from a sample of "
-            "whole row groups, not every row: the true extremes may lie outside. "
-            f"On a column: {self.keys_hint}"
+            f"{self.profile.height} columns. {source}. On a column: {self.keys_hint}"
         )
 
     def cursor_column(self) -> str | None:

@@ -1,0 +1,95 @@
+"""Reading the app at 80x24: the Columns pane's figures from every row after a full pass.
+
+Oracle: polars and numpy reading the whole (small) demo file directly.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import polars as pl
+import pytest
+from textual.widgets import Static
+
+from tests import tui_support
+from tests.test_tui_app import main_screen
+from tests.tui_support import build_app, press_id, settle, wait_until
+from triage.tui.widgets.panes import SAMPLE_MARK, ColumnsPane
+from triage.views.format import format_number
+
+config_home = tui_support.config_home
+demo_file = tui_support.demo_file
+
+SMALL = (80, 24)
+SAMPLE_ROWS = 2_000
+"""Two of the demo file's six row groups: the quick fit is a real sample."""
+
+TERMS = "distance_km, stops, weight_kg, hour, depot, vehicle"
+"""The README's first model."""
+
+
+def _note(app: Any) -> str:
+    """The Columns pane's note above its table."""
+    return str(app.screen.query_one(ColumnsPane).query_one(".pane--note", Static).content)
+
+
+def _cells(app: Any, column: str) -> list[str]:
+    """The Columns pane's cells of one column: role, name, type, missing, low, mean, high."""
+    table = app.screen.query_one("#columns-table")
+    return [str(cell) for cell in table.get_row(column)]
+
+
+async def test_full_pass_refreshes_the_model_columns_from_every_row(
+    config_home: Path, demo_file: Path
+) -> None:
+    app = build_app(demo_file, target="minutes", terms=TERMS, sample_rows=SAMPLE_ROWS)
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        await press_id(pilot, "pane-columns")
+        # before a pass over every row, every figure is marked as the sample's
+        for name in ("minutes", "delivery_id", "depot"):
+            assert _cells(app, name)[3].startswith(SAMPLE_MARK)
+        assert "a pass over every row brings" in _note(app)
+        await press_id(pilot, "start-full-pass")
+        screen = main_screen(app)
+        await wait_until(pilot, lambda: screen.passes.running_pass is None, "the full pass")
+        await settle(pilot)
+        whole = pl.read_parquet(demo_file)  # the oracle: polars on the whole file
+        for name in ("minutes", "distance_km", "stops", "weight_kg", "hour"):
+            values = whole[name].cast(pl.Float64).to_numpy()
+            usable = values[np.isfinite(values)]
+            _, _, _, missing, low, mean, high = _cells(app, name)
+            assert missing == f"{1 - usable.size / whole.height:.1%}", name
+            assert low == format_number(usable.min()), name
+            assert mean == format_number(usable.mean()), name
+            assert high == format_number(usable.max()), name
+        figures = app.screen.query_one(ColumnsPane).figures
+        assert figures["minutes"].high == whole["minutes"].max()
+        weights = whole["weight_kg"].to_numpy()
+        assert figures["weight_kg"].sd == pytest.approx(np.nanstd(weights, ddof=1), rel=1e-12)
+        # a text column of the model: its missing share from every row, its top from the sample
+        depot = _cells(app, "depot")
+        assert depot[3] == f"{whole['depot'].null_count() / whole.height:.1%}"
+        assert depot[6].startswith(SAMPLE_MARK)
+        # a column the model does not read keeps the sample's marked figures
+        assert all(cell.startswith(SAMPLE_MARK) for cell in _cells(app, "delivery_id")[3:])
+        assert "the other figures come from every row of the source" in _note(app)
+
+
+async def test_a_filtered_pass_over_every_row_leaves_the_sample_figures(
+    config_home: Path, demo_file: Path
+) -> None:
+    app = build_app(
+        demo_file, target="minutes", terms="distance_km", where="hour < 12", sample_rows=SAMPLE_ROWS
+    )
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        await press_id(pilot, "start-full-pass")
+        screen = main_screen(app)
+        await wait_until(pilot, lambda: screen.passes.running_pass is None, "the full pass")
+        await settle(pilot)
+        assert screen.current is not None and screen.current.is_full_pass
+        assert app.screen.query_one(ColumnsPane).figures == {}
+        assert _cells(app, "minutes")[6].startswith(SAMPLE_MARK)
