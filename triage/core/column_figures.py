@@ -39,37 +39,62 @@ class ColumnFiguresAccumulator:
         self.high = np.full(k, -np.inf)
 
     def update(self, frame: pl.DataFrame) -> None:
-        """Add the rows of one frame holding the columns (one polars query per frame).
+        """Add the rows of one frame holding the columns.
 
-        The query first reads every value as it is; a column whose figures come out NaN or
-        infinite (a NaN or inf among its values) is read again with those values masked.
-        Masking every column cost 0.82 of a 30-predictor fit's 1.5 CPU-s per 2 million rows
-        here, reading as it is 0.21.
+        A float64 column without nulls whose low and high are finite is summed by numpy
+        (shifted by its first value); every other column goes into one polars query that
+        reads the values as they are, and a column whose figures come out NaN or infinite
+        (a NaN or inf among its values) is read again with those values masked. Measured
+        here on 2 million rows of 30 predictors (one thread): masking every column in the
+        query cost 0.82 CPU-s, beside a fit of 0.56; reading as they are 0.21; with numpy 0.14.
         """
-        if frame.height == 0:
+        n = frame.height
+        if n == 0:
             return
-        found = frame.select(self._queries(frame, masked=False)).row(0, named=True)
-        unusable = [
-            i
-            for i, is_numeric in enumerate(self.is_numeric)
-            if is_numeric
-            and not all(
-                found[f"{i}_{figure}"] is None or math.isfinite(found[f"{i}_{figure}"])
-                for figure in ("low", "high", "mean", "var")
-            )
-        ]
-        if unusable:
-            again = frame.select(self._queries(frame, masked=True, only=unusable))
-            found.update(again.row(0, named=True))
         k = len(self.names)
-        missing = np.array([found[f"{i}_missing"] for i in range(k)], dtype=np.int64)
-        count = np.where(self.is_numeric, frame.height - missing, 0).astype(np.float64)
+        missing = np.zeros(k, dtype=np.int64)
         mean, m2 = np.zeros(k), np.zeros(k)
         low, high = np.full(k, np.inf), np.full(k, -np.inf)
-        for i in np.flatnonzero(count).tolist():
-            low[i], high[i] = found[f"{i}_low"], found[f"{i}_high"]
-            mean[i], m2[i] = found[f"{i}_mean"], found[f"{i}_var"] * count[i]
-        self._add(frame.height, missing, count, mean, m2, low, high)
+        queried = []
+        for i, name in enumerate(self.names):
+            series = frame[name]
+            if series.dtype != pl.Float64 or series.has_nulls():
+                queried.append(i)
+                continue
+            values = series.to_numpy()
+            low[i], high[i] = values.min(), values.max()  # NaN if any value is NaN
+            if not (math.isfinite(low[i]) and math.isfinite(high[i])):
+                queried.append(i)
+                continue
+            shifted = values - values[0]
+            total = float(shifted.sum())
+            mean[i] = values[0] + total / n
+            m2[i] = max(float(shifted @ shifted) - total * total / n, 0.0)
+        if queried:
+            found = frame.select(self._queries(frame, masked=False, only=queried))
+            figures = found.row(0, named=True)
+            unusable = [
+                i
+                for i in queried
+                if self.is_numeric[i]
+                and not all(
+                    figures[f"{i}_{figure}"] is None or math.isfinite(figures[f"{i}_{figure}"])
+                    for figure in ("low", "high", "mean", "var")
+                )
+            ]
+            if unusable:
+                again = frame.select(self._queries(frame, masked=True, only=unusable))
+                figures.update(again.row(0, named=True))
+            for i in queried:
+                missing[i] = figures[f"{i}_missing"]
+                if self.is_numeric[i] and missing[i] < n:
+                    low[i], high[i] = figures[f"{i}_low"], figures[f"{i}_high"]
+                    mean[i] = figures[f"{i}_mean"]
+                    m2[i] = figures[f"{i}_var"] * (n - missing[i])
+                else:
+                    low[i], high[i] = np.inf, -np.inf
+        count = np.where(self.is_numeric, n - missing, 0).astype(np.float64)
+        self._add(n, missing, count, mean, m2, low, high)
 
     def _queries(
         self, frame: pl.DataFrame, *, masked: bool, only: Sequence[int] | None = None
