@@ -58,6 +58,9 @@ TERMS = {
     "c": lambda f: f["c"],
     "square(a)": lambda f: f["a"] ** 2,
     "a:b": lambda f: f["a"] * f["b"],
+    # an indicator term: 1 where b is 0, NaN (left out) where b is missing or not finite;
+    # a level no row holds is refused, and numpy's rank finds its column of zeros
+    "b=0.0": lambda f: np.where(np.isfinite(f["b"]), (f["b"] == 0.0).astype(float), np.nan),
 }
 """Terms of the grammar and how the test builds each design column (with numpy)."""
 

@@ -21,6 +21,7 @@ from tests.tables import administrative_table
 from triage._typing import ALL_ROWS
 from triage.cli.main import main
 from triage.core.holdout import HoldoutRule
+from triage.core.indicator_terms import IndicatorRows
 from triage.core.lsq import fit_arrays
 from triage.core.spec import build_spec, parse_terms
 from triage.data import parquet as parquet_module
@@ -243,16 +244,39 @@ def test_compare_with_a_held_out_cut_fits_indicator_terms_as_statsmodels(
     assert outcome.rows_held_out == held_out.shape[0]
 
 
+def test_a_full_pass_finds_a_level_its_learning_sample_lacks(
+    table_source: tuple[pl.DataFrame, Path], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # The file is sorted by region: the last region lies in its last row group only, and the
+    # learning sample is one row group of twelve. Where the sample lacks the level, every
+    # row is counted, so the level is found wherever it lies.
+    table, path = table_source
+    monkeypatch.setattr(passes, "LEARNING_SAMPLE_ROWS", 2_500)
+    counted: list[int] = []
+    update = IndicatorRows.update
+
+    def count(counter: IndicatorRows, frame: pl.DataFrame) -> None:
+        counted.append(frame.height)
+        update(counter, frame)
+
+    monkeypatch.setattr(IndicatorRows, "update", count)
+    source = open_source(path)
+    last = table["region"].max()
+    spec = build_spec(source.schema(), target="y", terms=f"age, region={last}")
+    full_counts = 0
+    for seed in range(4):
+        counted.clear()
+        fit = passes.fit_model(source, spec, rows=ALL_ROWS, seed=seed).fit
+        assert fit.names[-1] == f"region={last}"
+        full_counts += sum(counted) == 2_500 + table.height  # the sample, then every row
+    assert full_counts >= 1
+
+
 def test_a_level_the_column_does_not_hold_is_refused_naming_some_levels(
     table_source: tuple[pl.DataFrame, Path],
 ) -> None:
-    table, path = table_source
+    _, path = table_source
     source = open_source(path)
-    # The file is sorted by region: R11 lies in its last rows only. Every row is counted
-    # before a full pass, so the level is found wherever it lies.
-    last = table["region"].max()
-    spec = build_spec(source.schema(), target="y", terms=f"age, region={last}")
-    assert passes.fit_model(source, spec, rows=ALL_ROWS).fit.names[-1] == f"region={last}"
     for rows, basis in ((ALL_ROWS, "the rows read"), (6_000, "the sample")):
         spec = build_spec(source.schema(), target="y", terms="age, channel=fax")
         with pytest.raises(SpecError) as error:

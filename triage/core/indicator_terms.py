@@ -45,17 +45,21 @@ def indicator_match(term: Term, dtype: pl.DataType | type[pl.DataType]) -> pl.Ex
     A null, NaN or infinite value of the column gives NaN, so the row is left out (and
     counted) as a row with a missing value, never read as "another level".
     """
+    assert term.column is not None  # indicator terms have one
+    return (
+        pl.when(present_value(term.column, dtype))
+        .then(holds_level(term, dtype).cast(pl.Float64))
+        .otherwise(pl.lit(float("nan")))
+    )
+
+
+def holds_level(term: Term, dtype: pl.DataType | type[pl.DataType]) -> pl.Expr:
+    """Return True where the indicator's column holds its level, null where it is missing."""
     column, level = term.column, term.level
     assert column is not None and level is not None  # indicator terms have both
     value, _ = indicator_value(column, dtype, level)
-    is_level = pl.col(column) == pl.lit(value)
-    if dtype.is_decimal():
-        is_level = pl.col(column).cast(pl.Float64) == pl.lit(value)
-    return (
-        pl.when(present_value(column, dtype))
-        .then(is_level.cast(pl.Float64))
-        .otherwise(pl.lit(float("nan")))
-    )
+    values = pl.col(column).cast(pl.Float64) if dtype.is_decimal() else pl.col(column)
+    return values == pl.lit(value)
 
 
 @dataclass(frozen=True)
@@ -83,8 +87,9 @@ class IndicatorLevel:
 class IndicatorRows:
     """Counts the rows holding each indicator term's level; mergeable in any order.
 
-    Beside the counts it keeps a few levels of each column (`LevelCounter` capped at
-    `SHOWN_LEVELS`), for the message that refuses a level no row holds.
+    While some indicator has no row yet, it also keeps a few levels of each column
+    (`LevelCounter` capped at `SHOWN_LEVELS`), for the message that refuses a level no row
+    holds; once every indicator has a row, batches are only counted.
 
     Parameters
     ----------
@@ -106,20 +111,26 @@ class IndicatorRows:
         if not self._terms:
             return
         found = frame.select(
-            (indicator_match(term, dtype) == 1.0).sum().alias(f"__rows{k}")
+            holds_level(term, dtype).sum().alias(f"__rows{k}")
             for k, (term, dtype) in enumerate(zip(self._terms, self._dtypes, strict=True))
         ).row(0)
         self._rows = [total + int(n) for total, n in zip(self._rows, found, strict=True)]
-        self._levels.update(frame)
+        if not all(self._rows):
+            self._levels.update(frame)
 
     def merge(self, other: IndicatorRows) -> IndicatorRows:
         """Add another counter's counts into this one; return this one."""
         self._rows = [a + b for a, b in zip(self._rows, other._rows, strict=True)]
-        self._levels.merge(other._levels)
+        if not all(self._rows):
+            self._levels.merge(other._levels)
         return self
 
     def finalize(self) -> dict[str, IndicatorLevel]:
-        """Return what was found for each indicator, by term label."""
+        """Return what was found for each indicator, by term label.
+
+        The levels are complete only for an indicator that no row holds (the only one a
+        message names them for).
+        """
         tables = self._levels.finalize()
         found: dict[str, IndicatorLevel] = {}
         for term, n_rows in zip(self._terms, self._rows, strict=True):
