@@ -11,6 +11,7 @@ from __future__ import annotations
 import dataclasses
 import itertools
 import math
+import pickle
 
 import numpy as np
 import polars as pl
@@ -22,7 +23,13 @@ from statsmodels.stats.outliers_influence import OLSInfluence
 from statsmodels.stats.stattools import durbin_watson, jarque_bera
 
 from triage._typing import CRITERIA
-from triage.core.binning import EDGE_SAMPLE_VALUES, edge_sample, quantile_edges
+from triage.core.binning import (
+    EDGE_SAMPLE_VALUES,
+    edge_sample,
+    pack_counts,
+    quantile_edges,
+    unpack_counts,
+)
 from triage.core.design import DesignBatch
 from triage.core.diagnostics import DiagnosticsAccumulator
 from triage.core.diagnostics_config import DiagnosticsConfig, default_config
@@ -337,10 +344,24 @@ def test_diagnostics_streamed_and_merged_equal_one_batch(case, rng) -> None:
     # merged in reverse: Durbin-Watson must still join the batches in file order.
     dealt = [run(fit, config, pieces[k::3]) for k in range(3)]
     interleaved = dealt[2].merge(dealt[1]).merge(dealt[0]).finalize()
+    # Parts pickled on the way, as a cluster ships them (counts packed small and restored)
+    parts = [pickle.dumps(run(fit, config, pieces[:4])), pickle.dumps(run(fit, config, pieces[4:]))]
+    shipped = pickle.loads(parts[0]).merge(pickle.loads(parts[1]))
     # Oracle: the one-batch pass (itself checked against statsmodels above).
     assert_same(whole, streamed)
     assert_same(whole, merged)
     assert_same(whole, interleaved)
+    assert_same(whole, shipped.finalize())
+
+
+def test_packed_counts_come_back_exactly() -> None:
+    # numpy as oracle: every count comes back equal and int64, whatever type it was packed in
+    for top in (0, 255, 256, 65_536, 2**33):
+        counts = np.array([[0, 1, top], [top, 3, 0]], dtype=np.int64)
+        restored = unpack_counts(pack_counts(counts))
+        assert restored.dtype == np.int64
+        np.testing.assert_array_equal(restored, counts)
+    assert np.dtype(pack_counts(np.array([255]))[0]) == np.uint8
 
 
 def test_diagnostics_merge_rejects_another_fit(case) -> None:

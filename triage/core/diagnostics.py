@@ -19,6 +19,7 @@ Flags are aids to judgement: each names its rule, and none is proof of an error.
 
 from __future__ import annotations
 
+import functools
 import math
 from typing import TYPE_CHECKING, Any, Final
 
@@ -29,7 +30,9 @@ from numpy.typing import NDArray
 from triage._typing import CRITERIA, Criterion
 from triage.core.binning import (
     BinLookup,
+    pack_counts,
     quantiles_from_counts,
+    unpack_counts,
 )
 from triage.core.design import CodedBatch, DesignBatch
 from triage.core.flag_rules import (
@@ -96,6 +99,16 @@ QUANTILE_CHART_PROBS: Final = (
 """Probabilities of the studentized-residual quantiles drawn against the normal's."""
 
 _WORST_FIELDS: Final = ("fitted", "resid", "weighted_resid", "studentized", "leverage", "cooks")
+
+
+@functools.cache
+def _studentized_lookup() -> BinLookup:
+    """Return the lookup of `STUDENTIZED_EDGES`, made once (kept out of every pickle)."""
+    return BinLookup(STUDENTIZED_EDGES)
+
+
+_PACKED_COUNTS: Final = ("_hist", "_fine", "_studentized")
+"""Count arrays of `DiagnosticsAccumulator` pickled with `pack_counts`."""
 
 
 def _meat_roots(
@@ -175,7 +188,6 @@ class DiagnosticsAccumulator:
         self._min = math.inf
         self._max = -math.inf
         self._studentized = np.zeros(STUDENTIZED_EDGES.size + 1, dtype=np.int64)
-        self._studentized_lookup = BinLookup(STUDENTIZED_EDGES)
         self._studentized_range = (math.inf, -math.inf)
         self._binned = {
             name: BinnedResiduals(edges, config.fine_edges)
@@ -214,6 +226,19 @@ class DiagnosticsAccumulator:
         self._n_studentized = 0
         self._n_leverage = 0
         self._n_cooks = 0
+
+    def __getstate__(self) -> dict[str, Any]:
+        """Pickle the histograms' counts packed small (`pack_counts`), for a cluster."""
+        state = self.__dict__.copy()
+        for name in _PACKED_COUNTS:
+            state[name] = pack_counts(state[name])
+        return state
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        """Restore a pickled accumulator, its counts as int64 again."""
+        for name in _PACKED_COUNTS:
+            state[name] = unpack_counts(state[name])
+        self.__dict__.update(state)
 
     def _check_frame(self, batch: DesignBatch | CodedBatch) -> None:
         """Raise `SpecError` if a binned predictor or segment column is not in the frame."""
@@ -498,7 +523,7 @@ class DiagnosticsAccumulator:
         finite = studentized[np.isfinite(studentized)]
         if not finite.size:
             return
-        cells = self._studentized_lookup.fine(finite)
+        cells = _studentized_lookup().fine(finite)
         self._studentized += np.bincount(cells, minlength=self._studentized.size)
         low, high = self._studentized_range
         self._studentized_range = (min(low, float(finite.min())), max(high, float(finite.max())))

@@ -8,13 +8,13 @@ from __future__ import annotations
 
 import itertools
 import math
-from typing import Final
+from typing import Any, Final
 
 import numpy as np
 import polars as pl
 from numpy.typing import NDArray
 
-from triage.core.binning import BinLookup, quantiles_from_counts
+from triage.core.binning import BinLookup, pack_counts, quantiles_from_counts, unpack_counts
 from triage.core.moments import pool_groups
 from triage.results.diagnostics import ResidualBin, SegmentLevel
 
@@ -57,6 +57,17 @@ class BinnedResiduals:
         # edges): `finalize` needs them only where they lie beyond the end edges.
         self.min_x = math.inf
         self.max_x = -math.inf
+
+    def __getstate__(self) -> dict[str, Any]:
+        """Pickle the fine counts packed small (`pack_counts`)."""
+        state = self.__dict__.copy()
+        state["counts"] = pack_counts(self.counts)
+        return state
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        """Restore a pickled accumulator, its counts as int64 again."""
+        state["counts"] = unpack_counts(state["counts"])
+        self.__dict__.update(state)
 
     def update(
         self, x: FloatArray, e: FloatArray, cell: IntArray, below: IntArray, above: IntArray
