@@ -65,6 +65,13 @@ def test_export_refuses_protected_paths_even_with_force(tmp_path: Path) -> None:
     with pytest.raises(ExportError, match="lies inside"):
         write_frame(_frame(2), folder / "extra.parquet", protected=[folder])
     assert list(folder.iterdir()) == []
+    # an input read by a file:// URL is its local file; other URLs name no local file
+    guard = [source.as_uri(), "https://example.org/input.parquet"]
+    with pytest.raises(ExportError, match="input"):
+        write_frame(_frame(2), source, force=True, protected=guard)
+    assert source.read_bytes() == before
+    write_frame(_frame(2), tmp_path / "other.parquet", protected=guard)
+    assert pl.read_parquet(tmp_path / "other.parquet").height == 2
 
 
 def test_export_bad_targets(tmp_path: Path) -> None:

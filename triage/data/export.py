@@ -19,6 +19,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from triage.data.bus_guard import TEMPORARIES
+from triage.data.remote import is_url, local_file
 from triage.errors import ExportError
 
 PERSONAL_DATA_NOTICE: Final[str] = (
@@ -85,6 +86,11 @@ def _is_protected(path: Path, protected: Iterable[str | os.PathLike[str]]) -> Pa
     """Return the protected path (or glob) that `path` is, lies inside, or matches, else None."""
     resolved = path.resolve()
     for item in protected:
+        if isinstance(item, str) and is_url(item):  # an input read by URL: its local file, if any
+            local = local_file(item)
+            if local is None:
+                continue
+            item = local
         given = Path(item).expanduser()
         if any(c in str(given) for c in _GLOB_CHARS) and not given.exists():
             if _matches_glob(path, given):

@@ -16,7 +16,7 @@ import re
 import zlib
 from pathlib import Path, PurePosixPath
 from typing import Any, Final
-from urllib.parse import urlsplit
+from urllib.parse import unquote, urlsplit
 
 import pyarrow as pa
 
@@ -55,6 +55,18 @@ def url_name(url: str) -> str:
     'deliveries.parquet'
     """
     return PurePosixPath(urlsplit(url).path).name
+
+
+def local_file(url: str) -> Path | None:
+    """Return the local file a ``file://`` URL names, or None for any other URL.
+
+    Examples
+    --------
+    >>> local_file("file:///data/deliveries%20old.parquet"), local_file("s3://b/k.parquet")
+    (PosixPath('/data/deliveries old.parquet'), None)
+    """
+    parts = urlsplit(url)
+    return Path(unquote(parts.path)) if parts.scheme.lower() == "file" else None
 
 
 def file_name(file: FileName) -> str:
