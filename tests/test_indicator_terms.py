@@ -29,6 +29,7 @@ from triage.data.source import ROW_INDEX, open_source
 from triage.engine import passes
 from triage.engine.compare import compare_models
 from triage.errors import SpecError
+from triage.views.compare import comparison_to_json, render_comparison
 from triage.views.json import fit_to_json
 from triage.views.text import render_aliased
 
@@ -348,6 +349,19 @@ def test_a_level_with_no_rows_left_is_worded_apart_from_aliasing(
     document = fit_to_json(outcome)
     assert document["aliased"] == ["income_twice"]
     assert document["no_rows_left"] == ["channel=airport"]
+    # compare: the indicator of the level (a comparison codes a categorical from the rows
+    # every model can use, so there `channel` alone has no airport column)
+    indicators = "age, channel=airport, channel=web, income, income_twice"
+    with_indicators = build_spec(source.schema(), target="y", terms=indicators)
+    smaller = build_spec(source.schema(), target="y", terms="age, income")
+    compared = compare_models(
+        source, [smaller, with_indicators], ["age, income", indicators], rows=ALL_ROWS
+    )
+    model = comparison_to_json(compared)["models"][1]
+    assert (model["aliased"], model["no_rows_left"]) == (["income_twice"], ["channel=airport"])
+    lines = render_comparison(compared, width=80).split("\n")
+    assert "#2: no estimate (aliased) for income_twice" in lines
+    assert "#2: no estimate (no rows left after missing values) for channel=airport" in lines
 
 
 def test_true_aliasing_matches_numpys_rank_and_has_no_rows_left(rng: np.random.Generator) -> None:

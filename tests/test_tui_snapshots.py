@@ -44,6 +44,14 @@ async def test_tui_snapshot_sample_panes_80x24(
         await _capture(pilot, f"sample_{pane}_80x24")
 
 
+async def test_tui_snapshot_quantile_chart_80x24(config_home: Path, demo_file: Path) -> None:
+    app = build_app(demo_file, sample_rows=2_000, **MODEL)
+    async with app.run_test(size=(80, 24)) as pilot:
+        await settle(pilot)
+        await press_id(pilot, "toggle-quantile-chart")
+        await _capture(pilot, "sample_quantile_chart_80x24")
+
+
 async def test_tui_snapshot_rows_80x24(config_home: Path, demo_file: Path) -> None:
     app = build_app(demo_file, **MODEL)
     async with app.run_test(size=(80, 24)) as pilot:

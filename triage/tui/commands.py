@@ -73,6 +73,7 @@ def _group(binding_id: str) -> str:
         "start-full-pass",
         "cancel-pass",
         "toggle-robust",
+        "toggle-quantile-chart",
         "run-checks",
         "show-checks",
         "next-predictor",

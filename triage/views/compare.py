@@ -347,9 +347,9 @@ def comparison_to_json(outcome: ComparisonOutcome) -> dict[str, Any]:
     dict
         ``models`` in the order given, each with ``terms``, ``n``, ``r2``, ``adj_r2``,
         ``aic``, ``bic``, ``holdout_r2``, ``holdout_rmse`` (plus ``cv_rmse``,
-        ``df_resid``, ``holdout_n`` and ``notes``); ``nested_f`` with ``smaller`` and
-        ``larger`` as the models' terms, ``f``, ``df1``, ``df2``, ``p``; ``best``: the
-        terms of the best model per criterion.
+        ``df_resid``, ``holdout_n``, ``aliased``, ``no_rows_left`` and ``notes``);
+        ``nested_f`` with ``smaller`` and ``larger`` as the models' terms, ``f``, ``df1``,
+        ``df2``, ``p``; ``best``: the terms of the best model per criterion.
     """
     comparison = outcome.comparison
     models = [
@@ -365,6 +365,8 @@ def comparison_to_json(outcome: ComparisonOutcome) -> dict[str, Any]:
             "cv_rmse": m.cv_rmse,
             "df_resid": m.df_resid,
             "holdout_n": m.holdout_n,
+            "aliased": list(m.aliased),
+            "no_rows_left": list(m.no_rows),
             "notes": list(m.notes),
         }
         for m in comparison.models

@@ -873,6 +873,18 @@ class MainScreen(Screen[None]):
         if self.current is not None:
             self.show_fit(self.current)
 
+    def action_toggle_quantile_chart(self) -> None:
+        """Switch the Spread pane between histogram and quantile chart; bring it forward.
+
+        From a pane where Spread is not in view, the quantile chart comes forward.
+        """
+        spread = self.query_one(SpreadPane)
+        if spread.has_class("-shown"):
+            spread.is_quantile_chart = not spread.is_quantile_chart
+        else:
+            spread.is_quantile_chart = True
+            self.action_show_pane("spread")
+
     def action_next_predictor(self) -> None:
         """Show residuals against the next numeric predictor."""
         self.predictor_index += 1

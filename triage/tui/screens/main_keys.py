@@ -33,6 +33,7 @@ FIT_ACTIONS: Final = frozenset(
         "clear_marks",
         "export_rows",
         "show_checks",
+        "toggle_quantile_chart",
     }
 )
 """Actions that need a fit on screen."""
@@ -170,6 +171,15 @@ MAIN_BINDINGS: Final[list[BindingType]] = [
         show=False,
         id="toggle-robust",
         tooltip="Show standard errors robust to changing spread (HC3), or the usual ones.",
+    ),
+    Binding(
+        "q",
+        "toggle_quantile_chart",
+        "quantile chart",
+        show=False,
+        id="toggle-quantile-chart",
+        tooltip="Show the normal quantile chart of the studentized residuals across the Spread "
+        "pane (tails and skew at a glance), or the histogram again.",
     ),
     Binding(
         "v",

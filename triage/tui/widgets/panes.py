@@ -684,15 +684,26 @@ SIDE_BY_SIDE_WIDTH: Final = 70
 
 
 class SpreadPane(ChartPane):
-    """The residual histogram."""
+    """The residual histogram, with the normal quantile chart beside it or on its own."""
+
+    is_quantile_chart: reactive[bool] = reactive(False)
+    """Draw the normal quantile chart across the whole pane instead of the histogram."""
+
+    def watch_is_quantile_chart(self) -> None:
+        """Redraw in the other view."""
+        if self.is_mounted:
+            self.query_one(ChartBody).refresh()
 
     def draw(self, width: int, height: int) -> str | None:
-        """Draw the histogram of residuals."""
+        """Draw the histogram of residuals (and the quantile chart when it fits beside it)."""
         if self.shown is None:
             return None
         from triage.views.charts import render_histogram, render_quantile_chart, side_by_side
 
         diagnostics = self.shown.report.diagnostics
+        if self.is_quantile_chart:
+            quantiles = diagnostics.studentized_quantiles
+            return render_quantile_chart(quantiles, width, height, color=self.color())
         if width < SIDE_BY_SIDE_WIDTH:
             return render_histogram(diagnostics.histogram, width, height, color=self.color())
         left = width * 11 // 20
