@@ -398,7 +398,7 @@ def test_cluster_url_sources_equal_local_engine_on_a_plain_path(
 ) -> None:
     # The workers open the URL themselves (fsspec); the parts are those of the plain file,
     # so both engines on the URL and the local engine on the path give the same bits.
-    said("or at a URL that every worker can open. A URL names one Parquet or Arrow IPC", README)
+    said("or at a URL that every worker can open. A URL names a Parquet or Arrow IPC file", README)
     path = other_formats["csv"].parent / name
     url = f"{served}/{name}" if scheme == "http" else path.as_uri()
     plain, remote = open_source(path), open_source(url)
@@ -409,6 +409,24 @@ def test_cluster_url_sources_equal_local_engine_on_a_plain_path(
     on_path = report_to_json(passes.run_report(plain, spec, **options))
     assert report_to_json(passes.run_report(remote, spec, engine=engine, **options)) == on_path
     assert report_to_json(passes.run_report(remote, spec, **options)) == on_path
+
+
+@pytest.mark.parametrize("pattern", ["{root}", "{root}/", "{root}/part-*.parquet"])
+def test_cluster_url_folder_and_glob_equal_local_engine_on_the_folder(
+    pattern: str, folder: Path, engine: ClusterEngine
+) -> None:
+    said("or a folder or glob of Parquet files", README)
+    url = pattern.format(root=folder.as_uri())
+    plain, remote = open_source(folder), open_source(url)
+    assert remote.schema() == plain.schema()
+    assert remote.files == tuple(path.as_uri() for path in plain.files)  # type: ignore[union-attr]
+    spec = build_spec(plain.schema(), target=None, terms=TERMS)
+    options: dict[str, Any] = {"rows": ALL_ROWS, "by": ("depot",), "top_k": 25}
+    on_path = report_to_json(passes.run_report(plain, spec, **options))
+    on_cluster = report_to_json(passes.run_report(remote, spec, engine=engine, **options))
+    assert on_cluster["data"].pop("source") == f"{url}: Parquet, 4 files, 16 row groups"
+    on_path["data"].pop("source")  # the folder's path
+    assert on_cluster == on_path
 
 
 @pytest.mark.parametrize("name", ["deliveries.parquet", "deliveries.arrow"])
@@ -613,7 +631,7 @@ def test_cli_source_the_workers_cannot_see_exits_2_with_one_line(
     [
         ("http://127.0.0.1:{closed}/deliveries.parquet", "cannot open"),
         ("nosuchstore://bucket/deliveries.parquet", "Protocol not known"),
-        ("http://127.0.0.1:{closed}/deliveries.csv", "must name one Parquet"),
+        ("http://127.0.0.1:{closed}/deliveries.csv", "must name a Parquet"),
     ],
 )
 def test_cli_url_that_cannot_be_opened_exits_2_with_one_line(url: str, says: str) -> None:
