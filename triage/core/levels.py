@@ -208,7 +208,7 @@ class FoundLevels:
         Returns the codes of those rows (the new levels come last), so the rest of the
         frame need not be coded again.
         """
-        picked = frame.filter(pl.Series(rows))
+        picked = frame.select(self.column).filter(pl.Series(rows))
         new = picked.select(
             _sortable(self.column, self.dtype).unique(maintain_order=True).alias(self.column)
         ).to_series()
