@@ -75,7 +75,8 @@ def open_source(path: str | os.PathLike[str], *, csv: CsvOptions = DEFAULT_CSV_O
         ``data/**/*.parquet``); a ``.csv``/``.tsv``/``.txt`` file, optionally ``.gz``, or a
         folder or glob of them (sharing a header; read with the first file's types); an
         Arrow IPC file (``.arrow``/``.feather``/``.ipc``); or the URL of a Parquet or Arrow
-        IPC file (``s3://``, ``https://``, ``file://``: any that fsspec opens).
+        IPC file, or of a folder or glob of Parquet files (``s3://``, ``https://``,
+        ``file://``: any that fsspec opens; a folder or glob needs a store that lists).
     csv : CsvOptions, default=DEFAULT_CSV_OPTIONS
         How to parse delimited text; ignored for other kinds.
 
