@@ -324,17 +324,20 @@ def test_readme_cluster_tasks_per_source(tmp_path: Path) -> None:
         assert first_rows == starts, name
 
 
-def test_readme_urls_name_one_parquet_or_ipc_file(tmp_path: Path) -> None:
-    said("A URL names one Parquet or Arrow IPC file in any store fsspec opens", README)
-    said("A CSV file, a folder or a glob is read from a disk, not from a URL.", README)
-    pl.DataFrame({"code": [3, 1, 2], "depot": ["north", "north", None]}).write_csv(
-        tmp_path / "d.csv"
+def test_readme_urls_name_parquet_or_ipc_files(tmp_path: Path) -> None:
+    said(
+        "A URL names a Parquet or Arrow IPC file, or a folder or glob of Parquet files",
+        README,
     )
-    for url in [(tmp_path / "d.csv").as_uri(), f"{tmp_path.as_uri()}/*.parquet"]:
-        with pytest.raises(SourceError, match="must name one Parquet"):
-            open_source(url)
-    pl.read_csv(tmp_path / "d.csv").write_parquet(tmp_path / "d.parquet")
-    assert open_source((tmp_path / "d.parquet").as_uri()).row_count() == 3
+    said("A CSV file is read from a disk, not from a URL.", README)
+    frame = pl.DataFrame({"code": [3, 1, 2], "depot": ["north", "north", None]})
+    frame.write_csv(tmp_path / "d.csv")
+    with pytest.raises(SourceError, match="must name a Parquet"):
+        open_source((tmp_path / "d.csv").as_uri())
+    frame.write_parquet(tmp_path / "d.parquet")
+    root = tmp_path.as_uri()
+    for url in [(tmp_path / "d.parquet").as_uri(), root, f"{root}/*.parquet"]:
+        assert open_source(url).row_count() == 3
 
 
 # ── legibility at 80 columns ─────────────────────────────────────────────────────────────

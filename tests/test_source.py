@@ -287,6 +287,41 @@ def test_source_folder_parts_keep_positions_and_partition_columns(
     assert got["region"].unique().sort().to_list() == ["north east", "south", "west"]
 
 
+def test_source_url_folder_and_glob_equal_the_folder_on_disk(tmp_path: Path) -> None:
+    # Oracle: polars reading the folder itself (its own typing of the partition values,
+    # here text, integers with a missing value, floats and dates), against the same folder
+    # named by file:// URLs and read through fsspec and pyarrow.
+    root = tmp_path / "by_region"
+    frame = _frame(600, seed=8)
+    folders = [
+        ("region=north east", "year=2023", "rate=0.5", "day=2024-01-01"),
+        ("region=south", "year=__HIVE_DEFAULT_PARTITION__", "rate=1", "day=2024-02-01"),
+        ("region=west", "year=2024", "rate=2.25", "day=2024-03-01"),
+    ]
+    for k, names in enumerate(folders):
+        folder = root.joinpath(*names)
+        folder.mkdir(parents=True)
+        pq.write_table(
+            frame.slice(200 * k, 200).to_arrow(), folder / "a.parquet", row_group_size=64
+        )
+    (root / "_SUCCESS").write_text("")
+    on_disk = open_source(root)
+    every = _scan_all(on_disk, list(on_disk.schema()))
+    assert every.schema["year"] == pl.Int64 and every.schema["day"] == pl.Date
+    assert every["year"].null_count() == 200
+    for url in (root.as_uri(), f"{root.as_uri()}/*/*/*/*/*.parquet"):
+        source = open_source(url)
+        assert source.schema() == on_disk.schema()
+        assert_frame_equal(_scan_all(source, list(source.schema()), batch_rows=50), every)
+        assert_frame_equal(
+            source.read_rows([599, 0, 200, 64]), on_disk.read_rows([599, 0, 200, 64])
+        )
+        parts = source.scan_parts(["x", "year"], where=pl.col("x") > 0, part_rows=1)
+        assert len(parts) == 12  # 3 files of 4 row groups
+        got = pl.concat(b.frame for part in parts for b in part())
+        assert_frame_equal(got, every.filter(pl.col("x") > 0).select(ROW_INDEX, "x", "year"))
+
+
 def test_source_parts_pickle_without_the_source(parquet_file: Path) -> None:
     # A part crosses to a cluster worker: it must pickle small and read the same rows there.
     import pickle

@@ -6,6 +6,7 @@ statsmodels OLS (with its HC3 covariance and influence measures) on the same row
 
 from __future__ import annotations
 
+import functools
 import gc
 import re
 import threading
@@ -95,8 +96,16 @@ class GatedSource:
         return getattr(self._inner, name)
 
     def scan_batches(self, *args: Any, **kwargs: Any) -> Iterator[Any]:
+        return self._gated(self._inner.scan_batches(*args, **kwargs))
+
+    def scan_parts(self, *args: Any, **kwargs: Any) -> list[Callable[[], Iterator[Any]]]:
+        # a full pass reads a source's parts (one, for the small demo file), not scan_batches
+        parts = self._inner.scan_parts(*args, **kwargs)
+        return [functools.partial(lambda part: self._gated(part()), part) for part in parts]
+
+    def _gated(self, batches: Iterator[Any]) -> Iterator[Any]:
         self.batches_started.set()
-        for batch in self._inner.scan_batches(*args, **kwargs):
+        for batch in batches:
             if not self.gate.acquire(timeout=tui_support.HANG_S):  # fail, never a short pass
                 msg = f"the test released no batch in {tui_support.HANG_S:.0f} s"
                 raise AssertionError(msg)

@@ -6,12 +6,15 @@ Oracle for the figures: polars and numpy reading the whole (small) demo file dir
 
 from __future__ import annotations
 
+import itertools
+import re
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import polars as pl
 import pytest
+from rich.cells import cell_len
 from textual.command import CommandList
 from textual.widgets import Static
 
@@ -20,6 +23,7 @@ from tests.test_tui_app import main_screen
 from tests.tui_support import build_app, key_for, press_id, screen_text, settle, wait_until
 from triage.tui.screens.help import HelpScreen
 from triage.tui.widgets.panes import SAMPLE_MARK, ColumnsPane, SpreadPane
+from triage.tui.widgets.status import HEADING_MAX_LINES, heading_lines
 from triage.views.format import format_number
 
 config_home = tui_support.config_home
@@ -139,3 +143,55 @@ async def test_quantile_chart_key_shows_it_across_spread_and_is_listed(
         await pilot.press("enter")
         await settle(pilot)
         assert spread.is_quantile_chart
+
+
+LONGER = (
+    "distance_km, square(distance_km), log(stops), weight_kg, hour, depot, vehicle, stops:weight_kg"
+)
+"""Eight terms, a filter beside them: more than two lines' worth at 60 columns."""
+
+
+def _heading(app: Any) -> list[str]:
+    """The heading's lines as drawn: from under the pane strip to the first pane's border."""
+    lines = screen_text(app).splitlines()[1:]
+    return [line for line in itertools.takewhile(lambda line: "╭" not in line, lines)]
+
+
+@pytest.mark.parametrize(
+    ("terms", "where", "size", "n_lines"),
+    [(TERMS, None, SMALL, 2), (LONGER, "hour > 8", SMALL, 2), (LONGER, "hour > 8", (60, 24), 3)],
+)
+async def test_the_heading_wraps_and_never_cuts_a_term(
+    config_home: Path,
+    demo_file: Path,
+    terms: str,
+    where: str | None,
+    size: tuple[int, int],
+    n_lines: int,
+) -> None:
+    app = build_app(demo_file, target="minutes", terms=terms, where=where, sample_rows=SAMPLE_ROWS)
+    async with app.run_test(size=size) as pilot:
+        await settle(pilot)
+        heading = _heading(app)
+        assert len(heading) == n_lines
+        assert all(cell_len(line) <= size[0] for line in heading)
+        assert "…" not in "".join(heading)
+        words = " ".join(" ".join(heading).split())
+        assert words.startswith("fit #1 SAMPLE: minutes ~ ")
+        for term in terms.split(", "):
+            # each term whole on one line, as a term (between `~`/`+` and `+`/the end)
+            assert any(re.search(rf"[~+] {re.escape(term)}( |$)", line) for line in heading)
+        if where is not None:
+            assert words.endswith(f"| where {where}")
+
+
+def test_heading_lines_break_between_terms_and_end_in_an_ellipsis_only_past_three() -> None:
+    head = "fit #12 EVERY ROW: "
+    formula = "minutes ~ " + " + ".join(f"log(column_{k})" for k in range(30))
+    lines = heading_lines(head, formula, ["where hour > 8"], 78)
+    assert len(lines) == HEADING_MAX_LINES and lines[-1].endswith("…")
+    assert all(cell_len(line) <= 78 for line in lines)
+    assert lines[1].startswith("  + log(column_")  # a continuation starts with a whole term
+    wide = heading_lines("", "y ~ " + "x" * 50, ["where a > 1"], 30)
+    assert [cell_len(line) for line in wide] == [30, 26, 16]  # folded only where no break fits
+    assert heading_lines("", "y ~ a + b", [], 78) == ["y ~ a + b"]

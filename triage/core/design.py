@@ -1141,10 +1141,11 @@ class OpenLevelDesign:
             present = has.to_numpy()
             new = present & (codes < 0)
             if new.any():
-                lv.add_new(frame, new)
+                new_codes = lv.add_new(frame, new)
                 if len(lv) > self.cap:
                     self._refuse(levels)
-                codes = frame.select(lv.code()).to_series().to_numpy()
+                codes = codes.copy()
+                codes[new] = new_codes
             lv.count(codes[present])
             found.append(codes)
         return found

@@ -19,6 +19,7 @@ Flags are aids to judgement: each names its rule, and none is proof of an error.
 
 from __future__ import annotations
 
+import copy
 import functools
 import math
 from typing import TYPE_CHECKING, Any, Final
@@ -42,7 +43,7 @@ from triage.core.flag_rules import (
     bonferroni_bound,
     raise_flags,
 )
-from triage.core.indicators import coded_gram
+from triage.core.indicators import LevelGram
 from triage.core.lsq import GRAM_CHUNK_ROWS, shifted_gram
 from triage.core.moments import StreamMoments
 from triage.core.residual_breakdown import BinnedResiduals, SegmentResiduals
@@ -219,6 +220,10 @@ class DiagnosticsAccumulator:
             )
         )
         self._meat = np.zeros((3, rank, rank))
+        # Coded rows' meats as blocks of counts and sums, written out once by `_meats`: a
+        # Gram matrix over every indicator per batch cost O(p²) a batch, blocks O(L q).
+        self._coded_meat: list[LevelGram] = []
+        self._coded_layout: tuple[IntArray, list[IntArray], int] | None = None
         self._leverage_threshold = LEVERAGE_FACTOR * rank / fit.n
         self._cooks_threshold = COOKS_NUMERATOR / fit.n
         self._extreme_threshold = bonferroni_bound(fit.n, fit.df_resid)
@@ -353,23 +358,48 @@ class DiagnosticsAccumulator:
         weights: FloatArray | None,
         rd: RowDiagnostics,
     ) -> None:
-        """Add the same sums as `_update_meat` for coded rows: Gram matrices of counts and sums.
+        """Add the same sums as `_update_meat` for coded rows, as counts and per-level sums.
 
-        `dense` are the design's dense columns in the fit's shift. The Gram matrix of the
-        coded rows (indicators unshifted) moves to the fit's shift, which subtracts each
-        indicator's shift times the ones column, by a rank-2 update.
+        `dense` are the design's dense columns in the fit's shift; `_meats` writes the
+        blocks out (`LevelGram`).
         """
+        codes = [f.codes for f in design.factors]
+        n_levels = [f.n_levels for f in design.factors]
+        self._coded_layout = (
+            design.dense_positions,
+            [f.positions for f in design.factors],
+            design.n_cols,
+        )
+        for j, u in enumerate(_meat_roots(weights, rd)):
+            dense_gram = shifted_gram(dense, np.zeros(len(dense)), u, intercept=True)
+            blocks = LevelGram.of_batch(
+                codes, n_levels, dense, dense_gram, u * u, has_intercept=True
+            )
+            if len(self._coded_meat) <= j:
+                self._coded_meat.append(blocks)
+            else:
+                self._coded_meat[j].add(blocks)
+
+    def _meats(self) -> FloatArray:
+        """Return the HC0, HC2 and HC3 meats over the kept columns, coded rows' blocks included.
+
+        The blocks of coded rows (indicators unshifted) move to the fit's shift, which
+        subtracts each indicator's shift times the ones column, by a rank-2 update.
+        """
+        if self._coded_layout is None:
+            return self._meat
         kept, x_shift = self.fit.kept_columns, self.fit.column_shift
         indicators = list(self._indicators)
         delta = np.zeros(x_shift.size)
         delta[indicators] = -x_shift[indicators]
-        for j, u in enumerate(_meat_roots(weights, rd)):
-            dense_gram = shifted_gram(dense, np.zeros(len(dense)), u, intercept=True)
-            gram = coded_gram(design, dense, dense_gram, u * u)
+        meats = self._meat.copy()
+        for j, blocks in enumerate(self._coded_meat):
+            gram = blocks.assemble(*self._coded_layout)
             if delta.any():
                 g0 = gram[:, 0].copy()
                 gram += np.outer(g0, delta) + np.outer(delta, g0) + g0[0] * np.outer(delta, delta)
-            self._meat[j] += gram[np.ix_(kept, kept)]
+            meats[j] += gram[np.ix_(kept, kept)]
+        return meats
 
     def merge(self, other: DiagnosticsAccumulator) -> DiagnosticsAccumulator:
         """Fold in an accumulator over other rows of the same fit and config; returns self.
@@ -421,6 +451,12 @@ class DiagnosticsAccumulator:
             seg.merge(other._segments[col])
         self._merge_tests(other)
         self._meat += other._meat
+        if not self._coded_meat:
+            self._coded_meat = copy.deepcopy(other._coded_meat)
+        elif other._coded_meat:
+            for mine, theirs in zip(self._coded_meat, other._coded_meat, strict=True):
+                mine.add(theirs)
+        self._coded_layout = self._coded_layout or other._coded_layout
         self._n_studentized += other._n_studentized
         self._n_extreme += other._n_extreme
         self._n_leverage += other._n_leverage
@@ -459,7 +495,7 @@ class DiagnosticsAccumulator:
     def _robust_se(self) -> dict[str, RobustStdErrors]:
         fit = self.fit
         dof_ratio = self._n / fit.df_resid if fit.df_resid > 0 else math.nan
-        se = [np.sqrt(np.diag(fit.sandwich(m))) for m in self._meat]
+        se = [np.sqrt(np.diag(fit.sandwich(m))) for m in self._meats()]
         return {
             name: RobustStdErrors(
                 hc0=float(se[0][j]),

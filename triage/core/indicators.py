@@ -184,19 +184,40 @@ class LevelGram:
         *,
         has_intercept: bool,
     ) -> LevelGram:
-        """Count and sum one batch: `codes` per categorical, `dense_block` as shifted."""
+        """Count and sum one batch: `codes` per categorical, `dense_block` as shifted.
+
+        Two categoricals of few level pairs (`PAIRED_MAX_CELLS`) are summed over their pairs,
+        one `np.bincount` per column, and each one's sums and counts are then added up from
+        the pairs' (region by district in the benchmark: 18 bincounts a batch instead of 27).
+        """
         weighted = [c if row_weights is None else c * row_weights for c in dense_block]
-        counts, sums = [], []
-        for factor, n in zip(codes, n_levels, strict=True):
-            counts.append(_bincount(factor, row_weights, n))
-            sums.append(np.column_stack([_bincount(factor, c, n) for c in weighted]))
+        paired = _paired(n_levels)
+        counts: list[FloatArray | None] = [None] * len(codes)
+        sums: list[FloatArray | None] = [None] * len(codes)
         pairs = {}
         for i, first in enumerate(codes):
             for j in range(i + 1, len(codes)):
-                pair = first.astype(np.intp, copy=False) * n_levels[j] + codes[j]
-                table = _bincount(pair, row_weights, n_levels[i] * n_levels[j])
-                pairs[i, j] = table.reshape(n_levels[i], n_levels[j])
-        return cls(dense_gram, counts, sums, pairs, has_intercept)
+                n_cells = n_levels[i] * n_levels[j]
+                index = first.astype(np.intp, copy=False) * n_levels[j] + codes[j]
+                table = _bincount(index, row_weights, n_cells).reshape(n_levels[i], n_levels[j])
+                pairs[i, j] = table
+                if (i, j) not in paired:
+                    continue
+                cells = np.stack([_bincount(index, c, n_cells) for c in weighted], axis=-1)
+                cells = cells.reshape(n_levels[i], n_levels[j], len(weighted))
+                counts[i], counts[j] = table.sum(axis=1), table.sum(axis=0)
+                sums[i], sums[j] = cells.sum(axis=1), cells.sum(axis=0)
+        for i, (factor, n) in enumerate(zip(codes, n_levels, strict=True)):
+            if counts[i] is None:
+                counts[i] = _bincount(factor, row_weights, n)
+                sums[i] = np.column_stack([_bincount(factor, c, n) for c in weighted])
+        return cls(
+            dense_gram,
+            [c for c in counts if c is not None],
+            [s for s in sums if s is not None],
+            pairs,
+            has_intercept,
+        )
 
     @classmethod
     def empty(cls, dense_size: int, n_levels: Sequence[int], *, has_intercept: bool) -> LevelGram:
@@ -290,6 +311,26 @@ class LevelGram:
             gram[np.ix_(at[i], at[j])] = block
             gram[np.ix_(at[j], at[i])] = block.T
         return gram
+
+
+PAIRED_MAX_CELLS = 4_096
+"""Most level pairs of two categoricals whose per-level sums are taken over their pairs."""
+
+
+def _paired(n_levels: Sequence[int]) -> set[tuple[int, int]]:
+    """Pick pairs of categoricals to sum together: each at most once, fewest cells first."""
+    candidates = sorted(
+        (n_levels[i] * n_levels[j], i, j)
+        for i in range(len(n_levels))
+        for j in range(i + 1, len(n_levels))
+    )
+    paired: set[tuple[int, int]] = set()
+    used: set[int] = set()
+    for n_cells, i, j in candidates:
+        if n_cells <= PAIRED_MAX_CELLS and i not in used and j not in used:
+            paired.add((i, j))
+            used |= {i, j}
+    return paired
 
 
 def _bincount(codes: NDArray[np.integer], values: FloatArray | None, n: int) -> FloatArray:

@@ -202,12 +202,21 @@ class FoundLevels:
             )
         return self._code
 
-    def add_new(self, frame: pl.DataFrame, rows: NDArray[np.bool_]) -> None:
-        """Add the levels of `frame`'s marked `rows` (present, not yet found), in row order."""
-        new = frame.filter(pl.Series(rows)).select(
+    def add_new(self, frame: pl.DataFrame, rows: NDArray[np.bool_]) -> NDArray[np.int64]:
+        """Add the levels of `frame`'s marked `rows` (present, not found yet), in row order.
+
+        Returns the codes of those rows (the new levels come last), so the rest of the
+        frame need not be coded again.
+        """
+        picked = frame.select(self.column).filter(pl.Series(rows))
+        new = picked.select(
             _sortable(self.column, self.dtype).unique(maintain_order=True).alias(self.column)
-        )
-        self._append(new.to_series())
+        ).to_series()
+        first = len(self.names)
+        self._append(new)
+        enum = pl.Enum(self.names[first:])
+        codes = picked.select(level_text(self.column).cast(enum).to_physical().cast(pl.Int64))
+        return codes.to_series().to_numpy() + first
 
     def _append(self, values: pl.Series) -> None:
         names = values.to_frame().select(level_text(self.column)).to_series().to_list()

@@ -827,8 +827,7 @@ class LinearFit:
         about this times the rounding unit, relative.
         """
         r = self._factor.r
-        singular = np.linalg.svd(r / np.linalg.norm(r, axis=0), compute_uv=False)
-        return math.inf if singular[-1] == 0.0 else float(singular[0] / singular[-1])
+        return _condition_number(r / np.linalg.norm(r, axis=0))
 
 
 def _embed(small: FloatArray, kept: NDArray[np.intp], p: int) -> FloatArray:

@@ -94,10 +94,9 @@ class ParquetPart(FilePart):
         path = self.file
         constant = dict(self.constants)
         in_file = [c for c in self.columns if c not in constant]
+        values = partition_frame([c for c in self.constants if c[0] in self.columns], self.schema)
         literals = [
-            pl.lit(value, dtype=pl.String).cast(self.schema[name]).alias(name)
-            for name, value in self.constants
-            if name in self.columns
+            pl.lit(values[name][0], dtype=values[name].dtype).alias(name) for name in values.columns
         ]
         with reading(path, "Parquet"):
             reader = open_parquet(path)
@@ -151,9 +150,35 @@ def file_parts(
     ]
 
 
-def partition_values(file: Path, base: Path) -> tuple[tuple[str, str | None], ...]:
-    """Return the ``key=value`` folders between `base` and `file` (URL-decoded, as polars does)."""
-    folders = file.resolve().relative_to(base.resolve()).parts[:-1]
+def partition_frame(
+    constants: Sequence[tuple[str, str | None]], types: dict[str, pl.DataType] | None = None
+) -> pl.DataFrame:
+    """Parse partition folders' text values as polars reads a text column: one row per value.
+
+    With `types`, each column is read as that type; without, its type is inferred (booleans,
+    integers, floats, dates, else text), as polars types the values of hive folders.
+    """
+    names = list(dict.fromkeys(name for name, _ in constants))
+    if not names:
+        return pl.DataFrame()
+    columns: dict[str, list[str | None]] = {name: [] for name in names}
+    for name, value in constants:
+        columns[name].append(value)
+    text = pl.DataFrame(columns, schema=dict.fromkeys(names, pl.String)).write_csv()
+    if types is None:
+        return pl.read_csv(text.encode(), infer_schema_length=None, try_parse_dates=True)
+    return pl.read_csv(text.encode(), schema_overrides={name: types[name] for name in names})
+
+
+def partition_values(file: FileName, base: FileName) -> tuple[tuple[str, str | None], ...]:
+    """Return the ``key=value`` folders between `base` and `file` (URL-decoded, as polars does).
+
+    Both are paths, or both URLs (`file` then starts with `base`).
+    """
+    if isinstance(file, str):
+        folders: tuple[str, ...] = tuple(file[len(str(base)) :].strip("/").split("/")[:-1])
+    else:
+        folders = file.resolve().relative_to(Path(base).resolve()).parts[:-1]
     pairs = (unquote(folder).split("=", 1) for folder in folders if "=" in folder)
     return tuple((key, None if value == HIVE_NULL else value) for key, value in pairs)
 
@@ -240,25 +265,25 @@ class ParquetDatasetSource(BlockSource):
 
     Parameters
     ----------
-    path : Path
-        The folder or glob the user gave.
-    files : list of Path
+    path : Path or str
+        The folder or glob the user gave (a URL: see `ParquetUrlDatasetSource`).
+    files : list of Path or str
         The files, already sorted.
-    base : Path
+    base : Path or str
         The folder partition names are read below (the folder, or a glob's fixed part).
     """
 
     _kind = "Parquet"
     _block_unit = "row groups"
 
-    def __init__(self, path: Path, files: list[Path], base: Path) -> None:
+    def __init__(self, path: FileName, files: Sequence[FileName], base: FileName) -> None:
         self._files = tuple(files)
         self._base = base
         super().__init__(path)
         self.schema()
 
     @property
-    def files(self) -> tuple[Path, ...]:
+    def files(self) -> tuple[FileName, ...]:
         """The files read, in the order their rows are numbered."""
         return self._files
 
@@ -268,7 +293,7 @@ class ParquetDatasetSource(BlockSource):
         offsets = self._offsets
         text = f"{self._path}: Parquet, {len(self._files):,} files, {len(offsets) - 1:,} row groups"
         with reading(self._files[0], self._kind):
-            in_file = set(pq.read_schema(self._files[0]).names)
+            in_file = set(open_parquet(self._files[0]).schema_arrow.names)
         partitions = [name for name in self.schema() if name not in in_file]
         if partitions:
             text += f", partitioned by {', '.join(partitions)}"
@@ -277,7 +302,8 @@ class ParquetDatasetSource(BlockSource):
     def _lazy(self) -> pl.LazyFrame:
         frame = pl.scan_parquet([str(f) for f in self._files], hive_partitioning=True)
         # Polars reads `key=value` folder names along the whole path; drop those above `base`.
-        above = [part.split("=", 1)[0] for part in self._base.resolve().parts if "=" in part]
+        base = Path(self._base).resolve()  # local files only: a URL's are read otherwise
+        above = [part.split("=", 1)[0] for part in base.parts if "=" in part]
         names = frame.collect_schema().names()
         return frame.drop([key for key in above if key in names])
 
@@ -290,7 +316,7 @@ class ParquetDatasetSource(BlockSource):
         rows: list[list[int]] = []
         for file in self._files:
             with reading(file, self._kind):
-                metadata = pq.read_metadata(file)
+                metadata = open_parquet(file).metadata
             rows.append([metadata.row_group(i).num_rows for i in range(metadata.num_row_groups)])
         return rows
 
@@ -352,4 +378,33 @@ class ParquetDatasetSource(BlockSource):
             with reading(self._path, self._kind):
                 frame = lazy.slice(start, stop - start).collect()
             frames.append(with_positions(frame, np.arange(start, stop, dtype=np.int64)))
+        return self._concat(frames, columns)
+
+
+class ParquetUrlDatasetSource(ParquetDatasetSource):
+    """Many Parquet files named by URLs (a folder or a glob in a store), read through fsspec.
+
+    Read as `ParquetDatasetSource` reads local files, with pyarrow in place of polars' own
+    reader: every read goes through the files' parts (`ParquetPart`), which open a URL
+    through fsspec. Partition columns are typed as polars types them (its inference of
+    text values: booleans, integers, floats, dates, else text).
+    """
+
+    def _read_schema(self) -> dict[str, pl.DataType]:
+        with reading(self._files[0], self._kind):
+            schema = arrow_schema_types(open_parquet(self._files[0]).schema_arrow)
+        constants = [pair for file in self._files for pair in partition_values(file, self._base)]
+        return {**schema, **partition_frame(constants).schema}
+
+    def _scan_raw(self, columns: list[str], batch_rows: int) -> Iterator[pl.DataFrame]:
+        for part in self._parts(columns, None, [], batch_rows, None):
+            self.snapshot.check_file(part.file)
+            yield from part._frames()
+
+    def _read_blocks(
+        self, columns: list[str], blocks: np.ndarray, offsets: np.ndarray
+    ) -> pl.DataFrame:
+        # A part of each row group (blocks are the row groups of every file, in order).
+        parts = self._parts(columns, None, [], 1 << 62, 1)
+        frames = [frame for block in blocks for frame in parts[int(block)]._frames()]
         return self._concat(frames, columns)

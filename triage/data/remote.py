@@ -15,12 +15,13 @@ from __future__ import annotations
 import re
 import zlib
 from pathlib import Path, PurePosixPath
-from typing import Any, Final
+from typing import TYPE_CHECKING, Any, Final
 from urllib.parse import unquote, urlsplit
 
-import pyarrow as pa
-
 from triage.errors import SourceError
+
+if TYPE_CHECKING:
+    import pyarrow as pa
 
 FileName = Path | str
 """A file on a local disk (`Path`), or a URL as text (`str`)."""
@@ -99,6 +100,8 @@ def url_filesystem(url: str) -> tuple[Any, str]:
 
 def open_input(file: FileName) -> pa.NativeFile:
     """Open a local file or a URL for random-access reading by pyarrow."""
+    import pyarrow as pa  # here: the app's first frame loads this module, not pyarrow
+
     if isinstance(file, Path):
         return pa.OSFile(str(file), "rb")
     filesystem, path = url_filesystem(file)

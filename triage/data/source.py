@@ -25,8 +25,8 @@ from triage.core.design import ROW_INDEX
 from triage.data.base import Batch, BlockSource, Sample, Source
 from triage.data.delimited import CsvOptions, CsvSource
 from triage.data.ipc import IpcSource
-from triage.data.parquet import ParquetDatasetSource, ParquetFileSource
-from triage.data.remote import is_url, url_info, url_name
+from triage.data.parquet import ParquetDatasetSource, ParquetFileSource, ParquetUrlDatasetSource
+from triage.data.remote import is_url, url_filesystem, url_info, url_name
 from triage.errors import SourceError
 
 __all__ = [
@@ -75,7 +75,8 @@ def open_source(path: str | os.PathLike[str], *, csv: CsvOptions = DEFAULT_CSV_O
         ``data/**/*.parquet``); a ``.csv``/``.tsv``/``.txt`` file, optionally ``.gz``, or a
         folder or glob of them (sharing a header; read with the first file's types); an
         Arrow IPC file (``.arrow``/``.feather``/``.ipc``); or the URL of a Parquet or Arrow
-        IPC file (``s3://``, ``https://``, ``file://``: any that fsspec opens).
+        IPC file, or of a folder or glob of Parquet files (``s3://``, ``https://``,
+        ``file://``: any that fsspec opens; a folder or glob needs a store that lists).
     csv : CsvOptions, default=DEFAULT_CSV_OPTIONS
         How to parse delimited text; ignored for other kinds.
 
@@ -119,20 +120,51 @@ def open_source(path: str | os.PathLike[str], *, csv: CsvOptions = DEFAULT_CSV_O
 
 
 def _open_url(url: str) -> Source:
-    """Open one Parquet or Arrow IPC file named by a URL (through fsspec)."""
+    """Open a Parquet or Arrow IPC file, or a folder or glob of Parquet files, by URL (fsspec)."""
     name = url_name(url).lower()
-    is_glob = any(c in urlsplit(url).path for c in _GLOB_CHARS)
-    if is_glob or not name.endswith(PARQUET_SUFFIXES + IPC_SUFFIXES):
+    if any(c in urlsplit(url).path for c in _GLOB_CHARS):
+        return _open_url_files(url, is_glob=True)
+    info = None if name.endswith(CSV_SUFFIXES) else url_info(url)
+    if info is not None and info.get("type") == "directory":
+        return _open_url_files(url, is_glob=False)
+    if not name.endswith(PARQUET_SUFFIXES + IPC_SUFFIXES):
         msg = (
-            f"`{url}`: a URL must name one Parquet (`.parquet`, `.pq`) or Arrow IPC "
-            "(`.arrow`, `.feather`, `.ipc`) file, whose metadata says where its rows are; "
-            "copy a CSV file, a folder or a glob to a local or mounted disk"
+            f"`{url}`: a URL must name a Parquet (`.parquet`, `.pq`) or Arrow IPC "
+            "(`.arrow`, `.feather`, `.ipc`) file, or a folder or glob of Parquet files, whose "
+            "metadata says where their rows are; copy a CSV file to a local or mounted disk"
         )
         raise SourceError(msg)
-    if url_info(url) is None:
+    if info is None:
         msg = f"`{url}` does not exist; check the URL"
         raise SourceError(msg)
     return ParquetFileSource(url) if name.endswith(PARQUET_SUFFIXES) else IpcSource(url)
+
+
+def _open_url_files(url: str, *, is_glob: bool) -> Source:
+    """Open the Parquet files of a folder or glob in a store, listed through fsspec."""
+    filesystem, path = url_filesystem(url)
+    base = path.rstrip("/")
+    if is_glob:  # partition folders are read below the glob's fixed part
+        base = base[: min(base.find(c) for c in _GLOB_CHARS if c in base)].rsplit("/", 1)[0]
+    try:
+        found = filesystem.glob(path) if is_glob else filesystem.find(path)
+    except Exception as error:  # a store's own error (connection, permission): one line
+        why = (str(error).strip().splitlines() or [type(error).__name__])[0]
+        msg = f"cannot list `{url}`: {type(error).__name__}: {why}"
+        raise SourceError(msg) from None
+    files = sorted(
+        str(name)
+        for name in found
+        if str(name).lower().endswith(PARQUET_SUFFIXES)
+        and not any(
+            part.startswith((".", "_")) for part in str(name)[len(base) :].strip("/").split("/")
+        )
+    )
+    if not files:
+        msg = f"`{url}` holds no Parquet files (`*.parquet`, `*.pq`); check the URL"
+        raise SourceError(msg)
+    urls = [filesystem.unstrip_protocol(name) for name in files]
+    return ParquetUrlDatasetSource(url, urls, filesystem.unstrip_protocol(base))
 
 
 def _is_parquet(path: Path) -> bool:

@@ -17,15 +17,18 @@ from triage.data.export import StreamingExport, write_frame
 from triage.data.source import ROW_INDEX
 from triage.engine.passes import (
     batch_rows_for,
-    build_for_diagnostics,
+    design_batches,
     diagnose_rows,
     fit_model,
     run_report,
 )
 from triage.engine.progress import ProgressTracker
+from triage.engine.workers import map_in_order
 from triage.results.fit import DataSummary, FitOutcome
 
 if TYPE_CHECKING:
+    from numpy.typing import NDArray
+
     from triage._typing import Criterion, RowsToRead, Sampling
     from triage.core.spec import ModelSpec
     from triage.data.source import Source
@@ -179,30 +182,47 @@ def _status_frames(
     marked = np.fromiter(sorted(set(exclude_rows)), dtype=np.int64)
     sampled = None if outcome.data.is_full_pass else outcome.sample[ROW_INDEX].to_numpy()
     tracker = ProgressTracker(source.row_count(), on_progress=on_progress, cancel=cancel)
-    # a batch is built dense (one column per indicator): size it by the design's width
-    step = batch_rows_for(max(len(columns), len(builder.column_names)))
-    for batch in source.scan_batches(columns, batch_rows=step):
-        tracker.advance(batch.rows_read)
-        frame = batch.frame
+    # Categoricals stay level codes (they need an intercept), so a batch is sized by the
+    # columns it reads; a batch built dense is cut into pieces by the design's width.
+    use_codes = outcome.fit.has_intercept
+    step = batch_rows_for(len(columns) if use_codes else len(builder.column_names) + 2)
+
+    def score(frame: pl.DataFrame) -> pl.DataFrame:
+        # Statuses as masks, worked on by numpy and polars: an array of Python strings held
+        # the interpreter's lock for most of a batch, which kept the workers waiting.
         rows = frame.get_column(ROW_INDEX).to_numpy()
-        status = builder.row_status(frame).to_numpy().astype(object)
-        if sampled is not None:
-            status[(status == STATUS_USED) & ~np.isin(rows, sampled)] = STATUS_NOT_SAMPLED
-        status[np.isin(rows, marked)] = STATUS_MARKED
+        status = builder.row_status(frame)
+        scored = (status == STATUS_USED).to_numpy()
+        overrides: list[tuple[NDArray[np.bool_], str]] = []
         if where is not None:
             kept = frame.select(where.fill_null(value=False)).to_series().to_numpy()
-            status[~kept] = STATUS_FILTERED
-        scored = (status == STATUS_USED) | (status == STATUS_NOT_SAMPLED)
-        design = build_for_diagnostics(
-            builder, frame.filter(pl.Series(scored)), use_codes=outcome.fit.has_intercept
-        )
-        diagnostics = row_diagnostics(
-            outcome.fit, design, np.isin(design.rows, rows[status == STATUS_USED])
-        )
+            overrides.append((~kept, STATUS_FILTERED))
+        if marked.size:
+            overrides.append((np.isin(rows, marked), STATUS_MARKED))
+        for mask, _ in overrides:
+            scored &= ~mask
+        in_fit = scored if sampled is None else scored & np.isin(rows, sampled)
+        scores = [
+            diagnostics_frame(row_diagnostics(outcome.fit, d, np.isin(d.rows, rows[in_fit])))
+            for d in design_batches(builder, frame.filter(pl.Series(scored)), use_codes=use_codes)
+        ]
+        diagnostics = pl.concat(scores)
         # a row `build` left out after all (design values too large for float64)
-        status[scored & ~np.isin(rows, design.rows)] = STATUS_DOMAIN
-        labels = pl.DataFrame({"row": rows, "status": pl.Series(status, dtype=pl.String)})
-        yield labels.join(diagnostics_frame(diagnostics), on="row", how="left")
+        built = np.isin(rows, diagnostics.get_column("row").to_numpy())
+        overrides.append((scored & ~built, STATUS_DOMAIN))
+        overrides.append((scored & ~in_fit, STATUS_NOT_SAMPLED))
+        label: pl.Expr = pl.lit(status)
+        for mask, text in reversed(overrides):  # the first that applies wins
+            label = pl.when(pl.lit(pl.Series(mask))).then(pl.lit(text)).otherwise(label)
+        labels = pl.DataFrame({"row": rows}).with_columns(label.alias("status"))
+        return labels.join(diagnostics, on="row", how="left")
+
+    def frames() -> Iterator[pl.DataFrame]:
+        for batch in source.scan_batches(columns, batch_rows=step):
+            tracker.advance(batch.rows_read)
+            yield batch.frame
+
+    yield from map_in_order(frames(), score)
 
 
 def export_all_rows(

@@ -1197,11 +1197,7 @@ def _diagnose(
 
     def run(indicators: Sequence[int], config: DiagnosticsConfig) -> Diagnostics:
         def fold(accumulator: DiagnosticsAccumulator, frame: pl.DataFrame) -> None:
-            coded = builder.build_coded(frame) if indicators else None
-            batches = (
-                [coded] if coded is not None else map(builder.build, dense_pieces(builder, frame))
-            )
-            for batch in batches:
+            for batch in design_batches(builder, frame, use_codes=bool(indicators)):
                 if batch.n_rows:
                     accumulator.update(batch)
 
@@ -1252,6 +1248,18 @@ def _usable_sample(
     if not kept:
         return np.zeros(0), frame.select(columns)
     return np.concatenate(fitted), pl.concat(kept)
+
+
+def design_batches(
+    builder: DesignBuilder, frame: pl.DataFrame, *, use_codes: bool
+) -> Iterable[DesignBatch | CodedBatch]:
+    """Build a frame's design for scoring, in one or more batches.
+
+    One coded batch when `use_codes` and the builder can; else written-out batches cut to a
+    bounded width (`dense_pieces`).
+    """
+    coded = builder.build_coded(frame) if use_codes else None
+    return [coded] if coded is not None else map(builder.build, dense_pieces(builder, frame))
 
 
 def build_for_diagnostics(

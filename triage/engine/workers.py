@@ -12,7 +12,9 @@ from __future__ import annotations
 
 import os
 import threading
-from collections.abc import Callable, Iterable
+from collections import deque
+from collections.abc import Callable, Iterable, Iterator
+from concurrent.futures import Future, ThreadPoolExecutor
 from typing import TypeVar
 
 S = TypeVar("S")
@@ -158,3 +160,35 @@ def fold_in_order(
         (size, left), (_, right) = runs[-2], runs[-1]
         runs[-2:] = [(size, merge(left, right))]
     return runs[0][1] if runs else None
+
+
+def map_in_order(
+    items: Iterable[U], func: Callable[[U], S], *, n_workers: int | None = None
+) -> Iterator[S]:
+    """Apply `func` to every item on worker threads and yield the results in item order.
+
+    At most one item more than there are workers is in flight, so memory stays bounded by
+    a few items whatever the length of `items` (a generator is read on the calling thread,
+    one item at a time). When the caller stops early, the items not yet started are
+    dropped and the ones running are waited for.
+
+    Examples
+    --------
+    >>> list(map_in_order(range(5), lambda k: k * k, n_workers=2))
+    [0, 1, 4, 9, 16]
+    """
+    n_threads = max(1, n_workers if n_workers is not None else pass_workers())
+    if n_threads == 1:
+        yield from map(func, items)
+        return
+    pool = ThreadPoolExecutor(n_threads, thread_name_prefix="triage-worker")
+    try:
+        pending: deque[Future[S]] = deque()
+        for item in items:
+            pending.append(pool.submit(func, item))
+            if len(pending) > n_threads:
+                yield pending.popleft().result()
+        while pending:
+            yield pending.popleft().result()
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)

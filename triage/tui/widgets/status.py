@@ -2,9 +2,10 @@
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
+from collections.abc import Sequence
+from typing import TYPE_CHECKING, Final
 
-from rich.cells import cell_len
+from rich.cells import cell_len, chop_cells
 from rich.text import Text
 from textual.reactive import reactive
 from textual.widget import Widget
@@ -12,6 +13,7 @@ from textual.widgets import Footer
 
 if TYPE_CHECKING:
     from rich.console import RenderableType
+    from textual.geometry import Size
     from textual.screen import Screen
 
     from triage.results.progress import PassProgress
@@ -86,37 +88,104 @@ def unique_prefixes(titles: list[str], room: int) -> list[str]:
     return out
 
 
+HEADING_MAX_LINES: Final = 3
+"""Lines the heading may take; a model too long even for these ends in an ellipsis."""
+
+DETAIL_SEPARATOR: Final = "  |  "
+"""Between the formula and each detail (filter, weights, categorical columns, marks)."""
+
+
+def heading_lines(head: str, formula: str, details: Sequence[str], width: int) -> list[str]:
+    """Break the heading into lines of `width` cells between terms and details, never inside.
+
+    The first line holds `head` and the formula's start; each further line starts indented
+    with the next term (`+ hour`) or detail (`| where hour > 8`). A term or detail wider
+    than a whole line is folded where it reaches the edge. Past `HEADING_MAX_LINES` the last
+    line ends in an ellipsis.
+
+    Parameters
+    ----------
+    head : str
+        What names the fit (`fit #3 SAMPLE: `), or empty before the first fit.
+    formula : str
+        `target ~ a + b`.
+    details : sequence of str
+        Filter, weights, categorical columns and marked rows, each a short phrase.
+    width : int
+        Cells on a line.
+
+    Returns
+    -------
+    list of str
+        At most `HEADING_MAX_LINES` lines, none wider than `width`.
+    """
+    target, tilde, right = formula.partition(" ~ ")
+    terms = right.split(" + ") if tilde else [formula]
+    first = f"{target} ~ {terms[0]}" if tilde else formula
+    pieces = [first, *(f" + {term}" for term in terms[1:])]
+    pieces += [DETAIL_SEPARATOR + detail for detail in details]
+    indent = "  "
+    lines = [head]
+    for k, piece in enumerate(pieces):
+        if k and cell_len(lines[-1] + piece) > width:
+            lines.append(indent + piece.lstrip())
+        else:
+            lines[-1] += piece
+    room = max(width, cell_len(indent) + 1)  # each folded line then moves on
+    folded = [part for line in lines for part in _fold(line, room, indent)]
+    if len(folded) > HEADING_MAX_LINES:
+        from triage.views.format import truncate
+
+        folded = folded[:HEADING_MAX_LINES]
+        folded[-1] = truncate(folded[-1] + " …", width)
+    return folded
+
+
+def _fold(line: str, width: int, indent: str) -> list[str]:
+    """Cut a line wider than `width` into lines of `width` cells (continuations indented)."""
+    lines = []
+    while cell_len(line) > width:
+        first, *rest = chop_cells(line, width)
+        lines.append(first)
+        line = indent + "".join(rest)
+    return [*lines, line]
+
+
 class ModelLine(Widget):
     """The heading: the fit on screen (number, basis, model, filter, marks), or the draft.
 
-    Every pane shows results of the fit named here. When the line is too short, the
-    formula is shortened first, so the fit's number, basis and filter stay in view.
+    Every pane shows results of the fit named here. When one line is too short, the
+    heading takes a second (and a third) line, broken between terms: no term, filter or
+    weight is cut away (`heading_lines`).
     """
 
     DEFAULT_CSS = """
-    ModelLine { height: 1; }
+    ModelLine { height: auto; }
     """
 
-    text: reactive[str] = reactive("no model yet")
+    text: reactive[str] = reactive("no model yet", layout=True)
     """What to show while no fit is on screen (the model being built)."""
-    label: reactive[FitLabel | None] = reactive(None)
+    label: reactive[FitLabel | None] = reactive(None, layout=True)
     """The fit on screen, or None."""
 
-    def render(self) -> RenderableType:
-        """Draw the heading on one line."""
+    def _lines(self, width: int) -> tuple[str, list[str]]:
+        """Return the bold head and the heading's lines for `width` cells."""
         label = self.label
         if label is None:
-            return Text(self.text, no_wrap=True, overflow="ellipsis")
+            formula, *details = self.text.split(DETAIL_SEPARATOR)
+            return "", heading_lines("", formula, details, width)
         head = f"fit #{label.number} {label.basis}: "
-        tail = "".join(f"  |  {detail}" for detail in label.details)
-        room = self.size.width - cell_len(head) - cell_len(tail)
-        formula = label.formula
-        if cell_len(formula) > room:
-            from triage.views.format import truncate
+        return head, heading_lines(head, label.formula, label.details, width)
 
-            formula = truncate(formula, max(room, 9))
-        text = Text(head, style="bold", no_wrap=True, overflow="ellipsis")
-        text.append(formula + tail)
+    def get_content_height(self, container: Size, viewport: Size, width: int) -> int:
+        """Take as many lines as the heading needs at this width."""
+        return len(self._lines(width)[1])
+
+    def render(self) -> RenderableType:
+        """Draw the heading, the fit's number and basis in bold."""
+        head, lines = self._lines(self.size.width)
+        text = Text("\n".join(lines), no_wrap=True, overflow="crop")
+        text.stylize("bold", 0, len(head))
         return text
 
 
