@@ -33,6 +33,8 @@ from typing import Any, ClassVar
 import numpy as np
 import polars as pl
 import pyarrow as pa
+import pyarrow.ipc as ipc
+import pyarrow.parquet as pq
 import pytest
 from distributed import KilledWorker, LocalCluster
 from distributed.client import FutureCancelledError
@@ -463,6 +465,25 @@ def test_url_source_opens_on_its_metadata_alone(
     source = open_source(f"{served}/{name}")
     assert source.row_count() == N_FILES * FILE_ROWS
     assert 0 < sum(_RangeHandler.ranges) < size / 20, (_RangeHandler.ranges, size)
+    said("then only the columns a task needs of its row groups or record batches", README)
+    # A read of one column of eight fetches that column's bytes, not the rest: its Parquet
+    # column chunks (sizes from pyarrow's metadata) or its IPC buffers (pyarrow's size of
+    # the column), and the metadata again (footer, batch headers: under 64 KiB each time).
+    _RangeHandler.ranges.clear()
+    (part,) = source.scan_parts(["minutes"], part_rows=N_FILES * FILE_ROWS)
+    assert sum(batch.frame.height for batch in part()) == N_FILES * FILE_ROWS
+    fetched = sum(_RangeHandler.ranges)
+    if name.endswith(".parquet"):
+        metadata = pq.read_metadata(other_formats["csv"].parent / name)
+        index = metadata.schema.names.index("minutes")
+        chunks = sum(
+            metadata.row_group(k).column(index).total_compressed_size
+            for k in range(metadata.num_row_groups)
+        )
+        assert chunks <= fetched <= chunks + 2 * 65_536, (fetched, chunks)
+    else:
+        buffers = ipc.open_file(other_formats["ipc"]).read_all().column("minutes").nbytes
+        assert buffers <= fetched <= buffers + 2 * 65_536, (fetched, buffers)
 
 
 def test_cluster_url_the_workers_cannot_open_is_named_in_one_line(

@@ -7,6 +7,7 @@ polars, both on the whole table in memory. Null, NaN and ±inf count as missing.
 from __future__ import annotations
 
 import itertools
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -152,3 +153,22 @@ def test_no_figures_from_a_sample_a_filter_or_rows_left_out(
     assert passes.fit_model(source, spec, rows=3_000).column_figures == ()
     assert passes.fit_model(source, filtered, rows=ALL_ROWS).column_figures == ()
     assert passes.fit_model(source, spec, rows=ALL_ROWS, exclude_rows=[4]).column_figures == ()
+
+
+def test_values_near_the_float_limit_give_figures_without_a_warning() -> None:
+    # The command line turns numpy's warnings into errors: a column of 1e200 beside small
+    # values must not stop a fit through its figures (the fit refuses it by name instead).
+    frame = pl.DataFrame({"y": [-1e200, -5.36, 3.0, 1e200], "a": [1.0, 2.0, 3.0, 4.0]})
+    accumulator = ColumnFiguresAccumulator(frame.schema, ("y", "a"))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        for start in range(4):  # one row per part: merges square the gap between means
+            part = ColumnFiguresAccumulator(frame.schema, ("y", "a"))
+            part.update(frame.slice(start, 1))
+            accumulator.merge(part)
+        accumulator.update(frame)
+        y, a = accumulator.finalize()
+    assert (y.low, y.high, y.missing) == (-1e200, 1e200, 0)
+    assert a == ColumnFigures(
+        "a", 8, 0, 1.0, 2.5, pytest.approx(np.std([1, 2, 3, 4] * 2, ddof=1)), 4.0
+    )

@@ -650,7 +650,8 @@ async def test_tui_typed_indicator_terms_fit_as_statsmodels_and_show_by_name(
     async with app.run_test(size=SMALL) as pilot:
         await settle(pilot)
         await press_id(pilot, "edit-terms")
-        app.screen.query_one("#prompt-input").value = "minutes ~ distance_km + depot[east] + hour=8"
+        typed = "minutes ~ distance_km + depot[east] + hour=08"
+        app.screen.query_one("#prompt-input").value = typed
         await pilot.press("enter")
         await settle(pilot)
         fit = main_screen(app).current
@@ -666,7 +667,7 @@ async def test_tui_typed_indicator_terms_fit_as_statsmodels_and_show_by_name(
         await press_id(pilot, "pane-columns")
         await settle(pilot)
         hour_line = next(line for line in screen_text(app).split("\n") if " hour " in line)
-        assert "hour=8" in hour_line  # the Columns pane names the term on `hour`
+        assert "hour=8" in hour_line  # the Columns pane names the term as the fit reads it
         await press_id(pilot, "edit-terms")
         app.screen.query_one("#prompt-input").value = "minutes ~ distance_km + depot=eest"
         await pilot.press("enter")

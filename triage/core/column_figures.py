@@ -9,12 +9,18 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
+from typing import Final
 
 import numpy as np
 import polars as pl
 
 from triage.core.moments import FloatArray, IntArray, pool_groups
 from triage.results.fit import ColumnFigures
+
+NUMPY_LIMIT: Final = 1e140
+"""Largest size of a value numpy sums the squares of here: (2 x 1e140)² times a million
+rows stays far below the float limit, so no overflow warning (an error in the command
+line) can come from a column's figures; larger values go to polars, which gives inf."""
 
 
 class ColumnFiguresAccumulator:
@@ -63,7 +69,7 @@ class ColumnFiguresAccumulator:
                 continue
             values = series.to_numpy()
             low[i], high[i] = values.min(), values.max()  # NaN if any value is NaN
-            if not (math.isfinite(low[i]) and math.isfinite(high[i])):
+            if not (abs(low[i]) < NUMPY_LIMIT and abs(high[i]) < NUMPY_LIMIT):
                 queried.append(i)
                 continue
             with np.errstate(over="ignore", invalid="ignore"):
@@ -144,13 +150,16 @@ class ColumnFiguresAccumulator:
         high: FloatArray,
     ) -> None:
         k = len(self.names)
-        self.count, self.mean, self.m2 = pool_groups(
-            np.concatenate([np.arange(k), np.arange(k)]),
-            np.concatenate([self.count, count]),
-            np.concatenate([self.mean, mean]),
-            np.concatenate([self.m2, m2]),
-            k,
-        )
+        # Means near the float limit (1e200 beside 5) may square past it: the figure is
+        # then inf or NaN, which is what such a column holds, never a warning (an error).
+        with np.errstate(over="ignore", invalid="ignore"):
+            self.count, self.mean, self.m2 = pool_groups(
+                np.concatenate([np.arange(k), np.arange(k)]),
+                np.concatenate([self.count, count]),
+                np.concatenate([self.mean, mean]),
+                np.concatenate([self.m2, m2]),
+                k,
+            )
         self.rows += rows
         self.missing += missing
         self.low = np.minimum(self.low, low)

@@ -3,9 +3,10 @@
 The column is 1 where `depot` holds `north`, 0 where it holds another level, and
 missing where `depot` is missing (so the row is left out like any missing predictor).
 The level is read in the column's type (`triage.core.spec.indicator_value`). Before a
-design is built, `IndicatorRows` counts the rows holding each indicator's level (over a
-sample, or over every row of a full pass, mergeable like `LevelCounter`), so a level the
-column does not hold is refused by name instead of giving a column of zeros.
+design is built, `IndicatorRows` counts the rows holding each indicator's level (in the
+sample; a full pass whose learning sample lacks a level counts every row, mergeable like
+`LevelCounter`), so a level the column does not hold is refused by name instead of giving
+a column of zeros.
 """
 
 from __future__ import annotations

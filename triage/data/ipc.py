@@ -42,6 +42,10 @@ def read_record_batches(
     # from them stay valid after the file is closed.
     with reading(path, KIND), open_input(path) as file:
         reader = ipc.open_file(file)
+        if columns:  # only these columns' buffers are read (a URL fetches only them)
+            names = reader.schema.names
+            fields = sorted(names.index(name) for name in columns)
+            reader = ipc.open_file(file, options=ipc.IpcReadOptions(included_fields=fields))
         for i in range(reader.num_record_batches) if batches is None else batches:
             yield reader.get_batch(i).select(columns)
 

@@ -116,6 +116,19 @@ class ModelDraft:
         target, terms = parse_terms(text)
         return replace(self, target=self.target if target is None else target, terms=terms)
 
+    def with_levels_read(self, spec: ModelSpec) -> ModelDraft:
+        """Return the draft with its indicator terms as `spec` reads them (`hour=08` as `hour=8`).
+
+        `spec` is this draft checked against the data (`to_spec`), its terms in the same order.
+        """
+        if len(spec.terms) != len(self.terms):
+            return self
+        terms = tuple(
+            read if any(p.kind == "indicator" for p in (*term.factors, term)) else term
+            for term, read in zip(self.terms, spec.terms, strict=True)
+        )
+        return replace(self, terms=terms)
+
     def to_spec(
         self,
         schema: Mapping[str, pl.DataType],

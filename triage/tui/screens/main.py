@@ -390,8 +390,11 @@ class MainScreen(Screen[None]):
         A model with a target is checked against the columns first; when it does not fit the
         data the message says why and the previous model stays.
         """
-        if draft.target is not None and self._spec(draft) is None:
-            return
+        if draft.target is not None:
+            spec = self._spec(draft)
+            if spec is None:
+                return
+            draft = draft.with_levels_read(spec)
         self.is_opening_on_fit = False  # the user builds the model: the Columns pane stays
         self.draft = draft
         self.typed_terms = None
