@@ -72,12 +72,8 @@ class ColumnFiguresAccumulator:
             if not (abs(low[i]) < NUMPY_LIMIT and abs(high[i]) < NUMPY_LIMIT):
                 queried.append(i)
                 continue
-            with np.errstate(over="ignore", invalid="ignore"):
-                shifted = values - values[0]
-                total, squares = float(shifted.sum()), float(shifted @ shifted)
-            if not (math.isfinite(total) and math.isfinite(squares)):
-                queried.append(i)  # sums past float64: polars words them as it always did
-                continue
+            shifted = values - values[0]
+            total, squares = float(shifted.sum()), float(shifted @ shifted)
             mean[i] = values[0] + total / n
             m2[i] = max(squares - total * total / n, 0.0)
         if queried:
