@@ -586,6 +586,36 @@ def test_lsq_condition_number_matches_numpy(rng: np.random.Generator) -> None:
     assert fit.condition_number == pytest.approx(expected, rel=1e-9)
 
 
+def test_lsq_wide_design_matches_numpy_and_statsmodels(rng: np.random.Generator) -> None:
+    # A design past 200 columns (an office code of 210 skewed levels, weights, 3 numbers),
+    # where condition numbers come from eigenvalues and solves run in blocks of 64 rows.
+    # Oracles: statsmodels WLS (standard errors, HC0, hat values of the whitened design) and
+    # numpy.linalg.cond of the weighted design with columns scaled to unit length.
+    n, levels = 2_500, 210
+    shares = np.arange(levels, 0, -1) / (levels * (levels + 1) / 2)
+    # every level holds at least two rows
+    office = np.concatenate([np.arange(levels), np.arange(levels)])
+    office = np.concatenate([office, rng.choice(levels, size=n - office.size, p=shares)])
+    numbers = rng.gamma(3.0, 2.0, size=(n, 3)) + np.array([0.0, 50.0, 1e3])
+    dummies = (office[:, np.newaxis] == np.arange(1, levels)).astype(float)
+    design = np.column_stack([np.ones(n), numbers, dummies])
+    y = design @ rng.normal(size=design.shape[1]) + rng.standard_t(5, size=n)
+    weights = rng.uniform(0.5, 2.0, size=n)
+    fit = fit_batches(design, y, weights, n_batches=4)
+    result = sm.WLS(y, design, weights=weights).fit()
+    np.testing.assert_allclose(fit.coef, result.params, rtol=1e-8, atol=1e-10)
+    np.testing.assert_allclose(fit.std_error, result.bse, rtol=1e-8)
+    xw = design * np.sqrt(weights)[:, np.newaxis]
+    expected = np.linalg.cond(xw / np.linalg.norm(xw, axis=0))
+    assert fit.condition_number == pytest.approx(expected, rel=1e-9)
+    hat = OLSInfluence(sm.OLS(result.model.wendog, result.model.wexog).fit()).hat_matrix_diag
+    np.testing.assert_allclose(fit.leverage(design[:500], weights[:500]), hat[:500], rtol=1e-8)
+    shifted = fit.to_shifted(design)
+    u = (y - fit.predict(design)) * weights
+    robust = fit.sandwich((shifted * (u * u)[:, np.newaxis]).T @ shifted)
+    np.testing.assert_allclose(np.sqrt(np.diag(robust)), result.HC0_se, rtol=1e-8)
+
+
 # ---------------------------------------------------------------- errors
 
 

@@ -72,10 +72,14 @@ class ColumnFiguresAccumulator:
             if not (abs(low[i]) < NUMPY_LIMIT and abs(high[i]) < NUMPY_LIMIT):
                 queried.append(i)
                 continue
-            shifted = values - values[0]
-            total = float(shifted.sum())
+            with np.errstate(over="ignore", invalid="ignore"):
+                shifted = values - values[0]
+                total, squares = float(shifted.sum()), float(shifted @ shifted)
+            if not (math.isfinite(total) and math.isfinite(squares)):
+                queried.append(i)  # sums past float64: polars words them as it always did
+                continue
             mean[i] = values[0] + total / n
-            m2[i] = max(float(shifted @ shifted) - total * total / n, 0.0)
+            m2[i] = max(squares - total * total / n, 0.0)
         if queried:
             found = frame.select(self._queries(frame, masked=False, only=queried))
             figures = found.row(0, named=True)

@@ -314,11 +314,14 @@ def _solve_upper(r: FloatArray, b: FloatArray, *, transposed: bool = False) -> F
             for i in range(start, stop):
                 v[i] = (rhs[i - start] - r[start:i, i] @ v[start:i]) / r[i, i]
         return v
-    for stop in range(n, 0, -SOLVE_BLOCK_ROWS):
-        start = max(stop - SOLVE_BLOCK_ROWS, 0)
-        rhs = b[start:stop] - r[start:stop, stop:] @ v[stop:]
-        for i in range(stop - 1, start - 1, -1):
-            v[i] = (rhs[i - start] - r[i, i + 1 : stop] @ v[i + 1 : stop]) / r[i, i]
+    # As quiet as LAPACK's solve it replaces: values past float64 come out inf or NaN, and
+    # the callers' checks name them.
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        for stop in range(n, 0, -SOLVE_BLOCK_ROWS):
+            start = max(stop - SOLVE_BLOCK_ROWS, 0)
+            rhs = b[start:stop] - r[start:stop, stop:] @ v[stop:]
+            for i in range(stop - 1, start - 1, -1):
+                v[i] = (rhs[i - start] - r[i, i + 1 : stop] @ v[i + 1 : stop]) / r[i, i]
     return v
 
 
