@@ -37,8 +37,10 @@ def edge_sample(values: ArrayLike) -> FloatArray:
     only what `quantile_edges` would look at.
     """
     v = np.asarray(values, dtype=np.float64)
-    v = v[np.isfinite(v)]
-    return v[:: -(-v.size // EDGE_SAMPLE_VALUES)] if v.size else v
+    finite = np.isfinite(v)
+    if not finite.all():  # most samples hold no gap: no copy of every value then
+        v = v[finite]
+    return v[:: -(-v.size // EDGE_SAMPLE_VALUES)].copy() if v.size else v
 
 
 def quantile_edges(values: ArrayLike, n_bins: int, *, name: str) -> FloatArray:
