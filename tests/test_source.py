@@ -570,6 +570,7 @@ def test_source_csv_folder_and_glob_read_as_one_table(tmp_path: Path) -> None:
         where = pl.col("x") > 0
         parts = source.scan_parts(["x", "k"], where=where, batch_rows=100)
         assert [part.start for part in parts] == [0, 300, 750]  # type: ignore[attr-defined]
+        assert [part.rows for part in parts] == sizes  # type: ignore[attr-defined]
         got = pl.concat(b.frame for part in parts for b in part())
         assert_frame_equal(got, _indexed(oracle).filter(where).select(ROW_INDEX, "x", "k"))
         positions = [999, 0, 299, 300, 749, 750, 5]

@@ -88,7 +88,7 @@ def numbered(frame: pl.LazyFrame, start: int = 0) -> pl.LazyFrame:
 
 @dataclass(frozen=True, eq=False, kw_only=True)
 class CsvPart(FilePart):
-    """One whole delimited text file (see `FilePart`); its rows are known only once read.
+    """One whole delimited text file (see `FilePart`).
 
     A file is not cut into byte ranges: a quoted field may hold a line break, so only a
     read from the file's start knows where a row begins.
@@ -97,11 +97,14 @@ class CsvPart(FilePart):
     kind = "CSV"
     separator: str
     options: CsvOptions
+    counted: int | None = None
+    """The file's rows as the source counted them (for its sample, or a folder's positions);
+    None when they were not counted."""
 
     @property
-    def rows(self) -> None:
-        """Unknown until the file is read."""
-        return None
+    def rows(self) -> int | None:
+        """The rows counted, if they were: a read of other than these says the file changed."""
+        return self.counted
 
     def _frames(self) -> Iterator[pl.DataFrame]:
         path = Path(self.path)
@@ -206,14 +209,24 @@ class CsvSource(BlockSource):
     ) -> list[CsvPart]:
         """Return each file as one part (a worker reads it where it sees it)."""
         schema = self.schema()
+        starts = self._starts
+        # a single file's rows are known once its sample was drawn (which counts them)
+        is_counted = len(self._files) > 1 or "_file_rows" in self.__dict__
+        counts: list[int | None] = list(self._file_rows) if is_counted else [None]
         parts = []
-        for file, start in zip(self._files, self._starts, strict=True):
+        for file, start, counted in zip(self._files, starts, counts, strict=True):
             fields = part_fields(
                 file, columns, schema, where=where, extra=extra, batch_rows=batch_rows,
                 stamp=self.snapshot.stamp(file),
             )  # fmt: skip
             parts.append(
-                CsvPart(start=start, separator=self._separator, options=self._options, **fields)
+                CsvPart(
+                    start=start,
+                    separator=self._separator,
+                    options=self._options,
+                    counted=counted,
+                    **fields,
+                )
             )
         return parts
 

@@ -234,7 +234,7 @@ class ClusterEngine:
         )
         finished = threading.Event()
         root.add_done_callback(lambda _: finished.set())
-        sizes = [part.rows or 0 for part in file_parts]  # a CSV file's rows: known when read
+        sizes = [part.rows or 0 for part in file_parts]  # a CSV file not counted: 0
         rows_done = 0
         try:
             while not finished.wait(POLL_S):
