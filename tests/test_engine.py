@@ -10,6 +10,7 @@ import operator
 import sys
 import threading
 import time
+from collections.abc import Iterator
 from pathlib import Path
 
 import numpy as np
@@ -124,6 +125,40 @@ def test_engine_fold_in_order_merges_in_unit_order_whoever_finishes_first() -> N
 
     merged = fold_in_order(range(6), fold_unit, lambda a, b: a + b, wait=lambda: None, n_workers=2)
     assert merged == [0, 1, 2, 3, 4, 5]
+
+
+def test_engine_fold_in_order_interrupted_while_starting_leaves_no_reader(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # A signal's exception (here KeyboardInterrupt) reaches the main thread while it starts
+    # the second worker; the first is inside the units generator, reading. fold_in_order
+    # must wait for it, so the caller can close the generator (as `contextlib.closing` in
+    # the passes does) instead of failing with "generator already executing".
+    reading, go_on = threading.Event(), threading.Event()
+
+    def units() -> Iterator[int]:
+        reading.set()
+        go_on.wait(5)
+        yield from range(4)
+
+    start = threading.Thread.start
+
+    def start_then_interrupt(thread: threading.Thread) -> None:
+        start(thread)
+        if thread.name.endswith("-1"):
+            reading.wait(5)
+            threading.Timer(0.2, go_on.set).start()  # the reader goes on a moment later
+            raise KeyboardInterrupt
+
+    monkeypatch.setattr(threading.Thread, "start", start_then_interrupt)
+    generator = units()
+    with pytest.raises(KeyboardInterrupt):
+        fold_in_order(
+            generator, lambda k, _: [k], lambda a, b: a + b, wait=lambda: None, n_workers=2
+        )
+    monkeypatch.undo()
+    generator.close()  # raised ValueError while a worker was still reading it
+    assert not [t for t in threading.enumerate() if t.name.startswith("triage-worker-")]
 
 
 def test_engine_fold_in_order_stops_on_an_error_or_a_cancel() -> None:

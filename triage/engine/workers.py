@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import os
 import threading
+import time
 from collections import deque
 from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import Future, ThreadPoolExecutor
@@ -143,17 +144,22 @@ def fold_in_order(
         threading.Thread(target=work, name=f"triage-worker-{k}", daemon=True)
         for k in range(n_threads)
     ]
-    for thread in threads:
-        thread.start()
+    launched: list[threading.Thread] = []
     try:
+        # A signal's exception may come while a thread starts, one already reading `units`:
+        # every thread launched is joined, so none is left reading a generator its caller
+        # then closes ("generator already executing").
+        for thread in threads:
+            launched.append(thread)
+            thread.start()
         while not all_done.wait(wait_s):
             wait()
     except BaseException:
         stopping.set()
         raise
     finally:
-        for thread in threads:
-            thread.join()
+        for thread in launched:
+            _join_launched(thread)
     if errors:
         raise errors[0]
     while len(runs) > 1:  # the shorter runs at the end join from the right
@@ -192,3 +198,20 @@ def map_in_order(
             yield pending.popleft().result()
     finally:
         pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _join_launched(thread: threading.Thread, *, start_s: float = 1.0) -> None:
+    """Join `thread`, whose `start` was called but may have been cut short by an exception.
+
+    A thread whose start was interrupted runs all the same, a moment later; one that never
+    got going (the exception came first) is given up after `start_s` seconds.
+    """
+    deadline = time.monotonic() + start_s
+    while True:
+        try:
+            thread.join()
+            return
+        except RuntimeError:  # "cannot join thread before it is started": not running yet
+            if time.monotonic() > deadline:
+                return
+            time.sleep(0.001)
