@@ -701,9 +701,12 @@ class PassPlan:
             budget=budget,
         )
 
-    def marked_rows(self) -> pl.DataFrame:
-        """Read the rows the user marked that the filter keeps (their levels count too)."""
-        frame = self.source.read_rows(self.exclude)
+    def marked_rows(self, rows_read: int) -> pl.DataFrame:
+        """Read the rows the user marked that the filter keeps (their levels count too).
+
+        Positions past the `rows_read` rows of the source mark no row, as in the pass.
+        """
+        frame = self.source.read_rows(self.exclude[self.exclude < rows_read])
         return frame if self.where is None else frame.filter(self.where)
 
     def rows_total(self) -> int | None:
@@ -972,7 +975,7 @@ def _fit_pass_finding_levels(
     figures = () if part.figures is None else part.figures.finalize()
     if plan.exclude.size:
         marked = design.new_levels()
-        design.count(plan.marked_rows(), marked)
+        design.count(plan.marked_rows(counts.read), marked)
         for found, more in zip(part.levels, marked, strict=True):
             found.absorb(more)
     builder, level_positions = design.finish(part.levels, plan.source.schema(), plan.learning_frame)
