@@ -155,9 +155,11 @@ def _spec(folder: Path) -> Any:
 
 def test_cluster_fit_equals_local_engine(folder: Path, engine: ClusterEngine, lre: Lre) -> None:
     source, spec = _spec(folder)
-    local = passes.fit_model(source, spec, rows=ALL_ROWS)
+    local = passes.fit_model(source, spec, rows=ALL_ROWS, column_figures=True)
     seen: list[PassProgress] = []
-    remote = passes.fit_model(source, spec, rows=ALL_ROWS, engine=engine, on_progress=seen.append)
+    remote = passes.fit_model(
+        source, spec, rows=ALL_ROWS, engine=engine, on_progress=seen.append, column_figures=True
+    )
     assert engine.is_connected
     assert remote.data == local.data  # every count identical
     assert remote.data.rows_read == N_FILES * FILE_ROWS and remote.data.is_full_pass

@@ -315,9 +315,11 @@ class PassPlan:
         exclude_rows: Collection[int] = (),
         extra_columns: Sequence[str] = (),
         engine: PassEngine | None = None,
+        column_figures: bool = False,
     ) -> None:
         keep_batch_memory()
         self.engine = engine
+        self.column_figures = column_figures
         self.source = source
         self.spec = spec
         self.where = _parse_where(source, spec)
@@ -340,6 +342,7 @@ class PassPlan:
         exclude_rows: Collection[int],
         extra_columns: Sequence[str] = (),
         engine: PassEngine | None = None,
+        column_figures: bool = False,
     ) -> PassPlan:
         """Draw the sample (a quick fit's rows, or a full pass's learning rows); plan the pass.
 
@@ -361,6 +364,7 @@ class PassPlan:
             exclude_rows=exclude_rows,
             extra_columns=extra_columns,
             engine=engine,
+            column_figures=column_figures,
         )
 
     @property
@@ -372,6 +376,17 @@ class PassPlan:
     def folds_whole_source(self) -> bool:
         """True when every row of the source reaches the fold: a full pass, no filter, no marks."""
         return self.is_full_pass and self.where is None and self.exclude.size == 0
+
+    @property
+    def figures_schema(self) -> dict[str, pl.DataType] | None:
+        """The schema the columns' figures read, or None when this pass folds none.
+
+        Figures are folded only when asked for (`column_figures`) and every row of the
+        source reaches the fold; they cost about a fifth of a numeric fit's CPU.
+        """
+        if not (self.column_figures and self.folds_whole_source):
+            return None
+        return dict(self.source.schema())
 
     def _drop_excluded(self, frame: pl.DataFrame, counts: RowCounts) -> pl.DataFrame:
         return drop_marked_rows(frame, self.exclude, counts)
@@ -814,6 +829,7 @@ def fit_model(
     on_progress: ProgressCallback | None = None,
     cancel: threading.Event | None = None,
     engine: PassEngine | None = None,
+    column_figures: bool = False,
 ) -> FitOutcome:
     """Fit `spec` by least squares on a sample of about `rows` rows, or on every row.
 
@@ -835,6 +851,9 @@ def fit_model(
         Progress callback and cancel event; see `ProgressTracker`.
     engine : PassEngine, optional
         Runs a pass over every row on a cluster; a sample is always fitted here.
+    column_figures : bool, default=False
+        Fold the model's columns' figures (`FitOutcome.column_figures`) into a pass that
+        reads every row of the source, for a screen that shows them.
 
     Returns
     -------
@@ -861,6 +880,7 @@ def fit_model(
             learning_frame=nothing,
             exclude_rows=exclude_rows,
             engine=engine,
+            column_figures=column_figures,
         )
     else:
         plan = PassPlan.read(
@@ -871,6 +891,7 @@ def fit_model(
             sampling=sampling,
             exclude_rows=exclude_rows,
             engine=engine,
+            column_figures=column_figures,
         )
     return _fit(plan, on_progress=on_progress, cancel=cancel)
 
@@ -949,7 +970,7 @@ def _fit_pass_finding_levels(
     design = plan.learn_open(learning)
     has_intercept = plan.spec.intercept  # the parts go to a cluster's workers without `plan`
     n_dense = len(design.numeric.column_names) - int(has_intercept)
-    schema = dict(plan.source.schema()) if plan.folds_whole_source else None
+    schema = plan.figures_schema
     source_columns = plan.spec.source_columns()
 
     def new_part() -> _FindingPart:
@@ -998,7 +1019,7 @@ def _fit_pass(
     """
     spec = plan.spec
     unshifted = builder.indicator_positions if use_codes else ()
-    schema = dict(plan.source.schema()) if plan.folds_whole_source else None
+    schema = plan.figures_schema
 
     def new_part() -> FitPart:
         accumulator = QRAccumulator(
@@ -1082,6 +1103,7 @@ def run_report(
     cancel: threading.Event | None = None,
     on_fit: Callable[[FitOutcome], None] | None = None,
     engine: PassEngine | None = None,
+    column_figures: bool = False,
 ) -> ReportOutcome:
     """Fit `spec` (pass 1), then compute residual diagnostics on the same rows (pass 2).
 
@@ -1102,6 +1124,7 @@ def run_report(
         exclude_rows=exclude_rows,
         extra_columns=by,
         engine=engine,
+        column_figures=column_figures,
     )
     started = time.perf_counter()
 

@@ -193,6 +193,7 @@ class HeadStart:
                 is_ordered=settings.is_ordered,
                 cancel=self._cancel,
                 on_fit=self._fit.set_result,
+                column_figures=True,
             )
         except Exception as error:  # handed to the screen, which reports it
             if not self._fit.done():

@@ -236,6 +236,7 @@ def run_pass(
             on_progress=None if rows is not ALL_ROWS else report_progress,
             cancel=worker.cancelled_event,
             on_fit=None if rows is ALL_ROWS else report_fit,
+            column_figures=True,
         )
     except PassCancelled:
         post(PassStopped(job.pass_id))
