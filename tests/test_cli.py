@@ -323,6 +323,30 @@ def test_cli_progress_line_names_the_pass_and_counts_its_rows_once() -> None:
     assert "2,500,000 rows/s, about 5 s left" in line
 
 
+def test_cli_progress_in_a_log_is_whole_lines_at_most_every_interval(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # A log file or pipe gets whole lines, no carriage returns, one per LOG_EVERY_S.
+    import io
+
+    from triage.cli import progress as progress_module
+    from triage.results.progress import PassProgress
+
+    clock = iter([0.0, 1.0, 2.0, 31.5, 40.0])
+    monkeypatch.setattr(progress_module.time, "perf_counter", lambda: next(clock))
+    stream = io.StringIO()  # not a terminal
+    progress = progress_module.StderrProgress(delay_s=0.0, stream=stream)
+    for done in (1_000, 2_000, 3_000, 4_000):
+        progress(PassProgress(done, 4_000, 1.0, 1_000.0, None))
+    progress.finish()
+    lines = stream.getvalue().split("\n")
+    assert "\r" not in stream.getvalue()
+    assert [line.split(":")[1].strip() for line in lines if line] == [
+        "1,000 of 4,000 rows  1,000 rows/s",
+        "3,000 of 4,000 rows  1,000 rows/s",
+    ]
+
+
 def test_cli_fit_holdout_prints_figures_not_a_table_for_one_model(
     small: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:

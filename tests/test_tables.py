@@ -332,7 +332,8 @@ def test_bad_tables_exit_2_with_one_line(
         path = _million_level_parquet(tmp_path / "people.parquet")
     result = _run_limited(["fit", str(path), "--terms", terms, *extra])
     assert result.returncode == 2, result.stderr[-2000:]
-    lines = result.stderr.strip().splitlines()
+    # a slow machine may log a progress line of the pass before the error
+    lines = [line for line in result.stderr.splitlines() if "rows/s" not in line]
     assert len(lines) == 1, result.stderr[-2000:]
     assert expected in lines[0]
     if case == "million":
