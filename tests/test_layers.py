@@ -21,13 +21,14 @@ LOWER_PACKAGES = (
     "triage.views",
 )
 
-BASE: Final = frozenset({"_typing", "errors"})
+BASE: Final = frozenset({"_typing", "errors", "wording"})
 """Modules with no triage imports of their own, which every layer may use."""
 
 MAY_IMPORT: Final[dict[str, frozenset[str]]] = {
     "triage": frozenset(),  # triage/__init__.py: the version string
     "_typing": frozenset(),
     "errors": frozenset(),
+    "wording": frozenset(),
     "results": BASE,
     "core": BASE | {"results"},
     "data": BASE | {"results", "core"},

@@ -269,7 +269,7 @@ def test_readme_columns_pane_sample_and_every_row_maximum() -> None:
     profile = {row["name"]: row for row in opened.profile.iter_rows(named=True)}
     assert round(profile["minutes"]["high"]) == 8430
     spec = build_spec(opened.source.schema(), target="minutes", terms=TOUR_TERMS)
-    figures = fit_model(opened.source, spec, rows=ALL_ROWS).column_figures
+    figures = fit_model(opened.source, spec, rows=ALL_ROWS, column_figures=True).column_figures
     every_row = next(f for f in figures if f.name == "minutes")
     assert every_row.high == pl.read_parquet(DEMO)["minutes"].max() == 10260
 

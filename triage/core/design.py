@@ -35,6 +35,7 @@ from triage.core.levels import (
 )
 from triage.core.spec import Term, indicator_name, is_categorical_dtype, quote_name
 from triage.errors import DataError, SpecError
+from triage.wording import counted
 
 if TYPE_CHECKING:
     from collections.abc import Mapping, Sequence
@@ -172,11 +173,6 @@ class DesignColumns:
     def n_rows(self) -> int:
         """Number of rows."""
         return int(self.y.shape[0])
-
-
-def _rows(n: int) -> str:
-    """Write a row count for a message: `1 row`, `1,204 rows`."""
-    return f"{n:,} row" if n == 1 else f"{n:,} rows"
 
 
 def _is_float(dtype: pl.DataType | type[pl.DataType]) -> bool:
@@ -886,7 +882,7 @@ class DesignBuilder:
             for check in self._checks:
                 n_bad = int(counts[check.name])
                 if n_bad:
-                    msg = f"{check.problem} for {_rows(n_bad)} in this batch; {check.hint}"
+                    msg = f"{check.problem} for {counted(n_bad, 'row')} in this batch; {check.hint}"
                     raise DataError(msg)
         keep = masks.select(usable & ~bad).to_series()
         return (
@@ -909,7 +905,8 @@ class DesignBuilder:
             labels = dict.fromkeys(self.term_of_column[int(i)] for i in columns)
             where = ", ".join(f"`{label}`" for label in labels)
             msg = (
-                f"values too large for float64 in {where} for {_rows(n_bad)} in this batch; "
+                f"values too large for float64 in {where} for {counted(n_bad, 'row')} in this "
+                "batch; "
                 "rescale the column (for example with `std(...)`), filter the rows with "
                 "`--where`, or pass `--drop-invalid` to leave those rows out"
             )

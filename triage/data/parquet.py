@@ -31,6 +31,7 @@ from triage.data.base import (
 )
 from triage.data.remote import FileName, file_name, open_input
 from triage.data.snapshot import FileStamp
+from triage.wording import counted
 
 PART_ROWS: Final = 500_000
 """Rows, at least, in a part of a split scan (`scan_parts`): whole row groups, so each part
@@ -212,7 +213,7 @@ class ParquetFileSource(BlockSource):
     def description(self) -> str:
         """One line naming the file and its row groups."""
         n_groups = len(self._offsets) - 1
-        return f"{file_name(self._path)}: Parquet, 1 file, {n_groups:,} row groups"
+        return f"{file_name(self._path)}: Parquet, 1 file, {counted(n_groups, 'row group')}"
 
     def _read_schema(self) -> dict[str, pl.DataType]:
         if isinstance(self._path, str):  # a URL: polars' types of pyarrow's schema
@@ -291,7 +292,8 @@ class ParquetDatasetSource(BlockSource):
     def description(self) -> str:
         """One line naming the folder or glob, its files, row groups and partition columns."""
         offsets = self._offsets
-        text = f"{self._path}: Parquet, {len(self._files):,} files, {len(offsets) - 1:,} row groups"
+        groups = counted(len(offsets) - 1, "row group")
+        text = f"{self._path}: Parquet, {counted(len(self._files), 'file')}, {groups}"
         with reading(self._files[0], self._kind):
             in_file = set(open_parquet(self._files[0]).schema_arrow.names)
         partitions = [name for name in self.schema() if name not in in_file]

@@ -19,6 +19,7 @@ import numpy as np
 import plotext as plt
 
 from triage.views.format import cell_width, format_count, format_number, truncate
+from triage.wording import counted
 
 if TYPE_CHECKING:
     from numpy.typing import NDArray
@@ -221,9 +222,9 @@ def render_histogram(histogram: Any, width: int, height: int, *, color: bool) ->
     )
     tail_note = _fit_words(
         (
-            f"{_rows(below)} below {lo_text}, {_rows(above)} above {hi_text}; "
+            f"{counted(below, 'row')} below {lo_text}, {counted(above, 'row')} above {hi_text}; "
             f"bars {bar_width} wide",
-            f"{_rows(below)} below {lo_text}, {_rows(above)} above {hi_text}",
+            f"{counted(below, 'row')} below {lo_text}, {counted(above, 'row')} above {hi_text}",
             f"{format_count(below)} below, {format_count(above)} above",
         ),
         width,
@@ -319,11 +320,6 @@ def side_by_side(left: str, right: str, left_width: int) -> str:
         pad = max(0, left_width - Text.from_ansi(a).cell_len)
         lines.append(f"{a}{' ' * pad}{b}")
     return "\n".join(lines)
-
-
-def _rows(count: int) -> str:
-    """``1 row``, ``2 rows``."""
-    return f"{format_count(count)} row{'' if count == 1 else 's'}"
 
 
 def binned_legend(x_label: str, width: int) -> str:

@@ -20,16 +20,12 @@ from triage.core.flag_rules import (
     STUDENTIZED_LIMIT,
     TREND_R2,
 )
+from triage.wording import counted
 
 if TYPE_CHECKING:
     from triage.results.diagnostics import Flag, FlagCode
 
 __all__ = ["flag_message"]
-
-
-def _rows(count: float) -> str:
-    """``1 row``, ``2 rows``, ``4,149 rows``."""
-    return f"{int(count):,} row{'' if count == 1 else 's'}"
 
 
 def _have(count: float) -> str:
@@ -41,14 +37,14 @@ def _large_studentized(flag: Flag) -> str:
     if flag.value:
         fits = round(1.0 / BONFERRONI_LEVEL)
         found.append(
-            f"{_rows(flag.value)} beyond ±{flag.cutoff:.3g}, further out than normal errors "
-            f"would put any of {flag.rows:,} rows in {fits - 1} fits of {fits} (Bonferroni "
+            f"{counted(flag.value, 'row')} beyond ±{flag.cutoff:.3g}, further out than normal "
+            f"errors would put any of {flag.rows:,} rows in {fits - 1} fits of {fits} (Bonferroni "
             "bound)"
         )
     if flag.beyond_limit:
         found.append(
-            f"{_rows(flag.beyond_limit)} beyond ±{STUDENTIZED_LIMIT:g} where chance would put "
-            f"about {flag.expected:,.0f} (common practice threshold)"
+            f"{counted(flag.beyond_limit, 'row')} beyond ±{STUDENTIZED_LIMIT:g} where chance "
+            f"would put about {flag.expected:,.0f} (common practice threshold)"
         )
     return (
         f"studentized residuals: {'; '.join(found)}. Worth a look: they may be data errors or "
@@ -57,16 +53,18 @@ def _large_studentized(flag: Flag) -> str:
 
 
 def _high_leverage(flag: Flag) -> str:
+    rows = counted(flag.value, "row")
     return (
-        f"{_rows(flag.value)} {_have(flag.value)} leverage above {LEVERAGE_FACTOR:g}p/n = "
+        f"{rows} {_have(flag.value)} leverage above {LEVERAGE_FACTOR:g}p/n = "
         f"{flag.cutoff:.3g} (common practice): their predictor values are unusual and may "
         "pull the fit towards them. Worth a look."
     )
 
 
 def _influential_rows(flag: Flag) -> str:
+    rows = counted(flag.value, "row")
     return (
-        f"{_rows(flag.value)} {_have(flag.value)} Cook's distance above {COOKS_NUMERATOR:g}/n "
+        f"{rows} {_have(flag.value)} Cook's distance above {COOKS_NUMERATOR:g}/n "
         f"= {flag.cutoff:.3g} (common practice): leaving one out may move the coefficients "
         "noticeably. Worth a look, no proof of error."
     )
