@@ -554,6 +554,29 @@ def test_an_identifier_column_is_named_as_such_past_the_level_limit() -> None:
         DesignBuilder.learn(spec, codes.schema, codes)
 
 
+def test_a_full_pass_past_the_level_limit_counts_the_batch_before_naming_the_cause(
+    tmp_path: Path,
+) -> None:
+    # A 60-level office code with skewed shares, every level in the first batch: the pass
+    # refuses it mid-read, and the wording must come from the rows counted (3,000 rows, 60
+    # levels: a code, not an identifier). It read "nearly one level per row" when the
+    # refusal came before the batch's rows were counted.
+    rng = np.random.default_rng(11)
+    shares = 1.0 / np.arange(1, 61)
+    office = rng.choice([f"o{k:02d}" for k in range(60)], size=3_000, p=shares / shares.sum())
+    office[:60] = [f"o{k:02d}" for k in range(60)]
+    frame = pl.DataFrame({"office": office, "x": rng.normal(size=3_000)}).with_columns(
+        y=pl.col("x") * 2.0 + rng.normal(size=3_000)
+    )
+    path = tmp_path / "offices.parquet"
+    frame.sort("office").write_parquet(path)
+    result = _run_limited(["fit", str(path), "--terms", "y ~ x + office", "--rows", "all"])
+    assert result.returncode == 2, result.stderr[-2000:]
+    assert "`office` has at least 60 levels in the rows read" in result.stderr
+    assert "raise the limit with `--max-levels`" in result.stderr
+    assert "identifier" not in result.stderr
+
+
 def test_max_memory_option_sets_the_guard(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:

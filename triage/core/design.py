@@ -1138,12 +1138,11 @@ class OpenLevelDesign:
             present = has.to_numpy()
             new = present & (codes < 0)
             if new.any():
-                new_codes = lv.add_new(frame, new)
-                if len(lv) > self.cap:
-                    self._refuse(levels)
                 codes = codes.copy()
-                codes[new] = new_codes
-            lv.count(codes[present])
+                codes[new] = lv.add_new(frame, new)
+            lv.count(codes[present])  # before a refusal, whose wording reads the counts
+            if len(lv) > self.cap:
+                self._refuse(levels)
             found.append(codes)
         return found
 
