@@ -214,6 +214,39 @@ def test_engine_keeps_batch_memory_in_the_heap_under_glibc() -> None:
     assert keep_batch_memory() is expected
 
 
+def test_engine_gives_arrow_reads_jemalloc_unless_the_user_chose_a_pool() -> None:
+    # Oracle: pyarrow's own name for its default pool, in a fresh interpreter each time.
+    import os
+    import subprocess
+
+    import pyarrow as pa
+
+    try:
+        pa.jemalloc_memory_pool()
+        built_with = "jemalloc"
+    except NotImplementedError:
+        built_with = pa.default_memory_pool().backend_name
+    show = (
+        "import pyarrow as pa; from triage.engine.allocator import keep_batch_memory; "
+        "keep_batch_memory(); print(pa.default_memory_pool().backend_name)"
+    )
+    root = str(Path(__file__).resolve().parents[1])
+
+    def pool_name(**env: str) -> str:
+        clean = {k: v for k, v in os.environ.items() if k != "ARROW_DEFAULT_MEMORY_POOL"}
+        result = subprocess.run(
+            [sys.executable, "-c", show],
+            env={**clean, "PYTHONPATH": root, **env},
+            capture_output=True,
+            text=True,
+            check=True,
+        )
+        return result.stdout.strip()
+
+    assert pool_name() == built_with
+    assert pool_name(ARROW_DEFAULT_MEMORY_POOL="system") == "system"
+
+
 @pytest.mark.parametrize("split", ["parts", "read-ahead"])
 def test_engine_report_is_the_same_for_1_2_and_8_workers(
     tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch, split: str
