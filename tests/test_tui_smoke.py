@@ -135,7 +135,9 @@ def test_tui_terms_edited_during_a_full_pass_in_tmux_at_80x24(tmp_path: Path) ->
         wait_for("rows/s")  # the pass over every row is under way
         tmux("send-keys", "-t", "app", "e")
         wait_for("terms (comma list")
-        # the model's terms are selected in the field: typing replaces them
+        # the cursor sits after the model's terms: ctrl+u clears them, then type new ones
+        tmux("send-keys", "-t", "app", "C-u")
+        wait_for("log(stops), depot, stops:weight_kg")  # the empty field shows its example
         tmux("send-keys", "-t", "app", "-l", "distance_km, stops")
         wait_for("distance_km, stops ")
         tmux("send-keys", "-t", "app", "Enter")

@@ -88,7 +88,8 @@ class PromptScreen(ModalScreen[str | None]):
             yield Input(
                 self.value, placeholder=self.placeholder, id="prompt-input", select_on_focus=False
             )
-            yield Static("enter: apply   escape: close", classes="dialog--keys", markup=False)
+            keys = "enter: apply   ctrl+u: clear   escape: close"
+            yield Static(keys, classes="dialog--keys", markup=False)
 
     def on_mount(self) -> None:
         """Put the cursor in the field, without blinking (it redraws over a slow link)."""
