@@ -18,10 +18,10 @@ import polars as pl
 import pytest
 
 from tests.tables import administrative_table
-from triage._typing import ALL_ROWS
+from triage._typing import ALL_ROWS, RowsToRead
 from triage.core.spec import build_spec
 from triage.data import parquet as parquet_module
-from triage.data.source import open_source
+from triage.data.source import ROW_INDEX, open_source
 from triage.engine import passes
 from triage.engine import progress as progress_module
 from triage.engine.progress import ReadAhead
@@ -397,3 +397,37 @@ def test_engine_report_falls_back_to_refactored_tests_when_reset_has_nothing_to_
     assert np.isnan(tests["reset"].statistic)
     assert np.isfinite(tests["breusch_pagan"].statistic)
     assert report.diagnostics.n == N_ROWS
+
+
+def test_full_pass_learning_sample_keeps_rows_spread_through_the_whole_groups_read(
+    tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # 2,000-row groups and 3,000 learning rows: two whole groups are read (4,000 rows), and a
+    # full pass keeps 3,000 of them spread evenly; a quick fit of 3,000 rows keeps all 4,000.
+    monkeypatch.setattr(passes, "LEARNING_SAMPLE_ROWS", 3_000)
+    path = tmp_path / "admin.parquet"
+    administrative_table(rng, 20_000).write_parquet(path, row_group_size=2_000)
+    source = open_source(path)
+    spec = build_spec(source.schema(), target="y", terms="age, income, channel")
+
+    def plan(rows: RowsToRead) -> passes.PassPlan:
+        return passes.PassPlan.read(
+            source, spec, rows=rows, seed=7, sampling="groups", exclude_rows=()
+        )
+
+    full, quick = plan(ALL_ROWS), plan(3_000)
+    learned = full.learning_frame
+    assert learned.height == 3_000 and full.is_full_pass
+    assert quick.learning_frame.height == 4_000 and not quick.is_full_pass
+    # Oracle: polars reads the same two row groups whole, then rows i * 4,000 // 3,000.
+    whole = pl.read_parquet(path).with_row_index("position")
+    groups = np.unique(quick.learning_frame[ROW_INDEX].to_numpy() // 2_000)
+    read = whole.filter(pl.col("position").floordiv(2_000).is_in(groups.tolist()))
+    expected = read[np.arange(3_000) * read.height // 3_000]
+    assert learned[ROW_INDEX].to_list() == expected["position"].to_list()
+    for name in ("age", "income", "channel", "y"):
+        assert learned[name].to_list() == expected[name].to_list()
+    # Both groups contribute in proportion; the same seed draws the same rows again.
+    per_group = np.bincount(learned[ROW_INDEX].to_numpy() // 2_000)[groups]
+    assert per_group.tolist() == [1_500, 1_500]
+    assert plan(ALL_ROWS).learning_frame.equals(learned)
