@@ -347,6 +347,28 @@ def test_cli_progress_in_a_log_is_whole_lines_at_most_every_interval(
     ]
 
 
+@pytest.mark.parametrize("width", [60, 80])
+def test_cli_fit_and_compare_text_keep_to_the_width(
+    diabetes: Path, capsys: pytest.CaptureFixture[str], width: int
+) -> None:
+    # Oracle for a line's width: Unicode's East Asian Width (test_views.east_asian_cells).
+    # `fit` and `compare` were laid out at 100 columns whatever the terminal, and a long
+    # section title overran its rule by two cells.
+    from tests.test_views import east_asian_cells
+
+    long_model = "age, bmi, bp, s1, s2, s3, s4, s5, s6, square(bmi), log(bp)"
+    runs = [
+        ["fit", str(diabetes), "-y", "target", "-x", long_model],
+        ["compare", str(diabetes), "-y", "target", "-x", long_model, "-x", "bmi, bp"],
+        ["compare", str(diabetes), "-y", "target", "-x", long_model, "--robust"],
+    ]
+    for args in runs:
+        code, out, _ = run_cli([*args, "--width", str(width)], capsys)
+        assert code == 0
+        widest = max(out.splitlines(), key=east_asian_cells)
+        assert east_asian_cells(widest) <= width, widest
+
+
 def test_cli_fit_holdout_prints_figures_not_a_table_for_one_model(
     small: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:

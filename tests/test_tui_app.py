@@ -19,7 +19,7 @@ import polars as pl
 import pytest
 import statsmodels.api as sm
 from textual.command import CommandList, CommandPalette
-from textual.widgets import Static
+from textual.widgets import Input, Static
 
 from tests import tui_support
 from tests.tui_support import (
@@ -882,6 +882,20 @@ async def test_tui_full_pass_is_not_repeated_when_the_sample_was_every_row(
 
 # ------------------------------------------------------------------------------------------
 # comparison of the session's fits, robust and curvature checks (issue 6)
+
+
+async def test_tui_terms_editor_adds_what_is_typed_to_the_model_terms(
+    config_home: Path, demo_file: Path
+) -> None:
+    # Typing in the editor extends the model's terms; it replaced them all when the field
+    # opened with its text selected.
+    app = build_app(demo_file, target="minutes", terms="distance_km, stops")
+    async with app.run_test(size=SMALL) as pilot:
+        await settle(pilot)
+        await press_id(pilot, "edit-terms")
+        assert isinstance(app.screen, PromptScreen)
+        await pilot.press(*", hour")
+        assert app.screen.query_one("#prompt-input", Input).value == "distance_km, stops, hour"
 
 
 async def test_tui_fits_pane_compares_fits_on_the_same_rows(

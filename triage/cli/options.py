@@ -6,6 +6,7 @@ import argparse
 import contextlib
 import importlib.util
 import os
+import shutil
 from collections.abc import Callable, Iterator, Mapping
 from typing import TYPE_CHECKING, Any
 
@@ -232,6 +233,22 @@ def spec_from_args(
 
 
 _SIZE_UNITS = {"": 1, "K": 1 << 10, "M": 1 << 20, "G": 1 << 30, "T": 1 << 40}
+
+
+def add_width_option(parser: argparse.ArgumentParser) -> None:
+    """Add `--width`, the text's width in columns (default: the terminal's, at most 120)."""
+    parser.add_argument(
+        "--width",
+        type=integer_option("--width", minimum=40),
+        default=None,
+        help="text width in columns (default: the terminal's, at most 120)",
+    )
+
+
+def text_width(args: argparse.Namespace) -> int:
+    """Return the width to lay text out for: `--width`, else the terminal's (100 in a pipe)."""
+    width: int = args.width or min(shutil.get_terminal_size((100, 40)).columns, 120)
+    return width
 
 
 def parse_memory(text: str) -> int:

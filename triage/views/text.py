@@ -70,7 +70,7 @@ def rule(title: str, width: int = 100) -> str:
     str
         The rule.
     """
-    head = f"── {truncate(title, max(width - 4, 1))} "
+    head = f"── {truncate(title, max(width - 6, 1))} "  # room for at least "──" after it
     return head + "─" * max(width - cell_width(head), 2)
 
 

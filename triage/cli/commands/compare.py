@@ -13,6 +13,7 @@ from triage.cli.options import (
     add_model_options,
     add_row_options,
     add_source_options,
+    add_width_option,
     integer_option,
 )
 
@@ -50,6 +51,7 @@ def register(subparsers: Any) -> None:
         help="for each numeric predictor, show how much a spline lowers the K-fold RMSE",
     )
     parser.add_argument("--json", action="store_true", help="print one JSON object")
+    add_width_option(parser)
     parser.set_defaults(handler=run)
 
 
@@ -60,6 +62,7 @@ def run(args: argparse.Namespace) -> int:
         open_source_from_args,
         pass_engine,
         spec_from_args,
+        text_width,
     )
     from triage.cli.progress import StderrProgress
     from triage.engine.compare import (
@@ -114,13 +117,14 @@ def run(args: argparse.Namespace) -> int:
         json.dump(document, sys.stdout, indent=2, allow_nan=False)
         sys.stdout.write("\n")
         return 0
-    sections = [views.render_comparison(outcome)]
+    width = text_width(args)
+    sections = [views.render_comparison(outcome, width=width)]
     sections += [
-        views.render_robust_check(r, label=f"#{i + 1} {m.label}")
+        views.render_robust_check(r, label=f"#{i + 1} {m.label}", width=width)
         for i, (r, m) in enumerate(zip(robust, outcome.models, strict=False))
     ]
     sections += [
-        views.render_curvature_check(c, label=f"#{i + 1} {m.label}")
+        views.render_curvature_check(c, label=f"#{i + 1} {m.label}", width=width)
         for i, (c, m) in enumerate(zip(curvature, outcome.models, strict=False))
     ]
     sys.stdout.write("\n\n".join(sections) + "\n")

@@ -13,6 +13,7 @@ from triage.cli.options import (
     add_model_options,
     add_row_options,
     add_source_options,
+    add_width_option,
 )
 
 
@@ -29,6 +30,7 @@ def register(subparsers: Any) -> None:
     add_engine_options(parser)
     add_holdout_options(parser)
     parser.add_argument("--json", action="store_true", help="print one JSON object")
+    add_width_option(parser)
     parser.set_defaults(handler=run)
 
 
@@ -39,6 +41,7 @@ def run(args: argparse.Namespace) -> int:
         open_source_from_args,
         pass_engine,
         spec_from_args,
+        text_width,
     )
     from triage.cli.progress import StderrProgress
     from triage.engine.signals import stop_event
@@ -92,10 +95,11 @@ def run(args: argparse.Namespace) -> int:
         json.dump(document, sys.stdout, indent=2, allow_nan=False)
         sys.stdout.write("\n")
         return 0
-    text = render_fit_report(outcome)
+    width = text_width(args)
+    text = render_fit_report(outcome, width=width)
     if comparison is not None:
         from triage.views.compare import render_holdout_summary
 
-        text += "\n\n" + render_holdout_summary(comparison)
+        text += "\n\n" + render_holdout_summary(comparison, width=width)
     sys.stdout.write(text + "\n")
     return 0

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import shutil
 import sys
 from typing import Any
 
@@ -13,6 +12,7 @@ from triage.cli.options import (
     add_model_options,
     add_row_options,
     add_source_options,
+    add_width_option,
     integer_option,
 )
 
@@ -65,7 +65,7 @@ def register(subparsers: Any) -> None:
     )
     parser.add_argument("--json", action="store_true", help="print one JSON object")
     parser.add_argument("--no-charts", action="store_true", help="leave out the text charts")
-    parser.add_argument("--width", type=int, default=None, help="text width (default: terminal)")
+    add_width_option(parser)
     parser.set_defaults(handler=run)
 
 
@@ -76,6 +76,7 @@ def run(args: argparse.Namespace) -> int:
         pass_engine,
         shown_columns,
         spec_from_args,
+        text_width,
     )
     from triage.cli.progress import StderrProgress
     from triage.engine.passes import run_report
@@ -112,10 +113,9 @@ def run(args: argparse.Namespace) -> int:
         return 0
     from triage.views.text import render_full_report
 
-    width = args.width or min(shutil.get_terminal_size((100, 40)).columns, 120)
     text = render_full_report(
         report,
-        width=width,
+        width=text_width(args),
         charts=not args.no_charts,
         color=False,
         is_ordered=args.ordered,

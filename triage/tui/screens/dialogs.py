@@ -83,7 +83,11 @@ class PromptScreen(ModalScreen[str | None]):
         """Lay out the question and the field."""
         with Vertical(classes="dialog"):
             yield Static(self.question, classes="dialog--title", markup=False)
-            yield Input(self.value, placeholder=self.placeholder, id="prompt-input")
+            # the cursor at the end, nothing selected: typing adds to the text, as when one
+            # more term is added to a model, instead of replacing it all
+            yield Input(
+                self.value, placeholder=self.placeholder, id="prompt-input", select_on_focus=False
+            )
             yield Static("enter: apply   escape: close", classes="dialog--keys", markup=False)
 
     def on_mount(self) -> None:
