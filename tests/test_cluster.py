@@ -153,13 +153,33 @@ def _spec(folder: Path) -> Any:
     return source, build_spec(source.schema(), target=None, terms=TERMS)
 
 
-def test_cluster_fit_equals_local_engine(folder: Path, engine: ClusterEngine, lre: Lre) -> None:
+def count_calls(monkeypatch: pytest.MonkeyPatch, owner: Any, name: str) -> list[None]:
+    """Wrap `owner.name` so that each call appends to the list returned."""
+    calls: list[None] = []
+    method = getattr(owner, name)
+
+    def counted(*args: Any, **kwargs: Any) -> Any:
+        calls.append(None)
+        return method(*args, **kwargs)
+
+    monkeypatch.setattr(owner, name, counted)
+    return calls
+
+
+def test_cluster_fit_equals_local_engine(
+    folder: Path, engine: ClusterEngine, lre: Lre, monkeypatch: pytest.MonkeyPatch
+) -> None:
     source, spec = _spec(folder)
     local = passes.fit_model(source, spec, rows=ALL_ROWS, column_figures=True)
     seen: list[PassProgress] = []
+    said("A fit makes one pass over every row on the cluster (it finds the categoricals'", README)
+    said("a fit needs none, as the tasks find the categoricals' levels as they read", README)
+    cluster_passes = count_calls(monkeypatch, engine, "fold_parts")
+    samples = count_calls(monkeypatch, source, "read_sample")
     remote = passes.fit_model(
         source, spec, rows=ALL_ROWS, engine=engine, on_progress=seen.append, column_figures=True
     )
+    assert (len(cluster_passes), len(samples)) == (1, 0)  # the model has depot and vehicle
     assert engine.is_connected
     assert remote.data == local.data  # every count identical
     assert remote.data.rows_read == N_FILES * FILE_ROWS and remote.data.is_full_pass
@@ -176,11 +196,16 @@ def test_cluster_fit_equals_local_engine(folder: Path, engine: ClusterEngine, lr
     assert done == sorted(done) and done[-1] == N_FILES * FILE_ROWS
 
 
-def test_cluster_report_equals_local_engine(folder: Path, engine: ClusterEngine, lre: Lre) -> None:
+def test_cluster_report_equals_local_engine(
+    folder: Path, engine: ClusterEngine, lre: Lre, monkeypatch: pytest.MonkeyPatch
+) -> None:
     source, spec = _spec(folder)
     options: dict[str, Any] = {"rows": ALL_ROWS, "by": ("depot", "vehicle"), "top_k": 25}
     local = passes.run_report(source, spec, **options)
+    said("and a report two (the fit, then the diagnostics)", README)
+    cluster_passes = count_calls(monkeypatch, engine, "fold_parts")
     remote = passes.run_report(source, spec, engine=engine, **options)
+    assert len(cluster_passes) == 2
     assert_same(report_to_json(local), report_to_json(remote), lre)
     assert report_to_json(remote) == report_to_json(local)
     for criterion, rows in local.diagnostics.worst.items():
