@@ -18,10 +18,11 @@ import polars as pl
 import pytest
 
 from tests.tables import administrative_table
-from triage._typing import ALL_ROWS
+from triage._typing import ALL_ROWS, RowsToRead
+from triage.core.filter import parse_filter
 from triage.core.spec import build_spec
 from triage.data import parquet as parquet_module
-from triage.data.source import open_source
+from triage.data.source import ROW_INDEX, open_source
 from triage.engine import passes
 from triage.engine import progress as progress_module
 from triage.engine.progress import ReadAhead
@@ -397,3 +398,81 @@ def test_engine_report_falls_back_to_refactored_tests_when_reset_has_nothing_to_
     assert np.isnan(tests["reset"].statistic)
     assert np.isfinite(tests["breusch_pagan"].statistic)
     assert report.diagnostics.n == N_ROWS
+
+
+def test_full_pass_learning_sample_keeps_rows_spread_through_the_whole_groups_read(
+    tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # 2,000-row groups and 3,000 learning rows: two whole groups are read (4,000 rows), and a
+    # full pass keeps 3,000 of them spread evenly; a quick fit of 3,000 rows keeps all 4,000.
+    monkeypatch.setattr(passes, "LEARNING_SAMPLE_ROWS", 3_000)
+    path = tmp_path / "admin.parquet"
+    administrative_table(rng, 20_000).write_parquet(path, row_group_size=2_000)
+    source = open_source(path)
+    spec = build_spec(source.schema(), target="y", terms="age, income, channel")
+
+    def plan(rows: RowsToRead) -> passes.PassPlan:
+        return passes.PassPlan.read(
+            source, spec, rows=rows, seed=7, sampling="groups", exclude_rows=()
+        )
+
+    full, quick = plan(ALL_ROWS), plan(3_000)
+    learned = full.learning_frame
+    assert learned.height == 3_000 and full.is_full_pass
+    assert quick.learning_frame.height == 4_000 and not quick.is_full_pass
+    # Oracle: polars reads the same two row groups whole, then rows i * 4,000 // 3,000.
+    whole = pl.read_parquet(path).with_row_index("position")
+    groups = np.unique(quick.learning_frame[ROW_INDEX].to_numpy() // 2_000)
+    read = whole.filter(pl.col("position").floordiv(2_000).is_in(groups.tolist()))
+    expected = read[np.arange(3_000) * read.height // 3_000]
+    assert learned[ROW_INDEX].to_list() == expected["position"].to_list()
+    for name in ("age", "income", "channel", "y"):
+        assert learned[name].to_list() == expected[name].to_list()
+    # Both groups contribute in proportion; the same seed draws the same rows again.
+    per_group = np.bincount(learned[ROW_INDEX].to_numpy() // 2_000)[groups]
+    assert per_group.tolist() == [1_500, 1_500]
+    assert plan(ALL_ROWS).learning_frame.equals(learned)
+
+
+def test_engine_parquet_text_codes_read_as_categorical_give_the_text_read_report(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, rng: np.random.Generator
+) -> None:
+    # Parquet parts read text columns dictionary-encoded (polars Categorical); the reference
+    # is the same file, parts and batches read as text. Both reports must agree bit for bit:
+    # the same levels in the same order, references, coefficients and every diagnostic.
+    from triage.views.json import report_to_json
+
+    monkeypatch.setattr(parquet_module, "PART_ROWS", 2_500)
+    path = tmp_path / "admin.parquet"
+    administrative_table(rng, N_ROWS).write_parquet(path, row_group_size=1_250)
+    where = "channel LIKE '%e%' OR age > 30"
+    source = open_source(path)
+    spec = build_spec(
+        source.schema(),
+        target="y",
+        terms="age, log(income), region, channel, age:income",
+        weights="weight",
+        where=where,
+    )
+    coded = passes.run_report(source, spec, rows=ALL_ROWS, by=("region",), top_k=10)
+    open_parquet = parquet_module.open_parquet
+
+    def open_as_text(path: Path, **options: object) -> object:
+        options.pop("read_dictionary", None)
+        return open_parquet(path, **options)
+
+    monkeypatch.setattr(parquet_module, "open_parquet", open_as_text)
+    text = passes.run_report(source, spec, rows=ALL_ROWS, by=("region",), top_k=10)
+    assert coded.outcome.data.rows_used > N_ROWS // 4
+    assert np.array_equal(coded.outcome.fit.coef, text.outcome.fit.coef)
+    assert np.array_equal(coded.outcome.fit.cov, text.outcome.fit.cov)
+    assert report_to_json(coded) == report_to_json(text)
+    monkeypatch.setattr(parquet_module, "open_parquet", open_parquet)
+
+    # The claim itself: a pass reads `region` as codes, and the filter's `channel` as text.
+    first_part = source.scan_parts(
+        list(spec.source_columns()), where=parse_filter(where, source.schema())
+    )[0]
+    batch = next(iter(first_part()))
+    assert batch.frame.schema["region"] == pl.Categorical
+    assert batch.frame.schema["channel"] == pl.String

@@ -30,6 +30,7 @@ from triage.core.levels import (
     FoundLevels,
     LevelTable,
     count_levels,
+    level_code,
     level_text,
     present_value,
 )
@@ -639,7 +640,7 @@ class DesignBuilder:
             for c in categorical_columns
         )
         codes = [
-            level_text(c).cast(pl.Enum(list(levels[c]))).to_physical().alias(f"__code_{k}")
+            level_code(c, schema[c], pl.Enum(list(levels[c]))).alias(f"__code_{k}")
             for k, c in enumerate(categorical_columns)
         ]
         coded = (

@@ -32,6 +32,16 @@ def level_text(column: str) -> pl.Expr:
     return pl.col(column).cast(pl.String)
 
 
+def level_code(column: str, dtype: pl.DataType | type[pl.DataType], levels: pl.Enum) -> pl.Expr:
+    """Each row's position among `levels` (null when missing or not among them).
+
+    A text column is cast as it is: read dictionary-encoded it is a Categorical, and
+    casting it to text first would decode every row.
+    """
+    source = pl.col(column) if dtype in (pl.String, pl.Categorical) else level_text(column)
+    return source.cast(levels, strict=False).to_physical()
+
+
 def present_value(column: str, dtype: pl.DataType | type[pl.DataType]) -> pl.Expr:
     """Mark usable values: not null and, for a float or decimal, finite."""
     if dtype.is_float() or dtype.is_decimal():
@@ -194,9 +204,7 @@ class FoundLevels:
         """Each row's level among those found so far (0, 1, ...), or -1 (missing or new)."""
         if self._code is None:
             self._code = (
-                level_text(self.column)
-                .cast(pl.Enum(self.names), strict=False)
-                .to_physical()
+                level_code(self.column, self.dtype, pl.Enum(self.names))
                 .cast(pl.Int64)
                 .fill_null(-1)
             )
@@ -208,7 +216,7 @@ class FoundLevels:
         Returns the codes of those rows (the new levels come last), so the rest of the
         frame need not be coded again.
         """
-        picked = frame.select(self.column).filter(pl.Series(rows))
+        picked = frame.select(pl.col(self.column).cast(self._values.dtype)).filter(pl.Series(rows))
         new = picked.select(
             _sortable(self.column, self.dtype).unique(maintain_order=True).alias(self.column)
         ).to_series()

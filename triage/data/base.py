@@ -11,7 +11,7 @@ import abc
 import contextlib
 import functools
 import os
-from collections.abc import Callable, Iterable, Iterator, Sequence
+from collections.abc import Callable, Collection, Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, ClassVar, Final, Protocol
@@ -324,7 +324,11 @@ def offsets_from_sizes(sizes: Sequence[int] | np.ndarray) -> np.ndarray:
 
 
 def number_record_batches(
-    record_batches: Iterable[pa.RecordBatch], schema: dict[str, pl.DataType], *, start: int = 0
+    record_batches: Iterable[pa.RecordBatch],
+    schema: dict[str, pl.DataType],
+    *,
+    start: int = 0,
+    coded: Collection[str] = (),
 ) -> Iterator[pl.DataFrame]:
     """Turn consecutive record batches of a source into frames with positions.
 
@@ -336,6 +340,8 @@ def number_record_batches(
         The source's polars types (see `conform`).
     start : int, default=0
         Position of the first row.
+    coded : collection of str, default=()
+        Text columns read dictionary-encoded, left as polars Categorical columns.
 
     Yields
     ------
@@ -344,7 +350,8 @@ def number_record_batches(
     """
     for record_batch in record_batches:
         n = record_batch.num_rows
-        frame = conform(pl.DataFrame(record_batch), schema)
+        types = {name: dtype for name, dtype in schema.items() if name not in coded}
+        frame = conform(pl.DataFrame(record_batch), types)
         yield with_positions(frame, range(start, start + n))
         start += n
 

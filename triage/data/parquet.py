@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 import os
 from collections.abc import Iterator, Sequence
@@ -15,6 +16,7 @@ import polars as pl
 import pyarrow.parquet as pq
 
 from triage.core.design import ROW_INDEX
+from triage.core.filter import filter_columns
 from triage.data.base import (
     BlockSource,
     FilePart,
@@ -83,6 +85,8 @@ class ParquetPart(FilePart):
     """Rows of each of those row groups."""
     constants: tuple[tuple[str, str | None], ...] = ()
     """Columns taken from the file's partition folders (``key=value``), with their values."""
+    text_as_categorical: bool = True
+    """Read text columns as polars Categorical (see `_frames`); False: as the schema's text."""
 
     @property
     def rows(self) -> int:
@@ -99,8 +103,17 @@ class ParquetPart(FilePart):
         literals = [
             pl.lit(values[name][0], dtype=values[name].dtype).alias(name) for name in values.columns
         ]
+        # Text read dictionary-encoded stays a polars Categorical: decoding and coding its
+        # levels skip the strings (2M rows of three code columns: 0.23 -> 0.15 CPU-s to
+        # decode). The filter's columns stay text, for its text functions.
+        filtered = () if self.where is None else filter_columns(self.where)
+        coded = [
+            c
+            for c in in_file
+            if self.text_as_categorical and self.schema[c] == pl.String and c not in filtered
+        ]
         with reading(path, "Parquet"):
-            reader = open_parquet(path)
+            reader = open_parquet(path, read_dictionary=coded)
         start = self.start
         for group, size in zip(range(*self.groups), self.sizes, strict=True):
             with reading(path, "Parquet"):
@@ -110,7 +123,9 @@ class ParquetPart(FilePart):
                     columns=in_file,
                     use_threads=False,
                 )
-                for frame in number_record_batches(record_batches, self.schema, start=start):
+                for frame in number_record_batches(
+                    record_batches, self.schema, start=start, coded=coded
+                ):
                     if literals:
                         frame = frame.with_columns(literals).select(ROW_INDEX, *self.columns)
                     yield frame
@@ -401,12 +416,16 @@ class ParquetUrlDatasetSource(ParquetDatasetSource):
     def _scan_raw(self, columns: list[str], batch_rows: int) -> Iterator[pl.DataFrame]:
         for part in self._parts(columns, None, [], batch_rows, None):
             self.snapshot.check_file(part.file)
-            yield from part._frames()
+            yield from dataclasses.replace(part, text_as_categorical=False)._frames()
 
     def _read_blocks(
         self, columns: list[str], blocks: np.ndarray, offsets: np.ndarray
     ) -> pl.DataFrame:
         # A part of each row group (blocks are the row groups of every file, in order).
         parts = self._parts(columns, None, [], 1 << 62, 1)
-        frames = [frame for block in blocks for frame in parts[int(block)]._frames()]
+        frames = [
+            frame
+            for block in blocks
+            for frame in dataclasses.replace(parts[int(block)], text_as_categorical=False)._frames()
+        ]
         return self._concat(frames, columns)
