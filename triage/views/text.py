@@ -26,6 +26,7 @@ from triage.views.format import (
     format_p,
     truncate,
 )
+from triage.wording import counted
 
 if TYPE_CHECKING:
     from triage._typing import Criterion
@@ -373,7 +374,7 @@ def render_fit_quality(fit: LinearFit, *, target: str | None = None, width: int 
     uncentered = "" if fit.has_intercept else " (uncentered: no intercept)"
     baseline = "intercept only" if fit.has_intercept else "none"
     parameters = parameters_counted(fit)
-    counted = f"{parameters} coefficient{'' if parameters == 1 else 's'} counted"
+    parameters_text = f"{counted(parameters, 'coefficient')} counted"
     units = f"in the units of {target}" if target else "in the target's units"
     groups: list[tuple[str, list[tuple[str, str]]]] = [
         (
@@ -395,8 +396,8 @@ def render_fit_quality(fit: LinearFit, *, target: str | None = None, width: int 
                     f"F {format_number(fit.f)}, p {format_p(fit.f_p)}  "
                     f"(df {format_count(fit.df_model)} and {format_count(fit.df_resid)})",
                 ),
-                ("AIC (lower is better)", f"{criterion_text(fit.aic)}  ({counted})"),
-                ("BIC (lower is better)", f"{criterion_text(fit.bic)}  ({counted})"),
+                ("AIC (lower is better)", f"{criterion_text(fit.aic)}  ({parameters_text})"),
+                ("BIC (lower is better)", f"{criterion_text(fit.bic)}  ({parameters_text})"),
             ],
         ),
         (

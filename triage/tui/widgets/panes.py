@@ -21,6 +21,7 @@ from textual.widget import Widget
 from textual.widgets import DataTable, Static
 
 from triage.tui.session import ModelDraft, SessionFit
+from triage.wording import counted
 
 if TYPE_CHECKING:
     import polars as pl
@@ -484,8 +485,7 @@ class FitsPane(Pane):
     def _note(self, cursor: int) -> None:
         from triage.views.text import model_formula
 
-        plural = "" if len(self.fits) == 1 else "s"
-        note = f"{len(self.fits)} fit{plural} this session; enter shows one again"
+        note = f"{counted(len(self.fits), 'fit')} this session; enter shows one again"
         compared = (self.comparison or ((), None))[0]
         if len(compared) > 1:
             note += (
