@@ -35,7 +35,8 @@ from triage.core.diagnostics import DiagnosticsAccumulator
 from triage.core.diagnostics_config import DiagnosticsConfig, default_config
 from triage.core.flag_rules import poisson_at_least
 from triage.core.lsq import LinearFit, QRAccumulator, UncertifiedGram
-from triage.core.moments import StreamMoments
+from triage.core.moments import StreamMoments, pool_groups, pool_values
+from triage.core.residual_breakdown import MISSING_LEVEL, OTHER_LEVEL, SegmentResiduals
 from triage.core.residual_tests import TESTS_FROM_FIT_MAX_CONDITION
 from triage.core.row_values import row_diagnostics
 from triage.core.worst_rows import TopRows
@@ -510,6 +511,77 @@ def test_diagnostics_segments_pool_levels_past_the_cap(case) -> None:
         assert got[level].n == n
         assert got[level].mean_resid == pytest.approx(mean, rel=1e-9)
     assert diag.segments_capped == ("g",)
+
+
+def _segment_levels(values: pl.Series, e: np.ndarray, max_levels: int) -> list[tuple]:
+    """SegmentResiduals over `values` in two batches, as (level, n, mean, rmse, t) rows."""
+    segments = SegmentResiduals("g", None, max_levels)
+    half = values.len() // 2
+    segments.update(values[:half], e[:half])
+    segments.update(values[half:], e[half:])
+    return [dataclasses.astuple(level) for level in segments.finalize()]
+
+
+@pytest.mark.parametrize("max_levels", [50, 3])
+def test_segments_of_text_and_of_categorical_ids_agree(rng, max_levels: int) -> None:
+    # A Categorical column maps rows to levels through its ids; text goes through the same
+    # path after a cast. Both must give the same levels and numbers, also when this process
+    # has coded so many other texts that the ids lie far apart (the sorted look-up), with
+    # nulls as their own level. Oracle for the counts and means: polars group_by.
+    n = 3_000
+    names = np.array(["north", "south", "east", "west", "centre", "coast", "hills"])
+    shares = np.array([0.35, 0.25, 0.15, 0.1, 0.08, 0.05, 0.02])
+    text = pl.Series("g", rng.choice(names, n, p=shares)).scatter(
+        rng.choice(n, 60, replace=False), None
+    )
+    e = rng.standard_t(5, n)
+    as_text = _segment_levels(text, e, max_levels)
+    coded = text.cast(pl.Categorical)
+    assert _segment_levels(coded, e, max_levels) == as_text
+    # Polars frees ids no series holds, so the coded series stay referenced from here on.
+    others = pl.Series([f"person-{i}" for i in range(70_000)], dtype=pl.Categorical)
+    spread = pl.concat([others[-1:], coded])
+    ids = spread.to_physical()
+    assert ids.max() - ids.min() > 65_536  # the setup holds: ids too far apart for a table
+    spread_e = np.concatenate(([0.0], e))
+    far = _segment_levels(spread, spread_e, max_levels + 1)
+    assert far == _segment_levels(spread.cast(pl.String), spread_e, max_levels + 1)
+    seen = list(dict.fromkeys(text.fill_null(MISSING_LEVEL).to_list()))
+    kept = seen[:max_levels]
+    labels = text.fill_null(MISSING_LEVEL).map_elements(
+        lambda g: g if g in kept else OTHER_LEVEL, return_dtype=pl.String
+    )
+    oracle = segment_oracle(labels, e)
+    assert {row[0] for row in as_text} == set(oracle)
+    for level, count, mean, _, _ in as_text:
+        assert count == oracle[level][0]
+        assert mean == pytest.approx(oracle[level][1], rel=1e-9, abs=1e-12)
+
+
+def test_pool_values_equals_pooling_each_value_as_a_part(rng) -> None:
+    # Oracle for the numbers: numpy's per-group mean and sum of squared deviations of the
+    # old and new values together; and `pool_groups` with each value a part of count 1,
+    # which it must equal bit for bit (the segments' results do not change with the path).
+    old_values = rng.normal(3.0, 2.0, 500)
+    old_groups = rng.integers(0, 4, 500)
+    count, mean, m2 = pool_groups(old_groups, np.ones(500), old_values, np.zeros(500), 4)
+    values = rng.normal(3.0, 2.0, 800)
+    groups = rng.integers(0, 6, 800)
+    pooled = pool_values(groups, values, count, mean, m2, 6)
+    index = np.concatenate((np.arange(6), groups))
+    padded = [np.concatenate((part, np.zeros(2))) for part in (count, mean, m2)]
+    as_parts = pool_groups(index, np.concatenate((padded[0], np.ones(800))),
+                           np.concatenate((padded[1], values)),
+                           np.concatenate((padded[2], np.zeros(800))), 6)  # fmt: skip
+    for got, want in zip(pooled, as_parts, strict=True):
+        assert np.array_equal(got, want)
+    every = np.concatenate((old_values, values))
+    group = np.concatenate((old_groups, groups))
+    for g in range(6):
+        v = every[group == g]
+        assert pooled[0][g] == v.size
+        assert pooled[1][g] == pytest.approx(v.mean(), rel=1e-12)
+        assert pooled[2][g] == pytest.approx(((v - v.mean()) ** 2).sum(), rel=1e-10)
 
 
 # --------------------------------------------------------------------------- flags and config

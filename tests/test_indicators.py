@@ -16,6 +16,7 @@ import polars as pl
 import pytest
 import statsmodels.api as sm
 from statsmodels.stats.diagnostic import het_breuschpagan
+from statsmodels.stats.outliers_influence import OLSInfluence
 
 from tests.tables import administrative_table
 from triage._typing import ALL_ROWS
@@ -176,6 +177,51 @@ def test_coded_fit_in_merged_parts_matches_lstsq(rng: np.random.Generator, weigh
     written_out = dense.finalize([f"c{j}" for j in range(18)])
     np.testing.assert_allclose(fit.std_error, written_out.std_error, rtol=1e-12)
     assert fit.rss == pytest.approx(written_out.rss, rel=1e-12)
+
+
+@pytest.mark.parametrize(("n_dense", "n_factors"), [(2, 0), (2, 1), (0, 2), (2, 3), (1, 3)])
+@pytest.mark.parametrize("weighted", [False, True])
+def test_coded_fitted_and_hat_values_match_statsmodels(
+    rng: np.random.Generator, n_dense: int, n_factors: int, weighted: bool
+) -> None:
+    # Oracle: statsmodels' fitted values (WLS) and OLSInfluence hat values of the whitened
+    # written-out design. Every count of categoricals takes its own path through the folded
+    # tables (none, one, two and three or more), with and without dense columns.
+    n_rows = 4_000
+    dense = [rng.normal(5.0, 2.0, n_rows), rng.gamma(2.0, 3.0, n_rows)][:n_dense]
+    sizes, references = [5, 12, 30][:n_factors], [0, 3, 29]
+    factors, column = [], 1 + n_dense
+    for size, reference in zip(sizes, references, strict=False):
+        codes = rng.choice(size, n_rows, p=np.arange(size, 0, -1) / (size * (size + 1) / 2))
+        positions = np.full(size, -1)
+        others = [level for level in range(size) if level != reference]
+        positions[others] = np.arange(column, column + size - 1)
+        column += size - 1
+        factors.append(IndicatorCodes(codes, positions))
+    design = CodedDesign(
+        dense=dense,
+        dense_positions=np.arange(1, 1 + n_dense),
+        factors=factors,
+        n_cols=column,
+        has_intercept=True,
+    )
+    x = design.to_dense()
+    y = x @ rng.normal(size=column) + rng.normal(size=n_rows)
+    w = rng.uniform(0.5, 2.0, n_rows) if weighted else None
+    unshifted = design.indicator_positions() if factors else []
+    accumulator = QRAccumulator(column, has_intercept=True, unshifted=unshifted)
+    accumulator.update_coded(design, y, w)
+    fit = accumulator.finalize([f"c{j}" for j in range(column)])
+    root = np.ones(n_rows) if w is None else np.sqrt(w)
+    oracle = sm.WLS(y, x, weights=root**2).fit()
+    hat = OLSInfluence(sm.OLS(y * root, x * root[:, np.newaxis]).fit()).hat_matrix_diag
+    shifted, fitted, leverage = fit.fitted_and_leverage_coded(design, w)
+    np.testing.assert_allclose(fitted, oracle.fittedvalues, rtol=1e-10)
+    np.testing.assert_allclose(leverage, hat, rtol=1e-9)
+    assert np.array_equal(fitted, fit.predict_coded(design))
+    assert np.array_equal(leverage, fit.leverage_coded(design, w))
+    want = x[:, 1 : 1 + n_dense] - fit.column_shift[1 : 1 + n_dense]
+    assert np.array_equal(shifted, want)
 
 
 def test_coded_fit_reports_a_level_without_rows_as_aliased(rng: np.random.Generator) -> None:

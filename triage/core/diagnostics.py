@@ -296,16 +296,12 @@ class DiagnosticsAccumulator:
             top.update(scores[criterion], rd.rows, payload)
         for col, seg in self._segments.items():
             seg.update(batch.frame[col], e)
-        if shifted is None:
-            assert isinstance(batch, CodedBatch)  # only coded batches have no shifted rows
-            dense = [
-                c - self.fit.column_shift[j]
-                for c, j in zip(batch.design.dense, batch.design.dense_positions, strict=True)
-            ]
-            self._update_tests(batch, rd, coded_cross(self.fit, batch.design, dense))
+        if isinstance(batch, CodedBatch):
+            # `shifted` holds the coded rows' dense columns minus the fit's shift
+            self._update_tests(batch, rd, coded_cross(self.fit, batch.design, shifted))
+            dense = [shifted[:, j] for j in range(shifted.shape[1])]
             self._update_coded_sums(batch.design, dense, batch.weights, rd)
         else:
-            assert isinstance(batch, DesignBatch)
             self._update_tests(batch, rd, shifted_cross(shifted))
             self._update_meat(shifted, batch.weights, rd)
         with np.errstate(invalid="ignore"):

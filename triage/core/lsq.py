@@ -25,6 +25,7 @@ Everything the fit reports comes from ``R``:
 from __future__ import annotations
 
 import functools
+import itertools
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -746,13 +747,7 @@ class LinearFit:
         cost of the dense columns plus one table look-up per categorical.
         """
         self._check_coded(design, "predict_coded")
-        coef, _ = self._coded_parts
-        a, c0, padded = self._coded_columns(design)
-        fitted: FloatArray = a @ coef[design.dense_positions]
-        fitted += float(c0 @ coef) + self._factor.y_shift
-        for factor, positions in zip(design.factors, padded, strict=True):
-            fitted += np.take(coef[positions], factor.codes)
-        return fitted
+        return self._fitted_coded(design, *self._coded_columns(design))
 
     def leverage_coded(self, design: CodedDesign, weights: ArrayLike | None = None) -> FloatArray:
         """Return hat values of rows whose categoricals come as level codes.
@@ -762,27 +757,97 @@ class LinearFit:
         per row for q dense columns and c categoricals, instead of O(p^2).
         """
         self._check_coded(design, "leverage_coded")
-        _, m = self._coded_parts
+        return self._leverage_coded(design, *self._coded_columns(design), weights)
+
+    def fitted_and_leverage_coded(
+        self, design: CodedDesign, weights: ArrayLike | None = None
+    ) -> tuple[FloatArray, FloatArray, FloatArray]:
+        """Return the dense columns minus their shift, fitted values and hat values of coded rows.
+
+        As `predict_coded` and `leverage_coded`, sharing their work. The first is an
+        (n, q) Fortran-ordered matrix of the design's dense columns minus the fit's shift
+        (aliased ones included), for cross-products of the same rows.
+        """
+        self._check_coded(design, "fitted_and_leverage_coded")
         a, c0, padded = self._coded_columns(design)
+        fitted = self._fitted_coded(design, a, c0, padded)
+        return a, fitted, self._leverage_coded(design, a, c0, padded, weights)
+
+    def _fitted_coded(
+        self, design: CodedDesign, a: FloatArray, c0: FloatArray, padded: list[IntArray]
+    ) -> FloatArray:
+        """Fitted values from the parts `_coded_columns` split the rows into."""
+        coef, _ = self._coded_parts
+        fitted: FloatArray = a @ coef[design.dense_positions]
+        fitted += float(c0 @ coef) + self._factor.y_shift
+        for factor, positions in zip(design.factors, padded, strict=True):
+            fitted += np.take(coef[positions], factor.codes)
+        return fitted
+
+    def _leverage_coded(
+        self,
+        design: CodedDesign,
+        a: FloatArray,
+        c0: FloatArray,
+        padded: list[IntArray],
+        weights: ArrayLike | None,
+    ) -> FloatArray:
+        """Hat values from the parts `_coded_columns` split the rows into.
+
+        The terms linear in the dense columns ``a`` are gathered first, ``g = a M_dd +
+        2 m_c0 + 2 sum_f M[f, dense][code_f]``, so one product ``a . g`` per row replaces
+        one per categorical; ``g`` is built column by column (its transpose is contiguous)
+        from tables read with np.take, which cost a third of fancy indexing here. The
+        terms of the categoricals alone (a level's own, its term with the constant part,
+        and every pair of levels) are folded into one table per pair of categoricals.
+        Together 2.9 ms instead of 4.0 for the dense terms of 110,749 rows with 6 dense
+        columns and 3 categoricals (measured here).
+        """
+        _, m = self._coded_parts
         dense = design.dense_positions
         m_c0 = m @ c0
-        h: FloatArray = np.einsum("ij,ij->i", a @ m[np.ix_(dense, dense)], a)
-        h += a @ (2.0 * m_c0[dense])
-        h += float(c0 @ m_c0)
-        # Tables per level (or pair of levels) read with np.take, which cost a third of
-        # fancy indexing here; a level's own term and its term with the constant part in one.
-        for i, (factor, positions) in enumerate(zip(design.factors, padded, strict=True)):
-            codes = factor.codes
-            h += np.take(2.0 * m_c0[positions] + m[positions, positions], codes)
-            with_dense = np.take(2.0 * m[np.ix_(positions, dense)], codes, axis=0)
-            h += np.einsum("ij,ij->i", with_dense, a)
-            for other, other_positions in zip(
-                design.factors[i + 1 :], padded[i + 1 :], strict=True
-            ):
-                table = 2.0 * m[np.ix_(positions, other_positions)]
-                h += np.take(table.ravel(), codes * other_positions.size + other.codes)
+        a_t = a.T  # (q, n), C-contiguous: a is Fortran-ordered
+        g = m[np.ix_(dense, dense)] @ a_t
+        g += (2.0 * m_c0[dense])[:, np.newaxis]
+        level = np.empty(a_t.shape[1])
+        for factor, positions in zip(design.factors, padded, strict=True):
+            with_dense = 2.0 * m[np.ix_(dense, positions)]
+            for j in range(dense.size):
+                np.take(with_dense[j], factor.codes, out=level, mode="clip")
+                g[j] += level
+        g *= a_t
+        h: FloatArray = g.sum(axis=0)  # zeros without dense columns
+        h += self._categorical_leverage(design, padded, float(c0 @ m_c0), m_c0)
         if weights is not None:
             h *= np.asarray(weights, dtype=np.float64)
+        return h
+
+    def _categorical_leverage(
+        self, design: CodedDesign, padded: list[IntArray], constant: float, m_c0: FloatArray
+    ) -> FloatArray | float:
+        """Return the part of each coded row's hat value that involves no dense column.
+
+        ``c0' M c0`` plus, per categorical, its level's own term and its term with ``c0``,
+        plus a term per pair of categoricals: the first two folded into the pair tables
+        (categorical i's own into pair (i, i + 1), the last one's and the constant into
+        pair (0, last)), so c categoricals cost c (c - 1) / 2 look-ups, not c (c + 1) / 2.
+        """
+        _, m = self._coded_parts
+        factors = design.factors
+        own = [2.0 * m_c0[positions] + m[positions, positions] for positions in padded]
+        if not factors:
+            return constant
+        if len(factors) == 1:
+            return np.take(own[0] + constant, factors[0].codes)
+        last = len(factors) - 1
+        h = np.zeros(design.n_rows)
+        for i, j in itertools.combinations(range(len(factors)), 2):
+            table = 2.0 * m[np.ix_(padded[i], padded[j])]
+            if j == i + 1:
+                table += own[i][:, np.newaxis]
+            if (i, j) == (0, last):
+                table += own[last] + constant
+            h += np.take(table.ravel(), factors[i].codes * padded[j].size + factors[j].codes)
         return h
 
     def sandwich(self, meat: ArrayLike) -> FloatArray:

@@ -134,3 +134,45 @@ def pool_groups(
         dtype=np.float64,
     )
     return total, pooled_mean, pooled_m2
+
+
+def pool_values(
+    index: IntArray,
+    values: FloatArray,
+    count: FloatArray,
+    mean: FloatArray,
+    m2: FloatArray,
+    n_groups: int,
+) -> tuple[FloatArray, FloatArray, FloatArray]:
+    """Pool single values into groups that hold (count, mean, Σ(x - mean)²) already.
+
+    The same numbers as `pool_groups` on the groups followed by each value as a part of
+    count 1 and m2 0, without making those parts: the counts of ones, the products with them
+    and the zeros cost 1 ms of 2.2 per batch of 110,749 values here.
+
+    Parameters
+    ----------
+    index : ndarray of shape (n_values,)
+        Group of each value, in ``0 .. n_groups - 1``.
+    values : ndarray of shape (n_values,)
+        The values.
+    count, mean, m2 : ndarray of shape (n_old,)
+        The groups so far, ``n_old <= n_groups`` (groups past them start empty).
+    n_groups : int
+        Number of groups in the result.
+    """
+    old = np.arange(count.size)
+    both = np.concatenate((old, index))
+    # Counts are whole numbers, so adding the values' counts after the groups' is exact.
+    total = np.bincount(index, minlength=n_groups).astype(np.float64)
+    total[: count.size] += count
+    weighted = np.bincount(both, weights=np.concatenate((count * mean, values)), minlength=n_groups)
+    pooled_mean = np.zeros(n_groups)
+    np.divide(weighted, total, out=pooled_mean, where=total > 0)
+    old_delta = mean - pooled_mean[: count.size]
+    delta = values - pooled_mean[index]
+    delta *= delta
+    spread = np.concatenate((m2 + count * old_delta * old_delta, delta))
+    # bincount with weights returns float64; asarray only tells the type checker.
+    pooled_m2 = np.asarray(np.bincount(both, weights=spread, minlength=n_groups), np.float64)
+    return total, pooled_mean, pooled_m2

@@ -63,24 +63,24 @@ def shifted_cross(shifted: FloatArray) -> CrossProducts:
     return cross
 
 
-def coded_cross(
-    fit: LinearFit, design: CodedDesign, dense_shifted: Sequence[FloatArray]
-) -> CrossProducts:
+def coded_cross(fit: LinearFit, design: CodedDesign, dense_shifted: FloatArray) -> CrossProducts:
     """Cross-products ``sum(x~ v')`` of a batch's coded rows, as `shifted_cross` would give them.
 
-    `dense_shifted` are the design's dense columns minus the fit's shift. Products with
-    indicator columns are per-level sums; each indicator then moves to the fit's shift
-    (its shift times the intercept's products comes off), and the kept columns are returned.
+    `dense_shifted` is the (n, q) matrix of the design's dense columns minus the fit's shift
+    (`LinearFit.fitted_and_leverage_coded`). Products with indicator columns are per-level
+    sums; each indicator then moves to the fit's shift (its shift times the intercept's
+    products comes off), and the kept columns are returned. The intercept's products are
+    the columns' own sums: a sum down the rows of the stacked columns cost 1.3 ms on
+    110,749 rows of 3 columns here, the three sums 0.1 ms.
     """
     shift = fit.column_shift
     indicators = design.indicator_positions()
 
     def cross(columns: Sequence[FloatArray]) -> FloatArray:
-        block = np.column_stack(columns)
-        products = np.zeros((design.n_cols, block.shape[1]))
-        products[0] = block.sum(axis=0)  # coded designs have the intercept as column 0
-        if dense_shifted:
-            products[design.dense_positions] = np.column_stack(dense_shifted).T @ block
+        products = np.zeros((design.n_cols, len(columns)))
+        products[0] = [column.sum() for column in columns]  # coded designs: intercept first
+        if dense_shifted.shape[1]:
+            products[design.dense_positions] = dense_shifted.T @ np.column_stack(columns)
         for factor in design.factors:
             has_column = factor.positions >= 0
             at = factor.positions[has_column]

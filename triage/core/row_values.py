@@ -36,11 +36,14 @@ def fit_rank(fit: LinearFit) -> int:
 
 def fitted_and_leverage(
     fit: LinearFit, batch: DesignBatch | CodedBatch
-) -> tuple[FloatArray | None, FloatArray, FloatArray]:
-    """Fitted values and hat values of a batch, and its shifted rows when written out."""
+) -> tuple[FloatArray, FloatArray, FloatArray]:
+    """Shifted rows, fitted values and hat values of a batch.
+
+    The shifted rows are `LinearFit.to_shifted` of a written-out batch; of a coded batch,
+    its dense columns minus the fit's shift (`LinearFit.fitted_and_leverage_coded`).
+    """
     if isinstance(batch, CodedBatch):
-        design = batch.design
-        return None, fit.predict_coded(design), fit.leverage_coded(design, batch.weights)
+        return fit.fitted_and_leverage_coded(batch.design, batch.weights)
     shifted = fit.to_shifted(batch.x)
     return shifted, fit.predict_shifted(shifted), fit.leverage_shifted(shifted, batch.weights)
 
