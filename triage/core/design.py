@@ -1132,7 +1132,8 @@ class OpenLevelDesign:
         codes, found = [], []
         for lv in levels:
             code, present = lv.find(frame)
-            lv.count(code[present])  # before a refusal, whose wording reads the counts
+            # before a refusal, whose wording reads the counts
+            lv.count(code if present.all() else code[present])
             if len(lv) > self.cap:
                 self._refuse(levels)
             codes.append(code)
