@@ -7,6 +7,7 @@ missing values, weights, sorted by a code).
 
 from __future__ import annotations
 
+import pickle
 from pathlib import Path
 from typing import Any
 
@@ -14,12 +15,20 @@ import numpy as np
 import polars as pl
 import pytest
 import statsmodels.api as sm
+from statsmodels.stats.diagnostic import het_breuschpagan
 from statsmodels.stats.outliers_influence import OLSInfluence
 
 from tests.tables import administrative_table
 from triage._typing import ALL_ROWS
-from triage.core.indicators import CodedDesign, IndicatorCodes, coded_gram
+from triage.core.indicators import (
+    CodedDesign,
+    IndicatorCodes,
+    SummedBlock,
+    coded_gram,
+    level_grams,
+)
 from triage.core.lsq import QRAccumulator, UncertifiedGram
+from triage.core.residual_tests import BreuschPaganAccumulator
 from triage.core.spec import build_spec
 from triage.data import parquet as parquet_module
 from triage.data.source import open_source
@@ -63,16 +72,86 @@ def test_coded_gram_equals_the_written_out_product(rng: np.random.Generator) -> 
     # Oracle: numpy's Z'WZ of the written-out design with the target appended.
     design, y = _coded(rng, 3_000)
     w = rng.uniform(0.5, 2.0, y.size)
-    shifted = [design.dense[0] - 5.0, design.dense[1] - 6.0, y - 4.0]
-    ones = np.ones(y.size)
-    block = np.column_stack([ones, *shifted])
-    dense_gram = block.T @ (block * w[:, np.newaxis])
-    gram = coded_gram(design, shifted, dense_gram, w)
+    gram = coded_gram(design, [*design.dense, y], np.array([5.0, 6.0, 4.0]), w, np.sqrt(w))
     z = design.to_dense()
     z[:, 1] -= 5.0
     z[:, 6] -= 6.0
     z = np.column_stack([z, y - 4.0])
     np.testing.assert_allclose(gram, z.T @ (z * w[:, np.newaxis]), rtol=1e-12, atol=1e-9)
+
+
+def _one_hot(codes: np.ndarray, n_levels: int) -> np.ndarray:
+    return (codes[:, np.newaxis] == np.arange(n_levels)).astype(np.float64)
+
+
+@pytest.mark.parametrize("has_intercept", [True, False])
+def test_level_grams_equal_the_written_out_products(
+    rng: np.random.Generator, has_intercept: bool
+) -> None:
+    # Oracle: numpy's Z'WZ of [1 | columns - shifts | one indicator per level] written out,
+    # for each block's weights. Three categoricals: 5 x 12 level pairs are summed together,
+    # the 400-level one alone, and its pairs with the others (over 4,096 cells) as tables.
+    # Rows sorted by the first code, levels skewed, one 400-level level without rows.
+    n = 6_000
+    n_levels = [5, 12, 400]
+    codes = [
+        np.sort(rng.choice(5, n, p=[0.4, 0.3, 0.15, 0.1, 0.05])),
+        rng.choice(12, n, p=np.arange(12, 0, -1) / 78.0),
+        np.minimum(rng.zipf(1.3, n) - 1, 398),
+    ]
+    columns = [rng.gamma(2.0, 3.0, n), rng.normal(40.0, 9.0, n), rng.lognormal(1.0, 0.5, n)]
+    shifts = np.array([6.0, 40.0, 3.0])
+    w = rng.uniform(0.5, 2.0, n)
+    hc = rng.exponential(1.0, n)
+    blocks = [SummedBlock(2, hc * hc, hc), SummedBlock(3), SummedBlock(3, w)]
+    grams = level_grams(codes, n_levels, columns, shifts, blocks, has_intercept=has_intercept)
+    first = 0 if has_intercept else 1
+    for block, gram in zip(blocks, grams, strict=True):
+        k = block.n_columns
+        dense = np.column_stack([np.ones(n), *columns[:k]]) - np.append(0.0, shifts[:k])
+        z = np.column_stack([dense[:, first:], *map(_one_hot, codes, n_levels)])
+        weights = np.ones(n) if block.row_weights is None else block.row_weights
+        oracle = z.T @ (z * weights[:, np.newaxis])
+        starts = np.cumsum([k + 1 - first, *n_levels])
+        written = gram.assemble(
+            np.arange(1, k + 1) - first,
+            [np.arange(a, a + m) for a, m in zip(starts[:-1], n_levels, strict=True)],
+            oracle.shape[0],
+        )
+        np.testing.assert_allclose(written, oracle, rtol=1e-12, atol=1e-9)
+
+
+def test_breusch_pagan_from_level_sums_and_written_out_rows_matches_statsmodels(
+    rng: np.random.Generator,
+) -> None:
+    # Oracle: statsmodels het_breuschpagan (robust=True, Koenker's form) on the written-out
+    # design. Two parts: one gets coded rows as their sums by level in two batches (in the
+    # shift a fit would give them), the other rows written out; the first goes through
+    # pickle, as to a cluster's worker and back, before the parts merge.
+    design, y = _coded(rng, 12_000)
+    x = design.to_dense()
+    e = (y - x @ np.linalg.lstsq(x, y, rcond=None)[0]) * (1.0 + 0.3 * (design.factors[0].codes))
+    coded = BreuschPaganAccumulator(18, has_intercept=True, unshifted=design.indicator_positions())
+    shift = np.array([5.0, 6.0, float(np.mean(e * e))])
+    for rows in (slice(0, 3_000), slice(3_000, 8_000)):
+        part = _rows(design, rows)
+        (sums,) = level_grams(
+            [f.codes for f in part.factors],
+            [f.n_levels for f in part.factors],
+            [*part.dense, e[rows] ** 2],
+            shift,
+            [SummedBlock(3)],
+            has_intercept=True,
+        )
+        coded.add_coded(part, sums, shift)
+    written = BreuschPaganAccumulator(18, has_intercept=True)
+    written.update(x[8_000:], e[8_000:])
+    merged = pickle.loads(pickle.dumps(coded))
+    merged.merge(written)
+    lm, p_value, _, _ = het_breuschpagan(e, x, robust=True)
+    test = merged.finalize()
+    assert test.statistic == pytest.approx(lm, rel=1e-9)
+    assert test.p_value == pytest.approx(p_value, rel=1e-6)
 
 
 @pytest.mark.parametrize("weighted", [False, True])
@@ -251,7 +330,6 @@ def test_report_with_codes_matches_statsmodels(
     # form on the weighted residuals and unweighted design; RESET as the Wald F of a WLS refit
     # with the squared and cubed fitted values; hat values and Cook's distances of the
     # whitened regression, OLSInfluence) on the same usable rows.
-    from statsmodels.stats.diagnostic import het_breuschpagan
     from statsmodels.stats.outliers_influence import OLSInfluence
 
     table, source = _full_pass_source(tmp_path, rng, monkeypatch, (0.55, 0.25, 0.12, 0.08))

@@ -43,8 +43,8 @@ from triage.core.flag_rules import (
     bonferroni_bound,
     raise_flags,
 )
-from triage.core.indicators import LevelGram
-from triage.core.lsq import GRAM_CHUNK_ROWS, shifted_gram
+from triage.core.indicators import LevelGram, SummedBlock, level_grams
+from triage.core.lsq import GRAM_CHUNK_ROWS
 from triage.core.moments import StreamMoments
 from triage.core.residual_breakdown import BinnedResiduals, SegmentResiduals
 from triage.core.residual_tests import (
@@ -300,7 +300,7 @@ class DiagnosticsAccumulator:
             # `shifted` holds the coded rows' dense columns minus the fit's shift
             self._update_tests(batch, rd, coded_cross(self.fit, batch.design, shifted))
             dense = [shifted[:, j] for j in range(shifted.shape[1])]
-            self._update_meat_coded(batch.design, dense, batch.weights, rd)
+            self._update_coded_sums(batch.design, dense, batch.weights, rd)
         else:
             self._update_tests(batch, rd, shifted_cross(shifted))
             self._update_meat(shifted, batch.weights, rd)
@@ -318,9 +318,7 @@ class DiagnosticsAccumulator:
         e = rd.weighted_resid
         if isinstance(self._bp, BreuschPaganFromFit):
             self._bp.update(cross, e)
-        elif isinstance(batch, CodedBatch):
-            self._bp.update_coded(batch.design, e)
-        else:
+        elif isinstance(batch, DesignBatch):  # coded rows: `_update_coded_sums`
             self._bp.update(batch.x, e)
         if isinstance(self._reset, ResetFromFit):
             self._reset.update(cross, rd.fitted, rd.resid, batch.weights)
@@ -348,7 +346,7 @@ class DiagnosticsAccumulator:
                 np.multiply(shifted[rows], u[rows, np.newaxis], out=chunk)
                 self._meat[j] += chunk.T @ chunk
 
-    def _update_meat_coded(
+    def _update_coded_sums(
         self,
         design: CodedDesign,
         dense: Sequence[FloatArray],
@@ -358,24 +356,40 @@ class DiagnosticsAccumulator:
         """Add the same sums as `_update_meat` for coded rows, as counts and per-level sums.
 
         `dense` are the design's dense columns in the fit's shift; `_meats` writes the
-        blocks out (`LevelGram`).
+        blocks out (`LevelGram`). The auxiliary Breusch–Pagan regression, when it runs, takes
+        its sums from the same call: ``e²`` (less the fit's mean of it) unweighted.
         """
-        codes = [f.codes for f in design.factors]
-        n_levels = [f.n_levels for f in design.factors]
+        roots = _meat_roots(weights, rd)
+        blocks = [SummedBlock(len(dense), u * u, u) for u in roots]
+        columns, shifts = list(dense), np.zeros(len(dense))
+        bp = self._bp if isinstance(self._bp, BreuschPaganAccumulator) else None
+        if bp is not None:
+            e = rd.weighted_resid
+            offset = self.fit.rss / self.fit.n if self.fit.n else 0.0
+            columns.append(e * e)
+            shifts = np.append(shifts, offset)
+            blocks.append(SummedBlock(len(columns)))
         self._coded_layout = (
             design.dense_positions,
             [f.positions for f in design.factors],
             design.n_cols,
         )
-        for j, u in enumerate(_meat_roots(weights, rd)):
-            dense_gram = shifted_gram(dense, np.zeros(len(dense)), u, intercept=True)
-            blocks = LevelGram.of_batch(
-                codes, n_levels, dense, dense_gram, u * u, has_intercept=True
-            )
+        sums = level_grams(
+            [f.codes for f in design.factors],
+            [f.n_levels for f in design.factors],
+            columns,
+            shifts,
+            blocks,
+            has_intercept=True,
+        )
+        if bp is not None:
+            bp_shift = np.append(self.fit.column_shift[design.dense_positions], shifts[-1])
+            bp.add_coded(design, sums.pop(), bp_shift)
+        for j, blocks_j in enumerate(sums):
             if len(self._coded_meat) <= j:
-                self._coded_meat.append(blocks)
+                self._coded_meat.append(blocks_j)
             else:
-                self._coded_meat[j].add(blocks)
+                self._coded_meat[j].add(blocks_j)
 
     def _meats(self) -> FloatArray:
         """Return the HC0, HC2 and HC3 meats over the kept columns, coded rows' blocks included.

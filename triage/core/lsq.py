@@ -35,7 +35,14 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from triage.core.distributions import f_sf, t_ppf, t_sf
-from triage.core.indicators import CodedDesign, IntArray, LevelGram, coded_gram
+from triage.core.indicators import (
+    CodedDesign,
+    IntArray,
+    LevelGram,
+    SummedBlock,
+    coded_gram,
+    level_grams,
+)
 from triage.errors import DataError, SpecError
 
 __all__ = [
@@ -1176,11 +1183,8 @@ class QRAccumulator:
                 x_shift = np.zeros(self._p)
                 x_shift[design.dense_positions] = [np.mean(c) for c in design.dense]
                 y_shift = float(np.mean(y))
-            columns = [*design.dense, y]
             shifts = np.append(x_shift[design.dense_positions], y_shift)
-            dense_gram = shifted_gram(columns, shifts, root_w, intercept=intercept)
-            shifted = [c - m for c, m in zip(columns, shifts, strict=True)]
-            gram = coded_gram(design, shifted, dense_gram, w)
+            gram = coded_gram(design, [*design.dense, y], shifts, w, root_w)
         if not np.all(np.isfinite(np.diagonal(gram))):
             return False
         self._x_shift, self._y_shift = x_shift, y_shift
@@ -1462,25 +1466,36 @@ class OpenLevelAccumulator:
             shift = self._shift
             if self._gram is None and self._has_intercept:
                 shift = np.array([*(np.mean(c) for c in dense), np.mean(y)])
-            columns = [*dense, y]
-            dense_gram = shifted_gram(columns, shift, root_w, intercept=self._has_intercept)
-            shifted = [c - m for c, m in zip(columns, shift, strict=True)]
-            batch = LevelGram.of_batch(
-                codes, n_levels, shifted, dense_gram, w, has_intercept=self._has_intercept
+            (batch,) = level_grams(
+                codes,
+                n_levels,
+                [*dense, y],
+                shift,
+                [SummedBlock(len(dense) + 1, w, root_w)],
+                has_intercept=self._has_intercept,
             )
-        if not np.all(np.isfinite(np.diagonal(dense_gram))):
+        if not np.all(np.isfinite(np.diagonal(batch.dense))):
             return False
-        self._shift = shift
-        if w is not None:
-            self._sum_log_w += float(np.log(w).sum())
+        self.add(batch, shift, n_rows, w)
+        return True
+
+    def add(
+        self, batch: LevelGram, shift: FloatArray, n_rows: int, weights: FloatArray | None
+    ) -> None:
+        """Add a batch's sums (of `n_rows` rows with `weights`), formed in `shift`.
+
+        The first batch's shift is kept; a later batch in another shift is moved to it.
+        """
+        if weights is not None:
+            self._sum_log_w += float(np.log(weights).sum())
             self._is_weighted = True
         if self._gram is None:
+            self._shift = shift
             self._gram = batch
         else:
-            self._gram.grow(n_levels)
-            self._gram.add(batch)
+            self._gram.grow(batch.n_levels)
+            self._gram.add(batch.moved(shift - self._shift))
         self._n += n_rows
-        return True
 
     def merge(
         self, other: OpenLevelAccumulator, where: Sequence[IntArray], n_levels: Sequence[int]

@@ -25,8 +25,13 @@ import numpy as np
 from numpy.typing import NDArray
 
 from triage.core.distributions import chi2_sf, f_sf
-from triage.core.indicators import CodedDesign
-from triage.core.lsq import GRAM_MAX_CONDITION, QRAccumulator, UncertifiedGram
+from triage.core.indicators import CodedDesign, IntArray, LevelGram
+from triage.core.lsq import (
+    GRAM_MAX_CONDITION,
+    OpenLevelAccumulator,
+    QRAccumulator,
+    UncertifiedGram,
+)
 from triage.results.diagnostics import ResidualTest
 
 if TYPE_CHECKING:
@@ -95,6 +100,9 @@ _NAN_TEST_CHI2_2 = ResidualTest(math.nan, (2.0,), math.nan)
 class BreuschPaganAccumulator:
     """Auxiliary regression of squared residuals on the design, with a constant (Koenker form).
 
+    Rows written out go to a `QRAccumulator`; coded rows come as their sums by level
+    (`add_coded`), kept so and written out once, when the test is asked for.
+
     Parameters
     ----------
     n_cols : int
@@ -110,6 +118,8 @@ class BreuschPaganAccumulator:
         self._acc = QRAccumulator(
             self._n_cols, has_intercept=True, unshifted=[] if self._prepend_ones else unshifted
         )
+        self._coded: OpenLevelAccumulator | None = None
+        self._layout: tuple[IntArray, list[IntArray]] | None = None
 
     def update(self, x: FloatArray, resid: FloatArray) -> None:
         """Add design rows and their (weighted) residuals."""
@@ -117,19 +127,48 @@ class BreuschPaganAccumulator:
             x = np.column_stack((np.ones(x.shape[0]), x))
         self._acc.update(x, resid * resid)
 
-    def update_coded(self, design: CodedDesign, resid: FloatArray) -> None:
-        """Add coded rows (of a design with an intercept) and their (weighted) residuals."""
-        self._acc.update_coded(design, resid * resid)
+    def add_coded(self, design: CodedDesign, sums: LevelGram, shift: FloatArray) -> None:
+        """Add coded rows (of a design with an intercept) as their sums by level.
+
+        `sums` are the unweighted counts and sums of ``[design's dense columns | e²]`` less
+        `shift`, ``e`` the (weighted) residuals (`triage.core.indicators.level_grams`).
+        """
+        self._layout = (design.dense_positions, [f.positions for f in design.factors])
+        if self._coded is None:
+            self._coded = OpenLevelAccumulator(len(design.dense), has_intercept=True)
+        self._coded.add(sums, shift, design.n_rows, None)
 
     def merge(self, other: BreuschPaganAccumulator) -> None:
         """Fold another accumulator over the same design into this one."""
         self._acc.merge(other._acc)
+        if other._coded is None or other._layout is None:
+            return
+        dense_positions, level_positions = self._layout = other._layout
+        if self._coded is None:
+            self._coded = OpenLevelAccumulator(dense_positions.size, has_intercept=True)
+        levels = [positions.size for positions in level_positions]
+        self._coded.merge(other._coded, [np.arange(n) for n in levels], levels)
+
+    def _auxiliary(self) -> QRAccumulator:
+        """Return the auxiliary regression: the coded rows' sums written out, then the rest."""
+        if self._coded is None or self._layout is None:
+            return self._acc
+        dense_positions, level_positions = self._layout
+        coded = self._coded.to_accumulator(self._n_cols, dense_positions, level_positions)
+        return coded.merge(self._acc)
 
     def finalize(self) -> ResidualTest:
-        """LM = n R² of the auxiliary fit, chi-squared with (auxiliary rank - 1) df."""
-        if self._acc.n_rows == 0:
+        """LM = n R² of the auxiliary fit, chi-squared with (auxiliary rank - 1) df.
+
+        Raises
+        ------
+        UncertifiedGram
+            If the coded rows' sums cannot be factored to full accuracy.
+        """
+        acc = self._auxiliary()
+        if acc.n_rows == 0:
             return ResidualTest(math.nan, (math.nan,), math.nan)
-        aux = self._acc.finalize([f"c{j}" for j in range(self._n_cols)])
+        aux = acc.finalize([f"c{j}" for j in range(self._n_cols)])
         df = self._n_cols - len(aux.aliased) - 1
         if df < 1 or aux.df_resid < 1 or not math.isfinite(aux.r2):
             return ResidualTest(math.nan, (float(df),), math.nan)
