@@ -24,7 +24,7 @@ import pytest
 
 import triage.engine.passes as passes
 from triage._typing import ALL_ROWS
-from triage.core.levels import LevelCounter
+from triage.core.levels import FoundLevels, LevelCounter
 from triage.core.spec import build_spec
 from triage.data.source import open_source
 from triage.engine.passes import fit_model
@@ -169,6 +169,41 @@ def test_level_counts_do_not_depend_on_batches_or_merge_order() -> None:
         parts.append(part)
     merged = parts[2].merge(parts[0]).merge(parts[1])
     assert merged.finalize() == whole.finalize()
+
+
+@pytest.mark.parametrize("dtype", [pl.String, pl.Categorical])
+def test_found_levels_number_levels_in_order_of_first_appearance_as_pandas_factorize(
+    dtype: pl.DataType,
+) -> None:
+    """Levels found batch by batch are numbered as `pandas.factorize` numbers the rows.
+
+    Text read dictionary-encoded (Categorical) is coded from polars' ids, plain text by
+    value; both must give pandas' codes (-1 for a missing value) and levels in order.
+    """
+    rng = np.random.default_rng(12)
+    names = [f"O{k:03d}" for k in range(60)]
+    shares = 1.0 / np.arange(1, 61) ** 1.2  # skewed, as office codes are
+    values = rng.choice(np.array(names, dtype=object), size=8_000, p=shares / shares.sum())
+    values[rng.random(values.size) < 0.03] = None
+    expected_codes, expected_levels = pd.factorize(pd.Series(values))
+    found = FoundLevels("office", pl.String)
+    codes = []
+    for start in range(0, values.size, 1_000):
+        batch = pl.DataFrame({"office": list(values[start : start + 1_000])})
+        code, present = found.find(batch.with_columns(pl.col("office").cast(dtype)))
+        found.count(code[present])
+        codes.append(code)
+    np.testing.assert_array_equal(np.concatenate(codes), expected_codes)
+    assert found.names == list(expected_levels)
+    expected_counts = pd.Series(values).value_counts()
+    assert found.counts.tolist() == [int(expected_counts[name]) for name in found.names]
+    # A part that took in another part's levels first codes its rows by those levels' names.
+    later = FoundLevels("office", pl.String)
+    later.absorb(found)
+    batch = pl.DataFrame({"office": list(values[::-1])})
+    code, present = later.find(batch.with_columns(pl.col("office").cast(dtype)))
+    assert later.names == found.names
+    assert [later.names[k] for k in code[present]] == [v for v in values[::-1] if v is not None]
 
 
 def test_same_table_in_four_stores_gives_identical_coefficients(

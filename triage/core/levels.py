@@ -210,6 +210,49 @@ class FoundLevels:
             )
         return self._code
 
+    def find(self, frame: pl.DataFrame) -> tuple[NDArray[np.int64], NDArray[np.bool_]]:
+        """Code each row of `frame` among the levels, adding the new ones in row order.
+
+        Returns each row's code (-1 where the row has no usable value) and whether it has
+        one. Text read dictionary-encoded (a polars Categorical) is coded through its
+        physical ids: only each id's text is looked up, not every row's.
+        """
+        column = frame.get_column(self.column)
+        if column.dtype == pl.Categorical and self._values.dtype == pl.String:
+            return self._find_by_id(column)
+        selected = frame.select(self.code(), self.present().alias("__present")).get_columns()
+        codes, present = selected[0].to_numpy(), selected[1].to_numpy()
+        new = present & (codes < 0)
+        if new.any():
+            codes = codes.copy()
+            codes[new] = self.add_new(frame, new)
+        return codes, present
+
+    def _find_by_id(self, column: pl.Series) -> tuple[NDArray[np.int64], NDArray[np.bool_]]:
+        """`find` for a Categorical column, through a table of its ids' codes.
+
+        The table is made for each batch: polars numbers its categories anew once no data
+        holds them, so an id names the same text only within one batch. 2,000,000 rows of
+        three code columns cost about 0.02 CPU-s this way, against 0.16 casting every row
+        to the levels found and adding new ones as text (measured here).
+        """
+        ids = column.to_physical()
+        has_nulls = ids.has_nulls()
+        present = ids.is_not_null().to_numpy() if has_nulls else np.ones(len(ids), np.bool_)
+        id_values = (ids.fill_null(0) if has_nulls else ids).to_numpy()
+        met = column.drop_nulls().unique(maintain_order=True)  # in order of first appearance
+        names = met.cast(pl.String)
+        new = [k for k, name in enumerate(names.to_list()) if name not in self._index]
+        if new:
+            self._append(names.gather(new))
+        met_ids = met.to_physical().to_numpy()
+        code_of_id = np.full(int(met_ids.max(initial=0)) + 1, -1, dtype=np.int64)
+        code_of_id[met_ids] = [self._index[name] for name in names.to_list()]
+        codes = code_of_id[id_values]
+        if has_nulls:
+            codes[~present] = -1
+        return codes, present
+
     def add_new(self, frame: pl.DataFrame, rows: NDArray[np.bool_]) -> NDArray[np.int64]:
         """Add the levels of `frame`'s marked `rows` (present, not found yet), in row order.
 
