@@ -261,6 +261,20 @@ def test_coded_fit_refuses_an_uncertified_gram(rng: np.random.Generator) -> None
     assert accumulator.update_coded(design, y)
     with pytest.raises(UncertifiedGram):
         accumulator.finalize([f"c{j}" for j in range(18)])
+    # The same design's Breusch-Pagan from level sums: its auxiliary regression refuses too
+    # (pass 2 then runs again with the indicators written out).
+    (sums,) = level_grams(
+        [f.codes for f in design.factors],
+        [f.n_levels for f in design.factors],
+        [*design.dense, y * y],
+        np.zeros(3),
+        [SummedBlock(3)],
+        has_intercept=True,
+    )
+    test = BreuschPaganAccumulator(18, has_intercept=True)
+    test.add_coded(design, sums, np.zeros(3))
+    with pytest.raises(UncertifiedGram):
+        test.finalize()
 
 
 def _statsmodels_wls(table: pl.DataFrame, references: dict[str, str]) -> tuple[Any, list[str]]:

@@ -127,6 +127,7 @@ class BinLookup:
         span = float(self.edges[-1]) - self.low
         self.scale = cells / span if span > 0 and np.isfinite(span) else 0.0
         self.cells = cells
+        self._strided: dict[int, IntArray] = {}
         if self.scale:
             starts = self.low + np.arange(cells + 1) / self.scale
             counts = np.searchsorted(self.edges, starts, side="right")
@@ -151,13 +152,16 @@ class BinLookup:
         return _rebuild_lookup, (self.edges, self.cells_per_edge)
 
     def _look_up(self, values: FloatArray, table: IntArray) -> tuple[IntArray, IntArray]:
-        """Return the `table` entry of each value's cell, and where it is `_UNCERTAIN`."""
+        """Return the `table` entry of each value's cell, and where it is `_UNCERTAIN`.
+
+        Cells past either end are read as the end cells (`np.take` clips), whose entries are
+        `_UNCERTAIN`: no pass of its own to clip the cells.
+        """
         position = np.multiply(values, self.scale)
         position -= self.low * self.scale
         with np.errstate(invalid="ignore"):  # NaN or inf cast to an integer: sorted out below
             cell = position.astype(np.int64)
-        np.clip(cell, 0, self.cells - 1, out=cell)
-        found = np.take(table, cell)
+        found = np.take(table, cell, mode="clip")
         return found, np.flatnonzero(found == _UNCERTAIN)
 
     def _edges_at_or_below(self, values: FloatArray) -> tuple[IntArray, IntArray]:
@@ -168,21 +172,34 @@ class BinLookup:
         count[exact] = np.searchsorted(self.edges, values[exact], side="right")
         return count, exact
 
-    def index_and_exact(self, values: FloatArray) -> tuple[IntArray, IntArray]:
+    def index_and_exact(self, values: FloatArray, *, stride: int = 1) -> tuple[IntArray, IntArray]:
         """Return the bin of each value (as `index`) and where `numpy.searchsorted` found it.
 
         Every value below the first edge or above the last, NaN and infinities included, is
         among the values found by `numpy.searchsorted`, so their extremes are the extremes
-        of all the values wherever those lie outside the edges.
+        of all the values wherever those lie outside the edges. With `stride`, the bins come
+        multiplied by it, from a table that holds them so (no pass over the values to scale
+        them): the first of each bin's `stride` cells in a flat array of cells per bin.
         """
         last_bin = max(self.edges.size - 2, 0)
         if not self.scale:
             bins = np.searchsorted(self.edges, values, side="right") - 1
-            return np.clip(bins, 0, last_bin, out=bins), np.arange(values.size)
-        bins, exact = self._look_up(values, self.bin_table)
+            np.clip(bins, 0, last_bin, out=bins)
+            bins *= stride
+            return bins, np.arange(values.size)
+        bins, exact = self._look_up(values, self._bin_table(stride))
         found = np.searchsorted(self.edges, values[exact], side="right") - 1
-        bins[exact] = np.clip(found, 0, last_bin, out=found)
+        np.clip(found, 0, last_bin, out=found)
+        found *= stride
+        bins[exact] = found
         return bins, exact
+
+    def _bin_table(self, stride: int) -> IntArray:
+        """Return `bin_table` with every bin multiplied by `stride` (made once per stride)."""
+        if stride not in self._strided:
+            certain = self.bin_table != _UNCERTAIN
+            self._strided[stride] = np.where(certain, self.bin_table * stride, _UNCERTAIN)
+        return self._strided[stride]
 
     def index(self, values: FloatArray) -> IntArray:
         """Bin of each value, equal to ``bin_index(edges, values)``."""

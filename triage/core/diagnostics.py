@@ -305,10 +305,11 @@ class DiagnosticsAccumulator:
             self._update_tests(batch, rd, shifted_cross(shifted))
             self._update_meat(shifted, batch.weights, rd)
         with np.errstate(invalid="ignore"):
-            self._n_studentized += int(np.sum(np.abs(rd.studentized) > STUDENTIZED_LIMIT))
-            self._n_extreme += int(np.sum(np.abs(rd.studentized) > self._extreme_threshold))
-            self._n_leverage += int(np.sum(rd.leverage > self._leverage_threshold))
-            self._n_cooks += int(np.sum(rd.cooks > self._cooks_threshold))
+            abs_studentized = scores["studentized"]
+            self._n_studentized += int(np.count_nonzero(abs_studentized > STUDENTIZED_LIMIT))
+            self._n_extreme += int(np.count_nonzero(abs_studentized > self._extreme_threshold))
+            self._n_leverage += int(np.count_nonzero(rd.leverage > self._leverage_threshold))
+            self._n_cooks += int(np.count_nonzero(rd.cooks > self._cooks_threshold))
 
     def _update_tests(
         self, batch: DesignBatch | CodedBatch, rd: RowDiagnostics, cross: CrossProducts
@@ -566,7 +567,8 @@ class DiagnosticsAccumulator:
 
     def _add_studentized(self, studentized: FloatArray) -> None:
         """Count the finite studentized residuals on their fine grid (for the quantile chart)."""
-        finite = studentized[np.isfinite(studentized)]
+        is_finite = np.isfinite(studentized)
+        finite = studentized if is_finite.all() else studentized[is_finite]  # no copy: all are
         if not finite.size:
             return
         cells = _studentized_lookup().fine(finite)

@@ -58,19 +58,30 @@ def row_values(
     one_minus_h = 1.0 - h
     s = fit.resid_sd
     df = fit.df_resid
-    internal = np.full(h.size, np.nan)
     external = np.full(h.size, np.nan)
-    cooks = np.full(h.size, np.nan)
-    if s > 0.0 and math.isfinite(s):
+    if not (s > 0.0 and math.isfinite(s)):
+        internal, cooks = np.full(h.size, np.nan), np.full(h.size, np.nan)
+    else:
         # Whole-array arithmetic with NaN where h is 1 (no residual left to studentize): the
         # NaN carries through (1.7x faster here than indexing usable rows out and back in).
+        # In place where a temporary would only be read once, in the same order of operations.
         with np.errstate(divide="ignore", invalid="ignore"):
-            root = np.sqrt(np.where(one_minus_h > LEVERAGE_ONE_TOLERANCE, one_minus_h, np.nan))
-            internal = weighted / (s * root)
-            cooks = internal * internal * h / (fit_rank(fit) * one_minus_h)
+            root = np.where(one_minus_h > LEVERAGE_ONE_TOLERANCE, one_minus_h, np.nan)
+            np.sqrt(root, out=root)
+            internal = np.multiply(root, s)
+            np.divide(weighted, internal, out=internal)
+            cooks = np.multiply(internal, internal)
+            cooks *= h
+            cooks /= one_minus_h * fit_rank(fit)
             if df > 1:
-                loo_var = (fit.rss - weighted * weighted / one_minus_h) / (df - 1)
-                external = np.where(loo_var > 0.0, weighted / (np.sqrt(loo_var) * root), np.nan)
+                loo_var = np.multiply(weighted, weighted)
+                loo_var /= one_minus_h
+                np.subtract(fit.rss, loo_var, out=loo_var)
+                loo_var /= df - 1
+                positive = loo_var > 0.0
+                np.sqrt(loo_var, out=loo_var)
+                loo_var *= root
+                np.divide(weighted, loo_var, out=external, where=positive)
     return RowDiagnostics(
         rows=rows,
         fitted=fitted,
