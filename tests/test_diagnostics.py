@@ -793,10 +793,16 @@ def test_bin_lookup_equals_searchsorted_bins(rng: np.random.Generator, n_edges: 
     # the values found exactly hold every value outside the edges and every non-finite one,
     # so the extremes of those are the extremes of all the values outside the edges
     for grid in (edges, constant):
-        bins, exact = BinLookup(grid).index_and_exact(values)
+        lookup = BinLookup(grid)
+        bins, exact = lookup.index_and_exact(values)
         np.testing.assert_array_equal(bins, bin_index(grid, values))
         outside = ~((values >= grid[0]) & (values <= grid[-1]))
         assert set(np.flatnonzero(outside)) <= set(exact)
+        # with a stride, the same bins times it (and the same exact ones), twice over
+        for _ in range(2):
+            strided, strided_exact = lookup.index_and_exact(values, stride=403)
+            np.testing.assert_array_equal(strided, bin_index(grid, values) * 403)
+            np.testing.assert_array_equal(strided_exact, exact)
     # Fine-grid cells with tails: numpy.searchsorted (side "right"), a value on the last
     # edge counted in the last bin.
     for grid in (edges, np.linspace(-3.0, 3.0, n_edges), constant):

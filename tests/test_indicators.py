@@ -8,6 +8,8 @@ missing values, weights, sorted by a code).
 from __future__ import annotations
 
 import pickle
+import subprocess
+import sys
 from pathlib import Path
 from typing import Any
 
@@ -482,3 +484,17 @@ def test_full_pass_refuses_a_column_of_too_many_levels_as_soon_as_it_finds_them(
     )
     with pytest.raises(raised, match=says):
         passes.fit_model(source, spec, rows=ALL_ROWS)
+
+
+def test_importing_the_engine_leaves_scipy_for_the_first_level_sums() -> None:
+    # scipy.sparse costs about 0.12 CPU-s to import: a command without categoricals must not
+    # pay it, so the level sums import it on first use (checked in a fresh interpreter).
+    code = (
+        "import sys, numpy as np, triage.engine.passes; "
+        "assert 'scipy.sparse' not in sys.modules; "
+        "from triage.core.indicators import SummedBlock, level_grams; "
+        "level_grams([np.array([0, 1, 1])], [2], [np.ones(3)], np.zeros(1), [SummedBlock(1)], "
+        "has_intercept=True); "
+        "assert 'scipy.sparse' in sys.modules"
+    )
+    subprocess.run([sys.executable, "-c", code], check=True)
