@@ -328,6 +328,39 @@ def test_design_levels_are_the_rows_with_a_value_in_the_column_and_unseen_levels
     np.testing.assert_array_equal(batch.x, [[1.0, 0.0, 1.0], [1.0, 1.0, 0.0], [1.0, 0.0, 0.0]])
 
 
+@pytest.mark.parametrize("dtype", [pl.String, pl.Categorical])
+def test_coded_batch_codes_are_pandas_codes_against_the_learned_levels(
+    dtype: pl.DataType, rng: np.random.Generator
+) -> None:
+    """A coded batch's level codes are each row's position among the learned levels.
+
+    pandas finds values among fixed labels the same way (`Index.get_indexer`: -1 for a
+    missing value or one not among them); text read dictionary-encoded (Categorical) must
+    agree with text.
+    Rows missing a value or holding an unseen level are left out and counted.
+    """
+    offices = np.array([f"O{k:02d}" for k in range(30)], dtype=object)
+    shares = 1.0 / np.arange(1, 31)  # skewed, as office codes are
+    values = rng.choice(offices, size=4_000, p=shares / shares.sum())
+    values[rng.random(values.size) < 0.04] = None
+    x = rng.normal(size=values.size)
+    x[rng.random(values.size) < 0.02] = np.nan
+    frame = with_rows(pl.DataFrame({"y": x + 1.0, "x": x, "office": list(values)}))
+    sample = frame.filter(pl.col("office").is_in(list(offices[:24])))  # six levels unseen
+    _, builder = make(frame, "x, office", target="y", sample=sample, max_levels=40)
+    batch = builder.build_coded(frame.with_columns(pl.col("office").cast(dtype)))
+    assert batch is not None
+    expected = pd.Index(list(builder.levels["office"])).get_indexer(values)
+    has_x = ~np.isnan(x)
+    kept = has_x & (expected >= 0)
+    np.testing.assert_array_equal(batch.design.factors[0].codes, expected[kept])
+    np.testing.assert_array_equal(batch.rows, np.flatnonzero(kept))
+    assert batch.n_dropped_missing == int(np.count_nonzero(~has_x | pd.isna(values)))
+    assert batch.n_dropped_unseen_level == int(
+        np.count_nonzero(has_x & ~pd.isna(values) & (expected < 0))
+    )
+
+
 @pytest.mark.parametrize(
     ("term", "values", "pattern"),
     [

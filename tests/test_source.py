@@ -408,6 +408,39 @@ def test_source_group_sample_is_whole_blocks_and_deterministic(
     assert len(seeds) > 1
 
 
+@pytest.mark.parametrize("kind", ["parquet", "ipc", "hive", "csv"])
+@pytest.mark.parametrize("where", [None, "x > -0.5"])
+def test_source_group_sample_spread_to_keeps_the_rows_spread_through_the_blocks(
+    kind: str,
+    where: str | None,
+    parquet_file: Path,
+    hive_folder: Path,
+    ipc_file: Path,
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """`spread_to` keeps rows k * H // n of the H rows the blocks hold (after the filter).
+
+    A Parquet file thins its row groups batch by batch (several batches a group here),
+    reading text dictionary-encoded; every source must give the rows of the whole sample.
+    """
+    monkeypatch.setattr(parquet_module, "SAMPLE_BATCH_ROWS", 50)
+    csv_path = tmp_path / "big.csv"
+    _frame(2_000, seed=8).write_csv(csv_path)
+    path = {"parquet": parquet_file, "hive": hive_folder, "ipc": ipc_file, "csv": csv_path}[kind]
+    source = open_source(path)
+    columns = ["x", "depot", "w"]
+    expr = None if where is None else pl.sql_expr(where)
+    whole = source.read_sample(columns, n_rows=150, seed=7, where=expr)
+    spread = source.read_sample(columns, n_rows=150, seed=7, where=expr, spread_to=60)
+    assert not whole.is_whole and whole.frame.height > 60
+    keep = np.arange(60) * whole.frame.height // 60  # the rule, written out
+    assert_frame_equal(spread.frame, whole.frame[keep])
+    assert (spread.description, spread.rows_read) == (whole.description, whole.rows_read)
+    small = source.read_sample(columns, n_rows=10_000, seed=7, spread_to=60)
+    assert small.is_whole and small.frame.height > 60  # the whole source is kept whole
+
+
 def test_source_group_sample_parquet_matches_row_groups(parquet_file: Path) -> None:
     source = open_source(parquet_file)
     sample = source.read_sample(["k"], n_rows=300, seed=1)

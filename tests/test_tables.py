@@ -24,7 +24,7 @@ import pytest
 
 import triage.engine.passes as passes
 from triage._typing import ALL_ROWS
-from triage.core.levels import FoundLevels, LevelCounter
+from triage.core.levels import ID_TABLE_CELLS, FoundLevels, LevelCounter, category_codes
 from triage.core.spec import build_spec
 from triage.data.source import open_source
 from triage.engine.passes import fit_model
@@ -204,6 +204,24 @@ def test_found_levels_number_levels_in_order_of_first_appearance_as_pandas_facto
     code, present = later.find(batch.with_columns(pl.col("office").cast(dtype)))
     assert later.names == found.names
     assert [later.names[k] for k in code[present]] == [v for v in values[::-1] if v is not None]
+
+
+def test_category_codes_of_ids_far_apart_equal_pandas_get_indexer() -> None:
+    """Ids far apart (a process that has coded many texts) are matched by sorting.
+
+    Codes must be what pandas finds for the same texts among the same labels
+    (`Index.get_indexer`), with -1 for a missing value.
+    """
+    many = pl.Series("held", [f"t{k}" for k in range(ID_TABLE_CELLS + 10)], dtype=pl.Categorical)
+    labels = ["z-new", f"t{ID_TABLE_CELLS + 5}", "t3"]
+    values = ["t3", None, "z-new", f"t{ID_TABLE_CELLS + 5}", "t3", "z-new"]
+    column = pl.Series("code", values, dtype=pl.Categorical)
+    ids = column.drop_nulls().to_physical().to_numpy()
+    assert int(ids.max()) - int(ids.min()) > ID_TABLE_CELLS  # the sorting path
+    codes, present = category_codes(column, lambda names: [labels.index(n) for n in names])
+    np.testing.assert_array_equal(codes, pd.Index(labels).get_indexer(values))
+    np.testing.assert_array_equal(present, [v is not None for v in values])
+    assert many.len() == ID_TABLE_CELLS + 10  # held alive, so the ids stay apart
 
 
 def test_same_table_in_four_stores_gives_identical_coefficients(

@@ -36,6 +36,7 @@ from numpy.typing import ArrayLike, NDArray
 
 from triage.core.distributions import f_sf, t_ppf, t_sf
 from triage.core.indicators import (
+    GRAM_CHUNK_ROWS,
     CodedDesign,
     IntArray,
     LevelGram,
@@ -91,13 +92,6 @@ Forming the Gram matrix costs a relative error of about ``cond**2 * eps`` in ``R
 about 1e-12 here. Shifted data with moderately correlated predictors stay below it; above
 it a second Cholesky pass (CholeskyQR2) brings the factor to Householder quality. One
 Cholesky costs one Gram product, a third of CholeskyQR2 (measured here).
-"""
-
-GRAM_CHUNK_ROWS: Final = 8192
-"""Rows of a batch shifted and multiplied at a time when its Gram matrix is formed from its
-columns, so each chunk is still in cache for the product. Measured here: 262,144 rows of 10
-columns took 9.1 ms whole and 7.1 ms in chunks of 8,192 rows; 65,536 rows of 32 columns 10.2
-and 6.9 ms (chunks of 2,048 to 32,768 rows were tried).
 """
 
 CHOLQR_MAX_CONDITION: Final = 1e7

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import abc
 import contextlib
+import dataclasses
 import functools
 import os
 from collections.abc import Callable, Collection, Iterable, Iterator, Sequence
@@ -122,8 +123,9 @@ class Source(Protocol):
         seed: int,
         sampling: Sampling = "groups",
         where: pl.Expr | None = None,
+        spread_to: int | None = None,
     ) -> Sample:
-        """Read a sample of about `n_rows` rows into memory."""
+        """Read a sample of about `n_rows` rows into memory (`spread_to`: fewer, spread)."""
         ...
 
     def read_rows(self, positions: Sequence[int] | np.ndarray) -> pl.DataFrame:
@@ -203,6 +205,28 @@ def with_positions(frame: pl.DataFrame, positions: np.ndarray | range) -> pl.Dat
     else:
         index = pl.DataFrame({ROW_INDEX: np.asarray(positions, dtype=np.int64)})
     return index if frame.width == 0 else index.hstack(frame)
+
+
+def spread_positions(height: int, n_rows: int) -> np.ndarray:
+    """Positions of `n_rows` rows spread evenly through `height` rows (all, when no more).
+
+    They depend only on the two counts, so the same rows give the same spread.
+
+    Examples
+    --------
+    >>> spread_positions(10, 4).tolist()
+    [0, 2, 5, 7]
+    """
+    if height <= n_rows:
+        return np.arange(height, dtype=np.int64)
+    return np.arange(n_rows, dtype=np.int64) * height // n_rows
+
+
+def spread_rows(frame: pl.DataFrame, n_rows: int) -> pl.DataFrame:
+    """Keep `n_rows` rows of `frame` spread evenly through it (all of them when it has no more)."""
+    if frame.height <= n_rows:
+        return frame
+    return frame[spread_positions(frame.height, n_rows)]
 
 
 def arrow_schema_types(schema: pa.Schema) -> dict[str, pl.DataType]:
@@ -704,6 +728,7 @@ class BlockSource(abc.ABC):
         seed: int,
         sampling: Sampling = "groups",
         where: pl.Expr | None = None,
+        spread_to: int | None = None,
     ) -> Sample:
         """Read a sample of about `n_rows` rows into memory, deterministically for `seed`.
 
@@ -722,6 +747,10 @@ class BlockSource(abc.ABC):
             uniform sample of rows, which reads the whole source.
         where : Expr, optional
             Filter applied after positions are attached.
+        spread_to : int, optional
+            Keep only this many of the sample's rows, spread evenly through it
+            (`spread_rows`), when it is not the whole source. Whole blocks without a filter
+            are then thinned as they are read, without holding them whole.
 
         Returns
         -------
@@ -731,13 +760,19 @@ class BlockSource(abc.ABC):
         """
         names = self._check_columns(columns)
         _check_sample_args(n_rows, sampling)
+        if spread_to is not None:
+            check_count("spread_to", spread_to)
         with self._unchanged(self.files):
             total = self.row_count()
             if total is not None and total <= n_rows:
                 return self._read_whole(names, total, where)
             if sampling == "uniform":
-                return self._read_uniform(names, n_rows, seed, where)
-            return self._read_groups(names, n_rows, seed, where)
+                sample = self._read_uniform(names, n_rows, seed, where)
+            else:
+                sample = self._read_groups(names, n_rows, seed, where, spread_to)
+        if spread_to is None or sample.is_whole:
+            return sample
+        return dataclasses.replace(sample, frame=spread_rows(sample.frame, spread_to))
 
     def read_rows(self, positions: Sequence[int] | np.ndarray) -> pl.DataFrame:
         """Read every column of the rows at `positions`, in the order given.
@@ -804,6 +839,12 @@ class BlockSource(abc.ABC):
     ) -> pl.DataFrame:
         """Read the sorted `blocks` (numbers into `offsets`) with `ROW_INDEX`, in order."""
 
+    def _read_block_rows(
+        self, columns: list[str], blocks: np.ndarray, offsets: np.ndarray, rows: np.ndarray
+    ) -> pl.DataFrame:
+        """Read the `rows` (sorted positions among the rows of the sorted `blocks`)."""
+        return self._read_blocks(columns, blocks, offsets)[rows]
+
     def _parts(
         self,
         columns: list[str],
@@ -869,7 +910,12 @@ class BlockSource(abc.ABC):
         return Sample(frame, text, is_whole=True, warning=None, rows_read=total)
 
     def _read_groups(
-        self, columns: list[str], n_rows: int, seed: int, where: pl.Expr | None
+        self,
+        columns: list[str],
+        n_rows: int,
+        seed: int,
+        where: pl.Expr | None,
+        spread_to: int | None = None,
     ) -> Sample:
         offsets = self._block_offsets(n_rows)
         if offsets is None:  # pragma: no cover - every source cuts blocks given a sample size
@@ -883,13 +929,20 @@ class BlockSource(abc.ABC):
         n_picked = int(np.searchsorted(np.cumsum(sizes[order]), n_rows) + 1)
         picked = np.sort(order[:n_picked])
         extra = self._filter_only_columns(columns, where)
-        frame = self._read_blocks(columns + extra, picked, offsets)
-        rows_read = frame.height
-        frame = apply_filter(frame, where, extra)
+        rows_read = int(sizes[picked].sum())
+        is_whole = picked.size == sizes.size
+        if spread_to is not None and where is None and not is_whole:
+            # the rows `spread_rows` would keep of the whole blocks, read as they come
+            frame = self._read_block_rows(
+                columns, picked, offsets, spread_positions(rows_read, spread_to)
+            )
+        else:
+            frame = self._read_blocks(columns + extra, picked, offsets)
+            rows_read = frame.height
+            frame = apply_filter(frame, where, extra)
         text = self._describe_groups(picked.size, sizes, seed, rows_read)
         if where is not None:
             text += f", {frame.height:,} of them kept by the filter"
-        is_whole = picked.size == sizes.size
         warning = None if is_whole else _GROUPS_WARNING.format(unit=self._block_unit)
         return Sample(frame, text, is_whole=is_whole, warning=warning, rows_read=rows_read)
 

@@ -304,16 +304,6 @@ def fold_each_frame(
     return new_part() if merged is None else merged
 
 
-def spread_rows(frame: pl.DataFrame, n_rows: int) -> pl.DataFrame:
-    """Keep `n_rows` rows of `frame` spread evenly through it (all of them when it has no more).
-
-    The rows kept depend only on the frame's height, so the same frame gives the same rows.
-    """
-    if frame.height <= n_rows:
-        return frame
-    return frame[np.arange(n_rows, dtype=np.int64) * frame.height // n_rows]
-
-
 class PassPlan:
     """What a pass reads: columns, filter, excluded rows, and where the rows come from.
 
@@ -371,15 +361,14 @@ class PassPlan:
             seed=seed,
             sampling=sampling,
             where=_parse_where(source, spec),
+            spread_to=LEARNING_SAMPLE_ROWS if rows is ALL_ROWS else None,
         )
         streams = rows is ALL_ROWS and not sample.is_whole
         return cls(
             source,
             spec,
             sample=None if streams else sample,
-            learning_frame=spread_rows(sample.frame, LEARNING_SAMPLE_ROWS)
-            if streams
-            else sample.frame,
+            learning_frame=sample.frame,
             exclude_rows=exclude_rows,
             extra_columns=extra_columns,
             engine=engine,
