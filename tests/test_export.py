@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import errno
 import os
 from pathlib import Path
 
 import numpy as np
 import polars as pl
+import pyarrow.parquet as pq
 import pytest
 from polars.testing import assert_frame_equal
 
@@ -120,6 +122,42 @@ def test_export_error_removes_temporary_and_keeps_old_file(tmp_path: Path, name:
         raise KeyboardInterrupt  # a cancelled pass
     assert path.read_bytes() == b"old contents"
     assert _leftovers(tmp_path) == []
+
+
+def test_export_write_failing_on_its_thread_is_one_error_and_no_file(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    path = tmp_path / "full.parquet"
+    path.write_bytes(b"old contents")
+
+    def disk_full(*_: object, **__: object) -> None:
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    monkeypatch.setattr(pq.ParquetWriter, "write_table", disk_full)
+    with (
+        pytest.raises(ExportError, match=r"cannot write to `full.parquet`.*free space"),
+        StreamingExport(path, force=True) as export,
+    ):
+        for start in range(0, 50, 10):  # written on a thread: the error may come at a later call
+            export.write(_frame(10, start=start))
+    assert path.read_bytes() == b"old contents"
+    assert _leftovers(tmp_path) == []
+
+
+def test_export_takes_arrow_tables_and_keeps_statistics_asked_for(tmp_path: Path) -> None:
+    path = tmp_path / "arrow.parquet"
+    batches = [_frame(n, start=i * 100) for i, n in enumerate([30, 5, 40])]
+    with StreamingExport(path, statistics=["__row"]) as export:
+        for batch in batches:
+            export.write(batch.to_arrow())
+    assert_frame_equal(pl.read_parquet(path), pl.concat(batches))
+    group = pq.read_metadata(path).row_group(0)
+    with_statistics = [
+        group.column(k).path_in_schema
+        for k in range(group.num_columns)
+        if group.column(k).is_stats_set
+    ]
+    assert with_statistics == ["__row"]
 
 
 def test_export_rejects_batches_of_another_shape(tmp_path: Path) -> None:

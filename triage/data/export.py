@@ -7,9 +7,12 @@ the input files of the session are never overwritten.
 from __future__ import annotations
 
 import fnmatch
+import functools
 import os
+import queue
 import tempfile
-from collections.abc import Collection, Iterable
+import threading
+from collections.abc import Callable, Collection, Iterable
 from pathlib import Path
 from types import TracebackType
 from typing import IO, Final, Literal
@@ -246,6 +249,51 @@ def _types(schema: pa.Schema | pl.Schema) -> dict[str, str]:
     return {name: str(dtype) for name, dtype in pairs}
 
 
+_WRITE_ERRORS: Final = (pl.exceptions.PolarsError, pa.ArrowException, OSError)
+"""Errors of a write that an export turns into one line (`ExportError`)."""
+
+
+class _WritingThread:
+    """Write tables in order on a thread of its own, so the caller goes on reading and scoring.
+
+    At most `depth` tables wait. An error of a write is raised to the caller at its next
+    `put` or at `close`; the tables after it are dropped.
+    """
+
+    def __init__(self, write: Callable[[pa.Table], None], *, depth: int = 2) -> None:
+        self._write = write
+        self._tables: queue.Queue[pa.Table | None] = queue.Queue(maxsize=depth)
+        self._failure: BaseException | None = None
+        self._abandoned = False
+        self._thread = threading.Thread(target=self._run, name="triage-export", daemon=True)
+        self._thread.start()
+
+    def _run(self) -> None:
+        while (table := self._tables.get()) is not None:
+            if self._failure is None and not self._abandoned:
+                try:
+                    self._write(table)
+                except BaseException as exc:  # raised on the caller's thread
+                    self._failure = exc
+
+    def _raise_failure(self) -> None:
+        if self._failure is not None:
+            raise self._failure
+
+    def put(self, table: pa.Table) -> None:
+        """Queue `table`, waiting while `depth` tables wait; raise an earlier write's error."""
+        self._raise_failure()
+        self._tables.put(table)
+
+    def close(self, *, abandon: bool = False) -> None:
+        """Wait for the queued tables to be written (dropped if `abandon`); raise their error."""
+        self._abandoned = abandon
+        self._tables.put(None)
+        self._thread.join()
+        if not abandon:
+            self._raise_failure()
+
+
 class StreamingExport:
     """Write many frames into one Parquet or CSV file in bounded memory, atomically.
 
@@ -309,6 +357,7 @@ class StreamingExport:
         self._temporary: Path | None = None
         self._writer: pq.ParquetWriter | None = None
         self._schema: pa.Schema | pl.Schema | None = None
+        self._writing: _WritingThread | None = None
         self.rows_written = 0
         """Rows written so far."""
 
@@ -348,16 +397,11 @@ class StreamingExport:
             raise ExportError(msg)
         try:
             if self._format == "parquet":
-                self._write_parquet(frame if isinstance(frame, pa.Table) else frame.to_arrow())
+                self._queue_parquet(frame if isinstance(frame, pa.Table) else frame.to_arrow())
             else:
                 self._write_csv(frame if isinstance(frame, pl.DataFrame) else pl.DataFrame(frame))
-        except (pl.exceptions.PolarsError, pa.ArrowException, OSError) as exc:
-            first_line = (str(exc).strip().splitlines() or [type(exc).__name__])[0]
-            msg = (
-                f"cannot write to `{self._target.name}`: {first_line}; check the free space "
-                "and the folder's permissions, or choose another folder"
-            )
-            raise ExportError(msg) from exc
+        except _WRITE_ERRORS as exc:
+            raise self._cannot_write(exc) from exc
         self.rows_written += frame.num_rows if isinstance(frame, pa.Table) else frame.height
 
     def _check_shape(self, schema: pa.Schema | pl.Schema) -> None:
@@ -370,13 +414,27 @@ class StreamingExport:
             )
             raise ExportError(msg)
 
-    def _write_parquet(self, table: pa.Table) -> None:
+    def _cannot_write(self, exc: BaseException) -> ExportError:
+        first_line = (str(exc).strip().splitlines() or [type(exc).__name__])[0]
+        msg = (
+            f"cannot write to `{self._target.name}`: {first_line}; check the free space "
+            "and the folder's permissions, or choose another folder"
+        )
+        return ExportError(msg)
+
+    def _queue_parquet(self, table: pa.Table) -> None:
+        """Check `table`'s shape here, and hand it to the writing thread."""
         self._check_shape(table.schema)
         if self._note is not None:
             table = table.replace_schema_metadata({NOTE_KEY: self._note})
+        if self._writing is None:
+            self._writing = _WritingThread(functools.partial(self._write_parquet, self._handle))
+        self._writing.put(table)
+
+    def _write_parquet(self, handle: pa.NativeFile, table: pa.Table) -> None:
         if self._writer is None:
             self._writer = pq.ParquetWriter(
-                self._handle,
+                handle,
                 table.schema,
                 use_dictionary=_text_columns(table.schema),
                 write_statistics=True if self._statistics is None else list(self._statistics),
@@ -410,6 +468,12 @@ class StreamingExport:
 
     def _finish(self, handle: IO[bytes] | pa.NativeFile, temporary: Path, *, failed: bool) -> None:
         """Close the file and move it into place, or remove it when the block `failed`."""
+        write_error = None
+        if self._writing is not None:
+            try:
+                self._writing.close(abandon=failed)
+            except _WRITE_ERRORS as exc:
+                write_error = exc
         try:
             if self._writer is not None:
                 self._writer.close()  # writes the Parquet footer
@@ -417,10 +481,12 @@ class StreamingExport:
         except (OSError, pa.ArrowException) as close_error:
             handle.close()
             temporary.unlink(missing_ok=True)
-            if not failed:
+            if not failed and write_error is None:
                 msg = f"cannot finish `{self._target.name}`: {close_error}"
                 raise ExportError(msg) from close_error
-            return
+        if write_error is not None:
+            temporary.unlink(missing_ok=True)
+            raise self._cannot_write(write_error) from write_error
         if failed:
             temporary.unlink(missing_ok=True)
             return
