@@ -235,7 +235,7 @@ def _text_columns(schema: pa.Schema) -> list[str]:
     return [field.name for field in schema if any(is_text(field.type) for is_text in text)]
 
 
-_WRITE_BUFFER_BYTES: Final = 4 << 20
+_WRITE_BUFFER_BYTES: Final = 1 << 20
 """Bytes a Parquet export gathers before a write to its file."""
 
 

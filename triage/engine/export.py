@@ -5,7 +5,7 @@ from __future__ import annotations
 import threading
 from collections.abc import Collection, Iterator, Sequence
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Final
+from typing import TYPE_CHECKING, Final
 
 import numpy as np
 import polars as pl
@@ -195,20 +195,15 @@ def _number_column(
     return pa.Array.from_buffers(kind, values.size, [validity, data])
 
 
-def _text_column(codes: NDArray[np.unsignedinteger[Any]], texts: Sequence[str]) -> pa.Array:
+def _text_column(codes: NDArray[np.uint8], texts: Sequence[str]) -> pa.Array:
     """Make an arrow text column holding ``texts[code]`` for each of `codes`."""
     encoded = [text.encode("utf-8") for text in texts]
-    lengths = np.array([len(text) for text in encoded], dtype=np.int64)
-    width = int(lengths.max())
-    table = np.zeros((len(encoded), width), dtype=np.uint8)
-    for i, text in enumerate(encoded):
-        table[i, : len(text)] = np.frombuffer(text, dtype=np.uint8)
-    row_lengths = lengths[codes]
-    offsets = np.zeros(codes.size + 1, dtype=np.int64)
-    np.cumsum(row_lengths, out=offsets[1:])
-    data = table[codes][np.arange(width) < row_lengths[:, None]]
-    buffers = [None, pa.py_buffer(offsets), pa.py_buffer(data)]
-    return pa.Array.from_buffers(pa.large_string(), codes.size, buffers)
+    offsets = np.zeros(len(encoded) + 1, dtype=np.int64)
+    np.cumsum([len(text) for text in encoded], out=offsets[1:])
+    buffers = [None, pa.py_buffer(offsets), pa.py_buffer(b"".join(encoded))]
+    dictionary = pa.Array.from_buffers(pa.large_string(), len(encoded), buffers)
+    indices = pa.Array.from_buffers(pa.uint8(), codes.size, [None, pa.py_buffer(codes)])
+    return pa.DictionaryArray.from_arrays(indices, dictionary).dictionary_decode()
 
 
 def _status_tables(
@@ -246,7 +241,8 @@ def _status_tables(
         # Statuses as codes and masks, the columns as arrow arrays made from numpy: strings,
         # joins and per-batch counts in polars cost the main thread 0.5 CPU-s on 2M rows.
         rows = frame.get_column(ROW_INDEX).to_numpy()
-        codes = builder.row_status(frame).cast(status_enum).to_physical().to_numpy().copy()
+        status = builder.row_status(frame).cast(status_enum).to_physical()
+        codes = status.to_numpy().astype(np.uint8)  # a copy: the overrides are written into it
         scored = codes == _code(STATUS_USED)
         overrides: list[tuple[NDArray[np.bool_], str]] = []
         if where is not None:
@@ -273,9 +269,12 @@ def _status_tables(
             codes[mask] = _code(text)
 
         def spread(name: str) -> NDArray[np.float64]:
-            values = np.full(rows.size, np.nan)
-            values[at] = np.concatenate([getattr(d, name) for d in scores])
-            return values
+            values: NDArray[np.float64] = np.concatenate([getattr(d, name) for d in scores])
+            if at.size == rows.size:  # every row scored, in order
+                return values
+            spread_out = np.full(rows.size, np.nan)
+            spread_out[at] = values
+            return spread_out
 
         arrays = {
             "row": _number_column(rows),
