@@ -43,8 +43,7 @@ from triage.core.flag_rules import (
     bonferroni_bound,
     raise_flags,
 )
-from triage.core.indicators import LevelGram, SummedBlock, level_grams
-from triage.core.lsq import GRAM_CHUNK_ROWS
+from triage.core.indicators import GRAM_CHUNK_ROWS, LevelGram, SummedBlock, level_grams
 from triage.core.moments import StreamMoments
 from triage.core.residual_breakdown import BinnedResiduals, SegmentResiduals
 from triage.core.residual_tests import (

@@ -9,7 +9,7 @@ from __future__ import annotations
 import fnmatch
 import os
 import tempfile
-from collections.abc import Iterable
+from collections.abc import Collection, Iterable
 from pathlib import Path
 from types import TracebackType
 from typing import IO, Final, Literal
@@ -232,6 +232,20 @@ def _text_columns(schema: pa.Schema) -> list[str]:
     return [field.name for field in schema if any(is_text(field.type) for is_text in text)]
 
 
+_WRITE_BUFFER_BYTES: Final = 4 << 20
+"""Bytes a Parquet export gathers before a write to its file."""
+
+
+def _types(schema: pa.Schema | pl.Schema) -> dict[str, str]:
+    """Column names and types, to name in a message."""
+    pairs = (
+        zip(schema.names, schema.types, strict=True)
+        if isinstance(schema, pa.Schema)
+        else schema.items()
+    )
+    return {name: str(dtype) for name, dtype in pairs}
+
+
 class StreamingExport:
     """Write many frames into one Parquet or CSV file in bounded memory, atomically.
 
@@ -248,6 +262,9 @@ class StreamingExport:
         Paths never written, even with `force`.
     note : str, optional
         One line about the rows; see `write_frame`.
+    statistics : collection of str, optional
+        The columns whose Parquet statistics (min, max, nulls) are written, for a reader to
+        skip row groups by; every column's by default.
 
     Raises
     ------
@@ -273,10 +290,12 @@ class StreamingExport:
         force: bool = False,
         protected: Iterable[str | os.PathLike[str]] = (),
         note: str | None = None,
+        statistics: Collection[str] | None = None,
     ) -> None:
         protected = tuple(protected)
         self._target, self._format = _check_target(path, force=force, protected=protected)
         self._note = note
+        self._statistics = statistics
         self._sidecar: Path | None = None
         if note is not None and self._format != "parquet":
             self._sidecar = self._target.with_name(self._target.name + NOTE_SUFFIX)
@@ -286,10 +305,10 @@ class StreamingExport:
                 msg = f"the note `{self._sidecar.name}` beside the export {why}"
                 raise ExportError(msg)
         self._force = force
-        self._handle: IO[bytes] | None = None
+        self._handle: IO[bytes] | pa.NativeFile | None = None
         self._temporary: Path | None = None
         self._writer: pq.ParquetWriter | None = None
-        self._schema: pl.Schema | None = None
+        self._schema: pa.Schema | pl.Schema | None = None
         self.rows_written = 0
         """Rows written so far."""
 
@@ -301,14 +320,21 @@ class StreamingExport:
     def __enter__(self) -> StreamingExport:
         self._handle, self._temporary = _temporary(self._target)
         TEMPORARIES.add(self._temporary)
+        if self._format == "parquet":
+            # Arrow's own file, buffered: a Python handle took the interpreter's lock for each
+            # of ~1,500 small writes (2M rows), which kept the scoring workers waiting.
+            self._handle.close()
+            self._handle = pa.BufferedOutputStream(
+                pa.OSFile(str(self._temporary), mode="wb"), buffer_size=_WRITE_BUFFER_BYTES
+            )
         return self
 
-    def write(self, frame: pl.DataFrame) -> None:
+    def write(self, frame: pl.DataFrame | pa.Table) -> None:
         """Append `frame` to the export.
 
         Parameters
         ----------
-        frame : DataFrame
+        frame : DataFrame or pyarrow.Table
             Same column names and types as the first frame written.
 
         Raises
@@ -320,28 +346,11 @@ class StreamingExport:
         if self._handle is None:
             msg = f"`StreamingExport.write` called outside its `with` block for `{self._target}`"
             raise ExportError(msg)
-        is_first = self._schema is None
-        if self._schema is None:
-            self._schema = frame.schema
-        elif frame.schema != self._schema:
-            msg = (
-                f"a batch for `{self._target.name}` has columns {dict(frame.schema)}, "
-                f"but the first had {dict(self._schema)}; write batches of one shape"
-            )
-            raise ExportError(msg)
         try:
             if self._format == "parquet":
-                table = frame.to_arrow()
-                if self._note is not None:
-                    table = table.replace_schema_metadata({NOTE_KEY: self._note})
-                if self._writer is None:
-                    self._writer = pq.ParquetWriter(
-                        self._handle, table.schema, use_dictionary=_text_columns(table.schema)
-                    )
-                self._writer.write_table(table)
+                self._write_parquet(frame if isinstance(frame, pa.Table) else frame.to_arrow())
             else:
-                separator = "\t" if self._format == "tsv" else ","
-                frame.write_csv(self._handle, include_header=is_first, separator=separator)
+                self._write_csv(frame if isinstance(frame, pl.DataFrame) else pl.DataFrame(frame))
         except (pl.exceptions.PolarsError, pa.ArrowException, OSError) as exc:
             first_line = (str(exc).strip().splitlines() or [type(exc).__name__])[0]
             msg = (
@@ -349,7 +358,36 @@ class StreamingExport:
                 "and the folder's permissions, or choose another folder"
             )
             raise ExportError(msg) from exc
-        self.rows_written += frame.height
+        self.rows_written += frame.num_rows if isinstance(frame, pa.Table) else frame.height
+
+    def _check_shape(self, schema: pa.Schema | pl.Schema) -> None:
+        if self._schema is None:
+            self._schema = schema
+        elif schema != self._schema:
+            msg = (
+                f"a batch for `{self._target.name}` has columns {_types(schema)}, "
+                f"but the first had {_types(self._schema)}; write batches of one shape"
+            )
+            raise ExportError(msg)
+
+    def _write_parquet(self, table: pa.Table) -> None:
+        self._check_shape(table.schema)
+        if self._note is not None:
+            table = table.replace_schema_metadata({NOTE_KEY: self._note})
+        if self._writer is None:
+            self._writer = pq.ParquetWriter(
+                self._handle,
+                table.schema,
+                use_dictionary=_text_columns(table.schema),
+                write_statistics=True if self._statistics is None else list(self._statistics),
+            )
+        self._writer.write_table(table)
+
+    def _write_csv(self, frame: pl.DataFrame) -> None:
+        is_first = self._schema is None
+        self._check_shape(frame.schema)
+        separator = "\t" if self._format == "tsv" else ","
+        frame.write_csv(self._handle, include_header=is_first, separator=separator)
 
     def __exit__(
         self,
@@ -370,7 +408,7 @@ class StreamingExport:
         finally:
             TEMPORARIES.discard(temporary)
 
-    def _finish(self, handle: IO[bytes], temporary: Path, *, failed: bool) -> None:
+    def _finish(self, handle: IO[bytes] | pa.NativeFile, temporary: Path, *, failed: bool) -> None:
         """Close the file and move it into place, or remove it when the block `failed`."""
         try:
             if self._writer is not None:
