@@ -15,6 +15,7 @@ import polars as pl
 from numpy.typing import NDArray
 
 from triage.core.binning import BinLookup, pack_counts, quantiles_from_counts, unpack_counts
+from triage.core.levels import category_codes
 from triage.core.moments import pool_groups, pool_values
 from triage.results.diagnostics import ResidualBin, SegmentLevel
 
@@ -32,9 +33,6 @@ MISSING_LEVEL: Final = "(missing)"
 
 
 _BIN_QUANTILES: Final = (0.1, 0.5, 0.9)
-
-_ID_TABLE_CELLS: Final = 65_536
-"""Widest span of Categorical ids a segment column maps by a table (512 KiB) per batch."""
 
 
 class BinnedResiduals:
@@ -196,36 +194,26 @@ class SegmentResiduals:
     def _level_codes(self, series: pl.Series) -> IntArray:
         """Index of each row's level, adding the batch's new levels in the order first met.
 
-        Through a Categorical's ids: the batch's distinct ids (few) are matched to labels,
-        and each row's id to its label's index by a table, instead of matching every row's
-        text. 0.4 ms instead of 4.4 for 110,749 rows of a 60-level column (measured here).
+        Through a Categorical's ids (`category_codes`): only the batch's distinct values are
+        matched as text. 0.4 ms instead of 4.4 for 110,749 rows of a 60-level column
+        (measured here); text is cast to a Categorical first.
         """
-        if not isinstance(series.dtype, pl.Categorical | pl.Enum):
+        if not isinstance(series.dtype, pl.Categorical):
             series = series.cast(pl.String).cast(pl.Categorical)
-        present = series.unique(maintain_order=True)
-        labels = present.cast(pl.String).fill_null(MISSING_LEVEL).to_list()
+        if series.null_count():
+            series = series.fill_null(MISSING_LEVEL)
+        codes, _ = category_codes(series, self._indices_of)
+        return codes
+
+    def _indices_of(self, labels: list[str]) -> list[int]:
+        """Index of each label, adding new ones in order while there is room."""
         for label in labels:
             if label not in self.index:
                 self._target(label)
                 if self.is_capped:
                     break  # no room left: every later new level goes to the pooled one as well
         fallback = self.index.get(OTHER_LEVEL, -1)
-        targets = np.array([self.index.get(label, fallback) for label in labels], dtype=np.int64)
-        ids = present.to_physical().cast(pl.Int64).fill_null(-1).to_numpy()
-        physical = series.to_physical()
-        if series.null_count():
-            physical = physical.cast(pl.Int64).fill_null(-1)
-        row_ids = physical.to_numpy().astype(np.int64)
-        low = int(ids.min())
-        span = int(ids.max()) - low + 1
-        if span <= max(_ID_TABLE_CELLS, 4 * ids.size):
-            table = np.zeros(span, dtype=np.int64)
-            table[ids - low] = targets
-            row_ids -= low
-            return np.take(table, row_ids)
-        # ids spread far apart (a process that coded many texts): match them by sorting
-        order = np.argsort(ids)
-        return targets[order][np.searchsorted(ids[order], row_ids)]
+        return [self.index.get(label, fallback) for label in labels]
 
     def _absorb(self, index: IntArray, count: FloatArray, mean: FloatArray, m2: FloatArray) -> None:
         size = len(self.labels)
