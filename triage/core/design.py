@@ -34,6 +34,7 @@ from triage.core.levels import (
     count_levels,
     level_code,
     level_text,
+    positions_in,
     present_value,
 )
 from triage.core.spec import Term, indicator_name, is_categorical_dtype, quote_name
@@ -829,7 +830,7 @@ class DesignBuilder:
         for column, expr, index in zip(self.levels, self._codes, self._level_index, strict=True):
             series = frame.get_column(column)
             if series.dtype == pl.Categorical:
-                code, _ = category_codes(series, functools.partial(_positions, index))
+                code, _ = category_codes(series, functools.partial(positions_in, index))
             else:
                 code = frame.select(expr).to_series().cast(pl.Int64).fill_null(-1).to_numpy()
             codes.append(code)
@@ -937,11 +938,6 @@ class DesignBuilder:
             )
             raise DataError(msg)
         return np.asfortranarray(values[keep]), frame.filter(pl.Series(keep)), n_bad
-
-
-def _positions(index: Mapping[str, int], names: list[str]) -> list[int]:
-    """Return each name's position in `index`, -1 for a name not in it."""
-    return [index.get(name, -1) for name in names]
 
 
 def reference_level(spec: ModelSpec, table: LevelTable) -> str:

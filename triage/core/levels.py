@@ -55,14 +55,18 @@ more than a quarter as many distinct ids (ids spread further apart are matched b
 
 
 def category_codes(
-    column: pl.Series, codes_of: Callable[[list[str]], Sequence[int]]
+    column: pl.Series,
+    codes_of: Callable[[list[str]], Sequence[int]],
+    add_new: Callable[[list[str]], Sequence[int]] | None = None,
 ) -> tuple[NDArray[np.int64], NDArray[np.bool_]]:
     """Code each row of a Categorical `column` through its physical ids.
 
-    `codes_of` gets the batch's distinct texts in order of first appearance and returns one
-    code each; a row gets its text's code, or -1 when it has no value. Only the distinct
-    ids are looked at as text. polars numbers its categories anew once no data holds them,
-    so an id names the same text only within one batch: the table is made per batch.
+    `codes_of` gets the batch's distinct texts, in no particular order, and returns one code
+    each (-1 for a text it does not know); `add_new`, when given, gets the texts `codes_of`
+    did not know, in order of first appearance, and returns their codes. A row gets its
+    text's code, or -1 when it has no value. Only the distinct ids are looked at as text.
+    polars numbers its categories anew once no data holds them, so an id names the same
+    text only within one batch: the table is made per batch.
 
     Returns
     -------
@@ -70,28 +74,46 @@ def category_codes(
     present : ndarray of bool
         The rows with a value.
     """
-    met = column.drop_nulls().unique(maintain_order=True)
-    targets = np.asarray(codes_of(met.cast(pl.String).to_list()), dtype=np.int64)
     physical = column.to_physical()
-    has_nulls = physical.has_nulls()
-    present = physical.is_not_null().to_numpy() if has_nulls else np.ones(len(column), np.bool_)
-    if met.is_empty():
+    n_nulls = physical.null_count()
+    present = physical.is_not_null().to_numpy() if n_nulls else np.ones(len(column), np.bool_)
+    row_ids = (physical.fill_null(0) if n_nulls else physical).to_numpy()
+    if n_nulls == len(column):
         return np.full(len(column), -1, dtype=np.int64), present
-    ids = met.to_physical().to_numpy().astype(np.int64)
-    low = int(ids.min())
-    row_ids = (physical.fill_null(low) if has_nulls else physical).to_numpy().astype(np.int64)
-    row_ids -= low
-    span = int(ids.max()) - low + 1
-    if span <= max(ID_TABLE_CELLS, 4 * ids.size):
-        table = np.full(span, -1, dtype=np.int64)
-        table[ids - low] = targets
-        codes = np.take(table, row_ids)
+    high = int(row_ids.max())
+    if high < ID_TABLE_CELLS:
+        # distinct ids by counting, their texts from the ids: a hashing `unique` cost
+        # twice as much (measured here); rows are ordered only in a batch with new texts
+        seen = np.bincount(row_ids)
+        seen[0] -= n_nulls
+        ids = np.flatnonzero(seen)
+        met = pl.Series(ids).cast(physical.dtype).cat.to(column.dtype, strict=False)
     else:  # ids far apart (a process that coded many texts)
+        met = (column.drop_nulls() if n_nulls else column).unique(maintain_order=True)
+        ids = met.to_physical().to_numpy()
+    names = met.cast(pl.String).to_list()
+    targets = np.asarray(codes_of(names), dtype=np.int64)
+    if add_new is not None and (targets < 0).any():
+        unknown = {name for name, target in zip(names, targets, strict=True) if target < 0}
+        in_order = column.drop_nulls().unique(maintain_order=True).cast(pl.String).to_list()
+        new = [name for name in in_order if name in unknown]
+        added = dict(zip(new, add_new(new), strict=True))
+        targets = np.array([added.get(name, t) for name, t in zip(names, targets, strict=True)])
+    if high < max(ID_TABLE_CELLS, 4 * ids.size):
+        table = np.full(high + 1, -1, dtype=np.int64)
+        table[ids] = targets
+        codes = np.take(table, row_ids)
+    else:
         order = np.argsort(ids)
-        codes = targets[order][np.searchsorted(ids[order] - low, row_ids)]
-    if has_nulls:
+        codes = targets[order][np.searchsorted(ids[order], row_ids)]
+    if n_nulls:
         codes[~present] = -1
     return codes, present
+
+
+def positions_in(index: Mapping[str, int], names: list[str]) -> list[int]:
+    """Return each name's position in `index`, -1 for a name not in it."""
+    return [index.get(name, -1) for name in names]
 
 
 def _sortable(column: str, dtype: pl.DataType | type[pl.DataType]) -> pl.Expr:
@@ -265,7 +287,7 @@ class FoundLevels:
         """
         column = frame.get_column(self.column)
         if column.dtype == pl.Categorical and self._values.dtype == pl.String:
-            return category_codes(column, self._codes_adding_new)
+            return category_codes(column, self._index_of, self._codes_adding_new)
         selected = frame.select(self.code(), self.present().alias("__present")).get_columns()
         codes, present = selected[0].to_numpy(), selected[1].to_numpy()
         new = present & (codes < 0)
@@ -274,11 +296,13 @@ class FoundLevels:
             codes[new] = self.add_new(frame, new)
         return codes, present
 
+    def _index_of(self, names: list[str]) -> list[int]:
+        """Return the code of each of `names`, -1 for one not found yet."""
+        return positions_in(self._index, names)
+
     def _codes_adding_new(self, names: list[str]) -> list[int]:
-        """Return the codes of `names` (distinct texts), adding those not found yet, in order."""
-        new = [name for name in names if name not in self._index]
-        if new:
-            self._append(pl.Series(self.column, new, dtype=pl.String))
+        """Add `names` (distinct texts not found yet), in order; return their codes."""
+        self._append(pl.Series(self.column, names, dtype=pl.String))
         return [self._index[name] for name in names]
 
     def add_new(self, frame: pl.DataFrame, rows: NDArray[np.bool_]) -> NDArray[np.int64]:

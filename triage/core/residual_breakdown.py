@@ -6,6 +6,7 @@ segments keep count, mean and sum of squares per level.
 
 from __future__ import annotations
 
+import functools
 import itertools
 import math
 from typing import Any, Final
@@ -15,7 +16,7 @@ import polars as pl
 from numpy.typing import NDArray
 
 from triage.core.binning import BinLookup, pack_counts, quantiles_from_counts, unpack_counts
-from triage.core.levels import category_codes
+from triage.core.levels import category_codes, positions_in
 from triage.core.moments import pool_groups, pool_values
 from triage.results.diagnostics import ResidualBin, SegmentLevel
 
@@ -202,7 +203,8 @@ class SegmentResiduals:
             series = series.cast(pl.String).cast(pl.Categorical)
         if series.null_count():
             series = series.fill_null(MISSING_LEVEL)
-        codes, _ = category_codes(series, self._indices_of)
+        known = functools.partial(positions_in, self.index)
+        codes, _ = category_codes(series, known, self._indices_of)
         return codes
 
     def _indices_of(self, labels: list[str]) -> list[int]:
