@@ -552,15 +552,23 @@ def test_engine_export_all_is_the_same_for_1_2_and_8_workers(
         weights="weight",
         where="income > 15000",
     )
-    written = {}
+    written, seen = {}, {}
     try:
         for n_workers in (1, 2, 8):
             set_pass_workers(n_workers)
             out = tmp_path / f"all_{n_workers}.parquet"
-            export_module.export_all_rows(source, spec, out, note="fit 1")
+            seen[n_workers] = progress = list[PassProgress]()
+            export_module.export_all_rows(
+                source, spec, out, note="fit 1", on_progress=progress.append
+            )
             written[n_workers] = pq.read_table(out)
     finally:
         set_pass_workers(None)
+    for progress in seen.values():  # each row counted once per pass, the pass named
+        assert [p.pass_number for p in progress] == sorted(p.pass_number for p in progress)
+        done = [p.rows_done for p in progress if p.pass_number == 2]
+        assert done == sorted(done) and done[-1] == N_ROWS
+        assert progress[-1].stage.startswith("pass 2 of 2")
     one = written[1]
     assert one["row"].to_pylist() == list(range(N_ROWS))
     expected = (

@@ -22,6 +22,7 @@ from triage.engine.passes import (
     design_batches,
     diagnose_rows,
     fit_model,
+    passes_of_two,
     run_report,
 )
 from triage.engine.progress import ProgressTracker
@@ -343,20 +344,22 @@ def export_all_rows(
     """Fit (on every row by default, or a sample), then write one line per source row to `out`.
 
     Each line holds the row's position, its `status` (``used`` or why the fit left it out)
-    and, where the model scored it, the `DIAGNOSTIC_COLUMNS`. Memory stays bounded: one
-    batch is held at a time. `note` says which fit scored the rows (see `export_rows`).
+    and, where the model scored it, the `DIAGNOSTIC_COLUMNS`. Memory stays bounded: a few
+    batches a worker are held at a time. `note` says which fit scored the rows (see `export_rows`).
+    Progress counts each row once per pass and says which pass it is ("pass 2 of 2").
     Returns the path and the number of rows of each status.
     With a cluster `engine`, the fit over every row runs on the cluster and only the fit
     comes back; the rows are then read and written here, next to the output, so no row
     crosses the network.
     """
+    as_pass_of_two = passes_of_two(on_progress)
     outcome = fit_model(
         source,
         spec,
         rows=rows,
         seed=seed,
         sampling=sampling,
-        on_progress=on_progress,
+        on_progress=as_pass_of_two(1),
         cancel=cancel,
         engine=engine,
     )
@@ -368,7 +371,7 @@ def export_all_rows(
         out, force=force, protected=protected, note=note, statistics=("row",)
     ) as sink:
         for table, batch_counts in _status_tables(
-            source, outcome, on_progress=on_progress, cancel=cancel
+            source, outcome, on_progress=as_pass_of_two(2), cancel=cancel
         ):
             sink.write(table)
             total += batch_counts
