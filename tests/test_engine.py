@@ -6,6 +6,7 @@ against numpy's least squares (oracle) so a cancelled-then-rerun pass is still r
 
 from __future__ import annotations
 
+import functools
 import operator
 import sys
 import threading
@@ -26,7 +27,7 @@ from triage.data.source import ROW_INDEX, open_source
 from triage.engine import passes
 from triage.engine import progress as progress_module
 from triage.engine.progress import ReadAhead
-from triage.engine.workers import fold_in_order
+from triage.engine.workers import fold_in_order, stream_parts_in_order
 from triage.errors import PassCancelled
 from triage.results.progress import PassProgress
 
@@ -248,6 +249,20 @@ def test_engine_gives_arrow_reads_jemalloc_unless_the_user_chose_a_pool() -> Non
     assert pool_name(ARROW_DEFAULT_MEMORY_POOL="system") == "system"
 
 
+def _write_split(
+    table: pl.DataFrame, tmp_path: Path, monkeypatch: pytest.MonkeyPatch, split: str
+) -> Path:
+    """Write `table` as Parquet read in eight parts (`split="parts"`), or as CSV: one stream."""
+    if split == "parts":
+        monkeypatch.setattr(parquet_module, "PART_ROWS", 2_500)
+        path = tmp_path / "admin.parquet"
+        table.write_parquet(path, row_group_size=1_250)
+    else:
+        path = tmp_path / "admin.csv"
+        table.write_csv(path)
+    return path
+
+
 @pytest.mark.parametrize("split", ["parts", "read-ahead"])
 def test_engine_report_is_the_same_for_1_2_and_8_workers(
     tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch, split: str
@@ -258,13 +273,7 @@ def test_engine_report_is_the_same_for_1_2_and_8_workers(
     from triage.views.json import report_to_json
 
     table = administrative_table(rng, N_ROWS)
-    if split == "parts":
-        monkeypatch.setattr(parquet_module, "PART_ROWS", 2_500)
-        path = tmp_path / "admin.parquet"
-        table.write_parquet(path, row_group_size=1_250)
-    else:
-        path = tmp_path / "admin.csv"
-        table.write_csv(path)
+    path = _write_split(table, tmp_path, monkeypatch, split)
     source = open_source(path)
     spec = build_spec(
         source.schema(),
@@ -476,3 +485,104 @@ def test_engine_parquet_text_codes_read_as_categorical_give_the_text_read_report
     batch = next(iter(first_part()))
     assert batch.frame.schema["region"] == pl.Categorical
     assert batch.frame.schema["channel"] == pl.String
+
+
+def test_engine_stream_parts_in_order_yields_in_part_order_holding_few_ahead() -> None:
+    # Oracle: the parts' own order; part 0 is slow, so the others run ahead of it until they
+    # hold `ahead` items (each worker may hold one item more that it has not yet queued).
+    produced, consumed = [0], [0]
+    lock = threading.Lock()
+
+    def part(k: int) -> Iterator[int]:
+        for i in range(10):
+            if k == 0:
+                time.sleep(0.01)
+            with lock:
+                produced[0] += 1
+            yield 10 * k + i
+
+    parts = [functools.partial(part, k) for k in range(5)]
+    items, most_held = [], 0
+    for item in stream_parts_in_order(parts, ahead=3, wait=lambda: None, n_workers=4):
+        consumed[0] += 1
+        items.append(item)
+        with lock:
+            most_held = max(most_held, produced[0] - consumed[0])
+    assert items == list(range(50))
+    assert most_held <= 3 + 2 + 4  # ahead, two of the part being yielded, one per worker
+
+
+def test_engine_stream_parts_in_order_stops_its_workers_on_an_error_or_when_closed() -> None:
+    def part(k: int) -> Iterator[int]:
+        for i in range(1_000):
+            if k == 2 and i == 3:
+                msg = "bad part"
+                raise ValueError(msg)
+            yield i
+
+    parts = [functools.partial(part, k) for k in range(6)]
+    with pytest.raises(ValueError, match="bad part"):
+        list(stream_parts_in_order(parts, ahead=2, wait=lambda: None, n_workers=2))
+    assert not [t for t in threading.enumerate() if t.name.startswith("triage-worker-")]
+    stream = stream_parts_in_order(parts[:2], ahead=2, wait=lambda: None, n_workers=2)
+    assert [next(stream) for _ in range(5)] == [0, 1, 2, 3, 4]
+    stream.close()  # the caller stops early (a failed write, Ctrl-C)
+    assert not [t for t in threading.enumerate() if t.name.startswith("triage-worker-")]
+
+
+@pytest.mark.parametrize("split", ["parts", "read-ahead"])
+def test_engine_export_all_is_the_same_for_1_2_and_8_workers(
+    tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch, split: str
+) -> None:
+    # Oracle: the one-worker file, and polars for the rows' order and statuses. Parts and
+    # batches are small, so the parts run ahead of the one being written.
+    import pyarrow.parquet as pq
+
+    from triage.engine import export as export_module
+    from triage.engine.workers import set_pass_workers
+
+    table = administrative_table(rng, N_ROWS)
+    monkeypatch.setattr(export_module, "batch_rows_for", lambda n_columns: 400)
+    path = _write_split(table, tmp_path, monkeypatch, split)
+    source = open_source(path)
+    spec = build_spec(
+        source.schema(),
+        target="y",
+        terms="age, log(income), region, channel",
+        weights="weight",
+        where="income > 15000",
+    )
+    written, seen = {}, {}
+    try:
+        for n_workers in (1, 2, 8):
+            set_pass_workers(n_workers)
+            out = tmp_path / f"all_{n_workers}.parquet"
+            seen[n_workers] = progress = list[PassProgress]()
+            export_module.export_all_rows(
+                source, spec, out, note="fit 1", on_progress=progress.append
+            )
+            written[n_workers] = pq.read_table(out)
+    finally:
+        set_pass_workers(None)
+    for progress in seen.values():  # each row counted once per pass, the pass named
+        assert [p.pass_number for p in progress] == sorted(p.pass_number for p in progress)
+        done = [p.rows_done for p in progress if p.pass_number == 2]
+        assert done == sorted(done) and done[-1] == N_ROWS
+        assert progress[-1].stage.startswith("pass 2 of 2")
+    one = written[1]
+    assert one["row"].to_pylist() == list(range(N_ROWS))
+    expected = (
+        table.select(
+            pl.when(pl.col("income") <= 15_000)
+            .then(pl.lit(export_module.STATUS_FILTERED))
+            .when(pl.col("age").is_null())
+            .then(pl.lit("missing value"))
+            .otherwise(pl.lit("used"))
+        )
+        .to_series()
+        .to_list()
+    )
+    assert one["status"].to_pylist() == expected
+    for n_workers in (2, 8):
+        assert written[n_workers].equals(one)
+        assert written[n_workers].schema.metadata == one.schema.metadata

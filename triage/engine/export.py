@@ -2,8 +2,9 @@
 
 from __future__ import annotations
 
+import functools
 import threading
-from collections.abc import Collection, Iterator, Sequence
+from collections.abc import Collection, Generator, Iterator, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Final
 
@@ -21,10 +22,11 @@ from triage.engine.passes import (
     design_batches,
     diagnose_rows,
     fit_model,
+    passes_of_two,
     run_report,
 )
 from triage.engine.progress import ProgressTracker
-from triage.engine.workers import map_in_order
+from triage.engine.workers import map_in_order, stream_parts_in_order
 from triage.results.fit import DataSummary, FitOutcome
 
 if TYPE_CHECKING:
@@ -206,6 +208,16 @@ def _text_column(codes: NDArray[np.uint8], texts: Sequence[str]) -> pa.Array:
     return pa.DictionaryArray.from_arrays(indices, dictionary).dictionary_decode()
 
 
+_SCORED_ROW_BYTES: Final = 64
+"""Bytes of a row of an `export --all` table, about: six numbers and a short status."""
+_SCORED_AHEAD_BYTES: Final = 64 << 20
+"""Bytes of scored tables the parts after the one being written may hold, all together.
+
+A worker goes on with the next part while the one before it is written; about one part
+(a row group of 1,000,000 rows) held ahead keeps two workers busy.
+"""
+
+
 def _status_tables(
     source: Source,
     outcome: FitOutcome,
@@ -286,12 +298,33 @@ def _status_tables(
         table = pa.Table.from_arrays([arrays[name] for name in names], names=names)
         return table, np.bincount(codes, minlength=len(_STATUSES))
 
-    def frames() -> Iterator[pl.DataFrame]:
-        for batch in source.scan_batches(columns, batch_rows=step):
-            tracker.advance(batch.rows_read)
-            yield batch.frame
+    parts = source.scan_parts(columns, batch_rows=step)
+    if len(parts) < 2:  # one stream: read here, scored on the workers
 
-    yield from map_in_order(frames(), score)
+        def frames() -> Iterator[pl.DataFrame]:
+            for batch in source.scan_batches(columns, batch_rows=step):
+                tracker.advance(batch.rows_read)
+                yield batch.frame
+
+        yield from map_in_order(frames(), score)
+        return
+    # Parts are read and scored on the workers, and their tables handed on in source order.
+    rows_read = [0] * len(parts)
+
+    def scored_part(k: int) -> Generator[tuple[pa.Table, NDArray[np.int64]], None, None]:
+        for batch in parts[k]():
+            rows_read[k] = batch.rows_read
+            yield score(batch.frame)
+
+    def report() -> None:
+        tracker.advance(sum(rows_read))
+
+    yield from stream_parts_in_order(
+        [functools.partial(scored_part, k) for k in range(len(parts))],
+        ahead=max(1, _SCORED_AHEAD_BYTES // (step * _SCORED_ROW_BYTES)),
+        wait=report,
+    )
+    tracker.advance(sum(rows_read), force=True)
 
 
 def export_all_rows(
@@ -311,20 +344,22 @@ def export_all_rows(
     """Fit (on every row by default, or a sample), then write one line per source row to `out`.
 
     Each line holds the row's position, its `status` (``used`` or why the fit left it out)
-    and, where the model scored it, the `DIAGNOSTIC_COLUMNS`. Memory stays bounded: one
-    batch is held at a time. `note` says which fit scored the rows (see `export_rows`).
+    and, where the model scored it, the `DIAGNOSTIC_COLUMNS`. Memory stays bounded: a few
+    batches a worker are held at a time. `note` says which fit scored the rows (see `export_rows`).
+    Progress counts each row once per pass and says which pass it is ("pass 2 of 2").
     Returns the path and the number of rows of each status.
     With a cluster `engine`, the fit over every row runs on the cluster and only the fit
     comes back; the rows are then read and written here, next to the output, so no row
     crosses the network.
     """
+    as_pass_of_two = passes_of_two(on_progress)
     outcome = fit_model(
         source,
         spec,
         rows=rows,
         seed=seed,
         sampling=sampling,
-        on_progress=on_progress,
+        on_progress=as_pass_of_two(1),
         cancel=cancel,
         engine=engine,
     )
@@ -336,7 +371,7 @@ def export_all_rows(
         out, force=force, protected=protected, note=note, statistics=("row",)
     ) as sink:
         for table, batch_counts in _status_tables(
-            source, outcome, on_progress=on_progress, cancel=cancel
+            source, outcome, on_progress=as_pass_of_two(2), cancel=cancel
         ):
             sink.write(table)
             total += batch_counts

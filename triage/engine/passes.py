@@ -1134,20 +1134,7 @@ def run_report(
         engine=engine,
         column_figures=column_figures,
     )
-    started = time.perf_counter()
-
-    def as_pass_of_two(number: int) -> ProgressCallback | None:
-        """Report one pass's progress as pass `number` of 2, with the time left for both."""
-        if on_progress is None:
-            return None
-        callback = on_progress
-
-        def report(progress: PassProgress) -> None:
-            elapsed = time.perf_counter() - started
-            callback(_pass_of_two(progress, number, elapsed, plan.pass_source))
-
-        return report
-
+    as_pass_of_two = passes_of_two(on_progress, pass_source=lambda: plan.pass_source)
     plan.keep_frames()
     outcome = _fit(plan, on_progress=as_pass_of_two(1), cancel=cancel)
     if on_fit is not None:
@@ -1162,6 +1149,29 @@ def run_report(
         cancel=cancel,
     )
     return ReportOutcome(outcome, diagnostics)
+
+
+def passes_of_two(
+    on_progress: ProgressCallback | None, *, pass_source: Callable[[], str] = str
+) -> Callable[[int], ProgressCallback | None]:
+    """Return a maker of callbacks that report a pass as pass `number` of two (see `_pass_of_two`).
+
+    Time counts from this call; `pass_source` says, as pass 2 reports, where its rows come from.
+    """
+    started = time.perf_counter()
+
+    def as_pass_of_two(number: int) -> ProgressCallback | None:
+        if on_progress is None:
+            return None
+        callback = on_progress
+
+        def report(progress: PassProgress) -> None:
+            elapsed = time.perf_counter() - started
+            callback(_pass_of_two(progress, number, elapsed, pass_source()))
+
+        return report
+
+    return as_pass_of_two
 
 
 def _pass_of_two(

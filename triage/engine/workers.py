@@ -14,7 +14,7 @@ import os
 import threading
 import time
 from collections import deque
-from collections.abc import Callable, Iterable, Iterator
+from collections.abc import Callable, Generator, Iterable, Iterator, Sequence
 from concurrent.futures import Future, ThreadPoolExecutor
 from typing import TypeVar
 
@@ -140,18 +140,12 @@ def fold_in_order(
                 if running == 0:
                     all_done.set()
 
-    threads = [
-        threading.Thread(target=work, name=f"triage-worker-{k}", daemon=True)
-        for k in range(n_threads)
-    ]
     launched: list[threading.Thread] = []
     try:
         # A signal's exception may come while a thread starts, one already reading `units`:
         # every thread launched is joined, so none is left reading a generator its caller
         # then closes ("generator already executing").
-        for thread in threads:
-            launched.append(thread)
-            thread.start()
+        _start_workers(work, n_threads, launched)
         while not all_done.wait(wait_s):
             wait()
     except BaseException:
@@ -198,6 +192,129 @@ def map_in_order(
             yield pending.popleft().result()
     finally:
         pool.shutdown(wait=True, cancel_futures=True)
+
+
+def stream_parts_in_order(
+    parts: Sequence[Callable[[], Generator[S, None, None]]],
+    *,
+    ahead: int,
+    wait: Callable[[], None],
+    n_workers: int | None = None,
+    wait_s: float = 0.05,
+) -> Iterator[S]:
+    """Run the parts on worker threads and yield their items in order: part 0's, then 1's, ....
+
+    A worker takes the next part as soon as it is free and runs it through (reading and
+    working on its items there), so the calling thread only hands the items on. The parts
+    after the one being yielded hold at most `ahead` items in all, the one being yielded two;
+    their workers wait beyond that, so memory stays bounded whatever a part's size. The items
+    and their order depend only on the parts, never on the number of workers.
+
+    Parameters
+    ----------
+    parts : sequence of callables
+        Each, called on a worker, returns a generator of its part's items.
+    ahead : int
+        Items the parts after the one being yielded may hold, all together.
+    wait : callable
+        Runs on the calling thread while it waits for an item, at least every `wait_s`
+        seconds (progress, cancel); an error it raises, or one raised in a part, stops the
+        workers and is raised here. Closing the iterator early stops them too.
+    n_workers : int, optional
+        Threads to use; `pass_workers()` when not given.
+    wait_s : float, default=0.05
+        Longest wait between calls of `wait`.
+
+    Examples
+    --------
+    >>> parts = [lambda k=k: (n for n in range(3 * k, 3 * k + 3)) for k in range(3)]
+    >>> list(stream_parts_in_order(parts, ahead=1, wait=lambda: None, n_workers=2))
+    [0, 1, 2, 3, 4, 5, 6, 7, 8]
+    """
+    changed = threading.Condition()
+    queued: list[deque[S]] = [deque() for _ in parts]
+    finished = [False] * len(parts)
+    errors: list[BaseException] = []
+    stopping = threading.Event()
+    taken, current = 0, 0
+
+    def may_queue(k: int) -> bool:  # called holding `changed`
+        if k == current:
+            return len(queued[k]) < 2
+        return sum(len(items) for items in queued[current + 1 :]) < ahead
+
+    def run_part(k: int) -> None:
+        items = parts[k]()
+        try:
+            for item in items:
+                with changed:
+                    while not stopping.is_set() and not may_queue(k):
+                        changed.wait()
+                    if stopping.is_set():
+                        return
+                    queued[k].append(item)
+                    changed.notify_all()
+        finally:
+            items.close()
+        with changed:
+            finished[k] = True
+            changed.notify_all()
+
+    def work() -> None:
+        nonlocal taken
+        try:
+            while True:
+                with changed:
+                    if stopping.is_set() or taken == len(parts):
+                        return
+                    k, taken = taken, taken + 1
+                run_part(k)
+        except BaseException as error:  # handed to the caller, which raises it
+            with changed:
+                errors.append(error)
+                stopping.set()
+                changed.notify_all()
+
+    n_threads = max(1, min(len(parts), n_workers if n_workers is not None else pass_workers()))
+    launched: list[threading.Thread] = []
+    try:
+        _start_workers(work, n_threads, launched)
+        for k in range(len(parts)):
+            with changed:
+                current = k
+                changed.notify_all()
+            while True:
+                with changed:
+                    if errors:
+                        raise errors[0]
+                    is_ready = bool(queued[k])
+                    if is_ready:
+                        item = queued[k].popleft()
+                        changed.notify_all()
+                    elif finished[k]:
+                        break
+                    else:
+                        changed.wait(wait_s)
+                if is_ready:
+                    yield item
+                else:
+                    wait()
+    finally:
+        with changed:
+            stopping.set()
+            changed.notify_all()
+        for thread in launched:
+            _join_launched(thread)
+
+
+def _start_workers(
+    work: Callable[[], None], n_threads: int, launched: list[threading.Thread]
+) -> None:
+    """Start `n_threads` threads running `work`, each added to `launched` before its start."""
+    for k in range(n_threads):
+        thread = threading.Thread(target=work, name=f"triage-worker-{k}", daemon=True)
+        launched.append(thread)
+        thread.start()
 
 
 def _join_launched(thread: threading.Thread, *, start_s: float = 1.0) -> None:
