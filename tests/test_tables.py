@@ -24,13 +24,7 @@ import pytest
 
 import triage.engine.passes as passes
 from triage._typing import ALL_ROWS
-from triage.core.levels import (
-    ID_TABLE_CELLS,
-    CategoryCoder,
-    FoundLevels,
-    LevelCounter,
-    category_codes,
-)
+from triage.core.levels import ID_TABLE_CELLS, FoundLevels, LevelCounter, category_codes
 from triage.core.spec import build_spec
 from triage.data.source import open_source
 from triage.engine.passes import fit_model
@@ -228,47 +222,6 @@ def test_category_codes_of_ids_far_apart_equal_pandas_get_indexer() -> None:
     np.testing.assert_array_equal(codes, pd.Index(labels).get_indexer(values))
     np.testing.assert_array_equal(present, [v is not None for v in values])
     assert many.len() == ID_TABLE_CELLS + 10  # held alive, so the ids stay apart
-
-
-def test_category_coder_kept_table_equals_pandas_get_indexer_batch_after_batch() -> None:
-    """A coder's table kept between batches codes each batch as pandas would (`get_indexer`).
-
-    Each batch is dropped before the next is made (polars may then number other texts with
-    its ids, unless the coder holds them); batches bring texts not coded yet, an unknown
-    text (-1), nulls and, last, only known ids, and run on two threads sharing one coder.
-    """
-    import concurrent.futures
-
-    labels = ["north", "south", "east", "west", "port"]
-    batches = [
-        ["south", "north", "south", None],
-        ["east", "west", None],  # texts not coded yet, on the ids the first batch freed
-        [None, None],
-        ["port", "elsewhere", "east"],  # an unknown text
-        ["north", "west", "west"],  # every id known: the kept table alone
-    ]
-
-    def known(names: list[str]) -> list[int]:
-        return [labels.index(name) if name in labels else -1 for name in names]
-
-    def code_all(coder: CategoryCoder) -> list[np.ndarray]:
-        out = []
-        for values in batches:
-            column = pl.Series("depot", values, dtype=pl.Categorical)
-            codes, present = coder.codes("depot", column, known)
-            np.testing.assert_array_equal(present, [v is not None for v in values])
-            out.append(codes)
-            del column  # polars may now number other texts with its ids
-        return out
-
-    expected = [pd.Index(labels).get_indexer(values) for values in batches]
-    for got, want in zip(code_all(CategoryCoder()), expected, strict=True):
-        np.testing.assert_array_equal(got, want)
-    shared = CategoryCoder()
-    with concurrent.futures.ThreadPoolExecutor(2) as pool:
-        for result in pool.map(lambda _: code_all(shared), range(4)):
-            for got, want in zip(result, expected, strict=True):
-                np.testing.assert_array_equal(got, want)
 
 
 def test_same_table_in_four_stores_gives_identical_coefficients(

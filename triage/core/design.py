@@ -28,9 +28,9 @@ from triage.core.indicator_terms import (
 )
 from triage.core.indicators import CodedDesign, IndicatorCodes
 from triage.core.levels import (
-    CategoryCoder,
     FoundLevels,
     LevelTable,
+    category_codes,
     count_levels,
     level_code,
     level_text,
@@ -449,8 +449,6 @@ class DesignBuilder:
     """Each categorical's level -> its position in `levels`."""
     _dense_positions: NDArray[np.intp] = field(repr=False, compare=False)
     _level_positions: tuple[NDArray[np.intp], ...] = field(repr=False, compare=False)
-    _coder: CategoryCoder = field(default_factory=CategoryCoder, repr=False, compare=False)
-    """Each categorical's codes by Categorical id, kept between batches (per thread)."""
 
     @staticmethod
     def scales_from_sample(spec: ModelSpec) -> bool:
@@ -832,7 +830,7 @@ class DesignBuilder:
         for column, expr, index in zip(self.levels, self._codes, self._level_index, strict=True):
             series = frame.get_column(column)
             if series.dtype == pl.Categorical:
-                code, _ = self._coder.codes(column, series, functools.partial(positions_in, index))
+                code, _ = category_codes(series, functools.partial(positions_in, index))
             else:
                 code = frame.select(expr).to_series().cast(pl.Int64).fill_null(-1).to_numpy()
             codes.append(code)

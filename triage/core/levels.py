@@ -11,7 +11,6 @@ depends only on which rows are counted, never on storage, batch order or threads
 
 from __future__ import annotations
 
-import threading
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Final
 
@@ -67,7 +66,7 @@ def category_codes(
     did not know, in order of first appearance, and returns their codes. A row gets its
     text's code, or -1 when it has no value. Only the distinct ids are looked at as text.
     polars numbers its categories anew once no data holds them, so an id names the same
-    text only within one batch: the table is made per batch (`CategoryCoder` keeps it).
+    text only within one batch: the table is made per batch.
 
     Returns
     -------
@@ -75,22 +74,12 @@ def category_codes(
     present : ndarray of bool
         The rows with a value.
     """
-    codes, present, _ = _coded_batch(column, codes_of, add_new)
-    return codes, present
-
-
-def _coded_batch(
-    column: pl.Series,
-    codes_of: Callable[[list[str]], Sequence[int]],
-    add_new: Callable[[list[str]], Sequence[int]] | None,
-) -> tuple[NDArray[np.int64], NDArray[np.bool_], tuple[pl.Series, NDArray[np.int64]] | None]:
-    """`category_codes`, with the batch's distinct values and their codes when ids are few."""
     physical = column.to_physical()
     n_nulls = physical.null_count()
     present = physical.is_not_null().to_numpy() if n_nulls else np.ones(len(column), np.bool_)
     row_ids = (physical.fill_null(0) if n_nulls else physical).to_numpy()
     if n_nulls == len(column):
-        return np.full(len(column), -1, dtype=np.int64), present, None
+        return np.full(len(column), -1, dtype=np.int64), present
     high = int(row_ids.max())
     if high < ID_TABLE_CELLS:
         # distinct ids by counting, their texts from the ids: a hashing `unique` cost
@@ -119,74 +108,7 @@ def _coded_batch(
         codes = targets[order][np.searchsorted(ids[order], row_ids)]
     if n_nulls:
         codes[~present] = -1
-    return codes, present, (met, targets) if high < ID_TABLE_CELLS else None
-
-
-_UNCODED: Final = -2
-"""An id's entry in a `CategoryCoder` table before a batch holding it was coded."""
-
-
-class _IdTable(threading.local):
-    """One thread's tables of `CategoryCoder`: per key, codes by id and the texts held."""
-
-    def __init__(self) -> None:
-        self.codes: dict[str, NDArray[np.int64]] = {}
-        self.held: dict[str, list[pl.Series]] = {}
-
-
-class CategoryCoder:
-    """Codes Categorical columns batch after batch, keeping each one's id table.
-
-    A batch's ids are looked up in the table of the batches coded before (one look-up per
-    row); only a batch holding ids not coded yet goes through `category_codes`, whose
-    distinct values are then held, so that polars keeps their ids. The callers' codes must
-    not change once given (levels are only ever added). One table per thread and `key`; a
-    copy or a pickle starts empty.
-    """
-
-    def __init__(self) -> None:
-        self._tables = _IdTable()
-
-    def __reduce__(self) -> tuple[type[CategoryCoder], tuple[()]]:
-        return (CategoryCoder, ())
-
-    def codes(
-        self,
-        key: str,
-        column: pl.Series,
-        codes_of: Callable[[list[str]], Sequence[int]],
-        add_new: Callable[[list[str]], Sequence[int]] | None = None,
-    ) -> tuple[NDArray[np.int64], NDArray[np.bool_]]:
-        """Return `category_codes` of `column` (same arguments), the table kept under `key`."""
-        tables = self._tables
-        table, held = tables.codes.get(key), tables.held.get(key)
-        if table is not None and held and held[0].dtype == column.dtype:
-            physical = column.to_physical()
-            n_nulls = physical.null_count()
-            row_ids = (physical.fill_null(0) if n_nulls else physical).to_numpy()
-            if row_ids.size and int(row_ids.max()) < table.size:
-                codes = np.take(table, row_ids)
-                present = np.ones(len(column), np.bool_)
-                if n_nulls:
-                    present = physical.is_not_null().to_numpy()
-                    codes[~present] = -1
-                if not (codes == _UNCODED).any():
-                    return codes, present
-        codes, present, met = _coded_batch(column, codes_of, add_new)
-        if met is not None:
-            values, targets = met
-            ids = values.to_physical().to_numpy()
-            if table is None or not held or held[0].dtype != column.dtype:
-                table, held = np.zeros(0, dtype=np.int64), []
-            if table.size <= int(ids.max()):
-                grown = np.full(int(ids.max()) + 1, _UNCODED, dtype=np.int64)
-                grown[: table.size] = table
-                table = grown
-            new = table[ids] == _UNCODED
-            table[ids] = targets
-            held.append(values.filter(pl.Series(new)))
-            tables.codes[key], tables.held[key] = table, held
-        return codes, present
+    return codes, present
 
 
 def positions_in(index: Mapping[str, int], names: list[str]) -> list[int]:
@@ -337,7 +259,6 @@ class FoundLevels:
         self._values = pl.Series(column, [], dtype=pl.String if dtype == pl.Categorical else dtype)
         self._index: dict[str, int] = {}
         self._code: pl.Expr | None = None
-        self._coder = CategoryCoder()
 
     def __len__(self) -> int:
         return len(self.names)
@@ -366,7 +287,7 @@ class FoundLevels:
         """
         column = frame.get_column(self.column)
         if column.dtype == pl.Categorical and self._values.dtype == pl.String:
-            return self._coder.codes(self.column, column, self._index_of, self._codes_adding_new)
+            return category_codes(column, self._index_of, self._codes_adding_new)
         selected = frame.select(self.code(), self.present().alias("__present")).get_columns()
         codes, present = selected[0].to_numpy(), selected[1].to_numpy()
         new = present & (codes < 0)

@@ -16,7 +16,7 @@ import polars as pl
 from numpy.typing import NDArray
 
 from triage.core.binning import BinLookup, pack_counts, quantiles_from_counts, unpack_counts
-from triage.core.levels import CategoryCoder, positions_in
+from triage.core.levels import category_codes, positions_in
 from triage.core.moments import pool_groups, pool_values
 from triage.results.diagnostics import ResidualBin, SegmentLevel
 
@@ -158,7 +158,6 @@ class SegmentResiduals:
         self.labels: list[str] = []
         self.index: dict[str, int] = {}
         self.is_capped = False
-        self._coder = CategoryCoder()
         if cuts is not None:
             for label in [*_interval_labels(cuts), MISSING_LEVEL]:
                 self._add(label)
@@ -205,7 +204,7 @@ class SegmentResiduals:
         if series.null_count():
             series = series.fill_null(MISSING_LEVEL)
         known = functools.partial(positions_in, self.index)
-        codes, _ = self._coder.codes(self.column, series, known, self._indices_of)
+        codes, _ = category_codes(series, known, self._indices_of)
         return codes
 
     def _indices_of(self, labels: list[str]) -> list[int]:
