@@ -73,7 +73,7 @@ class ColumnFiguresAccumulator:
                 queried.append(i)
                 continue
             shifted = values - values[0]
-            total, squares = float(shifted.sum()), float(shifted @ shifted)
+            total, squares = float(shifted.sum()), float(np.dot(shifted, shifted))
             mean[i] = values[0] + total / n
             m2[i] = max(squares - total * total / n, 0.0)
         if queried:

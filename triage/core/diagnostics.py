@@ -343,7 +343,7 @@ class DiagnosticsAccumulator:
             chunk = block[: rows.stop - start]
             for j, u in enumerate(roots):
                 np.multiply(shifted[rows], u[rows, np.newaxis], out=chunk)
-                self._meat[j] += chunk.T @ chunk
+                self._meat[j] += np.dot(chunk.T, chunk)
 
     def _update_coded_sums(
         self,

@@ -288,7 +288,7 @@ def _rows_and_grams(
             part = (
                 z if root is None else np.multiply(z, root[start:stop], out=scaled[:, : z.shape[1]])
             )
-            gram += part @ part.T
+            gram += np.dot(part, part.T)  # not `@`: see DEVELOPERS.md, products and threads
         rows[start:stop] = z.T
     return rows, grams
 

@@ -278,7 +278,7 @@ def shifted_gram(
         stop = min(start + GRAM_CHUNK_ROWS, n_rows)
         z = chunk[: stop - start]
         _fill_block(z, columns, shifts, root_w, slice(start, stop), intercept=intercept)
-        gram += z.T @ z
+        gram += np.dot(z.T, z)
     return gram
 
 
@@ -648,7 +648,7 @@ class LinearFit:
 
     def predict_shifted(self, shifted: FloatArray) -> FloatArray:
         """Return fitted values for rows already passed through `to_shifted`."""
-        fitted: FloatArray = shifted @ self._factor.shifted_coef + self._factor.y_shift
+        fitted: FloatArray = np.dot(shifted, self._factor.shifted_coef) + self._factor.y_shift
         return fitted
 
     def leverage(self, x: ArrayLike, weights: ArrayLike | None = None) -> FloatArray:
@@ -685,7 +685,7 @@ class LinearFit:
         r_inverse = self._factor.r_inverse
         h: FloatArray = np.empty(shifted.shape[0])
         for start in range(0, shifted.shape[0], GRAM_CHUNK_ROWS):
-            v = shifted[start : start + GRAM_CHUNK_ROWS] @ r_inverse
+            v = np.dot(shifted[start : start + GRAM_CHUNK_ROWS], r_inverse)
             h[start : start + GRAM_CHUNK_ROWS] = np.einsum("ij,ij->i", v, v)
         if weights is not None:
             h *= np.asarray(weights, dtype=np.float64)
@@ -772,7 +772,7 @@ class LinearFit:
     ) -> FloatArray:
         """Fitted values from the parts `_coded_columns` split the rows into."""
         coef, _ = self._coded_parts
-        fitted: FloatArray = a @ coef[design.dense_positions]
+        fitted: FloatArray = np.dot(a, coef[design.dense_positions])
         fitted += float(c0 @ coef) + self._factor.y_shift
         for factor, positions in zip(design.factors, padded, strict=True):
             fitted += np.take(coef[positions], factor.codes)
@@ -808,13 +808,14 @@ class LinearFit:
         linear = (2.0 * m_c0[dense])[:, np.newaxis]
         with_dense = [2.0 * m[np.ix_(dense, positions)] for positions in padded]
         h: FloatArray = np.zeros(n_rows)  # stays 0 without dense columns
-        g = np.empty((dense.size, min(n_rows, GRAM_CHUNK_ROWS)))
-        level = np.empty(g.shape[1])
+        chunk_rows = min(n_rows, GRAM_CHUNK_ROWS)
+        g = np.empty(dense.size * chunk_rows)  # each chunk's part a C-contiguous view, for np.dot
+        level = np.empty(chunk_rows)
         for start in range(0, n_rows if dense.size else 0, GRAM_CHUNK_ROWS):
             rows = slice(start, min(start + GRAM_CHUNK_ROWS, n_rows))
             size = rows.stop - start
-            part, values = g[:, :size], level[:size]
-            np.matmul(m_dense, a_t[:, rows], out=part)
+            part, values = g[: dense.size * size].reshape(dense.size, size), level[:size]
+            np.dot(m_dense, a_t[:, rows], out=part)
             part += linear
             for factor, table in zip(design.factors, with_dense, strict=True):
                 codes = factor.codes[rows]

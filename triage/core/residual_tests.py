@@ -68,7 +68,7 @@ def shifted_cross(shifted: FloatArray) -> CrossProducts:
     """Cross-products ``sum(x~ v')`` of a batch's shifted rows (`LinearFit.to_shifted`)."""
 
     def cross(columns: Sequence[FloatArray]) -> FloatArray:
-        products: FloatArray = shifted.T @ _as_block(columns)
+        products: FloatArray = np.dot(shifted.T, _as_block(columns))
         return products
 
     return cross
@@ -91,7 +91,7 @@ def coded_cross(fit: LinearFit, design: CodedDesign, dense_shifted: FloatArray) 
         products = np.zeros((design.n_cols, len(columns)))
         products[0] = [column.sum() for column in columns]  # coded designs: intercept first
         if dense_shifted.shape[1]:
-            products[design.dense_positions] = dense_shifted.T @ _as_block(columns)
+            products[design.dense_positions] = np.dot(dense_shifted.T, _as_block(columns))
         for factor in design.factors:
             has_column = factor.positions >= 0
             at = factor.positions[has_column]
