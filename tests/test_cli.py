@@ -323,6 +323,55 @@ def test_cli_progress_line_names_the_pass_and_counts_its_rows_once() -> None:
     assert "2,500,000 rows/s, about 5 s left" in line
 
 
+def _terminal_row(written: str) -> str:
+    """What a terminal row shows after `written`: carriage returns, erase-to-end, overwrites."""
+    row: list[str] = []
+    cursor = 0
+    for part in written.split("\r"):
+        cursor = 0
+        for piece_index, piece in enumerate(part.split("\x1b[K")):
+            if piece_index:
+                del row[cursor:]
+            row[cursor : cursor + len(piece)] = list(piece)
+            cursor += len(piece)
+    return "".join(row)
+
+
+def test_cli_progress_on_a_terminal_leaves_nothing_of_a_longer_line(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # Oracle: ECMA-48 (ANSI) terminal behaviour, emulated by `_terminal_row`: a carriage return
+    # goes to the row's start, ESC [ K erases to its end. A shorter line once left the tail of
+    # a longer one ("about 3 s leftt"), and a line wider than the terminal wrapped.
+    import io
+    import os
+
+    from triage.cli import progress as progress_module
+    from triage.results.progress import PassProgress
+
+    class Terminal(io.StringIO):
+        def isatty(self) -> bool:
+            return True
+
+    monkeypatch.setattr(
+        progress_module.shutil, "get_terminal_size", lambda fallback: os.terminal_size((90, 24))
+    )
+    stream = Terminal()
+    progress = progress_module.StderrProgress(delay_s=0.0, stream=stream)
+    progress(PassProgress(375_000, 20_000_000, 1.0, 1_210_348.0, 160.0, pass_number=2, n_passes=2))
+    progress(PassProgress(15_000_000, 20_000_000, 9.0, 1_596_501.0, 3.0, pass_number=2, n_passes=2))
+    shown = _terminal_row(stream.getvalue())
+    assert (
+        shown
+        == "triage: pass 2 of 2: 15,000,000 of 20,000,000 rows  1,596,501 rows/s, about 3 s left"
+    )
+    monkeypatch.setattr(
+        progress_module.shutil, "get_terminal_size", lambda fallback: os.terminal_size((60, 24))
+    )
+    progress(PassProgress(16_000_000, 20_000_000, 9.5, 1_600_000.0, 2.0, pass_number=2, n_passes=2))
+    assert len(_terminal_row(stream.getvalue())) == 59
+
+
 def test_cli_progress_in_a_log_is_whole_lines_at_most_every_interval(
     monkeypatch: pytest.MonkeyPatch,
 ) -> None:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import shutil
 import sys
 import time
 from typing import TYPE_CHECKING, TextIO
@@ -11,6 +12,9 @@ if TYPE_CHECKING:
 
 LOG_EVERY_S = 30.0
 """How often a stderr that is not a terminal (a log file, a pipe) gets a progress line."""
+
+ERASE_TO_END = "\x1b[K"
+"""ANSI: erase the rest of the line, so a shorter line leaves nothing of a longer one."""
 
 
 class StderrProgress:
@@ -41,7 +45,9 @@ class StderrProgress:
         eta = f", about {progress.eta_s:,.0f} s left" if progress.eta_s is not None else ""
         line = f"triage: {done}  {progress.rows_per_s:,.0f} rows/s{eta}"
         if self._on_terminal:
-            self.stream.write("\r" + line.ljust(78)[:120])
+            # one screen row at most: a wrapped line would not return under the cursor
+            columns = shutil.get_terminal_size(fallback=(80, 24)).columns
+            self.stream.write("\r" + line[: max(columns - 1, 20)] + ERASE_TO_END)
             self._drawn = True
         elif self._last_logged is None or now - self._last_logged >= LOG_EVERY_S:
             self.stream.write(line + "\n")
